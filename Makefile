@@ -1,0 +1,36 @@
+# Two commands set everything up on a fresh machine: `make run` and `make test`.
+PYTHON ?= python3
+VENV ?= .venv
+BIN := $(VENV)/bin
+
+.PHONY: test demo lint bench clean
+
+$(BIN)/python:
+	$(PYTHON) -m venv $(VENV)
+	$(BIN)/python -m pip install --upgrade pip
+
+# Re-install when the project's metadata changes; the stamp keeps repeated runs fast.
+$(VENV)/.installed-test: pyproject.toml | $(BIN)/python
+	$(BIN)/python -m pip install -e '.[test]'
+	touch $@
+
+$(VENV)/.installed: pyproject.toml | $(BIN)/python
+	$(BIN)/python -m pip install -e .
+	touch $@
+
+test: $(VENV)/.installed-test
+	$(BIN)/python -m pytest
+
+lint: $(VENV)/.installed-test
+	$(BIN)/ruff check solver service tests benchmarks
+	$(BIN)/ruff format --check solver service tests benchmarks
+	$(BIN)/mypy
+
+demo: $(VENV)/.installed
+	$(BIN)/stockrelay solve service/data/demo_network.json
+
+bench: $(VENV)/.installed-test
+	$(BIN)/python benchmarks/solve.py
+
+clean:
+	rm -rf $(VENV) .pytest_cache .mypy_cache .ruff_cache

@@ -1,0 +1,67 @@
+"""stockrelay's solver: optimal overnight transfer policies for retail networks, computed exactly
+as Markov decision processes. Pure numpy/scipy; no I/O."""
+
+from __future__ import annotations
+
+from typing import Literal
+
+from solver.build import SizeLimits, build_transfer_model
+from solver.errors import (
+    InvalidModelError,
+    InvalidStockError,
+    ModelTooLargeError,
+    NotUnichainError,
+    SolverError,
+)
+from solver.model import TransferModel
+from solver.policy_iteration import solve_modified_policy_iteration, solve_policy_iteration
+from solver.result import Alternative, Criterion, PolicyResult, Recommendation
+from solver.spec import NetworkSpec
+
+__all__ = [
+    "Alternative",
+    "Criterion",
+    "InvalidModelError",
+    "InvalidStockError",
+    "ModelTooLargeError",
+    "NetworkSpec",
+    "NotUnichainError",
+    "PolicyResult",
+    "Recommendation",
+    "SizeLimits",
+    "SolverError",
+    "TransferModel",
+    "build_transfer_model",
+    "solve_modified_policy_iteration",
+    "solve_network",
+    "solve_policy_iteration",
+]
+
+Method = Literal["howard", "modified", "value-iteration"]
+
+
+def solve_network(
+    spec: NetworkSpec,
+    *,
+    criterion: Criterion = "discounted",
+    method: Method = "howard",
+    limits: SizeLimits | None = None,
+) -> PolicyResult:
+    """Build the model of `spec` and solve it; the build time is added to `seconds`."""
+    import time
+
+    start = time.perf_counter()
+    model = build_transfer_model(spec, limits)
+    built = time.perf_counter() - start
+    if method != "howard" and criterion != "discounted":
+        raise ValueError(f"method {method!r} solves the discounted criterion only")
+    if method == "howard":
+        result = solve_policy_iteration(model, criterion=criterion)
+    else:
+        sweeps = 0 if method == "value-iteration" else 20
+        result = solve_modified_policy_iteration(model, sweeps=sweeps)
+    seconds = dict(result.seconds)
+    seconds["build"] = built
+    seconds["total"] = seconds.get("total", 0.0) + built
+    object.__setattr__(result, "seconds", seconds)
+    return result

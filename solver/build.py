@@ -1,0 +1,203 @@
+"""Build a TransferModel from a NetworkSpec.
+
+Per location i, with demand D and replenishment R (independent counts):
+
+    sales     = min(D, y)
+    leftover  L = y - sales, so P(L = j) = P(D = y - j) for 1 <= j <= y and P(L = 0) = P(D >= y)
+    s'        = min(L + R, C)                  (overflow beyond capacity is refused)
+    K[y, k]   = sum_j P(L = j) P(R = k - j)     for k < C
+    K[y, C]   = sum_j P(L = j) P(R >= C - j)    (all tail mass; nothing is truncated)
+    r(y)      = m E min(D, y) - h y - p E (D - y)^+
+
+and R(y) = sum_i r_i(y_i).
+
+Flow table: every integer flow vector within the lane limits and the units-per-night limit,
+except flows that can never be the preferred optimal action:
+  * a flow that sends more than C_i out of, or into, location i is feasible nowhere;
+  * a flow with positive units around a directed cycle (e.g. both ways along a pair of lanes)
+    is dominated by the flow with one unit less on every lane of the cycle: same post-move
+    stock, no higher cost (costs are >= 0), fewer units, and feasible wherever the original is.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import NDArray
+
+from solver.distributions import count_law
+from solver.errors import ModelTooLargeError
+from solver.model import TransferModel, feasible_counts, flow_endpoints
+from solver.spec import LocationSpec, NetworkSpec
+
+__all__ = ["SizeLimits", "build_transfer_model", "location_kernel", "location_reward"]
+
+
+@dataclass(frozen=True)
+class SizeLimits:
+    """Largest networks the solver accepts."""
+
+    max_states: int = 2_000_000
+    max_pairs: int = 50_000_000
+    max_flows: int = 1_000_000
+
+
+def build_transfer_model(spec: NetworkSpec, limits: SizeLimits | None = None) -> TransferModel:
+    """Turn a validated specification into model arrays.
+
+    Raises ModelTooLargeError, giving the sizes, when the network exceeds `limits`.
+    """
+    limits = limits or SizeLimits()
+    ids = spec.location_ids
+    index = {location_id: i for i, location_id in enumerate(ids)}
+    capacities = np.array([loc.capacity for loc in spec.locations], dtype=np.int64)
+    n_states = int(np.prod(capacities + 1, dtype=np.float64))
+    if n_states > limits.max_states:
+        raise ModelTooLargeError(
+            f"network has {n_states:,} stock states, more than the limit of "
+            f"{limits.max_states:,} (capacities {', '.join(map(str, capacities))})",
+            states=n_states,
+            pairs=None,
+        )
+
+    lane_from = np.array([index[lane.from_] for lane in spec.lanes], dtype=np.int64)
+    lane_to = np.array([index[lane.to] for lane in spec.lanes], dtype=np.int64)
+    lane_costs = np.array([lane.unit_cost for lane in spec.lanes], dtype=np.float64)
+    lane_limits = np.array([lane.max_units for lane in spec.lanes], dtype=np.int64)
+
+    flows = _enumerate_flows(
+        lane_from, lane_to, lane_costs, lane_limits, capacities, spec.max_units_per_night, limits
+    )
+    out, inn = flow_endpoints(flows, lane_from, lane_to, len(ids))
+    n_pairs = int(feasible_counts(out, inn, capacities).sum())
+    if n_pairs > limits.max_pairs:
+        raise ModelTooLargeError(
+            f"network has {n_states:,} stock states and {n_pairs:,} feasible state-transfer "
+            f"pairs, more than the limit of {limits.max_pairs:,} pairs; lower lane limits or "
+            "capacities, or set max_units_per_night",
+            states=n_states,
+            pairs=n_pairs,
+        )
+
+    kernels = tuple(location_kernel(loc) for loc in spec.locations)
+    reward = np.zeros(tuple(int(c) + 1 for c in capacities))
+    for i, loc in enumerate(spec.locations):
+        axis_shape = [1] * len(ids)
+        axis_shape[i] = -1
+        reward = reward + location_reward(loc).reshape(axis_shape)
+
+    return TransferModel(
+        location_ids=tuple(ids),
+        capacities=capacities,
+        lane_from=lane_from,
+        lane_to=lane_to,
+        lane_costs=lane_costs,
+        flows=flows,
+        kernels=kernels,
+        reward=reward,
+        discount=spec.discount,
+    )
+
+
+def location_kernel(location: LocationSpec) -> NDArray[np.float64]:
+    """K[y, k] = P(next closing stock k | post-move stock y), shape (C + 1, C + 1)."""
+    c = location.capacity
+    demand = count_law(location.demand, c + 1)
+    supply = count_law(location.replenishment, c + 1)
+
+    y = np.arange(c + 1)[:, None]
+    j = np.arange(c + 1)[None, :]
+    # leftover[y, j] = P(L = j | y): demand y - j for 1 <= j <= y, demand >= y for j = 0.
+    lag = y - j
+    leftover = np.where((j >= 1) & (lag >= 0), demand.pmf[np.clip(lag, 0, c)], 0.0)
+    at_least_y = np.concatenate([[1.0], demand.sf[:-1]])  # P(D >= y) = P(D > y - 1)
+    leftover[:, 0] = at_least_y
+
+    # arrivals[j, k] = P(j + R = k) for k < C, and P(j + R >= C) in the last column.
+    k = np.arange(c + 1)[None, :]
+    gap = k - j.T
+    arrivals = np.where(gap >= 0, supply.pmf[np.clip(gap, 0, c)], 0.0)
+    # P(R >= C - j) = P(R > C - j - 1); for j = C that is 1.
+    need = c - np.arange(c + 1)
+    arrivals[:, c] = np.where(need >= 1, supply.sf[np.clip(need - 1, 0, c)], 1.0)
+    kernel: NDArray[np.float64] = leftover @ arrivals
+    return kernel
+
+
+def location_reward(location: LocationSpec) -> NDArray[np.float64]:
+    """r(y) = m E min(D, y) - h y - p E (D - y)^+ for y = 0..C, currency per day."""
+    demand = count_law(location.demand, location.capacity + 1)
+    y = np.arange(location.capacity + 1, dtype=np.float64)
+    reward: NDArray[np.float64] = (
+        location.unit_margin * demand.expected_min()
+        - location.holding_cost * y
+        - location.stockout_penalty * demand.expected_excess()
+    )
+    return reward
+
+
+def _enumerate_flows(
+    lane_from: NDArray[np.int64],
+    lane_to: NDArray[np.int64],
+    lane_costs: NDArray[np.float64],
+    lane_limits: NDArray[np.int64],
+    capacities: NDArray[np.int64],
+    max_per_night: int | None,
+    limits: SizeLimits,
+) -> NDArray[np.int64]:
+    """Candidate flows, shape (A, L), ordered by (units, cost, lexicographic)."""
+    n_locations, n_lanes = capacities.size, lane_from.size
+    flows = np.zeros((1, 0), dtype=np.int64)
+    out = np.zeros((1, n_locations), dtype=np.int64)
+    inn = np.zeros((1, n_locations), dtype=np.int64)
+    for lane in range(n_lanes):
+        a, b = int(lane_from[lane]), int(lane_to[lane])
+        top = int(min(lane_limits[lane], capacities[a], capacities[b]))
+        if max_per_night is not None:
+            top = min(top, max_per_night)
+        units = np.arange(top + 1, dtype=np.int64)
+        n_old = flows.shape[0]
+        flows = np.hstack([np.repeat(flows, units.size, axis=0), np.tile(units, n_old)[:, None]])
+        out = np.repeat(out, units.size, axis=0)
+        inn = np.repeat(inn, units.size, axis=0)
+        out[:, a] += flows[:, -1]
+        inn[:, b] += flows[:, -1]
+        keep = (out[:, a] <= capacities[a]) & (inn[:, b] <= capacities[b])
+        if max_per_night is not None:
+            keep &= flows.sum(axis=1) <= max_per_night
+        # A lane and its reverse both used: a two-lane cycle, dominated.
+        for other in np.flatnonzero((lane_from[:lane] == b) & (lane_to[:lane] == a)):
+            keep &= (flows[:, other] == 0) | (flows[:, -1] == 0)
+        flows, out, inn = flows[keep], out[keep], inn[keep]
+        if flows.shape[0] > limits.max_flows:
+            raise ModelTooLargeError(
+                f"lanes allow more than {limits.max_flows:,} combinations of moves in one "
+                "night; lower lane limits or set max_units_per_night",
+                states=int(np.prod(capacities + 1)),
+                pairs=None,
+            )
+
+    flows = flows[~_has_cycle(flows, lane_from, lane_to, n_locations)]
+    costs = flows @ lane_costs
+    units = flows.sum(axis=1)
+    # np.lexsort sorts by the last key first.
+    order = np.lexsort((*flows.T[::-1], costs, units))
+    return np.ascontiguousarray(flows[order])
+
+
+def _has_cycle(
+    flows: NDArray[np.int64],
+    lane_from: NDArray[np.int64],
+    lane_to: NDArray[np.int64],
+    n_locations: int,
+) -> NDArray[np.bool_]:
+    """Whether the lanes a flow uses contain a directed cycle, shape (A,)."""
+    adjacency = np.zeros((flows.shape[0], n_locations, n_locations), dtype=np.int64)
+    for lane in range(lane_from.size):
+        adjacency[:, lane_from[lane], lane_to[lane]] |= (flows[:, lane] > 0).astype(np.int64)
+    reach = adjacency.copy()
+    for _ in range(n_locations - 1):
+        reach = np.minimum(reach + reach @ adjacency, 1)
+    result: NDArray[np.bool_] = np.trace(reach, axis1=1, axis2=2) > 0
+    return result

@@ -1,0 +1,208 @@
+"""TransferModel: a transfer network as arrays, validated once.
+
+Symbols (used throughout solver/):
+    N         number of locations; C_i the capacity of location i
+    s         closing stock, a state; s_i in 0..C_i; states are enumerated in row-major (C)
+              order, location 0 varying slowest
+    f         a flow vector, units moved along each of the L lanes tonight (an action)
+    y         post-move stock, y_i = s_i - out_i(f) + in_i(f)
+    K_i       location i's kernel, K_i[y_i, s'_i] = P(next closing stock s'_i | post-move y_i)
+    R(y)      expected one-day reward at post-move stock y, before move costs (currency units)
+
+Given y, the locations evolve independently, so the transition law from y is the product of the
+K_i; the solver never forms it.
+
+A flow f is feasible at s iff out_i(f) <= s_i and s_i - out_i(f) + in_i(f) <= C_i for every i,
+i.e. iff s lies in the box out_i <= s_i <= min(C_i, C_i - in_i + out_i). Network-wide limits
+(lane limits, units per night) are applied when the flow table is built.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+from numpy.typing import NDArray
+
+from solver.errors import InvalidModelError
+
+__all__ = ["TransferModel"]
+
+_PROBABILITY_TOLERANCE = 1e-9
+
+Box = tuple[slice, ...]
+
+
+@dataclass(frozen=True, eq=False)
+class TransferModel:
+    """Arrays of one transfer network.
+
+    location_ids: N names.
+    capacities: shape (N,), C_i.
+    lane_from, lane_to: shape (L,), location indices of each lane's ends.
+    lane_costs: shape (L,), currency per unit moved.
+    flows: shape (A, L), the candidate flow vectors, row 0 moving nothing, rows ordered by
+        preference when values tie (fewer units, then lower cost).
+    kernels: N arrays of shape (C_i + 1, C_i + 1), rows summing to 1.
+    reward: shape (C_1 + 1, ..., C_N + 1), R(y) in currency per day.
+    discount: per-day discount factor for the discounted criterion.
+    """
+
+    location_ids: tuple[str, ...]
+    capacities: NDArray[np.int64]
+    lane_from: NDArray[np.int64]
+    lane_to: NDArray[np.int64]
+    lane_costs: NDArray[np.float64]
+    flows: NDArray[np.int64]
+    kernels: tuple[NDArray[np.float64], ...]
+    reward: NDArray[np.float64]
+    discount: float
+    flow_out: NDArray[np.int64] = field(init=False, repr=False)
+    flow_in: NDArray[np.int64] = field(init=False, repr=False)
+    flow_costs: NDArray[np.float64] = field(init=False, repr=False)
+    flow_units: NDArray[np.int64] = field(init=False, repr=False)
+
+    def __post_init__(self) -> None:
+        self._validate_shapes()
+        out, inn = flow_endpoints(self.flows, self.lane_from, self.lane_to, self.n_locations)
+        object.__setattr__(self, "flow_out", out)
+        object.__setattr__(self, "flow_in", inn)
+        object.__setattr__(self, "flow_costs", self.flows @ self.lane_costs)
+        object.__setattr__(self, "flow_units", self.flows.sum(axis=1))
+        self._validate_probabilities()
+
+    # -- sizes -------------------------------------------------------------------------------
+
+    @property
+    def n_locations(self) -> int:
+        return len(self.location_ids)
+
+    @property
+    def n_lanes(self) -> int:
+        return int(self.lane_from.size)
+
+    @property
+    def n_flows(self) -> int:
+        return int(self.flows.shape[0])
+
+    @property
+    def shape(self) -> tuple[int, ...]:
+        return tuple(int(c) + 1 for c in self.capacities)
+
+    @property
+    def n_states(self) -> int:
+        return int(np.prod(self.shape))
+
+    @property
+    def strides(self) -> NDArray[np.int64]:
+        """Flat-index step of one unit at each location, shape (N,)."""
+        shape = np.array(self.shape, dtype=np.int64)
+        return np.concatenate([np.cumprod(shape[::-1])[::-1][1:], [1]]).astype(np.int64)
+
+    def box_sizes(self) -> NDArray[np.int64]:
+        """Number of states at which each flow is feasible, shape (A,)."""
+        return feasible_counts(self.flow_out, self.flow_in, self.capacities)
+
+    @property
+    def n_pairs(self) -> int:
+        """Number of feasible (state, flow) pairs."""
+        return int(self.box_sizes().sum())
+
+    # -- feasibility -------------------------------------------------------------------------
+
+    def boxes(self) -> list[tuple[Box, Box]]:
+        """For each flow, the slices of the states where it is feasible and of their post-move
+        stocks (same extent), as index tuples into arrays of shape `self.shape`."""
+        out, inn, cap = self.flow_out, self.flow_in, self.capacities
+        lo = out
+        hi = np.minimum(cap, cap - inn + out)
+        y_lo = inn
+        return [
+            (
+                tuple(slice(int(a), int(b) + 1) for a, b in zip(lo[k], hi[k], strict=True)),
+                tuple(
+                    slice(int(a), int(a + b - c) + 1)
+                    for a, b, c in zip(y_lo[k], hi[k], lo[k], strict=True)
+                ),
+            )
+            for k in range(self.n_flows)
+        ]
+
+    def flat_shift(self) -> NDArray[np.int64]:
+        """Change of the flat state index caused by each flow, shape (A,)."""
+        return (self.flow_in - self.flow_out) @ self.strides
+
+    # -- validation --------------------------------------------------------------------------
+
+    def _validate_shapes(self) -> None:
+        n, n_lanes = self.n_locations, self.lane_from.size
+        if n < 1 or self.capacities.shape != (n,) or np.any(self.capacities < 1):
+            raise InvalidModelError("capacities must be one integer >= 1 per location")
+        for name, arr in (("lane_to", self.lane_to), ("lane_costs", self.lane_costs)):
+            if arr.shape != (n_lanes,):
+                raise InvalidModelError(f"{name} has shape {arr.shape}, expected ({n_lanes},)")
+        ends = np.concatenate([self.lane_from, self.lane_to])
+        if ends.size and (ends.min() < 0 or ends.max() >= n):
+            raise InvalidModelError("a lane names a location index outside 0..N-1")
+        if self.flows.ndim != 2 or self.flows.shape[1] != n_lanes or self.flows.shape[0] < 1:
+            raise InvalidModelError(f"flows must have shape (A >= 1, {n_lanes})")
+        if np.any(self.flows < 0) or np.any(self.flows[0] != 0):
+            raise InvalidModelError("flows must be nonnegative and row 0 must move nothing")
+        if len(self.kernels) != n:
+            raise InvalidModelError(f"expected {n} kernels, got {len(self.kernels)}")
+        for i, kernel in enumerate(self.kernels):
+            c = int(self.capacities[i]) + 1
+            if kernel.shape != (c, c):
+                raise InvalidModelError(
+                    f"kernel of location {self.location_ids[i]!r} has shape {kernel.shape}, "
+                    f"expected ({c}, {c})"
+                )
+        if self.reward.shape != self.shape:
+            raise InvalidModelError(f"reward has shape {self.reward.shape}, expected {self.shape}")
+        if not np.all(np.isfinite(self.reward)):
+            bad = np.unravel_index(int(np.argmin(np.isfinite(self.reward))), self.shape)
+            raise InvalidModelError(f"reward is not finite at post-move stock {tuple(bad)}")
+        if not 0.0 < self.discount < 1.0:
+            raise InvalidModelError(f"discount must lie in (0, 1), got {self.discount}")
+
+    def _validate_probabilities(self) -> None:
+        for location, kernel in zip(self.location_ids, self.kernels, strict=True):
+            if np.any(kernel < 0) or not np.all(np.isfinite(kernel)):
+                y = int(np.argmax(np.any((kernel < 0) | ~np.isfinite(kernel), axis=1)))
+                raise InvalidModelError(
+                    f"kernel of location {location!r} has an invalid probability "
+                    f"at post-move stock {y}"
+                )
+            sums = kernel.sum(axis=1)
+            bad = np.flatnonzero(np.abs(sums - 1.0) > _PROBABILITY_TOLERANCE)
+            if bad.size:
+                raise InvalidModelError(
+                    f"kernel of location {location!r}: probabilities from post-move stock "
+                    f"{int(bad[0])} sum to {sums[bad[0]]:.12g}, not 1"
+                )
+        if np.any(self.box_sizes()[:1] != self.n_states):
+            raise InvalidModelError("moving nothing must be feasible in every state")
+
+
+def flow_endpoints(
+    flows: NDArray[np.int64],
+    lane_from: NDArray[np.int64],
+    lane_to: NDArray[np.int64],
+    n_locations: int,
+) -> tuple[NDArray[np.int64], NDArray[np.int64]]:
+    """Units sent out of and received by each location under each flow, shapes (A, N)."""
+    out = np.zeros((flows.shape[0], n_locations), dtype=np.int64)
+    inn = np.zeros_like(out)
+    for lane in range(lane_from.size):
+        out[:, lane_from[lane]] += flows[:, lane]
+        inn[:, lane_to[lane]] += flows[:, lane]
+    return out, inn
+
+
+def feasible_counts(
+    out: NDArray[np.int64], inn: NDArray[np.int64], capacities: NDArray[np.int64]
+) -> NDArray[np.int64]:
+    """Number of states at which each flow is feasible, shape (A,): the box volume
+    prod_i max(0, min(C_i - out_i, C_i - in_i) + 1)."""
+    per_location = np.maximum(0, np.minimum(capacities - out, capacities - inn) + 1)
+    return np.prod(per_location, axis=1, dtype=np.int64)

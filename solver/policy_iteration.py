@@ -1,0 +1,349 @@
+"""Howard's policy iteration for both criteria, and modified policy iteration.
+
+Discounted criterion (Puterman 1994, Markov Decision Processes, sections 6.4 and 6.5):
+    1. evaluate:  v_n = v_{sigma_n}, solving (I - beta P_sigma) v = r_sigma (solver.evaluation)
+    2. improve:   sigma_{n+1}(s) in argmax_f Q(s, f), Q(s, f) = U_n(s + in(f) - out(f)) - cost(f)
+       keeping sigma_n(s) unless another flow is better by more than a tie tolerance,
+    until sigma_{n+1} = sigma_n. Modified policy iteration replaces step 1 by m sweeps
+    v <- r_sigma + beta P_sigma v from the last v (m = 0 is value iteration) and stops when
+    ||T v - v||_inf < eps (1 - beta) / (2 beta) (Puterman 1994, section 6.5).
+
+Average criterion, unichain (Puterman 1994, section 8.6): step 1 solves h + g = r_sigma + P_sigma h
+with h(0) = 0, step 2 maximises U(y) = R(y) + E[h(s') | y] less the move cost.
+
+Starting from the policy that never moves anything, every policy is checked before it is used.
+When the loop stops, ties are settled once more from the final values so that among flows within
+the tie tolerance of the best the one with fewest units, then lowest cost, is recommended.
+
+Residuals and bounds reported (Puterman 1994, sections 6.3 and 8.5): for a beta-contraction T,
+||v* - v||_inf <= ||T v - v||_inf / (1 - beta); under the average criterion
+min_s (T h - h)(s) <= g* <= max_s (T h - h)(s).
+"""
+
+from __future__ import annotations
+
+import time
+from typing import Literal
+
+import numpy as np
+from numpy.typing import NDArray
+
+from solver.bellman import ActionTable, greedy, post_move_values
+from solver.chains import unichain_witness
+from solver.errors import NotUnichainError
+from solver.evaluation import (
+    EvaluationMethod,
+    PolicyChain,
+    choose_evaluation,
+    evaluate_average,
+    evaluate_discounted,
+)
+from solver.model import TransferModel
+from solver.result import Criterion, PolicyResult
+
+__all__ = ["solve_modified_policy_iteration", "solve_policy_iteration"]
+
+# Flows whose values differ by less than this, relative to the value scale, count as tied.
+TIE_RTOL = 1e-9
+# Policy evaluation accuracy relative to the value scale; well inside the tie tolerance.
+EVALUATION_RTOL = 1e-11
+
+
+class _Clock:
+    def __init__(self) -> None:
+        self.seconds: dict[str, float] = {"evaluate": 0.0, "improve": 0.0}
+        self.start = time.perf_counter()
+
+    def add(self, phase: str, since: float) -> float:
+        now = time.perf_counter()
+        self.seconds[phase] += now - since
+        return now
+
+    def done(self) -> dict[str, float]:
+        return {**self.seconds, "total": time.perf_counter() - self.start}
+
+
+def solve_policy_iteration(
+    model: TransferModel,
+    *,
+    criterion: Criterion = "discounted",
+    evaluation: EvaluationMethod = "auto",
+    max_iter: int = 200,
+    initial_action: NDArray[np.int64] | None = None,
+) -> PolicyResult:
+    """Optimal transfer policy by Howard's policy iteration.
+
+    initial_action: shape (n_states,), indices into model.flows; default moves nothing.
+    Hitting `max_iter` is reported through `converged`, not raised.
+    Raises NotUnichainError (average criterion) when a policy has several recurrent classes.
+    """
+    if criterion == "average":
+        return _howard_average(model, max_iter, initial_action)
+    method = choose_evaluation(model.discount) if evaluation == "auto" else evaluation
+    return _howard_discounted(model, method, max_iter, initial_action)
+
+
+def _howard_discounted(
+    model: TransferModel,
+    method: Literal["successive", "krylov"],
+    max_iter: int,
+    initial_action: NDArray[np.int64] | None,
+) -> PolicyResult:
+    clock = _Clock()
+    beta = model.discount
+    table = ActionTable.of(model)
+    action = _initial(model, initial_action)
+    scale = max(1.0, float(np.max(np.abs(model.reward))) + float(table.costs.max())) / (1 - beta)
+    v = np.zeros(model.n_states)
+    chain = _chain(model, table, action)
+    products, converged, iterations = 0, False, 0
+    while iterations < max_iter:
+        iterations += 1
+        t = time.perf_counter()
+        chain = _chain(model, table, action)
+        v = evaluate_discounted(
+            chain, beta, v0=v, tolerance=EVALUATION_RTOL * scale, method=method
+        )
+        products += chain.products
+        t = clock.add("evaluate", t)
+        u = post_move_values(model, v, beta)
+        new_action = _improve(table, u, chain, action, TIE_RTOL * scale)
+        clock.add("improve", t)
+        if np.array_equal(new_action, action):
+            converged = True
+            break
+        action = new_action
+
+    t = time.perf_counter()
+    canonical, best = greedy(table, u, TIE_RTOL * scale)
+    if not np.array_equal(canonical, action):
+        action = canonical
+        chain = _chain(model, table, action)
+        v = evaluate_discounted(
+            chain, beta, v0=v, tolerance=EVALUATION_RTOL * scale, method=method
+        )
+        products += chain.products
+        u = post_move_values(model, v, beta)
+        best = greedy(table, u, TIE_RTOL * scale)[1]
+    residual = float(np.max(np.abs(best - v)))
+    clock.add("improve", t)
+    return _result(
+        model,
+        criterion="discounted",
+        method=f"howard/{method}",
+        action=action,
+        values=v,
+        post_move=u,
+        gain=None,
+        iterations=iterations,
+        products=products,
+        residual=residual,
+        error_bound=residual / (1 - beta),
+        converged=converged,
+        seconds=clock.done(),
+    )
+
+
+def _howard_average(
+    model: TransferModel, max_iter: int, initial_action: NDArray[np.int64] | None
+) -> PolicyResult:
+    clock = _Clock()
+    table = ActionTable.of(model)
+    action = _initial(model, initial_action)
+    scale = max(1.0, float(np.max(np.abs(model.reward))) + float(table.costs.max()))
+    gain, bias = 0.0, np.zeros(model.n_states)
+    products, converged, iterations = 0, False, 0
+
+    def evaluate(chain: PolicyChain, iteration: int) -> tuple[float, NDArray[np.float64]]:
+        _require_unichain(model, chain.post_move, iteration)
+        g, h, _ = evaluate_average(
+            chain, gain0=gain, bias0=bias, tolerance=EVALUATION_RTOL * scale
+        )
+        return g, h
+
+    while iterations < max_iter:
+        iterations += 1
+        t = time.perf_counter()
+        chain = _chain(model, table, action)
+        gain, bias = evaluate(chain, iterations)
+        products += chain.products
+        t = clock.add("evaluate", t)
+        u = post_move_values(model, bias, 1.0)
+        tie = TIE_RTOL * max(scale, float(np.max(np.abs(u))))
+        new_action = _improve(table, u, chain, action, tie)
+        clock.add("improve", t)
+        if np.array_equal(new_action, action):
+            converged = True
+            break
+        action = new_action
+
+    t = time.perf_counter()
+    canonical, best = greedy(table, u, tie)
+    if not np.array_equal(canonical, action):
+        action = canonical
+        chain = _chain(model, table, action)
+        gain, bias = evaluate(chain, iterations)
+        products += chain.products
+        u = post_move_values(model, bias, 1.0)
+        best = greedy(table, u, tie)[1]
+    slack = best - bias
+    clock.add("improve", t)
+    return _result(
+        model,
+        criterion="average",
+        method="howard/krylov",
+        action=action,
+        values=bias,
+        post_move=u,
+        gain=gain,
+        iterations=iterations,
+        products=products,
+        residual=float(slack.max() - slack.min()),
+        error_bound=max(float(slack.max()) - gain, 0.0),
+        converged=converged,
+        seconds=clock.done(),
+    )
+
+
+def solve_modified_policy_iteration(
+    model: TransferModel,
+    *,
+    sweeps: int = 20,
+    epsilon: float | None = None,
+    max_iter: int = 1_000_000,
+) -> PolicyResult:
+    """Optimal discounted policy by modified policy iteration with `sweeps` partial-evaluation
+    sweeps per improvement (sweeps = 0 is value iteration).
+
+    epsilon: the returned policy is epsilon-optimal (currency units); default a small fraction
+    of the value scale.
+    """
+    clock = _Clock()
+    beta = model.discount
+    table = ActionTable.of(model)
+    scale = max(1.0, float(np.max(np.abs(model.reward))) + float(table.costs.max())) / (1 - beta)
+    epsilon = EVALUATION_RTOL * 100 * scale if epsilon is None else epsilon
+    threshold = epsilon * (1 - beta) / (2 * beta)
+    v = np.zeros(model.n_states)
+    action = np.zeros(model.n_states, dtype=np.int64)
+    products, converged, iterations, residual = 0, False, 0, np.inf
+    while iterations < max_iter:
+        iterations += 1
+        t = time.perf_counter()
+        u = post_move_values(model, v, beta)
+        products += 1
+        action, best = greedy(table, u, TIE_RTOL * scale)
+        residual = float(np.max(np.abs(best - v)))
+        t = clock.add("improve", t)
+        v = best
+        if residual < threshold:
+            converged = True
+            break
+        chain = _chain(model, table, action)
+        for _ in range(sweeps):
+            v = chain.reward + beta * chain.apply(v)
+        products += chain.products
+        clock.add("evaluate", t)
+
+    return _result(
+        model,
+        criterion="discounted",
+        method="value-iteration" if sweeps == 0 else f"modified/{sweeps}",
+        action=action,
+        values=v,
+        post_move=post_move_values(model, v, beta),
+        gain=None,
+        iterations=iterations,
+        products=products,
+        residual=residual,
+        # v = T v_prev with ||T v_prev - v_prev|| = residual: ||v* - v|| <= beta res / (1 - beta).
+        error_bound=beta * residual / (1 - beta),
+        converged=converged,
+        seconds=clock.done(),
+    )
+
+
+def _initial(model: TransferModel, initial_action: NDArray[np.int64] | None) -> NDArray[np.int64]:
+    if initial_action is None:
+        return np.zeros(model.n_states, dtype=np.int64)
+    action = np.asarray(initial_action, dtype=np.int64)
+    if action.shape != (model.n_states,) or action.min() < 0 or action.max() >= model.n_flows:
+        raise ValueError(f"initial_action must be {model.n_states} indices into the flow table")
+    return action.copy()
+
+
+def _chain(model: TransferModel, table: ActionTable, action: NDArray[np.int64]) -> PolicyChain:
+    post = table.post_move_index(action)
+    reward = model.reward.reshape(-1)[post] - table.costs[action]
+    return PolicyChain(model, post, reward)
+
+
+def _improve(
+    table: ActionTable,
+    u: NDArray[np.float64],
+    chain: PolicyChain,
+    action: NDArray[np.int64],
+    tolerance: float,
+) -> NDArray[np.int64]:
+    """Greedy policy, keeping the current flow wherever nothing beats it by `tolerance`."""
+    candidate, best = greedy(table, u, tolerance)
+    current = u.reshape(-1)[chain.post_move] - table.costs[action]
+    return np.where(best > current + tolerance, candidate, action)
+
+
+def _require_unichain(model: TransferModel, post_move: NDArray[np.int64], iteration: int) -> None:
+    witness = unichain_witness(model, post_move)
+    if witness is None:
+        return
+    z, w = (np.unravel_index(i, model.shape) for i in witness)
+
+    def describe(stock: tuple[np.intp, ...]) -> str:
+        return ", ".join(f"{loc}={int(u)}" for loc, u in zip(model.location_ids, stock, strict=True))
+
+    raise NotUnichainError(
+        f"the average criterion needs every stock level to lead to one common pattern, but under "
+        f"the policy of iteration {iteration} closing stock ({describe(w)}) can never reach "
+        f"({describe(z)}), which recurs: long-run profit per day would depend on the starting "
+        "stock. Use the discounted criterion, or demand and replenishment laws that can empty "
+        "or refill each location"
+    )
+
+
+def _result(
+    model: TransferModel,
+    *,
+    criterion: Criterion,
+    method: str,
+    action: NDArray[np.int64],
+    values: NDArray[np.float64],
+    post_move: NDArray[np.float64],
+    gain: float | None,
+    iterations: int,
+    products: int,
+    residual: float,
+    error_bound: float,
+    converged: bool,
+    seconds: dict[str, float],
+) -> PolicyResult:
+    return PolicyResult(
+        criterion=criterion,
+        method=method,
+        location_ids=model.location_ids,
+        capacities=tuple(int(c) for c in model.capacities),
+        lanes=tuple(
+            (int(a), int(b)) for a, b in zip(model.lane_from, model.lane_to, strict=True)
+        ),
+        lane_costs=model.lane_costs,
+        flows=model.flows,
+        action=action,
+        values=values,
+        post_move_values=post_move.reshape(-1),
+        discount=model.discount if criterion == "discounted" else None,
+        gain=gain,
+        iterations=iterations,
+        evaluation_sweeps=products,
+        residual=residual,
+        error_bound=error_bound,
+        converged=converged,
+        seconds=seconds,
+    )

@@ -1,0 +1,154 @@
+"""Results of a solve: the optimal transfer policy, its values, and recommendations from it."""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from typing import Literal
+
+import numpy as np
+from numpy.typing import NDArray
+
+from solver.errors import InvalidStockError
+from solver.model import flow_endpoints
+
+__all__ = ["Alternative", "Criterion", "PolicyResult", "Recommendation"]
+
+Criterion = Literal["discounted", "average"]
+
+
+@dataclass(frozen=True)
+class Alternative:
+    """Another feasible set of moves tonight and its value (same units as the recommendation)."""
+
+    flows: tuple[int, ...]
+    value: float
+
+
+@dataclass(frozen=True)
+class Recommendation:
+    """What to move tonight from one closing stock.
+
+    flows: units per lane, in the network's lane order.
+    post_move_stock: stock per location after the moves.
+    expected_value: value of following the policy from this stock (discounted profit; for the
+        average criterion the bias, relative to the all-empty stock).
+    value_without_transfers: the same, but moving nothing tonight and following the policy
+        from tomorrow on.
+    gain_from_transfers: expected_value - value_without_transfers (>= 0).
+    alternatives: the next-best feasible choices, best first.
+    """
+
+    stock: tuple[int, ...]
+    flows: tuple[int, ...]
+    post_move_stock: tuple[int, ...]
+    transfer_cost: float
+    expected_value: float
+    value_without_transfers: float
+    gain_from_transfers: float
+    alternatives: tuple[Alternative, ...]
+
+
+@dataclass(frozen=True, eq=False)
+class PolicyResult:
+    """An optimal stationary transfer policy and how it was found.
+
+    Arrays over states are flat, in row-major order of closing stock (location 0 slowest).
+    flows: shape (A, L), the candidate flow table; action: shape (S,), index into it.
+    values: shape (S,), discounted value, or for the average criterion the bias with
+        values[0] = 0 (currency units).
+    post_move_values: shape (S,), U(y) at post-move stock y (see solver.bellman).
+    gain: long-run profit per day under the average criterion, else None.
+    residual: Bellman residual ||T v - v||_inf (discounted) or its span (average).
+    error_bound: bound on the distance of `values` (discounted) or `gain` (average) from the
+        optimum implied by the residual (Puterman 1994, sections 6.3 and 8.5).
+    seconds: wall-clock seconds per phase ("build", "evaluate", "improve", "total").
+    """
+
+    criterion: Criterion
+    method: str
+    location_ids: tuple[str, ...]
+    capacities: tuple[int, ...]
+    lanes: tuple[tuple[int, int], ...]
+    lane_costs: NDArray[np.float64]
+    flows: NDArray[np.int64]
+    action: NDArray[np.int64]
+    values: NDArray[np.float64]
+    post_move_values: NDArray[np.float64]
+    discount: float | None
+    gain: float | None
+    iterations: int
+    evaluation_sweeps: int
+    residual: float
+    error_bound: float
+    converged: bool
+    seconds: Mapping[str, float]
+
+    @property
+    def shape(self) -> tuple[int, ...]:
+        return tuple(c + 1 for c in self.capacities)
+
+    @property
+    def n_states(self) -> int:
+        return int(self.action.size)
+
+    @property
+    def n_flows(self) -> int:
+        return int(self.flows.shape[0])
+
+    def policy_flows(self) -> NDArray[np.int64]:
+        """Units per lane in every state, shape (S, L)."""
+        return self.flows[self.action]
+
+    def state_index(self, stock: Sequence[int]) -> int:
+        """Flat index of a closing stock; InvalidStockError when it does not fit the network."""
+        if len(stock) != len(self.capacities):
+            raise InvalidStockError(
+                f"expected stock for {len(self.capacities)} locations, got {len(stock)}"
+            )
+        for location, units, capacity in zip(self.location_ids, stock, self.capacities, strict=True):
+            if not 0 <= units <= capacity:
+                raise InvalidStockError(
+                    f"stock at {location!r} is {units}, outside 0..{capacity}"
+                )
+        return int(np.ravel_multi_index(tuple(int(u) for u in stock), self.shape))
+
+    def recommend(self, stock: Sequence[int], n_alternatives: int = 3) -> Recommendation:
+        """Tonight's moves from closing `stock` (units per location, in network order)."""
+        s = np.array(stock, dtype=np.int64)
+        index = self.state_index(stock)
+        out, inn = self._endpoints()
+        capacities = np.array(self.capacities, dtype=np.int64)
+        feasible = np.flatnonzero(np.all((out <= s) & (s - out + inn <= capacities), axis=1))
+        posts = s - out[feasible] + inn[feasible]
+        post_index = np.ravel_multi_index(tuple(posts.T), self.shape)
+        q = self.post_move_values[post_index] - self.flows[feasible] @ self.lane_costs
+
+        # Under the average criterion Q(s, f) = h(s) + g at the best f: report on the bias scale.
+        q -= self.gain or 0.0
+
+        chosen = int(self.action[index])
+        position = {int(k): p for p, k in enumerate(feasible)}
+        others = [p for p in np.argsort(-q, kind="stable") if feasible[p] != chosen]
+        alternatives = tuple(
+            Alternative(tuple(int(x) for x in self.flows[feasible[p]]), float(q[p]))
+            for p in others[:n_alternatives]
+        )
+        # Row 0 of the flow table moves nothing and is feasible everywhere.
+        expected = float(q[position[chosen]])
+        without = float(q[position[0]])
+        return Recommendation(
+            stock=tuple(int(u) for u in s),
+            flows=tuple(int(x) for x in self.flows[chosen]),
+            post_move_stock=tuple(int(u) for u in posts[position[chosen]]),
+            transfer_cost=float(self.flows[chosen] @ self.lane_costs),
+            expected_value=expected,
+            value_without_transfers=without,
+            gain_from_transfers=expected - without,
+            alternatives=alternatives,
+        )
+
+    def _endpoints(self) -> tuple[NDArray[np.int64], NDArray[np.int64]]:
+        lane_from = np.array([a for a, _ in self.lanes], dtype=np.int64)
+        lane_to = np.array([b for _, b in self.lanes], dtype=np.int64)
+        return flow_endpoints(self.flows, lane_from, lane_to, len(self.capacities))
