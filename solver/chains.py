@@ -23,9 +23,7 @@ __all__ = ["unichain_witness"]
 _MIXING_STEPS = 64
 
 
-def unichain_witness(
-    model: TransferModel, post_move: NDArray[np.int64]
-) -> tuple[int, int] | None:
+def unichain_witness(model: TransferModel, post_move: NDArray[np.int64]) -> tuple[int, int] | None:
     """None when the policy with post-move index `post_move` (shape (S,)) is unichain;
     otherwise (z, w): a recurrent state z and a state w from which z cannot be reached."""
     reach = _Reachability(model, post_move)
@@ -60,9 +58,11 @@ class _Reachability:
         self.support_t = [b.T for b in support]
 
     def _scatter(self, weights: NDArray[np.float64]) -> NDArray[np.float64]:
-        return np.bincount(self.post_move, weights=weights, minlength=weights.size).reshape(
-            self.shape
-        )
+        """Total weight of the states arriving at each post-move stock, shape model.shape."""
+        total: NDArray[np.float64] = np.bincount(
+            self.post_move, weights=weights, minlength=weights.size
+        ).astype(np.float64)
+        return total.reshape(self.shape)
 
     def successors(self, states: NDArray[np.bool_]) -> NDArray[np.bool_]:
         posts = self._scatter(states.astype(np.float64))
@@ -88,7 +88,7 @@ class _Reachability:
     def long_run_weight(self) -> NDArray[np.float64]:
         """State distribution after some steps from uniform: mass gathers on recurrent states."""
         n = self.post_move.size
-        mu = np.full(n, 1.0 / n)
+        mu: NDArray[np.float64] = np.full(n, 1.0 / n)
         for _ in range(_MIXING_STEPS):
             mu = apply_along_axes(self._scatter(mu), self.kernels_t).reshape(-1)
         return mu

@@ -205,4 +205,5 @@ def feasible_counts(
     """Number of states at which each flow is feasible, shape (A,): the box volume
     prod_i max(0, min(C_i - out_i, C_i - in_i) + 1)."""
     per_location = np.maximum(0, np.minimum(capacities - out, capacities - inn) + 1)
-    return np.prod(per_location, axis=1, dtype=np.int64)
+    counts: NDArray[np.int64] = np.prod(per_location, axis=1, dtype=np.int64)
+    return counts

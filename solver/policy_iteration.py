@@ -101,9 +101,7 @@ def _howard_discounted(
         iterations += 1
         t = time.perf_counter()
         chain = _chain(model, table, action)
-        v = evaluate_discounted(
-            chain, beta, v0=v, tolerance=EVALUATION_RTOL * scale, method=method
-        )
+        v = evaluate_discounted(chain, beta, v0=v, tolerance=EVALUATION_RTOL * scale, method=method)
         products += chain.products
         t = clock.add("evaluate", t)
         u = post_move_values(model, v, beta)
@@ -119,9 +117,7 @@ def _howard_discounted(
     if not np.array_equal(canonical, action):
         action = canonical
         chain = _chain(model, table, action)
-        v = evaluate_discounted(
-            chain, beta, v0=v, tolerance=EVALUATION_RTOL * scale, method=method
-        )
+        v = evaluate_discounted(chain, beta, v0=v, tolerance=EVALUATION_RTOL * scale, method=method)
         products += chain.products
         u = post_move_values(model, v, beta)
         best = greedy(table, u, TIE_RTOL * scale)[1]
@@ -156,9 +152,7 @@ def _howard_average(
 
     def evaluate(chain: PolicyChain, iteration: int) -> tuple[float, NDArray[np.float64]]:
         _require_unichain(model, chain.post_move, iteration)
-        g, h, _ = evaluate_average(
-            chain, gain0=gain, bias0=bias, tolerance=EVALUATION_RTOL * scale
-        )
+        g, h, _ = evaluate_average(chain, gain0=gain, bias0=bias, tolerance=EVALUATION_RTOL * scale)
         return g, h
 
     while iterations < max_iter:
@@ -298,7 +292,9 @@ def _require_unichain(model: TransferModel, post_move: NDArray[np.int64], iterat
     z, w = (np.unravel_index(i, model.shape) for i in witness)
 
     def describe(stock: tuple[np.intp, ...]) -> str:
-        return ", ".join(f"{loc}={int(u)}" for loc, u in zip(model.location_ids, stock, strict=True))
+        return ", ".join(
+            f"{loc}={int(u)}" for loc, u in zip(model.location_ids, stock, strict=True)
+        )
 
     raise NotUnichainError(
         f"the average criterion needs every stock level to lead to one common pattern, but under "
@@ -330,9 +326,7 @@ def _result(
         method=method,
         location_ids=model.location_ids,
         capacities=tuple(int(c) for c in model.capacities),
-        lanes=tuple(
-            (int(a), int(b)) for a, b in zip(model.lane_from, model.lane_to, strict=True)
-        ),
+        lanes=tuple((int(a), int(b)) for a, b in zip(model.lane_from, model.lane_to, strict=True)),
         lane_costs=model.lane_costs,
         flows=model.flows,
         action=action,

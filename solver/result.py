@@ -106,11 +106,11 @@ class PolicyResult:
             raise InvalidStockError(
                 f"expected stock for {len(self.capacities)} locations, got {len(stock)}"
             )
-        for location, units, capacity in zip(self.location_ids, stock, self.capacities, strict=True):
+        for location, units, capacity in zip(
+            self.location_ids, stock, self.capacities, strict=True
+        ):
             if not 0 <= units <= capacity:
-                raise InvalidStockError(
-                    f"stock at {location!r} is {units}, outside 0..{capacity}"
-                )
+                raise InvalidStockError(f"stock at {location!r} is {units}, outside 0..{capacity}")
         return int(np.ravel_multi_index(tuple(int(u) for u in stock), self.shape))
 
     def recommend(self, stock: Sequence[int], n_alternatives: int = 3) -> Recommendation:

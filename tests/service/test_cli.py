@@ -1,0 +1,131 @@
+"""The `stockrelay solve` contract that other tools rely on."""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pytest
+
+from service.cli import main
+from solver import NetworkSpec, solve_network
+
+DEMO = Path(__file__).resolve().parents[2] / "service" / "data" / "demo_network.json"
+
+
+def run(argv: list[str], capsys: pytest.CaptureFixture[str]) -> tuple[int, str, str]:
+    code = main(argv)
+    captured = capsys.readouterr()
+    return code, captured.out, captured.err
+
+
+def demo_document() -> dict[str, Any]:
+    document: dict[str, Any] = json.loads(DEMO.read_text())
+    return document
+
+
+def test_solve_writes_the_documented_result(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    out = tmp_path / "result.json"
+    code, stdout, stderr = run(["solve", str(DEMO), "--out", str(out)], capsys)
+    assert (code, stderr) == (0, "")
+    assert "states      150" in stdout
+    assert "net units moved riverside -> hilltop" in stdout
+
+    result = json.loads(out.read_text())
+    assert set(result) == {
+        "network", "criterion", "states", "lanes", "value", "policy", "gain", "iterations",
+        "residual", "seconds",
+    }  # fmt: skip
+    expected = solve_network(NetworkSpec.model_validate(demo_document()))
+    assert result["criterion"] == "discounted"
+    assert result["gain"] is None
+    assert result["states"] == 15 * 10 == len(result["value"]) == len(result["policy"])
+    assert result["lanes"] == [
+        {"from": "riverside", "to": "hilltop"},
+        {"from": "hilltop", "to": "riverside"},
+    ]
+    np.testing.assert_allclose(result["value"], expected.values, rtol=1e-12)
+    # Row-major order, first location slowest: state (riverside=14, hilltop=0) is index 140.
+    assert tuple(result["policy"][14 * 10 + 0]) == expected.recommend([14, 0]).flows
+
+
+def test_average_criterion_reports_gain_and_bias(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    out = tmp_path / "result.json"
+    code, stdout, _ = run(["solve", str(DEMO), "--criterion", "average", "--out", str(out)], capsys)
+    result = json.loads(out.read_text())
+    assert code == 0
+    assert result["criterion"] == "average"
+    assert result["gain"] > 0
+    assert result["value"][0] == 0.0
+    assert "profit/day" in stdout
+
+
+def bad_input(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], network: Path
+) -> tuple[str, Path]:
+    out = tmp_path / "result.json"
+    out.write_text("previous result")
+    code, stdout, stderr = run(["solve", str(network), "--out", str(out)], capsys)
+    assert code == 2
+    assert stdout == ""
+    assert stderr.count("\n") == 1 and stderr.startswith("stockrelay: error: ")
+    assert out.read_text() == "previous result"
+    assert [p.name for p in tmp_path.iterdir() if p.name.startswith(".result")] == []
+    return stderr, out
+
+
+def test_missing_file(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    stderr, _ = bad_input(tmp_path, capsys, tmp_path / "nowhere.json")
+    assert "cannot read" in stderr
+
+
+def test_broken_json(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    network = tmp_path / "network.json"
+    network.write_text('{"name": "x",')
+    stderr, _ = bad_input(tmp_path, capsys, network)
+    assert "not valid JSON" in stderr
+
+
+def test_every_specification_problem_on_one_line(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    document = demo_document()
+    document["locations"][0]["demand"]["variance"] = 1.0
+    document["lanes"][0]["to"] = "harbour"
+    network = tmp_path / "network.json"
+    network.write_text(json.dumps(document))
+    stderr, _ = bad_input(tmp_path, capsys, network)
+    assert "locations.0.demand.negative_binomial: Value error, variance (1) must exceed" in stderr
+
+
+def test_network_over_the_size_limit(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    document = demo_document()
+    for location in document["locations"]:
+        location["capacity"] = 2000
+    network = tmp_path / "network.json"
+    network.write_text(json.dumps(document))
+    stderr, _ = bad_input(tmp_path, capsys, network)
+    assert "4,004,001 stock states" in stderr and "2,000,000" in stderr
+
+
+def test_console_script_runs_as_installed(tmp_path: Path) -> None:
+    completed = subprocess.run(
+        [sys.executable, "-m", "service.cli", "solve", str(DEMO)],
+        capture_output=True,
+        text=True,
+        check=False,
+    )
+    assert completed.returncode == 0, completed.stderr
+    assert completed.stdout.startswith("network     Cordless drill kits")
+    usage = subprocess.run(
+        [sys.executable, "-m", "service.cli", "solve"], capture_output=True, text=True, check=False
+    )
+    assert usage.returncode == 2
