@@ -3,7 +3,7 @@ PYTHON ?= python3
 VENV ?= .venv
 BIN := $(VENV)/bin
 
-.PHONY: test demo lint bench clean
+.PHONY: run test demo lint bench clean
 
 $(BIN)/python:
 	$(PYTHON) -m venv $(VENV)
@@ -28,6 +28,9 @@ lint: $(VENV)/.installed-test
 
 demo: $(VENV)/.installed
 	$(BIN)/stockrelay solve service/data/demo_network.json
+
+# Until the HTTP service exists, running stockrelay means solving the demo network.
+run: demo
 
 bench: $(VENV)/.installed-test
 	$(BIN)/python benchmarks/solve.py
