@@ -94,13 +94,18 @@ def _successive(
     tolerance: float,
     max_sweeps: int,
 ) -> NDArray[np.float64]:
-    threshold = tolerance * (1.0 - discount) / discount
+    # MacQueen's bounds: with d = v_next - v, v_sigma lies between v_next + c min(d) and
+    # v_next + c max(d), c = beta / (1 - beta). Stopping on the span of d rather than its sup norm
+    # removes the slow constant component, and the midpoint of the bounds is returned
+    # (Puterman 1994, section 6.6.3).
+    c = discount / (1.0 - discount)
     for _ in range(max_sweeps):
         v_next = chain.reward + discount * chain.apply(v)
-        step = float(np.max(np.abs(v_next - v)))
+        step = v_next - v
+        low, high = float(step.min()), float(step.max())
         v = v_next
-        if step <= threshold:
-            break
+        if c * (high - low) / 2 <= tolerance:
+            return v + c * (high + low) / 2
     return v
 
 
@@ -110,23 +115,36 @@ def _krylov_discounted(
     v0: NDArray[np.float64],
     tolerance: float,
 ) -> NDArray[np.float64]:
+    # Unknowns x = (b, u(1), ..., u(S-1)) with v = b / (1 - beta) + u and u(0) = 0. Since
+    # P_sigma 1 = 1, (I - beta P_sigma) v = b 1 + (I - beta P_sigma) u: the nearly singular
+    # constant direction (eigenvalue 1 - beta) becomes an ordinary unknown, so GMRES converges at
+    # a rate set by the chain's mixing rather than by the discount.
     n = chain.reward.size
 
-    def matvec(x: NDArray[np.float64]) -> NDArray[np.float64]:
-        x = x.reshape(-1)
-        return x - discount * chain.apply(x)
+    def unpack(x: NDArray[np.float64]) -> tuple[float, NDArray[np.float64]]:
+        u = x.reshape(-1).copy()
+        b = float(u[0])
+        u[0] = 0.0
+        return b, u
 
+    def matvec(x: NDArray[np.float64]) -> NDArray[np.float64]:
+        b, u = unpack(x)
+        return b + u - discount * chain.apply(u)
+
+    x0 = v0 - v0[0]
+    x0[0] = (1.0 - discount) * v0[0]
     operator = LinearOperator((n, n), matvec=matvec, dtype=np.float64)
-    v, _ = gmres(
+    x, _ = gmres(
         operator,
         chain.reward,
-        x0=v0,
+        x0=x0,
         rtol=0.0,
         atol=tolerance * (1.0 - discount),
         restart=min(_GMRES_RESTART, n),
         maxiter=max(100, n // _GMRES_RESTART + 1),
     )
-    solution: NDArray[np.float64] = np.asarray(v, dtype=np.float64)
+    b, u = unpack(np.asarray(x, dtype=np.float64))
+    solution: NDArray[np.float64] = u + b / (1.0 - discount)
     return solution
 
 
