@@ -42,6 +42,8 @@ __all__ = [
 EvaluationMethod = Literal["auto", "successive", "krylov"]
 
 _GMRES_RESTART = 60
+# GMRES is restarted from where it stopped at most this many times before giving up.
+_GMRES_ROUNDS = 3
 
 
 @dataclass
@@ -133,17 +135,13 @@ def _krylov_discounted(
 
     x0 = v0 - v0[0]
     x0[0] = (1.0 - discount) * v0[0]
-    operator = LinearOperator((n, n), matvec=matvec, dtype=np.float64)
-    x, _ = gmres(
-        operator,
+    x = _solve(
+        LinearOperator((n, n), matvec=matvec, dtype=np.float64),
         chain.reward,
-        x0=x0,
-        rtol=0.0,
-        atol=tolerance * (1.0 - discount),
-        restart=min(_GMRES_RESTART, n),
-        maxiter=max(100, n // _GMRES_RESTART + 1),
+        x0,
+        tolerance * (1.0 - discount),
     )
-    b, u = unpack(np.asarray(x, dtype=np.float64))
+    b, u = unpack(x)
     solution: NDArray[np.float64] = u + b / (1.0 - discount)
     return solution
 
@@ -171,18 +169,35 @@ def evaluate_average(
         g, h = unpack(x)
         return h + g - chain.apply(h)
 
-    operator = LinearOperator((n, n), matvec=matvec, dtype=np.float64)
     x0 = bias0.copy()
     x0[0] = gain0
-    x, _ = gmres(
-        operator,
-        chain.reward,
-        x0=x0,
-        rtol=0.0,
-        atol=tolerance,
-        restart=min(_GMRES_RESTART, n),
-        maxiter=max(100, n // _GMRES_RESTART + 1),
-    )
-    g, h = unpack(np.asarray(x, dtype=np.float64))
+    x = _solve(LinearOperator((n, n), matvec=matvec, dtype=np.float64), chain.reward, x0, tolerance)
+    g, h = unpack(x)
     residual = float(np.max(np.abs(h + g - chain.reward - chain.apply(h))))
     return g, h, residual
+
+
+def _solve(
+    operator: LinearOperator,
+    rhs: NDArray[np.float64],
+    x0: NDArray[np.float64],
+    atol: float,
+) -> NDArray[np.float64]:
+    """GMRES to an absolute residual `atol` (2-norm). A solve that stalls is reported by the
+    caller's residual, not hidden: the best iterate is returned."""
+    n = rhs.size
+    x = x0
+    for _ in range(_GMRES_ROUNDS):
+        solution, info = gmres(
+            operator,
+            rhs,
+            x0=x,
+            rtol=0.0,
+            atol=atol,
+            restart=min(_GMRES_RESTART, n),
+            maxiter=max(100, n // _GMRES_RESTART + 1),
+        )
+        x = np.asarray(solution, dtype=np.float64)
+        if info == 0:
+            break
+    return x

@@ -80,6 +80,8 @@ def solve_policy_iteration(
     Hitting `max_iter` is reported through `converged`, not raised.
     Raises NotUnichainError (average criterion) when a policy has several recurrent classes.
     """
+    if max_iter < 1:
+        raise ValueError(f"max_iter must be at least 1, got {max_iter}")
     clock = _Clock()
     table = ActionTable.of(model)
     reward_scale = max(1.0, float(np.max(np.abs(model.reward))) + float(table.costs.max()))

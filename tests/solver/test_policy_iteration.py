@@ -195,3 +195,8 @@ def test_every_recommended_move_earns_something(spec: NetworkSpec) -> None:
         recommendation = result.recommend([int(u) for u in stock])
         assert recommendation.gain_from_transfers > 0.0
         assert recommendation.expected_value > recommendation.value_without_transfers
+
+
+def test_max_iter_below_one_is_refused() -> None:
+    with pytest.raises(ValueError, match="max_iter"):
+        solve_policy_iteration(build_transfer_model(two_stores()), max_iter=0)
