@@ -3,19 +3,18 @@
 from __future__ import annotations
 
 import argparse
-import json
 import logging
 import math
-import os
 import sys
-import tempfile
 from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
 
 import numpy as np
-from pydantic import ValidationError
 
+from service import operations
+from service.errors import UsageError
+from service.files import load_network, write_json_atomically
 from solver import NetworkSpec, PolicyResult, SolverError, solve_network
 
 __all__ = ["main"]
@@ -24,10 +23,6 @@ log = logging.getLogger(__name__)
 
 EXIT_BAD_INPUT = 2
 _GRID_MAX_SIDE = 21
-
-
-class UsageError(Exception):
-    """Bad input from the user: reported as one line, exit code 2."""
 
 
 def main(argv: Sequence[str] | None = None) -> int:
@@ -64,7 +59,64 @@ def _parser() -> argparse.ArgumentParser:
     )
     solve.add_argument("--out", type=Path, metavar="RESULT.json", help="write the full policy")
     solve.set_defaults(handler=_solve)
+
+    migrate = commands.add_parser(
+        "migrate", help="upgrade the database (STOCKRELAY_DATABASE_URL) to the current schema"
+    )
+    migrate.set_defaults(handler=operations.migrate)
+
+    worker = commands.add_parser("worker", help="run a solve worker until SIGTERM or Ctrl-C")
+    worker.add_argument(
+        "--until-idle", action="store_true", help="exit once no job is left to claim"
+    )
+    worker.set_defaults(handler=operations.worker)
+
+    networks = commands.add_parser("networks", help="import, export and list networks")
+    network_commands = networks.add_subparsers(dest="action", required=True, metavar="ACTION")
+    import_ = network_commands.add_parser(
+        "import",
+        help="store NETWORK.json as a new network, or as the next version of the tenant's "
+        "network of the same name, and queue its solves",
+    )
+    import_.add_argument("network", type=Path, metavar="NETWORK.json")
+    import_.add_argument("--tenant", default=operations.DEFAULT_TENANT)
+    import_.add_argument(
+        "--criteria",
+        default="discounted",
+        type=_criteria,
+        help="comma-separated: discounted, average (default: discounted)",
+    )
+    import_.set_defaults(handler=operations.import_network)
+    export = network_commands.add_parser(
+        "export", help="write the current specification of a network"
+    )
+    export.add_argument("id", type=int)
+    export.add_argument("--version", type=int, help="an earlier version number")
+    export.add_argument("--out", type=Path, metavar="NETWORK.json")
+    export.set_defaults(handler=operations.export_network)
+    list_networks = network_commands.add_parser("list", help="list networks and their versions")
+    list_networks.set_defaults(handler=operations.list_networks)
+
+    jobs = commands.add_parser("jobs", help="list solve jobs or retry a failed one")
+    job_commands = jobs.add_subparsers(dest="action", required=True, metavar="ACTION")
+    list_jobs = job_commands.add_parser("list", help="newest jobs first")
+    list_jobs.add_argument("--state", choices=["queued", "running", "done", "failed"])
+    list_jobs.add_argument("--limit", type=int, default=50)
+    list_jobs.set_defaults(handler=operations.list_jobs)
+    retry = job_commands.add_parser("retry", help="queue a failed job again")
+    retry.add_argument("id", type=int)
+    retry.set_defaults(handler=operations.retry_job)
     return parser
+
+
+def _criteria(text: str) -> list[str]:
+    criteria = [part.strip() for part in text.split(",") if part.strip()]
+    unknown = [c for c in criteria if c not in ("discounted", "average")]
+    if unknown or not criteria:
+        raise argparse.ArgumentTypeError(
+            f"criteria must be discounted and/or average, got {text!r}"
+        )
+    return criteria
 
 
 def _solve(args: argparse.Namespace) -> int:
@@ -77,31 +129,6 @@ def _solve(args: argparse.Namespace) -> int:
         write_json_atomically(args.out, result_document(spec, result))
     sys.stdout.write(summary(spec, result))
     return 0 if result.converged else 1
-
-
-def load_network(path: Path) -> NetworkSpec:
-    """Read and validate a network specification; UsageError with one line when it is bad."""
-    try:
-        text = path.read_text(encoding="utf-8")
-    except OSError as exc:
-        raise UsageError(f"cannot read {path}: {exc.strerror or exc}") from exc
-    try:
-        document = json.loads(text)
-    except json.JSONDecodeError as exc:
-        raise UsageError(f"{path}: not valid JSON: {exc.msg} at line {exc.lineno}") from exc
-    try:
-        return NetworkSpec.model_validate(document)
-    except ValidationError as exc:
-        raise UsageError(f"{path}: {describe_validation_error(exc)}") from exc
-
-
-def describe_validation_error(exc: ValidationError) -> str:
-    """All problems of a specification on one line: `where: what; where: what`."""
-    parts = []
-    for error in exc.errors(include_url=False):
-        where = ".".join(str(part) for part in error["loc"]) or "network"
-        parts.append(f"{where}: {error['msg']}")
-    return "; ".join(parts)
 
 
 def result_document(spec: NetworkSpec, result: PolicyResult) -> dict[str, Any]:
@@ -118,23 +145,6 @@ def result_document(spec: NetworkSpec, result: PolicyResult) -> dict[str, Any]:
         "residual": result.residual,
         "seconds": result.seconds["total"],
     }
-
-
-def write_json_atomically(path: Path, document: dict[str, Any]) -> None:
-    """Write all of `document` or nothing: a temporary file beside `path`, then a rename."""
-    try:
-        descriptor, name = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.")
-    except OSError as exc:
-        raise UsageError(f"cannot write {path}: {exc.strerror or exc}") from exc
-    temporary = Path(name)
-    try:
-        with os.fdopen(descriptor, "w", encoding="utf-8") as handle:
-            json.dump(document, handle, allow_nan=False, separators=(",", ":"))
-            handle.write("\n")
-        os.replace(temporary, path)
-    except BaseException:
-        temporary.unlink(missing_ok=True)
-        raise
 
 
 def summary(spec: NetworkSpec, result: PolicyResult) -> str:

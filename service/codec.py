@@ -1,0 +1,127 @@
+"""Compact, checksummed storage of a solved policy.
+
+The arrays of a PolicyResult are stored raw (little-endian, the narrowest integer type that holds
+them), concatenated, and zlib-compressed into one blob. `layout` records each array's name,
+dtype, shape and offset; `checksum` is the SHA-256 of the stored blob, checked before anything is
+decoded, so a corrupt policy is never served. Round trips are bit-exact.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import zlib
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+from solver import PolicyResult
+
+__all__ = ["CorruptPolicyError", "EncodedPolicy", "decode_policy", "encode_policy"]
+
+_ARRAYS = ("action", "flows", "values", "post_move_values", "lane_costs")
+
+
+class CorruptPolicyError(Exception):
+    """A stored policy failed its checksum or could not be decoded."""
+
+
+@dataclass(frozen=True)
+class EncodedPolicy:
+    arrays: bytes
+    layout: str
+    checksum: str
+    meta: str
+
+
+def encode_policy(result: PolicyResult) -> EncodedPolicy:
+    parts: list[bytes] = []
+    layout: list[dict[str, Any]] = []
+    offset = 0
+    for name in _ARRAYS:
+        array = _narrow(getattr(result, name))
+        data = array.tobytes(order="C")
+        layout.append(
+            {"name": name, "dtype": array.dtype.str, "shape": list(array.shape), "offset": offset}
+        )
+        parts.append(data)
+        offset += len(data)
+    blob = zlib.compress(b"".join(parts), level=6)
+    meta = {
+        "criterion": result.criterion,
+        "method": result.method,
+        "location_ids": list(result.location_ids),
+        "capacities": list(result.capacities),
+        "lanes": [list(lane) for lane in result.lanes],
+        "discount": result.discount,
+        "gain": result.gain,
+        "iterations": result.iterations,
+        "evaluation_sweeps": result.evaluation_sweeps,
+        "residual": result.residual,
+        "error_bound": result.error_bound,
+        "converged": result.converged,
+        "seconds": dict(result.seconds),
+    }
+    return EncodedPolicy(
+        arrays=blob,
+        layout=json.dumps(layout, separators=(",", ":")),
+        checksum=hashlib.sha256(blob).hexdigest(),
+        meta=json.dumps(meta, separators=(",", ":")),
+    )
+
+
+def decode_policy(arrays: bytes, layout: str, checksum: str, meta: str) -> PolicyResult:
+    """Rebuild the PolicyResult; CorruptPolicyError when the blob does not match its checksum or
+    its layout."""
+    if hashlib.sha256(arrays).hexdigest() != checksum:
+        raise CorruptPolicyError("stored policy does not match its checksum")
+    try:
+        raw = zlib.decompress(arrays)
+        decoded = {
+            entry["name"]: _read(raw, entry["dtype"], entry["shape"], entry["offset"])
+            for entry in json.loads(layout)
+        }
+        info = json.loads(meta)
+        return PolicyResult(
+            criterion=info["criterion"],
+            method=info["method"],
+            location_ids=tuple(info["location_ids"]),
+            capacities=tuple(info["capacities"]),
+            lanes=tuple((int(a), int(b)) for a, b in info["lanes"]),
+            lane_costs=decoded["lane_costs"],
+            flows=decoded["flows"].astype(np.int64),
+            action=decoded["action"].astype(np.int64),
+            values=decoded["values"],
+            post_move_values=decoded["post_move_values"],
+            discount=info["discount"],
+            gain=info["gain"],
+            iterations=info["iterations"],
+            evaluation_sweeps=info["evaluation_sweeps"],
+            residual=info["residual"],
+            error_bound=info["error_bound"],
+            converged=info["converged"],
+            seconds=info["seconds"],
+        )
+    except (zlib.error, ValueError, KeyError, TypeError) as exc:
+        raise CorruptPolicyError(f"stored policy cannot be decoded: {exc}") from exc
+
+
+def _narrow(array: NDArray[Any]) -> NDArray[Any]:
+    """Integers in the narrowest unsigned type that holds them; floats as little-endian f8."""
+    if np.issubdtype(array.dtype, np.integer):
+        top = int(array.max()) if array.size else 0
+        if array.size and int(array.min()) < 0:
+            return array.astype("<i8")
+        for dtype in ("<u1", "<u2", "<u4"):
+            if top <= np.iinfo(np.dtype(dtype)).max:
+                return array.astype(dtype)
+        return array.astype("<u8")
+    return np.ascontiguousarray(array, dtype="<f8")
+
+
+def _read(raw: bytes, dtype: str, shape: list[int], offset: int) -> NDArray[Any]:
+    count = int(np.prod(shape)) if shape else 1
+    array = np.frombuffer(raw, dtype=np.dtype(dtype), count=count, offset=offset)
+    return array.reshape(shape).copy()

@@ -1,0 +1,1 @@
+"""Persistence: typed tables, engine and sessions, migrations and queries."""

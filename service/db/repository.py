@@ -1,0 +1,414 @@
+"""Queries. Every function takes the caller's Session and leaves committing to it.
+
+The job queue lives in `solve_jobs`. A job is claimable when queued, or when running with an
+expired lease (its worker died). Claiming is one UPDATE whose target is chosen by a subquery with
+`FOR UPDATE SKIP LOCKED` on PostgreSQL, so concurrent workers never block on or take the same
+job; SQLite has a single writer, and the UPDATE re-checks that the job is still claimable.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+from collections.abc import Iterable, Sequence
+from datetime import datetime, timedelta
+
+from sqlalchemy import (
+    ColumnElement,
+    String,
+    and_,
+    cast,
+    delete,
+    func,
+    literal,
+    or_,
+    select,
+    update,
+)
+from sqlalchemy.exc import IntegrityError
+from sqlalchemy.orm import Session
+
+from service.codec import EncodedPolicy
+from service.db.base import utcnow
+from service.db.tables import JobState, Network, NetworkVersion, Policy, SolveJob, Tenant
+from solver import NetworkSpec, PolicyResult
+
+__all__ = [
+    "canonical_spec",
+    "claim_job",
+    "create_network",
+    "delete_policy",
+    "enqueue_solves",
+    "fail_exhausted_jobs",
+    "finish_job",
+    "get_job",
+    "get_or_create_tenant",
+    "jobs_for",
+    "latest_version",
+    "list_jobs",
+    "list_networks",
+    "network_by_name",
+    "policy_for",
+    "release_job",
+    "renew_lease",
+    "retry_job",
+    "store_policy",
+    "versions_newest_first",
+]
+
+LIVE_STATES = (JobState.QUEUED.value, JobState.RUNNING.value)
+
+
+def canonical_spec(spec: NetworkSpec) -> tuple[str, str]:
+    """The specification as canonical JSON (sorted keys, no spaces) and its SHA-256."""
+    text = json.dumps(
+        spec.model_dump(mode="json", by_alias=True), sort_keys=True, separators=(",", ":")
+    )
+    return text, hashlib.sha256(text.encode("utf-8")).hexdigest()
+
+
+# -- tenants and networks ----------------------------------------------------------------------
+
+
+def get_or_create_tenant(session: Session, name: str) -> Tenant:
+    tenant = session.scalars(select(Tenant).where(Tenant.name == name)).one_or_none()
+    if tenant is None:
+        tenant = Tenant(name=name)
+        session.add(tenant)
+        session.flush()
+    return tenant
+
+
+def network_by_name(session: Session, tenant_id: int, name: str) -> Network | None:
+    return session.scalars(
+        select(Network).where(Network.tenant_id == tenant_id, Network.name == name)
+    ).one_or_none()
+
+
+def list_networks(session: Session, tenant_id: int | None = None) -> Sequence[Network]:
+    query = select(Network).order_by(Network.id)
+    if tenant_id is not None:
+        query = query.where(Network.tenant_id == tenant_id)
+    return session.scalars(query).all()
+
+
+def versions_newest_first(session: Session, network_id: int) -> Sequence[NetworkVersion]:
+    return session.scalars(
+        select(NetworkVersion)
+        .where(NetworkVersion.network_id == network_id)
+        .order_by(NetworkVersion.number.desc())
+    ).all()
+
+
+def latest_version(session: Session, network_id: int) -> NetworkVersion | None:
+    return session.scalars(
+        select(NetworkVersion)
+        .where(NetworkVersion.network_id == network_id)
+        .order_by(NetworkVersion.number.desc())
+        .limit(1)
+    ).one_or_none()
+
+
+def create_network(
+    session: Session, tenant: Tenant, spec: NetworkSpec, criteria: Iterable[str]
+) -> tuple[Network, NetworkVersion, list[SolveJob]]:
+    """A new network with version 1 of `spec`, and the solve jobs it needs."""
+    network = Network(tenant_id=tenant.id, name=spec.name)
+    session.add(network)
+    session.flush()
+    version, jobs = add_version(session, network, spec, criteria)
+    return network, version, jobs
+
+
+def add_version(
+    session: Session, network: Network, spec: NetworkSpec, criteria: Iterable[str]
+) -> tuple[NetworkVersion, list[SolveJob]]:
+    """The next version of `network`, and a job per criterion that has neither a policy nor a
+    live job for the same specification in this tenant."""
+    text, digest = canonical_spec(spec)
+    previous = latest_version(session, network.id)
+    version = NetworkVersion(
+        network_id=network.id,
+        number=1 if previous is None else previous.number + 1,
+        spec_json=text,
+        spec_hash=digest,
+    )
+    session.add(version)
+    session.flush()
+    return version, enqueue_solves(session, network.tenant_id, version, criteria)
+
+
+def enqueue_solves(
+    session: Session, tenant_id: int, version: NetworkVersion, criteria: Iterable[str]
+) -> list[SolveJob]:
+    jobs = []
+    for criterion in dict.fromkeys(criteria):
+        if policy_for(session, tenant_id, version.spec_hash, criterion) is not None:
+            continue
+        job = SolveJob(
+            tenant_id=tenant_id,
+            version_id=version.id,
+            spec_hash=version.spec_hash,
+            criterion=criterion,
+            state=JobState.QUEUED.value,
+            attempts=0,
+        )
+        try:
+            # The partial unique index admits one live job per specification and criterion;
+            # when another transaction got there first, its job serves this version too.
+            with session.begin_nested():
+                session.add(job)
+        except IntegrityError:
+            continue
+        jobs.append(job)
+    return jobs
+
+
+# -- the job queue -----------------------------------------------------------------------------
+
+
+def _claimable(now: datetime) -> ColumnElement[bool]:
+    return or_(
+        SolveJob.state == JobState.QUEUED.value,
+        and_(SolveJob.state == JobState.RUNNING.value, SolveJob.lease_expires_at < now),
+    )
+
+
+def fail_exhausted_jobs(session: Session, max_attempts: int, now: datetime | None = None) -> int:
+    """Fail running jobs whose lease expired on their last allowed attempt. Returns how many."""
+    now = now or utcnow()
+    result = session.execute(
+        update(SolveJob)
+        .where(
+            SolveJob.state == JobState.RUNNING.value,
+            SolveJob.lease_expires_at < now,
+            SolveJob.attempts >= max_attempts,
+        )
+        .values(
+            state=JobState.FAILED.value,
+            finished_at=now,
+            error=literal("the worker solving it stopped before finishing, ")
+            + cast(SolveJob.attempts, String)
+            + literal(" times (last: ")
+            + func.coalesce(SolveJob.lease_owner, "unknown")
+            + literal(")"),
+            lease_owner=None,
+            lease_expires_at=None,
+        )
+        .execution_options(synchronize_session=False)
+    )
+    return int(getattr(result, "rowcount", 0) or 0)
+
+
+def claim_job(
+    session: Session,
+    owner: str,
+    lease_seconds: float,
+    max_attempts: int,
+    now: datetime | None = None,
+) -> SolveJob | None:
+    """Take the oldest claimable job and lease it to `owner`; None when there is none."""
+    now = now or utcnow()
+    claimable = _claimable(now)
+    target = (
+        select(SolveJob.id)
+        .where(claimable, SolveJob.attempts < max_attempts)
+        .order_by(SolveJob.id)
+        .limit(1)
+        .with_for_update(skip_locked=True)
+        .scalar_subquery()
+    )
+    job_id = session.execute(
+        update(SolveJob)
+        .where(SolveJob.id == target, claimable)
+        .values(
+            state=JobState.RUNNING.value,
+            attempts=SolveJob.attempts + 1,
+            lease_owner=owner,
+            lease_expires_at=now + timedelta(seconds=lease_seconds),
+            started_at=now,
+        )
+        .returning(SolveJob.id)
+        .execution_options(synchronize_session=False)
+    ).scalar_one_or_none()
+    if job_id is None:
+        return None
+    return session.get(SolveJob, job_id, populate_existing=True)
+
+
+def _owned(job_id: int, owner: str) -> ColumnElement[bool]:
+    return and_(
+        SolveJob.id == job_id,
+        SolveJob.lease_owner == owner,
+        SolveJob.state == JobState.RUNNING.value,
+    )
+
+
+def renew_lease(
+    session: Session, job_id: int, owner: str, lease_seconds: float, now: datetime | None = None
+) -> bool:
+    """Extend `owner`'s lease; False when the job is no longer theirs."""
+    now = now or utcnow()
+    result = session.execute(
+        update(SolveJob)
+        .where(_owned(job_id, owner))
+        .values(lease_expires_at=now + timedelta(seconds=lease_seconds))
+        .execution_options(synchronize_session=False)
+    )
+    return bool(getattr(result, "rowcount", 0))
+
+
+def release_job(session: Session, job_id: int, owner: str, note: str | None = None) -> bool:
+    """Give a job back to the queue without counting the attempt (worker shutting down)."""
+    result = session.execute(
+        update(SolveJob)
+        .where(_owned(job_id, owner))
+        .values(
+            state=JobState.QUEUED.value,
+            attempts=SolveJob.attempts - 1,
+            lease_owner=None,
+            lease_expires_at=None,
+            started_at=None,
+            error=note,
+        )
+        .execution_options(synchronize_session=False)
+    )
+    return bool(getattr(result, "rowcount", 0))
+
+
+def finish_job(
+    session: Session,
+    job_id: int,
+    owner: str,
+    *,
+    error: str | None = None,
+    retry: bool = False,
+    now: datetime | None = None,
+) -> bool:
+    """Mark `owner`'s job failed with `error` (or queued again when `retry`)."""
+    now = now or utcnow()
+    state = JobState.QUEUED if retry else JobState.FAILED
+    result = session.execute(
+        update(SolveJob)
+        .where(_owned(job_id, owner))
+        .values(
+            state=state.value,
+            error=error,
+            finished_at=None if retry else now,
+            lease_owner=None,
+            lease_expires_at=None,
+        )
+        .execution_options(synchronize_session=False)
+    )
+    return bool(getattr(result, "rowcount", 0))
+
+
+def store_policy(
+    session: Session,
+    job: SolveJob,
+    owner: str,
+    result: PolicyResult,
+    encoded: EncodedPolicy,
+    now: datetime | None = None,
+) -> bool:
+    """Mark the job done and store its policy, in the caller's transaction. False (and nothing
+    written) when the lease was lost; the job then belongs to whoever holds it now."""
+    now = now or utcnow()
+    done = session.execute(
+        update(SolveJob)
+        .where(_owned(job.id, owner))
+        .values(
+            state=JobState.DONE.value,
+            finished_at=now,
+            lease_owner=None,
+            lease_expires_at=None,
+            solve_seconds=result.seconds["total"],
+            iterations=result.iterations,
+            residual=result.residual,
+            error=None,
+        )
+        .execution_options(synchronize_session=False)
+    )
+    if not getattr(done, "rowcount", 0):
+        return False
+    if policy_for(session, job.tenant_id, job.spec_hash, job.criterion) is None:
+        session.add(
+            Policy(
+                tenant_id=job.tenant_id,
+                spec_hash=job.spec_hash,
+                criterion=job.criterion,
+                job_id=job.id,
+                arrays=encoded.arrays,
+                layout=encoded.layout,
+                checksum=encoded.checksum,
+                meta=encoded.meta,
+                gain=result.gain,
+                residual=result.residual,
+                error_bound=result.error_bound,
+                iterations=result.iterations,
+                solve_seconds=result.seconds["total"],
+                solved_at=now,
+            )
+        )
+        session.flush()
+    return True
+
+
+def get_job(session: Session, job_id: int) -> SolveJob | None:
+    return session.get(SolveJob, job_id)
+
+
+def jobs_for(
+    session: Session, tenant_id: int, spec_hash: str, criterion: str
+) -> Sequence[SolveJob]:
+    """Every job ever run for one specification and criterion, newest first."""
+    return session.scalars(
+        select(SolveJob)
+        .where(
+            SolveJob.tenant_id == tenant_id,
+            SolveJob.spec_hash == spec_hash,
+            SolveJob.criterion == criterion,
+        )
+        .order_by(SolveJob.id.desc())
+    ).all()
+
+
+def list_jobs(session: Session, state: str | None = None, limit: int = 100) -> Sequence[SolveJob]:
+    query = select(SolveJob).order_by(SolveJob.id.desc()).limit(limit)
+    if state is not None:
+        query = query.where(SolveJob.state == state)
+    return session.scalars(query).all()
+
+
+def retry_job(session: Session, job_id: int) -> SolveJob | None:
+    """Queue a failed job again with fresh attempts; None when it is not failed."""
+    job = session.get(SolveJob, job_id)
+    if job is None or job.state != JobState.FAILED.value:
+        return None
+    job.state = JobState.QUEUED.value
+    job.attempts = 0
+    job.error = None
+    job.finished_at = None
+    try:
+        with session.begin_nested():
+            session.flush()
+    except IntegrityError:
+        return None
+    return job
+
+
+# -- policies ----------------------------------------------------------------------------------
+
+
+def policy_for(session: Session, tenant_id: int, spec_hash: str, criterion: str) -> Policy | None:
+    return session.scalars(
+        select(Policy).where(
+            Policy.tenant_id == tenant_id,
+            Policy.spec_hash == spec_hash,
+            Policy.criterion == criterion,
+        )
+    ).one_or_none()
+
+
+def delete_policy(session: Session, policy_id: int) -> None:
+    session.execute(delete(Policy).where(Policy.id == policy_id))

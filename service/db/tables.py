@@ -1,0 +1,133 @@
+"""Tables: tenants, networks and their versions, solve jobs, and stored policies.
+
+A policy is keyed by (tenant, specification hash, criterion): versions of any network of one
+tenant with identical specifications share it. A job is live while queued or running; a partial
+unique index allows one live job per (tenant, hash, criterion), and a unique constraint one
+policy, so no specification is ever solved into two live policies.
+"""
+
+from __future__ import annotations
+
+from datetime import datetime
+from enum import StrEnum
+
+from sqlalchemy import (
+    Boolean,
+    DateTime,
+    Float,
+    ForeignKey,
+    Index,
+    Integer,
+    LargeBinary,
+    String,
+    Text,
+    UniqueConstraint,
+    text,
+)
+from sqlalchemy.orm import Mapped, mapped_column, relationship
+
+from service.db.base import Base, utcnow
+
+__all__ = ["JobState", "Network", "NetworkVersion", "Policy", "SolveJob", "Tenant"]
+
+_HASH = String(64)
+
+
+class JobState(StrEnum):
+    QUEUED = "queued"
+    RUNNING = "running"
+    DONE = "done"
+    FAILED = "failed"
+
+
+class Tenant(Base):
+    __tablename__ = "tenants"
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    name: Mapped[str] = mapped_column(String(100), unique=True)
+    created_at: Mapped[datetime] = mapped_column(DateTime, default=utcnow)
+
+
+class Network(Base):
+    __tablename__ = "networks"
+    __table_args__ = (UniqueConstraint("tenant_id", "name"),)
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    tenant_id: Mapped[int] = mapped_column(ForeignKey("tenants.id"), index=True)
+    name: Mapped[str] = mapped_column(String(200))
+    archived: Mapped[bool] = mapped_column(Boolean, default=False)
+    created_at: Mapped[datetime] = mapped_column(DateTime, default=utcnow)
+
+    versions: Mapped[list[NetworkVersion]] = relationship(
+        back_populates="network", order_by="NetworkVersion.number"
+    )
+
+
+class NetworkVersion(Base):
+    __tablename__ = "network_versions"
+    __table_args__ = (UniqueConstraint("network_id", "number"),)
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    network_id: Mapped[int] = mapped_column(ForeignKey("networks.id"))
+    number: Mapped[int] = mapped_column(Integer)
+    spec_json: Mapped[str] = mapped_column(Text)
+    spec_hash: Mapped[str] = mapped_column(_HASH, index=True)
+    created_at: Mapped[datetime] = mapped_column(DateTime, default=utcnow)
+
+    network: Mapped[Network] = relationship(back_populates="versions")
+
+
+class SolveJob(Base):
+    __tablename__ = "solve_jobs"
+    __table_args__ = (
+        Index(
+            "uq_solve_jobs_live",
+            "tenant_id",
+            "spec_hash",
+            "criterion",
+            unique=True,
+            sqlite_where=text("state IN ('queued', 'running')"),
+            postgresql_where=text("state IN ('queued', 'running')"),
+        ),
+        Index("ix_solve_jobs_state_id", "state", "id"),
+    )
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    tenant_id: Mapped[int] = mapped_column(ForeignKey("tenants.id"))
+    version_id: Mapped[int] = mapped_column(ForeignKey("network_versions.id"), index=True)
+    spec_hash: Mapped[str] = mapped_column(_HASH)
+    criterion: Mapped[str] = mapped_column(String(16))
+    state: Mapped[str] = mapped_column(String(16), default=JobState.QUEUED)
+    attempts: Mapped[int] = mapped_column(Integer, default=0)
+    lease_owner: Mapped[str | None] = mapped_column(String(200))
+    lease_expires_at: Mapped[datetime | None] = mapped_column(DateTime)
+    created_at: Mapped[datetime] = mapped_column(DateTime, default=utcnow)
+    started_at: Mapped[datetime | None] = mapped_column(DateTime)
+    finished_at: Mapped[datetime | None] = mapped_column(DateTime)
+    solve_seconds: Mapped[float | None] = mapped_column(Float)
+    iterations: Mapped[int | None] = mapped_column(Integer)
+    residual: Mapped[float | None] = mapped_column(Float)
+    error: Mapped[str | None] = mapped_column(Text)
+
+
+class Policy(Base):
+    __tablename__ = "policies"
+    __table_args__ = (UniqueConstraint("tenant_id", "spec_hash", "criterion"),)
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    tenant_id: Mapped[int] = mapped_column(ForeignKey("tenants.id"))
+    spec_hash: Mapped[str] = mapped_column(_HASH)
+    criterion: Mapped[str] = mapped_column(String(16))
+    job_id: Mapped[int | None] = mapped_column(ForeignKey("solve_jobs.id"))
+    # Arrays (action, values, ...) as one zlib-compressed blob; `layout` (JSON) gives each
+    # array's name, dtype, shape and offset, `checksum` the SHA-256 of the stored blob.
+    arrays: Mapped[bytes] = mapped_column(LargeBinary)
+    layout: Mapped[str] = mapped_column(Text)
+    checksum: Mapped[str] = mapped_column(_HASH)
+    meta: Mapped[str] = mapped_column(Text)
+    gain: Mapped[float | None] = mapped_column(Float)
+    residual: Mapped[float] = mapped_column(Float)
+    error_bound: Mapped[float] = mapped_column(Float)
+    iterations: Mapped[int] = mapped_column(Integer)
+    solve_seconds: Mapped[float] = mapped_column(Float)
+    solved_at: Mapped[datetime] = mapped_column(DateTime, default=utcnow)

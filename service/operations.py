@@ -1,0 +1,175 @@
+"""Operator commands behind the CLI: migrate, worker, networks, jobs."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
+from typing import TypeVar
+
+from pydantic import ValidationError
+from sqlalchemy import Engine
+from sqlalchemy.exc import OperationalError
+from sqlalchemy.orm import Session, sessionmaker
+
+from service.db import repository
+from service.db.migrate import DatabaseNotMigratedError, current_revision, require_migrated
+from service.db.migrate import upgrade as upgrade_schema
+from service.db.session import make_engine, make_session_factory
+from service.db.tables import Network
+from service.errors import UsageError
+from service.files import load_network, write_json_atomically
+from service.settings import Settings
+from service.worker import Worker
+
+__all__ = [
+    "DEFAULT_TENANT",
+    "export_network",
+    "import_network",
+    "list_jobs",
+    "list_networks",
+    "migrate",
+    "retry_job",
+    "worker",
+]
+
+DEFAULT_TENANT = "default"
+
+T = TypeVar("T")
+
+
+def load_settings() -> Settings:
+    try:
+        return Settings()
+    except ValidationError as exc:
+        problems = "; ".join(
+            f"STOCKRELAY_{'_'.join(map(str, e['loc'])).upper()}: {e['msg']}" for e in exc.errors()
+        )
+        raise UsageError(f"invalid settings: {problems}") from exc
+
+
+@contextmanager
+def _database(*, migrated: bool = True) -> Iterator[tuple[Settings, Engine]]:
+    settings = load_settings()
+    engine = make_engine(settings.database_url)
+    try:
+        if migrated:
+            require_migrated(engine)
+        yield settings, engine
+    except DatabaseNotMigratedError as exc:
+        raise UsageError(str(exc)) from exc
+    except OperationalError as exc:
+        where = engine.url.render_as_string(hide_password=True)
+        raise UsageError(f"cannot use database {where}: {exc.orig or exc}") from exc
+    finally:
+        engine.dispose()
+
+
+def _in_transaction(engine: Engine, work: Callable[[Session], T]) -> T:
+    with make_session_factory(engine).begin() as session:
+        return work(session)
+
+
+def migrate(_args: argparse.Namespace) -> int:
+    with _database(migrated=False) as (_settings, engine):
+        upgrade_schema(engine)
+        sys.stdout.write(f"database at schema revision {current_revision(engine)}\n")
+    return 0
+
+
+def worker(args: argparse.Namespace) -> int:
+    with _database() as (settings, engine):
+        factory: sessionmaker[Session] = make_session_factory(engine)
+        solver_worker = Worker(settings, factory)
+        solver_worker.install_signal_handlers()
+        solver_worker.run(until_idle=args.until_idle)
+    return 0
+
+
+def import_network(args: argparse.Namespace) -> int:
+    spec = load_network(args.network)
+
+    def work(session: Session) -> str:
+        tenant = repository.get_or_create_tenant(session, args.tenant)
+        network = repository.network_by_name(session, tenant.id, spec.name)
+        if network is None:
+            network, version, jobs = repository.create_network(session, tenant, spec, args.criteria)
+        else:
+            if network.archived:
+                raise UsageError(f"network {network.id} ({spec.name!r}) is archived")
+            version, jobs = repository.add_version(session, network, spec, args.criteria)
+        queued = ", ".join(f"{job.id} ({job.criterion})" for job in jobs) or "none needed"
+        return (
+            f"network {network.id} version {version.number} "
+            f"(sha256 {version.spec_hash[:12]}); jobs queued: {queued}\n"
+        )
+
+    with _database() as (_settings, engine):
+        sys.stdout.write(_in_transaction(engine, work))
+    return 0
+
+
+def export_network(args: argparse.Namespace) -> int:
+    def work(session: Session) -> str:
+        network = session.get(Network, args.id)
+        if network is None:
+            raise UsageError(f"no network {args.id}")
+        versions = repository.versions_newest_first(session, network.id)
+        chosen = [v for v in versions if args.version in (None, v.number)]
+        if not chosen:
+            raise UsageError(f"network {args.id} has no version {args.version}")
+        return chosen[0].spec_json
+
+    with _database() as (_settings, engine):
+        document = json.loads(_in_transaction(engine, work))
+    if args.out is None:
+        sys.stdout.write(json.dumps(document, indent=2) + "\n")
+    else:
+        write_json_atomically(args.out, document)
+    return 0
+
+
+def list_networks(_args: argparse.Namespace) -> int:
+    def work(session: Session) -> list[str]:
+        lines = []
+        for network in repository.list_networks(session):
+            latest = repository.latest_version(session, network.id)
+            lines.append(
+                f"{network.id:>5}  {network.name}  version {latest.number if latest else '-'}"
+                + ("  (archived)" if network.archived else "")
+            )
+        return lines
+
+    with _database() as (_settings, engine):
+        sys.stdout.writelines(line + "\n" for line in _in_transaction(engine, work))
+    return 0
+
+
+def list_jobs(args: argparse.Namespace) -> int:
+    def work(session: Session) -> list[str]:
+        return [
+            f"{job.id:>6}  {job.state:<8} {job.criterion:<10} version {job.version_id:<5} "
+            f"attempts {job.attempts}"
+            + (f"  {job.solve_seconds:.3f} s" if job.solve_seconds is not None else "")
+            + (f"  error: {job.error}" if job.error else "")
+            for job in repository.list_jobs(session, args.state, args.limit)
+        ]
+
+    with _database() as (_settings, engine):
+        sys.stdout.writelines(line + "\n" for line in _in_transaction(engine, work))
+    return 0
+
+
+def retry_job(args: argparse.Namespace) -> int:
+    def work(session: Session) -> None:
+        if repository.retry_job(session, args.id) is None:
+            raise UsageError(
+                f"job {args.id} is not a failed job, or another solve of it is already queued"
+            )
+
+    with _database() as (_settings, engine):
+        _in_transaction(engine, work)
+    sys.stdout.write(f"job {args.id} queued again\n")
+    return 0

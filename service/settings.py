@@ -1,0 +1,49 @@
+"""Settings: the only reader of the environment. Every variable is prefixed `STOCKRELAY_`."""
+
+from __future__ import annotations
+
+from typing import Annotated
+
+from pydantic import Field, field_validator
+from pydantic_settings import BaseSettings, SettingsConfigDict
+
+from solver import SizeLimits
+
+__all__ = ["Settings"]
+
+
+class Settings(BaseSettings):
+    """Validated at start-up; invalid values stop the process with a clear message."""
+
+    model_config = SettingsConfigDict(env_prefix="STOCKRELAY_", frozen=True, extra="ignore")
+
+    database_url: Annotated[
+        str,
+        Field(description="SQLAlchemy URL; postgresql:// URLs use psycopg 3."),
+    ] = "sqlite:///./var/stockrelay.db"
+    lease_seconds: Annotated[
+        float, Field(gt=0, description="How long a worker holds a job without renewing.")
+    ] = 60.0
+    poll_interval: Annotated[
+        float, Field(gt=0, description="Seconds an idle worker waits before looking again.")
+    ] = 1.0
+    max_attempts: Annotated[
+        int, Field(ge=1, description="Claims of one job before it is failed.")
+    ] = 3
+    max_states: Annotated[int, Field(ge=1)] = SizeLimits.max_states
+    max_pairs: Annotated[int, Field(ge=1)] = SizeLimits.max_pairs
+    policy_cache_size: Annotated[
+        int, Field(ge=0, description="Decoded policies kept in memory per process.")
+    ] = 64
+
+    @field_validator("database_url")
+    @classmethod
+    def _psycopg_for_postgresql(cls, url: str) -> str:
+        for prefix in ("postgresql://", "postgres://"):
+            if url.startswith(prefix):
+                return "postgresql+psycopg://" + url[len(prefix) :]
+        return url
+
+    @property
+    def size_limits(self) -> SizeLimits:
+        return SizeLimits(max_states=self.max_states, max_pairs=self.max_pairs)

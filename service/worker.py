@@ -1,0 +1,207 @@
+"""The solve worker: claims queued jobs, solves them, and stores the policies.
+
+One job at a time per worker; run more workers (processes or machines) against one PostgreSQL to
+scale out. A worker holds a lease on its job and renews it every third of the lease while the
+solver runs in a background thread; if the worker dies, the lease expires and another worker
+claims the job again. Storing the policy and marking the job done happen in one transaction, and
+only while the lease is still held.
+
+On SIGTERM or SIGINT the worker stops claiming, lets the current solve finish within a grace
+period, and otherwise gives the job back to the queue before exiting.
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+import signal
+import socket
+import threading
+import time
+import uuid
+from dataclasses import dataclass
+from types import FrameType
+
+from pydantic import ValidationError
+from sqlalchemy.orm import Session, sessionmaker
+
+from service.codec import encode_policy
+from service.db import repository
+from service.db.tables import NetworkVersion
+from service.settings import Settings
+from solver import NetworkSpec, PolicyResult, SolverError, solve_network
+
+__all__ = ["Worker"]
+
+log = logging.getLogger(__name__)
+
+# Longest wait for a running solve after a stop request before the job is handed back.
+_SHUTDOWN_GRACE_SECONDS = 10.0
+
+
+@dataclass(frozen=True)
+class _Claimed:
+    job_id: int
+    attempts: int
+    criterion: str
+    spec_json: str
+    version_id: int
+
+
+class _Solve(threading.Thread):
+    """Runs one solve; daemon, so a worker that gives up on it can still exit."""
+
+    def __init__(self, spec: NetworkSpec, criterion: str, settings: Settings) -> None:
+        super().__init__(daemon=True, name="stockrelay-solve")
+        self.spec, self.criterion, self.settings = spec, criterion, settings
+        self.result: PolicyResult | None = None
+        self.error: BaseException | None = None
+
+    def run(self) -> None:
+        try:
+            self.result = solve_network(
+                self.spec,
+                criterion="average" if self.criterion == "average" else "discounted",
+                limits=self.settings.size_limits,
+            )
+        except BaseException as exc:  # handed to the worker thread, which decides
+            self.error = exc
+
+
+class Worker:
+    def __init__(
+        self,
+        settings: Settings,
+        session_factory: sessionmaker[Session],
+        owner: str | None = None,
+    ) -> None:
+        self.settings = settings
+        self.sessions = session_factory
+        self.owner = owner or f"{socket.gethostname()}:{os.getpid()}:{uuid.uuid4().hex[:8]}"
+        self.stopping = threading.Event()
+
+    def install_signal_handlers(self) -> None:
+        def request_stop(signum: int, _frame: FrameType | None) -> None:
+            log.info("worker %s: %s received, stopping", self.owner, signal.Signals(signum).name)
+            self.stopping.set()
+
+        signal.signal(signal.SIGTERM, request_stop)
+        signal.signal(signal.SIGINT, request_stop)
+
+    def run(self, *, until_idle: bool = False) -> int:
+        """Work until stopped (or, with `until_idle`, until the queue is empty). Returns the
+        number of jobs handled."""
+        handled = 0
+        log.info("worker %s started", self.owner)
+        while not self.stopping.is_set():
+            if self.run_one():
+                handled += 1
+            elif until_idle:
+                break
+            else:
+                self.stopping.wait(self.settings.poll_interval)
+        log.info("worker %s stopped after %d jobs", self.owner, handled)
+        return handled
+
+    def run_one(self) -> bool:
+        """Claim and handle one job; False when none was claimable."""
+        claimed = self._claim()
+        if claimed is None:
+            return False
+        self._handle(claimed)
+        return True
+
+    def _claim(self) -> _Claimed | None:
+        with self.sessions.begin() as session:
+            failed = repository.fail_exhausted_jobs(session, self.settings.max_attempts)
+            if failed:
+                log.warning("failed %d jobs whose workers stopped on their last attempt", failed)
+            job = repository.claim_job(
+                session, self.owner, self.settings.lease_seconds, self.settings.max_attempts
+            )
+            if job is None:
+                return None
+            version = session.get_one(NetworkVersion, job.version_id)
+            return _Claimed(job.id, job.attempts, job.criterion, version.spec_json, version.id)
+
+    def _handle(self, claimed: _Claimed) -> None:
+        log.info(
+            "job %d: solving version %d (%s), attempt %d",
+            claimed.job_id,
+            claimed.version_id,
+            claimed.criterion,
+            claimed.attempts,
+        )
+        try:
+            spec = NetworkSpec.model_validate_json(claimed.spec_json)
+        except ValidationError as exc:
+            self._fail(claimed, f"stored specification is invalid: {exc}")
+            return
+
+        solve = _Solve(spec, claimed.criterion, self.settings)
+        solve.start()
+        if not self._wait(claimed, solve):
+            return
+        if solve.error is not None:
+            if isinstance(solve.error, SolverError | ValueError):
+                # The same input fails the same way: no point trying again.
+                self._fail(claimed, str(solve.error))
+            else:
+                self._fail(
+                    claimed,
+                    f"{type(solve.error).__name__}: {solve.error}",
+                    retry=claimed.attempts < self.settings.max_attempts,
+                )
+            return
+        assert solve.result is not None
+        self._store(claimed, solve.result)
+
+    def _wait(self, claimed: _Claimed, solve: _Solve) -> bool:
+        """Renew the lease until the solve ends. False when the job was handed back or lost."""
+        renew_every = self.settings.lease_seconds / 3
+        stop_requested_at: float | None = None
+        while True:
+            solve.join(timeout=renew_every if stop_requested_at is None else 0.1)
+            if not solve.is_alive():
+                return True
+            if self.stopping.is_set():
+                stop_requested_at = stop_requested_at or time.monotonic()
+                grace = min(_SHUTDOWN_GRACE_SECONDS, self.settings.lease_seconds / 2)
+                if time.monotonic() - stop_requested_at > grace:
+                    with self.sessions.begin() as session:
+                        repository.release_job(
+                            session, claimed.job_id, self.owner, "handed back at shutdown"
+                        )
+                    log.info("job %d: handed back to the queue at shutdown", claimed.job_id)
+                    return False
+                continue
+            with self.sessions.begin() as session:
+                held = repository.renew_lease(
+                    session, claimed.job_id, self.owner, self.settings.lease_seconds
+                )
+            if not held:
+                log.warning("job %d: lease lost; leaving it to its new owner", claimed.job_id)
+                return False
+
+    def _fail(self, claimed: _Claimed, error: str, *, retry: bool = False) -> None:
+        with self.sessions.begin() as session:
+            repository.finish_job(session, claimed.job_id, self.owner, error=error, retry=retry)
+        log.warning("job %d: %s: %s", claimed.job_id, "will retry" if retry else "failed", error)
+
+    def _store(self, claimed: _Claimed, result: PolicyResult) -> None:
+        encoded = encode_policy(result)
+        with self.sessions.begin() as session:
+            job = repository.get_job(session, claimed.job_id)
+            stored = job is not None and repository.store_policy(
+                session, job, self.owner, result, encoded
+            )
+        if stored:
+            log.info(
+                "job %d: done in %.3f s, %d iterations, residual %.3g",
+                claimed.job_id,
+                result.seconds["total"],
+                result.iterations,
+                result.residual,
+            )
+        else:
+            log.warning("job %d: lease lost before the policy was stored", claimed.job_id)
