@@ -18,9 +18,26 @@ from numpy.typing import NDArray
 from solver.bellman import apply_along_axes
 from solver.model import TransferModel
 
-__all__ = ["unichain_witness"]
+__all__ = ["common_successor", "unichain_witness"]
 
 _MIXING_STEPS = 64
+
+
+def common_successor(model: TransferModel) -> tuple[int, ...] | None:
+    """A stock that every post-move stock reaches in one day with positive probability, or None.
+
+    When it exists, every policy's chain reaches it from every state, so every policy is
+    unichain (and aperiodic): one check per model instead of one per policy. It exists whenever
+    each location has a next stock with positive probability from every post-move stock, e.g.
+    under Poisson or negative binomial demand, which can empty any stockroom.
+    """
+    stock = []
+    for kernel in model.kernels:
+        columns = np.flatnonzero(np.all(kernel > 0, axis=0))
+        if columns.size == 0:
+            return None
+        stock.append(int(columns[0]))
+    return tuple(stock)
 
 
 def unichain_witness(model: TransferModel, post_move: NDArray[np.int64]) -> tuple[int, int] | None:

@@ -28,7 +28,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from solver.bellman import ActionTable, greedy, post_move_values
-from solver.chains import unichain_witness
+from solver.chains import common_successor, unichain_witness
 from solver.errors import NotUnichainError
 from solver.evaluation import (
     EvaluationMethod,
@@ -90,12 +90,14 @@ def solve_policy_iteration(
 
     if criterion == "average":
         beta, scale, method = 1.0, reward_scale, "krylov"
+        every_policy_unichain = common_successor(model) is not None
 
         def evaluate(
             chain: PolicyChain, v0: NDArray[np.float64], tolerance: float, iteration: int
         ) -> NDArray[np.float64]:
             nonlocal gain
-            _require_unichain(model, chain.post_move, iteration)
+            if not every_policy_unichain:
+                _require_unichain(model, chain.post_move, iteration)
             gain, bias, _ = evaluate_average(chain, gain0=gain, bias0=v0, tolerance=tolerance)
             return bias
 
