@@ -117,10 +117,14 @@ def _load(
         result = decode_policy(row.arrays, row.layout, row.checksum, row.meta)
     except CorruptPolicyError as exc:
         log.error("policy %d of network %d is corrupt (%s); solving again", row.id, network.id, exc)
-        repository.delete_policy(session, row.id)
-        repository.enqueue_solves(session, network.tenant_id, version, [criterion])
-        # Keep the repair even though this request will not be served from it.
-        session.commit()
+        # Repair in a transaction of its own, so that it is kept whatever becomes of the
+        # caller's (which usually ends in a rollback: this request cannot be served from it).
+        with Session(session.get_bind()) as repair, repair.begin():
+            repository.delete_policy(repair, row.id)
+            repository.enqueue_solves(
+                repair, network.tenant_id, repair.get_one(NetworkVersion, version.id), [criterion]
+            )
+        session.expire_all()
         return None
     return _Entry(result, row.solved_at)
 

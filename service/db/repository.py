@@ -195,7 +195,6 @@ def fail_exhausted_jobs(session: Session, max_attempts: int, now: datetime | Non
             lease_owner=None,
             lease_expires_at=None,
         )
-        .execution_options(synchronize_session=False)
     )
     return int(getattr(result, "rowcount", 0) or 0)
 
@@ -229,7 +228,6 @@ def claim_job(
             started_at=now,
         )
         .returning(SolveJob.id)
-        .execution_options(synchronize_session=False)
     ).scalar_one_or_none()
     if job_id is None:
         return None
@@ -253,7 +251,6 @@ def renew_lease(
         update(SolveJob)
         .where(_owned(job_id, owner))
         .values(lease_expires_at=now + timedelta(seconds=lease_seconds))
-        .execution_options(synchronize_session=False)
     )
     return bool(getattr(result, "rowcount", 0))
 
@@ -271,7 +268,6 @@ def release_job(session: Session, job_id: int, owner: str, note: str | None = No
             started_at=None,
             error=note,
         )
-        .execution_options(synchronize_session=False)
     )
     return bool(getattr(result, "rowcount", 0))
 
@@ -298,7 +294,6 @@ def finish_job(
             lease_owner=None,
             lease_expires_at=None,
         )
-        .execution_options(synchronize_session=False)
     )
     return bool(getattr(result, "rowcount", 0))
 
@@ -327,7 +322,6 @@ def store_policy(
             residual=result.residual,
             error=None,
         )
-        .execution_options(synchronize_session=False)
     )
     if not getattr(done, "rowcount", 0):
         return False
