@@ -101,12 +101,22 @@ def _parser() -> argparse.ArgumentParser:
     job_commands = jobs.add_subparsers(dest="action", required=True, metavar="ACTION")
     list_jobs = job_commands.add_parser("list", help="newest jobs first")
     list_jobs.add_argument("--state", choices=["queued", "running", "done", "failed"])
-    list_jobs.add_argument("--limit", type=int, default=50)
+    list_jobs.add_argument("--limit", type=_positive, default=50)
     list_jobs.set_defaults(handler=operations.list_jobs)
     retry = job_commands.add_parser("retry", help="queue a failed job again")
     retry.add_argument("id", type=int)
     retry.set_defaults(handler=operations.retry_job)
     return parser
+
+
+def _positive(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        value = 0
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"expected a whole number >= 1, got {text!r}")
+    return value
 
 
 def _criteria(text: str) -> list[str]:

@@ -24,6 +24,7 @@ from types import FrameType
 
 from pydantic import ValidationError
 from sqlalchemy.orm import Session, sessionmaker
+from threadpoolctl import threadpool_limits
 
 from service.codec import encode_policy
 from service.db import repository
@@ -37,6 +38,8 @@ log = logging.getLogger(__name__)
 
 # Longest wait for a running solve after a stop request before the job is handed back.
 _SHUTDOWN_GRACE_SECONDS = 10.0
+# How often a worker waiting on a solve looks at its stop flag.
+_WAIT_SLICE_SECONDS = 0.1
 
 
 @dataclass(frozen=True)
@@ -92,6 +95,8 @@ class Worker:
         """Work until stopped (or, with `until_idle`, until the queue is empty). Returns the
         number of jobs handled."""
         handled = 0
+        # Scale-out is by processes: BLAS threads would only compete with the other workers.
+        threadpool_limits(limits=1, user_api="blas")
         log.info("worker %s started", self.owner)
         while not self.stopping.is_set():
             if self.run_one():
@@ -157,28 +162,35 @@ class Worker:
         self._store(claimed, solve.result)
 
     def _wait(self, claimed: _Claimed, solve: _Solve) -> bool:
-        """Renew the lease until the solve ends. False when the job was handed back or lost."""
+        """Renew the lease until the solve ends. False when the job was handed back or lost.
+
+        Waits in short slices so that a stop request is noticed at once, not at the next
+        renewal."""
         renew_every = self.settings.lease_seconds / 3
+        grace = min(_SHUTDOWN_GRACE_SECONDS, self.settings.lease_seconds / 2)
+        renewed_at = time.monotonic()
         stop_requested_at: float | None = None
         while True:
-            solve.join(timeout=renew_every if stop_requested_at is None else 0.1)
+            solve.join(timeout=min(_WAIT_SLICE_SECONDS, renew_every))
             if not solve.is_alive():
                 return True
+            now = time.monotonic()
             if self.stopping.is_set():
-                stop_requested_at = stop_requested_at or time.monotonic()
-                grace = min(_SHUTDOWN_GRACE_SECONDS, self.settings.lease_seconds / 2)
-                if time.monotonic() - stop_requested_at > grace:
+                stop_requested_at = stop_requested_at or now
+                if now - stop_requested_at > grace:
                     with self.sessions.begin() as session:
                         repository.release_job(
                             session, claimed.job_id, self.owner, "handed back at shutdown"
                         )
                     log.info("job %d: handed back to the queue at shutdown", claimed.job_id)
                     return False
+            if now - renewed_at < renew_every:
                 continue
             with self.sessions.begin() as session:
                 held = repository.renew_lease(
                     session, claimed.job_id, self.owner, self.settings.lease_seconds
                 )
+            renewed_at = now
             if not held:
                 log.warning("job %d: lease lost; leaving it to its new owner", claimed.job_id)
                 return False

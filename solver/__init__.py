@@ -3,6 +3,8 @@ as Markov decision processes. Pure numpy/scipy; no I/O."""
 
 from __future__ import annotations
 
+import dataclasses
+import time
 from typing import Literal
 
 from solver.build import SizeLimits, build_transfer_model
@@ -48,20 +50,15 @@ def solve_network(
     limits: SizeLimits | None = None,
 ) -> PolicyResult:
     """Build the model of `spec` and solve it; the build time is added to `seconds`."""
-    import time
-
+    if method != "howard" and criterion != "discounted":
+        raise ValueError(f"method {method!r} solves the discounted criterion only")
     start = time.perf_counter()
     model = build_transfer_model(spec, limits)
     built = time.perf_counter() - start
-    if method != "howard" and criterion != "discounted":
-        raise ValueError(f"method {method!r} solves the discounted criterion only")
     if method == "howard":
         result = solve_policy_iteration(model, criterion=criterion)
     else:
         sweeps = 0 if method == "value-iteration" else 20
         result = solve_modified_policy_iteration(model, sweeps=sweeps)
-    seconds = dict(result.seconds)
-    seconds["build"] = built
-    seconds["total"] = seconds.get("total", 0.0) + built
-    object.__setattr__(result, "seconds", seconds)
-    return result
+    seconds = {**result.seconds, "build": built, "total": result.seconds["total"] + built}
+    return dataclasses.replace(result, seconds=seconds)

@@ -128,7 +128,8 @@ class PolicyResult:
         q -= self.gain or 0.0
 
         chosen = int(self.action[index])
-        position = {int(k): p for p, k in enumerate(feasible)}
+        # `feasible` is sorted and always holds row 0 (moving nothing) and the chosen row.
+        position = {k: int(np.searchsorted(feasible, k)) for k in (0, chosen)}
         others = [p for p in np.argsort(-q, kind="stable") if feasible[p] != chosen]
         alternatives = tuple(
             Alternative(tuple(int(x) for x in self.flows[feasible[p]]), float(q[p]))

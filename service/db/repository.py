@@ -167,10 +167,16 @@ def enqueue_solves(
 # -- the job queue -----------------------------------------------------------------------------
 
 
-def _claimable(now: datetime) -> ColumnElement[bool]:
+def _claimable(now: datetime, max_attempts: int) -> ColumnElement[bool]:
+    """Queued, or running under an expired lease with attempts left (a job out of attempts is
+    failed by fail_exhausted_jobs instead)."""
     return or_(
         SolveJob.state == JobState.QUEUED.value,
-        and_(SolveJob.state == JobState.RUNNING.value, SolveJob.lease_expires_at < now),
+        and_(
+            SolveJob.state == JobState.RUNNING.value,
+            SolveJob.lease_expires_at < now,
+            SolveJob.attempts < max_attempts,
+        ),
     )
 
 
@@ -187,10 +193,10 @@ def fail_exhausted_jobs(session: Session, max_attempts: int, now: datetime | Non
         .values(
             state=JobState.FAILED.value,
             finished_at=now,
-            error=literal("the worker solving it stopped before finishing, ")
+            error=literal("no attempts left: the worker solving it stopped before finishing (")
             + cast(SolveJob.attempts, String)
-            + literal(" times (last: ")
-            + func.coalesce(SolveJob.lease_owner, "unknown")
+            + literal(" attempts, last by ")
+            + func.coalesce(SolveJob.lease_owner, "an unknown worker")
             + literal(")"),
             lease_owner=None,
             lease_expires_at=None,
@@ -208,10 +214,10 @@ def claim_job(
 ) -> SolveJob | None:
     """Take the oldest claimable job and lease it to `owner`; None when there is none."""
     now = now or utcnow()
-    claimable = _claimable(now)
+    claimable = _claimable(now, max_attempts)
     target = (
         select(SolveJob.id)
-        .where(claimable, SolveJob.attempts < max_attempts)
+        .where(claimable)
         .order_by(SolveJob.id)
         .limit(1)
         .with_for_update(skip_locked=True)

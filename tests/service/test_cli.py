@@ -129,3 +129,11 @@ def test_console_script_runs_as_installed(tmp_path: Path) -> None:
         [sys.executable, "-m", "service.cli", "solve"], capture_output=True, text=True, check=False
     )
     assert usage.returncode == 2
+
+
+@pytest.mark.parametrize("limit", ["0", "-1", "many"])
+def test_job_list_limit_must_be_positive(limit: str, capsys: pytest.CaptureFixture[str]) -> None:
+    with pytest.raises(SystemExit) as info:
+        main(["jobs", "list", "--limit", limit])
+    assert info.value.code == 2
+    assert "expected a whole number >= 1" in capsys.readouterr().err

@@ -182,3 +182,14 @@ def test_jobs_are_listed_newest_first_by_state(sessions: sessionmaker[Session], 
         assert [j.state for j in listed] == [state]
         everything = repository.list_jobs(session)
         assert [j.id for j in everything] == sorted((j.id for j in everything), reverse=True)
+
+
+def test_a_queued_job_is_claimable_whatever_its_attempts(sessions: sessionmaker[Session]) -> None:
+    # E.g. after STOCKRELAY_MAX_ATTEMPTS was lowered: the job must not sit in the queue forever.
+    queue_two(sessions)
+    with sessions.begin() as session:
+        for job in session.scalars(select(SolveJob)):
+            job.attempts = 5
+    with sessions.begin() as session:
+        job = claim(session, "worker-a", attempts=3)
+        assert job is not None and job.attempts == 6

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import threading
+import time
 from collections.abc import Callable
 from typing import Any
 
@@ -131,14 +132,18 @@ def test_stop_request_hands_a_running_job_back(
 
     patch_solve(monkeypatch, stuck)
     queue(sessions, ["discounted"])
-    worker = make_worker(engine, sessions, lease_seconds=0.4)
+    # Lease 6 s: renewals every 2 s, 3 s of grace after a stop request.
+    worker = make_worker(engine, sessions, lease_seconds=6.0)
     runner = threading.Thread(target=worker.run)
     runner.start()
     try:
         assert started.wait(timeout=10)
+        stopped_at = time.monotonic()
         worker.stopping.set()
-        runner.join(timeout=5)
+        runner.join(timeout=10)
         assert not runner.is_alive()
+        # The grace period starts at the request, not at the next lease renewal.
+        assert time.monotonic() - stopped_at < 3.0 + 0.6
     finally:
         release.set()
     [job] = jobs(sessions)

@@ -1,0 +1,118 @@
+"""Migrations: up to head and back down on an empty database, models matching the revisions, the
+start-up check, and the `stockrelay migrate` command; on SQLite and PostgreSQL."""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+
+import pytest
+from alembic.autogenerate import compare_metadata
+from alembic.runtime.migration import MigrationContext
+from sqlalchemy import Engine, inspect
+
+from service.cli import main
+from service.db import tables  # noqa: F401  (registers the tables on Base.metadata)
+from service.db.base import Base
+from service.db.migrate import (
+    DatabaseNotMigratedError,
+    current_revision,
+    downgrade,
+    head_revision,
+    require_migrated,
+    upgrade,
+)
+from service.db.session import make_engine
+
+TABLES = {"tenants", "networks", "network_versions", "solve_jobs", "policies"}
+
+
+@pytest.fixture
+def empty_engine(database_url: str) -> Iterator[Engine]:
+    """An engine on an empty, un-migrated database."""
+    engine = make_engine(database_url)
+    yield engine
+    engine.dispose()
+
+
+def table_names(engine: Engine) -> set[str]:
+    return set(inspect(engine).get_table_names())
+
+
+def test_upgrade_downgrade_upgrade_round_trip(empty_engine: Engine) -> None:
+    assert table_names(empty_engine) == set()
+    head = head_revision(empty_engine)
+    assert head is not None
+
+    upgrade(empty_engine)
+    assert table_names(empty_engine) == TABLES | {"alembic_version"}
+    assert current_revision(empty_engine) == head
+    assert {index["name"] for index in inspect(empty_engine).get_indexes("solve_jobs")} >= {
+        "uq_solve_jobs_live",
+        "ix_solve_jobs_state_id",
+    }
+
+    downgrade(empty_engine, "base")
+    assert table_names(empty_engine) <= {"alembic_version"}
+    assert current_revision(empty_engine) is None
+
+    upgrade(empty_engine)
+    assert table_names(empty_engine) == TABLES | {"alembic_version"}
+    assert current_revision(empty_engine) == head
+
+
+def test_models_match_the_migrations(empty_engine: Engine) -> None:
+    upgrade(empty_engine)
+    with empty_engine.connect() as connection:
+        differences = compare_metadata(MigrationContext.configure(connection), Base.metadata)
+    assert differences == []
+
+
+def test_require_migrated_refuses_an_empty_database_until_upgraded(empty_engine: Engine) -> None:
+    with pytest.raises(DatabaseNotMigratedError, match="stockrelay migrate") as raised:
+        require_migrated(empty_engine)
+    assert "none (empty)" in str(raised.value)
+
+    upgrade(empty_engine)
+    require_migrated(empty_engine)
+
+    downgrade(empty_engine, "base")
+    with pytest.raises(DatabaseNotMigratedError, match="stockrelay migrate"):
+        require_migrated(empty_engine)
+
+
+def test_cli_migrate_prints_the_revision_and_is_idempotent(
+    database_url: str,
+    empty_engine: Engine,
+    monkeypatch: pytest.MonkeyPatch,
+    capsys: pytest.CaptureFixture[str],
+) -> None:
+    monkeypatch.setenv("STOCKRELAY_DATABASE_URL", database_url)
+    head = head_revision(empty_engine)
+
+    for _ in range(2):
+        code = main(["migrate"])
+        captured = capsys.readouterr()
+        assert (code, captured.err) == (0, "")
+        assert captured.out == f"database at schema revision {head}\n"
+
+    assert current_revision(empty_engine) == head
+    assert table_names(empty_engine) == TABLES | {"alembic_version"}
+
+
+def test_cli_worker_refuses_an_unmigrated_database(
+    database_url: str,
+    empty_engine: Engine,
+    monkeypatch: pytest.MonkeyPatch,
+    capsys: pytest.CaptureFixture[str],
+) -> None:
+    monkeypatch.setenv("STOCKRELAY_DATABASE_URL", database_url)
+
+    code = main(["worker", "--until-idle"])
+    captured = capsys.readouterr()
+
+    assert code == 2
+    assert captured.out == ""
+    assert captured.err.count("\n") == 1
+    assert captured.err.startswith("stockrelay: error: ")
+    assert "run `stockrelay migrate`" in captured.err
+    assert table_names(empty_engine) == set()
