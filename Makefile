@@ -3,7 +3,7 @@ PYTHON ?= python3
 VENV ?= .venv
 BIN := $(VENV)/bin
 
-.PHONY: run test demo lint bench clean
+.PHONY: run test demo lint bench bench-store clean
 
 $(BIN)/python:
 	$(PYTHON) -m venv $(VENV)
@@ -34,6 +34,9 @@ run: demo
 
 bench: $(VENV)/.installed-test
 	$(BIN)/python benchmarks/solve.py
+
+bench-store: $(VENV)/.installed-test
+	$(BIN)/python benchmarks/store.py
 
 clean:
 	rm -rf $(VENV) .pytest_cache .mypy_cache .ruff_cache
