@@ -65,6 +65,15 @@ def _parser() -> argparse.ArgumentParser:
     )
     migrate.set_defaults(handler=operations.migrate)
 
+    serve = commands.add_parser("serve", help="run the HTTP API (uvicorn) until Ctrl-C")
+    serve.add_argument("--host", default="127.0.0.1")
+    serve.add_argument("--port", type=_positive, default=8000)
+    serve.set_defaults(handler=operations.serve)
+
+    openapi = commands.add_parser("openapi", help="write the API's OpenAPI document")
+    openapi.add_argument("--out", type=Path, metavar="openapi.json", help="default: stdout")
+    openapi.set_defaults(handler=operations.write_openapi)
+
     worker = commands.add_parser("worker", help="run a solve worker until SIGTERM or Ctrl-C")
     worker.add_argument(
         "--until-idle", action="store_true", help="exit once no job is left to claim"
@@ -85,6 +94,11 @@ def _parser() -> argparse.ArgumentParser:
         default="discounted",
         type=_criteria,
         help="comma-separated: discounted, average (default: discounted)",
+    )
+    import_.add_argument(
+        "--skip-unchanged",
+        action="store_true",
+        help="add no version when the specification equals the current one",
     )
     import_.set_defaults(handler=operations.import_network)
     export = network_commands.add_parser(

@@ -7,7 +7,7 @@ import json
 import sys
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
-from typing import TypeVar
+from typing import Any, TypeVar
 
 from pydantic import ValidationError
 from sqlalchemy import Engine
@@ -32,6 +32,8 @@ __all__ = [
     "list_networks",
     "migrate",
     "retry_job",
+    "serve",
+    "write_openapi",
     "worker",
 ]
 
@@ -79,6 +81,34 @@ def migrate(_args: argparse.Namespace) -> int:
     return 0
 
 
+def serve(args: argparse.Namespace) -> int:
+    import uvicorn
+
+    from service.main import create_app
+
+    with _database() as (settings, _engine):
+        pass  # refuse to start, with one line, on a database that is not migrated
+    uvicorn.run(create_app(settings), host=args.host, port=args.port, log_level="info")
+    return 0
+
+
+def openapi_document() -> dict[str, Any]:
+    """The OpenAPI document of the app, as committed in openapi/openapi.json."""
+    from service.main import create_app
+
+    document: dict[str, Any] = create_app(Settings()).openapi()
+    return document
+
+
+def write_openapi(args: argparse.Namespace) -> int:
+    text = json.dumps(openapi_document(), indent=2, sort_keys=True) + "\n"
+    if args.out is None:
+        sys.stdout.write(text)
+    else:
+        args.out.write_text(text, encoding="utf-8")
+    return 0
+
+
 def worker(args: argparse.Namespace) -> int:
     with _database() as (settings, engine):
         factory: sessionmaker[Session] = make_session_factory(engine)
@@ -99,6 +129,13 @@ def import_network(args: argparse.Namespace) -> int:
         else:
             if network.archived:
                 raise UsageError(f"network {network.id} ({spec.name!r}) is archived")
+            current = repository.latest_version(session, network.id)
+            if (
+                args.skip_unchanged
+                and current is not None
+                and current.spec_hash == repository.canonical_spec(spec)[1]
+            ):
+                return f"network {network.id} version {current.number} unchanged\n"
             version, jobs = repository.add_version(session, network, spec, args.criteria)
         queued = ", ".join(f"{job.id} ({job.criterion})" for job in jobs) or "none needed"
         return (

@@ -25,6 +25,7 @@ __all__ = [
     "PolicyCache",
     "PolicyNotReadyError",
     "ServedPolicy",
+    "StockProblemsError",
     "load_policy",
     "recommend",
     "stock_vector",
@@ -150,19 +151,29 @@ def _not_ready(
     )
 
 
+class StockProblemsError(InvalidStockError):
+    """Closing stock that does not fit the network; `problems` pairs each offending location
+    with what is wrong there."""
+
+    def __init__(self, problems: list[tuple[str, str]]) -> None:
+        super().__init__("; ".join(f"{location}: {what}" for location, what in problems))
+        self.problems = problems
+
+
 def stock_vector(result: PolicyResult, stock: Mapping[str, int]) -> list[int]:
-    """Closing stock by location id, in network order; InvalidStockError naming every missing
-    or unknown location."""
+    """Closing stock by location id, in network order; StockProblemsError naming every missing,
+    unknown or out-of-range location."""
     ids = result.location_ids
-    missing = [location for location in ids if location not in stock]
-    unknown = sorted(set(stock) - set(ids))
-    problems = []
-    if missing:
-        problems.append("missing " + ", ".join(repr(m) for m in missing))
-    if unknown:
-        problems.append("unknown " + ", ".join(repr(u) for u in unknown))
+    problems = [(location, "missing") for location in ids if location not in stock]
+    problems += [
+        (location, "unknown location") for location in stock if location not in result.location_ids
+    ]
+    for location, capacity in zip(ids, result.capacities, strict=True):
+        units = stock.get(location)
+        if units is not None and not 0 <= units <= capacity:
+            problems.append((location, f"{units} units is outside 0..{capacity}"))
     if problems:
-        raise InvalidStockError("stock by location: " + "; ".join(problems))
+        raise StockProblemsError(problems)
     return [stock[location] for location in ids]
 
 

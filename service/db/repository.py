@@ -373,10 +373,15 @@ def jobs_for(
     ).all()
 
 
-def list_jobs(session: Session, state: str | None = None, limit: int = 100) -> Sequence[SolveJob]:
+def list_jobs(
+    session: Session, state: str | None = None, limit: int = 100, *, tenant_id: int | None = None
+) -> Sequence[SolveJob]:
+    """Newest first, optionally of one state and one tenant."""
     query = select(SolveJob).order_by(SolveJob.id.desc()).limit(limit)
     if state is not None:
         query = query.where(SolveJob.state == state)
+    if tenant_id is not None:
+        query = query.where(SolveJob.tenant_id == tenant_id)
     return session.scalars(query).all()
 
 

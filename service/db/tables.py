@@ -8,11 +8,12 @@ policy, so no specification is ever solved into two live policies.
 
 from __future__ import annotations
 
-from datetime import datetime
+from datetime import date, datetime
 from enum import StrEnum
 
 from sqlalchemy import (
     Boolean,
+    Date,
     DateTime,
     Float,
     ForeignKey,
@@ -28,7 +29,16 @@ from sqlalchemy.orm import Mapped, mapped_column, relationship
 
 from service.db.base import Base, utcnow
 
-__all__ = ["JobState", "Network", "NetworkVersion", "Policy", "SolveJob", "Tenant"]
+__all__ = [
+    "ClosingCount",
+    "Instruction",
+    "JobState",
+    "Network",
+    "NetworkVersion",
+    "Policy",
+    "SolveJob",
+    "Tenant",
+]
 
 _HASH = String(64)
 
@@ -131,3 +141,34 @@ class Policy(Base):
     iterations: Mapped[int] = mapped_column(Integer)
     solve_seconds: Mapped[float] = mapped_column(Float)
     solved_at: Mapped[datetime] = mapped_column(DateTime, default=utcnow)
+
+
+class ClosingCount(Base):
+    """Closing stock reported by one location for one business day; a repeat replaces it."""
+
+    __tablename__ = "closing_counts"
+    __table_args__ = (UniqueConstraint("network_id", "location_id", "business_date"),)
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    network_id: Mapped[int] = mapped_column(ForeignKey("networks.id"))
+    location_id: Mapped[str] = mapped_column(String(64))
+    business_date: Mapped[date] = mapped_column(Date)
+    units: Mapped[int] = mapped_column(Integer)
+    reported_at: Mapped[datetime] = mapped_column(DateTime, default=utcnow)
+
+
+class Instruction(Base):
+    """Tonight's moves for a whole network on one business day, computed once from the full
+    closing stock and kept, so every location reads the same answer."""
+
+    __tablename__ = "instructions"
+    __table_args__ = (UniqueConstraint("network_id", "business_date"),)
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    network_id: Mapped[int] = mapped_column(ForeignKey("networks.id"))
+    business_date: Mapped[date] = mapped_column(Date)
+    version_id: Mapped[int] = mapped_column(ForeignKey("network_versions.id"))
+    criterion: Mapped[str] = mapped_column(String(16))
+    # JSON: {"stock": {location: units}, "transfers": [{"from", "to", "units", "unit_cost"}]}
+    plan: Mapped[str] = mapped_column(Text)
+    computed_at: Mapped[datetime] = mapped_column(DateTime, default=utcnow)

@@ -23,7 +23,15 @@ from service.db.migrate import (
 )
 from service.db.session import make_engine
 
-TABLES = {"tenants", "networks", "network_versions", "solve_jobs", "policies"}
+TABLES = {
+    "tenants",
+    "networks",
+    "network_versions",
+    "solve_jobs",
+    "policies",
+    "closing_counts",
+    "instructions",
+}
 
 
 @pytest.fixture

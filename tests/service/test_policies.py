@@ -103,9 +103,9 @@ def test_a_corrupt_policy_is_never_served_and_is_solved_again(
 @pytest.mark.parametrize(
     ("stock", "message"),
     [
-        ({"riverside": 3}, "missing 'hilltop'"),
-        ({"riverside": 3, "hilltop": 1, "harbour": 2}, "unknown 'harbour'"),
-        ({"riverside": 3, "hilltop": 10}, "outside 0..9"),
+        ({"riverside": 3}, "hilltop: missing"),
+        ({"riverside": 3, "hilltop": 1, "harbour": 2}, "harbour: unknown location"),
+        ({"riverside": 3, "hilltop": 10}, "hilltop: 10 units is outside 0..9"),
     ],
 )
 def test_stock_that_does_not_fit_is_refused(

@@ -1,0 +1,32 @@
+"""Liveness and readiness."""
+
+from __future__ import annotations
+
+from fastapi import APIRouter, Request
+from fastapi.responses import JSONResponse
+from sqlalchemy import Engine
+from sqlalchemy.exc import SQLAlchemyError
+
+from service.db.migrate import DatabaseNotMigratedError, require_migrated
+from service.problems import PROBLEM_JSON, problem_body
+
+router = APIRouter(tags=["health"])
+
+
+@router.get("/healthz")
+def healthz() -> dict[str, str]:
+    """The process is alive."""
+    return {"status": "ok"}
+
+
+@router.get("/readyz", responses={503: {"description": "Database unreachable or not migrated"}})
+def readyz(request: Request) -> JSONResponse:
+    """The database answers and is at the schema revision this code needs."""
+    engine: Engine = request.app.state.engine
+    try:
+        require_migrated(engine)
+    except (DatabaseNotMigratedError, SQLAlchemyError) as exc:
+        detail = str(exc) if isinstance(exc, DatabaseNotMigratedError) else "database unreachable"
+        body = problem_body(request, 503, "not-ready", "Not ready", detail)
+        return JSONResponse(body, 503, media_type=PROBLEM_JSON, headers={"Retry-After": "5"})
+    return JSONResponse({"status": "ready"})

@@ -1,0 +1,98 @@
+"""The whole policy table, for ERP import: stock levels, flows per lane, value. Streamed."""
+
+from __future__ import annotations
+
+import io
+import json
+from collections.abc import Iterator
+from typing import Annotated, Any, Literal
+
+import numpy as np
+from fastapi import APIRouter, Query
+from fastapi.responses import StreamingResponse
+
+from service.api.deps import CacheDep, SessionDep, TenantDep, get_network
+from service.policies import ServedPolicy, load_policy
+from service.schemas import CriterionName
+
+router = APIRouter(tags=["policies"])
+
+_ROWS_PER_CHUNK = 4096
+
+_EXPORT_DOC: dict[int | str, dict[str, Any]] = {
+    200: {
+        "description": "The policy table. CSV: one row per closing stock, columns: the stock of "
+        "each location, the units on each lane (`from->to`), the value. JSON: the same rows "
+        "under `rows`, with `columns`, `version`, `criterion` and `profit_per_day`.",
+        "content": {"text/csv": {"schema": {"type": "string"}}, "application/json": {}},
+    }
+}
+
+
+@router.get(
+    "/v1/networks/{network_id}/policy", response_class=StreamingResponse, responses=_EXPORT_DOC
+)
+def export_policy(
+    network_id: int,
+    session: SessionDep,
+    cache: CacheDep,
+    tenant_id: TenantDep,
+    format: Annotated[Literal["json", "csv"], Query()] = "json",
+    criterion: CriterionName = "discounted",
+) -> StreamingResponse:
+    network = get_network(session, tenant_id, network_id)
+    served = load_policy(session, cache, network, criterion)
+    headers = {
+        "X-Policy-Version": str(served.version_number),
+        "Content-Disposition": f'attachment; filename="network-{network_id}-policy.{format}"',
+    }
+    if format == "csv":
+        return StreamingResponse(_csv(served), media_type="text/csv", headers=headers)
+    return StreamingResponse(
+        _json(served, network_id, criterion), media_type="application/json", headers=headers
+    )
+
+
+def _columns(served: ServedPolicy) -> list[str]:
+    result = served.result
+    ids = result.location_ids
+    lanes = [f"{ids[a]}->{ids[b]}" for a, b in result.lanes]
+    return [*ids, *lanes, "value"]
+
+
+def _chunks(served: ServedPolicy) -> Iterator[tuple[np.ndarray, np.ndarray, np.ndarray]]:
+    result = served.result
+    for start in range(0, result.n_states, _ROWS_PER_CHUNK):
+        index = np.arange(start, min(start + _ROWS_PER_CHUNK, result.n_states))
+        stock = np.stack(np.unravel_index(index, result.shape), axis=1)
+        yield stock, result.flows[result.action[index]], result.values[index]
+
+
+def _csv(served: ServedPolicy) -> Iterator[str]:
+    yield ",".join(_columns(served)) + "\n"
+    for stock, flows, values in _chunks(served):
+        buffer = io.StringIO()
+        for s, f, v in zip(stock.tolist(), flows.tolist(), values.tolist(), strict=True):
+            buffer.write(",".join(map(str, (*s, *f))) + f",{v!r}\n")
+        yield buffer.getvalue()
+
+
+def _json(served: ServedPolicy, network_id: int, criterion: str) -> Iterator[str]:
+    head = {
+        "network_id": network_id,
+        "version": served.version_number,
+        "criterion": criterion,
+        "profit_per_day": served.result.gain,
+        "columns": _columns(served),
+    }
+    yield json.dumps(head)[:-1] + ', "rows": ['
+    first = True
+    for stock, flows, values in _chunks(served):
+        rows = [
+            [*s, *f, v]
+            for s, f, v in zip(stock.tolist(), flows.tolist(), values.tolist(), strict=True)
+        ]
+        text = json.dumps(rows)[1:-1]
+        yield text if first else "," + text
+        first = False
+    yield "]}"
