@@ -111,6 +111,21 @@ def _parser() -> argparse.ArgumentParser:
     list_networks = network_commands.add_parser("list", help="list networks and their versions")
     list_networks.set_defaults(handler=operations.list_networks)
 
+    keys = commands.add_parser("keys", help="create, list and revoke API keys")
+    key_commands = keys.add_subparsers(dest="action", required=True, metavar="ACTION")
+    create_key = key_commands.add_parser(
+        "create", help="create a key and print it (once: only its hash is stored)"
+    )
+    create_key.add_argument("--tenant", required=True)
+    create_key.add_argument("--scope", choices=["read", "write", "admin"], required=True)
+    create_key.add_argument("--label", help="a note saying whose key this is")
+    create_key.set_defaults(handler=operations.create_key)
+    list_keys = key_commands.add_parser("list", help="list keys (never the keys themselves)")
+    list_keys.set_defaults(handler=operations.list_keys)
+    revoke = key_commands.add_parser("revoke", help="revoke a key by its prefix")
+    revoke.add_argument("prefix")
+    revoke.set_defaults(handler=operations.revoke_key)
+
     jobs = commands.add_parser("jobs", help="list solve jobs or retry a failed one")
     job_commands = jobs.add_subparsers(dest="action", required=True, metavar="ACTION")
     list_jobs = job_commands.add_parser("list", help="newest jobs first")

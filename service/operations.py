@@ -14,6 +14,7 @@ from sqlalchemy import Engine
 from sqlalchemy.exc import OperationalError
 from sqlalchemy.orm import Session, sessionmaker
 
+from service import auth
 from service.db import repository
 from service.db.migrate import DatabaseNotMigratedError, current_revision, require_migrated
 from service.db.migrate import upgrade as upgrade_schema
@@ -26,15 +27,18 @@ from service.worker import Worker
 
 __all__ = [
     "DEFAULT_TENANT",
+    "create_key",
     "export_network",
     "import_network",
     "list_jobs",
+    "list_keys",
     "list_networks",
     "migrate",
     "retry_job",
+    "revoke_key",
     "serve",
-    "write_openapi",
     "worker",
+    "write_openapi",
 ]
 
 DEFAULT_TENANT = "default"
@@ -196,6 +200,47 @@ def list_jobs(args: argparse.Namespace) -> int:
 
     with _database() as (_settings, engine):
         sys.stdout.writelines(line + "\n" for line in _in_transaction(engine, work))
+    return 0
+
+
+def create_key(args: argparse.Namespace) -> int:
+    def work(session: Session) -> tuple[str, str]:
+        tenant = repository.get_or_create_tenant(session, args.tenant)
+        row, key = auth.create_key(session, tenant, args.scope, args.label)
+        return row.prefix, key
+
+    with _database() as (_settings, engine):
+        prefix, key = _in_transaction(engine, work)
+    sys.stdout.write(
+        f"{key}\n"
+        f"# {args.scope} key {prefix} for tenant {args.tenant!r}; shown once, only its hash is "
+        "kept\n"
+    )
+    return 0
+
+
+def list_keys(_args: argparse.Namespace) -> int:
+    def work(session: Session) -> list[str]:
+        return [
+            f"{key.prefix}  {tenant:<20} {key.scope:<6} created {key.created_at:%Y-%m-%d %H:%M}"
+            + (f"  revoked {key.revoked_at:%Y-%m-%d %H:%M}" if key.revoked_at else "")
+            + (f"  {key.label}" if key.label else "")
+            for key, tenant in auth.list_keys(session)
+        ]
+
+    with _database() as (_settings, engine):
+        sys.stdout.writelines(line + "\n" for line in _in_transaction(engine, work))
+    return 0
+
+
+def revoke_key(args: argparse.Namespace) -> int:
+    def work(session: Session) -> bool:
+        return auth.revoke_key(session, args.prefix)
+
+    with _database() as (_settings, engine):
+        if not _in_transaction(engine, work):
+            raise UsageError(f"no active key with prefix {args.prefix!r}")
+    sys.stdout.write(f"key {args.prefix} revoked\n")
     return 0
 
 

@@ -30,7 +30,9 @@ from sqlalchemy.orm import Mapped, mapped_column, relationship
 from service.db.base import Base, utcnow
 
 __all__ = [
+    "ApiKey",
     "ClosingCount",
+    "IdempotencyRecord",
     "Instruction",
     "JobState",
     "Network",
@@ -172,3 +174,38 @@ class Instruction(Base):
     # JSON: {"stock": {location: units}, "transfers": [{"from", "to", "units", "unit_cost"}]}
     plan: Mapped[str] = mapped_column(Text)
     computed_at: Mapped[datetime] = mapped_column(DateTime, default=utcnow)
+
+
+class ApiKey(Base):
+    """An API key of a tenant. Only the SHA-256 of the key is kept; `prefix` (the public part)
+    finds the row and names the key in listings."""
+
+    __tablename__ = "api_keys"
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    tenant_id: Mapped[int] = mapped_column(ForeignKey("tenants.id"), index=True)
+    prefix: Mapped[str] = mapped_column(String(32), unique=True)
+    key_hash: Mapped[str] = mapped_column(_HASH)
+    scope: Mapped[str] = mapped_column(String(16))
+    label: Mapped[str | None] = mapped_column(String(200))
+    created_at: Mapped[datetime] = mapped_column(DateTime, default=utcnow)
+    revoked_at: Mapped[datetime | None] = mapped_column(DateTime)
+
+
+class IdempotencyRecord(Base):
+    """The first response to a POST or PUT sent with an Idempotency-Key, replayed on repeats."""
+
+    __tablename__ = "idempotency_records"
+    __table_args__ = (UniqueConstraint("tenant_id", "key", "method", "path"),)
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    tenant_id: Mapped[int] = mapped_column(ForeignKey("tenants.id"))
+    key: Mapped[str] = mapped_column(String(200))
+    method: Mapped[str] = mapped_column(String(8))
+    path: Mapped[str] = mapped_column(String(500))
+    body_hash: Mapped[str] = mapped_column(_HASH)
+    status: Mapped[int] = mapped_column(Integer)
+    headers: Mapped[str] = mapped_column(Text)
+    body: Mapped[bytes] = mapped_column(LargeBinary)
+    created_at: Mapped[datetime] = mapped_column(DateTime, default=utcnow)
+    expires_at: Mapped[datetime] = mapped_column(DateTime, index=True)

@@ -31,6 +31,8 @@ TABLES = {
     "policies",
     "closing_counts",
     "instructions",
+    "api_keys",
+    "idempotency_records",
 }
 
 

@@ -1,0 +1,105 @@
+"""API keys: high-entropy bearer tokens, stored only as their SHA-256.
+
+A key reads `sr_<prefix>_<secret>`: the prefix (public) finds the row and names the key in
+listings; the secret, 256 random bits, is shown once at creation. A fast hash is enough for
+random tokens of this length (nothing to brute-force from a dictionary); comparison is
+constant-time.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import hmac
+import secrets
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import Literal
+
+from sqlalchemy import select
+from sqlalchemy.orm import Session
+
+from service.db.base import utcnow
+from service.db.tables import ApiKey, Tenant
+
+__all__ = [
+    "SCOPES",
+    "Identity",
+    "Scope",
+    "authenticate",
+    "create_key",
+    "list_keys",
+    "revoke_key",
+    "scope_allows",
+]
+
+Scope = Literal["read", "write", "admin"]
+SCOPES: tuple[Scope, ...] = ("read", "write", "admin")
+_RANK: dict[str, int] = {scope: rank for rank, scope in enumerate(SCOPES)}
+_PREFIX = "sr_"
+
+
+@dataclass(frozen=True)
+class Identity:
+    """Who is calling: the key's tenant and scope. Never holds the key."""
+
+    tenant_id: int
+    tenant: str
+    key_prefix: str
+    scope: Scope
+
+
+def scope_allows(held: str, needed: Scope) -> bool:
+    """admin includes write, write includes read."""
+    return _RANK.get(held, -1) >= _RANK[needed]
+
+
+def _digest(key: str) -> str:
+    return hashlib.sha256(key.encode("utf-8")).hexdigest()
+
+
+def create_key(
+    session: Session, tenant: Tenant, scope: Scope, label: str | None = None
+) -> tuple[ApiKey, str]:
+    """A new key for `tenant`; returns the row and the key itself (shown once, never stored)."""
+    prefix = secrets.token_hex(5)
+    key = f"{_PREFIX}{prefix}_{secrets.token_urlsafe(32)}"
+    row = ApiKey(
+        tenant_id=tenant.id, prefix=prefix, key_hash=_digest(key), scope=scope, label=label
+    )
+    session.add(row)
+    session.flush()
+    return row, key
+
+
+def authenticate(session: Session, key: str) -> Identity | None:
+    """The identity of a valid, unrevoked key; None for anything else."""
+    if not key.startswith(_PREFIX) or key.count("_") < 2:
+        return None
+    prefix = key[len(_PREFIX) :].split("_", 1)[0]
+    row = session.scalars(select(ApiKey).where(ApiKey.prefix == prefix)).one_or_none()
+    if row is None or row.revoked_at is not None:
+        return None
+    if not hmac.compare_digest(row.key_hash, _digest(key)):
+        return None
+    tenant = session.get_one(Tenant, row.tenant_id)
+    return Identity(row.tenant_id, tenant.name, row.prefix, row.scope)  # type: ignore[arg-type]
+
+
+def list_keys(session: Session) -> Sequence[tuple[ApiKey, str]]:
+    """Every key with its tenant's name, oldest first."""
+    rows = session.execute(
+        select(ApiKey, Tenant.name).join(Tenant, Tenant.id == ApiKey.tenant_id).order_by(ApiKey.id)
+    ).all()
+    return [(key, name) for key, name in rows]
+
+
+def revoke_key(session: Session, prefix: str) -> bool:
+    """Revoke the key with this prefix (or full key); False when there is none or it was
+    revoked already."""
+    if prefix.startswith(_PREFIX):
+        prefix = prefix[len(_PREFIX) :].split("_", 1)[0]
+    row = session.scalars(select(ApiKey).where(ApiKey.prefix == prefix)).one_or_none()
+    if row is None or row.revoked_at is not None:
+        return False
+    row.revoked_at = utcnow()
+    return True
