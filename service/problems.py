@@ -160,11 +160,31 @@ def _escape(token: str) -> str:
     return token.replace("~", "~0").replace("/", "~1")
 
 
-def _pointer(loc: Sequence[int | str]) -> str:
+def _body_parts(parts: list[int | str], document: Any) -> list[int | str]:
+    """`parts` without the tags pydantic adds to `loc` for a discriminated union: a tag names
+    the union member chosen (e.g. "pmf"), not a member of the request body."""
+    kept: list[int | str] = []
+    node = document
+    for part in parts:
+        if isinstance(node, dict) and part not in node and part in node.values():
+            continue
+        kept.append(part)
+        if isinstance(node, dict):
+            node = node.get(part)
+        elif isinstance(node, list) and isinstance(part, int) and 0 <= part < len(node):
+            node = node[part]
+        else:
+            node = None
+    return kept
+
+
+def _pointer(loc: Sequence[int | str], body: Any = None) -> str:
     # FastAPI prefixes the part of the request: ("body", "stock", "hilltop").
     parts = list(loc[1:]) if loc and loc[0] in ("body", "query", "path", "header") else list(loc)
     where = loc[0] if loc and loc[0] in ("query", "path", "header") else None
-    pointer = "/" + "/".join(_escape(str(p)) for p in parts)
+    if where is None:
+        parts = _body_parts(parts, body)
+    pointer = "".join("/" + _escape(str(p)) for p in parts)
     return f"{where}:{pointer}" if where else pointer
 
 
@@ -182,7 +202,10 @@ def install_problem_handlers(app: FastAPI) -> None:
     @app.exception_handler(RequestValidationError)
     async def validation(request: Request, exc: RequestValidationError) -> JSONResponse:
         errors = [
-            {"pointer": _pointer(error.get("loc", ())), "detail": error.get("msg", "invalid")}
+            {
+                "pointer": _pointer(error.get("loc", ()), exc.body),
+                "detail": error.get("msg", "invalid"),
+            }
             for error in exc.errors()
         ]
         summary = "; ".join(f"{e['pointer']}: {e['detail']}" for e in errors)

@@ -177,7 +177,7 @@ class BatchRequest(BaseModel):
     # Items are validated one by one, so that a malformed item fails alone; the schema still
     # documents each as a BatchItem.
     items: Annotated[
-        list[Annotated[dict[str, Any], WithJsonSchema(BatchItem.model_json_schema())]],
+        list[Annotated[Any, WithJsonSchema(BatchItem.model_json_schema())]],
         Field(min_length=1, max_length=MAX_BATCH_ITEMS),
     ]
 

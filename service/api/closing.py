@@ -17,7 +17,7 @@ from service.api.views import transfers_of
 from service.db import repository
 from service.db.base import utcnow
 from service.db.tables import ClosingCount, Instruction, Network, NetworkVersion
-from service.policies import recommend
+from service.policies import PolicyNotReadyError, StockProblemsError, recommend
 from service.problems import Conflict, InvalidInput, NotFound
 from service.schemas import ClosingStockIn, ClosingStockOut, InstructionsOut, Movement
 from solver import NetworkSpec
@@ -32,6 +32,12 @@ def _current_spec(session: Session, network: Network) -> NetworkSpec:
     version = repository.latest_version(session, network.id)
     assert version is not None
     return NetworkSpec.model_validate_json(version.spec_json)
+
+
+def _current_number(session: Session, network: Network) -> int:
+    version = repository.latest_version(session, network.id)
+    assert version is not None
+    return version.number
 
 
 def _check_location(spec: NetworkSpec, network_id: int, location: str) -> int:
@@ -152,7 +158,16 @@ def _issue(
     business_date: date,
     counts: dict[str, int],
 ) -> Instruction:
-    served, recommendation = recommend(session, cache, network, counts, "discounted")
+    try:
+        served, recommendation = recommend(session, cache, network, counts, "discounted")
+    except StockProblemsError as exc:
+        # The counts fit the current version (they were checked on arrival); only an older
+        # policy, served while the current one is solved, can refuse them: wait for it.
+        raise PolicyNotReadyError(
+            f"the closing stock fits version {_current_number(session, network)} of network "
+            f"{network.id}, whose discounted policy is not ready yet ({exc})",
+            job_state=None,
+        ) from exc
     transfers = transfers_of(served.result, recommendation.flows)
     plan = {
         "stock": counts,

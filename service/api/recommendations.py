@@ -60,7 +60,7 @@ def recommend_batch(
 
 def _one(
     index: int,
-    raw: dict[str, Any],
+    raw: Any,
     request: Request,
     session: SessionDep,
     cache: CacheDep,
@@ -71,7 +71,7 @@ def _one(
     except ValidationError as exc:
         errors = [
             {
-                "pointer": f"/items/{index}/" + "/".join(str(part) for part in error["loc"]),
+                "pointer": f"/items/{index}" + "".join(f"/{part}" for part in error["loc"]),
                 "detail": error["msg"],
             }
             for error in exc.errors(include_url=False)
@@ -88,6 +88,15 @@ def _one(
             log.exception("request %s: batch item %d failed", request.state.request_id, index)
             known = (500, "internal-error", "Internal error", "this item failed", {})
         status, slug, title, detail, extensions = known
+        if "errors" in extensions:
+            # Pointers into this item of the batch, not into a single request's body.
+            extensions = {
+                **extensions,
+                "errors": [
+                    {**error, "pointer": f"/items/{index}{error['pointer']}"}
+                    for error in extensions["errors"]
+                ],
+            }
         body = problem_body(request, status, slug, title, detail, item=index, **extensions)
         return BatchOutcome(problem=Problem.model_validate(body))
     return BatchOutcome(

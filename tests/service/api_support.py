@@ -1,0 +1,129 @@
+"""Helpers shared by the HTTP tests: an app on the migrated test database, the worker run
+in-process until the queue is empty, the demo network and its variants, and the checks every
+problem response must pass (RFC 9457)."""
+
+from __future__ import annotations
+
+import copy
+import uuid
+from collections.abc import Iterator, Mapping
+from contextlib import contextmanager
+from typing import Any
+
+import httpx
+import pytest
+from fastapi.testclient import TestClient
+from sqlalchemy import Engine
+
+from service.db.session import make_session_factory
+from service.main import create_app
+from service.schemas import DEMO_NETWORK
+from service.settings import Settings
+from service.worker import Worker
+from solver import NetworkSpec, PolicyResult, Recommendation
+
+__all__ = [
+    "PROBLEM_TYPE_BASE",
+    "assert_problem",
+    "create_network",
+    "database_url_of",
+    "demo_document",
+    "expected_transfers",
+    "open_client",
+    "pointers",
+    "run_worker",
+    "sqlite_only",
+    "stock_of",
+]
+
+PROBLEM_TYPE_BASE = "https://stockrelay.dev/problems/"
+# RFC 9457, section 3.1: the members every problem of this API carries.
+PROBLEM_MEMBERS = ("type", "title", "status", "detail", "instance")
+
+# For checks of request handling that the database cannot change, and for the heavier
+# comparisons: run on SQLite only (overrides the two-database parametrization of `engine`).
+sqlite_only = pytest.mark.parametrize("database_url", ["sqlite"], indirect=True)
+
+
+def database_url_of(engine: Engine) -> str:
+    return engine.url.render_as_string(hide_password=False)
+
+
+@contextmanager
+def open_client(
+    engine: Engine, *, raise_server_exceptions: bool = True, **settings: Any
+) -> Iterator[TestClient]:
+    """The app on `engine`'s database, lifespan entered; every request carries an X-Request-ID
+    of its own (unless it sets one) so that problem checks can see it echoed."""
+    app = create_app(Settings(database_url=database_url_of(engine), **settings))
+    with TestClient(app, raise_server_exceptions=raise_server_exceptions) as client:
+        client.event_hooks = {"request": [_tag_request], "response": []}
+        yield client
+
+
+def _tag_request(request: httpx.Request) -> None:
+    request.headers.setdefault("X-Request-ID", f"test-{uuid.uuid4().hex[:12]}")
+
+
+def run_worker(engine: Engine, **settings: Any) -> int:
+    """Solve every queued job in-process; the number of jobs handled."""
+    worker = Worker(
+        Settings(database_url=database_url_of(engine), poll_interval=0.01, **settings),
+        make_session_factory(engine),
+        "api-test",
+    )
+    return worker.run(until_idle=True)
+
+
+def demo_document(**changes: Any) -> dict[str, Any]:
+    """The demo network as a request body (a deep copy), with top-level `changes`."""
+    document = copy.deepcopy(DEMO_NETWORK)
+    document.update(changes)
+    return document
+
+
+def create_network(client: TestClient, document: Mapping[str, Any] | None = None) -> Any:
+    """POST a network (the demo one by default) and return the created body."""
+    response = client.post("/v1/networks", json=dict(document or demo_document()))
+    assert response.status_code == 201, response.text
+    return response.json()
+
+
+def stock_of(spec: NetworkSpec, vector: list[int]) -> dict[str, int]:
+    return dict(zip(spec.location_ids, vector, strict=True))
+
+
+def expected_transfers(result: PolicyResult, recommendation: Recommendation) -> list[Any]:
+    """The transfers of an in-process recommendation, in the API's shape."""
+    ids = result.location_ids
+    return [
+        {"from": ids[a], "to": ids[b], "units": units, "unit_cost": float(result.lane_costs[lane])}
+        for lane, ((a, b), units) in enumerate(zip(result.lanes, recommendation.flows, strict=True))
+        if units > 0
+    ]
+
+
+def assert_problem(response: httpx.Response, status: int, slug: str | None = None) -> Any:
+    """An RFC 9457 problem: media type, the standard members, `instance` the request path, and
+    the request's X-Request-ID echoed in the header and the body. Returns the body."""
+    assert response.status_code == status, response.text
+    # RFC 9457, section 3: problem details are served as application/problem+json.
+    assert response.headers["content-type"] == "application/problem+json"
+    body = response.json()
+    for member in PROBLEM_MEMBERS:
+        assert member in body, f"problem lacks {member!r}: {body}"
+    assert body["status"] == status
+    assert body["instance"] == response.request.url.path
+    assert isinstance(body["title"], str) and body["title"]
+    assert isinstance(body["detail"], str) and body["detail"]
+    if slug is not None:
+        assert body["type"] == PROBLEM_TYPE_BASE + slug
+    sent = response.request.headers["X-Request-ID"]
+    assert response.headers["X-Request-ID"] == sent
+    assert body["request_id"] == sent
+    return body
+
+
+def pointers(problem: Mapping[str, Any]) -> list[str]:
+    """The JSON pointers (RFC 6901) named by a validation problem's `errors`."""
+    return [error["pointer"] for error in problem["errors"]]

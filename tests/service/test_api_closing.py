@@ -1,0 +1,232 @@
+"""HTTP tests of closing reports and the night's instructions: every location reports, then all
+read one plan, equal to the solver's recommendation from the full closing stock, and kept."""
+
+from __future__ import annotations
+
+import itertools
+from collections.abc import Iterator
+from datetime import UTC, date, datetime, timedelta
+from typing import Any
+
+import pytest
+from fastapi.testclient import TestClient
+from sqlalchemy import Engine
+
+from solver import NetworkSpec, solve_network
+from tests.service.api_support import (
+    assert_problem,
+    create_network,
+    demo_document,
+    expected_transfers,
+    open_client,
+    pointers,
+    run_worker,
+    sqlite_only,
+    stock_of,
+)
+
+DEMO_SPEC = NetworkSpec.model_validate(demo_document())
+
+
+@pytest.fixture
+def client(engine: Engine) -> Iterator[TestClient]:
+    with open_client(engine) as test_client:
+        yield test_client
+
+
+def today() -> date:
+    return datetime.now(UTC).date()
+
+
+def report(client: TestClient, network_id: int, location: str, day: date, units: Any) -> Any:
+    return client.put(
+        f"/v1/networks/{network_id}/locations/{location}/closing-stock",
+        json={"business_date": day.isoformat(), "units": units},
+    )
+
+
+def instructions(client: TestClient, network_id: int, location: str, day: date | str) -> Any:
+    return client.get(
+        f"/v1/networks/{network_id}/locations/{location}/instructions",
+        params={"business_date": str(day)},
+    )
+
+
+def stock_that_moves() -> list[int]:
+    """A closing stock from which the demo policy moves units (found, not assumed)."""
+    result = solve_network(DEMO_SPEC)
+    capacities = [location.capacity for location in DEMO_SPEC.locations]
+    for vector in itertools.product(*(range(c, -1, -1) for c in capacities)):
+        if any(result.recommend(list(vector)).flows):
+            return list(vector)
+    raise AssertionError("the demo policy never moves anything")
+
+
+def test_reports_shrink_the_missing_list_and_a_repeat_replaces_the_count(
+    client: TestClient, engine: Engine
+) -> None:
+    network_id = create_network(client)["id"]
+    run_worker(engine)
+    day = today()
+    first = report(client, network_id, "riverside", day, 5)
+    assert first.status_code == 200
+    body = first.json()
+    assert (body["network_id"], body["location"], body["units"]) == (network_id, "riverside", 5)
+    assert (body["business_date"], body["missing"]) == (day.isoformat(), ["hilltop"])
+    waiting = assert_problem(instructions(client, network_id, "riverside", day), 409, "conflict")
+    assert waiting["missing"] == ["hilltop"]
+
+    vector = stock_that_moves()
+    repeat = report(client, network_id, "riverside", day, vector[0])
+    assert repeat.status_code == 200
+    assert (repeat.json()["units"], repeat.json()["missing"]) == (vector[0], ["hilltop"])
+    last = report(client, network_id, "hilltop", day, vector[1])
+    assert last.status_code == 200 and last.json()["missing"] == []
+
+    issued = instructions(client, network_id, "hilltop", day)
+    assert issued.status_code == 200
+    # The repeat replaced the first count.
+    assert issued.json()["stock"] == stock_of(DEMO_SPEC, vector)
+
+
+def test_every_location_reads_the_same_kept_plan(client: TestClient, engine: Engine) -> None:
+    network_id = create_network(client)["id"]
+    run_worker(engine)
+    day = today()
+    vector = stock_that_moves()
+    for location, units in stock_of(DEMO_SPEC, vector).items():
+        assert report(client, network_id, location, day, units).status_code == 200
+
+    result = solve_network(DEMO_SPEC)
+    transfers = expected_transfers(result, result.recommend(vector))
+    assert transfers, "stock_that_moves() promised transfers"
+    plans = {}
+    for location in DEMO_SPEC.location_ids:
+        response = instructions(client, network_id, location, day)
+        assert response.status_code == 200
+        plans[location] = response.json()
+        plan = plans[location]
+        assert (plan["network_id"], plan["location"], plan["business_date"]) == (
+            network_id,
+            location,
+            day.isoformat(),
+        )
+        assert (plan["version"], plan["criterion"]) == (1, "discounted")
+        assert plan["stock"] == stock_of(DEMO_SPEC, vector)
+        assert plan["send"] == [
+            {"location": t["to"], "units": t["units"]} for t in transfers if t["from"] == location
+        ]
+        assert plan["receive"] == [
+            {"location": t["from"], "units": t["units"]} for t in transfers if t["to"] == location
+        ]
+    # What one location sends, the other receives.
+    sent = {(origin, m["location"], m["units"]) for origin, p in plans.items() for m in p["send"]}
+    received = {
+        (m["location"], target, m["units"]) for target, p in plans.items() for m in p["receive"]
+    }
+    assert sent == received and sent
+    assert len({plan["computed_at"] for plan in plans.values()}) == 1
+
+    # Kept: no more counts for that night, and a new version of the network changes nothing.
+    late = assert_problem(report(client, network_id, "riverside", day, 0), 409, "conflict")
+    assert "issued" in late["detail"]
+    changed = demo_document()
+    changed["lanes"][0]["unit_cost"] = 0.5
+    put = client.put(f"/v1/networks/{network_id}", json=changed, headers={"If-Match": '"1"'})
+    assert put.status_code == 200
+    run_worker(engine)
+    again = instructions(client, network_id, "riverside", day).json()
+    assert again == plans["riverside"]
+
+
+def test_all_reported_without_a_policy_is_503_and_nothing_is_kept(
+    client: TestClient, engine: Engine
+) -> None:
+    network_id = create_network(client)["id"]
+    day = today()
+    assert report(client, network_id, "riverside", day, 2).status_code == 200
+    assert report(client, network_id, "hilltop", day, 2).status_code == 200
+    not_ready = instructions(client, network_id, "riverside", day)
+    assert_problem(not_ready, 503, "policy-not-ready")
+    assert int(not_ready.headers["Retry-After"]) > 0
+    # No plan was kept, so counts may still change.
+    vector = stock_that_moves()
+    for location, units in stock_of(DEMO_SPEC, vector).items():
+        assert report(client, network_id, location, day, units).status_code == 200
+    run_worker(engine)
+    issued = instructions(client, network_id, "riverside", day)
+    assert issued.status_code == 200
+    assert issued.json()["stock"] == stock_of(DEMO_SPEC, vector)
+
+
+def test_unknown_location_is_404(client: TestClient) -> None:
+    network_id = create_network(client)["id"]
+    day = today()
+    put = assert_problem(report(client, network_id, "harbour", day, 1), 404, "not-found")
+    assert "harbour" in put["detail"]
+    get = assert_problem(instructions(client, network_id, "harbour", day), 404, "not-found")
+    assert "harbour" in get["detail"]
+
+
+@sqlite_only
+def test_units_must_be_an_integer_within_capacity(client: TestClient) -> None:
+    network_id = create_network(client)["id"]
+    day = today()
+    for location, units in (("riverside", 15), ("hilltop", 10), ("hilltop", -1)):
+        problem = assert_problem(report(client, network_id, location, day, units), 422)
+        assert problem["type"].endswith("/invalid-input")
+        assert pointers(problem) == ["/units"], (location, units)
+    for not_integer in (2.5, "3", True, None):
+        problem = assert_problem(report(client, network_id, "riverside", day, not_integer), 422)
+        assert pointers(problem) == ["/units"], not_integer
+    missing = client.put(
+        f"/v1/networks/{network_id}/locations/riverside/closing-stock",
+        json={"business_date": day.isoformat()},
+    )
+    assert pointers(assert_problem(missing, 422, "invalid-input")) == ["/units"]
+    # Nothing was recorded: both locations are still awaited.
+    waiting = assert_problem(instructions(client, network_id, "riverside", day), 409)
+    assert waiting["missing"] == ["riverside", "hilltop"]
+    # The bounds themselves are accepted.
+    assert report(client, network_id, "riverside", day, 14).status_code == 200
+    assert report(client, network_id, "hilltop", day, 0).status_code == 200
+
+
+@sqlite_only
+def test_business_date_must_lie_between_the_day_before_creation_and_tomorrow(
+    client: TestClient,
+) -> None:
+    created = create_network(client)
+    network_id = created["id"]
+    created_on = datetime.fromisoformat(created["created_at"]).date()
+    tomorrow = today() + timedelta(days=1)
+    for day in (created_on - timedelta(days=2), tomorrow + timedelta(days=1)):
+        put = assert_problem(report(client, network_id, "riverside", day, 3), 422)
+        assert pointers(put) == ["/business_date"]
+        get = assert_problem(instructions(client, network_id, "riverside", day), 422)
+        assert pointers(get) == ["query:/business_date"]
+    for day in (created_on - timedelta(days=1), tomorrow):
+        assert report(client, network_id, "riverside", day, 3).status_code == 200
+    malformed = instructions(client, network_id, "riverside", "next tuesday")
+    assert pointers(assert_problem(malformed, 422, "invalid-input")) == ["query:/business_date"]
+    absent = client.get(f"/v1/networks/{network_id}/locations/riverside/instructions")
+    assert pointers(assert_problem(absent, 422, "invalid-input")) == ["query:/business_date"]
+
+
+@sqlite_only
+def test_counts_beyond_the_stale_policy_wait_for_the_new_solve(
+    client: TestClient, engine: Engine
+) -> None:
+    network_id = create_network(client)["id"]
+    run_worker(engine)
+    bigger = demo_document()
+    bigger["locations"][1]["capacity"] = 12
+    put = client.put(f"/v1/networks/{network_id}", json=bigger, headers={"If-Match": '"1"'})
+    assert put.status_code == 200
+    day = today()
+    assert report(client, network_id, "riverside", day, 3).status_code == 200
+    assert report(client, network_id, "hilltop", day, 11).status_code == 200
+    assert_problem(instructions(client, network_id, "hilltop", day), 503, "policy-not-ready")
+    run_worker(engine)
+    issued = instructions(client, network_id, "hilltop", day)
+    assert issued.status_code == 200 and issued.json()["version"] == 2
