@@ -2,6 +2,9 @@
 PYTHON ?= python3
 VENV ?= .venv
 BIN := $(VENV)/bin
+DEMO := service/data/demo_network.json
+HOST ?= 127.0.0.1
+PORT ?= 8000
 
 .PHONY: run test demo lint bench bench-store clean
 
@@ -27,10 +30,14 @@ lint: $(VENV)/.installed-test
 	$(BIN)/mypy
 
 demo: $(VENV)/.installed
-	$(BIN)/stockrelay solve service/data/demo_network.json
+	$(BIN)/stockrelay solve $(DEMO)
 
-# Until the HTTP service exists, running stockrelay means solving the demo network.
-run: demo
+# The API and one solve worker on the database of STOCKRELAY_DATABASE_URL (default: SQLite in
+# ./var), with the demo network loaded once; Ctrl-C stops both (see service/supervisor.py).
+run: $(VENV)/.installed
+	$(BIN)/stockrelay migrate
+	$(BIN)/stockrelay networks import $(DEMO) --criteria discounted,average --skip-unchanged
+	$(BIN)/stockrelay run --host $(HOST) --port $(PORT)
 
 bench: $(VENV)/.installed-test
 	$(BIN)/python benchmarks/solve.py

@@ -70,6 +70,17 @@ def _parser() -> argparse.ArgumentParser:
     serve.add_argument("--port", type=_positive, default=8000)
     serve.set_defaults(handler=operations.serve)
 
+    run = commands.add_parser(
+        "run",
+        help="run the HTTP API and solve workers together until Ctrl-C",
+        description="Start `stockrelay serve` and solve workers as child processes, print an "
+        "example request once the API answers, and stop them all on Ctrl-C or SIGTERM.",
+    )
+    run.add_argument("--host", default="127.0.0.1")
+    run.add_argument("--port", type=_positive, default=8000)
+    run.add_argument("--workers", type=_positive, default=1, help="solve workers (default 1)")
+    run.set_defaults(handler=operations.run)
+
     openapi = commands.add_parser("openapi", help="write the API's OpenAPI document")
     openapi.add_argument("--out", type=Path, metavar="openapi.json", help="default: stdout")
     openapi.set_defaults(handler=operations.write_openapi)

@@ -96,6 +96,14 @@ def serve(args: argparse.Namespace) -> int:
     return 0
 
 
+def run(args: argparse.Namespace) -> int:
+    from service.supervisor import supervise
+
+    with _database():
+        pass  # refuse to start, with one line, on a database that is not migrated
+    return supervise(args.host, args.port, args.workers)
+
+
 def openapi_document() -> dict[str, Any]:
     """The OpenAPI document of the app, as committed in openapi/openapi.json."""
     from service.main import create_app

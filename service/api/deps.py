@@ -20,7 +20,9 @@ __all__ = ["CacheDep", "SessionDep", "SettingsDep", "TenantDep", "get_network"]
 DEFAULT_TENANT = "default"
 
 
-def get_settings(request: Request) -> Settings:
+# Reading app.state never blocks: async dependencies run on the event loop, where a plain `def`
+# would cost a hand-off to the thread pool and back on every request.
+async def get_settings(request: Request) -> Settings:
     settings: Settings = request.app.state.settings
     return settings
 
@@ -31,7 +33,7 @@ def get_session(request: Request) -> Iterator[Session]:
         yield session
 
 
-def get_cache(request: Request) -> PolicyCache:
+async def get_cache(request: Request) -> PolicyCache:
     cache: PolicyCache = request.app.state.policy_cache
     return cache
 

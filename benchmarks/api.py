@@ -1,0 +1,422 @@
+"""Benchmark of the HTTP API: recommendation latency and throughput against a real uvicorn.
+
+Usage: .venv/bin/python benchmarks/api.py [--quick] [--backend sqlite|postgresql] [--out PATH]
+
+For each database (SQLite in a temporary folder; PostgreSQL at 127.0.0.1:5432 when it answers,
+in a scratch database created and dropped here), the script migrates, starts `stockrelay serve`
+(one uvicorn process, access log on, as deployed) on a free loopback port, creates the demo
+network over HTTP, solves it with `stockrelay worker --until-idle`, and measures
+POST /v1/networks/{id}/recommendation at seeded random closing stocks:
+
+* one client, sequential requests on one keep-alive connection;
+* 32 concurrent clients (httpx.AsyncClient, 32 connections), every phase bounded in time;
+* one batch of 1,000 items (POST /v1/recommendations/batch), repeated, median.
+
+Client, server and database share this machine's two cores; the table gives the CPU time of the
+server process and of this (client) process per request (per batch in the batch rows), so that
+a bound can be told from a busy machine. Targets (the API issue): p99 under 10 ms for one client;
+500 requests/s sustained by 32 clients with no errors.
+"""
+
+from __future__ import annotations
+
+import argparse
+import asyncio
+import contextlib
+import json
+import os
+import signal
+import socket
+import subprocess
+import sys
+import tempfile
+import time
+import uuid
+from collections import Counter
+from collections.abc import Callable, Iterator, Sequence
+from dataclasses import asdict, dataclass
+from pathlib import Path
+from typing import Any
+
+import httpx
+import numpy as np
+from sqlalchemy import create_engine, text
+
+ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT))
+
+from service.db.migrate import upgrade  # noqa: E402
+from service.db.session import make_engine  # noqa: E402
+
+ADMIN_URL = "postgresql+psycopg://postgres@127.0.0.1:5432/test"
+DEMO = ROOT / "service" / "data" / "demo_network.json"
+RESULTS = ROOT / "benchmarks" / "results"
+DEFAULT_OUT = RESULTS / "api.json"
+
+P99_TARGET_MS = 10.0
+THROUGHPUT_TARGET = 500.0
+CONCURRENT_CLIENTS = 32
+BATCH_ITEMS = 1000
+PHASE_DEADLINE_S = 120.0
+START_DEADLINE_S = 60.0
+
+
+@dataclass
+class Phase:
+    database: str
+    mode: str
+    requests: int
+    errors: int
+    error_kinds: dict[str, int]
+    seconds: float
+    p50_ms: float
+    p99_ms: float
+    max_ms: float
+    per_second: float
+    server_cpu_ms_per_request: float | None
+    client_cpu_ms_per_request: float | None = None
+
+
+# -- processes and databases -------------------------------------------------------------------
+
+
+def free_port() -> int:
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as probe:
+        probe.bind(("127.0.0.1", 0))
+        port: int = probe.getsockname()[1]
+        return port
+
+
+def environment(url: str) -> dict[str, str]:
+    env = {k: v for k, v in os.environ.items() if not k.startswith("STOCKRELAY_")}
+    env["STOCKRELAY_DATABASE_URL"] = url
+    env["OPENBLAS_NUM_THREADS"] = "1"
+    return env
+
+
+@contextlib.contextmanager
+def server(url: str, log: Path) -> Iterator[tuple[str, subprocess.Popen[bytes]]]:
+    """`stockrelay serve` on a free loopback port; stopped (SIGTERM, then SIGKILL) on exit."""
+    port = free_port()
+    with log.open("wb") as sink:
+        process = subprocess.Popen(
+            [sys.executable, "-m", "service.cli", "serve", "--host", "127.0.0.1", "--port",
+             str(port)],
+            cwd=ROOT, env=environment(url), stdin=subprocess.DEVNULL, stdout=sink, stderr=sink,
+        )  # fmt: skip
+    base = f"http://127.0.0.1:{port}"
+    try:
+        give_up = time.monotonic() + START_DEADLINE_S
+        while True:
+            if process.poll() is not None:
+                raise RuntimeError(f"the server exited with {process.returncode}; see {log}")
+            with contextlib.suppress(httpx.TransportError):
+                if httpx.get(base + "/readyz", timeout=2).status_code == 200:
+                    break
+            if time.monotonic() > give_up:
+                raise TimeoutError(f"the server did not answer within {START_DEADLINE_S} s")
+            time.sleep(0.1)
+        yield base, process
+    finally:
+        if process.poll() is None:
+            process.send_signal(signal.SIGTERM)
+        try:
+            process.wait(timeout=20)
+        except subprocess.TimeoutExpired:
+            process.kill()
+            process.wait(timeout=20)
+
+
+def solve_queued(url: str) -> None:
+    subprocess.run(
+        [sys.executable, "-m", "service.cli", "worker", "--until-idle"],
+        cwd=ROOT, env=environment(url), stdin=subprocess.DEVNULL, check=True,
+        timeout=PHASE_DEADLINE_S,
+    )  # fmt: skip
+
+
+@contextlib.contextmanager
+def sqlite_database() -> Iterator[str]:
+    with tempfile.TemporaryDirectory(prefix="stockrelay-bench-") as folder:
+        yield f"sqlite:///{Path(folder) / 'stockrelay.db'}"
+
+
+def postgres_unavailable() -> str | None:
+    engine = create_engine(ADMIN_URL, connect_args={"connect_timeout": 3})
+    try:
+        with engine.connect() as connection:
+            connection.execute(text("SELECT 1"))
+    except Exception as exc:
+        return str(exc).splitlines()[0]
+    finally:
+        engine.dispose()
+    return None
+
+
+@contextlib.contextmanager
+def postgres_database() -> Iterator[str]:
+    name = f"stockrelay_bench_{uuid.uuid4().hex[:10]}"
+    admin = create_engine(ADMIN_URL, isolation_level="AUTOCOMMIT")
+    with admin.connect() as connection:
+        connection.execute(text(f'CREATE DATABASE "{name}"'))
+    try:
+        yield f"postgresql+psycopg://postgres@127.0.0.1:5432/{name}"
+    finally:
+        with admin.connect() as connection:
+            connection.execute(text(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)'))
+        admin.dispose()
+
+
+def cpu_seconds(pid: int) -> float | None:
+    """User + system CPU time of a process so far (Linux /proc), None elsewhere."""
+    try:
+        fields = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()
+    except OSError:
+        return None
+    return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
+
+
+# -- measuring ---------------------------------------------------------------------------------
+
+
+def stock_bodies(count: int, seed: int) -> list[bytes]:
+    """Request bodies at random closing stocks of the demo network."""
+    spec = json.loads(DEMO.read_text())
+    rng = np.random.default_rng(seed)
+    return [
+        json.dumps(
+            {"stock": {loc["id"]: int(rng.integers(0, loc["capacity"] + 1))
+                       for loc in spec["locations"]}}
+        ).encode()
+        for _ in range(count)
+    ]  # fmt: skip
+
+
+def outcome(response: httpx.Response | BaseException) -> str | None:
+    """None for a 200, else what went wrong: the status code or the exception's name."""
+    if isinstance(response, BaseException):
+        return type(response).__name__
+    return None if response.status_code == 200 else str(response.status_code)
+
+
+def summarize(
+    database: str,
+    mode: str,
+    latencies: list[float],
+    errors: Counter[str],
+    seconds: float,
+    cpu: float | None,
+) -> Phase:
+    ms = np.array(latencies) * 1000 if latencies else np.array([np.nan])
+    n = len(latencies)
+    return Phase(
+        database=database,
+        mode=mode,
+        requests=n,
+        errors=sum(errors.values()),
+        error_kinds=dict(errors),
+        seconds=seconds,
+        p50_ms=float(np.percentile(ms, 50)),
+        p99_ms=float(np.percentile(ms, 99)),
+        max_ms=float(ms.max()),
+        per_second=n / seconds,
+        server_cpu_ms_per_request=None if cpu is None or not n else 1000 * cpu / n,
+    )
+
+
+def sequential(base: str, path: str, bodies: list[bytes], pid: int, database: str) -> Phase:
+    headers = {"content-type": "application/json"}
+    latencies: list[float] = []
+    errors: Counter[str] = Counter()
+    cpu_before = cpu_seconds(pid)
+    with httpx.Client(base_url=base, timeout=10) as client:
+        start = time.perf_counter()
+        give_up = start + PHASE_DEADLINE_S
+        for body in bodies:
+            t = time.perf_counter()
+            try:
+                wrong = outcome(client.post(path, content=body, headers=headers))
+            except httpx.HTTPError as exc:
+                wrong = outcome(exc)
+            latencies.append(time.perf_counter() - t)
+            if wrong is not None:
+                errors[wrong] += 1
+            if time.perf_counter() > give_up:
+                break
+        seconds = time.perf_counter() - start
+    cpu_after = cpu_seconds(pid)
+    cpu = None if cpu_before is None or cpu_after is None else cpu_after - cpu_before
+    return summarize(database, "1 client", latencies, errors, seconds, cpu)
+
+
+async def _concurrent(
+    base: str, path: str, bodies: list[bytes], clients: int
+) -> tuple[list[float], Counter[str], float]:
+    headers = {"content-type": "application/json"}
+    latencies: list[float] = []
+    errors: Counter[str] = Counter()
+    pending = iter(bodies)
+    limits = httpx.Limits(max_connections=clients, max_keepalive_connections=clients)
+    async with httpx.AsyncClient(base_url=base, timeout=10, limits=limits) as client:
+        start = time.perf_counter()
+        give_up = start + PHASE_DEADLINE_S
+
+        async def one_client() -> None:
+            for body in pending:
+                t = time.perf_counter()
+                try:
+                    wrong = outcome(await client.post(path, content=body, headers=headers))
+                except httpx.HTTPError as exc:
+                    wrong = outcome(exc)
+                latencies.append(time.perf_counter() - t)
+                if wrong is not None:
+                    errors[wrong] += 1
+                if time.perf_counter() > give_up:
+                    return
+
+        await asyncio.gather(*(one_client() for _ in range(clients)))
+        return latencies, errors, time.perf_counter() - start
+
+
+def concurrent(base: str, path: str, bodies: list[bytes], pid: int, database: str) -> Phase:
+    cpu_before = cpu_seconds(pid)
+    latencies, errors, seconds = asyncio.run(_concurrent(base, path, bodies, CONCURRENT_CLIENTS))
+    cpu_after = cpu_seconds(pid)
+    cpu = None if cpu_before is None or cpu_after is None else cpu_after - cpu_before
+    return summarize(database, f"{CONCURRENT_CLIENTS} clients", latencies, errors, seconds, cpu)
+
+
+def batch(base: str, network_id: int, repeats: int, pid: int, database: str) -> Phase:
+    stocks = [json.loads(body)["stock"] for body in stock_bodies(BATCH_ITEMS, seed=7)]
+    body = {"items": [{"network_id": network_id, "stock": stock} for stock in stocks]}
+    latencies: list[float] = []
+    errors: Counter[str] = Counter()
+    cpu_before = cpu_seconds(pid)
+    with httpx.Client(base_url=base, timeout=60) as client:
+        start = time.perf_counter()
+        for _ in range(repeats):
+            t = time.perf_counter()
+            response = client.post("/v1/recommendations/batch", json=body)
+            latencies.append(time.perf_counter() - t)
+            if response.status_code != 200:
+                errors[str(response.status_code)] += BATCH_ITEMS
+            else:
+                for item in response.json()["items"]:
+                    if item["result"] is None:
+                        errors[str(item["problem"]["status"])] += 1
+        seconds = time.perf_counter() - start
+    cpu_after = cpu_seconds(pid)
+    cpu = None if cpu_before is None or cpu_after is None else cpu_after - cpu_before
+    phase = summarize(database, f"batch of {BATCH_ITEMS:,}", latencies, errors, seconds, cpu)
+    phase.per_second = BATCH_ITEMS * phase.requests / seconds  # items per second
+    return phase
+
+
+def client_cpu(phase: Callable[[], Phase]) -> Phase:
+    """Run `phase`, adding this process's CPU time per request (the clients share the cores)."""
+    before = time.process_time()
+    result = phase()
+    if result.requests:
+        result.client_cpu_ms_per_request = 1000 * (time.process_time() - before) / result.requests
+    return result
+
+
+def measure(database: str, url: str, quick: bool) -> list[Phase]:
+    engine = make_engine(url)
+    upgrade(engine)
+    engine.dispose()
+    RESULTS.mkdir(parents=True, exist_ok=True)
+    with server(url, RESULTS / f"api-server-{database}.log") as (base, process):
+        document = json.loads(DEMO.read_text())
+        created = httpx.post(base + "/v1/networks", json=document, timeout=10)
+        created.raise_for_status()
+        network_id = created.json()["id"]
+        solve_queued(url)
+        path = f"/v1/networks/{network_id}/recommendation"
+        warm_up = stock_bodies(200, seed=1)
+        sequential(base, path, warm_up, process.pid, database)  # policy cached, pools filled
+        n_sequential, n_concurrent, n_batches = (200, 500, 2) if quick else (2000, 5000, 5)
+        pid = process.pid
+        return [
+            client_cpu(
+                lambda: sequential(base, path, stock_bodies(n_sequential, 2), pid, database)
+            ),
+            client_cpu(
+                lambda: concurrent(base, path, stock_bodies(n_concurrent, 3), pid, database)
+            ),
+            client_cpu(lambda: batch(base, network_id, n_batches, pid, database)),
+        ]
+
+
+# -- reporting ---------------------------------------------------------------------------------
+
+
+def verdict(phase: Phase) -> str:
+    if phase.mode == "1 client":
+        return f"p99 < {P99_TARGET_MS:g} ms " + (
+            "met" if phase.p99_ms < P99_TARGET_MS else "MISSED"
+        )
+    if phase.mode.endswith("clients"):
+        met = phase.per_second >= THROUGHPUT_TARGET and phase.errors == 0
+        return f">= {THROUGHPUT_TARGET:g}/s, 0 errors " + ("met" if met else "MISSED")
+    return ""
+
+
+def table(phases: list[Phase]) -> str:
+    lines = [
+        "| database | load | requests | errors | p50 ms | p99 ms | max ms | per second "
+        "| server CPU ms/request | client CPU ms/request | target |",
+        "|---|---|---:|---:|---:|---:|---:|---:|---:|---:|---|",
+    ]
+    for p in phases:
+        server = "" if p.server_cpu_ms_per_request is None else f"{p.server_cpu_ms_per_request:.2f}"
+        client = "" if p.client_cpu_ms_per_request is None else f"{p.client_cpu_ms_per_request:.2f}"
+        unit = " items" if p.mode.startswith("batch") else ""
+        kinds = ", ".join(f"{n} x {kind}" for kind, n in sorted(p.error_kinds.items()))
+        errors = f"{p.errors} ({kinds})" if p.errors else "0"
+        lines.append(
+            f"| {p.database} | {p.mode} | {p.requests:,} | {errors} | {p.p50_ms:.2f} | "
+            f"{p.p99_ms:.2f} | {p.max_ms:.2f} | {p.per_second:,.0f}{unit} | {server} | {client} "
+            f"| {verdict(p)} |"
+        )
+    return "\n".join(lines) + "\n"
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(description=(__doc__ or "").splitlines()[0])
+    parser.add_argument("--quick", action="store_true", help="fewer requests")
+    parser.add_argument("--backend", choices=["sqlite", "postgresql"], action="append")
+    parser.add_argument("--out", type=Path, default=DEFAULT_OUT)
+    args = parser.parse_args(argv)
+    backends = args.backend or ["sqlite", "postgresql"]
+
+    phases: list[Phase] = []
+    skipped: dict[str, str] = {}
+    for backend in backends:
+        if backend == "sqlite":
+            with sqlite_database() as url:
+                phases += measure("sqlite", url, args.quick)
+            continue
+        reason = postgres_unavailable()
+        if reason is not None:
+            skipped["postgresql"] = reason
+            sys.stdout.write(f"PostgreSQL skipped: {reason}\n")
+            continue
+        with postgres_database() as url:
+            phases += measure("postgresql", url, args.quick)
+
+    sys.stdout.write(table(phases))
+    document: dict[str, Any] = {
+        "phases": [asdict(p) | {"target": verdict(p)} for p in phases],
+        "skipped": skipped,
+        "targets": {"p99_ms_one_client": P99_TARGET_MS, "requests_per_s": THROUGHPUT_TARGET},
+        "cpus": os.cpu_count(),
+    }
+    args.out.parent.mkdir(parents=True, exist_ok=True)
+    args.out.write_text(json.dumps(document, indent=2))
+    sys.stdout.write(f"wrote {args.out}\n")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

@@ -1,0 +1,193 @@
+"""`stockrelay run`: the HTTP API and solve workers together, for a laptop or a demo.
+
+The API (`stockrelay serve`) and each worker (`stockrelay worker`) run as child processes. Once
+the API answers and the demo network's policy is ready, an example request is printed. Ctrl-C
+(SIGINT), SIGTERM or SIGHUP stops everything: SIGTERM to each child, SIGKILL to any child still
+running after the grace period. If a child exits by itself, the others are stopped too.
+
+The children stay in the caller's process group, so a Ctrl-C typed at the terminal also reaches
+them directly (`make run` relies on that, and a killed supervisor cannot leave them deaf to
+it); a stop signal arriving twice is harmless to both uvicorn and the worker.
+"""
+
+from __future__ import annotations
+
+import json
+import signal
+import subprocess
+import sys
+import threading
+import time
+import urllib.request
+from collections.abc import Callable
+from dataclasses import dataclass
+from types import FrameType
+from typing import Any
+
+from service.schemas import DEMO_NETWORK, DEMO_STOCK
+
+__all__ = ["supervise"]
+
+# The worker may need up to 10 s to finish or hand back a solve; uvicorn a moment to drain.
+STOP_GRACE_SECONDS = 20.0
+# Start-up (imports, engine, migration check) takes about 2 s on a 2-core machine.
+READY_DEADLINE_SECONDS = 60.0
+SOLVE_DEADLINE_SECONDS = 60.0
+_POLL_SECONDS = 0.1
+_STOP_SIGNALS = (signal.SIGINT, signal.SIGTERM, signal.SIGHUP)
+# The probes go straight to our own children, whatever proxy the environment names.
+_DIRECT = urllib.request.build_opener(urllib.request.ProxyHandler({}))
+
+
+@dataclass
+class Child:
+    name: str
+    process: subprocess.Popen[bytes]
+
+    def exited(self) -> int | None:
+        return self.process.poll()
+
+
+def supervise(host: str, port: int, n_workers: int) -> int:
+    """Run the API on host:port and `n_workers` solve workers until a stop signal.
+
+    Returns 0 after a requested stop in which every child stopped within the grace period,
+    1 when a child exited by itself or had to be killed."""
+    stop = threading.Event()
+
+    def request_stop(signum: int, _frame: FrameType | None) -> None:
+        stop.set()
+
+    previous = {sig: signal.signal(sig, request_stop) for sig in _STOP_SIGNALS}
+    children: list[Child] = []
+    try:
+        command = [sys.executable, "-m", "service.cli"]
+        children.append(_start("API", [*command, "serve", "--host", host, "--port", str(port)]))
+        children.extend(_start(f"worker {n + 1}", [*command, "worker"]) for n in range(n_workers))
+        base = f"http://{_probe_host(host)}:{port}"
+        if _wait(
+            lambda: _get(base + "/readyz") is not None, stop, children, READY_DEADLINE_SECONDS
+        ):
+            _announce(base, n_workers, stop, children)
+        while not stop.is_set() and _first_exited(children) is None:
+            stop.wait(_POLL_SECONDS)
+        quit_early = _first_exited(children)
+        if quit_early is not None and not stop.is_set():
+            sys.stderr.write(
+                f"stockrelay: error: the {quit_early.name} exited with code "
+                f"{quit_early.exited()}; stopping the others\n"
+            )
+    finally:
+        killed = _stop_all(children)
+        for sig, handler in previous.items():
+            signal.signal(sig, handler)
+    requested = stop.is_set() and not killed
+    return 0 if requested else 1
+
+
+def _start(name: str, argv: list[str]) -> Child:
+    # stdin from /dev/null: a child must never compete with the terminal for input.
+    return Child(name, subprocess.Popen(argv, stdin=subprocess.DEVNULL))
+
+
+def _probe_host(host: str) -> str:
+    """Where to reach a server bound to `host` from this machine."""
+    if host in ("0.0.0.0", ""):
+        return "127.0.0.1"
+    if host == "::":
+        return "[::1]"
+    return f"[{host}]" if ":" in host else host
+
+
+def _get(url: str) -> Any:
+    """The JSON body of a 200 answer, None for anything else."""
+    try:
+        with _DIRECT.open(url, timeout=2) as response:
+            return json.loads(response.read())
+    except (OSError, ValueError):
+        return None
+
+
+def _first_exited(children: list[Child]) -> Child | None:
+    return next((child for child in children if child.exited() is not None), None)
+
+
+def _wait(
+    probe: Callable[[], bool], stop: threading.Event, children: list[Child], deadline: float
+) -> bool:
+    """Poll `probe` until true; False on a stop request, an exited child or the deadline."""
+    give_up = time.monotonic() + deadline
+    while not stop.is_set() and _first_exited(children) is None:
+        if probe():
+            return True
+        if time.monotonic() > give_up:
+            sys.stderr.write(f"stockrelay: gave up waiting after {deadline:.0f} s\n")
+            return False
+        stop.wait(_POLL_SECONDS)
+    return False
+
+
+def _demo_network_id(base: str) -> int | None:
+    networks = _get(base + "/v1/networks") or []
+    ids = [n["id"] for n in networks if n.get("name") == DEMO_NETWORK["name"]]
+    return min(ids) if ids else None
+
+
+def _discounted_state(base: str, network_id: int) -> str | None:
+    network = _get(f"{base}/v1/networks/{network_id}") or {}
+    states = [s["state"] for s in network.get("solves", []) if s["criterion"] == "discounted"]
+    return states[0] if states else None
+
+
+def _announce(base: str, n_workers: int, stop: threading.Event, children: list[Child]) -> None:
+    """Say where the API is and, once the demo network's policy is ready, how to ask it."""
+    workers = f"{n_workers} solve worker" + ("s" if n_workers != 1 else "")
+    lines = [f"stockrelay is running: API on {base} (documentation at {base}/docs), {workers}."]
+    network_id = _demo_network_id(base)
+    if network_id is None:
+        lines += ["List the networks:", "", f"  curl -s {base}/v1/networks"]
+    else:
+        state = None
+        if n_workers > 0:
+
+            def settled() -> bool:
+                nonlocal state
+                state = _discounted_state(base, network_id)
+                return state in ("ready", "failed", "not_requested")
+
+            _wait(settled, stop, children, SOLVE_DEADLINE_SECONDS)
+        if stop.is_set():
+            return
+        body = json.dumps({"stock": DEMO_STOCK})
+        lines += [
+            "Tonight's recommendation for the demo network:",
+            "",
+            f"  curl -s -X POST {base}/v1/networks/{network_id}/recommendation "
+            f"-H 'content-type: application/json' -d '{body}'",
+        ]
+        if state != "ready":
+            lines += ["", f"(its policy is not ready yet: {state}; until then the answer is 503)"]
+    lines += ["", "Ctrl-C stops the API and the workers."]
+    sys.stdout.write("\n" + "\n".join(lines) + "\n\n")
+    sys.stdout.flush()
+
+
+def _stop_all(children: list[Child]) -> bool:
+    """SIGTERM every running child, wait, SIGKILL stragglers. True when one had to be killed."""
+    running = [child for child in children if child.exited() is None]
+    if running:
+        names = ", ".join(child.name for child in running)
+        sys.stderr.write(f"stockrelay: stopping {names}\n")
+    for child in running:
+        child.process.send_signal(signal.SIGTERM)  # a no-op once it has exited
+    give_up = time.monotonic() + STOP_GRACE_SECONDS
+    killed = False
+    for child in children:
+        try:
+            child.process.wait(timeout=max(0.0, give_up - time.monotonic()))
+        except subprocess.TimeoutExpired:
+            sys.stderr.write(f"stockrelay: the {child.name} ignored SIGTERM; killing it\n")
+            child.process.kill()
+            child.process.wait(timeout=STOP_GRACE_SECONDS)
+            killed = True
+    return killed

@@ -1,0 +1,170 @@
+"""`stockrelay run` (what `make run` starts): the API and a worker as child processes, an example
+request that works as printed, and a Ctrl-C that leaves no process behind.
+
+Each run is started in a session of its own, so that its whole process group can be signalled
+the way a terminal does on Ctrl-C, and killed outright if a test fails halfway.
+"""
+
+from __future__ import annotations
+
+import os
+import shlex
+import signal
+import socket
+import subprocess
+import sys
+import time
+from collections.abc import Iterator
+from dataclasses import dataclass
+from pathlib import Path
+
+import httpx
+import pytest
+
+from tests.e2e.live import DEMO, ROOT, START_DEADLINE, environment, free_port, migrate
+
+STOP_DEADLINE = 30.0  # the supervisor's own grace period is 20 s
+
+
+@dataclass
+class Run:
+    process: subprocess.Popen[bytes]
+    out: Path
+    err: Path
+
+    def stdout(self) -> str:
+        return self.out.read_text(errors="replace")
+
+    def stderr(self) -> str:
+        return self.err.read_text(errors="replace")
+
+    def group_alive(self) -> bool:
+        try:
+            os.killpg(self.process.pid, 0)
+        except ProcessLookupError:
+            return False
+        return True
+
+
+class Runs:
+    def __init__(self, tmp_path: Path) -> None:
+        self.tmp_path = tmp_path
+        self.started: list[Run] = []
+
+    def start(self, url: str, port: int) -> Run:
+        n = len(self.started)
+        out, err = self.tmp_path / f"run-{n}.out", self.tmp_path / f"run-{n}.err"
+        with out.open("wb") as stdout, err.open("wb") as stderr:
+            process = subprocess.Popen(
+                [sys.executable, "-m", "service.cli", "run", "--port", str(port)],
+                cwd=ROOT,
+                env=environment(url, poll_interval=0.1),
+                stdin=subprocess.DEVNULL,
+                stdout=stdout,
+                stderr=stderr,
+                start_new_session=True,
+            )
+        run = Run(process, out, err)
+        self.started.append(run)
+        return run
+
+    def kill_all(self) -> None:
+        for run in self.started:
+            if run.group_alive():
+                os.killpg(run.process.pid, signal.SIGKILL)
+            run.process.wait(timeout=STOP_DEADLINE)
+
+
+@pytest.fixture
+def runs(tmp_path: Path) -> Iterator[Runs]:
+    pool = Runs(tmp_path)
+    try:
+        yield pool
+    finally:
+        pool.kill_all()
+
+
+@pytest.fixture
+def demo_database(tmp_path: Path) -> str:
+    """A migrated SQLite database with the demo network imported, as `make run` prepares it."""
+    url = f"sqlite:///{tmp_path / 'stockrelay.db'}"
+    migrate(url)
+    subprocess.run(
+        [sys.executable, "-m", "service.cli", "networks", "import", str(DEMO),
+         "--criteria", "discounted,average", "--skip-unchanged"],
+        cwd=ROOT, env=environment(url), check=True, capture_output=True, timeout=START_DEADLINE,
+    )  # fmt: skip
+    return url
+
+
+def wait_for_exit(run: Run) -> int:
+    try:
+        return run.process.wait(timeout=STOP_DEADLINE)
+    except subprocess.TimeoutExpired:
+        pytest.fail(f"stockrelay run did not stop:\n{run.stdout()}\n{run.stderr()}")
+
+
+def test_ctrl_c_stops_the_api_and_worker_after_the_printed_example_works(
+    demo_database: str, runs: Runs
+) -> None:
+    port = free_port()
+    run = runs.start(demo_database, port)
+    give_up = time.monotonic() + 2 * START_DEADLINE
+    while "curl" not in run.stdout():
+        assert run.process.poll() is None, run.stderr()
+        assert time.monotonic() < give_up, f"no example printed:\n{run.stdout()}\n{run.stderr()}"
+        time.sleep(0.1)
+    time.sleep(0.2)  # the rest of the announcement
+    [command] = [line.strip() for line in run.stdout().splitlines() if "curl" in line]
+    assert "not ready" not in run.stdout(), run.stdout()
+
+    argv = shlex.split(command)
+    assert argv[:4] == ["curl", "-s", "-X", "POST"]
+    url, body = argv[4], argv[argv.index("-d") + 1]
+    assert url == f"http://127.0.0.1:{port}/v1/networks/1/recommendation"
+    response = httpx.post(url, content=body, headers={"content-type": "application/json"})
+    assert response.status_code == 200, response.text
+    assert response.json()["transfers"] == [
+        {"from": "riverside", "to": "hilltop", "units": 3, "unit_cost": 4.25}
+    ]
+
+    os.killpg(run.process.pid, signal.SIGINT)  # what the terminal does on Ctrl-C
+    assert wait_for_exit(run) == 0, run.stderr()
+    assert not run.group_alive(), "a child of stockrelay run survived Ctrl-C"
+    with pytest.raises(httpx.TransportError):
+        httpx.get(f"http://127.0.0.1:{port}/healthz", timeout=2)
+
+
+def test_sigterm_to_the_supervisor_alone_stops_its_children(demo_database: str, runs: Runs) -> None:
+    port = free_port()
+    run = runs.start(demo_database, port)
+    give_up = time.monotonic() + 2 * START_DEADLINE
+    while "Ctrl-C stops" not in run.stdout():
+        assert run.process.poll() is None, run.stderr()
+        assert time.monotonic() < give_up, run.stderr()
+        time.sleep(0.1)
+
+    run.process.send_signal(signal.SIGTERM)
+    assert wait_for_exit(run) == 0, run.stderr()
+    assert not run.group_alive(), "a child of stockrelay run survived SIGTERM"
+
+
+def test_an_api_that_cannot_start_stops_the_worker_too(demo_database: str, runs: Runs) -> None:
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as taken:
+        taken.bind(("127.0.0.1", 0))
+        taken.listen()
+        run = runs.start(demo_database, taken.getsockname()[1])
+        code = wait_for_exit(run)
+
+    assert code == 1, run.stderr()
+    assert "address already in use" in run.stderr()
+    assert "the API exited with code 3; stopping the others" in run.stderr()  # uvicorn's 3
+    assert "stopping worker 1" in run.stderr()
+    assert not run.group_alive()
+
+
+def test_an_unmigrated_database_is_refused_in_one_line(tmp_path: Path, runs: Runs) -> None:
+    run = runs.start(f"sqlite:///{tmp_path / 'empty.db'}", free_port())
+    assert wait_for_exit(run) == 2
+    [line] = run.stderr().splitlines()
+    assert "stockrelay migrate" in line
