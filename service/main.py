@@ -8,10 +8,13 @@ from contextlib import asynccontextmanager
 from fastapi import FastAPI
 
 from service.api import closing, health, jobs, networks, policies, recommendations
+from service.api.deps import KeyCache
 from service.db.migrate import require_migrated
 from service.db.session import make_engine, make_session_factory
+from service.middleware import BodySizeLimit, Idempotency
 from service.policies import PolicyCache
-from service.problems import install_problem_handlers
+from service.problems import RequestId, install_problem_handlers
+from service.ratelimit import RateLimiter
 from service.settings import Settings
 
 __all__ = ["create_app"]
@@ -21,6 +24,9 @@ stockrelay answers "what should we move tonight, and what is it worth?" for netw
 locations sharing a scarce item. Each network version is solved exactly (a Markov decision
 process, Howard's policy iteration) by background workers; recommendations are read from the
 cached optimal policy. Errors are RFC 9457 problem details (application/problem+json).
+
+Every /v1 request needs `Authorization: Bearer <API key>` (`stockrelay keys create`); read
+scope for GET, write scope for POST, PUT and DELETE. POST and PUT accept an `Idempotency-Key`.
 """
 
 
@@ -37,6 +43,10 @@ def create_app(settings: Settings | None = None) -> FastAPI:
             app.state.engine = engine
             app.state.sessions = make_session_factory(engine)
             app.state.policy_cache = PolicyCache(settings.policy_cache_size)
+            app.state.key_cache = KeyCache(settings.key_cache_seconds)
+            app.state.rate_limiter = RateLimiter(
+                settings.rate_limit_per_second, settings.rate_limit_burst
+            )
             yield
         finally:
             engine.dispose()
@@ -51,4 +61,10 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     install_problem_handlers(app)
     for module in (networks, recommendations, closing, policies, jobs, health):
         app.include_router(module.router)
+    # Added last = outermost: request ids first, then the body limit, then idempotent replays.
+    app.add_middleware(
+        Idempotency, sessions=lambda: app.state.sessions, ttl_seconds=settings.idempotency_seconds
+    )
+    app.add_middleware(BodySizeLimit, max_bytes=settings.max_body_bytes)
+    app.add_middleware(RequestId)
     return app

@@ -56,6 +56,7 @@ async def send_problem(
 ) -> None:
     body = problem_body(None, status, slug, title, detail, **extensions)
     body["instance"] = scope.get("path")
+    body["request_id"] = scope.get("state", {}).get("request_id")
     raw = json.dumps(body).encode()
     header_list = [
         (b"content-type", PROBLEM_JSON.encode()),
@@ -93,17 +94,19 @@ async def _read_body(receive: Receive, limit: int) -> bytes:
     return b"".join(chunks)
 
 
-def _replaying(body: bytes) -> Receive:
+def _replaying(body: bytes, receive: Receive) -> Receive:
+    """The body already read, then the client's own messages (so that a streaming response
+    still learns of a real disconnect, and only of a real one)."""
     sent = False
 
-    async def receive() -> Message:
+    async def replay() -> Message:
         nonlocal sent
         if sent:
-            return {"type": "http.disconnect"}
+            return await receive()
         sent = True
         return {"type": "http.request", "body": body, "more_body": False}
 
-    return receive
+    return replay
 
 
 class BodySizeLimit:
@@ -124,7 +127,7 @@ class BodySizeLimit:
         except _TooLarge:
             await self._refuse(scope, send)
             return
-        await self.app(scope, _replaying(body), send)
+        await self.app(scope, _replaying(body, receive), send)
 
     async def _refuse(self, scope: Scope, send: Send) -> None:
         await send_problem(
@@ -184,7 +187,7 @@ class Idempotency:
             await send(message)
 
         try:
-            await self.app(scope, _replaying(body), capture)
+            await self.app(scope, _replaying(body, receive), capture)
         finally:
             await run_in_threadpool(self._settle, claimed, status, headers, b"".join(chunks))
 

@@ -96,12 +96,24 @@ def serve(args: argparse.Namespace) -> int:
     return 0
 
 
+DEMO_KEY_LABEL = "demo key made by `stockrelay run`"
+
+
 def run(args: argparse.Namespace) -> int:
+    """API and workers for trying stockrelay out, with a fresh write key for the default tenant
+    (the one made by the previous run is revoked)."""
     from service.supervisor import supervise
 
-    with _database():
-        pass  # refuse to start, with one line, on a database that is not migrated
-    return supervise(args.host, args.port, args.workers)
+    def demo_key(session: Session) -> str:
+        for key, _tenant in auth.list_keys(session):
+            if key.label == DEMO_KEY_LABEL and key.revoked_at is None:
+                auth.revoke_key(session, key.prefix)
+        tenant = repository.get_or_create_tenant(session, DEFAULT_TENANT)
+        return auth.create_key(session, tenant, "write", DEMO_KEY_LABEL)[1]
+
+    with _database() as (_settings, engine):  # refuses an un-migrated database in one line
+        key = _in_transaction(engine, demo_key)
+    return supervise(args.host, args.port, args.workers, key)
 
 
 def openapi_document() -> dict[str, Any]:

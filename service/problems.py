@@ -10,10 +10,10 @@ from __future__ import annotations
 
 import logging
 import uuid
-from collections.abc import Awaitable, Callable, Sequence
+from collections.abc import Sequence
 from typing import Any
 
-from fastapi import FastAPI, Request, Response
+from fastapi import FastAPI, Request
 from fastapi.encoders import jsonable_encoder
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import JSONResponse
@@ -26,10 +26,14 @@ from solver import InvalidStockError, ModelTooLargeError, NotUnichainError
 __all__ = [
     "ApiProblem",
     "Conflict",
+    "Forbidden",
     "InvalidInput",
     "NotFound",
     "PreconditionFailed",
     "PreconditionRequired",
+    "RateLimited",
+    "RequestId",
+    "Unauthorized",
     "install_problem_handlers",
     "problem_body",
 ]
@@ -48,11 +52,32 @@ class ApiProblem(Exception):
     status = 400
     slug = "bad-request"
     title = "Bad request"
+    headers: dict[str, str] | None = None
 
     def __init__(self, detail: str, **extensions: Any) -> None:
         super().__init__(detail)
         self.detail = detail
         self.extensions = extensions
+
+
+class Unauthorized(ApiProblem):
+    status, slug, title = 401, "unauthorized", "Unauthorized"
+
+    def __init__(self, detail: str) -> None:
+        super().__init__(detail)
+        self.headers = {"WWW-Authenticate": 'Bearer realm="stockrelay"'}
+
+
+class Forbidden(ApiProblem):
+    status, slug, title = 403, "forbidden", "Forbidden"
+
+
+class RateLimited(ApiProblem):
+    status, slug, title = 429, "rate-limited", "Too many requests"
+
+    def __init__(self, detail: str, *, retry_after: str) -> None:
+        super().__init__(detail)
+        self.headers = {"Retry-After": retry_after}
 
 
 class NotFound(ApiProblem):
@@ -189,16 +214,6 @@ def _pointer(loc: Sequence[int | str], body: Any = None) -> str:
 
 
 def install_problem_handlers(app: FastAPI) -> None:
-    @app.middleware("http")
-    async def request_id(
-        request: Request, call_next: Callable[[Request], Awaitable[Response]]
-    ) -> Response:
-        incoming = request.headers.get(REQUEST_ID_HEADER, "")
-        request.state.request_id = incoming[:100] if incoming else uuid.uuid4().hex
-        response = await call_next(request)
-        response.headers[REQUEST_ID_HEADER] = request.state.request_id
-        return response
-
     @app.exception_handler(RequestValidationError)
     async def validation(request: Request, exc: RequestValidationError) -> JSONResponse:
         errors = [
@@ -242,6 +257,8 @@ def install_problem_handlers(app: FastAPI) -> None:
         assert known is not None
         status, slug, title, detail, extensions = known
         headers = {"Retry-After": str(RETRY_AFTER_SECONDS)} if status == 503 else None
+        if isinstance(exc, ApiProblem) and exc.headers:
+            headers = exc.headers
         return _respond(request, status, slug, title, detail, headers, **extensions)
 
     for domain_error in DOMAIN_ERRORS:
@@ -261,3 +278,31 @@ def install_problem_handlers(app: FastAPI) -> None:
             f"an internal error occurred; quote request id {request_id}",
             headers={REQUEST_ID_HEADER: request_id},
         )
+
+
+class RequestId:
+    """Pure ASGI middleware: a request id from X-Request-ID (or a new one) in request.state and
+    on the response. (Starlette's BaseHTTPMiddleware would cost a task per request.)"""
+
+    def __init__(self, app: Any) -> None:
+        self.app = app
+
+    async def __call__(self, scope: Any, receive: Any, send: Any) -> None:
+        if scope["type"] != "http":
+            await self.app(scope, receive, send)
+            return
+        incoming = ""
+        for name, value in scope.get("headers", []):
+            if name == b"x-request-id":
+                incoming = value.decode("latin-1")[:100]
+        request_id = incoming or uuid.uuid4().hex
+        scope.setdefault("state", {})["request_id"] = request_id
+        header = (b"x-request-id", request_id.encode("latin-1"))
+
+        async def send_with_id(message: Any) -> None:
+            if message["type"] == "http.response.start":
+                headers = [h for h in message.get("headers", []) if h[0] != b"x-request-id"]
+                message["headers"] = [*headers, header]
+            await send(message)
+
+        await self.app(scope, receive, send_with_id)

@@ -36,6 +36,20 @@ class Settings(BaseSettings):
         int, Field(ge=0, description="Decoded policies kept in memory per process.")
     ] = 64
 
+    rate_limit_per_second: Annotated[
+        float, Field(gt=0, description="Sustained requests per second per API key.")
+    ] = 200.0
+    rate_limit_burst: Annotated[
+        int, Field(ge=1, description="Requests per API key allowed at once above the rate.")
+    ] = 400
+    max_body_bytes: Annotated[int, Field(ge=1024, description="Largest request body.")] = 4_194_304
+    idempotency_seconds: Annotated[
+        float, Field(gt=0, description="How long an Idempotency-Key's response is kept.")
+    ] = 86_400.0
+    key_cache_seconds: Annotated[
+        float, Field(ge=0, description="How long a process trusts a key it has checked.")
+    ] = 5.0
+
     @field_validator("database_url")
     @classmethod
     def _psycopg_for_postgresql(cls, url: str) -> str:

@@ -48,7 +48,7 @@ class Child:
         return self.process.poll()
 
 
-def supervise(host: str, port: int, n_workers: int) -> int:
+def supervise(host: str, port: int, n_workers: int, key: str) -> int:
     """Run the API on host:port and `n_workers` solve workers until a stop signal.
 
     Returns 0 after a requested stop in which every child stopped within the grace period,
@@ -68,7 +68,7 @@ def supervise(host: str, port: int, n_workers: int) -> int:
         if _wait(
             lambda: _get(base + "/readyz") is not None, stop, children, READY_DEADLINE_SECONDS
         ):
-            _announce(base, n_workers, stop, children)
+            _announce(base, n_workers, stop, children, key)
         while not stop.is_set() and _first_exited(children) is None:
             stop.wait(_POLL_SECONDS)
         quit_early = _first_exited(children)
@@ -99,10 +99,13 @@ def _probe_host(host: str) -> str:
     return f"[{host}]" if ":" in host else host
 
 
-def _get(url: str) -> Any:
+def _get(url: str, key: str | None = None) -> Any:
     """The JSON body of a 200 answer, None for anything else."""
+    request = urllib.request.Request(url)
+    if key is not None:
+        request.add_header("Authorization", f"Bearer {key}")
     try:
-        with _DIRECT.open(url, timeout=2) as response:
+        with _DIRECT.open(request, timeout=2) as response:
             return json.loads(response.read())
     except (OSError, ValueError):
         return None
@@ -127,32 +130,42 @@ def _wait(
     return False
 
 
-def _demo_network_id(base: str) -> int | None:
-    networks = _get(base + "/v1/networks") or []
+def _demo_network_id(base: str, key: str) -> int | None:
+    networks = _get(base + "/v1/networks", key) or []
     ids = [n["id"] for n in networks if n.get("name") == DEMO_NETWORK["name"]]
     return min(ids) if ids else None
 
 
-def _discounted_state(base: str, network_id: int) -> str | None:
-    network = _get(f"{base}/v1/networks/{network_id}") or {}
+def _discounted_state(base: str, network_id: int, key: str) -> str | None:
+    network = _get(f"{base}/v1/networks/{network_id}", key) or {}
     states = [s["state"] for s in network.get("solves", []) if s["criterion"] == "discounted"]
     return states[0] if states else None
 
 
-def _announce(base: str, n_workers: int, stop: threading.Event, children: list[Child]) -> None:
+def _announce(
+    base: str, n_workers: int, stop: threading.Event, children: list[Child], key: str
+) -> None:
     """Say where the API is and, once the demo network's policy is ready, how to ask it."""
     workers = f"{n_workers} solve worker" + ("s" if n_workers != 1 else "")
     lines = [f"stockrelay is running: API on {base} (documentation at {base}/docs), {workers}."]
-    network_id = _demo_network_id(base)
+    lines += [
+        "",
+        "A write key for the demo tenant, made for this run (only its hash is stored):",
+        "",
+        f"  export STOCKRELAY_KEY={key}",
+        "",
+    ]
+    auth_header = '-H "authorization: Bearer $STOCKRELAY_KEY"'
+    network_id = _demo_network_id(base, key)
     if network_id is None:
-        lines += ["List the networks:", "", f"  curl -s {base}/v1/networks"]
+        lines += ["List the networks:", "", f"  curl -s {base}/v1/networks {auth_header}"]
     else:
         state = None
         if n_workers > 0:
 
             def settled() -> bool:
                 nonlocal state
-                state = _discounted_state(base, network_id)
+                state = _discounted_state(base, network_id, key)
                 return state in ("ready", "failed", "not_requested")
 
             _wait(settled, stop, children, SOLVE_DEADLINE_SECONDS)
@@ -163,7 +176,7 @@ def _announce(base: str, n_workers: int, stop: threading.Event, children: list[C
             "Tonight's recommendation for the demo network:",
             "",
             f"  curl -s -X POST {base}/v1/networks/{network_id}/recommendation "
-            f"-H 'content-type: application/json' -d '{body}'",
+            f"{auth_header} -H 'content-type: application/json' -d '{body}'",
         ]
         if state != "ready":
             lines += ["", f"(its policy is not ready yet: {state}; until then the answer is 503)"]

@@ -12,7 +12,7 @@ from sqlalchemy import select
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
-from service.api.deps import CacheDep, SessionDep, TenantDep, get_network
+from service.api.deps import CacheDep, Reader, SessionDep, Writer, get_network
 from service.api.views import transfers_of
 from service.db import repository
 from service.db.base import utcnow
@@ -78,11 +78,11 @@ def _instruction(session: Session, network_id: int, business_date: date) -> Inst
 
 @router.put("/closing-stock", response_model=ClosingStockOut)
 def report_closing_stock(
-    network_id: int, location: str, body: ClosingStockIn, session: SessionDep, tenant_id: TenantDep
+    network_id: int, location: str, body: ClosingStockIn, session: SessionDep, caller: Writer
 ) -> ClosingStockOut:
     """Record this location's closing stock for a business date (a repeat replaces it, until
     the night's instructions have been issued)."""
-    network = get_network(session, tenant_id, network_id)
+    network = get_network(session, caller.tenant_id, network_id)
     spec = _current_spec(session, network)
     capacity = _check_location(spec, network_id, location)
     _check_date(network, body.business_date, "/business_date")
@@ -131,10 +131,10 @@ def location_instructions(
     business_date: Annotated[date, Query(description="The business day whose closing counts.")],
     session: SessionDep,
     cache: CacheDep,
-    tenant_id: TenantDep,
+    caller: Reader,
 ) -> InstructionsOut:
     """What this location sends and receives tonight; 409 until every location has reported."""
-    network = get_network(session, tenant_id, network_id)
+    network = get_network(session, caller.tenant_id, network_id)
     spec = _current_spec(session, network)
     _check_location(spec, network_id, location)
     _check_date(network, business_date, "query:/business_date")

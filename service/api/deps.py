@@ -1,23 +1,36 @@
 """Dependencies shared by the routers: settings, one session per request, the policy cache,
-and the tenant of the request."""
+and the caller's identity (API key, tenant, scope), rate-limited per key."""
 
 from __future__ import annotations
 
-from collections.abc import Iterator
-from typing import Annotated
+import hashlib
+import threading
+import time
+from collections.abc import Callable, Coroutine, Iterator
+from typing import Annotated, Any
 
 from fastapi import Depends, Request
 from sqlalchemy.orm import Session, sessionmaker
+from starlette.concurrency import run_in_threadpool
 
-from service.db import repository
+from service import auth
+from service.auth import Identity, Scope
 from service.db.tables import Network
 from service.policies import PolicyCache
-from service.problems import NotFound
+from service.problems import Forbidden, NotFound, RateLimited, Unauthorized
+from service.ratelimit import RateLimiter
 from service.settings import Settings
 
-__all__ = ["CacheDep", "SessionDep", "SettingsDep", "TenantDep", "get_network"]
-
-DEFAULT_TENANT = "default"
+__all__ = [
+    "Admin",
+    "CacheDep",
+    "Reader",
+    "SessionDep",
+    "SettingsDep",
+    "Writer",
+    "get_network",
+    "sessions_of",
+]
 
 
 # Reading app.state never blocks: async dependencies run on the event loop, where a plain `def`
@@ -27,9 +40,13 @@ async def get_settings(request: Request) -> Settings:
     return settings
 
 
-def get_session(request: Request) -> Iterator[Session]:
+def sessions_of(request: Request) -> sessionmaker[Session]:
     factory: sessionmaker[Session] = request.app.state.sessions
-    with factory.begin() as session:
+    return factory
+
+
+def get_session(request: Request) -> Iterator[Session]:
+    with sessions_of(request).begin() as session:
         yield session
 
 
@@ -43,12 +60,76 @@ SessionDep = Annotated[Session, Depends(get_session)]
 CacheDep = Annotated[PolicyCache, Depends(get_cache)]
 
 
-def get_tenant(session: SessionDep) -> int:
-    """The tenant whose networks the request may see. One tenant until API keys arrive."""
-    return repository.get_or_create_tenant(session, DEFAULT_TENANT).id
+class KeyCache:
+    """Identities of recently seen keys, by SHA-256 of the key, for `seconds`: a revoked key
+    stops working within that time. Keeps the key itself nowhere."""
+
+    def __init__(self, seconds: float) -> None:
+        self.seconds = seconds
+        self._entries: dict[str, tuple[float, Identity]] = {}
+        self._lock = threading.Lock()
+
+    def get(self, digest: str) -> Identity | None:
+        with self._lock:
+            entry = self._entries.get(digest)
+        if entry is None or entry[0] < time.monotonic():
+            return None
+        return entry[1]
+
+    def put(self, digest: str, identity: Identity) -> None:
+        with self._lock:
+            if len(self._entries) > 10_000:
+                self._entries.clear()
+            self._entries[digest] = (time.monotonic() + self.seconds, identity)
 
 
-TenantDep = Annotated[int, Depends(get_tenant)]
+def _lookup(request: Request, key: str) -> Identity | None:
+    with sessions_of(request)() as session:
+        return auth.authenticate(session, key)
+
+
+async def get_identity(request: Request) -> Identity:
+    """The caller, from `Authorization: Bearer KEY`; 401 without a valid key, 429 over the
+    key's request rate."""
+    header = request.headers.get("authorization", "")
+    scheme, _, key = header.partition(" ")
+    key = key.strip()
+    if scheme.lower() != "bearer" or not key:
+        raise Unauthorized("send Authorization: Bearer <API key>")
+    keys: KeyCache = request.app.state.key_cache
+    digest = hashlib.sha256(key.encode()).hexdigest()
+    identity = keys.get(digest)
+    if identity is None:
+        identity = await run_in_threadpool(_lookup, request, key)
+        if identity is None:
+            raise Unauthorized("the API key is not valid (unknown, malformed or revoked)")
+        keys.put(digest, identity)
+    limiter: RateLimiter = request.app.state.rate_limiter
+    wait = limiter.acquire(identity.key_prefix)
+    if wait > 0:
+        raise RateLimited(
+            f"more than {limiter.rate:g} requests per second with key {identity.key_prefix}",
+            retry_after=RateLimiter.retry_after(wait),
+        )
+    request.state.identity = identity
+    return identity
+
+
+def require(scope: Scope) -> Callable[..., Coroutine[Any, Any, Identity]]:
+    async def check(identity: Annotated[Identity, Depends(get_identity)]) -> Identity:
+        if not auth.scope_allows(identity.scope, scope):
+            raise Forbidden(
+                f"this needs a key with {scope} scope; key {identity.key_prefix} "
+                f"has {identity.scope}"
+            )
+        return identity
+
+    return check
+
+
+Reader = Annotated[Identity, Depends(require("read"))]
+Writer = Annotated[Identity, Depends(require("write"))]
+Admin = Annotated[Identity, Depends(require("admin"))]
 
 
 def get_network(

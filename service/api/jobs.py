@@ -6,7 +6,7 @@ from typing import Annotated, Literal
 
 from fastapi import APIRouter, Query
 
-from service.api.deps import SessionDep, TenantDep
+from service.api.deps import Reader, SessionDep
 from service.db import repository
 from service.problems import NotFound
 from service.schemas import JobOut
@@ -15,9 +15,9 @@ router = APIRouter(prefix="/v1/jobs", tags=["jobs"])
 
 
 @router.get("/{job_id}", response_model=JobOut)
-def get_job(job_id: int, session: SessionDep, tenant_id: TenantDep) -> JobOut:
+def get_job(job_id: int, session: SessionDep, caller: Reader) -> JobOut:
     job = repository.get_job(session, job_id)
-    if job is None or job.tenant_id != tenant_id:
+    if job is None or job.tenant_id != caller.tenant_id:
         raise NotFound(f"no job {job_id}")
     return JobOut.model_validate(job)
 
@@ -25,12 +25,12 @@ def get_job(job_id: int, session: SessionDep, tenant_id: TenantDep) -> JobOut:
 @router.get("", response_model=list[JobOut])
 def list_jobs(
     session: SessionDep,
-    tenant_id: TenantDep,
+    caller: Reader,
     state: Literal["queued", "running", "done", "failed"] | None = None,
     limit: Annotated[int, Query(ge=1, le=1000)] = 100,
 ) -> list[JobOut]:
     """Newest first."""
     return [
         JobOut.model_validate(job)
-        for job in repository.list_jobs(session, state, limit, tenant_id=tenant_id)
+        for job in repository.list_jobs(session, state, limit, tenant_id=caller.tenant_id)
     ]

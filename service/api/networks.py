@@ -6,7 +6,7 @@ from typing import Annotated
 
 from fastapi import APIRouter, Header, Response, status
 
-from service.api.deps import SessionDep, TenantDep, get_network
+from service.api.deps import Reader, SessionDep, Writer, get_network
 from service.api.views import network_out
 from service.db import repository
 from service.db.tables import Tenant
@@ -23,15 +23,15 @@ def _etag(version: int) -> str:
 
 @router.post("", status_code=status.HTTP_201_CREATED, response_model=NetworkCreated)
 def create_network(
-    body: NetworkCreate, session: SessionDep, tenant_id: TenantDep, response: Response
+    body: NetworkCreate, session: SessionDep, caller: Writer, response: Response
 ) -> NetworkOut:
     """Store a new network as version 1 and queue its solves."""
     spec = body.spec()
-    if repository.network_by_name(session, tenant_id, spec.name) is not None:
+    if repository.network_by_name(session, caller.tenant_id, spec.name) is not None:
         raise Conflict(
             f"a network named {spec.name!r} exists already; PUT /v1/networks/{{id}} adds a version"
         )
-    tenant = session.get_one(Tenant, tenant_id)
+    tenant = session.get_one(Tenant, caller.tenant_id)
     network, version, jobs = repository.create_network(session, tenant, spec, body.criteria)
     response.headers["Location"] = f"/v1/networks/{network.id}"
     response.headers["ETag"] = _etag(version.number)
@@ -40,21 +40,21 @@ def create_network(
 
 @router.get("", response_model=list[NetworkOut])
 def list_networks(
-    session: SessionDep, tenant_id: TenantDep, include_archived: bool = False
+    session: SessionDep, caller: Reader, include_archived: bool = False
 ) -> list[NetworkOut]:
     return [
         network_out(session, network)
-        for network in repository.list_networks(session, tenant_id)
+        for network in repository.list_networks(session, caller.tenant_id)
         if include_archived or not network.archived
     ]
 
 
 @router.get("/{network_id}", response_model=NetworkOut)
 def get_network_state(
-    network_id: int, session: SessionDep, tenant_id: TenantDep, response: Response
+    network_id: int, session: SessionDep, caller: Reader, response: Response
 ) -> NetworkOut:
     """The current version and the solve state of each criterion."""
-    network = get_network(session, tenant_id, network_id, archived_ok=True)
+    network = get_network(session, caller.tenant_id, network_id, archived_ok=True)
     out = network_out(session, network)
     response.headers["ETag"] = _etag(out.version)
     return out
@@ -65,14 +65,14 @@ def update_network(
     network_id: int,
     body: NetworkUpdate,
     session: SessionDep,
-    tenant_id: TenantDep,
+    caller: Writer,
     response: Response,
     if_match: Annotated[
         str | None, Header(description="The current version number, as given in ETag.")
     ] = None,
 ) -> NetworkOut:
     """Add the next version; If-Match must name the current version."""
-    network = get_network(session, tenant_id, network_id)
+    network = get_network(session, caller.tenant_id, network_id)
     current = repository.latest_version(session, network.id)
     assert current is not None
     if if_match is None:
@@ -88,7 +88,7 @@ def update_network(
         )
     spec: NetworkSpec = body.spec()
     if spec.name != network.name:
-        other = repository.network_by_name(session, tenant_id, spec.name)
+        other = repository.network_by_name(session, caller.tenant_id, spec.name)
         if other is not None and other.id != network.id:
             raise Conflict(f"another network is named {spec.name!r}")
         network.name = spec.name
@@ -98,16 +98,16 @@ def update_network(
 
 
 @router.delete("/{network_id}", status_code=status.HTTP_204_NO_CONTENT)
-def archive_network(network_id: int, session: SessionDep, tenant_id: TenantDep) -> Response:
+def archive_network(network_id: int, session: SessionDep, caller: Writer) -> Response:
     """Archive the network: it is kept, but serves no more recommendations."""
-    network = get_network(session, tenant_id, network_id)
+    network = get_network(session, caller.tenant_id, network_id)
     network.archived = True
     return Response(status_code=status.HTTP_204_NO_CONTENT)
 
 
 @router.get("/{network_id}/versions", response_model=list[VersionOut])
-def list_versions(network_id: int, session: SessionDep, tenant_id: TenantDep) -> list[VersionOut]:
-    network = get_network(session, tenant_id, network_id, archived_ok=True)
+def list_versions(network_id: int, session: SessionDep, caller: Reader) -> list[VersionOut]:
+    network = get_network(session, caller.tenant_id, network_id, archived_ok=True)
     return [
         VersionOut(
             number=version.number,

@@ -11,7 +11,7 @@ import numpy as np
 from fastapi import APIRouter, Query
 from fastapi.responses import StreamingResponse
 
-from service.api.deps import CacheDep, SessionDep, TenantDep, get_network
+from service.api.deps import CacheDep, Reader, SessionDep, get_network
 from service.policies import ServedPolicy, load_policy
 from service.schemas import CriterionName
 
@@ -36,11 +36,11 @@ def export_policy(
     network_id: int,
     session: SessionDep,
     cache: CacheDep,
-    tenant_id: TenantDep,
+    caller: Reader,
     format: Annotated[Literal["json", "csv"], Query()] = "json",
     criterion: CriterionName = "discounted",
 ) -> StreamingResponse:
-    network = get_network(session, tenant_id, network_id)
+    network = get_network(session, caller.tenant_id, network_id)
     served = load_policy(session, cache, network, criterion)
     headers = {
         "X-Policy-Version": str(served.version_number),

@@ -1,16 +1,25 @@
-"""Recommendations: one network's closing stock, or a batch of them."""
+"""Recommendations: one network's closing stock, or a batch of them.
+
+These are the hot paths: each runs all of its database work in one hop to the thread pool, and
+logs one audit line per recommendation served (request id, tenant, network, version, latency;
+never the key)."""
 
 from __future__ import annotations
 
+import json
 import logging
+import time
 from typing import Any
 
 from fastapi import APIRouter, Request
 from pydantic import ValidationError
+from sqlalchemy.orm import Session
+from starlette.concurrency import run_in_threadpool
 
-from service.api.deps import CacheDep, SessionDep, TenantDep, get_network
+from service.api.deps import CacheDep, Reader, get_network, sessions_of
 from service.api.views import recommendation_out
-from service.policies import recommend
+from service.auth import Identity
+from service.policies import PolicyCache, recommend
 from service.problems import problem_body, problem_for
 from service.schemas import (
     BatchItem,
@@ -24,46 +33,91 @@ from service.schemas import (
 
 router = APIRouter(tags=["recommendations"])
 log = logging.getLogger(__name__)
+audit = logging.getLogger("stockrelay.audit")
+
+
+def _audit(request: Request, caller: Identity, out: RecommendationOut, started: float) -> None:
+    audit.info(
+        json.dumps(
+            {
+                "event": "recommendation",
+                "request_id": request.state.request_id,
+                "tenant": caller.tenant,
+                "network_id": out.network_id,
+                "version": out.version,
+                "criterion": out.criterion,
+                "stale": out.stale,
+                "latency_ms": round(1000 * (time.perf_counter() - started), 3),
+            }
+        )
+    )
+
+
+def _recommend_one(
+    session: Session,
+    cache: PolicyCache,
+    tenant_id: int,
+    network_id: int,
+    stock: dict[str, int],
+    criterion: str,
+) -> RecommendationOut:
+    network = get_network(session, tenant_id, network_id)
+    served, recommendation = recommend(session, cache, network, stock, criterion)
+    return recommendation_out(network_id, criterion, served, recommendation)
 
 
 @router.post("/v1/networks/{network_id}/recommendation", response_model=RecommendationOut)
-def recommend_transfers(
+async def recommend_transfers(
     network_id: int,
     body: RecommendationRequest,
-    session: SessionDep,
+    request: Request,
     cache: CacheDep,
-    tenant_id: TenantDep,
+    caller: Reader,
 ) -> RecommendationOut:
     """Tonight's transfers from this closing stock, and what they are worth."""
-    network = get_network(session, tenant_id, network_id)
-    served, recommendation = recommend(session, cache, network, body.stock, body.criterion)
-    return recommendation_out(network_id, body.criterion, served, recommendation)
+    started = time.perf_counter()
+
+    def work() -> RecommendationOut:
+        with sessions_of(request).begin() as session:
+            return _recommend_one(
+                session, cache, caller.tenant_id, network_id, body.stock, body.criterion
+            )
+
+    out = await run_in_threadpool(work)
+    _audit(request, caller, out, started)
+    return out
 
 
 @router.post("/v1/recommendations/batch", response_model=BatchResponse)
-def recommend_batch(
-    body: BatchRequest,
-    request: Request,
-    session: SessionDep,
-    cache: CacheDep,
-    tenant_id: TenantDep,
+async def recommend_batch(
+    body: BatchRequest, request: Request, cache: CacheDep, caller: Reader
 ) -> BatchResponse:
     """Up to 1,000 recommendations, answered in order: one result or one problem per item, so a
     bad item never fails the others."""
-    return BatchResponse(
-        items=[
-            _one(index, raw, request, session, cache, tenant_id)
-            for index, raw in enumerate(body.items)
-        ]
-    )
+    started = time.perf_counter()
+
+    def work() -> BatchResponse:
+        with sessions_of(request).begin() as session:
+            return BatchResponse(
+                items=[
+                    _one(index, raw, request, session, cache, caller.tenant_id)
+                    for index, raw in enumerate(body.items)
+                ]
+            )
+
+    response = await run_in_threadpool(work)
+    for outcome in response.items:
+        if outcome.result is not None:
+            _audit(request, caller, outcome.result, started)
+    return response
 
 
 def _one(
     index: int,
     raw: Any,
     request: Request,
-    session: SessionDep,
-    cache: CacheDep,
+    session: Session,
+    cache: PolicyCache,
     tenant_id: int,
 ) -> BatchOutcome:
     try:
@@ -80,8 +134,10 @@ def _one(
         body = problem_body(request, 422, "invalid-input", "Invalid input", detail, errors=errors)
         return BatchOutcome(problem=Problem.model_validate(body))
     try:
-        network = get_network(session, tenant_id, item.network_id)
-        served, recommendation = recommend(session, cache, network, item.stock, item.criterion)
+        with session.begin_nested():
+            out = _recommend_one(
+                session, cache, tenant_id, item.network_id, item.stock, item.criterion
+            )
     except Exception as exc:
         known = problem_for(exc)
         if known is None:
@@ -99,6 +155,4 @@ def _one(
             }
         body = problem_body(request, status, slug, title, detail, item=index, **extensions)
         return BatchOutcome(problem=Problem.model_validate(body))
-    return BatchOutcome(
-        result=recommendation_out(item.network_id, item.criterion, served, recommendation)
-    )
+    return BatchOutcome(result=out)

@@ -22,8 +22,10 @@ from typing import Any, TypeVar
 import httpx
 import pytest
 
+from service.auth import create_key
 from service.db.migrate import upgrade
-from service.db.session import make_engine
+from service.db.repository import get_or_create_tenant
+from service.db.session import make_engine, make_session_factory
 
 ROOT = Path(__file__).resolve().parents[2]
 DEMO = ROOT / "service" / "data" / "demo_network.json"
@@ -48,6 +50,16 @@ def migrate(url: str) -> None:
     engine = make_engine(url)
     try:
         upgrade(engine)
+    finally:
+        engine.dispose()
+
+
+def api_key(url: str, tenant: str = "default") -> str:
+    """A new write key of `tenant` in the database at `url`."""
+    engine = make_engine(url)
+    try:
+        with make_session_factory(engine).begin() as session:
+            return create_key(session, get_or_create_tenant(session, tenant), "write")[1]
     finally:
         engine.dispose()
 

@@ -17,6 +17,7 @@ from tests.e2e.live import (
     ROOT,
     START_DEADLINE,
     Live,
+    api_key,
     demo_document,
     environment,
     free_port,
@@ -67,7 +68,9 @@ def test_recommendations_over_http_equal_the_in_process_solver(
     document = demo_document()
     spec = NetworkSpec.model_validate(document)
 
-    with httpx.Client(base_url=base, timeout=10) as client:
+    key = api_key(database_url)
+    auth = {"authorization": f"Bearer {key}"}
+    with httpx.Client(base_url=base, timeout=10, headers=auth) as client:
         created = client.post("/v1/networks", json={**document, "criteria": CRITERIA})
         assert created.status_code == 201, created.text
         network_id = created.json()["id"]

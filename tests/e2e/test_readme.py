@@ -29,7 +29,15 @@ import httpx
 import pytest
 
 from solver import NetworkSpec, solve_network
-from tests.e2e.live import DEMO, ROOT, Live, environment, migrate, wait_until_solved
+from tests.e2e.live import (
+    DEMO,
+    ROOT,
+    Live,
+    api_key,
+    environment,
+    migrate,
+    wait_until_solved,
+)
 
 README = ROOT / "README.md"
 MAKE_RUN_BASE = "http://127.0.0.1:8000"
@@ -257,7 +265,10 @@ def test_http_api_example_answers_as_shown(tmp_path: Path, live: Live) -> None:
     base = live.api(url)
     live.worker(url)
     method, target, headers, body = curl_request(curl, base)
-    with httpx.Client(base_url=base, timeout=10) as client:
+    # The README's curl takes the key `make run` prints from $STOCKRELAY_KEY.
+    key = api_key(url)
+    headers = {name: value.replace("$STOCKRELAY_KEY", key) for name, value in headers.items()}
+    with httpx.Client(base_url=base, timeout=10, headers=headers) as client:
         wait_until_solved(live, client, answer["network_id"], ["discounted", "average"])
         response = client.request(method, target, headers=headers, content=body)
         assert response.status_code == 200, response.text

@@ -118,11 +118,18 @@ def test_ctrl_c_stops_the_api_and_worker_after_the_printed_example_works(
     [command] = [line.strip() for line in run.stdout().splitlines() if "curl" in line]
     assert "not ready" not in run.stdout(), run.stdout()
 
-    argv = shlex.split(command)
+    [export] = [line.strip() for line in run.stdout().splitlines() if "STOCKRELAY_KEY=" in line]
+    key = export.removeprefix("export STOCKRELAY_KEY=")
+    argv = shlex.split(command.replace("$STOCKRELAY_KEY", key))
     assert argv[:4] == ["curl", "-s", "-X", "POST"]
     url, body = argv[4], argv[argv.index("-d") + 1]
     assert url == f"http://127.0.0.1:{port}/v1/networks/1/recommendation"
-    response = httpx.post(url, content=body, headers={"content-type": "application/json"})
+    assert f"authorization: Bearer {key}" in argv
+    response = httpx.post(
+        url,
+        content=body,
+        headers={"content-type": "application/json", "authorization": f"Bearer {key}"},
+    )
     assert response.status_code == 200, response.text
     assert response.json()["transfers"] == [
         {"from": "riverside", "to": "hilltop", "units": 3, "unit_cost": 4.25}

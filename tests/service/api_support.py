@@ -15,6 +15,8 @@ import pytest
 from fastapi.testclient import TestClient
 from sqlalchemy import Engine
 
+from service.auth import Scope, create_key
+from service.db.repository import get_or_create_tenant
 from service.db.session import make_session_factory
 from service.main import create_app
 from service.schemas import DEMO_NETWORK
@@ -29,6 +31,7 @@ __all__ = [
     "database_url_of",
     "demo_document",
     "expected_transfers",
+    "make_key",
     "open_client",
     "pointers",
     "run_worker",
@@ -58,7 +61,14 @@ def open_client(
     app = create_app(Settings(database_url=database_url_of(engine), **settings))
     with TestClient(app, raise_server_exceptions=raise_server_exceptions) as client:
         client.event_hooks = {"request": [_tag_request], "response": []}
+        client.headers["Authorization"] = f"Bearer {make_key(engine)}"
         yield client
+
+
+def make_key(engine: Engine, tenant: str = "test", scope: Scope = "write") -> str:
+    """A new API key of `tenant` with `scope`."""
+    with make_session_factory(engine).begin() as session:
+        return create_key(session, get_or_create_tenant(session, tenant), scope)[1]
 
 
 def _tag_request(request: httpx.Request) -> None:
