@@ -68,6 +68,9 @@ def _parser() -> argparse.ArgumentParser:
     serve = commands.add_parser("serve", help="run the HTTP API (uvicorn) until Ctrl-C")
     serve.add_argument("--host", default="127.0.0.1")
     serve.add_argument("--port", type=_positive, default=8000)
+    serve.add_argument(
+        "--workers", type=_positive, default=1, help="API processes (default 1; try one per core)"
+    )
     serve.set_defaults(handler=operations.serve)
 
     run = commands.add_parser(

@@ -2,10 +2,12 @@
 
 from __future__ import annotations
 
+import logging
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
 
 from fastapi import FastAPI
+from sqlalchemy.exc import OperationalError
 
 from service.api import closing, health, jobs, networks, policies, recommendations
 from service.api.deps import KeyCache
@@ -18,6 +20,8 @@ from service.ratelimit import RateLimiter
 from service.settings import Settings
 
 __all__ = ["create_app"]
+
+log = logging.getLogger(__name__)
 
 DESCRIPTION = """\
 stockrelay answers "what should we move tonight, and what is it worth?" for networks of retail
@@ -32,14 +36,18 @@ scope for GET, write scope for POST, PUT and DELETE. POST and PUT accept an `Ide
 
 def create_app(settings: Settings | None = None) -> FastAPI:
     """The API. The engine is built in the lifespan, which refuses a database that is not at the
-    schema revision this code needs."""
+    schema revision this code needs. A database that cannot be reached at start is not refused:
+    requests answer 503 and /readyz fails until it returns."""
     settings = settings or Settings()
 
     @asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
         engine = make_engine(settings.database_url)
         try:
-            require_migrated(engine)
+            try:
+                require_migrated(engine)
+            except OperationalError as exc:
+                log.warning("database unreachable at start (%s); /readyz will say so", exc.orig)
             app.state.engine = engine
             app.state.sessions = make_session_factory(engine)
             app.state.policy_cache = PolicyCache(settings.policy_cache_size)

@@ -92,7 +92,18 @@ def serve(args: argparse.Namespace) -> int:
 
     with _database() as (settings, _engine):
         pass  # refuse to start, with one line, on a database that is not migrated
-    uvicorn.run(create_app(settings), host=args.host, port=args.port, log_level="info")
+    if args.workers == 1:
+        uvicorn.run(create_app(settings), host=args.host, port=args.port, log_level="info")
+    else:
+        # Each process builds its own app (and reads the same environment).
+        uvicorn.run(
+            "service.main:create_app",
+            factory=True,
+            host=args.host,
+            port=args.port,
+            workers=args.workers,
+            log_level="info",
+        )
     return 0
 
 
