@@ -24,6 +24,7 @@ from service.policies import PolicyNotReadyError, StockProblemsError
 from solver import InvalidStockError, ModelTooLargeError, NotUnichainError
 
 __all__ = [
+    "PROBLEM_RESPONSES",
     "ApiProblem",
     "Conflict",
     "Forbidden",
@@ -230,7 +231,9 @@ def install_problem_handlers(app: FastAPI) -> None:
 
     @app.exception_handler(StarletteHTTPException)
     async def http_error(request: Request, exc: StarletteHTTPException) -> JSONResponse:
-        slug = {404: "not-found", 405: "method-not-allowed"}.get(exc.status_code, "http-error")
+        slug = {400: "malformed-body", 404: "not-found", 405: "method-not-allowed"}.get(
+            exc.status_code, "http-error"
+        )
         return _respond(
             request,
             exc.status_code,
@@ -306,3 +309,27 @@ class RequestId:
             await send(message)
 
         await self.app(scope, receive, send_with_id)
+
+
+_PROBLEM_STATUSES = {
+    400: "The request body is not readable JSON",
+    401: "No valid API key",
+    403: "The key lacks the scope",
+    404: "No such network, location or job (for this key's tenant)",
+    409: "Conflicts with the current state",
+    412: "If-Match names an older version",
+    413: "Request body too large",
+    422: "Invalid input; `errors` points at each offending field",
+    428: "If-Match required",
+    429: "Too many requests for this key; see Retry-After",
+    503: "Policy not ready, or database unavailable; see Retry-After",
+}
+
+# Documented on every /v1 route: the problems it may answer with, as application/problem+json.
+PROBLEM_RESPONSES: dict[int | str, dict[str, Any]] = {
+    status: {
+        "description": description,
+        "content": {PROBLEM_JSON: {"schema": {"$ref": "#/components/schemas/Problem"}}},
+    }
+    for status, description in _PROBLEM_STATUSES.items()
+}

@@ -4,11 +4,11 @@ NetworkSpec; everything else is defined here, inputs separate from outputs."""
 from __future__ import annotations
 
 import json
-from datetime import date, datetime
+from datetime import UTC, date, datetime
 from pathlib import Path
 from typing import Annotated, Any, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, StrictInt, WithJsonSchema
+from pydantic import AfterValidator, BaseModel, ConfigDict, Field, StrictInt, WithJsonSchema
 
 from solver import NetworkSpec
 
@@ -35,6 +35,14 @@ __all__ = [
 ]
 
 CriterionName = Literal["discounted", "average"]
+
+
+def _as_utc(moment: datetime) -> datetime:
+    """The database keeps naive UTC; the API always says so (RFC 3339, `Z`)."""
+    return moment.replace(tzinfo=UTC) if moment.tzinfo is None else moment.astimezone(UTC)
+
+
+Timestamp = Annotated[datetime, AfterValidator(_as_utc)]
 MAX_BATCH_ITEMS = 1000
 
 _DEMO = Path(__file__).parent / "data" / "demo_network.json"
@@ -77,9 +85,9 @@ class JobOut(_Out):
     criterion: str
     state: Literal["queued", "running", "done", "failed"]
     attempts: int
-    created_at: datetime
-    started_at: datetime | None
-    finished_at: datetime | None
+    created_at: Timestamp
+    started_at: Timestamp | None
+    finished_at: Timestamp | None
     solve_seconds: float | None
     iterations: int | None
     residual: float | None
@@ -92,7 +100,7 @@ class SolveState(BaseModel):
     criterion: str
     state: Literal["ready", "queued", "running", "failed", "not_requested"]
     job_id: int | None = None
-    solved_at: datetime | None = None
+    solved_at: Timestamp | None = None
     error: str | None = None
 
 
@@ -100,7 +108,7 @@ class NetworkOut(_Out):
     id: int
     name: str
     archived: bool
-    created_at: datetime
+    created_at: Timestamp
     version: int = Field(description="Current version number; send it in If-Match to update.")
     spec_hash: str = Field(description="SHA-256 of the current specification as canonical JSON.")
     solves: list[SolveState]
@@ -113,7 +121,7 @@ class NetworkCreated(NetworkOut):
 class VersionOut(_Out):
     number: int
     spec_hash: str
-    created_at: datetime
+    created_at: Timestamp
     spec: NetworkSpec
 
 
@@ -141,7 +149,7 @@ class RecommendationOut(BaseModel):
     criterion: str
     version: int = Field(description="Version whose policy answered.")
     stale: bool = Field(description="True when a newer version is still being solved.")
-    solved_at: datetime
+    solved_at: Timestamp
     residual: float
     stock: dict[str, int]
     transfers: list[TransferOut] = Field(description="Tonight's moves; empty when none pays.")
@@ -161,7 +169,7 @@ class RecommendationOut(BaseModel):
 class BatchItem(BaseModel):
     model_config = ConfigDict(extra="forbid")
 
-    network_id: int
+    network_id: Annotated[int, Field(ge=1, le=2_147_483_647)]
     stock: Stock
     criterion: CriterionName = "discounted"
 
@@ -220,7 +228,7 @@ class ClosingStockOut(BaseModel):
     location: str
     business_date: date
     units: int
-    reported_at: datetime
+    reported_at: Timestamp
     missing: list[str] = Field(description="Locations yet to report for this business date.")
 
 
@@ -235,7 +243,7 @@ class InstructionsOut(BaseModel):
     business_date: date
     version: int
     criterion: str
-    computed_at: datetime
+    computed_at: Timestamp
     send: list[Movement] = Field(description="Units this location sends tonight, by destination.")
     receive: list[Movement] = Field(description="Units this location receives, by origin.")
     stock: dict[str, int] = Field(description="The closing stock the instructions answer.")

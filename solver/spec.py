@@ -76,7 +76,10 @@ class PmfDemand(_Strict):
     """An explicit probability mass function: p[k] is the probability of k units."""
 
     dist: Literal["pmf"]
-    p: Annotated[list[_Amount], Field(min_length=1, max_length=100_000)]
+    p: Annotated[
+        list[Annotated[float, Field(ge=0, le=1, allow_inf_nan=False)]],
+        Field(min_length=1, max_length=100_000),
+    ]
 
     @field_validator("p")
     @classmethod

@@ -12,17 +12,21 @@ from sqlalchemy import select
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
-from service.api.deps import CacheDep, Reader, SessionDep, Writer, get_network
+from service.api.deps import CacheDep, NetworkId, Reader, SessionDep, Writer, get_network
 from service.api.views import transfers_of
 from service.db import repository
 from service.db.base import utcnow
 from service.db.tables import ClosingCount, Instruction, Network, NetworkVersion
 from service.policies import PolicyNotReadyError, StockProblemsError, recommend
-from service.problems import Conflict, InvalidInput, NotFound
+from service.problems import PROBLEM_RESPONSES, Conflict, InvalidInput, NotFound
 from service.schemas import ClosingStockIn, ClosingStockOut, InstructionsOut, Movement
 from solver import NetworkSpec
 
-router = APIRouter(prefix="/v1/networks/{network_id}/locations/{location}", tags=["closing"])
+router = APIRouter(
+    prefix="/v1/networks/{network_id}/locations/{location}",
+    tags=["closing"],
+    responses=PROBLEM_RESPONSES,
+)
 
 # Business dates are local to the stores; allow a day either side of the server's UTC date.
 _DATE_SLACK = timedelta(days=1)
@@ -68,7 +72,9 @@ def _counts(session: Session, network_id: int, business_date: date) -> dict[str,
     return {row.location_id: row.units for row in rows}
 
 
-def _instruction(session: Session, network_id: int, business_date: date) -> Instruction | None:
+def _instruction(
+    session: Session, network_id: NetworkId, business_date: date
+) -> Instruction | None:
     return session.scalars(
         select(Instruction).where(
             Instruction.network_id == network_id, Instruction.business_date == business_date
@@ -78,7 +84,7 @@ def _instruction(session: Session, network_id: int, business_date: date) -> Inst
 
 @router.put("/closing-stock", response_model=ClosingStockOut)
 def report_closing_stock(
-    network_id: int, location: str, body: ClosingStockIn, session: SessionDep, caller: Writer
+    network_id: NetworkId, location: str, body: ClosingStockIn, session: SessionDep, caller: Writer
 ) -> ClosingStockOut:
     """Record this location's closing stock for a business date (a repeat replaces it, until
     the night's instructions have been issued)."""
@@ -126,7 +132,7 @@ def report_closing_stock(
 
 @router.get("/instructions", response_model=InstructionsOut)
 def location_instructions(
-    network_id: int,
+    network_id: NetworkId,
     location: str,
     business_date: Annotated[date, Query(description="The business day whose closing counts.")],
     session: SessionDep,

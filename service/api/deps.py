@@ -9,7 +9,7 @@ import time
 from collections.abc import Callable, Coroutine, Iterator
 from typing import Annotated, Any
 
-from fastapi import Depends, Request
+from fastapi import Depends, Path, Request
 from sqlalchemy.orm import Session, sessionmaker
 from starlette.concurrency import run_in_threadpool
 
@@ -24,6 +24,8 @@ from service.settings import Settings
 __all__ = [
     "Admin",
     "CacheDep",
+    "JobId",
+    "NetworkId",
     "Reader",
     "SessionDep",
     "SettingsDep",
@@ -54,6 +56,11 @@ async def get_cache(request: Request) -> PolicyCache:
     cache: PolicyCache = request.app.state.policy_cache
     return cache
 
+
+# Ids are 32-bit in the database; larger ones can only be absent (and must not overflow a driver).
+MAX_ID = 2_147_483_647
+NetworkId = Annotated[int, Path(ge=1, le=MAX_ID, description="A network's id.")]
+JobId = Annotated[int, Path(ge=1, le=MAX_ID, description="A solve job's id.")]
 
 SettingsDep = Annotated[Settings, Depends(get_settings)]
 SessionDep = Annotated[Session, Depends(get_session)]

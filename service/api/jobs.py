@@ -6,16 +6,16 @@ from typing import Annotated, Literal
 
 from fastapi import APIRouter, Query
 
-from service.api.deps import Reader, SessionDep
+from service.api.deps import JobId, Reader, SessionDep
 from service.db import repository
-from service.problems import NotFound
+from service.problems import PROBLEM_RESPONSES, NotFound
 from service.schemas import JobOut
 
-router = APIRouter(prefix="/v1/jobs", tags=["jobs"])
+router = APIRouter(prefix="/v1/jobs", tags=["jobs"], responses=PROBLEM_RESPONSES)
 
 
 @router.get("/{job_id}", response_model=JobOut)
-def get_job(job_id: int, session: SessionDep, caller: Reader) -> JobOut:
+def get_job(job_id: JobId, session: SessionDep, caller: Reader) -> JobOut:
     job = repository.get_job(session, job_id)
     if job is None or job.tenant_id != caller.tenant_id:
         raise NotFound(f"no job {job_id}")

@@ -6,15 +6,15 @@ from typing import Annotated
 
 from fastapi import APIRouter, Header, Response, status
 
-from service.api.deps import Reader, SessionDep, Writer, get_network
+from service.api.deps import NetworkId, Reader, SessionDep, Writer, get_network
 from service.api.views import network_out
 from service.db import repository
 from service.db.tables import Tenant
-from service.problems import Conflict, PreconditionFailed, PreconditionRequired
+from service.problems import PROBLEM_RESPONSES, Conflict, PreconditionFailed, PreconditionRequired
 from service.schemas import NetworkCreate, NetworkCreated, NetworkOut, NetworkUpdate, VersionOut
 from solver import NetworkSpec
 
-router = APIRouter(prefix="/v1/networks", tags=["networks"])
+router = APIRouter(prefix="/v1/networks", tags=["networks"], responses=PROBLEM_RESPONSES)
 
 
 def _etag(version: int) -> str:
@@ -51,7 +51,7 @@ def list_networks(
 
 @router.get("/{network_id}", response_model=NetworkOut)
 def get_network_state(
-    network_id: int, session: SessionDep, caller: Reader, response: Response
+    network_id: NetworkId, session: SessionDep, caller: Reader, response: Response
 ) -> NetworkOut:
     """The current version and the solve state of each criterion."""
     network = get_network(session, caller.tenant_id, network_id, archived_ok=True)
@@ -62,7 +62,7 @@ def get_network_state(
 
 @router.put("/{network_id}", response_model=NetworkCreated)
 def update_network(
-    network_id: int,
+    network_id: NetworkId,
     body: NetworkUpdate,
     session: SessionDep,
     caller: Writer,
@@ -98,7 +98,7 @@ def update_network(
 
 
 @router.delete("/{network_id}", status_code=status.HTTP_204_NO_CONTENT)
-def archive_network(network_id: int, session: SessionDep, caller: Writer) -> Response:
+def archive_network(network_id: NetworkId, session: SessionDep, caller: Writer) -> Response:
     """Archive the network: it is kept, but serves no more recommendations."""
     network = get_network(session, caller.tenant_id, network_id)
     network.archived = True
@@ -106,7 +106,7 @@ def archive_network(network_id: int, session: SessionDep, caller: Writer) -> Res
 
 
 @router.get("/{network_id}/versions", response_model=list[VersionOut])
-def list_versions(network_id: int, session: SessionDep, caller: Reader) -> list[VersionOut]:
+def list_versions(network_id: NetworkId, session: SessionDep, caller: Reader) -> list[VersionOut]:
     network = get_network(session, caller.tenant_id, network_id, archived_ok=True)
     return [
         VersionOut(

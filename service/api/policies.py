@@ -11,11 +11,12 @@ import numpy as np
 from fastapi import APIRouter, Query
 from fastapi.responses import StreamingResponse
 
-from service.api.deps import CacheDep, Reader, SessionDep, get_network
+from service.api.deps import CacheDep, NetworkId, Reader, SessionDep, get_network
 from service.policies import ServedPolicy, load_policy
+from service.problems import PROBLEM_RESPONSES
 from service.schemas import CriterionName
 
-router = APIRouter(tags=["policies"])
+router = APIRouter(tags=["policies"], responses=PROBLEM_RESPONSES)
 
 _ROWS_PER_CHUNK = 4096
 
@@ -33,7 +34,7 @@ _EXPORT_DOC: dict[int | str, dict[str, Any]] = {
     "/v1/networks/{network_id}/policy", response_class=StreamingResponse, responses=_EXPORT_DOC
 )
 def export_policy(
-    network_id: int,
+    network_id: NetworkId,
     session: SessionDep,
     cache: CacheDep,
     caller: Reader,
@@ -77,7 +78,7 @@ def _csv(served: ServedPolicy) -> Iterator[str]:
         yield buffer.getvalue()
 
 
-def _json(served: ServedPolicy, network_id: int, criterion: str) -> Iterator[str]:
+def _json(served: ServedPolicy, network_id: NetworkId, criterion: str) -> Iterator[str]:
     head = {
         "network_id": network_id,
         "version": served.version_number,

@@ -16,11 +16,11 @@ from pydantic import ValidationError
 from sqlalchemy.orm import Session
 from starlette.concurrency import run_in_threadpool
 
-from service.api.deps import CacheDep, Reader, get_network, sessions_of
+from service.api.deps import CacheDep, NetworkId, Reader, get_network, sessions_of
 from service.api.views import recommendation_out
 from service.auth import Identity
 from service.policies import PolicyCache, recommend
-from service.problems import problem_body, problem_for
+from service.problems import PROBLEM_RESPONSES, problem_body, problem_for
 from service.schemas import (
     BatchItem,
     BatchOutcome,
@@ -31,7 +31,7 @@ from service.schemas import (
     RecommendationRequest,
 )
 
-router = APIRouter(tags=["recommendations"])
+router = APIRouter(tags=["recommendations"], responses=PROBLEM_RESPONSES)
 log = logging.getLogger(__name__)
 audit = logging.getLogger("stockrelay.audit")
 
@@ -57,7 +57,7 @@ def _recommend_one(
     session: Session,
     cache: PolicyCache,
     tenant_id: int,
-    network_id: int,
+    network_id: NetworkId,
     stock: dict[str, int],
     criterion: str,
 ) -> RecommendationOut:
@@ -68,7 +68,7 @@ def _recommend_one(
 
 @router.post("/v1/networks/{network_id}/recommendation", response_model=RecommendationOut)
 async def recommend_transfers(
-    network_id: int,
+    network_id: NetworkId,
     body: RecommendationRequest,
     request: Request,
     cache: CacheDep,

@@ -226,12 +226,12 @@ def test_solve_states_follow_the_worker(client: TestClient, engine: Engine) -> N
             jobs[criterion],
             None,
         )
-    started = datetime.now(UTC).replace(tzinfo=None)
+    started = datetime.now(UTC)
     assert run_worker(engine) == 2
     after = client.get(path).json()
     for solve in after["solves"]:
         assert solve["state"] == "ready" and solve["error"] is None
-        # Stored as naive UTC.
+        # Served as UTC (RFC 3339, "Z").
         assert datetime.fromisoformat(solve["solved_at"]) >= started.replace(microsecond=0)
 
 
