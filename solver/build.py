@@ -31,7 +31,13 @@ from solver.errors import ModelTooLargeError
 from solver.model import TransferModel, feasible_counts, flow_endpoints
 from solver.spec import LocationSpec, NetworkSpec
 
-__all__ = ["SizeLimits", "build_transfer_model", "location_kernel", "location_reward"]
+__all__ = [
+    "SizeLimits",
+    "build_transfer_model",
+    "check_size",
+    "location_kernel",
+    "location_reward",
+]
 
 
 @dataclass(frozen=True)
@@ -43,14 +49,57 @@ class SizeLimits:
     max_flows: int = 1_000_000
 
 
+@dataclass(frozen=True)
+class _Layout:
+    capacities: NDArray[np.int64]
+    lane_from: NDArray[np.int64]
+    lane_to: NDArray[np.int64]
+    lane_costs: NDArray[np.float64]
+    flows: NDArray[np.int64]
+    n_states: int
+    n_pairs: int
+
+
+def check_size(spec: NetworkSpec, limits: SizeLimits | None = None) -> tuple[int, int]:
+    """(stock states, feasible state-transfer pairs) of `spec`, without building its kernels.
+
+    Raises ModelTooLargeError, giving the sizes, when the network exceeds `limits`.
+    """
+    layout = _layout(spec, limits or SizeLimits())
+    return layout.n_states, layout.n_pairs
+
+
 def build_transfer_model(spec: NetworkSpec, limits: SizeLimits | None = None) -> TransferModel:
     """Turn a validated specification into model arrays.
 
     Raises ModelTooLargeError, giving the sizes, when the network exceeds `limits`.
     """
-    limits = limits or SizeLimits()
+    layout = _layout(spec, limits or SizeLimits())
+    capacities = layout.capacities
     ids = spec.location_ids
-    index = {location_id: i for i, location_id in enumerate(ids)}
+    kernels = tuple(location_kernel(loc) for loc in spec.locations)
+    reward = np.zeros(tuple(int(c) + 1 for c in capacities))
+    for i, loc in enumerate(spec.locations):
+        axis_shape = [1] * len(ids)
+        axis_shape[i] = -1
+        reward = reward + location_reward(loc).reshape(axis_shape)
+
+    return TransferModel(
+        location_ids=tuple(ids),
+        capacities=capacities,
+        lane_from=layout.lane_from,
+        lane_to=layout.lane_to,
+        lane_costs=layout.lane_costs,
+        flows=layout.flows,
+        kernels=kernels,
+        reward=reward,
+        discount=spec.discount,
+    )
+
+
+def _layout(spec: NetworkSpec, limits: SizeLimits) -> _Layout:
+    """Sizes and the flow table, checked against `limits` (states first: that check is free)."""
+    index = {location_id: i for i, location_id in enumerate(spec.location_ids)}
     capacities = np.array([loc.capacity for loc in spec.locations], dtype=np.int64)
     n_states = int(np.prod(capacities + 1, dtype=np.float64))
     if n_states > limits.max_states:
@@ -69,7 +118,7 @@ def build_transfer_model(spec: NetworkSpec, limits: SizeLimits | None = None) ->
     flows = _enumerate_flows(
         lane_from, lane_to, lane_costs, lane_limits, capacities, spec.max_units_per_night, limits
     )
-    out, inn = flow_endpoints(flows, lane_from, lane_to, len(ids))
+    out, inn = flow_endpoints(flows, lane_from, lane_to, len(index))
     n_pairs = int(feasible_counts(out, inn, capacities).sum())
     if n_pairs > limits.max_pairs:
         raise ModelTooLargeError(
@@ -79,25 +128,7 @@ def build_transfer_model(spec: NetworkSpec, limits: SizeLimits | None = None) ->
             states=n_states,
             pairs=n_pairs,
         )
-
-    kernels = tuple(location_kernel(loc) for loc in spec.locations)
-    reward = np.zeros(tuple(int(c) + 1 for c in capacities))
-    for i, loc in enumerate(spec.locations):
-        axis_shape = [1] * len(ids)
-        axis_shape[i] = -1
-        reward = reward + location_reward(loc).reshape(axis_shape)
-
-    return TransferModel(
-        location_ids=tuple(ids),
-        capacities=capacities,
-        lane_from=lane_from,
-        lane_to=lane_to,
-        lane_costs=lane_costs,
-        flows=flows,
-        kernels=kernels,
-        reward=reward,
-        discount=spec.discount,
-    )
+    return _Layout(capacities, lane_from, lane_to, lane_costs, flows, n_states, n_pairs)
 
 
 def location_kernel(location: LocationSpec) -> NDArray[np.float64]:

@@ -6,13 +6,14 @@ from typing import Annotated
 
 from fastapi import APIRouter, Header, Response, status
 
-from service.api.deps import NetworkId, Reader, SessionDep, Writer, get_network
+from service.api.deps import NetworkId, Reader, SessionDep, SettingsDep, Writer, get_network
 from service.api.views import network_out
 from service.db import repository
 from service.db.tables import Tenant
 from service.problems import PROBLEM_RESPONSES, Conflict, PreconditionFailed, PreconditionRequired
 from service.schemas import NetworkCreate, NetworkCreated, NetworkOut, NetworkUpdate, VersionOut
 from solver import NetworkSpec
+from solver.build import check_size
 
 router = APIRouter(prefix="/v1/networks", tags=["networks"], responses=PROBLEM_RESPONSES)
 
@@ -23,10 +24,16 @@ def _etag(version: int) -> str:
 
 @router.post("", status_code=status.HTTP_201_CREATED, response_model=NetworkCreated)
 def create_network(
-    body: NetworkCreate, session: SessionDep, caller: Writer, response: Response
+    body: NetworkCreate,
+    session: SessionDep,
+    caller: Writer,
+    settings: SettingsDep,
+    response: Response,
 ) -> NetworkOut:
-    """Store a new network as version 1 and queue its solves."""
+    """Store a new network as version 1 and queue its solves; 422 with the sizes when it is
+    larger than the solver accepts."""
     spec = body.spec()
+    check_size(spec, settings.size_limits)
     if repository.network_by_name(session, caller.tenant_id, spec.name) is not None:
         raise Conflict(
             f"a network named {spec.name!r} exists already; PUT /v1/networks/{{id}} adds a version"
@@ -66,6 +73,7 @@ def update_network(
     body: NetworkUpdate,
     session: SessionDep,
     caller: Writer,
+    settings: SettingsDep,
     response: Response,
     if_match: Annotated[
         str | None, Header(description="The current version number, as given in ETag.")
@@ -87,6 +95,7 @@ def update_network(
             current_version=current.number,
         )
     spec: NetworkSpec = body.spec()
+    check_size(spec, settings.size_limits)
     if spec.name != network.name:
         other = repository.network_by_name(session, caller.tenant_id, spec.name)
         if other is not None and other.id != network.id:

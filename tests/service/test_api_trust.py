@@ -211,3 +211,28 @@ def test_each_recommendation_is_audited_without_the_key(
         assert line["latency_ms"] > 0
         assert key not in record.getMessage()
         assert key[:13] not in caplog.text
+
+
+@sqlite_only
+def test_networks_beyond_the_solver_limits_are_refused_with_their_sizes(engine: Engine) -> None:
+    # Capacity 8 at both stores: 404 state-transfer pairs with the demo lanes (limits 4 and 3),
+    # 489 with both lanes at 8.
+    with open_client(engine, max_states=100, max_pairs=450) as client:
+        large = client.post("/v1/networks", json=demo_document())
+        problem = assert_problem(large, 422, "network-too-large")
+        assert problem["states"] == 15 * 10 and problem["pairs"] is None
+        assert "150 stock states" in problem["detail"] and "100" in problem["detail"]
+        assert client.get("/v1/networks").json() == []
+
+        small = demo_document()
+        for location in small["locations"]:
+            location["capacity"] = 8
+        created = create_network(client, small)  # 81 states: fits
+        lanes = demo_document()["lanes"]
+        for lane in lanes:
+            lane["max_units"] = 8
+        busy = {**small, "lanes": lanes}
+        update = client.put(f"/v1/networks/{created['id']}", json=busy, headers={"If-Match": '"1"'})
+        problem = assert_problem(update, 422, "network-too-large")
+        assert problem["pairs"] == 489 and "450 pairs" in problem["detail"]
+        assert client.get(f"/v1/networks/{created['id']}").json()["version"] == 1
