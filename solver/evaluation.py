@@ -117,31 +117,13 @@ def _krylov_discounted(
     v0: NDArray[np.float64],
     tolerance: float,
 ) -> NDArray[np.float64]:
-    # Unknowns x = (b, u(1), ..., u(S-1)) with v = b / (1 - beta) + u and u(0) = 0. Since
-    # P_sigma 1 = 1, (I - beta P_sigma) v = b 1 + (I - beta P_sigma) u: the nearly singular
-    # constant direction (eigenvalue 1 - beta) becomes an ordinary unknown, so GMRES converges at
-    # a rate set by the chain's mixing rather than by the discount.
-    n = chain.reward.size
-
-    def unpack(x: NDArray[np.float64]) -> tuple[float, NDArray[np.float64]]:
-        u = x.reshape(-1).copy()
-        b = float(u[0])
-        u[0] = 0.0
-        return b, u
-
-    def matvec(x: NDArray[np.float64]) -> NDArray[np.float64]:
-        b, u = unpack(x)
-        return b + u - discount * chain.apply(u)
-
-    x0 = v0 - v0[0]
-    x0[0] = (1.0 - discount) * v0[0]
-    x = _solve(
-        LinearOperator((n, n), matvec=matvec, dtype=np.float64),
-        chain.reward,
-        x0,
-        tolerance * (1.0 - discount),
+    # Write v = b / (1 - beta) + u with u(0) = 0. Since P_sigma 1 = 1,
+    # (I - beta P_sigma) v = b 1 + (I - beta P_sigma) u: the nearly singular constant direction
+    # (eigenvalue 1 - beta) becomes an ordinary unknown, so the Krylov solver converges at a rate
+    # set by the chain's mixing rather than by the discount.
+    b, u = _bordered_solve(
+        chain, discount, (1.0 - discount) * v0[0], v0 - v0[0], tolerance * (1.0 - discount)
     )
-    b, u = unpack(x)
     solution: NDArray[np.float64] = u + b / (1.0 - discount)
     return solution
 
@@ -152,29 +134,38 @@ def evaluate_average(
     gain0: float,
     bias0: NDArray[np.float64],
     tolerance: float,
-) -> tuple[float, NDArray[np.float64], float]:
-    """Gain (currency per day) and bias (shape (n_states,), bias[0] = 0) of a unichain policy.
+) -> tuple[float, NDArray[np.float64]]:
+    """Gain (currency per day) and bias (shape (n_states,), bias[0] = 0) of a unichain policy,
+    to an absolute residual `tolerance` of h + g - r_sigma - P_sigma h (2-norm)."""
+    return _bordered_solve(chain, 1.0, gain0, bias0, tolerance)
 
-    Returns (gain, bias, residual) where residual is ||h + g - r - P h||_inf of the answer.
-    """
+
+def _bordered_solve(
+    chain: PolicyChain,
+    beta: float,
+    scalar0: float,
+    vector0: NDArray[np.float64],
+    atol: float,
+) -> tuple[float, NDArray[np.float64]]:
+    """Solve c 1 + (I - beta P_sigma) w = r_sigma for (c, w) with w(0) = 0, from (scalar0,
+    vector0): the scalar c takes the place of the unknown w(0). With beta = 1 this is the
+    average criterion's gain and bias; it is nonsingular when P_sigma is unichain."""
     n = chain.reward.size
 
     def unpack(x: NDArray[np.float64]) -> tuple[float, NDArray[np.float64]]:
-        h = x.reshape(-1).copy()
-        g = float(h[0])
-        h[0] = 0.0
-        return g, h
+        w = x.reshape(-1).copy()
+        c = float(w[0])
+        w[0] = 0.0
+        return c, w
 
     def matvec(x: NDArray[np.float64]) -> NDArray[np.float64]:
-        g, h = unpack(x)
-        return h + g - chain.apply(h)
+        c, w = unpack(x)
+        return c + w - beta * chain.apply(w)
 
-    x0 = bias0.copy()
-    x0[0] = gain0
-    x = _solve(LinearOperator((n, n), matvec=matvec, dtype=np.float64), chain.reward, x0, tolerance)
-    g, h = unpack(x)
-    residual = float(np.max(np.abs(h + g - chain.reward - chain.apply(h))))
-    return g, h, residual
+    x0 = vector0.copy()
+    x0[0] = scalar0
+    operator = LinearOperator((n, n), matvec=matvec, dtype=np.float64)
+    return unpack(_solve(operator, chain.reward, x0, atol))
 
 
 def _solve(

@@ -98,7 +98,7 @@ def solve_policy_iteration(
             nonlocal gain
             if not every_policy_unichain:
                 _require_unichain(model, chain.post_move, iteration)
-            gain, bias, _ = evaluate_average(chain, gain0=gain, bias0=v0, tolerance=tolerance)
+            gain, bias = evaluate_average(chain, gain0=gain, bias0=v0, tolerance=tolerance)
             return bias
 
     else:

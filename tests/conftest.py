@@ -66,19 +66,17 @@ def database_url(
     if request.param == "sqlite":
         yield f"sqlite:///{tmp_path_factory.mktemp('db') / 'stockrelay.db'}"
         return
-    reason = postgres_unavailable()
-    if reason is not None:
-        pytest.skip(reason)
-    name, url = _fresh_postgres_database()
-    try:
-        yield url
-    finally:
-        _drop_postgres_database(name)
+    yield from _postgres_database()
 
 
 @pytest.fixture
 def postgres_url() -> Iterator[str]:
     """An empty PostgreSQL database, for tests of concurrency that SQLite cannot show."""
+    yield from _postgres_database()
+
+
+def _postgres_database() -> Iterator[str]:
+    """A fresh PostgreSQL database for one test, dropped after it; skips when no server."""
     reason = postgres_unavailable()
     if reason is not None:
         pytest.skip(reason)
