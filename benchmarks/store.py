@@ -22,17 +22,19 @@ import statistics
 import subprocess
 import sys
 import time
-import uuid
 from collections.abc import Iterator, Sequence
 from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
 
-from sqlalchemy import create_engine, func, select, text
+from sqlalchemy import func, select
 from sqlalchemy.orm import Session, sessionmaker
 
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
+sys.path.insert(0, str(ROOT / "benchmarks"))
+
+import api  # noqa: E402  (scratch PostgreSQL databases, shared with benchmarks/api.py)
 
 from service.db import repository  # noqa: E402
 from service.db.migrate import upgrade  # noqa: E402
@@ -41,7 +43,6 @@ from service.db.tables import JobState, Network, NetworkVersion, Policy, SolveJo
 from service.policies import PolicyCache, load_policy  # noqa: E402
 from solver import NetworkSpec  # noqa: E402
 
-ADMIN_URL = "postgresql+psycopg://postgres@127.0.0.1:5432/test"
 DEMO = ROOT / "service" / "data" / "demo_network.json"
 DEFAULT_OUT = ROOT / "benchmarks" / "results" / "store.json"
 
@@ -54,20 +55,6 @@ def network(capacity: int, variant: int) -> NetworkSpec:
         location["capacity"] = capacity
     document["locations"][1]["demand"]["mean"] = 1.7 + 0.01 * variant
     return NetworkSpec.model_validate(document)
-
-
-@contextmanager
-def scratch_database() -> Iterator[str]:
-    name = f"stockrelay_bench_{uuid.uuid4().hex[:10]}"
-    admin = create_engine(ADMIN_URL, isolation_level="AUTOCOMMIT")
-    with admin.connect() as connection:
-        connection.execute(text(f'CREATE DATABASE "{name}"'))
-    try:
-        yield f"postgresql+psycopg://postgres@127.0.0.1:5432/{name}"
-    finally:
-        with admin.connect() as connection:
-            connection.execute(text(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)'))
-        admin.dispose()
 
 
 @contextmanager
@@ -188,7 +175,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     plan = {20: 60, 100: 16} if not args.quick else {20: 12, 100: 4}
 
     results: dict[str, Any] = {"throughput": [], "load": {}, "size": {}}
-    with scratch_database() as url:
+    with api.postgres_database() as url:
         engine = make_engine(url)
         upgrade(engine)
         engine.dispose()

@@ -63,7 +63,9 @@ NetworkId = Annotated[int, Path(ge=1, le=MAX_ID, description="A network's id.")]
 JobId = Annotated[int, Path(ge=1, le=MAX_ID, description="A solve job's id.")]
 
 SettingsDep = Annotated[Settings, Depends(get_settings)]
-SessionDep = Annotated[Session, Depends(get_session)]
+# scope="function": the transaction commits before the response is sent, so a client that
+# acts on a 201 at once finds what it created, and a failed commit is the client's answer too.
+SessionDep = Annotated[Session, Depends(get_session, scope="function")]
 CacheDep = Annotated[PolicyCache, Depends(get_cache)]
 
 
