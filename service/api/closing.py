@@ -63,6 +63,11 @@ def _check_date(network: Network, business_date: date, pointer: str) -> None:
         )
 
 
+def _missing(spec: NetworkSpec, counts: dict[str, int]) -> list[str]:
+    """Locations of the current version that have not reported, in network order."""
+    return [location.id for location in spec.locations if location.id not in counts]
+
+
 def _counts(session: Session, network_id: int, business_date: date) -> dict[str, int]:
     rows = session.scalars(
         select(ClosingCount).where(
@@ -126,7 +131,7 @@ def report_closing_stock(
         business_date=body.business_date,
         units=body.units,
         reported_at=row.reported_at,
-        missing=[loc.id for loc in spec.locations if loc.id not in counts],
+        missing=_missing(spec, counts),
     )
 
 
@@ -147,7 +152,7 @@ def location_instructions(
     issued = _instruction(session, network_id, business_date)
     if issued is None:
         counts = _counts(session, network_id, business_date)
-        missing = [loc.id for loc in spec.locations if loc.id not in counts]
+        missing = _missing(spec, counts)
         if missing:
             raise Conflict(
                 f"waiting for the closing stock of {', '.join(missing)} for {business_date}",

@@ -4,11 +4,9 @@ read one plan, equal to the solver's recommendation from the full closing stock,
 from __future__ import annotations
 
 import itertools
-from collections.abc import Iterator
 from datetime import UTC, date, datetime, timedelta
 from typing import Any
 
-import pytest
 from fastapi.testclient import TestClient
 from sqlalchemy import Engine
 
@@ -18,7 +16,6 @@ from tests.service.api_support import (
     create_network,
     demo_document,
     expected_transfers,
-    open_client,
     pointers,
     run_worker,
     sqlite_only,
@@ -26,12 +23,6 @@ from tests.service.api_support import (
 )
 
 DEMO_SPEC = NetworkSpec.model_validate(demo_document())
-
-
-@pytest.fixture
-def client(engine: Engine) -> Iterator[TestClient]:
-    with open_client(engine) as test_client:
-        yield test_client
 
 
 def today() -> date:

@@ -4,11 +4,10 @@ with If-Match, archiving, and 404s on every network route."""
 from __future__ import annotations
 
 import hashlib
-from collections.abc import Callable, Iterator
+from collections.abc import Callable
 from datetime import UTC, datetime
 from typing import Any
 
-import pytest
 from fastapi.testclient import TestClient
 from sqlalchemy import Engine
 
@@ -18,17 +17,10 @@ from tests.service.api_support import (
     assert_problem,
     create_network,
     demo_document,
-    open_client,
     pointers,
     run_worker,
     sqlite_only,
 )
-
-
-@pytest.fixture
-def client(engine: Engine) -> Iterator[TestClient]:
-    with open_client(engine) as test_client:
-        yield test_client
 
 
 def spec_hash_of(document: dict[str, Any]) -> str:

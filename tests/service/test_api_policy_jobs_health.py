@@ -7,7 +7,6 @@ import csv
 import io
 import json
 import re
-from collections.abc import Iterator
 from datetime import datetime
 
 import numpy as np
@@ -24,7 +23,6 @@ from tests.service.api_support import (
     assert_problem,
     create_network,
     demo_document,
-    open_client,
     pointers,
     run_worker,
     sqlite_only,
@@ -33,12 +31,6 @@ from tests.service.api_support import (
 DEMO_SPEC = NetworkSpec.model_validate(demo_document())
 # Worker and test solve the same model; only the order of floating-point sums may differ.
 RTOL, ATOL = 1e-9, 1e-7
-
-
-@pytest.fixture
-def client(engine: Engine) -> Iterator[TestClient]:
-    with open_client(engine) as test_client:
-        yield test_client
 
 
 def expected_columns(spec: NetworkSpec) -> list[str]:

@@ -5,7 +5,6 @@ to the in-process solver after it, stale while a newer version waits, and a prob
 from __future__ import annotations
 
 import logging
-from collections.abc import Iterator
 from typing import Any
 
 import numpy as np
@@ -32,12 +31,6 @@ from tests.service.api_support import (
 DEMO_SPEC = NetworkSpec.model_validate(demo_document())
 # Worker and test solve the same model; only the order of floating-point sums may differ.
 RTOL, ATOL = 1e-9, 1e-7
-
-
-@pytest.fixture
-def client(engine: Engine) -> Iterator[TestClient]:
-    with open_client(engine) as test_client:
-        yield test_client
 
 
 def solved_demo(client: TestClient, engine: Engine) -> int:
