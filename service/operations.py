@@ -59,7 +59,7 @@ def load_settings() -> Settings:
 @contextmanager
 def _database(*, migrated: bool = True) -> Iterator[tuple[Settings, Engine]]:
     settings = load_settings()
-    engine = make_engine(settings.database_url)
+    engine = make_engine(settings.database_url, pool_size=settings.database_pool_size)
     try:
         if migrated:
             require_migrated(engine)

@@ -13,25 +13,33 @@ from collections import OrderedDict
 from collections.abc import Mapping
 from dataclasses import dataclass
 from datetime import datetime
+from typing import Protocol
 
 from sqlalchemy.orm import Session
 
 from service.codec import CorruptPolicyError, decode_policy
 from service.db import repository
-from service.db.tables import Network, NetworkVersion
+from service.db.tables import NetworkVersion
 from solver import InvalidStockError, PolicyResult, Recommendation
 
 __all__ = [
+    "NetworkKey",
+    "NetworkRef",
     "PolicyCache",
     "PolicyNotReadyError",
     "ServedPolicy",
     "StockProblemsError",
+    "UnknownNetworkError",
     "load_policy",
     "recommend",
     "stock_vector",
 ]
 
 log = logging.getLogger(__name__)
+
+
+class UnknownNetworkError(LookupError):
+    """The network is missing, archived, or another tenant's (which looks exactly the same)."""
 
 
 class PolicyNotReadyError(Exception):
@@ -87,12 +95,31 @@ class PolicyCache:
                 self._entries.popitem(last=False)
 
 
+class NetworkKey(Protocol):
+    """What the read path needs to know of a network: a Network row, or just its ids."""
+
+    @property
+    def id(self) -> int: ...
+
+    @property
+    def tenant_id(self) -> int: ...
+
+
+@dataclass(frozen=True)
+class NetworkRef:
+    id: int
+    tenant_id: int
+
+
 def load_policy(
-    session: Session, cache: PolicyCache, network: Network, criterion: str
+    session: Session, cache: PolicyCache, network: NetworkKey, criterion: str
 ) -> ServedPolicy:
     """The policy of the newest version of `network` that has one; `stale` when a newer version
-    is still waiting for its solve. PolicyNotReadyError when no version has one."""
-    versions = repository.versions_newest_first(session, network.id)
+    is still waiting for its solve. NotFound when the network is missing, another tenant's or
+    archived (UnknownNetworkError); PolicyNotReadyError when no version has a policy."""
+    versions = repository.live_versions_newest_first(session, network.tenant_id, network.id)
+    if not versions:
+        raise UnknownNetworkError(f"no network {network.id}")
     for version in versions:
         entry = cache.get((version.id, criterion)) or _load(session, network, version, criterion)
         if entry is None:
@@ -105,11 +132,11 @@ def load_policy(
             solved_at=entry.solved_at,
             stale=version is not versions[0],
         )
-    raise _not_ready(session, network, versions[0] if versions else None, criterion)
+    raise _not_ready(session, network, versions[0], criterion)
 
 
 def _load(
-    session: Session, network: Network, version: NetworkVersion, criterion: str
+    session: Session, network: NetworkKey, version: NetworkVersion, criterion: str
 ) -> _Entry | None:
     row = repository.policy_for(session, network.tenant_id, version.spec_hash, criterion)
     if row is None:
@@ -131,10 +158,8 @@ def _load(
 
 
 def _not_ready(
-    session: Session, network: Network, version: NetworkVersion | None, criterion: str
+    session: Session, network: NetworkKey, version: NetworkVersion, criterion: str
 ) -> PolicyNotReadyError:
-    if version is None:
-        return PolicyNotReadyError(f"network {network.id} has no versions", job_state=None)
     jobs = repository.jobs_for(session, network.tenant_id, version.spec_hash, criterion)
     if not jobs:
         return PolicyNotReadyError(
@@ -180,7 +205,7 @@ def stock_vector(result: PolicyResult, stock: Mapping[str, int]) -> list[int]:
 def recommend(
     session: Session,
     cache: PolicyCache,
-    network: Network,
+    network: NetworkKey,
     stock: Mapping[str, int],
     criterion: str = "discounted",
 ) -> tuple[ServedPolicy, Recommendation]:

@@ -20,7 +20,7 @@ from fastapi.responses import JSONResponse
 from sqlalchemy.exc import OperationalError
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
-from service.policies import PolicyNotReadyError, StockProblemsError
+from service.policies import PolicyNotReadyError, StockProblemsError, UnknownNetworkError
 from solver import InvalidStockError, ModelTooLargeError, NotUnichainError
 
 __all__ = [
@@ -154,6 +154,8 @@ def problem_for(exc: Exception) -> tuple[int, str, str, str, dict[str, Any]] | N
         return 422, "invalid-stock", "Invalid stock", str(exc), {"errors": errors}
     if isinstance(exc, InvalidStockError):
         return 422, "invalid-stock", "Invalid stock", str(exc), {}
+    if isinstance(exc, UnknownNetworkError):
+        return 404, NotFound.slug, NotFound.title, str(exc), {}
     if isinstance(exc, PolicyNotReadyError):
         return 503, "policy-not-ready", "Policy not ready", str(exc), {"job_state": exc.job_state}
     if isinstance(exc, ModelTooLargeError):
@@ -176,6 +178,7 @@ DOMAIN_ERRORS: tuple[type[Exception], ...] = (
     ApiProblem,
     InvalidStockError,
     PolicyNotReadyError,
+    UnknownNetworkError,
     ModelTooLargeError,
     NotUnichainError,
 )

@@ -21,6 +21,10 @@ class Settings(BaseSettings):
         str,
         Field(description="SQLAlchemy URL; postgresql:// URLs use psycopg 3."),
     ] = "sqlite:///./var/stockrelay.db"
+    database_pool_size: Annotated[
+        int,
+        Field(ge=1, le=1000, description="Database connections kept open per process."),
+    ] = 20
     lease_seconds: Annotated[
         float, Field(gt=0, description="How long a worker holds a job without renewing.")
     ] = 60.0

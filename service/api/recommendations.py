@@ -16,10 +16,10 @@ from pydantic import ValidationError
 from sqlalchemy.orm import Session
 from starlette.concurrency import run_in_threadpool
 
-from service.api.deps import CacheDep, NetworkId, Reader, get_network, sessions_of
+from service.api.deps import CacheDep, NetworkId, Reader, sessions_of
 from service.api.views import recommendation_out
 from service.auth import Identity
-from service.policies import PolicyCache, recommend
+from service.policies import NetworkRef, PolicyCache, recommend
 from service.problems import PROBLEM_RESPONSES, problem_body, problem_for
 from service.schemas import (
     BatchItem,
@@ -61,8 +61,9 @@ def _recommend_one(
     stock: dict[str, int],
     criterion: str,
 ) -> RecommendationOut:
-    network = get_network(session, tenant_id, network_id)
-    served, recommendation = recommend(session, cache, network, stock, criterion)
+    served, recommendation = recommend(
+        session, cache, NetworkRef(network_id, tenant_id), stock, criterion
+    )
     return recommendation_out(network_id, criterion, served, recommendation)
 
 

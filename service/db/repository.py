@@ -26,7 +26,7 @@ from sqlalchemy import (
     update,
 )
 from sqlalchemy.exc import IntegrityError
-from sqlalchemy.orm import Session
+from sqlalchemy.orm import Session, defer
 
 from service.codec import EncodedPolicy
 from service.db.base import utcnow
@@ -47,6 +47,7 @@ __all__ = [
     "latest_version",
     "list_jobs",
     "list_networks",
+    "live_versions_newest_first",
     "network_by_name",
     "policy_for",
     "release_job",
@@ -96,6 +97,25 @@ def versions_newest_first(session: Session, network_id: int) -> Sequence[Network
     return session.scalars(
         select(NetworkVersion)
         .where(NetworkVersion.network_id == network_id)
+        .order_by(NetworkVersion.number.desc())
+    ).all()
+
+
+def live_versions_newest_first(
+    session: Session, tenant_id: int, network_id: int
+) -> Sequence[NetworkVersion]:
+    """The versions of the tenant's network, newest first, without their specifications (loaded
+    only if touched), in one query; empty when the network is missing, another tenant's or
+    archived. The read path's only query when its policies are cached."""
+    return session.scalars(
+        select(NetworkVersion)
+        .join(Network, Network.id == NetworkVersion.network_id)
+        .where(
+            Network.id == network_id,
+            Network.tenant_id == tenant_id,
+            Network.archived.is_(False),
+        )
+        .options(defer(NetworkVersion.spec_json))
         .order_by(NetworkVersion.number.desc())
     ).all()
 

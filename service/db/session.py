@@ -13,17 +13,21 @@ from sqlalchemy.orm import Session, sessionmaker
 __all__ = ["make_engine", "make_session_factory", "session_scope"]
 
 
-def make_engine(url: str) -> Engine:
-    """An engine for `url`. SQLite files get their folder created, foreign keys enforced, WAL
-    journaling (readers never block the single writer) and a generous busy timeout."""
+def make_engine(url: str, *, pool_size: int = 20) -> Engine:
+    """An engine for `url` keeping up to `pool_size` connections open (a request beyond them
+    waits for one rather than paying for a new connection). SQLite files get their folder
+    created, foreign keys enforced, WAL journaling (readers never block the single writer) and
+    a generous busy timeout."""
     parsed = make_url(url)
     if parsed.get_backend_name() == "sqlite":
         if parsed.database and parsed.database != ":memory:":
             Path(parsed.database).parent.mkdir(parents=True, exist_ok=True)
-        engine = create_engine(url, connect_args={"timeout": 30})
+        engine = create_engine(
+            url, connect_args={"timeout": 30}, pool_size=pool_size, max_overflow=0
+        )
         event.listen(engine, "connect", _sqlite_pragmas)
         return engine
-    return create_engine(url, pool_pre_ping=True)
+    return create_engine(url, pool_pre_ping=True, pool_size=pool_size, max_overflow=0)
 
 
 def _sqlite_pragmas(dbapi_connection: Any, _record: Any) -> None:
