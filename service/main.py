@@ -9,7 +9,15 @@ from contextlib import asynccontextmanager
 from fastapi import FastAPI
 from sqlalchemy.exc import OperationalError
 
-from service.api import closing, health, jobs, networks, policies, recommendations
+from service.api import (
+    calibration,
+    closing,
+    health,
+    jobs,
+    networks,
+    policies,
+    recommendations,
+)
 from service.api.deps import KeyCache
 from service.db.migrate import require_migrated
 from service.db.session import make_engine, make_session_factory
@@ -67,7 +75,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     )
     app.state.settings = settings
     install_problem_handlers(app)
-    for module in (networks, recommendations, closing, policies, jobs, health):
+    for module in (networks, recommendations, closing, policies, calibration, jobs, health):
         app.include_router(module.router)
     # Added last = outermost: request ids first, then the body limit, then idempotent replays.
     app.add_middleware(

@@ -57,6 +57,8 @@ class ServedPolicy:
     version_number: int
     solved_at: datetime
     stale: bool
+    # When the version's demand and replenishment were estimated from history (None: as sent).
+    calibrated_at: datetime | None
 
 
 @dataclass(frozen=True)
@@ -131,6 +133,7 @@ def load_policy(
             version_number=version.number,
             solved_at=entry.solved_at,
             stale=version is not versions[0],
+            calibrated_at=version.calibrated_at,
         )
     raise _not_ready(session, network, versions[0], criterion)
 

@@ -35,6 +35,7 @@ __all__ = [
     "RateLimited",
     "RequestId",
     "Unauthorized",
+    "UnsupportedMedia",
     "install_problem_handlers",
     "problem_body",
 ]
@@ -87,6 +88,10 @@ class NotFound(ApiProblem):
 
 class Conflict(ApiProblem):
     status, slug, title = 409, "conflict", "Conflict"
+
+
+class UnsupportedMedia(ApiProblem):
+    status, slug, title = 415, "unsupported-media-type", "Unsupported media type"
 
 
 class PreconditionFailed(ApiProblem):
@@ -322,6 +327,7 @@ _PROBLEM_STATUSES = {
     409: "Conflicts with the current state",
     412: "If-Match names an older version",
     413: "Request body too large",
+    415: "Unsupported media type",
     422: "Invalid input; `errors` points at each offending field",
     428: "If-Match required",
     429: "Too many requests for this key; see Retry-After",

@@ -18,8 +18,25 @@ from solver.build import check_size
 router = APIRouter(prefix="/v1/networks", tags=["networks"], responses=PROBLEM_RESPONSES)
 
 
-def _etag(version: int) -> str:
+IfMatch = Annotated[str | None, Header(description="The current version number, as given in ETag.")]
+
+
+def etag(version: int) -> str:
     return f'"{version}"'
+
+
+def check_if_match(network_id: int, current: int, if_match: str | None) -> None:
+    """428 without If-Match, 412 when it does not name the current version (or *)."""
+    if if_match is None:
+        raise PreconditionRequired(
+            f"send If-Match: {etag(current)} (the current version) to change network {network_id}"
+        )
+    wanted = {tag.strip().removeprefix("W/").strip('"') for tag in if_match.split(",")}
+    if str(current) not in wanted and "*" not in wanted:
+        raise PreconditionFailed(
+            f"network {network_id} is at version {current}, not {if_match}",
+            current_version=current,
+        )
 
 
 @router.post("", status_code=status.HTTP_201_CREATED, response_model=NetworkCreated)
@@ -41,7 +58,7 @@ def create_network(
     tenant = session.get_one(Tenant, caller.tenant_id)
     network, version, jobs = repository.create_network(session, tenant, spec, body.criteria)
     response.headers["Location"] = f"/v1/networks/{network.id}"
-    response.headers["ETag"] = _etag(version.number)
+    response.headers["ETag"] = etag(version.number)
     return network_out(session, network, jobs)
 
 
@@ -63,7 +80,7 @@ def get_network_state(
     """The current version and the solve state of each criterion."""
     network = get_network(session, caller.tenant_id, network_id, archived_ok=True)
     out = network_out(session, network)
-    response.headers["ETag"] = _etag(out.version)
+    response.headers["ETag"] = etag(out.version)
     return out
 
 
@@ -75,25 +92,13 @@ def update_network(
     caller: Writer,
     settings: SettingsDep,
     response: Response,
-    if_match: Annotated[
-        str | None, Header(description="The current version number, as given in ETag.")
-    ] = None,
+    if_match: IfMatch = None,
 ) -> NetworkOut:
     """Add the next version; If-Match must name the current version."""
     network = get_network(session, caller.tenant_id, network_id)
     current = repository.latest_version(session, network.id)
     assert current is not None
-    if if_match is None:
-        raise PreconditionRequired(
-            f"send If-Match: {_etag(current.number)} (the current version) to update network "
-            f"{network_id}"
-        )
-    wanted = {tag.strip().removeprefix("W/").strip('"') for tag in if_match.split(",")}
-    if str(current.number) not in wanted and "*" not in wanted:
-        raise PreconditionFailed(
-            f"network {network_id} is at version {current.number}, not {if_match}",
-            current_version=current.number,
-        )
+    check_if_match(network_id, current.number, if_match)
     spec: NetworkSpec = body.spec()
     check_size(spec, settings.size_limits)
     if spec.name != network.name:
@@ -102,7 +107,7 @@ def update_network(
             raise Conflict(f"another network is named {spec.name!r}")
         network.name = spec.name
     version, jobs = repository.add_version(session, network, spec, body.criteria)
-    response.headers["ETag"] = _etag(version.number)
+    response.headers["ETag"] = etag(version.number)
     return network_out(session, network, jobs)
 
 

@@ -83,6 +83,7 @@ def recommendation_out(
         version=served.version_number,
         stale=served.stale,
         solved_at=served.solved_at,
+        parameters_calibrated_at=served.calibrated_at,
         residual=result.residual,
         stock=dict(zip(ids, recommendation.stock, strict=True)),
         transfers=transfers_of(result, recommendation.flows),

@@ -31,6 +31,7 @@ from service.db.base import Base, utcnow
 
 __all__ = [
     "ApiKey",
+    "CalibrationSettings",
     "ClosingCount",
     "IdempotencyRecord",
     "Instruction",
@@ -38,6 +39,7 @@ __all__ = [
     "Network",
     "NetworkVersion",
     "Policy",
+    "SalesDay",
     "SolveJob",
     "Tenant",
 ]
@@ -85,6 +87,9 @@ class NetworkVersion(Base):
     spec_json: Mapped[str] = mapped_column(Text)
     spec_hash: Mapped[str] = mapped_column(_HASH, index=True)
     created_at: Mapped[datetime] = mapped_column(DateTime, default=utcnow)
+    # When the demand and replenishment of this version were estimated from sales history;
+    # None for a specification sent as it is.
+    calibrated_at: Mapped[datetime | None] = mapped_column(DateTime)
 
     network: Mapped[Network] = relationship(back_populates="versions")
 
@@ -174,6 +179,38 @@ class Instruction(Base):
     # JSON: {"stock": {location: units}, "transfers": [{"from", "to", "units", "unit_cost"}]}
     plan: Mapped[str] = mapped_column(Text)
     computed_at: Mapped[datetime] = mapped_column(DateTime, default=utcnow)
+
+
+class SalesDay(Base):
+    """One location's business day as the ERP reports it; a repeat for the same day replaces
+    it. Stock received during a day is on sale from the next day."""
+
+    __tablename__ = "sales_history"
+    __table_args__ = (UniqueConstraint("network_id", "location_id", "business_date"),)
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    network_id: Mapped[int] = mapped_column(ForeignKey("networks.id"))
+    location_id: Mapped[str] = mapped_column(String(64))
+    business_date: Mapped[date] = mapped_column(Date)
+    units_sold: Mapped[int] = mapped_column(Integer)
+    stock_at_open: Mapped[int] = mapped_column(Integer)
+    units_received: Mapped[int] = mapped_column(Integer)
+    reported_at: Mapped[datetime] = mapped_column(DateTime, default=utcnow)
+
+
+class CalibrationSettings(Base):
+    """How a network's parameters are estimated from its history, and whether a new estimate
+    that moves a parameter by more than `auto_apply_threshold` (relative) becomes a new
+    version by itself."""
+
+    __tablename__ = "calibration_settings"
+
+    network_id: Mapped[int] = mapped_column(ForeignKey("networks.id"), primary_key=True)
+    window_days: Mapped[int | None] = mapped_column(Integer)
+    half_life_days: Mapped[float | None] = mapped_column(Float)
+    confidence: Mapped[float] = mapped_column(Float)
+    auto_apply_threshold: Mapped[float | None] = mapped_column(Float)
+    updated_at: Mapped[datetime] = mapped_column(DateTime, default=utcnow)
 
 
 class ApiKey(Base):

@@ -30,6 +30,8 @@ TABLES = {
     "solve_jobs",
     "policies",
     "closing_counts",
+    "sales_history",
+    "calibration_settings",
     "instructions",
     "api_keys",
     "idempotency_records",

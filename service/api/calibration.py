@@ -1,0 +1,473 @@
+"""Sales history and calibration: the ERP pushes daily rows per location; stockrelay estimates
+demand (censored at stock-outs) and replenishment, shows how sure it is, and turns the estimates
+into a new network version on request, or by itself past a configured threshold."""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+from datetime import date, timedelta
+from typing import Annotated, Any
+
+from fastapi import APIRouter, Query, Request, Response, status
+from pydantic import ValidationError
+from sqlalchemy.orm import Session
+from starlette.concurrency import run_in_threadpool
+
+from service.api.deps import NetworkId, Reader, SessionDep, SettingsDep, Writer, get_network
+from service.api.networks import IfMatch, check_if_match, etag
+from service.api.views import network_out
+from service.calibration import (
+    CalibrationOptions,
+    Proposal,
+    apply_proposal,
+    options_for,
+    propose,
+)
+from service.db import repository
+from service.db.base import utcnow
+from service.db.repository import SalesRow
+from service.db.tables import CalibrationSettings, Network, SolveJob
+from service.problems import PROBLEM_RESPONSES, Conflict, InvalidInput, UnsupportedMedia
+from service.schemas import (
+    MAX_HISTORY_ROWS,
+    AutoApplyOut,
+    CalibrationOut,
+    CalibrationSettingsIn,
+    CalibrationSettingsOut,
+    EstimateOut,
+    HistoryOut,
+    HistoryRowIn,
+    HistoryStored,
+    HistoryUpload,
+    JobOut,
+    LocationCalibrationOut,
+    LocationHistoryOut,
+    NetworkCreated,
+    NetworkOut,
+)
+from service.settings import Settings
+from solver import NetworkSpec
+from solver.build import check_size
+from solver.calibration import CountEstimate
+
+router = APIRouter(
+    prefix="/v1/networks/{network_id}", tags=["calibration"], responses=PROBLEM_RESPONSES
+)
+
+CSV_COLUMNS = ("date", "location", "units_sold", "stock_at_open", "units_received")
+# History is local business days; a day ahead of the server's UTC date allows for time zones.
+_DATE_SLACK = timedelta(days=1)
+_OLDEST = date(1990, 1, 1)
+
+_UPLOAD_DOC: dict[str, Any] = {
+    "requestBody": {
+        "required": True,
+        "content": {
+            "application/json": {"schema": {"$ref": "#/components/schemas/HistoryUpload"}},
+            "text/csv": {
+                "schema": {"type": "string"},
+                "example": "date,location,units_sold,stock_at_open,units_received\n"
+                "2026-11-30,riverside,4,4,3\n2026-11-30,hilltop,1,6,0\n",
+            },
+        },
+    }
+}
+
+
+# -- history -----------------------------------------------------------------------------------
+
+
+def _parse_json(raw: bytes) -> list[HistoryRowIn]:
+    try:
+        document = json.loads(raw)
+    except (UnicodeDecodeError, json.JSONDecodeError) as exc:
+        raise InvalidInput(f"the body is not JSON: {exc}", [("", "not JSON")]) from exc
+    try:
+        return HistoryUpload.model_validate(document).rows
+    except ValidationError as exc:
+        errors = [
+            ("".join(f"/{part}" for part in error["loc"]), error["msg"])
+            for error in exc.errors(include_url=False)
+        ]
+        raise _invalid(errors) from exc
+
+
+def _parse_csv(raw: bytes) -> list[HistoryRowIn]:
+    """Rows of a CSV upload with a header naming the five columns (any order); pointers name
+    the line and the column, e.g. "/line/7/units_sold"."""
+    try:
+        text = raw.decode("utf-8-sig")
+    except UnicodeDecodeError as exc:
+        raise InvalidInput("the CSV is not UTF-8", [("", "not UTF-8")]) from exc
+    reader = csv.DictReader(io.StringIO(text))
+    header = [name.strip() for name in reader.fieldnames or []]
+    missing = [name for name in CSV_COLUMNS if name not in header]
+    extra = [name for name in header if name not in CSV_COLUMNS]
+    if missing or extra:
+        problems = [("/line/1", f"missing column {name!r}") for name in missing]
+        problems += [("/line/1", f"unknown column {name!r}") for name in extra]
+        raise _invalid(problems)
+    reader.fieldnames = header
+    rows: list[HistoryRowIn] = []
+    errors: list[tuple[str, str]] = []
+    for number, record in enumerate(reader, start=2):
+        if len(rows) + len(errors) >= MAX_HISTORY_ROWS:
+            raise _invalid([(f"/line/{number}", f"more than {MAX_HISTORY_ROWS:,} rows")])
+        if None in record or any(value is None for value in record.values()):
+            errors.append((f"/line/{number}", "expected 5 fields"))
+            continue
+        values: dict[str, Any] = {key: value.strip() for key, value in record.items()}
+        for key in ("units_sold", "stock_at_open", "units_received"):
+            text_value = values[key]
+            values[key] = int(text_value) if text_value.lstrip("-").isdigit() else text_value
+        try:
+            rows.append(HistoryRowIn.model_validate(values))
+        except ValidationError as exc:
+            errors += [
+                (f"/line/{number}/" + "/".join(str(p) for p in error["loc"]), error["msg"])
+                for error in exc.errors(include_url=False)
+            ]
+    if errors:
+        raise _invalid(errors)
+    if not rows:
+        raise _invalid([("/line/2", "no rows")])
+    return rows
+
+
+def _invalid(errors: list[tuple[str, str]]) -> InvalidInput:
+    shown = errors[:20]
+    more = f" (and {len(errors) - 20} more)" if len(errors) > 20 else ""
+    detail = "; ".join(f"{pointer}: {text}" for pointer, text in shown) + more
+    return InvalidInput(detail, shown)
+
+
+def _check_rows(rows: list[HistoryRowIn], spec: NetworkSpec, csv_upload: bool) -> None:
+    """Every problem the rows have against the network, each with its pointer."""
+    known = set(spec.location_ids)
+    latest = utcnow().date() + _DATE_SLACK
+    first_seen: dict[tuple[str, date], int] = {}
+    errors: list[tuple[str, str]] = []
+    for index, row in enumerate(rows):
+        where = f"/line/{index + 2}" if csv_upload else f"/rows/{index}"
+        if row.location not in known:
+            errors.append((f"{where}/location", f"unknown location {row.location!r}"))
+        if not _OLDEST <= row.date <= latest:
+            errors.append((f"{where}/date", f"{row.date} is outside {_OLDEST}..{latest}"))
+        if row.units_sold > row.stock_at_open:
+            errors.append(
+                (
+                    f"{where}/units_sold",
+                    f"{row.units_sold} units sold but only {row.stock_at_open} on hand at "
+                    "opening (receipts are on sale from the next day)",
+                )
+            )
+        key = (row.location, row.date)
+        if key in first_seen:
+            earlier = first_seen[key]
+            earlier_where = f"line {earlier + 2}" if csv_upload else f"row {earlier}"
+            errors.append(
+                (where, f"{row.location} on {row.date} is given twice (also {earlier_where})")
+            )
+        else:
+            first_seen[key] = index
+    if errors:
+        raise _invalid(errors)
+
+
+def _locations(session: Session, network_id: int) -> list[LocationHistoryOut]:
+    return [
+        LocationHistoryOut(
+            location=location, days=days, sold_out_days=out, first_date=first, last_date=last
+        )
+        for location, days, out, first, last in repository.sales_history_summary(
+            session, network_id
+        )
+    ]
+
+
+@router.post(
+    "/history",
+    response_model=HistoryStored,
+    openapi_extra=_UPLOAD_DOC,
+)
+async def upload_history(
+    network_id: NetworkId,
+    request: Request,
+    session: SessionDep,
+    caller: Writer,
+    settings: SettingsDep,
+) -> HistoryStored:
+    """Store daily rows (JSON or CSV with a header); a row for a day already stored replaces
+    it. With an automatic-apply threshold configured, a new estimate that moves a parameter by
+    more than the threshold becomes the next version at once."""
+    raw = await request.body()
+    media = request.headers.get("content-type", "application/json").split(";")[0].strip()
+    if media not in ("text/csv", "application/json", ""):
+        raise UnsupportedMedia(f"send application/json or text/csv, not {media}")
+    # Parsing and the database work block: off the event loop, in one hop.
+    return await run_in_threadpool(
+        _store_history, raw, media == "text/csv", network_id, session, caller.tenant_id, settings
+    )
+
+
+def _store_history(
+    raw: bytes,
+    csv_upload: bool,
+    network_id: int,
+    session: Session,
+    tenant_id: int,
+    settings: Settings,
+) -> HistoryStored:
+    rows = _parse_csv(raw) if csv_upload else _parse_json(raw)
+    network = get_network(session, tenant_id, network_id)
+    _check_rows(rows, _current_spec(session, network), csv_upload)
+    inserted, replaced = repository.store_sales_history(
+        session,
+        network.id,
+        [
+            SalesRow(r.location, r.date, r.units_sold, r.stock_at_open, r.units_received)
+            for r in rows
+        ],
+    )
+    session.flush()
+    options = options_for(session, network.id)
+    auto = None
+    if options.auto_apply_threshold is not None:
+        auto = _auto_apply(session, network, options, options.auto_apply_threshold, settings)
+    return HistoryStored(
+        network_id=network.id,
+        received=len(rows),
+        inserted=inserted,
+        replaced=replaced,
+        locations=_locations(session, network.id),
+        auto_apply=auto,
+    )
+
+
+def _auto_apply(
+    session: Session,
+    network: Network,
+    options: CalibrationOptions,
+    threshold: float,
+    settings: Settings,
+) -> AutoApplyOut:
+    proposal = propose(session, network, options)
+    moved = proposal.largest_change
+    if not proposal.calibrated:
+        return AutoApplyOut(
+            applied=False, reason="no location has history to estimate from", version=None, jobs=[]
+        )
+    if moved <= threshold:
+        return AutoApplyOut(
+            applied=False,
+            reason=f"largest change {moved:.1%} is within the threshold {threshold:.1%}",
+            version=None,
+            jobs=[],
+        )
+    check_size(proposal.spec, settings.size_limits)
+    number, jobs = _apply(session, network, proposal)
+    return AutoApplyOut(
+        applied=True,
+        reason=f"largest change {moved:.1%} exceeds the threshold {threshold:.1%}",
+        version=number,
+        jobs=[JobOut.model_validate(job) for job in jobs],
+    )
+
+
+@router.get("/history", response_model=HistoryOut)
+def history_summary(network_id: NetworkId, session: SessionDep, caller: Reader) -> HistoryOut:
+    """Days of history stored per location."""
+    network = get_network(session, caller.tenant_id, network_id)
+    return HistoryOut(network_id=network.id, locations=_locations(session, network.id))
+
+
+# -- calibration -------------------------------------------------------------------------------
+
+
+def _current_spec(session: Session, network: Network) -> NetworkSpec:
+    version = repository.latest_version(session, network.id)
+    assert version is not None
+    return NetworkSpec.model_validate_json(version.spec_json)
+
+
+def _estimate(estimate: CountEstimate) -> EstimateOut:
+    return EstimateOut(
+        family=estimate.family,
+        mean=estimate.mean,
+        mean_interval=estimate.mean_interval,
+        variance=estimate.variance,
+        variance_interval=estimate.variance_interval,
+        naive_mean=estimate.naive_mean,
+        p_value=estimate.p_value,
+        selection=estimate.selection,
+        confidence=estimate.confidence,
+        effective_days=estimate.effective_days,
+    )
+
+
+def _options(
+    session: Session,
+    network_id: int,
+    window_days: int | None,
+    half_life_days: float | None,
+    confidence: float | None,
+) -> CalibrationOptions:
+    stored = options_for(session, network_id)
+    return CalibrationOptions(
+        window_days=window_days if window_days is not None else stored.window_days,
+        half_life_days=half_life_days if half_life_days is not None else stored.half_life_days,
+        confidence=confidence if confidence is not None else stored.confidence,
+        auto_apply_threshold=stored.auto_apply_threshold,
+    )
+
+
+def _calibration_out(network: Network, proposal: Proposal) -> CalibrationOut:
+    digest = repository.canonical_spec(proposal.spec)[1]
+    locations = []
+    for item in proposal.locations:
+        calibration = item.calibration
+        locations.append(
+            LocationCalibrationOut(
+                location=item.location,
+                first_date=item.first_date,
+                last_date=item.last_date,
+                days=0 if calibration is None else calibration.days,
+                sold_out_days=0 if calibration is None else calibration.censored_days,
+                days_without_stock=0 if calibration is None else calibration.days_without_stock,
+                demand=None if calibration is None else _estimate(calibration.demand),
+                replenishment=None if calibration is None else _estimate(calibration.replenishment),
+                current_demand=item.current_demand.model_dump(mode="json"),
+                current_replenishment=item.current_replenishment.model_dump(mode="json"),
+                changes=item.changes,
+                warnings=[] if calibration is None else list(calibration.warnings),
+                error=item.error,
+            )
+        )
+    options = proposal.options
+    return CalibrationOut(
+        network_id=network.id,
+        based_on_version=proposal.based_on.number,
+        would_create_version=proposal.based_on.number + 1,
+        calibrated_locations=len(proposal.calibrated),
+        largest_change=proposal.largest_change,
+        settings=CalibrationSettingsIn(
+            window_days=options.window_days,
+            half_life_days=options.half_life_days,
+            confidence=options.confidence,
+            auto_apply_threshold=options.auto_apply_threshold,
+        ),
+        locations=locations,
+        spec=proposal.spec,
+        spec_hash=digest,
+    )
+
+
+WindowDays = Annotated[
+    int | None, Query(ge=7, le=36_600, description="Override: use only the most recent days.")
+]
+HalfLifeDays = Annotated[
+    float | None, Query(gt=0, le=36_600, description="Override: recency half-life in days.")
+]
+Confidence = Annotated[
+    float | None, Query(ge=0.5, lt=1, description="Override: confidence of the intervals.")
+]
+
+
+@router.get("/calibration", response_model=CalibrationOut)
+def get_calibration(
+    network_id: NetworkId,
+    session: SessionDep,
+    caller: Reader,
+    response: Response,
+    window_days: WindowDays = None,
+    half_life_days: HalfLifeDays = None,
+    confidence: Confidence = None,
+) -> CalibrationOut:
+    """Estimates from the stored history beside the current parameters and the naive
+    averages, with intervals, days used, warnings, and the version they would produce."""
+    network = get_network(session, caller.tenant_id, network_id)
+    proposal = propose(
+        session, network, _options(session, network.id, window_days, half_life_days, confidence)
+    )
+    response.headers["ETag"] = etag(proposal.based_on.number)
+    return _calibration_out(network, proposal)
+
+
+def _apply(session: Session, network: Network, proposal: Proposal) -> tuple[int, list[SolveJob]]:
+    criteria = repository.criteria_requested(
+        session, network.tenant_id, proposal.based_on.spec_hash
+    ) or ["discounted"]
+    version, jobs = apply_proposal(session, network, proposal, criteria, utcnow())
+    return version.number, jobs
+
+
+@router.post(
+    "/calibration/apply",
+    status_code=status.HTTP_201_CREATED,
+    response_model=NetworkCreated,
+)
+def apply_calibration(
+    network_id: NetworkId,
+    session: SessionDep,
+    caller: Writer,
+    settings: SettingsDep,
+    response: Response,
+    if_match: IfMatch = None,
+    window_days: WindowDays = None,
+    half_life_days: HalfLifeDays = None,
+    confidence: Confidence = None,
+) -> NetworkOut:
+    """Make the estimates the next version (If-Match: the current version) and queue its
+    solves for the criteria the current version was solved for."""
+    network = get_network(session, caller.tenant_id, network_id)
+    current = repository.latest_version(session, network.id)
+    assert current is not None
+    check_if_match(network.id, current.number, if_match)
+    proposal = propose(
+        session, network, _options(session, network.id, window_days, half_life_days, confidence)
+    )
+    if not proposal.calibrated:
+        reasons = "; ".join(f"{p.location}: {p.error}" for p in proposal.locations)
+        raise Conflict(f"no location of network {network.id} can be estimated ({reasons})")
+    if repository.canonical_spec(proposal.spec)[1] == current.spec_hash:
+        raise Conflict(f"the estimates equal version {current.number}'s parameters already")
+    check_size(proposal.spec, settings.size_limits)
+    number, jobs = _apply(session, network, proposal)
+    response.headers["ETag"] = etag(number)
+    response.headers["Location"] = f"/v1/networks/{network.id}"
+    return network_out(session, network, jobs)
+
+
+@router.get("/calibration/settings", response_model=CalibrationSettingsOut)
+def get_calibration_settings(
+    network_id: NetworkId, session: SessionDep, caller: Reader
+) -> CalibrationSettingsOut:
+    network = get_network(session, caller.tenant_id, network_id)
+    options = options_for(session, network.id)
+    return CalibrationSettingsOut(
+        network_id=network.id,
+        window_days=options.window_days,
+        half_life_days=options.half_life_days,
+        confidence=options.confidence,
+        auto_apply_threshold=options.auto_apply_threshold,
+    )
+
+
+@router.put("/calibration/settings", response_model=CalibrationSettingsOut)
+def put_calibration_settings(
+    network_id: NetworkId, body: CalibrationSettingsIn, session: SessionDep, caller: Writer
+) -> CalibrationSettingsOut:
+    """How estimates are made, and the threshold for applying them automatically."""
+    network = get_network(session, caller.tenant_id, network_id)
+    row = session.get(CalibrationSettings, network.id)
+    if row is None:
+        row = CalibrationSettings(network_id=network.id)
+        session.add(row)
+    row.window_days = body.window_days
+    row.half_life_days = body.half_life_days
+    row.confidence = body.confidence
+    row.auto_apply_threshold = body.auto_apply_threshold
+    row.updated_at = utcnow()
+    return CalibrationSettingsOut(network_id=network.id, **body.model_dump())

@@ -1,0 +1,211 @@
+"""Calibration: a network's demand and replenishment estimated from its sales history, and the
+version those estimates would make.
+
+For each location with history, solver.calibration estimates demand by censored maximum
+likelihood (sold-out days count as "at least") and replenishment from receipts. The proposal is
+the current specification with those laws put in; locations without usable history keep theirs.
+A parameter's change is |new - old| / max(|old|, CHANGE_FLOOR) for the mean and the variance of
+each law, so that a move from 0.0 to 0.01 units a day does not count as infinite.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass
+from datetime import date, datetime
+
+import numpy as np
+from sqlalchemy.orm import Session
+
+from service.db import repository
+from service.db.tables import CalibrationSettings, Network, NetworkVersion, SolveJob
+from solver import NetworkSpec
+from solver.calibration import CalibrationError, LocationCalibration, calibrate_location
+from solver.spec import Distribution, NegativeBinomialDemand, PoissonDemand
+
+__all__ = [
+    "CHANGE_FLOOR",
+    "DEFAULT_CONFIDENCE",
+    "CalibrationOptions",
+    "LocationProposal",
+    "Proposal",
+    "apply_proposal",
+    "law_moments",
+    "options_for",
+    "propose",
+]
+
+CHANGE_FLOOR = 0.05
+DEFAULT_CONFIDENCE = 0.95
+# Estimates enter the specification to this many significant digits: enough for the solver,
+# few enough that an unchanged history gives an unchanged specification (and hash).
+_DIGITS = 6
+
+
+@dataclass(frozen=True)
+class CalibrationOptions:
+    """window_days: only the most recent days of history (None: all); half_life_days: weight
+    day t by 0.5 ** (age / half_life) (None: equal weights); confidence of the intervals."""
+
+    window_days: int | None = None
+    half_life_days: float | None = None
+    confidence: float = DEFAULT_CONFIDENCE
+    auto_apply_threshold: float | None = None
+
+
+@dataclass(frozen=True)
+class LocationProposal:
+    location: str
+    first_date: date | None
+    last_date: date | None
+    calibration: LocationCalibration | None
+    error: str | None
+    current_demand: Distribution
+    current_replenishment: Distribution
+    changes: dict[str, float]
+
+    @property
+    def largest_change(self) -> float:
+        return max(self.changes.values(), default=0.0)
+
+
+@dataclass(frozen=True)
+class Proposal:
+    based_on: NetworkVersion
+    options: CalibrationOptions
+    locations: tuple[LocationProposal, ...]
+    spec: NetworkSpec
+
+    @property
+    def calibrated(self) -> tuple[LocationProposal, ...]:
+        return tuple(p for p in self.locations if p.calibration is not None)
+
+    @property
+    def largest_change(self) -> float:
+        return max((p.largest_change for p in self.locations), default=0.0)
+
+
+def options_for(session: Session, network_id: int) -> CalibrationOptions:
+    row = session.get(CalibrationSettings, network_id)
+    if row is None:
+        return CalibrationOptions()
+    return CalibrationOptions(
+        window_days=row.window_days,
+        half_life_days=row.half_life_days,
+        confidence=row.confidence,
+        auto_apply_threshold=row.auto_apply_threshold,
+    )
+
+
+def law_moments(dist: Distribution) -> tuple[float, float]:
+    """(mean, variance) of a specification law, in units per day."""
+    if isinstance(dist, PoissonDemand):
+        return dist.mean, dist.mean
+    if isinstance(dist, NegativeBinomialDemand):
+        return dist.mean, dist.variance
+    p = np.asarray(dist.p, dtype=np.float64)
+    p /= p.sum()
+    k = np.arange(p.size)
+    mean = float(k @ p)
+    return mean, float(((k - mean) ** 2) @ p)
+
+
+def _change(old: float, new: float) -> float:
+    return abs(new - old) / max(abs(old), CHANGE_FLOOR)
+
+
+def _rounded(value: float) -> float:
+    if value == 0 or not math.isfinite(value):
+        return value
+    return round(value, _DIGITS - 1 - math.floor(math.log10(abs(value))))
+
+
+def _law(mean: float, variance: float, family: str) -> Distribution:
+    mean, variance = _rounded(mean), _rounded(variance)
+    if family == "negative_binomial" and variance > mean > 0:
+        return NegativeBinomialDemand(dist="negative_binomial", mean=mean, variance=variance)
+    return PoissonDemand(dist="poisson", mean=mean)
+
+
+def _changes(current: Distribution, proposed: Distribution, what: str) -> dict[str, float]:
+    old_mean, old_variance = law_moments(current)
+    new_mean, new_variance = law_moments(proposed)
+    return {
+        f"{what}_mean": _change(old_mean, new_mean),
+        f"{what}_variance": _change(old_variance, new_variance),
+    }
+
+
+def propose(session: Session, network: Network, options: CalibrationOptions) -> Proposal:
+    """Estimates for every location of the current version from the stored history."""
+    version = repository.latest_version(session, network.id)
+    assert version is not None, "a network always has a version"
+    spec = NetworkSpec.model_validate_json(version.spec_json)
+    history = repository.sales_history(session, network.id, window_days=options.window_days)
+    document = spec.model_dump(mode="json", by_alias=True, exclude_defaults=True)
+    proposals = []
+    for index, location in enumerate(spec.locations):
+        days = history.get(location.id)
+        calibration: LocationCalibration | None = None
+        error: str | None = None
+        changes: dict[str, float] = {}
+        if days is None:
+            error = "no history"
+        else:
+            try:
+                calibration = calibrate_location(
+                    days.sold,
+                    days.stock_at_open,
+                    days.received,
+                    age_days=days.age_days,
+                    half_life_days=options.half_life_days,
+                    confidence=options.confidence,
+                )
+            except CalibrationError as exc:
+                error = str(exc)
+        if calibration is not None:
+            demand = _law(
+                calibration.demand.mean, calibration.demand.variance, calibration.demand.family
+            )
+            replenishment = _law(
+                calibration.replenishment.mean,
+                calibration.replenishment.variance,
+                calibration.replenishment.family,
+            )
+            changes = _changes(location.demand, demand, "demand") | _changes(
+                location.replenishment, replenishment, "replenishment"
+            )
+            document["locations"][index]["demand"] = demand.model_dump(mode="json")
+            document["locations"][index]["replenishment"] = replenishment.model_dump(mode="json")
+        proposals.append(
+            LocationProposal(
+                location=location.id,
+                first_date=None if days is None else days.first_date,
+                last_date=None if days is None else days.last_date,
+                calibration=calibration,
+                error=error,
+                current_demand=location.demand,
+                current_replenishment=location.replenishment,
+                changes=changes,
+            )
+        )
+    return Proposal(
+        based_on=version,
+        options=options,
+        locations=tuple(proposals),
+        spec=NetworkSpec.model_validate(document),
+    )
+
+
+def apply_proposal(
+    session: Session,
+    network: Network,
+    proposal: Proposal,
+    criteria: Sequence[str],
+    calibrated_at: datetime,
+) -> tuple[NetworkVersion, list[SolveJob]]:
+    """The proposal as the network's next version, with its solves queued."""
+    version, jobs = repository.add_version(session, network, proposal.spec, criteria)
+    version.calibrated_at = calibrated_at
+    return version, jobs

@@ -1,0 +1,319 @@
+"""Sales history and calibration over HTTP: uploads (JSON and CSV) with row-and-field errors,
+estimates beside the current parameters, applying them as a new version, automatic application
+past a threshold, and recommendations that say when their parameters were estimated."""
+
+from __future__ import annotations
+
+from datetime import date, timedelta
+from typing import Any
+
+import numpy as np
+import pytest
+from fastapi.testclient import TestClient
+from sqlalchemy import Engine
+
+from solver.calibration import calibrate_location
+from tests.service.api_support import (
+    assert_problem,
+    create_network,
+    demo_document,
+    pointers,
+    run_worker,
+    sqlite_only,
+)
+
+START = date(2026, 3, 2)
+
+
+def simulated_rows(
+    seed: int, days: int, means: dict[str, float], stock_levels: dict[str, int]
+) -> list[dict[str, Any]]:
+    """History of our own generator: Poisson demand with the given means, sales capped at a
+    fixed stock at opening (so some days sell out), Poisson receipts of mean 2."""
+    rng = np.random.default_rng(seed)
+    rows = []
+    for day in range(days):
+        for location, mean in means.items():
+            at_open = stock_levels[location]
+            demand = int(rng.poisson(mean))
+            rows.append(
+                {
+                    "date": (START + timedelta(days=day)).isoformat(),
+                    "location": location,
+                    "units_sold": min(demand, at_open),
+                    "stock_at_open": at_open,
+                    "units_received": int(rng.poisson(2.0)),
+                }
+            )
+    return rows
+
+
+def upload(client: TestClient, network_id: int, rows: list[dict[str, Any]]) -> Any:
+    response = client.post(f"/v1/networks/{network_id}/history", json={"rows": rows})
+    assert response.status_code == 200, response.text
+    return response.json()
+
+
+def as_csv(rows: list[dict[str, Any]]) -> str:
+    columns = ["date", "location", "units_sold", "stock_at_open", "units_received"]
+    lines = [",".join(columns)] + [",".join(str(row[c]) for c in columns) for row in rows]
+    return "\n".join(lines) + "\n"
+
+
+def test_history_is_stored_and_a_repeat_replaces_the_day(client: TestClient) -> None:
+    network = create_network(client)
+    rows = simulated_rows(1, 30, {"riverside": 3.0, "hilltop": 1.5}, {"riverside": 4, "hilltop": 3})
+    first = upload(client, network["id"], rows)
+    assert (first["received"], first["inserted"], first["replaced"]) == (60, 60, 0)
+    assert first["auto_apply"] is None
+
+    again = [dict(row, units_sold=0) for row in rows[:10]]
+    second = upload(client, network["id"], again)
+    assert (second["inserted"], second["replaced"]) == (0, 10)
+    summary = client.get(f"/v1/networks/{network['id']}/history").json()
+    by_location = {item["location"]: item for item in summary["locations"]}
+    assert by_location["riverside"]["days"] == 30
+    assert by_location["riverside"]["first_date"] == START.isoformat()
+    # The replaced rows count: sold-out days are recomputed from what is stored now.
+    stored = rows[10:] + again
+    expected_out = sum(
+        1
+        for row in stored
+        if row["location"] == "hilltop" and row["units_sold"] == row["stock_at_open"]
+    )
+    assert by_location["hilltop"]["sold_out_days"] == expected_out
+
+
+def test_csv_upload_equals_json_upload(client: TestClient) -> None:
+    rows = simulated_rows(2, 40, {"riverside": 2.0, "hilltop": 1.0}, {"riverside": 3, "hilltop": 2})
+    first = create_network(client)
+    upload(client, first["id"], rows)
+    second = create_network(client, demo_document(name="the same stores, sent as CSV"))
+    response = client.post(
+        f"/v1/networks/{second['id']}/history",
+        content=as_csv(rows),
+        headers={"content-type": "text/csv"},
+    )
+    assert response.status_code == 200, response.text
+    a = client.get(f"/v1/networks/{first['id']}/calibration").json()
+    b = client.get(f"/v1/networks/{second['id']}/calibration").json()
+    assert a["locations"] == b["locations"]
+
+
+@sqlite_only
+def test_bad_rows_get_422_naming_the_row_and_field(client: TestClient) -> None:
+    network = create_network(client)
+    good = simulated_rows(3, 2, {"riverside": 2.0}, {"riverside": 3})
+    bad = [
+        dict(good[1], units_sold=5),  # more than on hand at opening
+        dict(good[1], location="harbour"),  # not a location of the network
+        dict(good[1], units_received=-1),
+        dict(good[1], stock_at_open=2.5),
+        dict(good[1], date="2026-02-30"),
+        dict(good[1], date=(date.today() + timedelta(days=5)).isoformat()),
+    ]
+    for index, row in enumerate(bad):
+        response = client.post(
+            f"/v1/networks/{network['id']}/history", json={"rows": [good[0], row]}
+        )
+        body = assert_problem(response, 422, "invalid-input")
+        field = {
+            0: "units_sold",
+            1: "location",
+            2: "units_received",
+            3: "stock_at_open",
+            4: "date",
+            5: "date",
+        }[index]
+        # Pydantic adds its own detail to a pointer for a type error; the row and field lead.
+        assert all(p.startswith(f"/rows/1/{field}") for p in pointers(body)), body
+
+    twice = client.post(f"/v1/networks/{network['id']}/history", json={"rows": [good[0], good[0]]})
+    assert pointers(assert_problem(twice, 422)) == ["/rows/1"]
+
+    csv_bad = "date,location,units_sold,stock_at_open,units_received\n2026-03-02,riverside,4,3,0\n"
+    response = client.post(
+        f"/v1/networks/{network['id']}/history",
+        content=csv_bad,
+        headers={"content-type": "text/csv"},
+    )
+    assert pointers(assert_problem(response, 422)) == ["/line/2/units_sold"]
+
+    missing_column = "date,location,units_sold,stock_at_open\n2026-03-02,riverside,1,3\n"
+    response = client.post(
+        f"/v1/networks/{network['id']}/history",
+        content=missing_column,
+        headers={"content-type": "text/csv"},
+    )
+    assert "units_received" in assert_problem(response, 422)["detail"]
+
+    xml = client.post(
+        f"/v1/networks/{network['id']}/history",
+        content="<rows/>",
+        headers={"content-type": "application/xml"},
+    )
+    assert_problem(xml, 415)
+    # Nothing of the refused uploads was kept.
+    assert client.get(f"/v1/networks/{network['id']}/history").json()["locations"] == []
+
+
+def test_calibration_matches_the_estimator_and_shows_the_naive_average(
+    client: TestClient,
+) -> None:
+    network = create_network(client)
+    means = {"riverside": 3.2, "hilltop": 1.4}
+    levels = {"riverside": 3, "hilltop": 2}
+    rows = simulated_rows(4, 120, means, levels)
+    upload(client, network["id"], rows)
+    response = client.get(f"/v1/networks/{network['id']}/calibration")
+    assert response.status_code == 200
+    assert response.headers["ETag"] == '"1"'
+    body = response.json()
+    assert (body["based_on_version"], body["would_create_version"]) == (1, 2)
+    assert body["calibrated_locations"] == 2
+    for item in body["locations"]:
+        mine = [row for row in rows if row["location"] == item["location"]]
+        direct = calibrate_location(
+            [r["units_sold"] for r in mine],
+            [r["stock_at_open"] for r in mine],
+            [r["units_received"] for r in mine],
+        )
+        assert item["demand"]["mean"] == pytest.approx(direct.demand.mean, rel=1e-12)
+        assert item["days"] == 120
+        assert item["sold_out_days"] == direct.censored_days > 0
+        # Sold-out days hide demand: the plain average is below the censored estimate.
+        assert item["demand"]["naive_mean"] < item["demand"]["mean"]
+        low, high = item["demand"]["mean_interval"]
+        assert low < item["demand"]["mean"] < high
+        assert set(item["changes"]) == {
+            "demand_mean",
+            "demand_variance",
+            "replenishment_mean",
+            "replenishment_variance",
+        }
+    proposed = {loc["id"]: loc for loc in body["spec"]["locations"]}
+    assert proposed["riverside"]["demand"]["mean"] == pytest.approx(
+        body["locations"][0]["demand"]["mean"], rel=1e-5
+    )
+
+
+def test_apply_creates_a_calibrated_version_and_recommendations_say_so(
+    client: TestClient, engine: Engine
+) -> None:
+    network = create_network(client)
+    run_worker(engine)
+    before = client.post(
+        f"/v1/networks/{network['id']}/recommendation",
+        json={"stock": {"riverside": 3, "hilltop": 4}},
+    ).json()
+    assert before["parameters_calibrated_at"] is None
+
+    upload(
+        client,
+        network["id"],
+        simulated_rows(5, 90, {"riverside": 4.0, "hilltop": 1.0}, {"riverside": 5, "hilltop": 3}),
+    )
+    url = f"/v1/networks/{network['id']}/calibration/apply"
+    assert_problem(client.post(url), 428)
+    assert_problem(client.post(url, headers={"If-Match": '"7"'}), 412)
+    applied = client.post(url, headers={"If-Match": '"1"'})
+    assert applied.status_code == 201, applied.text
+    assert applied.json()["version"] == 2
+    assert applied.headers["ETag"] == '"2"'
+    assert [job["criterion"] for job in applied.json()["jobs"]] == ["discounted"]
+
+    # Applying the same estimates again changes nothing: refused, not a duplicate version.
+    assert_problem(client.post(url, headers={"If-Match": '"2"'}), 409)
+
+    run_worker(engine)
+    after = client.post(
+        f"/v1/networks/{network['id']}/recommendation",
+        json={"stock": {"riverside": 3, "hilltop": 4}},
+    ).json()
+    assert after["version"] == 2
+    assert after["parameters_calibrated_at"] is not None
+    versions = client.get(f"/v1/networks/{network['id']}/versions").json()
+    calibrated = next(v for v in versions if v["number"] == 2)["spec"]
+    estimates = client.get(f"/v1/networks/{network['id']}/calibration").json()
+    assert estimates["spec"] == calibrated
+
+
+def test_apply_without_history_is_a_conflict(client: TestClient) -> None:
+    network = create_network(client)
+    response = client.post(
+        f"/v1/networks/{network['id']}/calibration/apply", headers={"If-Match": '"1"'}
+    )
+    assert "no history" in assert_problem(response, 409)["detail"]
+
+
+def test_automatic_apply_past_the_threshold_only(client: TestClient) -> None:
+    network = create_network(client)
+    settings = client.put(
+        f"/v1/networks/{network['id']}/calibration/settings",
+        json={"auto_apply_threshold": 0.25, "half_life_days": 60},
+    )
+    assert settings.status_code == 200, settings.text
+    assert client.get(f"/v1/networks/{network['id']}/calibration/settings").json() == {
+        "network_id": network["id"],
+        "window_days": None,
+        "half_life_days": 60.0,
+        "confidence": 0.95,
+        "auto_apply_threshold": 0.25,
+    }
+    # Demand well above the demo's riverside mean of 2.6: applied by itself.
+    rows = simulated_rows(
+        6, 120, {"riverside": 5.0, "hilltop": 1.7}, {"riverside": 8, "hilltop": 5}
+    )
+    stored = upload(client, network["id"], rows)
+    assert stored["auto_apply"]["applied"] is True, stored["auto_apply"]
+    assert stored["auto_apply"]["version"] == 2
+    assert stored["auto_apply"]["jobs"]
+    # The same history once more moves nothing beyond the threshold: no new version.
+    again = upload(client, network["id"], rows[-10:])
+    assert again["auto_apply"]["applied"] is False
+    assert "within the threshold" in again["auto_apply"]["reason"]
+    assert client.get(f"/v1/networks/{network['id']}").json()["version"] == 2
+
+
+@sqlite_only
+def test_every_day_sold_out_keeps_the_current_law_with_the_reason(client: TestClient) -> None:
+    network = create_network(client)
+    rows = [
+        {
+            "date": (START + timedelta(days=day)).isoformat(),
+            "location": "hilltop",
+            "units_sold": 2,
+            "stock_at_open": 2,
+            "units_received": 1,
+        }
+        for day in range(30)
+    ]
+    upload(client, network["id"], rows)
+    body = client.get(f"/v1/networks/{network['id']}/calibration").json()
+    hilltop = next(item for item in body["locations"] if item["location"] == "hilltop")
+    assert hilltop["demand"] is None and "sold out" in hilltop["error"]
+    riverside = next(item for item in body["locations"] if item["location"] == "riverside")
+    assert riverside["error"] == "no history"
+    assert body["calibrated_locations"] == 0
+    assert body["spec_hash"] == client.get(f"/v1/networks/{network['id']}").json()["spec_hash"]
+
+
+@sqlite_only
+def test_overrides_and_bad_query_values(client: TestClient) -> None:
+    network = create_network(client)
+    rows = simulated_rows(
+        7, 200, {"riverside": 2.0, "hilltop": 1.0}, {"riverside": 6, "hilltop": 4}
+    )
+    upload(client, network["id"], rows)
+    whole = client.get(f"/v1/networks/{network['id']}/calibration").json()
+    recent = client.get(f"/v1/networks/{network['id']}/calibration?window_days=30").json()
+    assert whole["locations"][0]["days"] == 200
+    assert recent["locations"][0]["days"] == 30
+    assert recent["settings"]["window_days"] == 30
+    assert_problem(client.get(f"/v1/networks/{network['id']}/calibration?window_days=0"), 422)
+    assert_problem(client.get(f"/v1/networks/{network['id']}/calibration?confidence=1.5"), 422)
+    assert_problem(client.get("/v1/networks/999999/calibration"), 404)
+    assert_problem(
+        client.put(f"/v1/networks/{network['id']}/calibration/settings", json={"threshold": 1}),
+        422,
+    )
