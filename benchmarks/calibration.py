@@ -1,6 +1,7 @@
 """Benchmark of demand and replenishment estimation from sales history, on one core.
 
-Usage: .venv/bin/python benchmarks/calibration.py [--days N] [--locations N] [--runs N] [--out PATH]
+Usage: .venv/bin/python benchmarks/calibration.py [--days N] [--locations N] [--runs N]
+                                                  [--out PATH]
 
 Scenario (our own): a chain of 50 hardware stores selling cordless drill kits, with three years
 (1,095 days) of daily history per store, drawn by a seeded generator. Store k has
@@ -17,7 +18,9 @@ Data sets:
                    looks overdispersed, so the weekday test fits the shared-dispersion model).
 
 Cases: calibrate_location (demand and replenishment) on poisson, overdispersed, and
-overdispersed with a 90-day half-life; weekday_effect on poisson and weekend peak.
+overdispersed with a 90-day half-life; weekday_effect on poisson and weekend peak. Then the
+coverage of the 95% intervals, censored estimate against the plain average of sales, over many
+simulated histories with frequent stock-outs.
 
 Each case is timed over all stores (calibrate_location: demand and replenishment, or
 weekday_effect), best of `--runs` runs after one warm-up; per-store median and maximum come from
@@ -249,6 +252,43 @@ def _cells(row: dict[str, Any]) -> list[str]:
     ]
 
 
+# Coverage scenarios (our own): true Poisson demand of 4 a day; stock at open fixed at a level
+# that sells out on the given share of days; 90 days or a year of history.
+COVERAGE_MEAN = 4.0
+COVERAGE_SCENARIOS = ((90, 8), (90, 4), (90, 3), (365, 4), (365, 3))
+COVERAGE_SEEDS = 400
+
+
+def coverage(days: int, stock: int, seeds: int) -> dict[str, Any]:
+    """How often the 95% intervals cover the true mean, censored estimate against the plain
+    average (mean +- 1.96 s / sqrt(n)), over `seeds` simulated histories."""
+    from scipy import stats
+
+    rng = np.random.default_rng(SEED + days + stock)
+    censored_hits = naive_hits = 0
+    estimates, naives = [], []
+    for _ in range(seeds):
+        sold = np.minimum(rng.poisson(COVERAGE_MEAN, days), stock)
+        at_open = np.full(days, stock)
+        fit = calibrate_location(sold, at_open, np.zeros(days, dtype=np.int64)).demand
+        low, high = fit.mean_interval
+        censored_hits += low <= COVERAGE_MEAN <= high
+        half = 1.96 * sold.std(ddof=1) / np.sqrt(days)
+        naive_hits += abs(sold.mean() - COVERAGE_MEAN) <= half
+        estimates.append(fit.mean)
+        naives.append(sold.mean())
+    return {
+        "days": days,
+        "stock_at_open": stock,
+        "sold_out_share": float(stats.poisson(COVERAGE_MEAN).sf(stock - 1)),
+        "seeds": seeds,
+        "censored_coverage": censored_hits / seeds,
+        "naive_coverage": naive_hits / seeds,
+        "censored_mean": float(np.mean(estimates)),
+        "naive_mean": float(np.mean(naives)),
+    }
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description="Benchmark demand and replenishment estimation.")
     parser.add_argument("--days", type=int, default=DEFAULT_DAYS, help="days of history")
@@ -291,6 +331,26 @@ def main(argv: Sequence[str] | None = None) -> int:
     )
     print(f"total wall time {total:.1f} s")
 
+    print(
+        f"\ncoverage of 95% intervals for a true mean of {COVERAGE_MEAN:g} a day, "
+        f"{COVERAGE_SEEDS} seeds:"
+    )
+    print(
+        "| days | stock at open | days sold out | censored covers | plain average covers "
+        "| mean censored estimate | mean plain average |"
+    )
+    print("|---:|---:|---:|---:|---:|---:|---:|")
+    covered = []
+    for days, stock in COVERAGE_SCENARIOS:
+        row = coverage(days, stock, COVERAGE_SEEDS)
+        covered.append(row)
+        print(
+            f"| {days} | {stock} | {row['sold_out_share']:.0%} | {row['censored_coverage']:.1%} "
+            f"| {row['naive_coverage']:.1%} | {row['censored_mean']:.2f} | "
+            f"{row['naive_mean']:.2f} |",
+            flush=True,
+        )
+
     report = {
         "benchmark": "calibration",
         "settings": {
@@ -306,6 +366,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         "distinct_pairs_per_store": pairs,
         "total_seconds": total,
         "cases": rows,
+        "coverage": covered,
     }
     args.out.parent.mkdir(parents=True, exist_ok=True)
     args.out.write_text(json.dumps(report, indent=2) + "\n")

@@ -12,6 +12,7 @@ from typing import Annotated, Any
 
 from fastapi import APIRouter, Query, Request, Response, status
 from pydantic import ValidationError
+from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 from starlette.concurrency import run_in_threadpool
 
@@ -223,15 +224,21 @@ def _store_history(
     rows = _parse_csv(raw) if csv_upload else _parse_json(raw)
     network = get_network(session, tenant_id, network_id)
     _check_rows(rows, _current_spec(session, network), csv_upload)
-    inserted, replaced = repository.store_sales_history(
-        session,
-        network.id,
-        [
-            SalesRow(r.location, r.date, r.units_sold, r.stock_at_open, r.units_received)
-            for r in rows
-        ],
-    )
-    session.flush()
+    try:
+        with session.begin_nested():
+            inserted, replaced = repository.store_sales_history(
+                session,
+                network.id,
+                [
+                    SalesRow(r.location, r.date, r.units_sold, r.stock_at_open, r.units_received)
+                    for r in rows
+                ],
+            )
+    except IntegrityError as exc:
+        raise Conflict(
+            "another upload stored some of these days at the same moment; send this one again "
+            "(a repeat replaces them)"
+        ) from exc
     options = options_for(session, network.id)
     auto = None
     if options.auto_apply_threshold is not None:
