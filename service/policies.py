@@ -19,6 +19,7 @@ from sqlalchemy.orm import Session
 
 from service.codec import CorruptPolicyError, decode_policy
 from service.db import repository
+from service.db.repository import VersionHead
 from service.db.tables import NetworkVersion
 from solver import InvalidStockError, PolicyResult, Recommendation
 
@@ -139,7 +140,7 @@ def load_policy(
 
 
 def _load(
-    session: Session, network: NetworkKey, version: NetworkVersion, criterion: str
+    session: Session, network: NetworkKey, version: VersionHead, criterion: str
 ) -> _Entry | None:
     row = repository.policy_for(session, network.tenant_id, version.spec_hash, criterion)
     if row is None:
@@ -161,7 +162,7 @@ def _load(
 
 
 def _not_ready(
-    session: Session, network: NetworkKey, version: NetworkVersion, criterion: str
+    session: Session, network: NetworkKey, version: VersionHead, criterion: str
 ) -> PolicyNotReadyError:
     jobs = repository.jobs_for(session, network.tenant_id, version.spec_hash, criterion)
     if not jobs:
