@@ -15,6 +15,7 @@ from service.api import (
     health,
     jobs,
     networks,
+    pictures,
     policies,
     recommendations,
 )
@@ -75,7 +76,16 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     )
     app.state.settings = settings
     install_problem_handlers(app)
-    for module in (networks, recommendations, closing, policies, calibration, jobs, health):
+    for module in (
+        networks,
+        recommendations,
+        closing,
+        policies,
+        pictures,
+        calibration,
+        jobs,
+        health,
+    ):
         app.include_router(module.router)
     # Added last = outermost: request ids first, then the body limit, then idempotent replays.
     app.add_middleware(

@@ -1,0 +1,257 @@
+"""Pictures of the served policy (SVG or PNG): the net move tonight and the value, by closing
+stock of two locations, every other location held at a fixed stock.
+
+Routes are plain `def`: drawing is CPU-bound and runs in the thread pool."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Annotated, Any
+
+from fastapi import APIRouter, Depends, Query
+from fastapi.responses import Response
+from sqlalchemy.orm import Session
+
+from service.api.deps import CacheDep, NetworkId, Reader, SessionDep, get_network
+from service.db.tables import Network
+from service.pictures import (
+    ANNOTATE_MAX_CELLS,
+    ImageFormat,
+    Plane,
+    PlaneError,
+    caption,
+    choose_plane,
+    net_inflow_grid,
+    parse_fixed_stock,
+    render_moves,
+    render_values,
+    value_grid,
+    value_label,
+)
+from service.policies import PolicyCache, ServedPolicy, load_policy
+from service.problems import PROBLEM_RESPONSES, InvalidInput
+from service.schemas import CriterionName
+
+router = APIRouter(tags=["pictures"], responses=PROBLEM_RESPONSES)
+
+_MEDIA_TYPES: dict[ImageFormat, str] = {"svg": "image/svg+xml", "png": "image/png"}
+# Pictures of one policy version never change, but a newer version may be served at any time.
+_CACHE_CONTROL = "private, max-age=60"
+
+
+def _picture_doc(image_format: ImageFormat, what: str) -> dict[int | str, dict[str, Any]]:
+    return {
+        200: {
+            "description": f"{what} The served policy's version is in `X-Policy-Version`.",
+            "content": {_MEDIA_TYPES[image_format]: {"schema": {"type": "string"}}},
+        }
+    }
+
+
+_MOVES = (
+    "A heatmap of the net units the policy moves tonight into the y-axis location (arriving "
+    "minus leaving, over all lanes), by closing stock of the x and y locations; positive: the "
+    "y location receives, negative: it sends."
+)
+_VALUES = (
+    "A heatmap of the policy's value by closing stock of the x and y locations: expected "
+    "discounted profit (discounted), or relative value, 0 when every location is empty "
+    "(average)."
+)
+
+
+@dataclass(frozen=True)
+class PlaneQuery:
+    x: str | None
+    y: str | None
+    at: str | None
+
+
+async def plane_query(
+    x: Annotated[
+        str | None,
+        Query(
+            max_length=64,
+            description="Location on the x axis; default: the first location not on the y axis.",
+        ),
+    ] = None,
+    y: Annotated[
+        str | None,
+        Query(
+            max_length=64,
+            description="Location on the y axis; default: the first location, in network "
+            "order, not on the x axis.",
+        ),
+    ] = None,
+    at: Annotated[
+        str | None,
+        Query(
+            max_length=10_000,
+            description="Closing stock of locations off the axes, as `location:units` items "
+            "separated by commas (e.g. `garden:3,yard:5`); a location not named is held at "
+            "half its capacity, rounded down.",
+        ),
+    ] = None,
+) -> PlaneQuery:
+    return PlaneQuery(x, y, at)
+
+
+PlaneDep = Annotated[PlaneQuery, Depends(plane_query)]
+Annotate = Annotated[
+    bool,
+    Query(
+        description=f"Write the units in every cell (only when the picture has at most "
+        f"{ANNOTATE_MAX_CELLS} stock levels along each axis; otherwise ignored)."
+    ),
+]
+
+
+@router.get(
+    "/v1/networks/{network_id}/policy.svg",
+    response_class=Response,
+    responses=_picture_doc("svg", _MOVES),
+)
+def policy_svg(
+    network_id: NetworkId,
+    session: SessionDep,
+    cache: CacheDep,
+    caller: Reader,
+    plane: PlaneDep,
+    criterion: CriterionName = "discounted",
+    annotate: Annotate = False,
+) -> Response:
+    return _moves(session, cache, caller.tenant_id, network_id, criterion, plane, annotate, "svg")
+
+
+@router.get(
+    "/v1/networks/{network_id}/policy.png",
+    response_class=Response,
+    responses=_picture_doc("png", _MOVES),
+)
+def policy_png(
+    network_id: NetworkId,
+    session: SessionDep,
+    cache: CacheDep,
+    caller: Reader,
+    plane: PlaneDep,
+    criterion: CriterionName = "discounted",
+    annotate: Annotate = False,
+) -> Response:
+    return _moves(session, cache, caller.tenant_id, network_id, criterion, plane, annotate, "png")
+
+
+@router.get(
+    "/v1/networks/{network_id}/value.svg",
+    response_class=Response,
+    responses=_picture_doc("svg", _VALUES),
+)
+def value_svg(
+    network_id: NetworkId,
+    session: SessionDep,
+    cache: CacheDep,
+    caller: Reader,
+    plane: PlaneDep,
+    criterion: CriterionName = "discounted",
+) -> Response:
+    return _values(session, cache, caller.tenant_id, network_id, criterion, plane, "svg")
+
+
+@router.get(
+    "/v1/networks/{network_id}/value.png",
+    response_class=Response,
+    responses=_picture_doc("png", _VALUES),
+)
+def value_png(
+    network_id: NetworkId,
+    session: SessionDep,
+    cache: CacheDep,
+    caller: Reader,
+    plane: PlaneDep,
+    criterion: CriterionName = "discounted",
+) -> Response:
+    return _values(session, cache, caller.tenant_id, network_id, criterion, plane, "png")
+
+
+def _moves(
+    session: Session,
+    cache: PolicyCache,
+    tenant_id: int,
+    network_id: int,
+    criterion: str,
+    query: PlaneQuery,
+    annotate: bool,
+    image_format: ImageFormat,
+) -> Response:
+    network, served, plane = _served_plane(session, cache, tenant_id, network_id, criterion, query)
+    subject = f"version {served.version_number} · net moves, {criterion} policy"
+    body = render_moves(
+        net_inflow_grid(served.result, plane),
+        x_id=plane.x_id,
+        y_id=plane.y_id,
+        title=caption(network.name, subject, plane),
+        image_format=image_format,
+        annotate=annotate,
+    )
+    return _image(body, image_format, served)
+
+
+def _values(
+    session: Session,
+    cache: PolicyCache,
+    tenant_id: int,
+    network_id: int,
+    criterion: str,
+    query: PlaneQuery,
+    image_format: ImageFormat,
+) -> Response:
+    network, served, plane = _served_plane(session, cache, tenant_id, network_id, criterion, query)
+    subject = f"version {served.version_number} · value of the {criterion} policy"
+    if served.result.gain is not None:
+        subject += f", profit per day {served.result.gain:,.2f}"
+    body = render_values(
+        value_grid(served.result, plane),
+        x_id=plane.x_id,
+        y_id=plane.y_id,
+        title=caption(network.name, subject, plane),
+        colour_label=value_label(criterion),
+        image_format=image_format,
+    )
+    return _image(body, image_format, served)
+
+
+def _served_plane(
+    session: Session,
+    cache: PolicyCache,
+    tenant_id: int,
+    network_id: int,
+    criterion: str,
+    query: PlaneQuery,
+) -> tuple[Network, ServedPolicy, Plane]:
+    """The network (404), the served policy (503 before its solve) and the plane to draw (422
+    naming each bad parameter). A malformed `at` is refused before the policy is loaded."""
+    network = get_network(session, tenant_id, network_id)
+    try:
+        fixed = parse_fixed_stock(query.at) if query.at is not None else {}
+        served = load_policy(session, cache, network, criterion)
+        plane = choose_plane(served.result, query.x, query.y, fixed)
+    except PlaneError as exc:
+        raise _invalid(exc) from exc
+    return network, served, plane
+
+
+def _invalid(exc: PlaneError) -> InvalidInput:
+    # Pointers in the form the validation handler uses for query parameters ("query:/x").
+    return InvalidInput(
+        str(exc), [(f"query:/{parameter}", what) for parameter, what in exc.problems]
+    )
+
+
+def _image(body: bytes, image_format: ImageFormat, served: ServedPolicy) -> Response:
+    return Response(
+        content=body,
+        media_type=_MEDIA_TYPES[image_format],
+        headers={
+            "Cache-Control": _CACHE_CONTROL,
+            "X-Policy-Version": str(served.version_number),
+        },
+    )
