@@ -103,6 +103,9 @@ def serve(args: argparse.Namespace) -> int:
             port=args.port,
             workers=args.workers,
             log_level="info",
+            # A process on a busy machine may need more than uvicorn's default 5 s to import
+            # the app (numpy, scipy, matplotlib) and answer its first health check.
+            timeout_worker_healthcheck=60,
         )
     return 0
 
