@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+import json
 import logging
 import math
 import sys
@@ -11,10 +12,14 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+from pydantic import ValidationError
 
 from service import operations
+from service.analysis import AnalysisInputError, run_simulation
 from service.errors import UsageError
 from service.files import load_network, write_json_atomically
+from service.logs import logging_from_environment
+from service.schemas import SimulationRequest
 from solver import NetworkSpec, PolicyResult, SolverError, solve_network
 
 __all__ = ["main"]
@@ -28,7 +33,7 @@ _GRID_MAX_SIDE = 21
 def main(argv: Sequence[str] | None = None) -> int:
     parser = _parser()
     args = parser.parse_args(argv)
-    logging.basicConfig(level=logging.WARNING, format="%(levelname)s %(name)s: %(message)s")
+    logging_from_environment()
     try:
         code: int = args.handler(args)
     except UsageError as exc:
@@ -59,6 +64,28 @@ def _parser() -> argparse.ArgumentParser:
     )
     solve.add_argument("--out", type=Path, metavar="RESULT.json", help="write the full policy")
     solve.set_defaults(handler=_solve)
+
+    simulate = commands.add_parser(
+        "simulate",
+        help="simulate the optimal policy beside simple rules and compare them",
+        description="Solve NETWORK.json, then simulate its optimal policy, moving nothing, and "
+        "balancing days of cover on the same random days, and print each one's profit per day, "
+        "fill rate, stock-out days and moves with 95%% intervals.",
+    )
+    simulate.add_argument("network", type=Path, metavar="NETWORK.json")
+    simulate.add_argument("--criterion", choices=["discounted", "average"], default="average")
+    simulate.add_argument(
+        "--days", type=int, default=365, help="days measured per replication (1..3650)"
+    )
+    simulate.add_argument(
+        "--replications", type=int, default=200, help="independent runs (1..2000)"
+    )
+    simulate.add_argument(
+        "--warmup", type=int, default=30, help="days simulated before measuring (0..365)"
+    )
+    simulate.add_argument("--seed", type=int, help="seed of the random days (default: random)")
+    simulate.add_argument("--json", action="store_true", help="print the report as JSON")
+    simulate.set_defaults(handler=_simulate)
 
     migrate = commands.add_parser(
         "migrate", help="upgrade the database (STOCKRELAY_DATABASE_URL) to the current schema"
@@ -182,6 +209,77 @@ def _solve(args: argparse.Namespace) -> int:
         write_json_atomically(args.out, result_document(spec, result))
     sys.stdout.write(summary(spec, result))
     return 0 if result.converged else 1
+
+
+_OPTIONS = {"warmup_days": "--warmup"}
+
+
+def _simulate(args: argparse.Namespace) -> int:
+    spec = load_network(args.network)
+    try:
+        params = SimulationRequest(
+            criterion=args.criterion,
+            days=args.days,
+            replications=args.replications,
+            warmup_days=args.warmup,
+            seed=args.seed,
+        )
+    except ValidationError as exc:
+        raise UsageError(
+            "; ".join(
+                f"{_OPTIONS.get(str(e['loc'][0]), '--' + str(e['loc'][0]))}: {e['msg']}"
+                for e in exc.errors(include_url=False)
+            )
+        ) from exc
+    try:
+        report = run_simulation(spec, params)
+    except AnalysisInputError as exc:
+        raise UsageError("; ".join(detail for _, detail in exc.errors)) from exc
+    except (SolverError, ValueError) as exc:
+        raise UsageError(f"{args.network}: {exc}") from exc
+    if args.json:
+        sys.stdout.write(json.dumps(report, indent=2) + "\n")
+    else:
+        sys.stdout.write(simulation_table(spec, report))
+    return 0
+
+
+def _count(n: int, noun: str) -> str:
+    return f"{n} {noun}" + ("" if n == 1 else "s")
+
+
+def _with_interval(interval: dict[str, Any]) -> str:
+    """ "mean (low to high)", two decimals."""
+    if interval["low"] is None or interval["high"] is None:
+        return f"{interval['mean']:.2f} (no interval)"
+    return f"{interval['mean']:.2f} ({interval['low']:.2f} to {interval['high']:.2f})"
+
+
+def simulation_table(spec: NetworkSpec, report: dict[str, Any]) -> str:
+    """The simulation report for a person: one row per policy."""
+    source = {"stored": "the stored policy", "solved": "solved for this run"}
+    start = ", ".join(f"{location} {units}" for location, units in report["start_stock"].items())
+    lines = [
+        f"network      {spec.name}",
+        f"criterion    {report['criterion']} (optimal policy {source[report['optimal_source']]})",
+        f"simulated    {_count(report['replications'], 'replication')} of "
+        f"{_count(report['days'], 'day')} after {_count(report['warmup_days'], 'warm-up day')}, "
+        f"seed {report['seed']}",
+        f"start stock  {start}",
+        "",
+        f"{'policy':<15}{'profit/day (95% interval)':<30}{'fill rate':>10}{'stock-out days':>16}"
+        f"{'units/night':>13}  {'vs optimal (95% interval)'}",
+    ]
+    for policy in report["policies"]:
+        difference = policy["difference_to_optimal"]
+        lines.append(
+            f"{policy['name']:<15}{_with_interval(policy['profit_per_day']):<30}"
+            f"{policy['fill_rate']['mean']:>10.1%}{policy['stockout_days']['mean']:>16.1%}"
+            f"{policy['units_moved_per_night']['mean']:>13.2f}  "
+            + ("-" if difference is None else _with_interval(difference))
+        )
+    lines += [f"note: {note}" for note in report["notes"]]
+    return "\n".join(lines) + "\n"
 
 
 def result_document(spec: NetworkSpec, result: PolicyResult) -> dict[str, Any]:

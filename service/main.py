@@ -10,11 +10,13 @@ from fastapi import FastAPI
 from sqlalchemy.exc import OperationalError
 
 from service.api import (
+    analysis,
     calibration,
     closing,
     health,
     jobs,
     networks,
+    ops,
     pictures,
     policies,
     recommendations,
@@ -22,8 +24,9 @@ from service.api import (
 from service.api.deps import KeyCache
 from service.db.migrate import require_migrated
 from service.db.session import make_engine, make_session_factory
+from service.logs import RequestLogContext, configure_server_logging
+from service.metrics import MeteredPolicyCache
 from service.middleware import BodySizeLimit, Idempotency
-from service.policies import PolicyCache
 from service.problems import RequestId, install_problem_handlers
 from service.ratelimit import RateLimiter
 from service.settings import Settings
@@ -51,6 +54,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
 
     @asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
+        configure_server_logging(settings)
         engine = make_engine(settings.database_url, pool_size=settings.database_pool_size)
         try:
             try:
@@ -59,7 +63,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
                 log.warning("database unreachable at start (%s); /readyz will say so", exc.orig)
             app.state.engine = engine
             app.state.sessions = make_session_factory(engine)
-            app.state.policy_cache = PolicyCache(settings.policy_cache_size)
+            app.state.policy_cache = MeteredPolicyCache(settings.policy_cache_size)
             app.state.key_cache = KeyCache(settings.key_cache_seconds)
             app.state.rate_limiter = RateLimiter(
                 settings.rate_limit_per_second, settings.rate_limit_burst
@@ -83,14 +87,18 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         policies,
         pictures,
         calibration,
+        analysis,
         jobs,
         health,
+        ops,
     ):
         app.include_router(module.router)
-    # Added last = outermost: request ids first, then the body limit, then idempotent replays.
+    # Added last = outermost: request ids first (RequestLogContext hands them to the log lines),
+    # then the body limit, then idempotent replays.
     app.add_middleware(
         Idempotency, sessions=lambda: app.state.sessions, ttl_seconds=settings.idempotency_seconds
     )
     app.add_middleware(BodySizeLimit, max_bytes=settings.max_body_bytes)
+    app.add_middleware(RequestLogContext)
     app.add_middleware(RequestId)
     return app

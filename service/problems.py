@@ -20,6 +20,7 @@ from fastapi.responses import JSONResponse
 from sqlalchemy.exc import OperationalError
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
+from service.analysis import AnalysisInputError
 from service.policies import PolicyNotReadyError, StockProblemsError, UnknownNetworkError
 from solver import InvalidStockError, ModelTooLargeError, NotUnichainError
 
@@ -159,6 +160,9 @@ def problem_for(exc: Exception) -> tuple[int, str, str, str, dict[str, Any]] | N
         return 422, "invalid-stock", "Invalid stock", str(exc), {"errors": errors}
     if isinstance(exc, InvalidStockError):
         return 422, "invalid-stock", "Invalid stock", str(exc), {}
+    if isinstance(exc, AnalysisInputError):
+        errors = [{"pointer": pointer, "detail": what} for pointer, what in exc.errors]
+        return 422, InvalidInput.slug, InvalidInput.title, str(exc), {"errors": errors}
     if isinstance(exc, UnknownNetworkError):
         return 404, NotFound.slug, NotFound.title, str(exc), {}
     if isinstance(exc, PolicyNotReadyError):
@@ -181,6 +185,7 @@ def problem_for(exc: Exception) -> tuple[int, str, str, str, dict[str, Any]] | N
 
 DOMAIN_ERRORS: tuple[type[Exception], ...] = (
     ApiProblem,
+    AnalysisInputError,
     InvalidStockError,
     PolicyNotReadyError,
     UnknownNetworkError,

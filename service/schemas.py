@@ -11,6 +11,7 @@ from typing import Annotated, Any, Literal
 from pydantic import AfterValidator, BaseModel, ConfigDict, Field, StrictInt, WithJsonSchema
 
 from solver import NetworkSpec
+from solver.spec import LaneSpec
 
 __all__ = [
     "AutoApplyOut",
@@ -30,19 +31,35 @@ __all__ = [
     "HistoryStored",
     "HistoryUpload",
     "InstructionsOut",
+    "IntervalOut",
     "JobOut",
+    "LaneOverride",
+    "LaneRef",
     "LocationCalibrationOut",
     "LocationHistoryOut",
+    "LocationOverride",
+    "MoveChangesOut",
     "NetworkCreate",
     "NetworkCreated",
     "NetworkOut",
     "NetworkUpdate",
+    "Overrides",
+    "PolicySimulationOut",
     "Problem",
     "RecommendationOut",
     "RecommendationRequest",
+    "SimulationJobOut",
+    "SimulationReportOut",
+    "SimulationRequest",
     "SolveState",
     "TransferOut",
     "VersionOut",
+    "WhatIfChangeOut",
+    "WhatIfJobOut",
+    "WhatIfOut",
+    "WhatIfRequest",
+    "WhatIfResultOut",
+    "WhatIfSummaryOut",
 ]
 
 CriterionName = Literal["discounted", "average"]
@@ -412,3 +429,217 @@ class CalibrationOut(BaseModel):
     locations: list[LocationCalibrationOut]
     spec: NetworkSpec = Field(description="The specification the next version would have.")
     spec_hash: str
+
+
+# -- simulations and what-if comparisons --------------------------------------------------------
+
+MAX_SEED = 2**63 - 1
+
+_StartUnits = Annotated[StrictInt, Field(description="Units on hand before the first night.")]
+
+
+class SimulationRequest(BaseModel):
+    """Simulate the optimal policy beside two simple rules on the same random days."""
+
+    model_config = ConfigDict(
+        extra="forbid",
+        json_schema_extra={
+            "examples": [
+                {"criterion": "average", "days": 365, "replications": 200, "seed": 20261201}
+            ]
+        },
+    )
+
+    criterion: CriterionName = Field(
+        default="average", description="Whose optimal policy is simulated."
+    )
+    days: Annotated[int, Field(ge=1, le=3650, description="Days measured per replication.")] = 365
+    replications: Annotated[
+        int, Field(ge=1, le=2000, description="Independent runs; intervals are across them.")
+    ] = 200
+    warmup_days: Annotated[
+        int, Field(ge=0, le=365, description="Days simulated first and not measured.")
+    ] = 30
+    seed: Annotated[int, Field(ge=0, le=MAX_SEED)] | None = Field(
+        default=None, description="Seed of the random days; chosen at random when absent."
+    )
+    start_stock: dict[str, _StartUnits] | None = Field(
+        default=None,
+        description="Stock of every location before the first night (default: half of each "
+        "capacity, rounded down).",
+    )
+
+
+class IntervalOut(BaseModel):
+    mean: float
+    low: float | None = Field(description="Null when one replication cannot show a spread.")
+    high: float | None
+
+
+class PolicySimulationOut(BaseModel):
+    name: Literal["optimal", "do_nothing", "balance_cover"] = Field(
+        description="optimal: the solved policy; do_nothing: never move; balance_cover: move "
+        "toward equal days of cover when the move pays for itself the next day."
+    )
+    profit_per_day: IntervalOut = Field(description="Currency per day, move costs deducted.")
+    fill_rate: IntervalOut = Field(description="Units sold / units demanded.")
+    fill_rate_by_location: dict[str, IntervalOut]
+    stockout_days: IntervalOut = Field(description="Fraction of location-days with lost sales.")
+    stockout_days_by_location: dict[str, IntervalOut]
+    units_moved_per_night: IntervalOut
+    move_cost_per_day: IntervalOut
+    difference_to_optimal: IntervalOut | None = Field(
+        description="Profit per day minus the optimal policy's on the same days; null for the "
+        "optimal policy itself."
+    )
+
+
+class SimulationReportOut(BaseModel):
+    criterion: CriterionName
+    days: int
+    replications: int
+    warmup_days: int
+    seed: int
+    confidence: float = Field(description="Level of every interval.")
+    start_stock: dict[str, int]
+    optimal_source: Literal["stored", "solved"] = Field(
+        description="stored: the network's cached policy; solved: solved for this simulation."
+    )
+    policies: list[PolicySimulationOut]
+    notes: list[str] = Field(description="Policies left out, and why.")
+
+
+class _AnalysisJobOut(BaseModel):
+    id: int
+    network_id: int
+    version: int = Field(description="The network version analysed.")
+    state: Literal["queued", "running", "done", "failed"]
+    criterion: CriterionName
+    attempts: int
+    created_at: Timestamp
+    started_at: Timestamp | None
+    finished_at: Timestamp | None
+    seconds: float | None = Field(description="Computing time of the finished job.")
+    error: str | None
+
+
+class SimulationJobOut(_AnalysisJobOut):
+    request: SimulationRequest = Field(description="What is simulated, the seed included.")
+    report: SimulationReportOut | None = Field(description="Once the job is done.")
+
+
+class LocationOverride(BaseModel):
+    """New values for one location; absent fields keep theirs."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    capacity: Annotated[int, Field(ge=1, le=100_000)] | None = None
+    unit_margin: Annotated[float, Field(ge=0, allow_inf_nan=False)] | None = None
+    holding_cost: Annotated[float, Field(ge=0, allow_inf_nan=False)] | None = None
+    stockout_penalty: Annotated[float, Field(ge=0, allow_inf_nan=False)] | None = None
+    demand_mean: Annotated[float, Field(ge=0, allow_inf_nan=False)] | None = Field(
+        default=None,
+        description="Mean daily demand; a Poisson law keeps its family, a negative binomial "
+        "its variance-to-mean ratio; an explicit distribution cannot be rescaled.",
+    )
+
+
+class LaneRef(BaseModel):
+    model_config = ConfigDict(extra="forbid", populate_by_name=True)
+
+    from_: Annotated[str, Field(alias="from", min_length=1, max_length=64)]
+    to: Annotated[str, Field(min_length=1, max_length=64)]
+
+
+class LaneOverride(LaneRef):
+    """New values for an existing lane, named by its ends."""
+
+    unit_cost: Annotated[float, Field(ge=0, allow_inf_nan=False)] | None = None
+    max_units: Annotated[int, Field(ge=1, le=10_000)] | None = None
+
+
+class Overrides(BaseModel):
+    """Changes to the current version; everything not named stays as it is."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    locations: dict[str, LocationOverride] = Field(
+        default_factory=dict, description="By location id."
+    )
+    lanes: Annotated[list[LaneOverride], Field(max_length=1_000)] = Field(default_factory=list)
+    new_lanes: Annotated[list[LaneSpec], Field(max_length=1_000)] = Field(default_factory=list)
+    remove_lanes: Annotated[list[LaneRef], Field(max_length=1_000)] = Field(default_factory=list)
+    max_units_per_night: Annotated[int, Field(ge=1)] | None = Field(
+        default=None,
+        description="Most units moved in one night; null lifts the limit, absent keeps it.",
+    )
+
+
+class WhatIfRequest(BaseModel):
+    model_config = ConfigDict(
+        extra="forbid",
+        json_schema_extra={
+            "examples": [
+                {
+                    "criterion": "discounted",
+                    "overrides": {
+                        "locations": {"hilltop": {"capacity": 12}},
+                        "lanes": [{"from": "riverside", "to": "hilltop", "unit_cost": 3.0}],
+                    },
+                }
+            ]
+        },
+    )
+
+    criterion: CriterionName = "discounted"
+    overrides: Overrides
+
+
+class WhatIfSummaryOut(BaseModel):
+    states: int
+    profit_per_day: float | None = Field(description="Long-run profit per day (average only).")
+    mean_value: float | None = Field(
+        description="Expected discounted profit averaged over every stock (discounted only)."
+    )
+    reference_stock: dict[str, int]
+    value_at_reference: float | None = Field(
+        description="Expected discounted profit from the reference stock (discounted only)."
+    )
+    residual: float
+    error_bound: float
+
+
+class WhatIfChangeOut(BaseModel):
+    """Changed minus base."""
+
+    profit_per_day: float | None
+    mean_value: float | None
+    value_at_reference: float | None
+
+
+class MoveChangesOut(BaseModel):
+    comparable: bool = Field(description="False when the overrides change the stock states.")
+    states_changed: int | None = Field(
+        description="Stocks at which the recommended moves differ (null when not comparable)."
+    )
+    base_states: int
+    changed_states: int
+    detail: str
+
+
+class WhatIfResultOut(BaseModel):
+    criterion: CriterionName
+    base: WhatIfSummaryOut
+    changed: WhatIfSummaryOut
+    change: WhatIfChangeOut
+    moves: MoveChangesOut
+    changed_spec: NetworkSpec = Field(description="The current version with the overrides.")
+
+
+class WhatIfOut(WhatIfResultOut):
+    network_id: int
+    version: int = Field(description="The network version the overrides were applied to.")
+
+
+class WhatIfJobOut(_AnalysisJobOut):
+    result: WhatIfResultOut | None = Field(description="Once the job is done.")

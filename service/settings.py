@@ -2,9 +2,9 @@
 
 from __future__ import annotations
 
-from typing import Annotated
+from typing import Annotated, Literal
 
-from pydantic import Field, field_validator
+from pydantic import Field, ValidationInfo, field_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
 from solver import SizeLimits
@@ -39,6 +39,21 @@ class Settings(BaseSettings):
     policy_cache_size: Annotated[
         int, Field(ge=0, description="Decoded policies kept in memory per process.")
     ] = 64
+    simulation_max_replication_days: Annotated[
+        int,
+        Field(
+            ge=1,
+            description="Largest simulation accepted: (days + warmup days) x replications.",
+        ),
+    ] = 2_000_000
+    what_if_sync_max_states: Annotated[
+        int,
+        Field(
+            ge=0,
+            description="What-if comparisons whose networks both have at most this many stock "
+            "states are answered at once; larger ones are queued for a worker.",
+        ),
+    ] = 20_000
 
     rate_limit_per_second: Annotated[
         float, Field(gt=0, description="Sustained requests per second per API key.")
@@ -53,6 +68,21 @@ class Settings(BaseSettings):
     key_cache_seconds: Annotated[
         float, Field(ge=0, description="How long a process trusts a key it has checked.")
     ] = 5.0
+    log_format: Annotated[
+        Literal["text", "json"],
+        Field(description="Log lines as text for people, or one JSON object per line."),
+    ] = "text"
+    log_level: Annotated[
+        Literal["DEBUG", "INFO", "WARNING", "ERROR"],
+        Field(description="Lowest level logged (INFO includes the audit lines)."),
+    ] = "WARNING"
+
+    @field_validator("log_format", "log_level", mode="before")
+    @classmethod
+    def _any_case(cls, value: object, info: ValidationInfo) -> object:
+        if not isinstance(value, str):
+            return value
+        return value.upper() if info.field_name == "log_level" else value.lower()
 
     @field_validator("database_url")
     @classmethod

@@ -8,10 +8,16 @@ only while the lease is still held.
 
 On SIGTERM or SIGINT the worker stops claiming, lets the current solve finish within a grace
 period, and otherwise gives the job back to the queue before exiting.
+
+Simulations and what-if comparisons come through the same queue (the job's `kind`) and run the
+same way, in a background thread under a renewed lease; their JSON report is stored, and the
+job marked done, in one statement while the lease is held. A simulation uses the network's
+stored optimal policy when there is one, and solves it otherwise.
 """
 
 from __future__ import annotations
 
+import json
 import logging
 import os
 import signal
@@ -21,14 +27,17 @@ import time
 import uuid
 from dataclasses import dataclass
 from types import FrameType
+from typing import Any
 
 from pydantic import ValidationError
 from sqlalchemy.orm import Session, sessionmaker
 from threadpoolctl import threadpool_limits
 
-from service.codec import encode_policy
+from service import analysis
+from service.codec import CorruptPolicyError, decode_policy, encode_policy
 from service.db import repository
-from service.db.tables import NetworkVersion
+from service.db.tables import JobKind, NetworkVersion
+from service.schemas import SimulationRequest, WhatIfRequest
 from service.settings import Settings
 from solver import NetworkSpec, PolicyResult, SolverError, solve_network
 
@@ -49,6 +58,10 @@ class _Claimed:
     criterion: str
     spec_json: str
     version_id: int
+    kind: str
+    params: str | None
+    tenant_id: int
+    spec_hash: str
 
 
 class _Solve(threading.Thread):
@@ -69,6 +82,52 @@ class _Solve(threading.Thread):
             )
         except BaseException as exc:  # handed to the worker thread, which decides
             self.error = exc
+
+
+class _Analyse(threading.Thread):
+    """Runs one simulation or what-if comparison; daemon, like _Solve."""
+
+    def __init__(
+        self,
+        claimed: _Claimed,
+        spec: NetworkSpec,
+        optimal: PolicyResult | None,
+        settings: Settings,
+    ) -> None:
+        super().__init__(daemon=True, name=f"stockrelay-{claimed.kind}")
+        self.claimed, self.spec, self.optimal, self.settings = claimed, spec, optimal, settings
+        self.result: dict[str, Any] | None = None
+        self.error: BaseException | None = None
+        self.seconds = 0.0
+
+    def run(self) -> None:
+        start = time.perf_counter()
+        try:
+            self.result = self._compute()
+        except BaseException as exc:  # handed to the worker thread, which decides
+            self.error = exc
+        finally:
+            self.seconds = time.perf_counter() - start
+
+    def _compute(self) -> dict[str, Any]:
+        kind, params = self.claimed.kind, self.claimed.params
+        if params is None:
+            raise ValueError(f"the {kind} job has no parameters")
+        limits = self.settings.size_limits
+        if kind == JobKind.SIMULATE:
+            return analysis.run_simulation(
+                self.spec,
+                SimulationRequest.model_validate_json(params),
+                self.optimal,
+                limits=limits,
+                max_replication_days=self.settings.simulation_max_replication_days,
+            )
+        if kind == JobKind.WHAT_IF:
+            request = WhatIfRequest.model_validate_json(params)
+            return analysis.run_what_if(
+                self.spec, request.overrides, criterion=request.criterion, limits=limits
+            )
+        raise ValueError(f"unknown job kind {kind!r}")
 
 
 class Worker:
@@ -127,12 +186,23 @@ class Worker:
             if job is None:
                 return None
             version = session.get_one(NetworkVersion, job.version_id)
-            return _Claimed(job.id, job.attempts, job.criterion, version.spec_json, version.id)
+            return _Claimed(
+                job.id,
+                job.attempts,
+                job.criterion,
+                version.spec_json,
+                version.id,
+                job.kind,
+                job.params,
+                job.tenant_id,
+                job.spec_hash,
+            )
 
     def _handle(self, claimed: _Claimed) -> None:
         log.info(
-            "job %d: solving version %d (%s), attempt %d",
+            "job %d: %s version %d (%s), attempt %d",
             claimed.job_id,
+            "solving" if claimed.kind == JobKind.SOLVE else f"{claimed.kind} of",
             claimed.version_id,
             claimed.criterion,
             claimed.attempts,
@@ -143,7 +213,11 @@ class Worker:
             self._fail(claimed, f"stored specification is invalid: {exc}")
             return
 
-        solve = _Solve(spec, claimed.criterion, self.settings)
+        solve: _Solve | _Analyse
+        if claimed.kind == JobKind.SOLVE:
+            solve = _Solve(spec, claimed.criterion, self.settings)
+        else:
+            solve = _Analyse(claimed, spec, self._stored_policy(claimed), self.settings)
         solve.start()
         if not self._wait(claimed, solve):
             return
@@ -159,9 +233,29 @@ class Worker:
                 )
             return
         assert solve.result is not None
-        self._store(claimed, solve.result)
+        if isinstance(solve, _Solve):
+            self._store(claimed, solve.result)
+        else:
+            self._store_report(claimed, solve.result, solve.seconds)
 
-    def _wait(self, claimed: _Claimed, solve: _Solve) -> bool:
+    def _stored_policy(self, claimed: _Claimed) -> PolicyResult | None:
+        """The stored optimal policy a simulation compares against; None when there is none
+        (or it is corrupt: the read path repairs it), and the simulation solves its own."""
+        if claimed.kind != JobKind.SIMULATE:
+            return None
+        with self.sessions() as session:
+            row = repository.policy_for(
+                session, claimed.tenant_id, claimed.spec_hash, claimed.criterion
+            )
+            if row is None:
+                return None
+            try:
+                return decode_policy(row.arrays, row.layout, row.checksum, row.meta)
+            except CorruptPolicyError as exc:
+                log.warning("job %d: stored policy unusable (%s); solving", claimed.job_id, exc)
+                return None
+
+    def _wait(self, claimed: _Claimed, solve: threading.Thread) -> bool:
         """Renew the lease until the solve ends. False when the job was handed back or lost.
 
         Waits in short slices so that a stop request is noticed at once, not at the next
@@ -217,3 +311,12 @@ class Worker:
             )
         else:
             log.warning("job %d: lease lost before the policy was stored", claimed.job_id)
+
+    def _store_report(self, claimed: _Claimed, report: dict[str, Any], seconds: float) -> None:
+        text = json.dumps(report, allow_nan=False, separators=(",", ":"))
+        with self.sessions.begin() as session:
+            stored = repository.store_analysis(session, claimed.job_id, self.owner, text, seconds)
+        if stored:
+            log.info("job %d: %s done in %.3f s", claimed.job_id, claimed.kind, seconds)
+        else:
+            log.warning("job %d: lease lost before the report was stored", claimed.job_id)

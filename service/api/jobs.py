@@ -1,4 +1,5 @@
-"""Solve jobs."""
+"""Solve jobs. Simulations and what-if comparisons share the queue but are read under their
+network (/v1/networks/{id}/simulations/{job_id}, /v1/networks/{id}/what-if/{job_id})."""
 
 from __future__ import annotations
 
@@ -8,6 +9,7 @@ from fastapi import APIRouter, Query
 
 from service.api.deps import JobId, Reader, SessionDep
 from service.db import repository
+from service.db.tables import JobKind, NetworkVersion
 from service.problems import PROBLEM_RESPONSES, NotFound
 from service.schemas import JobOut
 
@@ -19,6 +21,12 @@ def get_job(job_id: JobId, session: SessionDep, caller: Reader) -> JobOut:
     job = repository.get_job(session, job_id)
     if job is None or job.tenant_id != caller.tenant_id:
         raise NotFound(f"no job {job_id}")
+    if job.kind != JobKind.SOLVE:
+        network_id = session.get_one(NetworkVersion, job.version_id).network_id
+        path = "simulations" if job.kind == JobKind.SIMULATE else "what-if"
+        raise NotFound(
+            f"job {job_id} is not a solve; read it at /v1/networks/{network_id}/{path}/{job_id}"
+        )
     return JobOut.model_validate(job)
 
 

@@ -19,6 +19,7 @@ from starlette.concurrency import run_in_threadpool
 from service.api.deps import CacheDep, NetworkId, Reader, sessions_of
 from service.api.views import recommendation_out
 from service.auth import Identity
+from service.metrics import observe_recommendation
 from service.policies import NetworkRef, PolicyCache, recommend
 from service.problems import PROBLEM_RESPONSES, problem_body, problem_for
 from service.schemas import (
@@ -86,6 +87,7 @@ async def recommend_transfers(
 
     out = await run_in_threadpool(work)
     _audit(request, caller, out, started)
+    observe_recommendation("single", started)
     return out
 
 
@@ -110,6 +112,7 @@ async def recommend_batch(
     for outcome in response.items:
         if outcome.result is not None:
             _audit(request, caller, outcome.result, started)
+    observe_recommendation("batch", started)
     return response
 
 

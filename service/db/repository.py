@@ -1,9 +1,12 @@
 """Queries. Every function takes the caller's Session and leaves committing to it.
 
-The job queue lives in `solve_jobs`. A job is claimable when queued, or when running with an
-expired lease (its worker died). Claiming is one UPDATE whose target is chosen by a subquery with
-`FOR UPDATE SKIP LOCKED` on PostgreSQL, so concurrent workers never block on or take the same
-job; SQLite has a single writer, and the UPDATE re-checks that the job is still claimable.
+The job queue lives in `solve_jobs`: solves, and simulations and what-if comparisons (`kind`),
+which go through the same claims and leases but store a JSON report instead of a policy. Whatever
+lists or reports solves looks at kind "solve" only. A job is claimable when queued, or when
+running with an expired lease (its worker died). Claiming is one UPDATE whose target is chosen by
+a subquery with `FOR UPDATE SKIP LOCKED` on PostgreSQL, so concurrent workers never block on or
+take the same job; SQLite has a single writer, and the UPDATE re-checks that the job is still
+claimable.
 """
 
 from __future__ import annotations
@@ -32,10 +35,12 @@ from sqlalchemy import (
 )
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
+from sqlalchemy.sql import Subquery
 
 from service.codec import EncodedPolicy
 from service.db.base import utcnow
 from service.db.tables import (
+    JobKind,
     JobState,
     Network,
     NetworkVersion,
@@ -50,11 +55,14 @@ __all__ = [
     "LocationHistory",
     "SalesRow",
     "VersionHead",
+    "analysis_job",
     "canonical_spec",
     "claim_job",
     "create_network",
     "criteria_requested",
+    "current_versions",
     "delete_policy",
+    "enqueue_analysis",
     "enqueue_solves",
     "fail_exhausted_jobs",
     "finish_job",
@@ -72,6 +80,7 @@ __all__ = [
     "retry_job",
     "sales_history",
     "sales_history_summary",
+    "store_analysis",
     "store_policy",
     "store_sales_history",
     "versions_newest_first",
@@ -153,6 +162,18 @@ def live_versions_newest_first(
         .order_by(NetworkVersion.number.desc())
     )
     return [VersionHead(*row) for row in rows]
+
+
+def current_versions() -> Subquery:
+    """(network_id, number) of every network's current version, to join against."""
+    return (
+        select(
+            NetworkVersion.network_id.label("network_id"),
+            func.max(NetworkVersion.number).label("number"),
+        )
+        .group_by(NetworkVersion.network_id)
+        .subquery()
+    )
 
 
 def latest_version(session: Session, network_id: int) -> NetworkVersion | None:
@@ -409,6 +430,79 @@ def store_policy(
     return True
 
 
+def store_analysis(
+    session: Session,
+    job_id: int,
+    owner: str,
+    result: str,
+    seconds: float,
+    now: datetime | None = None,
+) -> bool:
+    """Mark a simulation or what-if job done with its report (`result`, JSON), in one statement
+    that holds only while `owner` holds the lease. False (and nothing written) when it was
+    lost."""
+    now = now or utcnow()
+    done = session.execute(
+        update(SolveJob)
+        .where(_owned(job_id, owner), SolveJob.kind != JobKind.SOLVE.value)
+        .values(
+            state=JobState.DONE.value,
+            finished_at=now,
+            lease_owner=None,
+            lease_expires_at=None,
+            solve_seconds=seconds,
+            result=result,
+            error=None,
+        )
+    )
+    return bool(getattr(done, "rowcount", 0))
+
+
+def enqueue_analysis(
+    session: Session,
+    tenant_id: int,
+    version: NetworkVersion,
+    kind: JobKind,
+    criterion: str,
+    params: str,
+) -> SolveJob:
+    """Queue a simulation or what-if job of `version` with its request (`params`, JSON). Any
+    number may be live for one specification."""
+    if kind is JobKind.SOLVE:
+        raise ValueError("solves are queued by enqueue_solves")
+    job = SolveJob(
+        tenant_id=tenant_id,
+        version_id=version.id,
+        spec_hash=version.spec_hash,
+        criterion=criterion,
+        kind=kind.value,
+        params=params,
+        state=JobState.QUEUED.value,
+        attempts=0,
+    )
+    session.add(job)
+    session.flush()
+    return job
+
+
+def analysis_job(
+    session: Session, tenant_id: int, network_id: int, kind: JobKind, job_id: int
+) -> tuple[SolveJob, NetworkVersion] | None:
+    """The tenant's job of `kind` on a version of `network_id`, with that version; None when
+    there is none (another network's or tenant's job looks the same)."""
+    row = session.execute(
+        select(SolveJob, NetworkVersion)
+        .join(NetworkVersion, NetworkVersion.id == SolveJob.version_id)
+        .where(
+            SolveJob.id == job_id,
+            SolveJob.tenant_id == tenant_id,
+            SolveJob.kind == kind.value,
+            NetworkVersion.network_id == network_id,
+        )
+    ).one_or_none()
+    return None if row is None else (row[0], row[1])
+
+
 def get_job(session: Session, job_id: int) -> SolveJob | None:
     return session.get(SolveJob, job_id)
 
@@ -416,23 +510,32 @@ def get_job(session: Session, job_id: int) -> SolveJob | None:
 def jobs_for(
     session: Session, tenant_id: int, spec_hash: str, criterion: str
 ) -> Sequence[SolveJob]:
-    """Every job ever run for one specification and criterion, newest first."""
+    """Every solve job ever run for one specification and criterion, newest first."""
     return session.scalars(
         select(SolveJob)
         .where(
             SolveJob.tenant_id == tenant_id,
             SolveJob.spec_hash == spec_hash,
             SolveJob.criterion == criterion,
+            SolveJob.kind == JobKind.SOLVE.value,
         )
         .order_by(SolveJob.id.desc())
     ).all()
 
 
 def list_jobs(
-    session: Session, state: str | None = None, limit: int = 100, *, tenant_id: int | None = None
+    session: Session,
+    state: str | None = None,
+    limit: int = 100,
+    *,
+    tenant_id: int | None = None,
+    kind: JobKind | None = JobKind.SOLVE,
 ) -> Sequence[SolveJob]:
-    """Newest first, optionally of one state and one tenant."""
+    """Newest first, optionally of one state and one tenant; solves unless `kind` says
+    otherwise (None: every kind)."""
     query = select(SolveJob).order_by(SolveJob.id.desc()).limit(limit)
+    if kind is not None:
+        query = query.where(SolveJob.kind == kind.value)
     if state is not None:
         query = query.where(SolveJob.state == state)
     if tenant_id is not None:
@@ -621,13 +724,16 @@ def sales_history_summary(
 
 
 def criteria_requested(session: Session, tenant_id: int, spec_hash: str) -> list[str]:
-    """Criteria with a policy or a job for the specification, in a fixed order."""
+    """Criteria with a policy or a solve job for the specification, in a fixed order."""
     solved = session.scalars(
         select(Policy.criterion).where(Policy.tenant_id == tenant_id, Policy.spec_hash == spec_hash)
     ).all()
     asked = session.scalars(
         select(SolveJob.criterion).where(
-            SolveJob.tenant_id == tenant_id, SolveJob.spec_hash == spec_hash
+            SolveJob.tenant_id == tenant_id,
+            SolveJob.spec_hash == spec_hash,
+            SolveJob.kind == JobKind.SOLVE.value,
         )
     ).all()
-    return sorted(set(solved) | set(asked))
+    # Discounted first, as when a network is created.
+    return sorted(set(solved) | set(asked), key=lambda c: (c != "discounted", c))

@@ -2,8 +2,10 @@
 
 A policy is keyed by (tenant, specification hash, criterion): versions of any network of one
 tenant with identical specifications share it. A job is live while queued or running; a partial
-unique index allows one live job per (tenant, hash, criterion), and a unique constraint one
-policy, so no specification is ever solved into two live policies.
+unique index allows one live solve job per (tenant, hash, criterion), and a unique constraint one
+policy, so no specification is ever solved into two live policies. The same queue runs
+simulations and what-if comparisons (`kind`), which the index leaves alone: several may run for
+one specification.
 """
 
 from __future__ import annotations
@@ -35,6 +37,7 @@ __all__ = [
     "ClosingCount",
     "IdempotencyRecord",
     "Instruction",
+    "JobKind",
     "JobState",
     "Network",
     "NetworkVersion",
@@ -52,6 +55,12 @@ class JobState(StrEnum):
     RUNNING = "running"
     DONE = "done"
     FAILED = "failed"
+
+
+class JobKind(StrEnum):
+    SOLVE = "solve"
+    SIMULATE = "simulate"
+    WHAT_IF = "what_if"
 
 
 class Tenant(Base):
@@ -103,8 +112,8 @@ class SolveJob(Base):
             "spec_hash",
             "criterion",
             unique=True,
-            sqlite_where=text("state IN ('queued', 'running')"),
-            postgresql_where=text("state IN ('queued', 'running')"),
+            sqlite_where=text("state IN ('queued', 'running') AND kind = 'solve'"),
+            postgresql_where=text("state IN ('queued', 'running') AND kind = 'solve'"),
         ),
         Index("ix_solve_jobs_state_id", "state", "id"),
     )
@@ -114,6 +123,9 @@ class SolveJob(Base):
     version_id: Mapped[int] = mapped_column(ForeignKey("network_versions.id"), index=True)
     spec_hash: Mapped[str] = mapped_column(_HASH)
     criterion: Mapped[str] = mapped_column(String(16))
+    kind: Mapped[str] = mapped_column(
+        String(16), default=JobKind.SOLVE.value, server_default=JobKind.SOLVE.value
+    )
     state: Mapped[str] = mapped_column(String(16), default=JobState.QUEUED)
     attempts: Mapped[int] = mapped_column(Integer, default=0)
     lease_owner: Mapped[str | None] = mapped_column(String(200))
@@ -125,6 +137,9 @@ class SolveJob(Base):
     iterations: Mapped[int | None] = mapped_column(Integer)
     residual: Mapped[float | None] = mapped_column(Float)
     error: Mapped[str | None] = mapped_column(Text)
+    # Simulations and what-if comparisons: the request as JSON, and the report once done.
+    params: Mapped[str | None] = mapped_column(Text)
+    result: Mapped[str | None] = mapped_column(Text)
 
 
 class Policy(Base):

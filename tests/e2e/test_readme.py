@@ -126,9 +126,16 @@ class Shown(float):
         return 0.5 * 10.0 ** (int(exponent or 0) - decimals) * (1 + 1e-9)
 
 
+# An object shown with `...` as its last member may have more members than it shows.
+_MORE = "..."
+
+
 def parse_shown_json(text: str) -> Any:
-    """JSON whose lists may end in `...` (elided items); numbers become Shown."""
-    return json.loads(re.sub(r",\s*\.\.\.\s*(?=\])", "", text), parse_float=Shown)
+    """JSON whose lists and objects may end in `...` (elided items or members); numbers become
+    Shown."""
+    text = re.sub(r",\s*\.\.\.\s*(?=\])", "", text)
+    text = re.sub(r",\s*\.\.\.\s*(?=\})", f', "{_MORE}": null', text)
+    return json.loads(text, parse_float=Shown)
 
 
 # -- comparing ---------------------------------------------------------------------------------
@@ -142,12 +149,17 @@ def assert_number_close(actual: Any, shown: Shown, where: str) -> None:
 
 
 def assert_matches_shown(actual: Any, shown: Any, where: str = "") -> None:
-    """`actual` has exactly the keys shown, the values shown (lists shown may be elided)."""
+    """`actual` has exactly the keys shown (at least, where the README elides members), the
+    values shown (lists shown may be elided)."""
     if isinstance(shown, dict):
         assert isinstance(actual, dict), (where, actual)
-        assert sorted(actual) == sorted(shown), f"{where}: keys {sorted(actual)}"
+        if _MORE in shown:
+            missing = sorted(set(shown) - set(actual) - {_MORE})
+            assert not missing, f"{where}: no {missing} in {sorted(actual)}"
+        else:
+            assert sorted(actual) == sorted(shown), f"{where}: keys {sorted(actual)}"
         for key, value in shown.items():
-            if key not in _UNCOMPARED_KEYS:
+            if key not in _UNCOMPARED_KEYS and key != _MORE:
                 assert_matches_shown(actual[key], value, f"{where}/{key}")
     elif isinstance(shown, list):
         assert isinstance(actual, list) and len(actual) >= len(shown), (where, actual)
@@ -237,12 +249,29 @@ def curl_request(command: Command, base: str) -> tuple[str, str, dict[str, str],
             headers[name.strip()] = value.strip()
         elif arg == "-d":
             body = next(args)
+        elif arg == "--data-binary":
+            source = next(args)
+            assert source.startswith("@"), command.line
+            body = (ROOT / source[1:]).read_text(encoding="utf-8")
         elif arg.startswith("http"):
             url = arg
         else:
             pytest.fail(f"the README's curl uses {arg!r}, which this test does not know")
     assert url.startswith(MAKE_RUN_BASE + "/"), f"make run serves on {MAKE_RUN_BASE}: {url}"
     return method, base + url[len(MAKE_RUN_BASE) :], headers, body
+
+
+def make_run_database(tmp_path: Path) -> str:
+    """A SQLite database prepared as `make run` prepares it: migrated, with the demo network
+    imported for both criteria. Returns its URL."""
+    url = f"sqlite:///{tmp_path / 'stockrelay.db'}"
+    migrate(url)
+    subprocess.run(
+        [sys.executable, "-m", "service.cli", "networks", "import", str(DEMO),
+         "--criteria", "discounted,average", "--skip-unchanged"],
+        cwd=ROOT, env=environment(url), check=True, capture_output=True, timeout=COMMAND_DEADLINE,
+    )  # fmt: skip
+    return url
 
 
 # -- tests -------------------------------------------------------------------------------------
@@ -254,14 +283,8 @@ def test_http_api_example_answers_as_shown(tmp_path: Path, live: Live) -> None:
     answer, problem = (parse_shown_json(b.text) for b in blocks if b.language == "json")
     assert curl.expected == []
 
-    # As `make run` prepares it: migrated SQLite, the demo network imported, a worker, the API.
-    url = f"sqlite:///{tmp_path / 'stockrelay.db'}"
-    migrate(url)
-    subprocess.run(
-        [sys.executable, "-m", "service.cli", "networks", "import", str(DEMO),
-         "--criteria", "discounted,average", "--skip-unchanged"],
-        cwd=ROOT, env=environment(url), check=True, capture_output=True, timeout=COMMAND_DEADLINE,
-    )  # fmt: skip
+    # As `make run` prepares it: the database, a worker, the API.
+    url = make_run_database(tmp_path)
     base = live.api(url)
     live.worker(url)
     method, target, headers, body = curl_request(curl, base)
@@ -282,6 +305,26 @@ def test_http_api_example_answers_as_shown(tmp_path: Path, live: Live) -> None:
     assert response.status_code == problem["status"] == 422, response.text
     assert response.headers["content-type"] == "application/problem+json"
     assert_matches_shown(response.json(), problem)
+
+
+def test_calibration_example_answers_as_shown(tmp_path: Path, live: Live) -> None:
+    blocks = section_blocks("Calibration from sales history")
+    [console] = [b for b in blocks if b.language == "console"]
+    commands = console_commands(console)
+    answers = [parse_shown_json(b.text) for b in blocks if b.language == "json"]
+    assert len(commands) == len(answers) >= 3
+
+    url = make_run_database(tmp_path)
+    base = live.api(url)
+    key = api_key(url)
+    with httpx.Client(base_url=base, timeout=30) as client:
+        for command, answer in zip(commands, answers, strict=True):
+            assert command.expected == []
+            method, target, headers, body = curl_request(command, base)
+            headers = {k: v.replace("$STOCKRELAY_KEY", key) for k, v in headers.items()}
+            response = client.request(method, target, headers=headers, content=body)
+            assert response.status_code in (200, 201), (command.line, response.text)
+            assert_matches_shown(response.json(), answer, command.line)
 
 
 def test_command_line_example_prints_and_writes_what_is_shown(tmp_path: Path) -> None:

@@ -8,7 +8,8 @@ from collections.abc import Iterator
 import pytest
 from alembic.autogenerate import compare_metadata
 from alembic.runtime.migration import MigrationContext
-from sqlalchemy import Engine, inspect
+from sqlalchemy import Connection, Engine, inspect, text
+from sqlalchemy.exc import IntegrityError
 
 from service.cli import main
 from service.db import tables  # noqa: F401  (registers the tables on Base.metadata)
@@ -70,6 +71,66 @@ def test_upgrade_downgrade_upgrade_round_trip(empty_engine: Engine) -> None:
     upgrade(empty_engine)
     assert table_names(empty_engine) == TABLES | {"alembic_version"}
     assert current_revision(empty_engine) == head
+
+
+def _insert_job(connection: Connection, kind: str | None = None) -> None:
+    """A queued job of the one specification stored by _seed (kind left to its default)."""
+    columns = "tenant_id, version_id, spec_hash, criterion, state, attempts, created_at"
+    values = "1, 1, 'abc', 'average', 'queued', 0, CURRENT_TIMESTAMP"
+    if kind is not None:
+        columns, values = columns + ", kind", values + f", '{kind}'"
+    connection.execute(text(f"INSERT INTO solve_jobs ({columns}) VALUES ({values})"))
+
+
+def _seed(connection: Connection) -> None:
+    connection.execute(
+        text("INSERT INTO tenants (id, name, created_at) VALUES (1, 't', CURRENT_TIMESTAMP)")
+    )
+    connection.execute(
+        text(
+            "INSERT INTO networks (id, tenant_id, name, archived, created_at) "
+            "VALUES (1, 1, 'n', false, CURRENT_TIMESTAMP)"
+        )
+    )
+    connection.execute(
+        text(
+            "INSERT INTO network_versions (id, network_id, number, spec_json, spec_hash, "
+            "created_at) VALUES (1, 1, 1, '{}', 'abc', CURRENT_TIMESTAMP)"
+        )
+    )
+
+
+def _second_live_solve_refused(engine: Engine) -> bool:
+    try:
+        with engine.begin() as connection:
+            _insert_job(connection)
+    except IntegrityError:
+        return True
+    return False
+
+
+def test_job_kinds_keep_one_live_solve_and_admit_many_simulations(empty_engine: Engine) -> None:
+    upgrade(empty_engine, "0004")
+    with empty_engine.begin() as connection:
+        _seed(connection)
+        _insert_job(connection)
+
+    upgrade(empty_engine, "0005")
+    with empty_engine.begin() as connection:
+        kinds = connection.execute(text("SELECT kind FROM solve_jobs")).scalars().all()
+        assert kinds == ["solve"]  # jobs queued before the revision are solves
+        for _ in range(2):
+            _insert_job(connection, "simulate")
+        _insert_job(connection, "what_if")
+    assert _second_live_solve_refused(empty_engine)
+
+    downgrade(empty_engine, "0004")
+    with empty_engine.begin() as connection:
+        assert connection.execute(text("SELECT count(*) FROM solve_jobs")).scalar_one() == 1
+    assert "kind" not in {
+        column["name"] for column in inspect(empty_engine).get_columns("solve_jobs")
+    }
+    assert _second_live_solve_refused(empty_engine)
 
 
 def test_models_match_the_migrations(empty_engine: Engine) -> None:

@@ -11,7 +11,9 @@ from typing import Any
 import numpy as np
 import pytest
 
+from service.analysis import run_simulation
 from service.cli import main
+from service.schemas import SimulationRequest
 from solver import NetworkSpec, solve_network
 
 DEMO = Path(__file__).resolve().parents[2] / "service" / "data" / "demo_network.json"
@@ -137,3 +139,70 @@ def test_job_list_limit_must_be_positive(limit: str, capsys: pytest.CaptureFixtu
         main(["jobs", "list", "--limit", limit])
     assert info.value.code == 2
     assert "expected a whole number >= 1" in capsys.readouterr().err
+
+
+# -- stockrelay simulate ------------------------------------------------------------------------
+
+SHORT = ["--days", "60", "--replications", "20", "--warmup", "5"]
+
+
+def test_simulate_prints_one_row_per_policy(capsys: pytest.CaptureFixture[str]) -> None:
+    code, table, stderr = run(["simulate", str(DEMO), *SHORT, "--seed", "9"], capsys)
+    assert (code, stderr) == (0, "")
+    _, document, _ = run(["simulate", str(DEMO), *SHORT, "--seed", "9", "--json"], capsys)
+    report = json.loads(document)
+
+    assert "20 replications of 60 days after 5 warm-up days, seed 9" in table
+    assert "start stock  riverside 7, hilltop 4" in table
+    rows = {line.split()[0]: line for line in table.splitlines()[6:]}
+    assert list(rows) == ["optimal", "do_nothing", "balance_cover"]
+    for policy in report["policies"]:
+        profit = policy["profit_per_day"]
+        row = rows[policy["name"]]
+        assert row.split()[1:6] == [
+            f"{profit['mean']:.2f}",
+            f"({profit['low']:.2f}",
+            "to",
+            f"{profit['high']:.2f})",
+            f"{policy['fill_rate']['mean']:.1%}",
+        ]
+    assert rows["optimal"].endswith("  -")
+
+
+def test_simulate_json_is_the_report_and_repeats_with_its_seed(
+    capsys: pytest.CaptureFixture[str],
+) -> None:
+    argv = ["simulate", str(DEMO), *SHORT, "--criterion", "discounted", "--seed", "17", "--json"]
+    code, first, stderr = run(argv, capsys)
+    assert (code, stderr) == (0, "")
+    _, second, _ = run(argv, capsys)
+    assert first == second
+
+    report = json.loads(first)
+    assert (report["criterion"], report["seed"], report["days"]) == ("discounted", 17, 60)
+    # The same request through the service's computation gives the same report.
+    params = SimulationRequest(
+        criterion="discounted", days=60, replications=20, warmup_days=5, seed=17
+    )
+    assert report == run_simulation(NetworkSpec.model_validate(demo_document()), params)
+
+
+@pytest.mark.parametrize(
+    ("arguments", "message"),
+    [
+        (["nowhere.json"], "cannot read"),
+        ([str(DEMO), "--days", "0"], "--days: Input should be greater than or equal to 1"),
+        ([str(DEMO), "--warmup", "400"], "--warmup: Input should be less than or equal to 365"),
+        (
+            [str(DEMO), "--days", "3650", "--replications", "2000"],
+            "over the limit of 2,000,000",
+        ),
+    ],
+)
+def test_simulate_bad_input_is_one_line(
+    arguments: list[str], message: str, capsys: pytest.CaptureFixture[str]
+) -> None:
+    code, stdout, stderr = run(["simulate", *arguments], capsys)
+    assert (code, stdout) == (2, "")
+    assert stderr.count("\n") == 1 and stderr.startswith("stockrelay: error: ")
+    assert message in stderr

@@ -1,0 +1,512 @@
+"""The status page: one tenant's networks, solves and queue, as a server-rendered HTML page.
+
+`gather` reads what the page shows (a handful of read-only queries, whatever the number of
+networks); `render` turns it into HTML with every piece of stored text escaped. The page has no
+script and refers to nothing outside itself: styles are inline and the policy heatmap is the SVG
+of `service.pictures`, embedded in the page.
+"""
+
+from __future__ import annotations
+
+import html
+import logging
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass
+from datetime import datetime
+
+from sqlalchemy import and_, func, select
+from sqlalchemy.orm import Session
+
+from service.db import repository
+from service.db.base import utcnow
+from service.db.tables import JobKind, JobState, Network, NetworkVersion, Policy, SolveJob
+from service.pictures import caption, choose_plane, net_inflow_grid, render_moves
+from service.policies import (
+    NetworkRef,
+    PolicyCache,
+    PolicyNotReadyError,
+    ServedPolicy,
+    load_policy,
+)
+
+__all__ = [
+    "CRITERIA",
+    "RECENT_JOBS",
+    "Heatmap",
+    "JobLine",
+    "NetworkLine",
+    "SolveCell",
+    "StatusView",
+    "UnknownNetworkChoice",
+    "age",
+    "gather",
+    "render",
+]
+
+log = logging.getLogger(__name__)
+
+CRITERIA = ("discounted", "average")
+RECENT_JOBS = 20
+# Live jobs listed at most; the heading gives the full count.
+QUEUE_ROWS = 100
+# How often the browser reloads the page (an HTTP refresh, not a script).
+REFRESH_SECONDS = 30
+
+
+class UnknownNetworkChoice(LookupError):
+    """`?network=` names no network of the tenant (or an archived one)."""
+
+
+@dataclass(frozen=True)
+class SolveCell:
+    """One criterion of a network's current version: "ready" (with when and how long the solve
+    took), "queued", "running", "failed" (with the error) or "not requested"."""
+
+    criterion: str
+    state: str
+    solved_at: datetime | None = None
+    solve_seconds: float | None = None
+    job_id: int | None = None
+    error: str | None = None
+
+
+@dataclass(frozen=True)
+class NetworkLine:
+    id: int
+    name: str
+    version: int
+    solves: tuple[SolveCell, ...]
+
+
+@dataclass(frozen=True)
+class JobLine:
+    id: int
+    network_id: int
+    network_name: str
+    version: int
+    kind: str
+    criterion: str
+    state: str
+    attempts: int
+    created_at: datetime
+    started_at: datetime | None
+    finished_at: datetime | None
+    solve_seconds: float | None
+    error: str | None
+
+
+@dataclass(frozen=True)
+class Heatmap:
+    """The picture of the chosen network's served policy, or why there is none (`svg` None)."""
+
+    network: NetworkLine
+    svg: str | None
+    note: str
+
+
+@dataclass(frozen=True)
+class StatusView:
+    tenant: str
+    now: datetime
+    networks: tuple[NetworkLine, ...]
+    queued: int
+    running: int
+    queue: tuple[JobLine, ...]
+    recent: tuple[JobLine, ...]
+    heatmap: Heatmap | None
+
+    @property
+    def live_jobs(self) -> int:
+        return self.queued + self.running
+
+
+# -- reading -----------------------------------------------------------------------------------
+
+
+def gather(
+    session: Session,
+    cache: PolicyCache,
+    tenant_id: int,
+    tenant: str,
+    network_id: int | None = None,
+) -> StatusView:
+    """What the page shows for `tenant_id`, with the heatmap of `network_id` (default: the
+    first network). UnknownNetworkChoice when `network_id` is not one of the tenant's live
+    networks."""
+    networks = _networks(session, tenant_id)
+    chosen = networks[0] if networks and network_id is None else None
+    if network_id is not None:
+        chosen = next((n for n in networks if n.id == network_id), None)
+        if chosen is None:
+            raise UnknownNetworkChoice(f"no network {network_id}")
+    live = (JobState.QUEUED.value, JobState.RUNNING.value)
+    live_counts: dict[str, int] = {
+        state: int(count)
+        for state, count in session.execute(
+            select(SolveJob.state, func.count())
+            .where(SolveJob.tenant_id == tenant_id, SolveJob.state.in_(live))
+            .group_by(SolveJob.state)
+        ).all()
+    }
+    queue = _jobs(session, tenant_id, states=live, oldest_first=True, limit=QUEUE_ROWS)
+    recent = _jobs(session, tenant_id, states=None, oldest_first=False, limit=RECENT_JOBS)
+    return StatusView(
+        tenant=tenant,
+        now=utcnow(),
+        networks=tuple(networks),
+        queued=live_counts.get(JobState.QUEUED.value, 0),
+        running=live_counts.get(JobState.RUNNING.value, 0),
+        queue=tuple(queue),
+        recent=tuple(recent),
+        heatmap=None if chosen is None else _heatmap(session, cache, tenant_id, chosen),
+    )
+
+
+def _networks(session: Session, tenant_id: int) -> list[NetworkLine]:
+    current = repository.current_versions()
+    rows = session.execute(
+        select(Network.id, Network.name, NetworkVersion.number, NetworkVersion.spec_hash)
+        .join(current, current.c.network_id == Network.id)
+        .join(
+            NetworkVersion,
+            and_(
+                NetworkVersion.network_id == Network.id,
+                NetworkVersion.number == current.c.number,
+            ),
+        )
+        .where(Network.tenant_id == tenant_id, Network.archived.is_(False))
+        .order_by(Network.id)
+    ).all()
+    hashes = sorted({row.spec_hash for row in rows})
+    policies = {
+        (p.spec_hash, p.criterion): p
+        for p in session.execute(
+            select(
+                Policy.spec_hash, Policy.criterion, Policy.solved_at, Policy.solve_seconds
+            ).where(Policy.tenant_id == tenant_id, Policy.spec_hash.in_(hashes))
+        ).all()
+    }
+    newest_job = (
+        select(func.max(SolveJob.id))
+        .where(
+            SolveJob.tenant_id == tenant_id,
+            SolveJob.spec_hash.in_(hashes),
+            SolveJob.kind == JobKind.SOLVE.value,
+        )
+        .group_by(SolveJob.spec_hash, SolveJob.criterion)
+    )
+    jobs = {
+        (job.spec_hash, job.criterion): job
+        for job in session.scalars(select(SolveJob).where(SolveJob.id.in_(newest_job)))
+    }
+    lines = []
+    for row in rows:
+        cells = []
+        for criterion in CRITERIA:
+            policy = policies.get((row.spec_hash, criterion))
+            job = jobs.get((row.spec_hash, criterion))
+            if policy is not None:
+                cells.append(SolveCell(criterion, "ready", policy.solved_at, policy.solve_seconds))
+            elif job is None:
+                cells.append(SolveCell(criterion, "not requested"))
+            else:
+                # A done job without its policy: the policy was found corrupt and is being
+                # solved again (the same reading as GET /v1/networks/{id}).
+                state = JobState.QUEUED.value if job.state == JobState.DONE else job.state
+                error = job.error if job.state == JobState.FAILED else None
+                cells.append(SolveCell(criterion, state, job_id=job.id, error=error))
+        lines.append(NetworkLine(row.id, row.name, row.number, tuple(cells)))
+    return lines
+
+
+def _jobs(
+    session: Session,
+    tenant_id: int,
+    *,
+    states: Sequence[str] | None,
+    oldest_first: bool,
+    limit: int,
+) -> list[JobLine]:
+    query = (
+        select(SolveJob, NetworkVersion.number, Network.id, Network.name)
+        .join(NetworkVersion, NetworkVersion.id == SolveJob.version_id)
+        .join(Network, Network.id == NetworkVersion.network_id)
+        .where(SolveJob.tenant_id == tenant_id)
+        .order_by(SolveJob.id if oldest_first else SolveJob.id.desc())
+        .limit(limit)
+    )
+    if states is not None:
+        query = query.where(SolveJob.state.in_(states))
+    return [
+        JobLine(
+            id=job.id,
+            network_id=network_id,
+            network_name=name,
+            version=number,
+            kind=job.kind,
+            criterion=job.criterion,
+            state=job.state,
+            attempts=job.attempts,
+            created_at=job.created_at,
+            started_at=job.started_at,
+            finished_at=job.finished_at,
+            solve_seconds=job.solve_seconds,
+            error=job.error,
+        )
+        for job, number, network_id, name in session.execute(query).all()
+    ]
+
+
+def _heatmap(session: Session, cache: PolicyCache, tenant_id: int, network: NetworkLine) -> Heatmap:
+    """The net-move heatmap of the first criterion with a served policy, drawn by
+    `service.pictures` as for GET /v1/networks/{id}/policy.svg."""
+    served: ServedPolicy | None = None
+    criterion = ""
+    for criterion in CRITERIA:
+        try:
+            served = load_policy(session, cache, NetworkRef(network.id, tenant_id), criterion)
+        except PolicyNotReadyError:
+            continue
+        break
+    if served is None:
+        return Heatmap(network, None, "No policy is ready yet: the picture appears once solved.")
+    plane = choose_plane(served.result, None, None, {})
+    subject = f"version {served.version_number} · net moves, {criterion} policy"
+    try:
+        svg = render_moves(
+            net_inflow_grid(served.result, plane),
+            x_id=plane.x_id,
+            y_id=plane.y_id,
+            title=caption(network.name, subject, plane),
+            image_format="svg",
+        ).decode("utf-8")
+    except ValueError as exc:  # matplotlib refuses some text (e.g. unbalanced "$" math)
+        log.warning("status page: no heatmap for network %d: %s", network.id, exc)
+        return Heatmap(network, None, "The picture of this policy could not be drawn.")
+    note = f"Version {served.version_number}, {criterion} criterion"
+    if served.stale:
+        note += f" (version {network.version} is being solved)"
+    return Heatmap(network, _inline(svg), note + ".")
+
+
+def _inline(svg: str) -> str:
+    """An SVG document as an element of an HTML page: without its XML declaration and DOCTYPE,
+    scaled to the width of the page."""
+    start = svg.find("<svg")
+    element = svg[start:] if start >= 0 else svg
+    return element.replace("<svg", '<svg class="heatmap" role="img"', 1)
+
+
+# -- writing -----------------------------------------------------------------------------------
+
+
+def _e(value: object) -> str:
+    return html.escape(str(value), quote=True)
+
+
+def age(seconds: float) -> str:
+    """A duration for people: "45 s", "12 min", "3 h 5 min", "2 d 4 h"."""
+    seconds = max(0, int(seconds))
+    if seconds < 60:
+        return f"{seconds} s"
+    minutes, hours = seconds // 60, seconds // 3600
+    if seconds < 3600:
+        return f"{minutes} min"
+    if seconds < 86_400:
+        return f"{hours} h {minutes % 60} min"
+    return f"{seconds // 86_400} d {hours % 24} h"
+
+
+def _since(now: datetime, then: datetime | None) -> str:
+    return "" if then is None else age((now - then).total_seconds())
+
+
+def _seconds(value: float | None) -> str:
+    return "" if value is None else f"{value:.3f} s"
+
+
+def _work(kind: str) -> str:
+    """What a job does, for people."""
+    return {"solve": "solve", "simulate": "simulation", "what_if": "what-if"}.get(kind, kind)
+
+
+def _badge(state: str) -> str:
+    return f'<span class="state state-{_e(state.replace(" ", "-"))}">{_e(state)}</span>'
+
+
+def _solve_cell(cell: SolveCell, now: datetime) -> str:
+    parts = [_badge(cell.state)]
+    if cell.state == "ready" and cell.solved_at is not None:
+        parts.append(
+            f'<span class="detail">solved {_e(_since(now, cell.solved_at))} ago'
+            f" in {_e(_seconds(cell.solve_seconds))}</span>"
+        )
+    elif cell.job_id is not None:
+        parts.append(f'<span class="detail">job {cell.job_id}</span>')
+    if cell.error:
+        parts.append(f'<span class="error">{_e(cell.error)}</span>')
+    return f'<td data-criterion="{_e(cell.criterion)}">{" ".join(parts)}</td>'
+
+
+def _networks_table(view: StatusView) -> str:
+    if not view.networks:
+        return '<p class="empty">No networks yet: POST one to /v1/networks.</p>'
+    chosen = view.heatmap.network.id if view.heatmap else None
+    rows = []
+    for network in view.networks:
+        mark = ' class="chosen"' if network.id == chosen else ""
+        rows.append(
+            f'<tr{mark} data-network="{network.id}"><td class="num">{network.id}</td>'
+            f'<td><a href="?network={network.id}">{_e(network.name)}</a></td>'
+            f'<td class="num">{network.version}</td>'
+            + "".join(_solve_cell(cell, view.now) for cell in network.solves)
+            + "</tr>"
+        )
+    head = "".join(f"<th>{_e(criterion)}</th>" for criterion in CRITERIA)
+    return (
+        '<table class="networks"><thead><tr><th>id</th><th>network</th><th>version</th>'
+        f"{head}</tr></thead><tbody>{''.join(rows)}</tbody></table>"
+    )
+
+
+def _queue_table(view: StatusView) -> str:
+    if not view.queue:
+        return '<p class="empty">Nothing queued or running.</p>'
+    rows = []
+    for job in view.queue:
+        if job.state == JobState.RUNNING.value:
+            waiting = f"running for {_since(view.now, job.started_at)}"
+        else:
+            waiting = f"waiting {_since(view.now, job.created_at)}"
+        rows.append(
+            f'<tr data-job="{job.id}"><td class="num">{job.id}</td>'
+            f'<td>{_e(job.network_name)} <span class="detail">v{job.version}</span></td>'
+            f"<td>{_e(_work(job.kind))}</td><td>{_e(job.criterion)}</td>"
+            f"<td>{_badge(job.state)}</td>"
+            f'<td class="num">{job.attempts}</td><td>{_e(waiting)}</td></tr>'
+        )
+    more = ""
+    if view.live_jobs > len(view.queue):
+        more = f'<p class="detail">{view.live_jobs - len(view.queue)} more not listed.</p>'
+    return (
+        '<table class="queue"><thead><tr><th>job</th><th>network</th><th>work</th>'
+        "<th>criterion</th><th>state</th><th>attempts</th><th>age</th></tr></thead>"
+        f"<tbody>{''.join(rows)}</tbody></table>{more}"
+    )
+
+
+def _recent_table(view: StatusView) -> str:
+    if not view.recent:
+        return '<p class="empty">No solve jobs yet.</p>'
+    rows = []
+    for job in view.recent:
+        finished = f"{_since(view.now, job.finished_at)} ago" if job.finished_at else ""
+        rows.append(
+            f'<tr data-job="{job.id}"><td class="num">{job.id}</td>'
+            f'<td>{_e(job.network_name)} <span class="detail">v{job.version}</span></td>'
+            f"<td>{_e(_work(job.kind))}</td><td>{_e(job.criterion)}</td>"
+            f"<td>{_badge(job.state)}</td>"
+            f'<td class="num">{job.attempts}</td>'
+            f'<td class="num">{_e(_seconds(job.solve_seconds))}</td>'
+            f"<td>{_e(finished)}</td>"
+            f'<td class="error">{_e(job.error or "")}</td></tr>'
+        )
+    return (
+        '<table class="recent"><thead><tr><th>job</th><th>network</th><th>work</th>'
+        "<th>criterion</th><th>state</th><th>attempts</th><th>seconds</th><th>finished</th>"
+        "<th>error</th>"
+        f"</tr></thead><tbody>{''.join(rows)}</tbody></table>"
+    )
+
+
+def _heatmap_section(view: StatusView) -> str:
+    if view.heatmap is None:
+        return ""
+    heatmap = view.heatmap
+    picture = heatmap.svg if heatmap.svg is not None else '<p class="empty">No picture.</p>'
+    return (
+        f'<section id="policy"><h2>Policy of {_e(heatmap.network.name)}</h2>'
+        f'<p class="detail">{_e(heatmap.note)} Net units moved tonight, by closing stock.</p>'
+        f'<figure class="picture">{picture}</figure></section>'
+    )
+
+
+def _tiles(view: StatusView) -> str:
+    ready = sum(cell.state == "ready" for n in view.networks for cell in n.solves)
+    failed = sum(job.state == JobState.FAILED.value for job in view.recent)
+    tiles: Iterable[tuple[str, int]] = (
+        ("networks", len(view.networks)),
+        ("policies ready", ready),
+        ("queued", view.queued),
+        ("running", view.running),
+        ("failed, last 20 jobs", failed),
+    )
+    return (
+        '<ul class="tiles">'
+        + "".join(f"<li><b>{count}</b> {_e(label)}</li>" for label, count in tiles)
+        + "</ul>"
+    )
+
+
+_STYLE = """
+:root { --ink: #1d2330; --muted: #667085; --paper: #f7f6f2; --card: #ffffff; --rule: #dedbd2;
+  --accent: #3d5a80; }
+* { box-sizing: border-box; }
+body { margin: 0; font: 14px/1.45 system-ui, sans-serif; color: var(--ink);
+  background: var(--paper); }
+header { background: var(--ink); color: #f4f1ea; padding: 14px 28px; display: flex;
+  align-items: baseline; gap: 18px; flex-wrap: wrap; }
+header h1 { font-size: 18px; margin: 0; letter-spacing: 0.04em; }
+header p { margin: 0; color: #c8c3b8; }
+main { padding: 18px 28px 40px; max-width: 1280px; }
+section { background: var(--card); border: 1px solid var(--rule); border-radius: 6px;
+  padding: 12px 16px; margin: 0 0 18px; }
+h2 { font-size: 15px; margin: 0 0 10px; }
+table { border-collapse: collapse; width: 100%; }
+th { text-align: left; font-weight: 600; color: var(--muted); border-bottom: 2px solid var(--rule);
+  padding: 4px 8px; }
+td { border-bottom: 1px solid var(--rule); padding: 5px 8px; vertical-align: top; }
+td.num { text-align: right; font-variant-numeric: tabular-nums; }
+tr.chosen td { background: #eef2f7; }
+a { color: var(--accent); }
+.tiles { list-style: none; display: flex; gap: 12px; padding: 0; margin: 0 0 18px;
+  flex-wrap: wrap; }
+.tiles li { background: var(--card); border: 1px solid var(--rule); border-radius: 6px;
+  padding: 8px 14px; color: var(--muted); }
+.tiles b { display: block; font-size: 20px; color: var(--ink); }
+.state { display: inline-block; padding: 0 8px; border-radius: 10px; font-size: 12px;
+  font-weight: 600; border: 1px solid transparent; }
+.state-ready, .state-done { background: #e4f0e8; color: #24613f; border-color: #b9d8c4; }
+.state-queued { background: #f6efdc; color: #7a5a12; border-color: #e4d3a4; }
+.state-running { background: #e3ebf5; color: #29507a; border-color: #bccde3; }
+.state-failed { background: #f6e3de; color: #8e2f1e; border-color: #e5bcb2; }
+.state-not-requested { background: #eeede9; color: var(--muted); }
+.detail { color: var(--muted); font-size: 12px; }
+.error { color: #8e2f1e; font-size: 12px; white-space: pre-wrap; word-break: break-word; }
+.empty { color: var(--muted); margin: 4px 0; }
+figure.picture { margin: 0; }
+svg.heatmap { max-width: 100%; height: auto; }
+"""
+
+
+def render(view: StatusView) -> str:
+    """The page, HTML5; every piece of stored text escaped."""
+    shown = f" · {len(view.queue)} listed" if view.live_jobs > len(view.queue) else ""
+    return (
+        "<!DOCTYPE html>\n"
+        '<html lang="en"><head><meta charset="utf-8">'
+        f'<meta http-equiv="refresh" content="{REFRESH_SECONDS}">'
+        '<meta name="viewport" content="width=device-width, initial-scale=1">'
+        f"<title>stockrelay status · {_e(view.tenant)}</title>"
+        f"<style>{_STYLE}</style></head><body>"
+        f"<header><h1>stockrelay</h1><p>status of tenant <b>{_e(view.tenant)}</b></p>"
+        f"<p>{_e(view.now.strftime('%Y-%m-%d %H:%M:%S'))} UTC · reloads every "
+        f"{REFRESH_SECONDS} s</p></header><main>"
+        f"{_tiles(view)}"
+        f'<section id="networks"><h2>Networks</h2>{_networks_table(view)}</section>'
+        f'<section id="queue"><h2>Queue ({view.live_jobs} live{shown})</h2>'
+        f"{_queue_table(view)}</section>"
+        f"{_heatmap_section(view)}"
+        f'<section id="recent"><h2>Recent jobs</h2>{_recent_table(view)}</section>'
+        "</main></body></html>\n"
+    )
