@@ -22,6 +22,7 @@ from service.db.tables import Network, NetworkVersion
 from solver import InvalidStockError, PolicyResult, Recommendation
 
 __all__ = [
+    "BusinessDateRequiredError",
     "PolicyCache",
     "PolicyNotReadyError",
     "ServedPolicy",
@@ -151,6 +152,10 @@ def _not_ready(
     )
 
 
+class BusinessDateRequiredError(Exception):
+    """The policy depends on the weekday, and the request did not say which day it is."""
+
+
 class StockProblemsError(InvalidStockError):
     """Closing stock that does not fit the network; `problems` pairs each offending location
     with what is wrong there."""
@@ -183,7 +188,20 @@ def recommend(
     network: Network,
     stock: Mapping[str, int],
     criterion: str = "discounted",
+    *,
+    weekday: int | None = None,
 ) -> tuple[ServedPolicy, Recommendation]:
-    """Tonight's moves for `network` from closing `stock` (units by location id)."""
+    """Tonight's moves for `network` from closing `stock` (units by location id), counted on a
+    business date with this `weekday` (0 = Monday). A stationary policy ignores the weekday; a
+    weekly one needs it (BusinessDateRequiredError without)."""
     served = load_policy(session, cache, network, criterion)
-    return served, served.result.recommend(stock_vector(served.result, stock))
+    result = served.result
+    if weekday is None and result.phases > 1:
+        raise BusinessDateRequiredError(
+            f"version {served.version_number} of network {network.id} has weekday-dependent "
+            "demand, replenishment or lane limits, so its recommendations depend on the business "
+            "date of the closing stock, which this request cannot give yet; use the closing-stock "
+            "and instructions endpoints, which carry the business date"
+        )
+    phase = 0 if weekday is None else result.phase_of(weekday)
+    return served, result.recommend(stock_vector(result, stock), phase=phase)

@@ -1,11 +1,18 @@
 """Policy evaluation without forming P_sigma.
 
-For a stationary policy sigma with post-move index y_sigma(s) and one-day reward
-r_sigma(s) = R(y_sigma(s)) - cost(sigma(s)), the transition operator is
+A policy sigma chooses a flow for every phase d and closing stock s (symbols as in
+solver.model). With post-move index y_sigma(d, s) and one-day reward
+r_sigma(d, s) = R_d(y_sigma(d, s)) - cost(sigma(d, s)), its chain lives on the stacked states
+(d, s), phase-major (index d * S + s), and its transition operator is
 
-    (P_sigma v)(s) = E[v(s') | y_sigma(s)],
+    (P_sigma v)(d, s) = E_d[v(d + 1 mod P, s') | y_sigma(d, s)],
 
-applied through the per-location kernels (solver.bellman.expected_next).
+applied through the per-location kernels of phase d (solver.bellman.expected_next). P_sigma is an
+ordinary stochastic matrix on P x S states, so everything below holds for the stacked system as
+written: the discounted equations V_d = r_d + beta P_d V_{d+1} of the seven phases are solved as
+one cyclic system. With P > 1 the stacked chain is periodic (phase d only leads to phase d + 1):
+its eigenvalues include the P-th roots of unity, so successive approximation contracts at rate
+beta at best and, undiscounted, not at all; the Krylov solves below are unaffected.
 
 Discounted criterion, value v_sigma solving (I - beta P_sigma) v = r_sigma:
   * successive approximation v <- r_sigma + beta P_sigma v, stopped when the contraction bound
@@ -17,6 +24,9 @@ Discounted criterion, value v_sigma solving (I - beta P_sigma) v = r_sigma:
 Average criterion (unichain), gain g and bias h solving h + g 1 = r_sigma + P_sigma h with
 h(0) = 0 (Puterman 1994, section 8.6): the bordered system in the unknowns (g, h(1), ...),
 nonsingular exactly when P_sigma has a single recurrent class, solved by the same Krylov method.
+For the stacked chain, g is the profit per day averaged over the week and h(0) = 0 normalises
+the bias of phase 0 at the all-empty stock; the system stays nonsingular when the chain is
+periodic, since its other unit-modulus eigenvalues differ from 1.
 """
 
 from __future__ import annotations
@@ -49,8 +59,10 @@ _GMRES_ROUNDS = 3
 
 @dataclass
 class PolicyChain:
-    """The Markov chain of one policy: post-move index and reward per state.
+    """The Markov chain of one policy on the stacked states (phase, stock).
 
+    post_move: shape (P, S), flat post-move stock index per phase and closing stock.
+    reward: shape (P * S,), r_sigma phase-major, currency per day.
     Counts applications of P_sigma in `products`.
     """
 
@@ -60,15 +72,23 @@ class PolicyChain:
     products: int = field(default=0)
 
     def apply(self, v: NDArray[np.float64]) -> NDArray[np.float64]:
-        """(P_sigma v)(s), shape (n_states,)."""
+        """(P_sigma v)(d, s), shape (P * S,), for v of shape (P * S,)."""
         self.products += 1
-        return expected_next(self.model, v).reshape(-1)[self.post_move]
+        phases = self.post_move.shape[0]
+        values = v.reshape(phases, -1)
+        out = np.empty_like(values)
+        for d in range(phases):
+            expected = expected_next(self.model, values[(d + 1) % phases], d)
+            out[d] = expected.reshape(-1)[self.post_move[d]]
+        return out.reshape(-1)
 
 
-def choose_evaluation(discount: float) -> Literal["successive", "krylov"]:
+def choose_evaluation(discount: float, phases: int = 1) -> Literal["successive", "krylov"]:
     """Successive approximation with MacQueen's bounds converges at the chain's mixing rate times
-    beta; it wins for small discounts, where a sweep costs less than a Krylov step."""
-    return "successive" if discount <= _SUCCESSIVE_UP_TO else "krylov"
+    beta; it wins for small discounts, where a sweep costs less than a Krylov step. A periodic
+    chain does not mix from step to step (its span contracts at rate beta only), so with
+    several phases the Krylov solver is used at every discount."""
+    return "successive" if discount <= _SUCCESSIVE_UP_TO and phases == 1 else "krylov"
 
 
 def evaluate_discounted(
@@ -80,7 +100,7 @@ def evaluate_discounted(
     method: Literal["successive", "krylov"],
     max_sweeps: int = 1_000_000,
 ) -> NDArray[np.float64]:
-    """Expected discounted profit of following the policy forever, shape (n_states,).
+    """Expected discounted profit of following the policy forever, shape (P * S,).
 
     tolerance: target bound on ||v - v_sigma||_inf, currency units.
     """
@@ -135,8 +155,9 @@ def evaluate_average(
     bias0: NDArray[np.float64],
     tolerance: float,
 ) -> tuple[float, NDArray[np.float64]]:
-    """Gain (currency per day) and bias (shape (n_states,), bias[0] = 0) of a unichain policy,
-    to an absolute residual `tolerance` of h + g - r_sigma - P_sigma h (2-norm)."""
+    """Gain (currency per day, averaged over the phases) and bias (shape (P * S,), bias[0] = 0)
+    of a unichain policy, to an absolute residual `tolerance` of h + g - r_sigma - P_sigma h
+    (2-norm)."""
     return _bordered_solve(chain, 1.0, gain0, bias0, tolerance)
 
 

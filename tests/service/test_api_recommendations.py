@@ -26,6 +26,7 @@ from tests.service.api_support import (
     run_worker,
     sqlite_only,
     stock_of,
+    weekly_document,
 )
 
 DEMO_SPEC = NetworkSpec.model_validate(demo_document())
@@ -246,6 +247,20 @@ def test_bad_requests_are_422_with_a_pointer_per_problem(
         headers={"Content-Type": "application/json"},
     )
     assert_problem(not_json, 422, "invalid-input")
+
+
+@sqlite_only
+def test_weekly_network_needs_the_business_date(client: TestClient, engine: Engine) -> None:
+    # This endpoint takes no business date yet, and a weekly policy depends on it: a problem,
+    # never Monday's answer on another day.
+    network_id = create_network(client, weekly_document())["id"]
+    run_worker(engine)
+    stock = {"riverside": 13, "hilltop": 1}
+    problem = assert_problem(recommend(client, network_id, stock), 422, "business-date-required")
+    assert "business date" in problem["detail"]
+    items = [{"network_id": network_id, "stock": stock}]
+    outcome = client.post("/v1/recommendations/batch", json={"items": items}).json()["items"][0]
+    assert outcome["problem"]["type"].endswith("/business-date-required")
 
 
 # -- batches -----------------------------------------------------------------------------------
