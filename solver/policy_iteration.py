@@ -119,7 +119,7 @@ def solve_policy_iteration(
 
     else:
         beta, scale = model.discount, reward_scale / (1.0 - model.discount)
-        method = choose_evaluation(beta, model.n_phases) if evaluation == "auto" else evaluation
+        method = choose_evaluation(beta) if evaluation == "auto" else evaluation
 
         def evaluate(
             chain: PolicyChain, v0: NDArray[np.float64], tolerance: float, iteration: int
