@@ -25,7 +25,6 @@ os.environ["MKL_NUM_THREADS"] = "1"
 
 import argparse
 import gc
-import json
 import sys
 import time
 from collections.abc import Sequence
@@ -191,9 +190,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         "revision": solve.solver_revision(),
         "cases": rows,
     }
-    args.out.parent.mkdir(parents=True, exist_ok=True)
-    args.out.write_text(json.dumps(report, indent=2) + "\n")
-    print(f"wrote {args.out}")
+    solve.write_report(args.out, report)
     return 0
 
 
