@@ -177,13 +177,14 @@ class TransferModel:
         if phases < 1:
             raise InvalidModelError("a model needs at least one phase")
         for d, kernels in enumerate(self.kernels):
+            where = "" if phases == 1 else f" in phase {d}"
             if len(kernels) != n:
-                raise InvalidModelError(f"expected {n} kernels in phase {d}, got {len(kernels)}")
+                raise InvalidModelError(f"expected {n} kernels{where}, got {len(kernels)}")
             for i, kernel in enumerate(kernels):
                 c = int(self.capacities[i]) + 1
                 if kernel.shape != (c, c):
                     raise InvalidModelError(
-                        f"kernel of location {self.location_ids[i]!r} in phase {d} has shape "
+                        f"kernel of location {self.location_ids[i]!r}{where} has shape "
                         f"{kernel.shape}, expected ({c}, {c})"
                     )
         if self.reward.shape != (phases, *self.shape):
