@@ -480,6 +480,13 @@ def print_notes() -> None:
     )
 
 
+def write_report(path: Path, report: dict[str, Any]) -> None:
+    """`report` as indented JSON at `path` (its folder created if need be)."""
+    path.parent.mkdir(parents=True, exist_ok=True)
+    path.write_text(json.dumps(report, indent=2) + "\n")
+    print(f"wrote {path}")
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description="Benchmark the policy-iteration solver.")
     parser.add_argument(
@@ -525,9 +532,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         "total_seconds": total,
         "cases": rows,
     }
-    args.out.parent.mkdir(parents=True, exist_ok=True)
-    args.out.write_text(json.dumps(report, indent=2) + "\n")
-    print(f"wrote {args.out}")
+    write_report(args.out, report)
     return 0
 
 

@@ -472,8 +472,9 @@ def _summary(result: PolicyResult, reference: tuple[int, ...]) -> dict[str, Any]
         # Under the average criterion values are relative (0 at the empty stock): not compared.
         "mean_value": float(result.values.mean()) if discounted else None,
         "reference_stock": dict(zip(result.location_ids, reference, strict=True)),
+        # For a weekly network: the value of a Monday closing count.
         "value_at_reference": (
-            float(result.values[result.state_index(reference)]) if discounted else None
+            float(result.values[0, result.state_index(reference)]) if discounted else None
         ),
         "residual": result.residual,
         "error_bound": result.error_bound,
@@ -481,15 +482,15 @@ def _summary(result: PolicyResult, reference: tuple[int, ...]) -> dict[str, Any]
 
 
 def _moves_by_lane(result: PolicyResult, lanes: Sequence[tuple[str, str]]) -> NDArray[np.int64]:
-    """Units moved along each of `lanes` (by their ends) in every state, shape (S, len(lanes));
-    0 on a lane the network lacks."""
+    """Units moved along each of `lanes` (by their ends) in every state of every phase, shape
+    (P, S, len(lanes)); 0 on a lane the network lacks."""
     ids = result.location_ids
     own = {(ids[a], ids[b]): k for k, (a, b) in enumerate(result.lanes)}
     flows = result.policy_flows()
-    moves = np.zeros((result.n_states, len(lanes)), dtype=np.int64)
+    moves = np.zeros((result.phases, result.n_states, len(lanes)), dtype=np.int64)
     for column, lane in enumerate(lanes):
         if lane in own:
-            moves[:, column] = flows[:, own[lane]]
+            moves[..., column] = flows[..., own[lane]]
     return moves
 
 
@@ -507,11 +508,14 @@ def _move_changes(base: PolicyResult, changed: PolicyResult) -> dict[str, Any]:
         }
     ids = base.location_ids
     lanes = list(dict.fromkeys((ids[a], ids[b]) for a, b in (*base.lanes, *changed.lanes)))
-    differs = np.any(_moves_by_lane(base, lanes) != _moves_by_lane(changed, lanes), axis=1)
+    differs = np.any(_moves_by_lane(base, lanes) != _moves_by_lane(changed, lanes), axis=-1)
     count = int(differs.sum())
+    # A weekly network counts (weekday, stock) pairs: 7 per stock.
+    pairs = base.phases * base.n_states
+    unit = "stocks" if base.phases == 1 else "weekday-stock pairs"
     return {
         "comparable": True,
         "states_changed": count,
         **sizes,
-        "detail": f"the recommended moves differ at {count:,} of {base.n_states:,} stocks",
+        "detail": f"the recommended moves differ at {count:,} of {pairs:,} {unit}",
     }

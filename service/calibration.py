@@ -16,13 +16,29 @@ from dataclasses import dataclass
 from datetime import date, datetime
 
 import numpy as np
+from numpy.typing import NDArray
 from sqlalchemy.orm import Session
 
 from service.db import repository
 from service.db.tables import CalibrationSettings, Network, NetworkVersion, SolveJob
 from solver import NetworkSpec
-from solver.calibration import CalibrationError, LocationCalibration, calibrate_location
-from solver.spec import Distribution, NegativeBinomialDemand, PoissonDemand
+from solver.calibration import (
+    CalibrationError,
+    CountEstimate,
+    LocationCalibration,
+    WeekdayEffect,
+    calibrate_location,
+    recency_weights,
+    weekday_effect,
+)
+from solver.spec import (
+    WEEKDAYS,
+    DailyLaw,
+    Distribution,
+    NegativeBinomialDemand,
+    PoissonDemand,
+    WeeklyDistribution,
+)
 
 __all__ = [
     "CHANGE_FLOOR",
@@ -61,9 +77,13 @@ class LocationProposal:
     last_date: date | None
     calibration: LocationCalibration | None
     error: str | None
-    current_demand: Distribution
-    current_replenishment: Distribution
+    current_demand: DailyLaw
+    current_replenishment: DailyLaw
     changes: dict[str, float]
+    # The test of a weekday effect on demand and on replenishment (None without history, or
+    # when a weekday has no day to estimate from); the laws become weekly only when significant.
+    weekday_demand: WeekdayEffect | None = None
+    weekday_replenishment: WeekdayEffect | None = None
 
     @property
     def largest_change(self) -> float:
@@ -98,8 +118,13 @@ def options_for(session: Session, network_id: int) -> CalibrationOptions:
     )
 
 
-def law_moments(dist: Distribution) -> tuple[float, float]:
-    """(mean, variance) of a specification law, in units per day."""
+def law_moments(dist: DailyLaw) -> tuple[float, float]:
+    """(mean, variance) of a specification law, in units per day; for a weekly one, of a day
+    drawn at random from the week (the mean of the means, and by the law of total variance the
+    mean of the variances plus the variance of the means)."""
+    if isinstance(dist, WeeklyDistribution):
+        moments = np.array([law_moments(day) for day in dist.weekly.days()])
+        return float(moments[:, 0].mean()), float(moments[:, 1].mean() + moments[:, 0].var())
     if isinstance(dist, PoissonDemand):
         return dist.mean, dist.mean
     if isinstance(dist, NegativeBinomialDemand):
@@ -128,13 +153,42 @@ def _law(mean: float, variance: float, family: str) -> Distribution:
     return PoissonDemand(dist="poisson", mean=mean)
 
 
-def _changes(current: Distribution, proposed: Distribution, what: str) -> dict[str, float]:
+def _changes(current: DailyLaw, proposed: DailyLaw, what: str) -> dict[str, float]:
     old_mean, old_variance = law_moments(current)
     new_mean, new_variance = law_moments(proposed)
     return {
         f"{what}_mean": _change(old_mean, new_mean),
         f"{what}_variance": _change(old_variance, new_variance),
     }
+
+
+def _weekday_test(
+    counts: NDArray[np.int64],
+    stock_at_open: NDArray[np.int64],
+    weekdays: NDArray[np.int64],
+    weights: NDArray[np.float64] | None,
+    confidence: float,
+) -> WeekdayEffect | None:
+    """The likelihood-ratio test of a weekday effect, None when some weekday cannot be
+    estimated (too short a history, or a weekday with every stocked day sold out)."""
+    try:
+        return weekday_effect(
+            counts, stock_at_open, weekdays, weights=weights, confidence=confidence
+        )
+    except CalibrationError:
+        return None
+
+
+def _proposed_law(pooled: CountEstimate, weekly: WeekdayEffect | None) -> DailyLaw:
+    """One law from the pooled estimate, or one per weekday when the weekday effect is
+    significant."""
+    if weekly is None or not weekly.significant:
+        return _law(pooled.mean, pooled.variance, pooled.family)
+    days = {
+        day: _law(estimate.mean, estimate.variance, estimate.family).model_dump(mode="json")
+        for day, estimate in zip(WEEKDAYS, weekly.weekdays, strict=True)
+    }
+    return WeeklyDistribution.model_validate({"weekly": days})
 
 
 def propose(session: Session, network: Network, options: CalibrationOptions) -> Proposal:
@@ -164,15 +218,23 @@ def propose(session: Session, network: Network, options: CalibrationOptions) -> 
                 )
             except CalibrationError as exc:
                 error = str(exc)
-        if calibration is not None:
-            demand = _law(
-                calibration.demand.mean, calibration.demand.variance, calibration.demand.family
+        weekday_demand = weekday_replenishment = None
+        if calibration is not None and days is not None:
+            weekdays = np.array([day.weekday() for day in days.dates])
+            weights = (
+                None
+                if options.half_life_days is None
+                else recency_weights(days.age_days, options.half_life_days)
             )
-            replenishment = _law(
-                calibration.replenishment.mean,
-                calibration.replenishment.variance,
-                calibration.replenishment.family,
+            weekday_demand = _weekday_test(
+                days.sold, days.stock_at_open, weekdays, weights, options.confidence
             )
+            # Receipts are never censored: an opening stock above them marks no day sold out.
+            weekday_replenishment = _weekday_test(
+                days.received, days.received + 1, weekdays, weights, options.confidence
+            )
+            demand = _proposed_law(calibration.demand, weekday_demand)
+            replenishment = _proposed_law(calibration.replenishment, weekday_replenishment)
             changes = _changes(location.demand, demand, "demand") | _changes(
                 location.replenishment, replenishment, "replenishment"
             )
@@ -188,6 +250,8 @@ def propose(session: Session, network: Network, options: CalibrationOptions) -> 
                 current_demand=location.demand,
                 current_replenishment=location.replenishment,
                 changes=changes,
+                weekday_demand=weekday_demand,
+                weekday_replenishment=weekday_replenishment,
             )
         )
     return Proposal(

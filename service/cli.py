@@ -21,6 +21,7 @@ from service.files import load_network, write_json_atomically
 from service.logs import logging_from_environment
 from service.schemas import SimulationRequest
 from solver import NetworkSpec, PolicyResult, SolverError, solve_network
+from solver.spec import WEEKDAYS
 
 __all__ = ["main"]
 
@@ -283,19 +284,24 @@ def simulation_table(spec: NetworkSpec, report: dict[str, Any]) -> str:
 
 
 def result_document(spec: NetworkSpec, result: PolicyResult) -> dict[str, Any]:
-    """The documented RESULT.json contract."""
-    return {
+    """The documented RESULT.json contract. A weekly network's document also has `weekdays`
+    (mon .. sun), and its `value` and `policy` hold one list per weekday of the closing count."""
+    periodic = result.phases > 1
+    document: dict[str, Any] = {
         "network": spec.name,
         "criterion": result.criterion,
         "states": result.n_states,
         "lanes": [{"from": lane.from_, "to": lane.to} for lane in spec.lanes],
-        "value": result.values.tolist(),
-        "policy": result.policy_flows().tolist(),
+        "value": (result.values if periodic else result.values[0]).tolist(),
+        "policy": (result.policy_flows() if periodic else result.policy_flows()[0]).tolist(),
         "gain": result.gain,
         "iterations": result.iterations,
         "residual": result.residual,
         "seconds": result.seconds["total"],
     }
+    if periodic:
+        document["weekdays"] = list(WEEKDAYS[: result.phases])
+    return document
 
 
 def summary(spec: NetworkSpec, result: PolicyResult) -> str:
@@ -304,7 +310,9 @@ def summary(spec: NetworkSpec, result: PolicyResult) -> str:
         f"network     {spec.name}",
         f"criterion   {result.criterion}"
         + (f" (discount {result.discount:g})" if result.discount is not None else ""),
-        f"states      {result.n_states:,}   transfer options {result.n_flows:,}",
+        f"states      {result.n_states:,}"
+        + (f" x {result.phases} weekdays" if result.phases > 1 else "")
+        + f"   transfer options {result.n_flows:,}",
         f"iterations  {result.iterations} ({result.method}, "
         f"{result.evaluation_sweeps:,} matrix-vector products)",
         f"residual    {result.residual:.3g}   bound on error {result.error_bound:.3g}"
@@ -314,15 +322,16 @@ def summary(spec: NetworkSpec, result: PolicyResult) -> str:
     if result.gain is not None:
         lines.append(f"profit/day  {result.gain:.4f}")
     if len(result.capacities) == 2:
-        lines.extend(_policy_grid(spec, result))
+        for phase in range(result.phases):
+            lines.extend(_policy_grid(spec, result, phase))
     return "\n".join(lines) + "\n"
 
 
-def _policy_grid(spec: NetworkSpec, result: PolicyResult) -> list[str]:
+def _policy_grid(spec: NetworkSpec, result: PolicyResult, phase: int) -> list[str]:
     """Net units moved from the first location to the second, by closing stock."""
     first, second = spec.location_ids
     sign = np.array([1 if a == 0 else -1 for a, _ in result.lanes], dtype=np.int64)
-    net = (result.policy_flows() @ sign).reshape(result.shape)
+    net = (result.policy_flows()[phase] @ sign).reshape(result.shape)
     rows_step = max(1, math.ceil(result.shape[0] / _GRID_MAX_SIDE))
     cols_step = max(1, math.ceil(result.shape[1] / _GRID_MAX_SIDE))
     rows = range(0, result.shape[0], rows_step)
@@ -330,7 +339,8 @@ def _policy_grid(spec: NetworkSpec, result: PolicyResult) -> list[str]:
     width = max(3, len(str(int(np.abs(net).max()))) + 2)
     lines = [
         "",
-        f"net units moved {first} -> {second} (rows: {first} stock, columns: {second} stock"
+        ("" if result.phases == 1 else f"{WEEKDAYS[phase]} night: ")
+        + f"net units moved {first} -> {second} (rows: {first} stock, columns: {second} stock"
         + (f", every {rows_step}th/{cols_step}th level" if rows_step > 1 or cols_step > 1 else "")
         + ")",
         " " * 5 + "".join(f"{c:>{width}}" for c in cols),

@@ -4,6 +4,10 @@ The arrays of a PolicyResult are stored raw (little-endian, the narrowest intege
 them), concatenated, and zlib-compressed into one blob. `layout` records each array's name,
 dtype, shape and offset; `checksum` is the SHA-256 of the stored blob, checked before anything is
 decoded, so a corrupt policy is never served. Round trips are bit-exact.
+
+Per-state arrays have shape (phases, states); `meta` records `phases` (1 or 7). Policies stored
+before weekly networks existed have 1-D per-state arrays, no `allowed` array and no `phases`:
+they decode as one phase in which every flow of the table is allowed.
 """
 
 from __future__ import annotations
@@ -21,7 +25,8 @@ from solver import PolicyResult
 
 __all__ = ["CorruptPolicyError", "EncodedPolicy", "decode_policy", "encode_policy"]
 
-_ARRAYS = ("action", "flows", "values", "post_move_values", "lane_costs")
+_ARRAYS = ("action", "flows", "values", "post_move_values", "lane_costs", "allowed")
+_PER_STATE = ("action", "values", "post_move_values")
 
 
 class CorruptPolicyError(Exception):
@@ -55,6 +60,7 @@ def encode_policy(result: PolicyResult) -> EncodedPolicy:
         "location_ids": list(result.location_ids),
         "capacities": list(result.capacities),
         "lanes": [list(lane) for lane in result.lanes],
+        "phases": result.phases,
         "discount": result.discount,
         "gain": result.gain,
         "iterations": result.iterations,
@@ -84,6 +90,15 @@ def decode_policy(arrays: bytes, layout: str, checksum: str, meta: str) -> Polic
             for entry in json.loads(layout)
         }
         info = json.loads(meta)
+        phases = int(info.get("phases", 1))
+        per_state = {name: decoded[name].reshape(phases, -1) for name in _PER_STATE}
+        flows = decoded["flows"].astype(np.int64)
+        allowed = decoded.get("allowed")
+        allowed = (
+            np.ones((phases, flows.shape[0]), dtype=np.bool_)
+            if allowed is None
+            else allowed.astype(np.bool_).reshape(phases, flows.shape[0])
+        )
         return PolicyResult(
             criterion=info["criterion"],
             method=info["method"],
@@ -91,10 +106,12 @@ def decode_policy(arrays: bytes, layout: str, checksum: str, meta: str) -> Polic
             capacities=tuple(info["capacities"]),
             lanes=tuple((int(a), int(b)) for a, b in info["lanes"]),
             lane_costs=decoded["lane_costs"],
-            flows=decoded["flows"].astype(np.int64),
-            action=decoded["action"].astype(np.int64),
-            values=decoded["values"],
-            post_move_values=decoded["post_move_values"],
+            flows=flows,
+            phases=phases,
+            allowed=allowed,
+            action=per_state["action"].astype(np.int64),
+            values=per_state["values"],
+            post_move_values=per_state["post_move_values"],
             discount=info["discount"],
             gain=info["gain"],
             iterations=info["iterations"],
@@ -109,7 +126,10 @@ def decode_policy(arrays: bytes, layout: str, checksum: str, meta: str) -> Polic
 
 
 def _narrow(array: NDArray[Any]) -> NDArray[Any]:
-    """Integers in the narrowest unsigned type that holds them; floats as little-endian f8."""
+    """Integers in the narrowest unsigned type that holds them; booleans as one byte each;
+    floats as little-endian f8."""
+    if array.dtype == np.bool_:
+        return array
     if np.issubdtype(array.dtype, np.integer):
         top = int(array.max()) if array.size else 0
         if array.size and int(array.min()) < 0:

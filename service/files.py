@@ -11,6 +11,7 @@ from typing import Any
 from pydantic import ValidationError
 
 from service.errors import UsageError
+from service.schemas import known_timezone
 from solver import NetworkSpec
 
 __all__ = ["describe_validation_error", "load_network", "write_json_atomically"]
@@ -27,9 +28,14 @@ def load_network(path: Path) -> NetworkSpec:
     except json.JSONDecodeError as exc:
         raise UsageError(f"{path}: not valid JSON: {exc.msg} at line {exc.lineno}") from exc
     try:
-        return NetworkSpec.model_validate(document)
+        spec = NetworkSpec.model_validate(document)
     except ValidationError as exc:
         raise UsageError(f"{path}: {describe_validation_error(exc)}") from exc
+    try:
+        known_timezone(spec.timezone)
+    except ValueError as exc:
+        raise UsageError(f"{path}: timezone: {exc}") from exc
+    return spec
 
 
 def describe_validation_error(exc: ValidationError) -> str:

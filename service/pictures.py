@@ -159,9 +159,10 @@ def choose_plane(
     return Plane(x_id=x_id, y_id=y_id, fixed=others)
 
 
-def net_inflow_grid(result: PolicyResult, plane: Plane) -> NDArray[np.int64]:
+def net_inflow_grid(result: PolicyResult, plane: Plane, phase: int = 0) -> NDArray[np.int64]:
     """Net units the policy moves tonight into the y-axis location (units arriving there minus
-    units leaving it, over all lanes) at every closing stock of `plane`.
+    units leaving it, over all lanes) at every closing stock of `plane`, for closing counts in
+    `phase` (the weekday, for a weekly policy; see PolicyResult.phase_of).
 
     Returns shape (capacity_y + 1, capacity_x + 1), indexed [y stock, x stock]. With two
     locations this is the net number of units moved from the x location to the y location.
@@ -169,16 +170,16 @@ def net_inflow_grid(result: PolicyResult, plane: Plane) -> NDArray[np.int64]:
     y = result.location_ids.index(plane.y_id)
     into_y = np.array([int(b == y) - int(a == y) for a, b in result.lanes], dtype=np.int64)
     per_flow = result.flows @ into_y
-    return _plane_of(per_flow[result.action], result, plane)
+    return _plane_of(per_flow[result.action[phase]], result, plane)
 
 
-def value_grid(result: PolicyResult, plane: Plane) -> NDArray[np.float64]:
+def value_grid(result: PolicyResult, plane: Plane, phase: int = 0) -> NDArray[np.float64]:
     """The policy's value (currency units: expected discounted profit, or the relative value
-    under the average criterion) at every closing stock of `plane`.
+    under the average criterion) at every closing stock of `plane`, in `phase`.
 
     Returns shape (capacity_y + 1, capacity_x + 1), indexed [y stock, x stock].
     """
-    return _plane_of(result.values, result, plane)
+    return _plane_of(result.values[phase], result, plane)
 
 
 def _plane_of(per_state: NDArray[_Cell], result: PolicyResult, plane: Plane) -> NDArray[_Cell]:

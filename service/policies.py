@@ -7,14 +7,17 @@ and queued for a new solve, never served.
 
 from __future__ import annotations
 
+import json
 import logging
 import threading
 from collections import OrderedDict
 from collections.abc import Mapping
 from dataclasses import dataclass
-from datetime import datetime
+from datetime import date, datetime
 from typing import Protocol
+from zoneinfo import ZoneInfo
 
+from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from service.codec import CorruptPolicyError, decode_policy
@@ -22,6 +25,7 @@ from service.db import repository
 from service.db.repository import VersionHead
 from service.db.tables import NetworkVersion
 from solver import InvalidStockError, PolicyResult, Recommendation
+from solver.spec import DEFAULT_TIMEZONE
 
 __all__ = [
     "NetworkKey",
@@ -34,6 +38,7 @@ __all__ = [
     "load_policy",
     "recommend",
     "stock_vector",
+    "today_in",
 ]
 
 log = logging.getLogger(__name__)
@@ -212,7 +217,31 @@ def recommend(
     network: NetworkKey,
     stock: Mapping[str, int],
     criterion: str = "discounted",
-) -> tuple[ServedPolicy, Recommendation]:
-    """Tonight's moves for `network` from closing `stock` (units by location id)."""
+    *,
+    business_date: date | None = None,
+) -> tuple[ServedPolicy, Recommendation, date | None]:
+    """Tonight's moves for `network` from closing `stock` (units by location id) counted on
+    `business_date`, and the business date whose night the answer is for. A stationary policy
+    is the same every night (the date is returned as given); a weekly one uses the night after
+    the business date, by default today's in the network's time zone."""
     served = load_policy(session, cache, network, criterion)
-    return served, served.result.recommend(stock_vector(served.result, stock))
+    result = served.result
+    if result.phases > 1 and business_date is None:
+        business_date = today_in(_timezone_of(session, served.version_id))
+    phase = 0 if business_date is None else result.phase_of(business_date.weekday())
+    recommendation = result.recommend(stock_vector(result, stock), phase=phase)
+    return served, recommendation, business_date
+
+
+def today_in(zone: str) -> date:
+    """Today's date where the locations are (an IANA time zone)."""
+    return datetime.now(ZoneInfo(zone)).date()
+
+
+def _timezone_of(session: Session, version_id: int) -> str:
+    # Only weekly networks need it, and only when the caller gave no business date.
+    spec_json = session.scalar(
+        select(NetworkVersion.spec_json).where(NetworkVersion.id == version_id)
+    )
+    zone: str = json.loads(spec_json or "{}").get("timezone", DEFAULT_TIMEZONE)
+    return zone

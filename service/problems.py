@@ -21,7 +21,11 @@ from sqlalchemy.exc import OperationalError
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
 from service.analysis import AnalysisInputError
-from service.policies import PolicyNotReadyError, StockProblemsError, UnknownNetworkError
+from service.policies import (
+    PolicyNotReadyError,
+    StockProblemsError,
+    UnknownNetworkError,
+)
 from solver import InvalidStockError, ModelTooLargeError, NotUnichainError
 
 __all__ = [
@@ -199,30 +203,31 @@ def _escape(token: str) -> str:
     return token.replace("~", "~0").replace("/", "~1")
 
 
-def _body_parts(parts: list[int | str], document: Any) -> list[int | str]:
+def _body_parts(parts: list[int | str], document: Any, missing: bool) -> list[int | str]:
     """`parts` without the tags pydantic adds to `loc` for a discriminated union: a tag names
-    the union member chosen (e.g. "pmf"), not a member of the request body."""
+    the union member chosen (e.g. "pmf", or "weekly" before the days of a weekly value), not a
+    member of the request body. Validation only descends into what the body holds, so any other
+    part that is not there is a tag, except the last part of a `missing` error."""
     kept: list[int | str] = []
     node = document
-    for part in parts:
-        if isinstance(node, dict) and part not in node and part in node.values():
-            continue
-        kept.append(part)
-        if isinstance(node, dict):
-            node = node.get(part)
-        elif isinstance(node, list) and isinstance(part, int) and 0 <= part < len(node):
+    for position, part in enumerate(parts):
+        in_dict = isinstance(node, dict) and part in node
+        if in_dict or (isinstance(node, list) and isinstance(part, int) and 0 <= part < len(node)):
             node = node[part]
-        else:
+        elif missing and position == len(parts) - 1:
             node = None
+        else:
+            continue  # a union tag
+        kept.append(part)
     return kept
 
 
-def _pointer(loc: Sequence[int | str], body: Any = None) -> str:
+def _pointer(loc: Sequence[int | str], body: Any = None, missing: bool = False) -> str:
     # FastAPI prefixes the part of the request: ("body", "stock", "hilltop").
     parts = list(loc[1:]) if loc and loc[0] in ("body", "query", "path", "header") else list(loc)
     where = loc[0] if loc and loc[0] in ("query", "path", "header") else None
     if where is None:
-        parts = _body_parts(parts, body)
+        parts = _body_parts(parts, body, missing)
     pointer = "".join("/" + _escape(str(p)) for p in parts)
     return f"{where}:{pointer}" if where else pointer
 
@@ -232,7 +237,7 @@ def install_problem_handlers(app: FastAPI) -> None:
     async def validation(request: Request, exc: RequestValidationError) -> JSONResponse:
         errors = [
             {
-                "pointer": _pointer(error.get("loc", ()), exc.body),
+                "pointer": _pointer(error.get("loc", ()), exc.body, error.get("type") == "missing"),
                 "detail": error.get("msg", "invalid"),
             }
             for error in exc.errors()

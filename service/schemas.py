@@ -7,8 +7,17 @@ import json
 from datetime import UTC, date, datetime
 from pathlib import Path
 from typing import Annotated, Any, Literal
+from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
-from pydantic import AfterValidator, BaseModel, ConfigDict, Field, StrictInt, WithJsonSchema
+from pydantic import (
+    AfterValidator,
+    BaseModel,
+    ConfigDict,
+    Field,
+    StrictInt,
+    WithJsonSchema,
+    field_validator,
+)
 
 from solver import NetworkSpec
 from solver.spec import LaneSpec
@@ -54,15 +63,20 @@ __all__ = [
     "SolveState",
     "TransferOut",
     "VersionOut",
+    "WeekdayName",
+    "WeekdayTestOut",
     "WhatIfChangeOut",
     "WhatIfJobOut",
     "WhatIfOut",
     "WhatIfRequest",
     "WhatIfResultOut",
     "WhatIfSummaryOut",
+    "known_timezone",
 ]
 
 CriterionName = Literal["discounted", "average"]
+# Weekdays as the network specification names them (solver.spec.WEEKDAYS), Monday first.
+WeekdayName = Literal["mon", "tue", "wed", "thu", "fri", "sat", "sun"]
 
 
 def _as_utc(moment: datetime) -> datetime:
@@ -92,12 +106,29 @@ class _Out(BaseModel):
     model_config = ConfigDict(from_attributes=True, populate_by_name=True)
 
 
+def known_timezone(zone: str) -> str:
+    """`zone` when the tz database knows it; ValueError naming it otherwise. (The solver's
+    specification checks only the form: it reads no files.)"""
+    try:
+        ZoneInfo(zone)
+    except (ZoneInfoNotFoundError, ValueError) as exc:
+        raise ValueError(
+            f"unknown time zone {zone!r}; use an IANA name such as Europe/Berlin or UTC"
+        ) from exc
+    return zone
+
+
 class NetworkCreate(NetworkSpec):
     """A network specification, and the criteria to solve it for."""
 
     model_config = ConfigDict(json_schema_extra={"examples": [DEMO_NETWORK]})
 
     criteria: Criteria = ["discounted"]  # noqa: RUF012  (pydantic copies defaults)
+
+    @field_validator("timezone")
+    @classmethod
+    def _known_timezone(cls, zone: str) -> str:
+        return known_timezone(zone)
 
     def spec(self) -> NetworkSpec:
         return NetworkSpec.model_validate(self.model_dump(by_alias=True, exclude={"criteria"}))
@@ -153,6 +184,18 @@ class VersionOut(_Out):
     spec: NetworkSpec
 
 
+BusinessDate = Annotated[
+    date | None,
+    Field(
+        description="Business date of the closing count; tonight is the night after it. "
+        "Matters only for a network with weekly fields, where it defaults to today in the "
+        "network's time zone.",
+        ge=date(2000, 1, 1),
+        le=date(2199, 12, 31),
+    ),
+]
+
+
 class RecommendationRequest(BaseModel):
     model_config = ConfigDict(
         extra="forbid",
@@ -161,6 +204,7 @@ class RecommendationRequest(BaseModel):
 
     stock: Stock
     criterion: CriterionName = "discounted"
+    business_date: BusinessDate = None
 
 
 class TransferOut(BaseModel):
@@ -196,6 +240,14 @@ class RecommendationOut(BaseModel):
     profit_per_day: float | None = Field(
         description="Long-run profit per day of the policy (average criterion only)."
     )
+    business_date: date | None = Field(
+        default=None,
+        description="The business date whose night the answer is for (as sent, or today in the "
+        "network's time zone for a weekly network); null for a stationary network sent none.",
+    )
+    night: WeekdayName | None = Field(
+        default=None, description="Weekday of that business date: the night of the moves."
+    )
 
 
 class BatchItem(BaseModel):
@@ -204,6 +256,7 @@ class BatchItem(BaseModel):
     network_id: Annotated[int, Field(ge=1, le=2_147_483_647)]
     stock: Stock
     criterion: CriterionName = "discounted"
+    business_date: BusinessDate = None
 
 
 class BatchRequest(BaseModel):
@@ -401,6 +454,15 @@ class EstimateOut(BaseModel):
     effective_days: float
 
 
+class WeekdayTestOut(BaseModel):
+    significant: bool = Field(description="True: the proposal gives this law per weekday.")
+    p_value: float
+    statistic: float
+    df: int
+    summary: str
+    means: dict[str, float] = Field(description="Estimated mean per weekday (mon .. sun).")
+
+
 class LocationCalibrationOut(BaseModel):
     location: str
     first_date: date | None
@@ -413,8 +475,13 @@ class LocationCalibrationOut(BaseModel):
     current_demand: dict[str, Any] = Field(description="The current version's demand law.")
     current_replenishment: dict[str, Any]
     changes: dict[str, float] = Field(
-        description="Relative change of each mean and variance against the current version."
+        description="Relative change of each mean and variance against the current version "
+        "(of a day drawn at random from the week, for weekly laws)."
     )
+    weekday_demand: WeekdayTestOut | None = Field(
+        description="Likelihood-ratio test of a weekday effect on demand (censored)."
+    )
+    weekday_replenishment: WeekdayTestOut | None
     warnings: list[str]
     error: str | None = Field(description="Why this location keeps its current laws.")
 

@@ -1,12 +1,17 @@
 """The Bellman operator of a transfer model, applied through its factored structure.
 
-With symbols as in solver.model, the value of post-move stock y is
+With symbols as in solver.model, values are kept per phase: v has shape (P, S), v[d] the value
+of a closing count in phase d. The value of post-move stock y on the evening of phase d is
 
-    U(y) = R(y) + beta * E[v(s') | y],   E[v(s') | y] = (v x_1 K_1 x_2 K_2 ... x_N K_N)(y)
+    U_d(y) = R_d(y) + beta * E_d[v_{d+1}(s') | y],
+    E_d[w(s') | y] = (w x_1 K_1^d x_2 K_2^d ... x_N K_N^d)(y)
 
-where x_i applies K_i along axis i (for two locations: K_1 @ v @ K_2.T), and the value of flow f
-at closing stock s is Q(s, f) = U(s + in(f) - out(f)) - cost(f). No states-by-states matrix is
-ever formed: one expectation costs sum_i (C_i + 1) * n_states multiply-adds.
+(phase indices mod P), where x_i applies K_i^d along axis i (for two locations:
+K_1^d @ w @ K_2^d.T), and the value of flow f at closing stock s in phase d is
+Q_d(s, f) = U_d(s + in(f) - out(f)) - cost(f), for the flows allowed on night d. This is the
+Bellman equation of the periodic MDP, V_d(s) = max_f Q_d(s, f) (Riis 1965, "Discounted Markov
+programming in a periodic process", from memory); P = 1 is the stationary case. No
+states-by-states matrix is ever formed: one expectation costs sum_i (C_i + 1) * S multiply-adds.
 
 For the average criterion beta = 1 and v is the bias h.
 """
@@ -39,36 +44,58 @@ def apply_along_axes(
     return np.ascontiguousarray(out)
 
 
-def expected_next(model: TransferModel, v: NDArray[np.float64]) -> NDArray[np.float64]:
-    """E[v(s') | y] for every post-move stock y.
+def expected_next(
+    model: TransferModel, v: NDArray[np.float64], phase: int = 0
+) -> NDArray[np.float64]:
+    """E_phase[v(s') | y] for every post-move stock y: the next closing stock's law is that of
+    `phase`, and `v` must be the values of the phase after it.
 
-    v: shape (n_states,) or model.shape. Returns shape model.shape.
+    v: shape (S,) or model.shape. Returns shape model.shape.
     """
-    return apply_along_axes(v.reshape(model.shape), model.kernels)
+    return apply_along_axes(v.reshape(model.shape), model.kernels[phase])
 
 
 def post_move_values(
     model: TransferModel, v: NDArray[np.float64], discount: float
 ) -> NDArray[np.float64]:
-    """U(y) = R(y) + discount * E[v(s') | y], shape model.shape, currency units."""
-    return model.reward + discount * expected_next(model, v)
+    """U_d(y) = R_d(y) + discount * E_d[v_{d+1}(s') | y] for every phase d.
+
+    v: P x S values (any shape of that size, phase-major). Returns shape
+    (P, *model.shape), currency units.
+    """
+    phases = model.n_phases
+    values = v.reshape(phases, model.n_states)
+    u = np.empty_like(model.reward)
+    for d in range(phases):
+        u[d] = model.reward[d] + discount * expected_next(model, values[(d + 1) % phases], d)
+    return u
 
 
 @dataclass(frozen=True)
 class ActionTable:
-    """Precomputed per-flow geometry used by every improvement step."""
+    """Precomputed per-flow geometry used by every improvement step.
+
+    boxes: per flow, the slices of the states where it is feasible and of their post-move stocks.
+    shift: shape (A,), change of the flat stock index caused by each flow.
+    costs: shape (A,), currency units.
+    phase_flows: per phase, the indices of the flows allowed on that night, ascending.
+    """
 
     boxes: tuple[tuple[Box, Box], ...]
     shift: NDArray[np.int64]
     costs: NDArray[np.float64]
+    phase_flows: tuple[NDArray[np.int64], ...]
 
     @classmethod
     def of(cls, model: TransferModel) -> ActionTable:
-        return cls(tuple(model.boxes()), model.flat_shift(), model.flow_costs)
+        return cls(tuple(model.boxes()), model.flat_shift(), model.flow_costs, model.phase_flows)
 
     def post_move_index(self, actions: NDArray[np.int64]) -> NDArray[np.int64]:
-        """Flat index of the post-move stock of every state under `actions`, shape (S,)."""
-        return np.arange(actions.size, dtype=np.int64) + self.shift[actions]
+        """Flat stock index of the post-move stock of every state under `actions`.
+
+        actions: shape (S,) or (P, S), flow indices. Returns the same shape.
+        """
+        return np.arange(actions.shape[-1], dtype=np.int64) + self.shift[actions]
 
 
 def greedy(
@@ -76,19 +103,24 @@ def greedy(
     u: NDArray[np.float64],
     tolerance: float,
 ) -> tuple[NDArray[np.int64], NDArray[np.float64]]:
-    """Best flow in every state given post-move values `u` (shape model.shape).
+    """Best allowed flow in every phase and state given post-move values `u` (shape
+    (P, *model.shape)).
 
     Flows are scanned in preference order and a later flow replaces the incumbent only when it
     is better by more than `tolerance`, so among flows within `tolerance` of the best the
     preferred one (fewer units, then lower cost) wins. Returns (action index, Q of that action),
-    both of shape (n_states,).
+    both of shape (P, S).
     """
+    phases = u.shape[0]
     best = np.full(u.shape, -np.inf)
     action = np.zeros(u.shape, dtype=np.int64)
-    for k, (states, posts) in enumerate(table.boxes):
-        q = u[posts] - table.costs[k]
-        incumbent = best[states]
-        better = q > incumbent + tolerance
-        incumbent[better] = q[better]
-        action[states][better] = k
-    return action.reshape(-1), best.reshape(-1)
+    for d in range(phases):
+        u_d, best_d, action_d = u[d], best[d], action[d]
+        for k in table.phase_flows[d]:
+            states, posts = table.boxes[k]
+            q = u_d[posts] - table.costs[k]
+            incumbent = best_d[states]
+            better = q > incumbent + tolerance
+            incumbent[better] = q[better]
+            action_d[states][better] = k
+    return action.reshape(phases, -1), best.reshape(phases, -1)

@@ -11,8 +11,14 @@ Per location i, with demand D and replenishment R (independent counts):
 
 and R(y) = sum_i r_i(y_i).
 
-Flow table: every integer flow vector within the lane limits and the units-per-night limit,
-except flows that can never be the preferred optimal action:
+Weekly networks (solver.spec) have P = 7 phases, one per weekday of the closing count. Phase d
+takes its kernels and rewards from the laws of business day (d + 1) mod 7, the day that follows
+tonight's moves, and its allowed flows from the lane limits of night d (solver.model). A
+network without weekly fields has the single phase 0, built from its one set of laws.
+
+Flow table: every integer flow vector within the lane limits (on weekly lanes, the largest
+limit of any night) and the units-per-night limit, except flows that can never be the preferred
+optimal action:
   * a flow that sends more than C_i out of, or into, location i is feasible nowhere;
   * a flow with positive units around a directed cycle (e.g. both ways along a pair of lanes)
     is dominated by the flow with one unit less on every lane of the cycle: same post-move
@@ -29,7 +35,7 @@ from numpy.typing import NDArray
 from solver.distributions import count_law
 from solver.errors import ModelTooLargeError
 from solver.model import TransferModel, feasible_counts, flow_endpoints
-from solver.spec import LocationSpec, NetworkSpec
+from solver.spec import WEEKDAYS, LocationSpec, NetworkSpec
 
 __all__ = [
     "SizeLimits",
@@ -56,12 +62,19 @@ class _Layout:
     lane_to: NDArray[np.int64]
     lane_costs: NDArray[np.float64]
     flows: NDArray[np.int64]
+    allowed: NDArray[np.bool_]
     n_states: int
     n_pairs: int
 
 
+def n_phases(spec: NetworkSpec) -> int:
+    """7 for a network with weekly fields (one phase per weekday), else 1."""
+    return len(WEEKDAYS) if spec.is_periodic else 1
+
+
 def check_size(spec: NetworkSpec, limits: SizeLimits | None = None) -> tuple[int, int]:
-    """(stock states, feasible state-transfer pairs) of `spec`, without building its kernels.
+    """(states, feasible state-transfer pairs) of `spec`, without building its kernels; both
+    count every phase (stock states x 7 for a weekly network).
 
     Raises ModelTooLargeError, giving the sizes, when the network exceeds `limits`.
     """
@@ -77,12 +90,23 @@ def build_transfer_model(spec: NetworkSpec, limits: SizeLimits | None = None) ->
     layout = _layout(spec, limits or SizeLimits())
     capacities = layout.capacities
     ids = spec.location_ids
-    kernels = tuple(location_kernel(loc) for loc in spec.locations)
-    reward = np.zeros(tuple(int(c) + 1 for c in capacities))
-    for i, loc in enumerate(spec.locations):
+    phases = n_phases(spec)
+    # Phase d is followed by business day d + 1 (solver.model); with one phase, by day 0.
+    days = [(d + 1) % phases for d in range(phases)]
+    # Per location, its kernel and reward in each phase; computed once when it has no weekly law.
+    by_location = [
+        [(location_kernel(loc, weekday=day), location_reward(loc, weekday=day)) for day in days]
+        if loc.is_weekly
+        else [(location_kernel(loc), location_reward(loc))] * phases
+        for loc in spec.locations
+    ]
+    kernels = tuple(tuple(per_phase[d][0] for per_phase in by_location) for d in range(phases))
+    reward = np.zeros((phases, *(int(c) + 1 for c in capacities)))
+    for i, per_phase in enumerate(by_location):
         axis_shape = [1] * len(ids)
         axis_shape[i] = -1
-        reward = reward + location_reward(loc).reshape(axis_shape)
+        for d, (_, location_rewards) in enumerate(per_phase):
+            reward[d] += location_rewards.reshape(axis_shape)
 
     return TransferModel(
         location_ids=tuple(ids),
@@ -93,6 +117,7 @@ def build_transfer_model(spec: NetworkSpec, limits: SizeLimits | None = None) ->
         flows=layout.flows,
         kernels=kernels,
         reward=reward,
+        allowed=layout.allowed,
         discount=spec.discount,
     )
 
@@ -101,10 +126,15 @@ def _layout(spec: NetworkSpec, limits: SizeLimits) -> _Layout:
     """Sizes and the flow table, checked against `limits` (states first: that check is free)."""
     index = {location_id: i for i, location_id in enumerate(spec.location_ids)}
     capacities = np.array([loc.capacity for loc in spec.locations], dtype=np.int64)
-    n_states = int(np.prod(capacities + 1, dtype=np.float64))
+    phases = n_phases(spec)
+    # Counted in floating point: a product of many capacities may overflow int64.
+    n_states = int(np.prod(capacities + 1, dtype=np.float64)) * phases
+    sizes = f"{n_states:,} stock states"
+    if phases > 1:
+        sizes = f"{n_states // phases:,} stock states x {phases} weekdays = {n_states:,} states"
     if n_states > limits.max_states:
         raise ModelTooLargeError(
-            f"network has {n_states:,} stock states, more than the limit of "
+            f"network has {sizes}, more than the limit of "
             f"{limits.max_states:,} (capacities {', '.join(map(str, capacities))})",
             states=n_states,
             pairs=None,
@@ -113,29 +143,43 @@ def _layout(spec: NetworkSpec, limits: SizeLimits) -> _Layout:
     lane_from = np.array([index[lane.from_] for lane in spec.lanes], dtype=np.int64)
     lane_to = np.array([index[lane.to] for lane in spec.lanes], dtype=np.int64)
     lane_costs = np.array([lane.unit_cost for lane in spec.lanes], dtype=np.float64)
-    lane_limits = np.array([lane.max_units for lane in spec.lanes], dtype=np.int64)
+    # night_limits[d, l]: most units on lane l on the evening of business day d.
+    night_limits = np.array(
+        [[lane.max_units_on(day) for lane in spec.lanes] for day in range(phases)],
+        dtype=np.int64,
+    )
 
     flows = _enumerate_flows(
-        lane_from, lane_to, lane_costs, lane_limits, capacities, spec.max_units_per_night, limits
+        lane_from,
+        lane_to,
+        lane_costs,
+        night_limits.max(axis=0),
+        capacities,
+        spec.max_units_per_night,
+        limits,
     )
+    allowed = np.all(flows[None, :, :] <= night_limits[:, None, :], axis=2)
+    usable = allowed.any(axis=0)
+    flows, allowed = flows[usable], allowed[:, usable]
     out, inn = flow_endpoints(flows, lane_from, lane_to, len(index))
-    n_pairs = int(feasible_counts(out, inn, capacities).sum())
+    n_pairs = int((allowed @ feasible_counts(out, inn, capacities)).sum())
     if n_pairs > limits.max_pairs:
         raise ModelTooLargeError(
-            f"network has {n_states:,} stock states and {n_pairs:,} feasible state-transfer "
-            f"pairs, more than the limit of {limits.max_pairs:,} pairs; lower lane limits or "
-            "capacities, or set max_units_per_night",
+            f"network has {sizes} and {n_pairs:,} feasible state-transfer pairs, more than "
+            f"the limit of {limits.max_pairs:,} pairs; lower lane limits or capacities, or set "
+            "max_units_per_night",
             states=n_states,
             pairs=n_pairs,
         )
-    return _Layout(capacities, lane_from, lane_to, lane_costs, flows, n_states, n_pairs)
+    return _Layout(capacities, lane_from, lane_to, lane_costs, flows, allowed, n_states, n_pairs)
 
 
-def location_kernel(location: LocationSpec) -> NDArray[np.float64]:
-    """K[y, k] = P(next closing stock k | post-move stock y), shape (C + 1, C + 1)."""
+def location_kernel(location: LocationSpec, *, weekday: int = 0) -> NDArray[np.float64]:
+    """K[y, k] = P(next closing stock k | post-move stock y) under the laws of business day
+    `weekday` (0 = Monday; ignored by a location without weekly laws), shape (C + 1, C + 1)."""
     c = location.capacity
-    demand = count_law(location.demand, c + 1)
-    supply = count_law(location.replenishment, c + 1)
+    demand = count_law(location.demand_on(weekday), c + 1)
+    supply = count_law(location.replenishment_on(weekday), c + 1)
 
     y = np.arange(c + 1)[:, None]
     j = np.arange(c + 1)[None, :]
@@ -156,9 +200,10 @@ def location_kernel(location: LocationSpec) -> NDArray[np.float64]:
     return kernel
 
 
-def location_reward(location: LocationSpec) -> NDArray[np.float64]:
-    """r(y) = m E min(D, y) - h y - p E (D - y)^+ for y = 0..C, currency per day."""
-    demand = count_law(location.demand, location.capacity + 1)
+def location_reward(location: LocationSpec, *, weekday: int = 0) -> NDArray[np.float64]:
+    """r(y) = m E min(D, y) - h y - p E (D - y)^+ for y = 0..C under the demand of business
+    day `weekday` (0 = Monday; ignored without weekly demand), currency per day."""
+    demand = count_law(location.demand_on(weekday), location.capacity + 1)
     y = np.arange(location.capacity + 1, dtype=np.float64)
     reward: NDArray[np.float64] = (
         location.unit_margin * demand.expected_min()

@@ -3,18 +3,31 @@
 Symbols (used throughout solver/):
     N         number of locations; C_i the capacity of location i
     s         closing stock, a state; s_i in 0..C_i; states are enumerated in row-major (C)
-              order, location 0 varying slowest
+              order, location 0 varying slowest; S the number of stock states
     f         a flow vector, units moved along each of the L lanes tonight (an action)
     y         post-move stock, y_i = s_i - out_i(f) + in_i(f)
-    K_i       location i's kernel, K_i[y_i, s'_i] = P(next closing stock s'_i | post-move y_i)
-    R(y)      expected one-day reward at post-move stock y, before move costs (currency units)
+    P         number of phases: 1 for a stationary network, 7 for a weekly (periodic) one
+    d         phase of a closing count, 0..P-1: with P = 7 the weekday of its business date
+              (0 = Monday); with P = 1 always 0
+    K_i^d     location i's kernel in phase d, K_i^d[y_i, s'_i] = P(next closing stock s'_i |
+              post-move y_i), under the demand and replenishment of the next business day
+    R_d(y)    expected reward of that next day at post-move stock y, before move costs
+              (currency units)
+
+Phases. From closing stock s in phase d, tonight's moves obey the lane limits of night d (the
+evening of business day d); the next day is weekday (d + 1) mod 7, whose demand and
+replenishment give K^d and R_d; the next closing stock is in phase (d + 1) mod P. The arrays of
+phase d therefore hold day d + 1's laws: the builder does that shift once, so that the algorithms
+only ever pair phase d's arrays with the values of phase d + 1. A stationary network is the case
+P = 1, where phase 0 follows itself.
 
 Given y, the locations evolve independently, so the transition law from y is the product of the
-K_i; the solver never forms it.
+K_i^d; the solver never forms it.
 
 A flow f is feasible at s iff out_i(f) <= s_i and s_i - out_i(f) + in_i(f) <= C_i for every i,
 i.e. iff s lies in the box out_i <= s_i <= min(C_i, C_i - in_i + out_i). Network-wide limits
-(lane limits, units per night) are applied when the flow table is built.
+(lane limits, units per night) are applied when the flow table is built; a flow is allowed on
+night d when it is within night d's lane limits (`allowed[d]`).
 """
 
 from __future__ import annotations
@@ -41,10 +54,12 @@ class TransferModel:
     capacities: shape (N,), C_i.
     lane_from, lane_to: shape (L,), location indices of each lane's ends.
     lane_costs: shape (L,), currency per unit moved.
-    flows: shape (A, L), the candidate flow vectors, row 0 moving nothing, rows ordered by
-        preference when values tie (fewer units, then lower cost).
-    kernels: N arrays of shape (C_i + 1, C_i + 1), rows summing to 1.
-    reward: shape (C_1 + 1, ..., C_N + 1), R(y) in currency per day.
+    flows: shape (A, L), the candidate flow vectors of every night, row 0 moving nothing, rows
+        ordered by preference when values tie (fewer units, then lower cost).
+    kernels: P tuples (one per phase) of N arrays of shape (C_i + 1, C_i + 1), rows summing
+        to 1: kernels[d][i] = K_i^d.
+    reward: shape (P, C_1 + 1, ..., C_N + 1), R_d(y) in currency per day.
+    allowed: shape (P, A), whether each flow may be sent on night d; row 0 always may.
     discount: per-day discount factor for the discounted criterion.
     """
 
@@ -54,13 +69,15 @@ class TransferModel:
     lane_to: NDArray[np.int64]
     lane_costs: NDArray[np.float64]
     flows: NDArray[np.int64]
-    kernels: tuple[NDArray[np.float64], ...]
+    kernels: tuple[tuple[NDArray[np.float64], ...], ...]
     reward: NDArray[np.float64]
+    allowed: NDArray[np.bool_]
     discount: float
     flow_out: NDArray[np.int64] = field(init=False, repr=False)
     flow_in: NDArray[np.int64] = field(init=False, repr=False)
     flow_costs: NDArray[np.float64] = field(init=False, repr=False)
     flow_units: NDArray[np.int64] = field(init=False, repr=False)
+    phase_flows: tuple[NDArray[np.int64], ...] = field(init=False, repr=False)
 
     def __post_init__(self) -> None:
         self._validate_shapes()
@@ -69,6 +86,9 @@ class TransferModel:
         object.__setattr__(self, "flow_in", inn)
         object.__setattr__(self, "flow_costs", self.flows @ self.lane_costs)
         object.__setattr__(self, "flow_units", self.flows.sum(axis=1))
+        # Indices of the flows allowed on each night, in preference order.
+        phase_flows = tuple(np.flatnonzero(row).astype(np.int64) for row in self.allowed)
+        object.__setattr__(self, "phase_flows", phase_flows)
         self._validate_probabilities()
 
     # -- sizes -------------------------------------------------------------------------------
@@ -76,6 +96,10 @@ class TransferModel:
     @property
     def n_locations(self) -> int:
         return len(self.location_ids)
+
+    @property
+    def n_phases(self) -> int:
+        return len(self.kernels)
 
     @property
     def n_lanes(self) -> int:
@@ -91,6 +115,7 @@ class TransferModel:
 
     @property
     def n_states(self) -> int:
+        """Stock states S of one phase (the model has S x P states in all)."""
         return int(np.prod(self.shape))
 
     @property
@@ -105,8 +130,8 @@ class TransferModel:
 
     @property
     def n_pairs(self) -> int:
-        """Number of feasible (state, flow) pairs."""
-        return int(self.box_sizes().sum())
+        """Number of feasible (phase, state, flow) pairs."""
+        return int((self.allowed @ self.box_sizes()).sum())
 
     # -- feasibility -------------------------------------------------------------------------
 
@@ -148,38 +173,56 @@ class TransferModel:
             raise InvalidModelError(f"flows must have shape (A >= 1, {n_lanes})")
         if np.any(self.flows < 0) or np.any(self.flows[0] != 0):
             raise InvalidModelError("flows must be nonnegative and row 0 must move nothing")
-        if len(self.kernels) != n:
-            raise InvalidModelError(f"expected {n} kernels, got {len(self.kernels)}")
-        for i, kernel in enumerate(self.kernels):
-            c = int(self.capacities[i]) + 1
-            if kernel.shape != (c, c):
-                raise InvalidModelError(
-                    f"kernel of location {self.location_ids[i]!r} has shape {kernel.shape}, "
-                    f"expected ({c}, {c})"
-                )
-        if self.reward.shape != self.shape:
-            raise InvalidModelError(f"reward has shape {self.reward.shape}, expected {self.shape}")
+        phases = len(self.kernels)
+        if phases < 1:
+            raise InvalidModelError("a model needs at least one phase")
+        for d, kernels in enumerate(self.kernels):
+            where = "" if phases == 1 else f" in phase {d}"
+            if len(kernels) != n:
+                raise InvalidModelError(f"expected {n} kernels{where}, got {len(kernels)}")
+            for i, kernel in enumerate(kernels):
+                c = int(self.capacities[i]) + 1
+                if kernel.shape != (c, c):
+                    raise InvalidModelError(
+                        f"kernel of location {self.location_ids[i]!r}{where} has shape "
+                        f"{kernel.shape}, expected ({c}, {c})"
+                    )
+        if self.reward.shape != (phases, *self.shape):
+            raise InvalidModelError(
+                f"reward has shape {self.reward.shape}, expected {(phases, *self.shape)}"
+            )
         if not np.all(np.isfinite(self.reward)):
-            bad = np.unravel_index(int(np.argmin(np.isfinite(self.reward))), self.shape)
-            raise InvalidModelError(f"reward is not finite at post-move stock {tuple(bad)}")
+            bad = np.unravel_index(int(np.argmin(np.isfinite(self.reward))), self.reward.shape)
+            raise InvalidModelError(
+                f"reward is not finite in phase {int(bad[0])} at post-move stock "
+                f"{tuple(int(u) for u in bad[1:])}"
+            )
+        if self.allowed.shape != (phases, self.flows.shape[0]) or self.allowed.dtype != np.bool_:
+            raise InvalidModelError(
+                f"allowed must be booleans of shape {(phases, self.flows.shape[0])}"
+            )
+        if not np.all(self.allowed[:, 0]):
+            raise InvalidModelError("moving nothing must be allowed on every night")
         if not 0.0 < self.discount < 1.0:
             raise InvalidModelError(f"discount must lie in (0, 1), got {self.discount}")
 
     def _validate_probabilities(self) -> None:
-        for location, kernel in zip(self.location_ids, self.kernels, strict=True):
-            if np.any(kernel < 0) or not np.all(np.isfinite(kernel)):
-                y = int(np.argmax(np.any((kernel < 0) | ~np.isfinite(kernel), axis=1)))
-                raise InvalidModelError(
-                    f"kernel of location {location!r} has an invalid probability "
-                    f"at post-move stock {y}"
-                )
-            sums = kernel.sum(axis=1)
-            bad = np.flatnonzero(np.abs(sums - 1.0) > _PROBABILITY_TOLERANCE)
-            if bad.size:
-                raise InvalidModelError(
-                    f"kernel of location {location!r}: probabilities from post-move stock "
-                    f"{int(bad[0])} sum to {sums[bad[0]]:.12g}, not 1"
-                )
+        for d, kernels in enumerate(self.kernels):
+            where = "" if self.n_phases == 1 else f" in phase {d}"
+            for location, kernel in zip(self.location_ids, kernels, strict=True):
+                if np.any(kernel < 0) or not np.all(np.isfinite(kernel)):
+                    y = int(np.argmax(np.any((kernel < 0) | ~np.isfinite(kernel), axis=1)))
+                    raise InvalidModelError(
+                        f"kernel of location {location!r}{where} has an invalid probability "
+                        f"at post-move stock {y}"
+                    )
+                sums = kernel.sum(axis=1)
+                bad = np.flatnonzero(np.abs(sums - 1.0) > _PROBABILITY_TOLERANCE)
+                if bad.size:
+                    raise InvalidModelError(
+                        f"kernel of location {location!r}{where}: probabilities from post-move "
+                        f"stock {int(bad[0])} sum to {sums[bad[0]]:.12g}, not 1"
+                    )
         if np.any(self.box_sizes()[:1] != self.n_states):
             raise InvalidModelError("moving nothing must be feasible in every state")
 

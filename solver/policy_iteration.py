@@ -1,15 +1,29 @@
 """Howard's policy iteration for both criteria, and modified policy iteration.
 
+States are the stacked pairs (phase d, closing stock s) of solver.evaluation; a stationary
+network has the one phase 0. A weekly network is a periodic MDP: its Bellman equation
+
+    V_d(s) = max_f [ -cost(f) + R_d(y) + beta * E_d[V_{d+1}(s') | y] ],  y = s + in(f) - out(f),
+
+over the flows f feasible at s and allowed on night d (indices mod 7; phase d's R and E belong
+to business day d + 1, see solver.model) is that of a stationary MDP on the stacked states, so
+policy iteration on it yields a periodic policy that is optimal among all policies (Riis 1965,
+"Discounted Markov programming in a periodic process", Operations Research; from memory). Below,
+v, r_sigma and P_sigma are the stacked vectors and operator.
+
 Discounted criterion (Puterman 1994, Markov Decision Processes, sections 6.4 and 6.5):
     1. evaluate:  v_n = v_{sigma_n}, solving (I - beta P_sigma) v = r_sigma (solver.evaluation)
-    2. improve:   sigma_{n+1}(s) in argmax_f Q(s, f), Q(s, f) = U_n(s + in(f) - out(f)) - cost(f)
-       keeping sigma_n(s) unless another flow is better by more than a tie tolerance,
+    2. improve:   sigma_{n+1}(d, s) in argmax_f Q_d(s, f),
+       Q_d(s, f) = U_{n,d}(s + in(f) - out(f)) - cost(f) (solver.bellman),
+       keeping sigma_n(d, s) unless another flow is better by more than a tie tolerance,
     until sigma_{n+1} = sigma_n. Modified policy iteration replaces step 1 by m sweeps
     v <- r_sigma + beta P_sigma v from the last v (m = 0 is value iteration) and stops when
     ||T v - v||_inf < eps (1 - beta) / (2 beta) (Puterman 1994, section 6.5).
 
 Average criterion, unichain (Puterman 1994, section 8.6): step 1 solves h + g = r_sigma + P_sigma h
-with h(0) = 0, step 2 maximises U(y) = R(y) + E[h(s') | y] less the move cost.
+with h(0) = 0, step 2 maximises U_d(y) = R_d(y) + E_d[h_{d+1}(s') | y] less the move cost. For a
+weekly network, h_d(s) + g = r_d(s) + E_d[h_{d+1}] and g is the profit per day averaged over the
+week; the unichain check covers the stacked chain.
 
 Starting from the policy that never moves anything, every policy is checked before it is used.
 When the loop stops, ties are settled once more from the final values so that among flows within
@@ -28,7 +42,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from solver.bellman import ActionTable, greedy, post_move_values
-from solver.chains import common_successor, unichain_witness
+from solver.chains import every_policy_unichain, unichain_witness
 from solver.errors import NotUnichainError
 from solver.evaluation import (
     EvaluationMethod,
@@ -39,6 +53,7 @@ from solver.evaluation import (
 )
 from solver.model import TransferModel
 from solver.result import Criterion, PolicyResult
+from solver.spec import WEEKDAYS
 
 __all__ = ["solve_modified_policy_iteration", "solve_policy_iteration"]
 
@@ -75,7 +90,8 @@ def solve_policy_iteration(
 ) -> PolicyResult:
     """Optimal transfer policy by Howard's policy iteration.
 
-    initial_action: shape (n_states,), indices into model.flows; default moves nothing.
+    initial_action: shape (P, S) (or (S,) with one phase), indices into model.flows of flows
+        allowed on each night; default moves nothing.
     `iterations` counts the policies evaluated, the last one being the optimal policy.
     Hitting `max_iter` is reported through `converged`, not raised.
     Raises NotUnichainError (average criterion) when a policy has several recurrent classes.
@@ -90,13 +106,13 @@ def solve_policy_iteration(
 
     if criterion == "average":
         beta, scale, method = 1.0, reward_scale, "krylov"
-        every_policy_unichain = common_successor(model) is not None
+        all_unichain = every_policy_unichain(model)
 
         def evaluate(
             chain: PolicyChain, v0: NDArray[np.float64], tolerance: float, iteration: int
         ) -> NDArray[np.float64]:
             nonlocal gain
-            if not every_policy_unichain:
+            if not all_unichain:
                 _require_unichain(model, chain.post_move, iteration)
             gain, bias = evaluate_average(chain, gain0=gain, bias0=v0, tolerance=tolerance)
             return bias
@@ -115,7 +131,8 @@ def solve_policy_iteration(
     # tightening with the size of the last improvement (inexact policy iteration, in the spirit of
     # modified policy iteration). Only an evaluation at `final` accuracy may end the loop.
     tolerance = max(final, _FIRST_EVALUATION_RTOL * scale)
-    values = np.zeros(model.n_states)
+    # Stacked values, phase-major: shape (P * S,).
+    values = np.zeros(model.n_phases * model.n_states)
     products, converged, iterations = 0, False, 0
     while iterations < max_iter:
         t = time.perf_counter()
@@ -126,7 +143,7 @@ def solve_policy_iteration(
         u = post_move_values(model, values, beta)
         tie = TIE_RTOL * max(scale, float(np.max(np.abs(u))))
         candidate, best = greedy(table, u, tie)
-        gap = best - (u.reshape(-1)[chain.post_move] - table.costs[action])
+        gap = best - (_at_post_move(u, chain.post_move) - table.costs[action])
         new_action = np.where(gap > tie, candidate, action)
         clock.add("improve", t)
         if np.array_equal(new_action, action):
@@ -152,7 +169,7 @@ def solve_policy_iteration(
         best = greedy(table, u, tie)[1]
     clock.add("improve", t)
 
-    slack = best - values
+    slack = best - values.reshape(best.shape)
     if criterion == "average":
         residual = float(slack.max() - slack.min())
         error_bound = max(float(slack.max()) - gain, 0.0)
@@ -195,8 +212,8 @@ def solve_modified_policy_iteration(
     scale = max(1.0, float(np.max(np.abs(model.reward))) + float(table.costs.max())) / (1 - beta)
     epsilon = EVALUATION_RTOL * 100 * scale if epsilon is None else epsilon
     threshold = epsilon * (1 - beta) / (2 * beta)
-    v = np.zeros(model.n_states)
-    action = np.zeros(model.n_states, dtype=np.int64)
+    v = np.zeros(model.n_phases * model.n_states)
+    action = np.zeros((model.n_phases, model.n_states), dtype=np.int64)
     products, converged, iterations, residual = 0, False, 0, np.inf
     while iterations < max_iter:
         iterations += 1
@@ -204,9 +221,9 @@ def solve_modified_policy_iteration(
         u = post_move_values(model, v, beta)
         products += 1
         action, best = greedy(table, u, TIE_RTOL * scale)
-        residual = float(np.max(np.abs(best - v)))
+        residual = float(np.max(np.abs(best.reshape(-1) - v)))
         t = clock.add("improve", t)
-        v = best
+        v = best.reshape(-1)
         if residual < threshold:
             converged = True
             break
@@ -235,35 +252,50 @@ def solve_modified_policy_iteration(
 
 
 def _initial(model: TransferModel, initial_action: NDArray[np.int64] | None) -> NDArray[np.int64]:
+    shape = (model.n_phases, model.n_states)
     if initial_action is None:
-        return np.zeros(model.n_states, dtype=np.int64)
+        return np.zeros(shape, dtype=np.int64)
     action = np.asarray(initial_action, dtype=np.int64)
-    if action.shape != (model.n_states,) or action.min() < 0 or action.max() >= model.n_flows:
-        raise ValueError(f"initial_action must be {model.n_states} indices into the flow table")
+    if action.shape == (model.n_states,) and model.n_phases == 1:
+        action = action[None, :]
+    if action.shape != shape or action.min() < 0 or action.max() >= model.n_flows:
+        raise ValueError(f"initial_action must have shape {shape}: indices into the flow table")
+    if not np.all(np.take_along_axis(model.allowed, action, axis=1)):
+        raise ValueError("initial_action uses a flow on a night that does not allow it")
     return action.copy()
+
+
+def _at_post_move(u: NDArray[np.float64], post_move: NDArray[np.int64]) -> NDArray[np.float64]:
+    """U_d at the post-move stock of every phase and state: u shape (P, *stock shape),
+    post_move shape (P, S); returns shape (P, S)."""
+    values: NDArray[np.float64] = np.take_along_axis(u.reshape(u.shape[0], -1), post_move, axis=1)
+    return values
 
 
 def _chain(model: TransferModel, table: ActionTable, action: NDArray[np.int64]) -> PolicyChain:
     post = table.post_move_index(action)
-    reward = model.reward.reshape(-1)[post] - table.costs[action]
-    return PolicyChain(model, post, reward)
+    reward = _at_post_move(model.reward, post) - table.costs[action]
+    return PolicyChain(model, post, reward.reshape(-1))
 
 
 def _require_unichain(model: TransferModel, post_move: NDArray[np.int64], iteration: int) -> None:
     witness = unichain_witness(model, post_move)
     if witness is None:
         return
-    z, w = (np.unravel_index(i, model.shape) for i in witness)
+    z, w = witness
 
-    def describe(stock: tuple[np.intp, ...]) -> str:
-        return ", ".join(
+    def describe(index: int) -> str:
+        phase, state = divmod(index, model.n_states)
+        stock = np.unravel_index(state, model.shape)
+        text = ", ".join(
             f"{loc}={int(u)}" for loc, u in zip(model.location_ids, stock, strict=True)
         )
+        return f"({text})" if model.n_phases == 1 else f"({text}) on {WEEKDAYS[phase]}"
 
     raise NotUnichainError(
         f"the average criterion needs every stock level to lead to one common pattern, but under "
-        f"the policy of iteration {iteration} closing stock ({describe(w)}) can never reach "
-        f"({describe(z)}), which recurs: long-run profit per day would depend on the starting "
+        f"the policy of iteration {iteration} closing stock {describe(w)} can never reach "
+        f"{describe(z)}, which recurs: long-run profit per day would depend on the starting "
         "stock. Use the discounted criterion, or demand and replenishment laws that can empty "
         "or refill each location"
     )
@@ -285,6 +317,7 @@ def _result(
     converged: bool,
     seconds: dict[str, float],
 ) -> PolicyResult:
+    shape = (model.n_phases, model.n_states)
     return PolicyResult(
         criterion=criterion,
         method=method,
@@ -293,9 +326,11 @@ def _result(
         lanes=tuple((int(a), int(b)) for a, b in zip(model.lane_from, model.lane_to, strict=True)),
         lane_costs=model.lane_costs,
         flows=model.flows,
-        action=action,
-        values=values,
-        post_move_values=post_move.reshape(-1),
+        phases=model.n_phases,
+        allowed=model.allowed,
+        action=action.reshape(shape),
+        values=values.reshape(shape),
+        post_move_values=post_move.reshape(shape),
         discount=model.discount if criterion == "discounted" else None,
         gain=gain,
         iterations=iterations,

@@ -51,14 +51,19 @@ class Recommendation:
 
 @dataclass(frozen=True, eq=False)
 class PolicyResult:
-    """An optimal stationary transfer policy and how it was found.
+    """An optimal transfer policy and how it was found.
 
-    Arrays over states are flat, in row-major order of closing stock (location 0 slowest).
-    flows: shape (A, L), the candidate flow table; action: shape (S,), index into it.
-    values: shape (S,), discounted value, or for the average criterion the bias with
-        values[0] = 0 (currency units).
-    post_move_values: shape (S,), U(y) at post-move stock y (see solver.bellman).
-    gain: long-run profit per day under the average criterion, else None.
+    The policy has `phases` phases: 1 for a stationary network, 7 for a weekly one, phase d
+    being the weekday of the business date of the closing count (0 = Monday; see
+    solver.model). Arrays over states have shape (P, S): one row per phase, stock states flat in
+    row-major order of closing stock (location 0 slowest).
+    flows: shape (A, L), the candidate flow table; action: shape (P, S), index into it.
+    allowed: shape (P, A), whether each flow may be sent on the night of each phase.
+    values: shape (P, S), discounted value, or for the average criterion the bias with
+        values[0, 0] = 0 (currency units).
+    post_move_values: shape (P, S), U_d(y) at post-move stock y in phase d (see solver.bellman).
+    gain: long-run profit per day under the average criterion (averaged over the week for a
+        weekly network), else None.
     residual: Bellman residual ||T v - v||_inf (discounted) or its span (average).
     error_bound: bound on the distance of `values` (discounted) or `gain` (average) from the
         optimum implied by the residual (Puterman 1994, sections 6.3 and 8.5).
@@ -72,6 +77,8 @@ class PolicyResult:
     lanes: tuple[tuple[int, int], ...]
     lane_costs: NDArray[np.float64]
     flows: NDArray[np.int64]
+    phases: int
+    allowed: NDArray[np.bool_]
     action: NDArray[np.int64]
     values: NDArray[np.float64]
     post_move_values: NDArray[np.float64]
@@ -90,14 +97,23 @@ class PolicyResult:
 
     @property
     def n_states(self) -> int:
-        return int(self.action.size)
+        """Stock states S of one phase."""
+        return int(self.action.shape[1])
 
     @property
     def n_flows(self) -> int:
         return int(self.flows.shape[0])
 
+    def phase_of(self, weekday: int) -> int:
+        """The phase whose policy applies to a closing count of a business date with this
+        weekday (0 = Monday .. 6 = Sunday, as datetime.date.weekday()): the weekday itself for a
+        weekly policy, 0 for a stationary one."""
+        if not 0 <= weekday <= 6:
+            raise ValueError(f"weekday must be 0 (Monday) to 6 (Sunday), got {weekday}")
+        return weekday % self.phases
+
     def policy_flows(self) -> NDArray[np.int64]:
-        """Units per lane in every state, shape (S, L)."""
+        """Units per lane in every phase and state, shape (P, S, L)."""
         return self.flows[self.action]
 
     def state_index(self, stock: Sequence[int]) -> int:
@@ -113,21 +129,27 @@ class PolicyResult:
                 raise InvalidStockError(f"stock at {location!r} is {units}, outside 0..{capacity}")
         return int(np.ravel_multi_index(tuple(int(u) for u in stock), self.shape))
 
-    def recommend(self, stock: Sequence[int], n_alternatives: int = 3) -> Recommendation:
-        """Tonight's moves from closing `stock` (units per location, in network order)."""
+    def recommend(
+        self, stock: Sequence[int], *, phase: int = 0, n_alternatives: int = 3
+    ) -> Recommendation:
+        """Tonight's moves from closing `stock` (units per location, in network order) counted
+        in `phase` (see phase_of); alternatives are the flows allowed on that night."""
+        if not 0 <= phase < self.phases:
+            raise ValueError(f"phase must lie in 0..{self.phases - 1}, got {phase}")
         s = np.array(stock, dtype=np.int64)
         index = self.state_index(stock)
         out, inn = self._endpoints()
         capacities = np.array(self.capacities, dtype=np.int64)
-        feasible = np.flatnonzero(np.all((out <= s) & (s - out + inn <= capacities), axis=1))
+        fits = np.all((out <= s) & (s - out + inn <= capacities), axis=1)
+        feasible = np.flatnonzero(fits & self.allowed[phase])
         posts = s - out[feasible] + inn[feasible]
         post_index = np.ravel_multi_index(tuple(posts.T), self.shape)
-        q = self.post_move_values[post_index] - self.flows[feasible] @ self.lane_costs
+        q = self.post_move_values[phase, post_index] - self.flows[feasible] @ self.lane_costs
 
         # Under the average criterion Q(s, f) = h(s) + g at the best f: report on the bias scale.
         q -= self.gain or 0.0
 
-        chosen = int(self.action[index])
+        chosen = int(self.action[phase, index])
         # `feasible` is sorted and always holds row 0 (moving nothing) and the chosen row.
         position = {k: int(np.searchsorted(feasible, k)) for k in (0, chosen)}
         others = [p for p in np.argsort(-q, kind="stable") if feasible[p] != chosen]

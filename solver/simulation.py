@@ -118,46 +118,73 @@ def count_table(dist: Distribution) -> CountTable:
 
 @dataclass(frozen=True)
 class DailyLaws:
-    """Count tables of every location, in network order: demand and replenishment per day."""
+    """Count tables of every location, per phase of the period: demand[p][i] is location i's
+    demand on the day that follows a closing count in phase p (for a weekly network, phase p is
+    the weekday of that count, so the day is weekday (p + 1) % 7); one phase when nothing
+    depends on the weekday."""
 
-    demand: tuple[CountTable, ...]
-    replenishment: tuple[CountTable, ...]
+    demand: tuple[tuple[CountTable, ...], ...]
+    replenishment: tuple[tuple[CountTable, ...], ...]
 
     @property
     def n_locations(self) -> int:
+        return len(self.demand[0])
+
+    @property
+    def n_phases(self) -> int:
         return len(self.demand)
 
 
 def daily_laws(spec: NetworkSpec) -> DailyLaws:
-    """The demand and replenishment tables of every location of `spec`."""
+    """The demand and replenishment tables of every location of `spec`, per phase."""
+    days = [(p + 1) % 7 for p in range(7 if spec.is_periodic else 1)]
     return DailyLaws(
-        demand=tuple(count_table(location.demand) for location in spec.locations),
-        replenishment=tuple(count_table(location.replenishment) for location in spec.locations),
+        demand=tuple(
+            tuple(count_table(location.demand_on(d)) for location in spec.locations) for d in days
+        ),
+        replenishment=tuple(
+            tuple(count_table(location.replenishment_on(d)) for location in spec.locations)
+            for d in days
+        ),
     )
 
 
 def draw_counts(
-    laws: DailyLaws, rng: np.random.Generator, days: int, replications: int
+    laws: DailyLaws,
+    rng: np.random.Generator,
+    days: int,
+    replications: int,
+    first_phase: int = 0,
 ) -> tuple[NDArray[np.int64], NDArray[np.int64]]:
-    """Demand and replenishment counts, both shape (days, replications, N), units per day.
+    """Demand and replenishment counts, both shape (days, replications, N), units per day; day
+    t follows a closing count in phase (first_phase + t) % P.
 
     Uniforms are drawn in C order over (day, replication, kind, location), kind 0 demand and 1
-    replenishment, so drawing d1 days and then d2 more gives the same counts as drawing
-    d1 + d2 days at once.
+    replenishment, so drawing d1 days and then d2 more (from phase first_phase + d1) gives the
+    same counts as drawing d1 + d2 days at once.
     """
     n = laws.n_locations
     uniforms = rng.random((days, replications, 2, n))
     demand = np.empty((days, replications, n), dtype=np.int64)
     replenishment = np.empty_like(demand)
-    for i in range(n):
-        demand[..., i] = laws.demand[i].quantile(uniforms[:, :, 0, i])
-        replenishment[..., i] = laws.replenishment[i].quantile(uniforms[:, :, 1, i])
+    phases = (first_phase + np.arange(days)) % laws.n_phases
+    for p in range(laws.n_phases):
+        on = phases == p
+        for i in range(n):
+            demand[on, :, i] = laws.demand[p][i].quantile(uniforms[on, :, 0, i])
+            replenishment[on, :, i] = laws.replenishment[p][i].quantile(uniforms[on, :, 1, i])
     return demand, replenishment
 
 
 def mean_demands(spec: NetworkSpec) -> NDArray[np.float64]:
-    """Mean daily demand of every location, shape (N,), units per day."""
-    return np.array([count_law(loc.demand, 1).mean for loc in spec.locations], dtype=np.float64)
+    """Mean daily demand of every location over the week, shape (N,), units per day."""
+    return np.array(
+        [
+            np.mean([count_law(loc.demand_on(d), 1).mean for d in range(7)])
+            for loc in spec.locations
+        ],
+        dtype=np.float64,
+    )
 
 
 # -- baseline policies ------------------------------------------------------------------------
@@ -171,16 +198,18 @@ def do_nothing_policy(model: TransferModel) -> NDArray[np.int64]:
 def balance_cover_policy(
     model: TransferModel, demand_means: Sequence[float] | NDArray[np.float64]
 ) -> NDArray[np.int64]:
-    """A planner's rule of thumb: move stock toward equal days of cover. Shape (S,).
+    """A planner's rule of thumb: move stock toward equal days of cover. Shape (P, S), one row
+    per phase of the model (P = 1 unless something depends on the weekday).
 
     demand_means: mean daily demand mu_i of every location, shape (N,), units per day, all > 0
         (e.g. mean_demands(spec)).
 
     Days of cover at location i is y_i / mu_i; the network-wide cover c = sum_i s_i / sum_i mu_i
-    is the same before and after any move. The rule, at closing stock s:
+    is the same before and after any move. The rule, at closing stock s in phase p:
 
-      * a flow qualifies if it is feasible at s and pays for itself tomorrow:
-        R(y) - cost(f) > R(s), R the model's expected one-day profit (solver.build);
+      * a flow qualifies if it is allowed that night, feasible at s, and pays for itself
+        tomorrow: R_p(y) - cost(f) > R_p(s), R_p the model's expected one-day profit after a
+        count in phase p (solver.build);
       * among qualifying flows (all within the lane limits and the nightly limit), choose the
         one minimising the imbalance J(y) = sum_i (y_i / mu_i - c)^2 (days squared);
       * move only if that lowers J below J(s); flows with equal J (within 1e-9 of its scale)
@@ -207,18 +236,24 @@ def balance_cover_policy(
     tolerance = 1e-9 * max(1.0, float(imbalance.max()))
     payback_tolerance = 1e-9 * max(1.0, float(np.abs(model.reward).max()))
 
-    best = imbalance.copy()
-    action = np.zeros(model.shape, dtype=np.int64)
-    for k, (states, posts) in enumerate(model.boxes()):
-        if k == 0:
-            continue
-        candidate = imbalance[posts]
-        pays = model.reward[posts] - model.flow_costs[k] > model.reward[states] + payback_tolerance
-        incumbent = best[states]  # a view: updating it updates `best`
-        better = pays & (candidate < incumbent - tolerance)
-        incumbent[better] = candidate[better]
-        action[states][better] = k
-    return action.reshape(-1)
+    boxes = model.boxes()
+    table = np.zeros((model.n_phases, model.n_states), dtype=np.int64)
+    for p in range(model.n_phases):
+        reward = model.reward[p]
+        best = imbalance.copy()
+        action = np.zeros(model.shape, dtype=np.int64)
+        for k in model.phase_flows[p]:
+            if k == 0:
+                continue
+            states, posts = boxes[k]
+            candidate = imbalance[posts]
+            pays = reward[posts] - model.flow_costs[k] > reward[states] + payback_tolerance
+            incumbent = best[states]  # a view: updating it updates `best`
+            better = pays & (candidate < incumbent - tolerance)
+            incumbent[better] = candidate[better]
+            action[states][better] = k
+        table[p] = action.reshape(-1)
+    return table
 
 
 # -- results ----------------------------------------------------------------------------------
@@ -471,7 +506,9 @@ def _simulate(
     done = 0
     while done < total_days:
         count = min(block, total_days - done)
-        demand_block, replenishment_block = draw_counts(laws, rng, count, replications)
+        demand_block, replenishment_block = draw_counts(
+            laws, rng, count, replications, first_phase=start_phase + done
+        )
         for b in range(count):
             flat = stock @ strides
             phase = start_phase + done + b
@@ -566,9 +603,26 @@ def _policy_table(model: TransferModel, name: str, policy: ArrayLike) -> NDArray
             f"policy {name!r} must hold integer indices into the flow table, got {table.dtype}"
         )
     table = table.astype(np.int64)
+    if model.n_phases > 1 and table.shape[0] not in (1, model.n_phases):
+        raise ValueError(
+            f"policy {name!r} has {table.shape[0]} rows; a network whose limits or laws depend "
+            f"on the weekday needs 1 or {model.n_phases}, one per weekday"
+        )
     states = np.indices(model.shape).reshape(model.n_locations, -1).T
+    # A row is used on the nights of its phase, or on every night when there is one row.
+    allowed: NDArray[np.bool_] = (
+        model.allowed if table.shape[0] == model.n_phases else np.all(model.allowed, axis=0)[None]
+    )
     for row, actions in enumerate(table):
         where = "" if table.shape[0] == 1 else f" (row {row})"
+        closed = ~allowed[row % allowed.shape[0]][np.clip(actions, 0, model.n_flows - 1)]
+        if closed.any() and not ((actions < 0) | (actions >= model.n_flows)).any():
+            state = int(np.argmax(closed))
+            raise ValueError(
+                f"policy {name!r}{where} chooses {_describe_flow(model, int(actions[state]))} "
+                f"at closing stock ({_describe_stock(model, states[state])}) on a night whose "
+                "lane limits do not allow it"
+            )
         outside = (actions < 0) | (actions >= model.n_flows)
         if outside.any():
             state = int(np.argmax(outside))

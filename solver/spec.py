@@ -3,17 +3,28 @@
 A network is a set of retail locations holding one item, joined by directed lanes along which
 units may be moved overnight. Amounts are in currency units per unit of stock; demand and
 replenishment are counts per business day.
+
+Weekdays. A location's `demand` and `replenishment` may be given per weekday,
+`{"weekly": {"mon": <distribution>, ..., "sun": <distribution>}}`, and so may a lane's
+`max_units` (`{"weekly": {"mon": 3, ..., "sun": 0}}`, 0 meaning no move that night). A day's
+distribution applies to that business day; a night's limit applies to the moves made on the
+evening of that business day (Sunday's limit to Sunday night). A network with any weekly field is
+periodic: its optimal policy depends on the weekday (see solver.model for the phases). Its
+`timezone` (an IANA name such as "Europe/Berlin") tells the service which business date a
+closing count belongs to; here only its form is checked, since solver/ reads no tz database.
 """
 
 from __future__ import annotations
 
 import math
-from typing import Annotated, Literal
+from typing import Annotated, Any, Generic, Literal, TypeVar
 
 from pydantic import (
     BaseModel,
     ConfigDict,
+    Discriminator,
     Field,
+    Tag,
     ValidationError,
     field_validator,
     model_validator,
@@ -21,16 +32,25 @@ from pydantic import (
 from pydantic_core import InitErrorDetails, PydanticCustomError
 
 __all__ = [
+    "WEEKDAYS",
+    "DailyDistributions",
     "Distribution",
     "LaneSpec",
     "LocationSpec",
     "NegativeBinomialDemand",
     "NetworkSpec",
+    "NightlyUnits",
     "PmfDemand",
     "PoissonDemand",
+    "WeeklyDistribution",
+    "WeeklyUnits",
 ]
 
 PMF_SUM_TOLERANCE = 1e-9
+# Keys of a weekly field, Monday first: day d of a week is WEEKDAYS[d] (0 = Monday, as in
+# datetime.date.weekday()).
+WEEKDAYS = ("mon", "tue", "wed", "thu", "fri", "sat", "sun")
+DEFAULT_TIMEZONE = "UTC"
 
 _Amount = Annotated[float, Field(ge=0, allow_inf_nan=False)]
 _LocationId = Annotated[
@@ -94,6 +114,112 @@ Distribution = Annotated[
     PoissonDemand | NegativeBinomialDemand | PmfDemand, Field(discriminator="dist")
 ]
 
+_Day = TypeVar("_Day")
+
+
+class _Week(_Strict, Generic[_Day]):
+    """One value per weekday; all seven days are required."""
+
+    mon: _Day
+    tue: _Day
+    wed: _Day
+    thu: _Day
+    fri: _Day
+    sat: _Day
+    sun: _Day
+
+    @model_validator(mode="before")
+    @classmethod
+    def _every_day(cls, data: Any) -> Any:
+        if isinstance(data, dict):
+            missing = [day for day in WEEKDAYS if day not in data]
+            unknown = [str(key) for key in data if key not in WEEKDAYS]
+            if missing or unknown:
+                found = [f"missing {', '.join(missing)}"] if missing else []
+                found += [f"unknown {', '.join(map(repr, unknown))}"] if unknown else []
+                raise PydanticCustomError(
+                    "weekdays",
+                    "a weekly value needs exactly the seven days mon, tue, wed, thu, fri, sat, "
+                    "sun: {found}",
+                    {"found": "; ".join(found)},
+                )
+        return data
+
+    def days(self) -> tuple[_Day, ...]:
+        """The seven values, Monday first."""
+        return tuple(getattr(self, day) for day in WEEKDAYS)
+
+
+class DailyDistributions(_Week[Distribution]):
+    """A distribution for each business day."""
+
+
+class WeeklyDistribution(_Strict):
+    """Counts whose law depends on the weekday: `{"weekly": {"mon": ..., ..., "sun": ...}}`."""
+
+    weekly: DailyDistributions
+
+
+_NightUnits = Annotated[int, Field(ge=0, le=10_000)]
+
+
+class NightlyUnits(_Week[_NightUnits]):
+    """Most units moved on each night, named by the business day whose evening it is."""
+
+
+class WeeklyUnits(_Strict):
+    """A lane limit per night: `{"weekly": {"mon": 3, ..., "sun": 0}}`; 0 closes the lane."""
+
+    weekly: NightlyUnits
+
+    @model_validator(mode="after")
+    def _some_night_open(self) -> WeeklyUnits:
+        if not any(self.weekly.days()):
+            raise ValueError("no night allows moves (every night is 0); remove the lane instead")
+        return self
+
+
+def _law_tag(value: Any) -> str | None:
+    if isinstance(value, dict):
+        return "weekly" if "weekly" in value else value.get("dist")
+    if isinstance(value, WeeklyDistribution):
+        return "weekly"
+    tag: str | None = getattr(value, "dist", None)
+    return tag
+
+
+DailyLaw = Annotated[
+    Annotated[PoissonDemand, Tag("poisson")]
+    | Annotated[NegativeBinomialDemand, Tag("negative_binomial")]
+    | Annotated[PmfDemand, Tag("pmf")]
+    | Annotated[WeeklyDistribution, Tag("weekly")],
+    Discriminator(
+        _law_tag,
+        custom_error_type="distribution",
+        custom_error_message="expected a distribution with dist 'poisson', 'negative_binomial' "
+        "or 'pmf', or a weekly value with one such distribution per day",
+    ),
+]
+
+_LaneUnits = Annotated[int, Field(ge=1, le=10_000, description="Most units moved per night.")]
+
+
+def _units_tag(value: Any) -> str:
+    return "weekly" if isinstance(value, dict | WeeklyUnits) else "units"
+
+
+LaneLimit = Annotated[
+    Annotated[_LaneUnits, Tag("units")] | Annotated[WeeklyUnits, Tag("weekly")],
+    Discriminator(_units_tag),
+]
+
+
+def _on(value: Any, weekday: int) -> Any:
+    """The value of a possibly weekly field on `weekday` (0 = Monday)."""
+    if isinstance(value, WeeklyDistribution | WeeklyUnits):
+        return getattr(value.weekly, WEEKDAYS[weekday])
+    return value
+
 
 class LocationSpec(_Strict):
     """One location: its stockroom, economics and daily demand and replenishment."""
@@ -107,11 +233,32 @@ class LocationSpec(_Strict):
     stockout_penalty: Annotated[
         _Amount, Field(description="Cost per unit of demand that could not be served.")
     ] = 0.0
-    demand: Distribution
-    replenishment: Annotated[
-        Distribution,
-        Field(description="Units arriving during the day, usable from the next day."),
+    demand: Annotated[
+        DailyLaw, Field(description="Units asked for in a day; one law, or one per weekday.")
     ]
+    replenishment: Annotated[
+        DailyLaw,
+        Field(
+            description="Units arriving during the day, usable from the next day; one law, or "
+            "one per weekday."
+        ),
+    ]
+
+    @property
+    def is_weekly(self) -> bool:
+        return isinstance(self.demand, WeeklyDistribution) or isinstance(
+            self.replenishment, WeeklyDistribution
+        )
+
+    def demand_on(self, weekday: int) -> Distribution:
+        """The demand law of business day `weekday` (0 = Monday)."""
+        law: Distribution = _on(self.demand, weekday)
+        return law
+
+    def replenishment_on(self, weekday: int) -> Distribution:
+        """The replenishment law of business day `weekday` (0 = Monday)."""
+        law: Distribution = _on(self.replenishment, weekday)
+        return law
 
 
 class LaneSpec(_Strict):
@@ -120,7 +267,22 @@ class LaneSpec(_Strict):
     from_: Annotated[_LocationId, Field(alias="from")]
     to: _LocationId
     unit_cost: Annotated[_Amount, Field(description="Cost of moving one unit along the lane.")]
-    max_units: Annotated[int, Field(ge=1, le=10_000, description="Most units moved per night.")]
+    max_units: Annotated[
+        LaneLimit,
+        Field(
+            description="Most units moved per night; one limit, or one per night (0 = no move "
+            "that night)."
+        ),
+    ]
+
+    @property
+    def is_weekly(self) -> bool:
+        return isinstance(self.max_units, WeeklyUnits)
+
+    def max_units_on(self, weekday: int) -> int:
+        """Most units moved on the evening of business day `weekday` (0 = Monday)."""
+        units: int = _on(self.max_units, weekday)
+        return units
 
 
 class NetworkSpec(_Strict):
@@ -141,6 +303,19 @@ class NetworkSpec(_Strict):
         int | None,
         Field(ge=1, description="Most units moved over all lanes in one night."),
     ] = None
+    timezone: Annotated[
+        str,
+        Field(
+            min_length=1,
+            max_length=64,
+            pattern=r"^[A-Za-z][A-Za-z0-9_+-]*(/[A-Za-z0-9_+-]+){0,2}$",
+            description="IANA time zone of the locations (e.g. Europe/Berlin): which business "
+            "date a closing count belongs to.",
+            # Left out of the serialised form when it is the default, so that a network saved
+            # before time zones existed serialises (and hashes) exactly as it did.
+            exclude_if=lambda zone: zone == DEFAULT_TIMEZONE,
+        ),
+    ] = DEFAULT_TIMEZONE
 
     @model_validator(mode="after")
     def _consistent(self) -> NetworkSpec:
@@ -190,3 +365,11 @@ class NetworkSpec(_Strict):
     @property
     def location_ids(self) -> list[str]:
         return [location.id for location in self.locations]
+
+    @property
+    def is_periodic(self) -> bool:
+        """Whether some demand, replenishment or lane limit depends on the weekday, so that the
+        optimal policy does too (seven phases instead of one)."""
+        return any(loc.is_weekly for loc in self.locations) or any(
+            lane.is_weekly for lane in self.lanes
+        )

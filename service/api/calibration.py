@@ -47,11 +47,13 @@ from service.schemas import (
     LocationHistoryOut,
     NetworkCreated,
     NetworkOut,
+    WeekdayTestOut,
 )
 from service.settings import Settings
 from solver import NetworkSpec
 from solver.build import check_size
-from solver.calibration import CountEstimate
+from solver.calibration import CountEstimate, WeekdayEffect
+from solver.spec import WEEKDAYS
 
 router = APIRouter(
     prefix="/v1/networks/{network_id}", tags=["calibration"], responses=PROBLEM_RESPONSES
@@ -314,6 +316,19 @@ def _estimate(estimate: CountEstimate) -> EstimateOut:
     )
 
 
+def _weekday(effect: WeekdayEffect | None) -> WeekdayTestOut | None:
+    if effect is None:
+        return None
+    return WeekdayTestOut(
+        significant=effect.significant,
+        p_value=effect.p_value,
+        statistic=effect.statistic,
+        df=effect.df,
+        summary=effect.summary,
+        means={day: estimate.mean for day, estimate in zip(WEEKDAYS, effect.weekdays, strict=True)},
+    )
+
+
 def _options(
     session: Session,
     network_id: int,
@@ -348,6 +363,8 @@ def _calibration_out(network: Network, proposal: Proposal) -> CalibrationOut:
                 current_demand=item.current_demand.model_dump(mode="json"),
                 current_replenishment=item.current_replenishment.model_dump(mode="json"),
                 changes=item.changes,
+                weekday_demand=_weekday(item.weekday_demand),
+                weekday_replenishment=_weekday(item.weekday_replenishment),
                 warnings=[] if calibration is None else list(calibration.warnings),
                 error=item.error,
             )

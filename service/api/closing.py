@@ -170,7 +170,9 @@ def _issue(
     counts: dict[str, int],
 ) -> Instruction:
     try:
-        served, recommendation = recommend(session, cache, network, counts, "discounted")
+        served, recommendation, _ = recommend(
+            session, cache, network, counts, "discounted", business_date=business_date
+        )
     except StockProblemsError as exc:
         # The counts fit the current version (they were checked on arrival); only an older
         # policy, served while the current one is solved, can refuse them: wait for it.

@@ -31,6 +31,9 @@ from service.pictures import (
 from service.policies import PolicyCache, ServedPolicy, load_policy
 from service.problems import PROBLEM_RESPONSES, InvalidInput
 from service.schemas import CriterionName
+from service.schemas import WeekdayName as Weekday
+from solver import PolicyResult
+from solver.spec import WEEKDAYS
 
 router = APIRouter(tags=["pictures"], responses=PROBLEM_RESPONSES)
 
@@ -65,6 +68,7 @@ class PlaneQuery:
     x: str | None
     y: str | None
     at: str | None
+    weekday: Weekday | None
 
 
 async def plane_query(
@@ -92,8 +96,23 @@ async def plane_query(
             "half its capacity, rounded down.",
         ),
     ] = None,
+    weekday: Annotated[
+        Weekday | None,
+        Query(
+            description="For a network with weekly fields: the policy for closing counts on "
+            "this weekday (the moves of that night); default mon. Ignored otherwise."
+        ),
+    ] = None,
 ) -> PlaneQuery:
-    return PlaneQuery(x, y, at)
+    return PlaneQuery(x, y, at, weekday)
+
+
+def _phase(result: PolicyResult, query: PlaneQuery) -> tuple[int, str]:
+    """The phase to draw and the words for it in a title ("" for a stationary policy)."""
+    if result.phases == 1:
+        return 0, ""
+    day = query.weekday or "mon"
+    return result.phase_of(WEEKDAYS.index(day)), f", {day} night"
 
 
 PlaneDep = Annotated[PlaneQuery, Depends(plane_query)]
@@ -183,9 +202,10 @@ def _moves(
     image_format: ImageFormat,
 ) -> Response:
     network, served, plane = _served_plane(session, cache, tenant_id, network_id, criterion, query)
-    subject = f"version {served.version_number} · net moves, {criterion} policy"
+    phase, night = _phase(served.result, query)
+    subject = f"version {served.version_number} · net moves, {criterion} policy{night}"
     body = render_moves(
-        net_inflow_grid(served.result, plane),
+        net_inflow_grid(served.result, plane, phase),
         x_id=plane.x_id,
         y_id=plane.y_id,
         title=caption(network.name, subject, plane),
@@ -205,11 +225,12 @@ def _values(
     image_format: ImageFormat,
 ) -> Response:
     network, served, plane = _served_plane(session, cache, tenant_id, network_id, criterion, query)
-    subject = f"version {served.version_number} · value of the {criterion} policy"
+    phase, night = _phase(served.result, query)
+    subject = f"version {served.version_number} · value of the {criterion} policy{night}"
     if served.result.gain is not None:
         subject += f", profit per day {served.result.gain:,.2f}"
     body = render_values(
-        value_grid(served.result, plane),
+        value_grid(served.result, plane, phase),
         x_id=plane.x_id,
         y_id=plane.y_id,
         title=caption(network.name, subject, plane),

@@ -1,4 +1,7 @@
-"""The whole policy table, for ERP import: stock levels, flows per lane, value. Streamed."""
+"""The whole policy table, for ERP import: stock levels, flows per lane, value. Streamed.
+
+A weekly network's policy has one table per weekday of the closing count: its rows start with a
+`weekday` column (mon .. sun), Monday's rows first; a stationary policy has no such column."""
 
 from __future__ import annotations
 
@@ -15,6 +18,7 @@ from service.api.deps import CacheDep, NetworkId, Reader, SessionDep, get_networ
 from service.policies import ServedPolicy, load_policy
 from service.problems import PROBLEM_RESPONSES
 from service.schemas import CriterionName
+from solver.spec import WEEKDAYS
 
 router = APIRouter(tags=["policies"], responses=PROBLEM_RESPONSES)
 
@@ -23,8 +27,10 @@ _ROWS_PER_CHUNK = 4096
 _EXPORT_DOC: dict[int | str, dict[str, Any]] = {
     200: {
         "description": "The policy table. CSV: one row per closing stock, columns: the stock of "
-        "each location, the units on each lane (`from->to`), the value. JSON: the same rows "
-        "under `rows`, with `columns`, `version`, `criterion` and `profit_per_day`.",
+        "each location, the units on each lane (`from->to`), the value; for a network with "
+        "weekly fields the rows start with the `weekday` of the closing count (mon .. sun), one "
+        "table per weekday. JSON: the same rows under `rows`, with `columns`, `version`, "
+        "`criterion` and `profit_per_day`.",
         "content": {"text/csv": {"schema": {"type": "string"}}, "application/json": {}},
     }
 }
@@ -58,23 +64,28 @@ def _columns(served: ServedPolicy) -> list[str]:
     result = served.result
     ids = result.location_ids
     lanes = [f"{ids[a]}->{ids[b]}" for a, b in result.lanes]
-    return [*ids, *lanes, "value"]
+    weekday = ["weekday"] if result.phases > 1 else []
+    return [*weekday, *ids, *lanes, "value"]
 
 
-def _chunks(served: ServedPolicy) -> Iterator[tuple[np.ndarray, np.ndarray, np.ndarray]]:
+def _chunks(served: ServedPolicy) -> Iterator[tuple[list[str], np.ndarray, np.ndarray, np.ndarray]]:
+    """Rows in blocks: (leading weekday cells, stock, units per lane, value)."""
     result = served.result
-    for start in range(0, result.n_states, _ROWS_PER_CHUNK):
-        index = np.arange(start, min(start + _ROWS_PER_CHUNK, result.n_states))
-        stock = np.stack(np.unravel_index(index, result.shape), axis=1)
-        yield stock, result.flows[result.action[index]], result.values[index]
+    for phase in range(result.phases):
+        lead = [WEEKDAYS[phase]] if result.phases > 1 else []
+        for start in range(0, result.n_states, _ROWS_PER_CHUNK):
+            index = np.arange(start, min(start + _ROWS_PER_CHUNK, result.n_states))
+            stock = np.stack(np.unravel_index(index, result.shape), axis=1)
+            flows = result.flows[result.action[phase, index]]
+            yield lead, stock, flows, result.values[phase, index]
 
 
 def _csv(served: ServedPolicy) -> Iterator[str]:
     yield ",".join(_columns(served)) + "\n"
-    for stock, flows, values in _chunks(served):
+    for lead, stock, flows, values in _chunks(served):
         buffer = io.StringIO()
         for s, f, v in zip(stock.tolist(), flows.tolist(), values.tolist(), strict=True):
-            buffer.write(",".join(map(str, (*s, *f))) + f",{v!r}\n")
+            buffer.write(",".join(map(str, (*lead, *s, *f))) + f",{v!r}\n")
         yield buffer.getvalue()
 
 
@@ -88,9 +99,9 @@ def _json(served: ServedPolicy, network_id: NetworkId, criterion: str) -> Iterat
     }
     yield json.dumps(head)[:-1] + ', "rows": ['
     first = True
-    for stock, flows, values in _chunks(served):
+    for lead, stock, flows, values in _chunks(served):
         rows = [
-            [*s, *f, v]
+            [*lead, *s, *f, v]
             for s, f, v in zip(stock.tolist(), flows.tolist(), values.tolist(), strict=True)
         ]
         text = json.dumps(rows)[1:-1]

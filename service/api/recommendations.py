@@ -9,6 +9,7 @@ from __future__ import annotations
 import json
 import logging
 import time
+from datetime import date
 from typing import Any
 
 from fastapi import APIRouter, Request
@@ -61,11 +62,17 @@ def _recommend_one(
     network_id: NetworkId,
     stock: dict[str, int],
     criterion: str,
+    business_date: date | None,
 ) -> RecommendationOut:
-    served, recommendation = recommend(
-        session, cache, NetworkRef(network_id, tenant_id), stock, criterion
+    served, recommendation, night_of = recommend(
+        session,
+        cache,
+        NetworkRef(network_id, tenant_id),
+        stock,
+        criterion,
+        business_date=business_date,
     )
-    return recommendation_out(network_id, criterion, served, recommendation)
+    return recommendation_out(network_id, criterion, served, recommendation, night_of)
 
 
 @router.post("/v1/networks/{network_id}/recommendation", response_model=RecommendationOut)
@@ -82,7 +89,13 @@ async def recommend_transfers(
     def work() -> RecommendationOut:
         with sessions_of(request).begin() as session:
             return _recommend_one(
-                session, cache, caller.tenant_id, network_id, body.stock, body.criterion
+                session,
+                cache,
+                caller.tenant_id,
+                network_id,
+                body.stock,
+                body.criterion,
+                body.business_date,
             )
 
     out = await run_in_threadpool(work)
@@ -140,7 +153,13 @@ def _one(
     try:
         with session.begin_nested():
             out = _recommend_one(
-                session, cache, tenant_id, item.network_id, item.stock, item.criterion
+                session,
+                cache,
+                tenant_id,
+                item.network_id,
+                item.stock,
+                item.criterion,
+                item.business_date,
             )
     except Exception as exc:
         known = problem_for(exc)

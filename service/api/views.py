@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from datetime import date
+
 from sqlalchemy.orm import Session
 
 from service.db import repository
@@ -16,6 +18,7 @@ from service.schemas import (
     TransferOut,
 )
 from solver import PolicyResult, Recommendation
+from solver.spec import WEEKDAYS
 
 __all__ = ["network_out", "recommendation_out", "transfers_of"]
 
@@ -73,7 +76,11 @@ def transfers_of(result: PolicyResult, flows: tuple[int, ...]) -> list[TransferO
 
 
 def recommendation_out(
-    network_id: int, criterion: str, served: ServedPolicy, recommendation: Recommendation
+    network_id: int,
+    criterion: str,
+    served: ServedPolicy,
+    recommendation: Recommendation,
+    business_date: date | None = None,
 ) -> RecommendationOut:
     result = served.result
     ids = result.location_ids
@@ -93,4 +100,6 @@ def recommendation_out(
         value_without_transfers=recommendation.value_without_transfers,
         gain_from_transfers=recommendation.gain_from_transfers,
         profit_per_day=result.gain,
+        business_date=business_date,
+        night=None if business_date is None else WEEKDAYS[business_date.weekday()],
     )

@@ -327,6 +327,12 @@ def test_calibration_example_answers_as_shown(tmp_path: Path, live: Live) -> Non
             assert_matches_shown(response.json(), answer, command.line)
 
 
+def test_simulation_example_prints_what_is_shown(tmp_path: Path) -> None:
+    [block] = [b for b in section_blocks("Simulations and what-if") if b.language == "console"]
+    [simulate] = console_commands(block)
+    assert_output_matches(run_stockrelay(simulate, readme_workdir(tmp_path)), simulate)
+
+
 def test_command_line_example_prints_and_writes_what_is_shown(tmp_path: Path) -> None:
     blocks = section_blocks("Command line")
     [solve] = [c for b in blocks if b.language == "console" for c in console_commands(b)]

@@ -37,6 +37,7 @@ __all__ = [
     "run_worker",
     "sqlite_only",
     "stock_of",
+    "weekly_document",
 ]
 
 PROBLEM_TYPE_BASE = "https://stockrelay.dev/problems/"
@@ -89,6 +90,35 @@ def demo_document(**changes: Any) -> dict[str, Any]:
     """The demo network as a request body (a deep copy), with top-level `changes`."""
     document = copy.deepcopy(DEMO_NETWORK)
     document.update(changes)
+    return document
+
+
+WEEK = ("mon", "tue", "wed", "thu", "fri", "sat", "sun")
+
+
+def weekly_document(open_nights: tuple[int, ...] = (0, 1, 2, 3, 4, 5), **changes: Any) -> Any:
+    """The demo network with weekday-dependent fields: Riverside busy at weekends, Hilltop
+    restocked on Tuesdays and Fridays only, and both lanes running only on `open_nights`
+    (0 = Monday night; by default every night but Sunday's). Top-level `changes` as in
+    demo_document."""
+    document = demo_document(**changes)
+    riverside, hilltop = document["locations"]
+    riverside["demand"] = {
+        "weekly": {
+            day: {"dist": "negative_binomial", "mean": mean, "variance": 1.6 * mean}
+            for day, mean in zip(WEEK, (1.8, 1.8, 2.0, 2.2, 3.0, 4.2, 3.6), strict=True)
+        }
+    }
+    none = {"dist": "pmf", "p": [1.0]}
+    delivery = {"dist": "poisson", "mean": 3.5}
+    hilltop["replenishment"] = {
+        "weekly": {day: delivery if day in ("tue", "fri") else none for day in WEEK}
+    }
+    for lane in document["lanes"]:
+        limit = lane["max_units"]
+        lane["max_units"] = {
+            "weekly": {day: limit if d in open_nights else 0 for d, day in enumerate(WEEK)}
+        }
     return document
 
 

@@ -332,12 +332,12 @@ def test_a_prohibitive_lane_cost_changes_the_moves_the_solver_says(client: TestC
     document["lanes"][0]["unit_cost"] = 1000.0
     base = solve_network(demo_spec())
     changed = solve_network(NetworkSpec.model_validate(document))
-    differing = int(np.any(base.policy_flows() != changed.policy_flows(), axis=1).sum())
+    differing = int(np.any(base.policy_flows() != changed.policy_flows(), axis=-1).sum())
     assert differing > 0
     assert result["moves"]["states_changed"] == differing
     assert result["moves"]["comparable"] is True
     assert result["changed"]["value_at_reference"] == pytest.approx(
-        float(changed.values[changed.state_index([7, 4])]), rel=1e-12
+        float(changed.values[0, changed.state_index([7, 4])]), rel=1e-12
     )
     # Dearer moves cannot raise any policy's value, so neither the optimum's.
     assert result["change"]["value_at_reference"] <= 1e-6

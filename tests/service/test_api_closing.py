@@ -20,6 +20,7 @@ from tests.service.api_support import (
     run_worker,
     sqlite_only,
     stock_of,
+    weekly_document,
 )
 
 DEMO_SPEC = NetworkSpec.model_validate(demo_document())
@@ -221,3 +222,37 @@ def test_counts_beyond_the_stale_policy_wait_for_the_new_solve(
     run_worker(engine)
     issued = instructions(client, network_id, "hilltop", day)
     assert issued.status_code == 200 and issued.json()["version"] == 2
+
+
+@sqlite_only
+def test_weekly_instructions_follow_the_weekday_of_the_business_date(
+    client: TestClient, engine: Engine
+) -> None:
+    # Lanes run only on tonight's weekday: yesterday's counts move nothing, tonight's follow
+    # the policy of today's weekday. Whatever today is, a plan computed for the wrong weekday
+    # fails one of the two days.
+    day = today()
+    document = weekly_document(open_nights=(day.weekday(),))
+    spec = NetworkSpec.model_validate({k: v for k, v in document.items() if k != "criteria"})
+    network_id = create_network(client, document)["id"]
+    run_worker(engine)
+    result = solve_network(spec)
+    phase = result.phase_of(day.weekday())
+    vector = next(
+        list(v)
+        for v in itertools.product(*(range(c + 1) for c in result.capacities))
+        if any(result.recommend(list(v), phase=phase).flows)
+    )
+    for business_date in (day - timedelta(days=1), day):
+        for location, units in stock_of(spec, vector).items():
+            assert report(client, network_id, location, business_date, units).status_code == 200
+    tonight = instructions(client, network_id, "riverside", day).json()
+    last_night = instructions(client, network_id, "riverside", day - timedelta(days=1)).json()
+    assert (last_night["send"], last_night["receive"]) == ([], [])
+    expected = expected_transfers(result, result.recommend(vector, phase=phase))
+    moved = [
+        {"from": "riverside", "to": m["location"], "units": m["units"]} for m in tonight["send"]
+    ] + [
+        {"from": m["location"], "to": "riverside", "units": m["units"]} for m in tonight["receive"]
+    ]
+    assert moved == [{k: t[k] for k in ("from", "to", "units")} for t in expected]

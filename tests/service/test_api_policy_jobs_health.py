@@ -26,6 +26,7 @@ from tests.service.api_support import (
     pointers,
     run_worker,
     sqlite_only,
+    weekly_document,
 )
 
 DEMO_SPEC = NetworkSpec.model_validate(demo_document())
@@ -45,8 +46,8 @@ def assert_rows_match(rows: list[list[float]], result: PolicyResult) -> None:
     assert table.shape == (result.n_states, n_locations + len(result.lanes) + 1)
     stocks = np.array(list(np.ndindex(*result.shape)), dtype=np.float64)
     assert_array_equal(table[:, :n_locations], stocks)
-    assert_array_equal(table[:, n_locations:-1], result.policy_flows())
-    assert_allclose(table[:, -1], result.values, rtol=RTOL, atol=ATOL)
+    assert_array_equal(table[:, n_locations:-1], result.policy_flows()[0])
+    assert_allclose(table[:, -1], result.values[0], rtol=RTOL, atol=ATOL)
 
 
 def parse_csv(text: str) -> tuple[list[str], list[list[float]]]:
@@ -122,6 +123,30 @@ def test_exports_of_many_states_span_chunks_intact(client: TestClient, engine: E
         if criterion == "average":
             assert result.gain is not None
             assert_allclose(parsed["profit_per_day"], result.gain, rtol=RTOL)
+
+
+@sqlite_only
+def test_weekly_policy_exports_one_table_per_weekday(client: TestClient, engine: Engine) -> None:
+    document = weekly_document()
+    spec = NetworkSpec.model_validate({k: v for k, v in document.items() if k != "criteria"})
+    network_id = create_network(client, document)["id"]
+    run_worker(engine)
+    result = solve_network(spec)
+    path = f"/v1/networks/{network_id}/policy"
+    header, *rows = list(csv.reader(io.StringIO(client.get(path, params={"format": "csv"}).text)))
+    assert header == ["weekday", *expected_columns(spec)]
+    assert len(rows) == 7 * result.n_states
+    weekdays = ["mon", "tue", "wed", "thu", "fri", "sat", "sun"]
+    assert [row[0] for row in rows] == [day for day in weekdays for _ in range(result.n_states)]
+    for phase in range(7):
+        block = rows[phase * result.n_states : (phase + 1) * result.n_states]
+        table = np.array([[float(cell) for cell in row[1:]] for row in block])
+        assert_array_equal(table[:, 2:-1], result.policy_flows()[phase])
+        assert_allclose(table[:, -1], result.values[phase], rtol=RTOL, atol=ATOL)
+    assert not result.policy_flows()[6].any()  # both lanes closed on Sunday night
+    as_json = client.get(path).json()
+    assert as_json["columns"] == header
+    assert as_json["rows"] == [[row[0], *(float(c) for c in row[1:])] for row in rows]
 
 
 @sqlite_only

@@ -5,7 +5,9 @@ to the in-process solver after it, stale while a newer version waits, and a prob
 from __future__ import annotations
 
 import logging
+from datetime import date, datetime, timedelta
 from typing import Any
+from zoneinfo import ZoneInfo
 
 import numpy as np
 import pytest
@@ -16,6 +18,7 @@ from sqlalchemy import Engine
 import service.policies
 from service.api import recommendations as recommendations_module
 from solver import NetworkSpec, PolicyResult, solve_network
+from solver.spec import WEEKDAYS as WEEK
 from tests.service.api_support import (
     assert_problem,
     create_network,
@@ -26,6 +29,7 @@ from tests.service.api_support import (
     run_worker,
     sqlite_only,
     stock_of,
+    weekly_document,
 )
 
 DEMO_SPEC = NetworkSpec.model_validate(demo_document())
@@ -248,6 +252,65 @@ def test_bad_requests_are_422_with_a_pointer_per_problem(
     assert_problem(not_json, 422, "invalid-input")
 
 
+@sqlite_only
+def test_weekly_network_answers_for_the_night_after_the_business_date(
+    client: TestClient, engine: Engine
+) -> None:
+    document = weekly_document(timezone="Pacific/Auckland")
+    network_id = create_network(client, document)["id"]
+    run_worker(engine)
+    expected = solve_network(NetworkSpec.model_validate(document))
+    stock = {"riverside": 13, "hilltop": 1}
+    url = f"/v1/networks/{network_id}/recommendation"
+    answers = {}
+    # 2026-11-30 was a Monday (proleptic Gregorian calendar, as Python's datetime.date).
+    for offset in range(7):
+        day = date(2026, 11, 30) + timedelta(days=offset)
+        body = client.post(url, json={"stock": stock, "business_date": day.isoformat()}).json()
+        assert (body["business_date"], body["night"]) == (day.isoformat(), WEEK[offset])
+        wanted = expected.recommend([13, 1], phase=expected.phase_of(day.weekday()))
+        assert body["transfers"] == expected_transfers(expected, wanted)
+        assert body["expected_value"] == pytest.approx(wanted.expected_value, rel=1e-9)
+        answers[WEEK[offset]] = body["transfers"]
+    # Sunday night the lanes are closed; the weekday really changes the answer.
+    assert answers["sun"] == []
+    assert len({str(a) for a in answers.values()}) > 1
+
+    # Without a date: today where the stores are (Auckland), not on the server's clock.
+    today = datetime.now(ZoneInfo("Pacific/Auckland")).date()
+    body = client.post(url, json={"stock": stock}).json()
+    assert body["business_date"] in {today.isoformat(), (today + timedelta(days=1)).isoformat()}
+    assert body["night"] == WEEK[date.fromisoformat(body["business_date"]).weekday()]
+
+    items = [
+        {"network_id": network_id, "stock": stock, "business_date": "2026-12-06"},
+        {"network_id": network_id, "stock": stock, "business_date": "2026-12-31x"},
+    ]
+    outcome = client.post("/v1/recommendations/batch", json={"items": items}).json()["items"]
+    assert (outcome[0]["result"]["night"], outcome[0]["result"]["transfers"]) == ("sun", [])
+    assert pointers(outcome[1]["problem"]) == ["/items/1/business_date"]
+
+
+def test_stationary_network_ignores_the_business_date(client: TestClient, engine: Engine) -> None:
+    network_id = solved_demo(client, engine)
+    stock = {"riverside": 13, "hilltop": 1}
+    plain = recommend(client, network_id, stock).json()
+    assert (plain["business_date"], plain["night"]) == (None, None)
+    dated = client.post(
+        f"/v1/networks/{network_id}/recommendation",
+        json={"stock": stock, "business_date": "2026-12-05"},
+    ).json()
+    assert (dated["business_date"], dated["night"]) == ("2026-12-05", "sat")
+    assert dated["transfers"] == plain["transfers"]
+
+
+def test_unknown_time_zone_is_refused(client: TestClient) -> None:
+    response = client.post("/v1/networks", json=demo_document(timezone="Europe/Atlantis"))
+    problem = assert_problem(response, 422, "invalid-input")
+    assert pointers(problem) == ["/timezone"]
+    assert "Europe/Atlantis" in problem["detail"]
+
+
 # -- batches -----------------------------------------------------------------------------------
 
 
@@ -385,11 +448,11 @@ def test_batch_item_that_fails_unexpectedly_is_a_500_problem_of_its_own(
     real = service.policies.recommend
 
     def fails_for_empty_hilltop(
-        session: Any, cache: Any, network: Any, stock: Any, *rest: Any
+        session: Any, cache: Any, network: Any, stock: Any, *rest: Any, **named: Any
     ) -> Any:
         if stock.get("hilltop") == 0:
             raise RuntimeError("disk on fire")
-        return real(session, cache, network, stock, *rest)
+        return real(session, cache, network, stock, *rest, **named)
 
     monkeypatch.setattr(recommendations_module, "recommend", fails_for_empty_hilltop)
     items = [

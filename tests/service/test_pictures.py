@@ -38,6 +38,7 @@ from tests.service.api_support import (
     pointers,
     run_worker,
     sqlite_only,
+    weekly_document,
 )
 
 # The SVG 1.1 namespace (W3C, Scalable Vector Graphics 1.1, section 5.1.2).
@@ -399,3 +400,27 @@ def test_pictures_need_only_a_read_key(client: TestClient, engine: Engine) -> No
         path = f"/v1/networks/{network_id}/{picture}"
         assert client.get(path, headers=reader).status_code == 200
         assert_problem(client.get(path, headers={"Authorization": ""}), 401, "unauthorized")
+
+
+def test_weekly_policy_is_pictured_for_the_chosen_night(client: TestClient, engine: Engine) -> None:
+    document = weekly_document()
+    network_id = create_network(client, document)["id"]
+    run_worker(engine)
+    result = solve_network(NetworkSpec.model_validate(document))
+    plane = choose_plane(result, None, None, {})
+    for weekday in range(7):
+        phase = result.phase_of(weekday)
+        grid = net_inflow_grid(result, plane, phase)
+        for hilltop, riverside in itertools.product(*(range(n) for n in grid.shape)):
+            moves = result.recommend([riverside, hilltop], phase=phase).flows
+            # Lane 0 runs riverside -> hilltop, lane 1 back (the demo's lanes).
+            assert grid[hilltop, riverside] == moves[0] - moves[1]
+    # Sunday night the weekly demo's lanes are closed: nothing moves anywhere.
+    assert not net_inflow_grid(result, plane, result.phase_of(6)).any()
+    assert net_inflow_grid(result, plane, result.phase_of(4)).any()
+
+    sunday = client.get(f"/v1/networks/{network_id}/policy.svg?weekday=sun")
+    assert sunday.status_code == 200
+    assert "sun night" in sunday.text
+    assert sunday.content != client.get(f"/v1/networks/{network_id}/policy.svg").content
+    assert_problem(client.get(f"/v1/networks/{network_id}/policy.svg?weekday=funday"), 422)

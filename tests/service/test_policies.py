@@ -29,7 +29,10 @@ def serve(
     criterion: str = "discounted",
 ):  # type: ignore[no-untyped-def]
     with sessions.begin() as session:
-        return recommend(session, cache, session.get_one(Network, network_id), stock, criterion)
+        served, recommendation, _ = recommend(
+            session, cache, session.get_one(Network, network_id), stock, criterion
+        )
+        return served, recommendation
 
 
 def test_nothing_is_served_before_the_solve(

@@ -7,6 +7,48 @@ from typing import Any
 
 from solver import NetworkSpec
 
+WEEK = ("mon", "tue", "wed", "thu", "fri", "sat", "sun")
+
+
+def poisson(mean: float) -> dict[str, Any]:
+    return {"dist": "poisson", "mean": mean}
+
+
+def negative_binomial(mean: float, variance: float) -> dict[str, Any]:
+    return {"dist": "negative_binomial", "mean": mean, "variance": variance}
+
+
+def pmf(*p: float) -> dict[str, Any]:
+    return {"dist": "pmf", "p": list(p)}
+
+
+def location(
+    location_id: str,
+    capacity: int,
+    demand: dict[str, Any],
+    replenishment: dict[str, Any],
+    *,
+    margin: float = 10.0,
+    holding: float = 0.2,
+    penalty: float = 1.0,
+) -> dict[str, Any]:
+    """A location as in the JSON input; amounts in currency units."""
+    return {
+        "id": location_id,
+        "capacity": capacity,
+        "unit_margin": margin,
+        "holding_cost": holding,
+        "stockout_penalty": penalty,
+        "demand": demand,
+        "replenishment": replenishment,
+    }
+
+
+def weekly(*days: Any) -> dict[str, Any]:
+    """A weekly field (demand, replenishment or lane limit) from seven values, Monday first."""
+    assert len(days) == len(WEEK)
+    return {"weekly": dict(zip(WEEK, days, strict=True))}
+
 
 def two_stores(
     *,

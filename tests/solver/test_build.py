@@ -393,7 +393,7 @@ class TestFlowTable:
         result = solve_network(spec)
         # Reference: quantecon.markov.DiscreteDP policy iteration (QuantEcon, PyPI) over every
         # flow within the lane limits; values agree to 1e-8 + 1e-10 relative.
-        assert_allclose(result.values, solution.v, rtol=1e-10, atol=1e-8)
+        assert_allclose(result.values[0], solution.v, rtol=1e-10, atol=1e-8)
 
     def test_pruning_loses_no_long_run_profit(self, spec: NetworkSpec) -> None:
         reference = build_reference(spec)

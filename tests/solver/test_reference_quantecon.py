@@ -11,7 +11,6 @@ solve(method="policy_iteration"); quantecon.MarkovChain for stationary distribut
 
 from __future__ import annotations
 
-from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -19,7 +18,6 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from numpy.testing import assert_allclose
-from numpy.typing import NDArray
 
 from solver import (
     NetworkSpec,
@@ -29,19 +27,20 @@ from solver import (
     solve_network,
     solve_policy_iteration,
 )
-from tests.solver.reference import ReferenceMDP, build_reference, make_network, stationary_gain
-
-# Discounted values: |ours - quantecon| <= 1e-8 + 1e-10 |quantecon| (currency units).
-VALUE_ATOL = 1e-8
-VALUE_RTOL = 1e-10
-# A chosen flow is optimal when its Q value is within this of the best Q value in its state.
-Q_ATOL = 1e-8
-# Long-run profit per day, currency units.
-GAIN_ATOL = 1e-8
-BLACKWELL_GAIN_ATOL = 1e-7
-BIAS_ATOL = 1e-7
-# Close enough to 1 that a discounted-optimal policy is Blackwell optimal on these networks.
-NEAR_ONE = 0.99999
+from tests.solver.networks import location, negative_binomial, pmf, poisson
+from tests.solver.reference import (
+    BIAS_ATOL,
+    BLACKWELL_GAIN_ATOL,
+    GAIN_ATOL,
+    NEAR_ONE,
+    Case,
+    assert_policy_is_optimal,
+    assert_values_match,
+    make_network,
+    rounding_slack,
+    solve_reference,
+    stationary_gain,
+)
 
 
 def _location(
@@ -53,27 +52,15 @@ def _location(
     demand: dict[str, Any],
     replenishment: dict[str, Any],
 ) -> dict[str, Any]:
-    return {
-        "id": location_id,
-        "capacity": capacity,
-        "unit_margin": margin,
-        "holding_cost": holding,
-        "stockout_penalty": penalty,
-        "demand": demand,
-        "replenishment": replenishment,
-    }
-
-
-def _poisson(mean: float) -> dict[str, Any]:
-    return {"dist": "poisson", "mean": mean}
-
-
-def _negative_binomial(mean: float, variance: float) -> dict[str, Any]:
-    return {"dist": "negative_binomial", "mean": mean, "variance": variance}
-
-
-def _pmf(*p: float) -> dict[str, Any]:
-    return {"dist": "pmf", "p": list(p)}
+    return location(
+        location_id,
+        capacity,
+        demand,
+        replenishment,
+        margin=margin,
+        holding=holding,
+        penalty=penalty,
+    )
 
 
 def drill_kit_pair() -> NetworkSpec:
@@ -81,9 +68,9 @@ def drill_kit_pair() -> NetworkSpec:
     return make_network(
         "drill kits",
         [
-            _location("harbour", 6, 11.0, 0.35, 1.5, _poisson(2.3), _negative_binomial(1.4, 2.6)),
+            _location("harbour", 6, 11.0, 0.35, 1.5, poisson(2.3), negative_binomial(1.4, 2.6)),
             _location(
-                "hillside", 5, 9.5, 0.6, 2.25, _negative_binomial(1.6, 3.5), _pmf(0.3, 0.4, 0.3)
+                "hillside", 5, 9.5, 0.6, 2.25, negative_binomial(1.6, 3.5), pmf(0.3, 0.4, 0.3)
             ),
         ],
         [(0, 1, 1.15, 3), (1, 0, 0.85, 2)],
@@ -97,9 +84,9 @@ def bakery_pair() -> NetworkSpec:
     return make_network(
         "cake stands",
         [
-            _location("market", 4, 6.4, 0.15, 0.8, _pmf(0.1, 0.3, 0.35, 0.25), _poisson(1.1)),
+            _location("market", 4, 6.4, 0.15, 0.8, pmf(0.1, 0.3, 0.35, 0.25), poisson(1.1)),
             _location(
-                "station", 7, 5.2, 0.25, 1.75, _pmf(0.25, 0.2, 0.2, 0.15, 0.1, 0.1), _poisson(2.4)
+                "station", 7, 5.2, 0.25, 1.75, pmf(0.25, 0.2, 0.2, 0.15, 0.1, 0.1), poisson(2.4)
             ),
         ],
         [(0, 1, 0.4, 2), (1, 0, 0.55, 3)],
@@ -113,11 +100,11 @@ def three_kiosks() -> NetworkSpec:
     return make_network(
         "handset kiosks",
         [
-            _location("quay", 3, 7.5, 0.3, 1.2, _poisson(1.4), _negative_binomial(1.1, 2.0)),
+            _location("quay", 3, 7.5, 0.3, 1.2, poisson(1.4), negative_binomial(1.1, 2.0)),
             _location(
-                "mall", 4, 6.0, 0.5, 2.5, _negative_binomial(1.8, 3.1), _pmf(0.2, 0.45, 0.25, 0.1)
+                "mall", 4, 6.0, 0.5, 2.5, negative_binomial(1.8, 3.1), pmf(0.2, 0.45, 0.25, 0.1)
             ),
-            _location("depot", 3, 8.25, 0.2, 0.7, _pmf(0.15, 0.35, 0.3, 0.2), _poisson(0.9)),
+            _location("depot", 3, 8.25, 0.2, 0.7, pmf(0.15, 0.35, 0.3, 0.2), poisson(0.9)),
         ],
         [
             (0, 1, 0.6, 2),
@@ -137,9 +124,9 @@ def three_garden_centres() -> NetworkSpec:
     return make_network(
         "mower ring",
         [
-            _location("east", 4, 13.0, 0.9, 0.0, _poisson(2.0), _poisson(1.3)),
-            _location("west", 3, 10.0, 0.4, 3.0, _poisson(0.7), _negative_binomial(0.9, 1.5)),
-            _location("north", 4, 12.0, 0.0, 1.0, _negative_binomial(1.2, 2.9), _poisson(1.5)),
+            _location("east", 4, 13.0, 0.9, 0.0, poisson(2.0), poisson(1.3)),
+            _location("west", 3, 10.0, 0.4, 3.0, poisson(0.7), negative_binomial(0.9, 1.5)),
+            _location("north", 4, 12.0, 0.0, 1.0, negative_binomial(1.2, 2.9), poisson(1.5)),
         ],
         [(0, 1, 0.7, 2), (1, 2, 0.65, 3), (2, 0, 1.05, 2), (1, 0, 0.2, 1)],
         discount=0.96,
@@ -153,22 +140,6 @@ NETWORKS = {
     "three-kiosks": three_kiosks,
     "three-garden-centres": three_garden_centres,
 }
-
-
-@dataclass(frozen=True)
-class Case:
-    spec: NetworkSpec
-    reference: ReferenceMDP
-    # quantecon's optimal discounted values, shape (S,).
-    reference_values: NDArray[np.float64]
-
-
-def solve_reference(spec: NetworkSpec) -> Case:
-    reference = build_reference(spec)
-    solution = reference.discrete_dp().solve(method="policy_iteration")
-    # quantecon stops policy iteration when the policy repeats or at max_iter; it must repeat.
-    assert solution.num_iter < solution.max_iter
-    return Case(spec, reference, np.asarray(solution.v, dtype=np.float64))
 
 
 @pytest.fixture(scope="module", params=sorted(NETWORKS))
@@ -189,27 +160,6 @@ def kiosks() -> Case:
     return solve_reference(three_kiosks())
 
 
-def rounding_slack(case: Case) -> float:
-    """Allowance for the reference's own rounding when checking an error bound: its values come
-    from dense solves of (I - beta P) v = r, accurate to a few ulps times 1 / (1 - beta)."""
-    return 1e-12 * float(np.max(np.abs(case.reference_values)))
-
-
-def assert_values_match(values: NDArray[np.float64], case: Case) -> None:
-    # Reference: quantecon.markov.DiscreteDP policy iteration (QuantEcon, PyPI).
-    assert_allclose(values, case.reference_values, rtol=VALUE_RTOL, atol=VALUE_ATOL)
-
-
-def assert_policy_is_optimal(result: PolicyResult, case: Case) -> None:
-    """Every chosen flow is feasible and attains the reference's best Q value in its state."""
-    reference = case.reference
-    q = reference.pair_values(case.reference_values, case.spec.discount)
-    best = reference.best_by_state(q)
-    chosen = reference.pair_indices(result.policy_flows())
-    # Reference: Q values from quantecon.markov.DiscreteDP's optimal v (QuantEcon, PyPI).
-    assert_allclose(q[chosen], best, rtol=0, atol=Q_ATOL)
-
-
 class TestDiscounted:
     def test_values_match_quantecon(self, case: Case) -> None:
         result = solve_network(case.spec)
@@ -217,11 +167,11 @@ class TestDiscounted:
         assert_values_match(result.values, case)
 
     def test_every_chosen_flow_is_in_the_optimal_set(self, case: Case) -> None:
-        assert_policy_is_optimal(solve_network(case.spec), case)
+        assert_policy_is_optimal(solve_network(case.spec).policy_flows(), case)
 
     def test_reported_error_bound_covers_the_actual_error(self, case: Case) -> None:
         result = solve_network(case.spec)
-        error = float(np.max(np.abs(result.values - case.reference_values)))
+        error = float(np.max(np.abs(result.values[0] - case.reference_values)))
         # Reference: quantecon.markov.DiscreteDP policy iteration (QuantEcon, PyPI).
         assert error <= result.error_bound + rounding_slack(case)
 
@@ -233,7 +183,7 @@ class TestAverage:
     def test_gain_is_the_stationary_mean_reward_of_the_policy(
         self, case: Case, average: PolicyResult
     ) -> None:
-        reward, transition = case.reference.policy_chain(average.policy_flows())
+        reward, transition = case.reference.policy_chain(average.policy_flows()[0])
         # Reference: quantecon.MarkovChain(P).stationary_distributions (QuantEcon, PyPI).
         gain, _ = stationary_gain(reward, transition)
         assert average.gain is not None
@@ -256,8 +206,8 @@ class TestAverage:
     def test_bias_solves_the_evaluation_equations(self, case: Case, average: PolicyResult) -> None:
         # h + g = r_sigma + P_sigma h with h[0] = 0 (Puterman 1994, Markov Decision Processes,
         # ch. 8; from memory), with r_sigma and P_sigma from the independent reference.
-        reward, transition = case.reference.policy_chain(average.policy_flows())
-        h = average.values
+        reward, transition = case.reference.policy_chain(average.policy_flows()[0])
+        h = average.values[0]
         assert h[0] == 0.0
         assert average.gain is not None
         assert_allclose(h + average.gain, reward + transition @ h, rtol=0, atol=BIAS_ATOL)
@@ -269,8 +219,8 @@ class TestAverage:
         # (Puterman 1994, Markov Decision Processes, ch. 8; from memory), the maximum taken over
         # every feasible flow of the independent reference, not the solver's pruned table.
         assert average.gain is not None
-        best = case.reference.best_by_state(case.reference.pair_values(average.values, 1.0))
-        assert_allclose(best, average.values + average.gain, rtol=0, atol=BIAS_ATOL)
+        best = case.reference.best_by_state(case.reference.pair_values(average.values[0], 1.0))
+        assert_allclose(best, average.values[0] + average.gain, rtol=0, atol=BIAS_ATOL)
 
 
 class TestSolverOptions:
@@ -283,7 +233,7 @@ class TestSolverOptions:
         result = solve_modified_policy_iteration(build_transfer_model(kiosks.spec), sweeps=sweeps)
         assert result.converged
         assert result.error_bound < 1e-6
-        error = np.abs(result.values - kiosks.reference_values)
+        error = np.abs(result.values[0] - kiosks.reference_values)
         # Reference: quantecon.markov.DiscreteDP policy iteration (QuantEcon, PyPI).
         assert np.max(error) <= result.error_bound + rounding_slack(kiosks)
 
@@ -296,17 +246,17 @@ class TestSolverOptions:
         assert result.converged
         assert result.method == f"howard/{evaluation}"
         assert_values_match(result.values, kiosks)
-        assert_policy_is_optimal(result, kiosks)
+        assert_policy_is_optimal(result.policy_flows(), kiosks)
 
 
 _distributions = st.one_of(
-    st.builds(_poisson, st.sampled_from([0.0, 0.4, 1.5, 3.2])),
+    st.builds(poisson, st.sampled_from([0.0, 0.4, 1.5, 3.2])),
     st.builds(
-        _negative_binomial,
+        negative_binomial,
         st.sampled_from([0.6, 1.8]),
         st.sampled_from([2.0, 9.0]),
     ),
-    st.sampled_from([_pmf(1.0), _pmf(0.3, 0.7), _pmf(0.1, 0.2, 0.3, 0.25, 0.15)]),
+    st.sampled_from([pmf(1.0), pmf(0.3, 0.7), pmf(0.1, 0.2, 0.3, 0.25, 0.15)]),
 )
 
 
@@ -354,4 +304,4 @@ def test_random_small_networks_match_quantecon(spec: NetworkSpec) -> None:
     result = solve_network(spec)
     assert result.converged
     assert_values_match(result.values, case)
-    assert_policy_is_optimal(result, case)
+    assert_policy_is_optimal(result.policy_flows(), case)

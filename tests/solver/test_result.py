@@ -18,8 +18,8 @@ def test_recommendation_follows_the_policy(result: PolicyResult) -> None:
     for index in range(result.n_states):
         stock = [int(u) for u in np.unravel_index(index, result.shape)]
         recommendation = result.recommend(stock)
-        assert recommendation.flows == tuple(result.policy_flows()[index])
-        assert recommendation.expected_value == pytest.approx(result.values[index], rel=1e-9)
+        assert recommendation.flows == tuple(result.policy_flows()[0, index])
+        assert recommendation.expected_value == pytest.approx(result.values[0, index], rel=1e-9)
         moved = recommendation.flows[0] - recommendation.flows[1]
         assert recommendation.post_move_stock == (stock[0] - moved, stock[1] + moved)
 

@@ -165,8 +165,8 @@ class Solved:
 
     def policies(self) -> dict[str, NDArray[np.int64]]:
         return {
-            "optimal": self.result.action,
-            "balance": balance_cover_policy(self.model, mean_demands(self.spec)),
+            "optimal": self.result.action[0],
+            "balance": balance_cover_policy(self.model, mean_demands(self.spec))[0],
             "nothing": do_nothing_policy(self.model),
         }
 
@@ -190,7 +190,7 @@ def kiosks_reference(kiosks: Solved) -> ReferenceMDP:
 @pytest.fixture(scope="module")
 def heuristic_values(kiosks: Solved, kiosks_reference: ReferenceMDP) -> NDArray[np.float64]:
     """Discounted values of balance_cover_policy on the kiosks, shape (S,)."""
-    policy = balance_cover_policy(kiosks.model, mean_demands(kiosks.spec))
+    policy = balance_cover_policy(kiosks.model, mean_demands(kiosks.spec))[0]
     reward, transition = kiosks_reference.policy_chain(kiosks.model.flows[policy])
     # Reference: (I - beta P_sigma) v = r_sigma by numpy.linalg.solve on the brute-force MDP
     # (Puterman 1994, section 6.1; from memory).
@@ -287,11 +287,11 @@ class TestDiscountedValues:
     def test_optimal_values_lie_in_the_monte_carlo_interval(
         self, kiosks: Solved, kiosks_reference: ReferenceMDP, start: tuple[int, int]
     ) -> None:
-        interval = self.estimate(kiosks, kiosks.result.action, start)
+        interval = self.estimate(kiosks, kiosks.result.action[0], start)
         # 0.9^250 * max|r| / 0.1 is about 1e-9: negligible next to the interval's width.
         assert self.truncation(kiosks, kiosks_reference) < 1e-3 * interval.half_width
         # Checked: the solver's optimal discounted value (Howard's policy iteration).
-        assert kiosks.result.values[kiosks.index(start)] in interval
+        assert kiosks.result.values[0][kiosks.index(start)] in interval
 
     @pytest.mark.parametrize("start", STARTS)
     def test_heuristic_values_match_dense_policy_evaluation(
@@ -301,7 +301,7 @@ class TestDiscountedValues:
         heuristic_values: NDArray[np.float64],
         start: tuple[int, int],
     ) -> None:
-        policy = balance_cover_policy(kiosks.model, mean_demands(kiosks.spec))
+        policy = balance_cover_policy(kiosks.model, mean_demands(kiosks.spec))[0]
         interval = self.estimate(kiosks, policy, start)
         assert self.truncation(kiosks, kiosks_reference) < 1e-3 * interval.half_width
         assert heuristic_values[kiosks.index(start)] in interval
@@ -311,7 +311,7 @@ class TestDiscountedValues:
     ) -> None:
         # So the dense-evaluation check above is not the optimal-value check again. No policy
         # is worth more than the optimum in any state (Puterman 1994, section 6.2; from memory).
-        gaps = kiosks.result.values - heuristic_values
+        gaps = kiosks.result.values[0] - heuristic_values
         assert gaps.min() > -1e-8
         assert gaps[[kiosks.index(s) for s in self.STARTS]].max() > 0.5
 
@@ -319,7 +319,7 @@ class TestDiscountedValues:
     def test_one_day_profit_is_the_expected_reward_of_the_move(
         self, kiosks: Solved, kiosks_reference: ReferenceMDP, start: tuple[int, int]
     ) -> None:
-        policy = kiosks.result.action
+        policy = kiosks.result.action[0]
         interval = simulate_discounted_return(
             kiosks.spec,
             kiosks.model,
@@ -342,7 +342,7 @@ def test_long_run_profit_of_the_average_optimal_policy_matches_its_gain() -> Non
     report = simulate_policies(
         shops.spec,
         shops.model,
-        {"optimal": shops.result.action},
+        {"optimal": shops.result.action[0]},
         days=4_000,
         replications=40,
         rng=np.random.default_rng(2_024),
@@ -412,7 +412,7 @@ class TestBaselines:
             discount=0.9,
         )
         model = build_transfer_model(spec)
-        policy = balance_cover_policy(model, mean_demands(spec))
+        policy = balance_cover_policy(model, mean_demands(spec))[0]
         moves = model.flows[policy]
         assert tuple(moves[np.ravel_multi_index((6, 0), model.shape)]) == (2, 0)
         assert tuple(moves[np.ravel_multi_index((1, 4), model.shape)]) == (0, 1)
@@ -423,7 +423,7 @@ class TestBaselines:
     def test_balance_moves_nothing_when_no_move_pays_for_itself(self) -> None:
         spec = far_apart_pair()
         model = build_transfer_model(spec)
-        assert np.all(balance_cover_policy(model, mean_demands(spec)) == 0)
+        assert np.all(balance_cover_policy(model, mean_demands(spec))[0] == 0)
 
 
 class TestCommonRandomNumbers:
@@ -442,7 +442,7 @@ class TestCommonRandomNumbers:
         assert run() == run()
 
     def test_two_copies_of_one_policy_differ_by_exactly_nothing(self, kiosks: Solved) -> None:
-        policy = kiosks.result.action
+        policy = kiosks.result.action[0]
         report = simulate_policies(
             kiosks.spec,
             kiosks.model,
@@ -467,7 +467,7 @@ class TestCommonRandomNumbers:
                 rng=np.random.default_rng(3),
             )
 
-        alone = run({"optimal": kiosks.result.action})
+        alone = run({"optimal": kiosks.result.action[0]})
         together = run(kiosks.policies())
         assert together.outcome("optimal") == alone.outcome("optimal")
 
@@ -484,7 +484,7 @@ class TestPeriodicPolicies:
                 rng=np.random.default_rng(11),
             )
 
-        assert run(kiosks.result.action[None, :]) == run(kiosks.result.action)
+        assert run(kiosks.result.action[0][None, :]) == run(kiosks.result.action[0])
 
     @pytest.mark.parametrize(
         ("start_phase", "row"), [(0, "nothing"), (1, "optimal"), (2, "nothing")]
@@ -492,7 +492,10 @@ class TestPeriodicPolicies:
     def test_day_t_uses_row_start_phase_plus_t(
         self, kiosks: Solved, start_phase: int, row: str
     ) -> None:
-        stationary = {"nothing": do_nothing_policy(kiosks.model), "optimal": kiosks.result.action}
+        stationary = {
+            "nothing": do_nothing_policy(kiosks.model),
+            "optimal": kiosks.result.action[0],
+        }
         periodic = np.stack([stationary["nothing"], stationary["optimal"]])
 
         def one_day(policy: NDArray[np.int64], phase: int) -> Interval:
@@ -509,7 +512,7 @@ class TestPeriodicPolicies:
                 start_phase=phase,
             )
 
-        assert kiosks.result.action[kiosks.index((6, 0))] != 0
+        assert kiosks.result.action[0][kiosks.index((6, 0))] != 0
         assert one_day(periodic, start_phase) == one_day(stationary[row], 0)
 
 
@@ -558,7 +561,7 @@ class TestDoNothingAgainstStationaryChains:
     def far(cls) -> Solved:
         far = solved(far_apart_pair(), "average")
         # A move costs 250 a unit against margins of 10 and 12: the optimal policy never moves.
-        assert np.all(far.result.action == 0)
+        assert np.all(far.result.action[0] == 0)
         return far
 
     def test_fill_rate_and_stockout_days_match_the_stationary_distribution(
@@ -619,7 +622,7 @@ class TestDoNothingAgainstStationaryChains:
 class TestInvalidInput:
     def run(self, kiosks: Solved, **changes: Any) -> None:
         arguments: dict[str, Any] = {
-            "policies": {"p": kiosks.result.action},
+            "policies": {"p": kiosks.result.action[0]},
             "days": 10,
             "replications": 5,
             "rng": np.random.default_rng(0),
@@ -656,9 +659,9 @@ class TestInvalidInput:
             self.run(kiosks, policies={"p": policy})
 
     def test_a_bad_row_of_a_periodic_policy_is_named(self, kiosks: Solved) -> None:
-        bad = kiosks.result.action.copy()
+        bad = kiosks.result.action[0].copy()
         bad[3] = -1
-        policy = np.stack([kiosks.result.action, bad])
+        policy = np.stack([kiosks.result.action[0], bad])
         with pytest.raises(ValueError, match=r"policy 'p' \(row 1\) chooses flow -1"):
             self.run(kiosks, policies={"p": policy})
 
@@ -667,7 +670,7 @@ class TestInvalidInput:
             simulate_policies(
                 far_apart_pair(),
                 kiosks.model,
-                {"p": kiosks.result.action},
+                {"p": kiosks.result.action[0]},
                 days=1,
                 replications=1,
                 rng=np.random.default_rng(0),
@@ -678,7 +681,7 @@ class TestInvalidInput:
             simulate_discounted_return(
                 kiosks.spec,
                 kiosks.model,
-                kiosks.result.action,
+                kiosks.result.action[0],
                 (0, 0),
                 discount=1.5,
                 days=1,
