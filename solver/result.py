@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
+from functools import cached_property
 from typing import Literal
 
 import numpy as np
@@ -138,7 +139,7 @@ class PolicyResult:
             raise ValueError(f"phase must lie in 0..{self.phases - 1}, got {phase}")
         s = np.array(stock, dtype=np.int64)
         index = self.state_index(stock)
-        out, inn = self._endpoints()
+        out, inn = self._endpoints
         capacities = np.array(self.capacities, dtype=np.int64)
         fits = np.all((out <= s) & (s - out + inn <= capacities), axis=1)
         feasible = np.flatnonzero(fits & self.allowed[phase])
@@ -171,7 +172,9 @@ class PolicyResult:
             alternatives=alternatives,
         )
 
+    @cached_property
     def _endpoints(self) -> tuple[NDArray[np.int64], NDArray[np.int64]]:
+        # Computed once per result: recommendations are served from it many times.
         lane_from = np.array([a for a, _ in self.lanes], dtype=np.int64)
         lane_to = np.array([b for _, b in self.lanes], dtype=np.int64)
         return flow_endpoints(self.flows, lane_from, lane_to, len(self.capacities))

@@ -23,6 +23,7 @@ from sqlalchemy import (
     ColumnElement,
     String,
     and_,
+    bindparam,
     case,
     cast,
     delete,
@@ -140,27 +141,32 @@ class VersionHead:
     calibrated_at: datetime | None
 
 
+# Built once: the read path runs it on every recommendation, and SQLAlchemy then reuses the
+# statement's compiled form without building and hashing a new one each time.
+_LIVE_VERSIONS = (
+    select(
+        NetworkVersion.id,
+        NetworkVersion.number,
+        NetworkVersion.spec_hash,
+        NetworkVersion.calibrated_at,
+    )
+    .join(Network, Network.id == NetworkVersion.network_id)
+    .where(
+        Network.id == bindparam("network_id"),
+        Network.tenant_id == bindparam("tenant_id"),
+        Network.archived.is_(False),
+    )
+    .order_by(NetworkVersion.number.desc())
+)
+
+
 def live_versions_newest_first(
     session: Session, tenant_id: int, network_id: int
 ) -> list[VersionHead]:
     """The versions of the tenant's network, newest first, in one plain query (no ORM objects:
     this is the read path's only query when its policies are cached); empty when the network
     is missing, another tenant's or archived."""
-    rows = session.execute(
-        select(
-            NetworkVersion.id,
-            NetworkVersion.number,
-            NetworkVersion.spec_hash,
-            NetworkVersion.calibrated_at,
-        )
-        .join(Network, Network.id == NetworkVersion.network_id)
-        .where(
-            Network.id == network_id,
-            Network.tenant_id == tenant_id,
-            Network.archived.is_(False),
-        )
-        .order_by(NetworkVersion.number.desc())
-    )
+    rows = session.execute(_LIVE_VERSIONS, {"network_id": network_id, "tenant_id": tenant_id})
     return [VersionHead(*row) for row in rows]
 
 

@@ -11,6 +11,7 @@ ALLOWED_ROOTS = {
     "__future__",
     "collections",
     "dataclasses",
+    "functools",
     "math",
     "numpy",
     "pydantic",
