@@ -50,7 +50,7 @@ from service.schemas import (
     WeekdayTestOut,
 )
 from service.settings import Settings
-from solver import NetworkSpec
+from solver import ModelTooLargeError, NetworkSpec
 from solver.build import check_size
 from solver.calibration import CountEstimate, WeekdayEffect
 from solver.spec import WEEKDAYS
@@ -275,7 +275,14 @@ def _auto_apply(
             version=None,
             jobs=[],
         )
-    check_size(proposal.spec, settings.size_limits)
+    try:
+        check_size(proposal.spec, settings.size_limits)
+    except ModelTooLargeError as exc:
+        # The upload is kept; only the automatic version is not made (a weekly proposal has
+        # seven times the states of the network it comes from).
+        return AutoApplyOut(
+            applied=False, reason=f"the proposed version is too large: {exc}", version=None, jobs=[]
+        )
     number, jobs = _apply(session, network, proposal)
     return AutoApplyOut(
         applied=True,

@@ -17,6 +17,7 @@ from tests.service.api_support import (
     assert_problem,
     create_network,
     demo_document,
+    open_client,
     pointers,
     run_worker,
     sqlite_only,
@@ -381,3 +382,19 @@ def test_a_significant_weekday_effect_proposes_weekly_laws_and_only_then(
     assert applied.status_code == 201, applied.text
     versions = client.get(f"/v1/networks/{network['id']}/versions").json()
     assert "weekly" in versions[0]["spec"]["locations"][0]["demand"]
+
+
+@sqlite_only
+def test_an_automatic_version_too_large_to_solve_keeps_the_upload(engine: Engine) -> None:
+    # Room for the demo network (150 stock states) but not for its weekly proposal (x 7).
+    with open_client(engine, max_states=500) as client:
+        network = create_network(client)
+        client.put(
+            f"/v1/networks/{network['id']}/calibration/settings",
+            json={"auto_apply_threshold": 0.1},
+        )
+        stored = upload(client, network["id"], weekly_rows(9, 26, weekend_lift=3.0))
+        assert stored["auto_apply"]["applied"] is False
+        assert "too large" in stored["auto_apply"]["reason"]
+        assert stored["inserted"] == 2 * 7 * 26
+        assert client.get(f"/v1/networks/{network['id']}").json()["version"] == 1
