@@ -28,8 +28,10 @@ from service.schemas import DEMO_NETWORK, DEMO_STOCK
 
 __all__ = ["supervise"]
 
-# The worker may need up to 10 s to finish or hand back a solve; uvicorn a moment to drain.
-STOP_GRACE_SECONDS = 20.0
+# The worker may need up to 10 s to finish or hand back a solve, and a write it started may wait
+# up to SQLite's 30 s busy timeout for another process's; uvicorn needs a moment to drain. A
+# child that exits at once is not held up by this.
+STOP_GRACE_SECONDS = 45.0
 # Start-up (imports, engine, migration check) takes about 2 s on a 2-core machine.
 READY_DEADLINE_SECONDS = 60.0
 SOLVE_DEADLINE_SECONDS = 60.0

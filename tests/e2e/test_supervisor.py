@@ -23,7 +23,7 @@ import pytest
 
 from tests.e2e.live import DEMO, ROOT, START_DEADLINE, environment, free_port, migrate
 
-STOP_DEADLINE = 30.0  # the supervisor's own grace period is 20 s
+STOP_DEADLINE = 60.0  # the supervisor's own grace period is 45 s
 
 
 @dataclass
