@@ -40,6 +40,8 @@ from solver.simulation import (
     simulate_policies,
 )
 from solver.spec import LocationSpec
+from tests.solver.networks import location as location_json
+from tests.solver.networks import negative_binomial, pmf, poisson
 from tests.solver.reference import (
     ReferenceMDP,
     build_reference,
@@ -53,46 +55,30 @@ from tests.solver.reference import (
 LEVEL = 0.999
 
 
-def _location(
-    location_id: str,
-    capacity: int,
-    margin: float,
-    holding: float,
-    penalty: float,
-    demand: dict[str, Any],
-    replenishment: dict[str, Any],
-) -> dict[str, Any]:
-    return {
-        "id": location_id,
-        "capacity": capacity,
-        "unit_margin": margin,
-        "holding_cost": holding,
-        "stockout_penalty": penalty,
-        "demand": demand,
-        "replenishment": replenishment,
-    }
-
-
-def _poisson(mean: float) -> dict[str, Any]:
-    return {"dist": "poisson", "mean": mean}
-
-
-def _negative_binomial(mean: float, variance: float) -> dict[str, Any]:
-    return {"dist": "negative_binomial", "mean": mean, "variance": variance}
-
-
-def _pmf(*p: float) -> dict[str, Any]:
-    return {"dist": "pmf", "p": list(p)}
-
-
 def battery_kiosks() -> NetworkSpec:
     """Two scooter-hire kiosks sharing spare batteries: the pier is busy and under-supplied,
     the station quiet and restocked in small batches."""
     return make_network(
         "spare batteries",
         [
-            _location("pier", 6, 9.0, 0.3, 1.5, _negative_binomial(2.4, 4.0), _poisson(1.5)),
-            _location("station", 5, 11.0, 0.2, 2.0, _poisson(1.2), _pmf(0.2, 0.3, 0.3, 0.2)),
+            location_json(
+                "pier",
+                6,
+                negative_binomial(2.4, 4.0),
+                poisson(1.5),
+                margin=9.0,
+                holding=0.3,
+                penalty=1.5,
+            ),
+            location_json(
+                "station",
+                5,
+                poisson(1.2),
+                pmf(0.2, 0.3, 0.3, 0.2),
+                margin=11.0,
+                holding=0.2,
+                penalty=2.0,
+            ),
         ],
         [(0, 1, 0.8, 3), (1, 0, 1.1, 2)],
         discount=0.9,
@@ -104,9 +90,27 @@ def three_bike_shops() -> NetworkSpec:
     return make_network(
         "child seats",
         [
-            _location("harbour", 5, 14.0, 0.4, 2.5, _poisson(1.9), _poisson(1.2)),
-            _location("uptown", 4, 12.5, 0.25, 1.0, _pmf(0.3, 0.4, 0.2, 0.1), _poisson(1.4)),
-            _location("mills", 4, 13.0, 0.3, 0.0, _negative_binomial(1.3, 2.4), _poisson(1.0)),
+            location_json(
+                "harbour", 5, poisson(1.9), poisson(1.2), margin=14.0, holding=0.4, penalty=2.5
+            ),
+            location_json(
+                "uptown",
+                4,
+                pmf(0.3, 0.4, 0.2, 0.1),
+                poisson(1.4),
+                margin=12.5,
+                holding=0.25,
+                penalty=1.0,
+            ),
+            location_json(
+                "mills",
+                4,
+                negative_binomial(1.3, 2.4),
+                poisson(1.0),
+                margin=13.0,
+                holding=0.3,
+                penalty=0.0,
+            ),
         ],
         [(0, 1, 0.9, 2), (1, 2, 0.7, 2), (2, 0, 1.2, 1), (1, 0, 0.5, 1)],
         discount=0.95,
@@ -119,8 +123,12 @@ def free_lane_pair() -> NetworkSpec:
     return make_network(
         "mowers, own van",
         [
-            _location("east", 7, 16.0, 0.5, 3.0, _poisson(2.6), _poisson(1.6)),
-            _location("west", 6, 15.0, 0.4, 3.0, _poisson(1.1), _poisson(1.9)),
+            location_json(
+                "east", 7, poisson(2.6), poisson(1.6), margin=16.0, holding=0.5, penalty=3.0
+            ),
+            location_json(
+                "west", 6, poisson(1.1), poisson(1.9), margin=15.0, holding=0.4, penalty=3.0
+            ),
         ],
         [(0, 1, 0.0, 2), (1, 0, 0.0, 2)],
         discount=0.95,
@@ -132,8 +140,24 @@ def one_unit_lane_pair() -> NetworkSpec:
     return make_network(
         "tile cutters, courier",
         [
-            _location("docks", 6, 20.0, 0.6, 4.0, _negative_binomial(2.0, 3.6), _poisson(1.2)),
-            _location("ridge", 6, 18.0, 0.5, 4.0, _poisson(1.0), _pmf(0.25, 0.25, 0.3, 0.2)),
+            location_json(
+                "docks",
+                6,
+                negative_binomial(2.0, 3.6),
+                poisson(1.2),
+                margin=20.0,
+                holding=0.6,
+                penalty=4.0,
+            ),
+            location_json(
+                "ridge",
+                6,
+                poisson(1.0),
+                pmf(0.25, 0.25, 0.3, 0.2),
+                margin=18.0,
+                holding=0.5,
+                penalty=4.0,
+            ),
         ],
         [(0, 1, 2.5, 1), (1, 0, 2.5, 1)],
         discount=0.95,
@@ -146,8 +170,18 @@ def far_apart_pair() -> NetworkSpec:
     return make_network(
         "paint sprayers, far apart",
         [
-            _location("northfield", 5, 10.0, 0.3, 1.0, _poisson(1.8), _poisson(1.3)),
-            _location("southbay", 4, 12.0, 0.2, 0.5, _negative_binomial(1.1, 2.0), _poisson(1.4)),
+            location_json(
+                "northfield", 5, poisson(1.8), poisson(1.3), margin=10.0, holding=0.3, penalty=1.0
+            ),
+            location_json(
+                "southbay",
+                4,
+                negative_binomial(1.1, 2.0),
+                poisson(1.4),
+                margin=12.0,
+                holding=0.2,
+                penalty=0.5,
+            ),
         ],
         [(0, 1, 250.0, 2), (1, 0, 250.0, 2)],
         discount=0.95,
@@ -202,11 +236,13 @@ def heuristic_values(kiosks: Solved, kiosks_reference: ReferenceMDP) -> NDArray[
 class TestCountTables:
     @pytest.mark.parametrize(
         "dist",
-        [_poisson(0.7), _poisson(6.5), _negative_binomial(2.4, 4.0), _negative_binomial(1.3, 9.0)],
+        [poisson(0.7), poisson(6.5), negative_binomial(2.4, 4.0), negative_binomial(1.3, 9.0)],
         ids=["poisson-small", "poisson", "nbinom", "nbinom-heavy"],
     )
     def test_inverse_transform_matches_scipy_ppf(self, dist: dict[str, Any]) -> None:
-        location = LocationSpec.model_validate(_location("x", 5, 1.0, 0, 0, dist, dist))
+        location = LocationSpec.model_validate(
+            location_json("x", 5, dist, dist, margin=1.0, holding=0, penalty=0)
+        )
         table = count_table(location.demand)
         law = scipy_law(location.demand)
         u = np.random.default_rng(31).random(20_000)
@@ -216,7 +252,9 @@ class TestCountTables:
 
     def test_explicit_pmf_matches_scipy_rv_discrete(self) -> None:
         p = [0.1, 0.0, 0.25, 0.4, 0.0, 0.25]
-        location = LocationSpec.model_validate(_location("x", 3, 1.0, 0, 0, _pmf(*p), _pmf(*p)))
+        location = LocationSpec.model_validate(
+            location_json("x", 3, pmf(*p), pmf(*p), margin=1.0, holding=0, penalty=0)
+        )
         table = count_table(location.demand)
         u = np.random.default_rng(37).random(20_000)
         draws = table.quantile(u)
@@ -227,13 +265,17 @@ class TestCountTables:
 
     def test_the_smallest_uniform_never_gives_a_count_of_probability_zero(self) -> None:
         # rng.random() can return exactly 0.0; with P(X = 0) = 0 the draw must still be 1.
-        spec = _pmf(0.0, 0.5, 0.5)
-        location = LocationSpec.model_validate(_location("x", 3, 1.0, 0, 0, spec, spec))
+        spec = pmf(0.0, 0.5, 0.5)
+        location = LocationSpec.model_validate(
+            location_json("x", 3, spec, spec, margin=1.0, holding=0, penalty=0)
+        )
         assert count_table(location.demand).quantile(np.array([0.0]))[0] == 1
 
     def test_table_reaches_the_stated_tail_and_no_further(self) -> None:
         location = LocationSpec.model_validate(
-            _location("x", 5, 1.0, 0, 0, _negative_binomial(3.0, 12.0), _poisson(1.0))
+            location_json(
+                "x", 5, negative_binomial(3.0, 12.0), poisson(1.0), margin=1.0, holding=0, penalty=0
+            )
         )
         table = count_table(location.demand)
         law = scipy_law(location.demand)
@@ -405,8 +447,12 @@ class TestBaselines:
         spec = make_network(
             "equal demand",
             [
-                _location("a", 6, 10.0, 0.0, 0.0, _poisson(2.0), _poisson(2.0)),
-                _location("b", 6, 10.0, 0.0, 0.0, _poisson(2.0), _poisson(2.0)),
+                location_json(
+                    "a", 6, poisson(2.0), poisson(2.0), margin=10.0, holding=0.0, penalty=0.0
+                ),
+                location_json(
+                    "b", 6, poisson(2.0), poisson(2.0), margin=10.0, holding=0.0, penalty=0.0
+                ),
             ],
             [(0, 1, 0.0, 2), (1, 0, 0.0, 2)],
             discount=0.9,
