@@ -7,10 +7,11 @@ from __future__ import annotations
 import csv
 import io
 import json
+from dataclasses import dataclass
 from datetime import date, timedelta
 from typing import Annotated, Any
 
-from fastapi import APIRouter, Query, Request, Response, status
+from fastapi import APIRouter, Depends, Query, Request, Response, status
 from pydantic import ValidationError
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
@@ -225,7 +226,7 @@ def _store_history(
 ) -> HistoryStored:
     rows = _parse_csv(raw) if csv_upload else _parse_json(raw)
     network = get_network(session, tenant_id, network_id)
-    _check_rows(rows, _current_spec(session, network), csv_upload)
+    _check_rows(rows, repository.current_spec(session, network.id), csv_upload)
     try:
         with session.begin_nested():
             inserted, replaced = repository.store_sales_history(
@@ -302,12 +303,6 @@ def history_summary(network_id: NetworkId, session: SessionDep, caller: Reader) 
 # -- calibration -------------------------------------------------------------------------------
 
 
-def _current_spec(session: Session, network: Network) -> NetworkSpec:
-    version = repository.latest_version(session, network.id)
-    assert version is not None
-    return NetworkSpec.model_validate_json(version.spec_json)
-
-
 def _estimate(estimate: CountEstimate) -> EstimateOut:
     return EstimateOut(
         family=estimate.family,
@@ -333,22 +328,6 @@ def _weekday(effect: WeekdayEffect | None) -> WeekdayTestOut | None:
         df=effect.df,
         summary=effect.summary,
         means={day: estimate.mean for day, estimate in zip(WEEKDAYS, effect.weekdays, strict=True)},
-    )
-
-
-def _options(
-    session: Session,
-    network_id: int,
-    window_days: int | None,
-    half_life_days: float | None,
-    confidence: float | None,
-) -> CalibrationOptions:
-    stored = options_for(session, network_id)
-    return CalibrationOptions(
-        window_days=window_days if window_days is not None else stored.window_days,
-        half_life_days=half_life_days if half_life_days is not None else stored.half_life_days,
-        confidence=confidence if confidence is not None else stored.confidence,
-        auto_apply_threshold=stored.auto_apply_threshold,
     )
 
 
@@ -395,15 +374,43 @@ def _calibration_out(network: Network, proposal: Proposal) -> CalibrationOut:
     )
 
 
-WindowDays = Annotated[
-    int | None, Query(ge=7, le=36_600, description="Override: use only the most recent days.")
-]
-HalfLifeDays = Annotated[
-    float | None, Query(gt=0, le=36_600, description="Override: recency half-life in days.")
-]
-Confidence = Annotated[
-    float | None, Query(ge=0.5, lt=1, description="Override: confidence of the intervals.")
-]
+@dataclass(frozen=True)
+class Overrides:
+    """Settings given in the query for one view or one apply, in place of the stored ones."""
+
+    window_days: int | None
+    half_life_days: float | None
+    confidence: float | None
+
+    def over(self, stored: CalibrationOptions) -> CalibrationOptions:
+        return CalibrationOptions(
+            window_days=stored.window_days if self.window_days is None else self.window_days,
+            half_life_days=(
+                stored.half_life_days if self.half_life_days is None else self.half_life_days
+            ),
+            confidence=stored.confidence if self.confidence is None else self.confidence,
+            auto_apply_threshold=stored.auto_apply_threshold,
+        )
+
+
+def overrides(
+    window_days: Annotated[
+        int | None,
+        Query(ge=7, le=36_600, description="Override: use only the most recent days."),
+    ] = None,
+    half_life_days: Annotated[
+        float | None,
+        Query(gt=0, le=36_600, description="Override: recency half-life in days."),
+    ] = None,
+    confidence: Annotated[
+        float | None,
+        Query(ge=0.5, lt=1, description="Override: confidence of the intervals."),
+    ] = None,
+) -> Overrides:
+    return Overrides(window_days, half_life_days, confidence)
+
+
+OverridesDep = Annotated[Overrides, Depends(overrides)]
 
 
 @router.get("/calibration", response_model=CalibrationOut)
@@ -412,16 +419,12 @@ def get_calibration(
     session: SessionDep,
     caller: Reader,
     response: Response,
-    window_days: WindowDays = None,
-    half_life_days: HalfLifeDays = None,
-    confidence: Confidence = None,
+    query: OverridesDep,
 ) -> CalibrationOut:
     """Estimates from the stored history beside the current parameters and the naive
     averages, with intervals, days used, warnings, and the version they would produce."""
     network = get_network(session, caller.tenant_id, network_id)
-    proposal = propose(
-        session, network, _options(session, network.id, window_days, half_life_days, confidence)
-    )
+    proposal = propose(session, network, query.over(options_for(session, network.id)))
     response.headers["ETag"] = etag(proposal.based_on.number)
     return _calibration_out(network, proposal)
 
@@ -445,10 +448,8 @@ def apply_calibration(
     caller: Writer,
     settings: SettingsDep,
     response: Response,
+    query: OverridesDep,
     if_match: IfMatch = None,
-    window_days: WindowDays = None,
-    half_life_days: HalfLifeDays = None,
-    confidence: Confidence = None,
 ) -> NetworkOut:
     """Make the estimates the next version (If-Match: the current version) and queue its
     solves for the criteria the current version was solved for."""
@@ -456,9 +457,7 @@ def apply_calibration(
     current = repository.latest_version(session, network.id)
     assert current is not None
     check_if_match(network.id, current.number, if_match)
-    proposal = propose(
-        session, network, _options(session, network.id, window_days, half_life_days, confidence)
-    )
+    proposal = propose(session, network, query.over(options_for(session, network.id)))
     if not proposal.calibrated:
         reasons = "; ".join(f"{p.location}: {p.error}" for p in proposal.locations)
         raise Conflict(f"no location of network {network.id} can be estimated ({reasons})")

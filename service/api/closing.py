@@ -32,12 +32,6 @@ router = APIRouter(
 _DATE_SLACK = timedelta(days=1)
 
 
-def _current_spec(session: Session, network: Network) -> NetworkSpec:
-    version = repository.latest_version(session, network.id)
-    assert version is not None
-    return NetworkSpec.model_validate_json(version.spec_json)
-
-
 def _current_number(session: Session, network: Network) -> int:
     version = repository.latest_version(session, network.id)
     assert version is not None
@@ -94,7 +88,7 @@ def report_closing_stock(
     """Record this location's closing stock for a business date (a repeat replaces it, until
     the night's instructions have been issued)."""
     network = get_network(session, caller.tenant_id, network_id)
-    spec = _current_spec(session, network)
+    spec = repository.current_spec(session, network.id)
     capacity = _check_location(spec, network_id, location)
     _check_date(network, body.business_date, "/business_date")
     if not 0 <= body.units <= capacity:
@@ -146,7 +140,7 @@ def location_instructions(
 ) -> InstructionsOut:
     """What this location sends and receives tonight; 409 until every location has reported."""
     network = get_network(session, caller.tenant_id, network_id)
-    spec = _current_spec(session, network)
+    spec = repository.current_spec(session, network.id)
     _check_location(spec, network_id, location)
     _check_date(network, business_date, "query:/business_date")
     issued = _instruction(session, network_id, business_date)

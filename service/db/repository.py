@@ -61,6 +61,7 @@ __all__ = [
     "claim_job",
     "create_network",
     "criteria_requested",
+    "current_spec",
     "current_versions",
     "delete_policy",
     "enqueue_analysis",
@@ -189,6 +190,13 @@ def latest_version(session: Session, network_id: int) -> NetworkVersion | None:
         .order_by(NetworkVersion.number.desc())
         .limit(1)
     ).one_or_none()
+
+
+def current_spec(session: Session, network_id: int) -> NetworkSpec:
+    """The specification of the network's current version."""
+    version = latest_version(session, network_id)
+    assert version is not None, "a network always has a version"
+    return NetworkSpec.model_validate_json(version.spec_json)
 
 
 def create_network(
