@@ -7,7 +7,7 @@
 
 (on one line), with any `extra=` fields of the record as further members and a formatted
 traceback as `exception`. `request_id` is the id of the HTTP request being handled (the one
-echoed in X-Request-ID), taken from a context variable that `RequestLogContext` sets for the
+echoed in X-Request-ID), taken from a context variable that `problems.RequestId` sets for the
 whole of the request, so lines logged from the thread pool carry it too. Messages are kept as
 they are: an audit line's message is still its JSON document.
 
@@ -31,7 +31,6 @@ __all__ = [
     "REQUEST_ID",
     "JsonFormatter",
     "LogFormat",
-    "RequestLogContext",
     "TextFormatter",
     "configure_logging",
     "configure_server_logging",
@@ -137,21 +136,3 @@ def configure_server_logging(settings: Settings) -> None:
         for old in list(server_logger.handlers):
             server_logger.removeHandler(old)
         server_logger.propagate = True
-
-
-class RequestLogContext:
-    """Pure ASGI middleware, placed just inside `problems.RequestId`: makes the request id that
-    RequestId chose the value of REQUEST_ID while the request is handled."""
-
-    def __init__(self, app: Any) -> None:
-        self.app = app
-
-    async def __call__(self, scope: Any, receive: Any, send: Any) -> None:
-        if scope["type"] != "http":
-            await self.app(scope, receive, send)
-            return
-        token = REQUEST_ID.set(scope.get("state", {}).get("request_id"))
-        try:
-            await self.app(scope, receive, send)
-        finally:
-            REQUEST_ID.reset(token)

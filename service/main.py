@@ -24,7 +24,7 @@ from service.api import (
 from service.api.deps import KeyCache
 from service.db.migrate import require_migrated
 from service.db.session import make_engine, make_session_factory
-from service.logs import RequestLogContext, configure_server_logging
+from service.logs import configure_server_logging
 from service.metrics import MeteredPolicyCache
 from service.middleware import BodySizeLimit, Idempotency
 from service.problems import RequestId, install_problem_handlers
@@ -93,12 +93,11 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         ops,
     ):
         app.include_router(module.router)
-    # Added last = outermost: request ids first (RequestLogContext hands them to the log lines),
-    # then the body limit, then idempotent replays.
+    # Added last = outermost: request ids first (also handed to the log lines), then the body
+    # limit, then idempotent replays.
     app.add_middleware(
         Idempotency, sessions=lambda: app.state.sessions, ttl_seconds=settings.idempotency_seconds
     )
     app.add_middleware(BodySizeLimit, max_bytes=settings.max_body_bytes)
-    app.add_middleware(RequestLogContext)
     app.add_middleware(RequestId)
     return app

@@ -21,6 +21,7 @@ from sqlalchemy.exc import OperationalError
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
 from service.analysis import AnalysisInputError
+from service.logs import REQUEST_ID
 from service.policies import (
     PolicyNotReadyError,
     StockProblemsError,
@@ -302,8 +303,9 @@ def install_problem_handlers(app: FastAPI) -> None:
 
 
 class RequestId:
-    """Pure ASGI middleware: a request id from X-Request-ID (or a new one) in request.state and
-    on the response. (Starlette's BaseHTTPMiddleware would cost a task per request.)"""
+    """Pure ASGI middleware: a request id from X-Request-ID (or a new one) in request.state, on
+    the response, and in service.logs.REQUEST_ID for the log lines written while the request is
+    handled. (Starlette's BaseHTTPMiddleware would cost a task per request.)"""
 
     def __init__(self, app: Any) -> None:
         self.app = app
@@ -326,7 +328,11 @@ class RequestId:
                 message["headers"] = [*headers, header]
             await send(message)
 
-        await self.app(scope, receive, send_with_id)
+        token = REQUEST_ID.set(request_id)
+        try:
+            await self.app(scope, receive, send_with_id)
+        finally:
+            REQUEST_ID.reset(token)
 
 
 _PROBLEM_STATUSES = {
