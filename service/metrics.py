@@ -340,17 +340,8 @@ class DatabaseCollector(Collector):
 
     @staticmethod
     def _policy_age(session: Session) -> GaugeMetricFamily:
-        current = repository.current_versions()
         rows = session.execute(
-            select(Network.id, Policy.criterion, Policy.solved_at)
-            .join(current, current.c.network_id == Network.id)
-            .join(
-                NetworkVersion,
-                and_(
-                    NetworkVersion.network_id == Network.id,
-                    NetworkVersion.number == current.c.number,
-                ),
-            )
+            repository.with_current_version(Network.id, Policy.criterion, Policy.solved_at)
             .join(
                 Policy,
                 and_(

@@ -14,7 +14,7 @@ from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
 from datetime import datetime
 
-from sqlalchemy import and_, func, select
+from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
 from service.db import repository
@@ -163,16 +163,9 @@ def gather(
 
 
 def _networks(session: Session, tenant_id: int) -> list[NetworkLine]:
-    current = repository.current_versions()
     rows = session.execute(
-        select(Network.id, Network.name, NetworkVersion.number, NetworkVersion.spec_hash)
-        .join(current, current.c.network_id == Network.id)
-        .join(
-            NetworkVersion,
-            and_(
-                NetworkVersion.network_id == Network.id,
-                NetworkVersion.number == current.c.number,
-            ),
+        repository.with_current_version(
+            Network.id, Network.name, NetworkVersion.number, NetworkVersion.spec_hash
         )
         .where(Network.tenant_id == tenant_id, Network.archived.is_(False))
         .order_by(Network.id)

@@ -16,11 +16,13 @@ import json
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
 from datetime import date, datetime, timedelta
+from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
 from sqlalchemy import (
     ColumnElement,
+    Select,
     String,
     and_,
     bindparam,
@@ -36,7 +38,6 @@ from sqlalchemy import (
 )
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
-from sqlalchemy.sql import Subquery
 
 from service.codec import EncodedPolicy
 from service.db.base import utcnow
@@ -62,7 +63,6 @@ __all__ = [
     "create_network",
     "criteria_requested",
     "current_spec",
-    "current_versions",
     "delete_policy",
     "enqueue_analysis",
     "enqueue_solves",
@@ -86,6 +86,7 @@ __all__ = [
     "store_policy",
     "store_sales_history",
     "versions_newest_first",
+    "with_current_version",
 ]
 
 LIVE_STATES = (JobState.QUEUED.value, JobState.RUNNING.value)
@@ -171,15 +172,28 @@ def live_versions_newest_first(
     return [VersionHead(*row) for row in rows]
 
 
-def current_versions() -> Subquery:
-    """(network_id, number) of every network's current version, to join against."""
-    return (
+def with_current_version(*columns: Any) -> Select[Any]:
+    """`select(*columns)` over every network joined to its current (highest-numbered) version,
+    to which callers add their own joins and conditions."""
+    current = (
         select(
             NetworkVersion.network_id.label("network_id"),
             func.max(NetworkVersion.number).label("number"),
         )
         .group_by(NetworkVersion.network_id)
         .subquery()
+    )
+    return (
+        select(*columns)
+        .select_from(Network)
+        .join(current, current.c.network_id == Network.id)
+        .join(
+            NetworkVersion,
+            and_(
+                NetworkVersion.network_id == Network.id,
+                NetworkVersion.number == current.c.number,
+            ),
+        )
     )
 
 
