@@ -98,6 +98,25 @@ def test_unexpected_errors_are_retried_then_failed(
     assert not worker.run_one()
 
 
+def assert_lease_renewed_until(
+    engine: Engine, sessions: sessionmaker[Session], release: threading.Event
+) -> None:
+    """Run the queued job with a 0.3 s lease while the work waits for `release`: three lease
+    lengths later nobody else can claim it (the lease was renewed), and it ends done, once."""
+    worker = make_worker(engine, sessions, lease_seconds=0.3)
+    runner = threading.Thread(target=worker.run_one)
+    runner.start()
+    try:
+        threading.Event().wait(0.9)
+        with sessions.begin() as session:
+            assert repository.claim_job(session, "intruder", 0.3, 3) is None
+    finally:
+        release.set()
+        runner.join(timeout=10)
+    [job] = jobs(sessions)
+    assert (job.state, job.attempts) == ("done", 1)
+
+
 def test_lease_is_renewed_while_a_long_solve_runs(
     engine: Engine, sessions: sessionmaker[Session], monkeypatch: pytest.MonkeyPatch
 ) -> None:
@@ -109,19 +128,7 @@ def test_lease_is_renewed_while_a_long_solve_runs(
 
     patch_solve(monkeypatch, slow)
     queue(sessions, ["discounted"])
-    worker = make_worker(engine, sessions, lease_seconds=0.3)
-    runner = threading.Thread(target=worker.run_one)
-    runner.start()
-    try:
-        # Three lease lengths later nobody else can claim the job: the lease was renewed.
-        threading.Event().wait(0.9)
-        with sessions.begin() as session:
-            assert repository.claim_job(session, "intruder", 0.3, 3) is None
-    finally:
-        release.set()
-        runner.join(timeout=10)
-    [job] = jobs(sessions)
-    assert (job.state, job.attempts) == ("done", 1)
+    assert_lease_renewed_until(engine, sessions, release)
 
 
 def test_stop_request_hands_a_running_job_back(
@@ -291,18 +298,7 @@ def test_lease_is_renewed_while_a_long_simulation_runs(
 
     monkeypatch.setattr(analysis, "run_simulation", slow)
     queue_analysis(sessions, JobKind.SIMULATE, SHORT_SIMULATION)
-    worker = make_worker(engine, sessions, lease_seconds=0.3)
-    runner = threading.Thread(target=worker.run_one)
-    runner.start()
-    try:
-        threading.Event().wait(0.9)
-        with sessions.begin() as session:
-            assert repository.claim_job(session, "intruder", 0.3, 3) is None
-    finally:
-        release.set()
-        runner.join(timeout=10)
-    [job] = jobs(sessions)
-    assert (job.state, job.attempts) == ("done", 1)
+    assert_lease_renewed_until(engine, sessions, release)
 
 
 def test_a_report_is_stored_only_under_the_lease(sessions: sessionmaker[Session]) -> None:
