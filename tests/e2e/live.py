@@ -110,8 +110,14 @@ class Live:
 
     def api(self, url: str) -> str:
         """Start `stockrelay serve` on a free loopback port; its base URL once /readyz is 200."""
+        return self.serve(environment(url))[0]
+
+    def serve(self, env: dict[str, Any], workers: int = 1) -> tuple[str, Process]:
+        """`stockrelay serve --workers N` with `env` on a free loopback port: its base URL once
+        /readyz is 200, and the process."""
         port = free_port()
-        server = self.stockrelay("api", ["serve", "--host", "127.0.0.1", "--port", str(port)], url)
+        argv = ["serve", "--host", "127.0.0.1", "--port", str(port), "--workers", str(workers)]
+        server = self.start("api", [sys.executable, "-m", "service.cli", *argv], env)
         base = f"http://127.0.0.1:{port}"
 
         def ready() -> bool:
@@ -121,7 +127,7 @@ class Live:
                 return False
 
         self.wait_for(ready, deadline=START_DEADLINE, what=f"the API ({server.log.name})")
-        return base
+        return base, server
 
     def worker(self, url: str) -> Process:
         return self.stockrelay("worker", ["worker"], url, poll_interval=0.1)

@@ -6,7 +6,6 @@ request id the client sent. Metrics are parsed with prometheus-client's own text
 from __future__ import annotations
 
 import json
-import sys
 from pathlib import Path
 from typing import Any
 
@@ -24,7 +23,6 @@ from tests.e2e.live import (
     api_key,
     demo_document,
     environment,
-    free_port,
     migrate,
 )
 
@@ -73,22 +71,12 @@ def test_two_api_processes_report_together_and_log_json(tmp_path: Path, live: Li
         **environment(url, log_format="json", log_level="INFO"),
         "PROMETHEUS_MULTIPROC_DIR": str(shared),
     }
-    port = free_port()
-    argv = ["serve", "--host", "127.0.0.1", "--port", str(port), "--workers", "2"]
-    server = live.start("api", [sys.executable, "-m", "service.cli", *argv], env)
-    base = f"http://127.0.0.1:{port}"
-
-    def ready() -> bool:
-        try:
-            return httpx.get(base + "/readyz", timeout=2).status_code == 200
-        except httpx.TransportError:
-            return False
+    base, server = live.serve(env, workers=2)
 
     def both_started() -> bool:
         started = [line for line in server.output().splitlines() if STARTED in line]
         return len(started) >= 2
 
-    live.wait_for(ready, deadline=START_DEADLINE, what="the API")
     live.wait_for(both_started, deadline=START_DEADLINE, what="both API processes")
 
     auth = {"authorization": f"Bearer {key}"}
