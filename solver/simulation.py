@@ -14,8 +14,14 @@ E sum_{t >= 0} beta^t pi_t from s_0 = s is the discounted value v_sigma(s) that 
 solves for (the first night's move and the next day count as t = 0), and the long-run mean of
 pi_t is the gain g_sigma of the average criterion.
 
-A policy sigma is an array of indices into model.flows over flat closing-stock states: shape (S,)
-for a stationary policy, or (P, S) for a periodic one, day t using row (start_phase + t) % P.
+A policy sigma is given in one of two forms:
+  * a table: indices into model.flows over flat closing-stock states, shape (S,) for a stationary
+    policy or (P, S) for a periodic one, day t using row (start_phase + t) % P
+    (simulate_policies; checked whole before the run);
+  * a plan: a function from a batch of closing stocks, shape (B, N), and the phase of the count
+    to the flows of tonight, shape (B, L) (simulate_plans). Plans need no model, so they serve
+    networks far too large to tabulate (solver.heuristics, the priced method); their flows are
+    checked every night against the lane and network limits, the stock on hand and capacity.
 
 Common random numbers: one uniform u per (day, replication, kind, location), kind 0 demand and
 1 replenishment, mapped by the inverse transform X = min{k : F(k) > u} of the location's law F.
@@ -33,7 +39,7 @@ the delta-method standard error sqrt(sum_j (Y_j - r X_j)^2 / (n (n - 1))) / mean
 from __future__ import annotations
 
 import math
-from collections.abc import Iterator, Mapping, Sequence
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -50,6 +56,7 @@ __all__ = [
     "CountTable",
     "DailyLaws",
     "Interval",
+    "Plan",
     "PolicyOutcome",
     "SimulationReport",
     "balance_cover_policy",
@@ -59,8 +66,13 @@ __all__ = [
     "draw_counts",
     "mean_demands",
     "simulate_discounted_return",
+    "simulate_plans",
     "simulate_policies",
 ]
+
+Plan = Callable[[NDArray[np.int64], int], NDArray[np.int64]]
+"""A policy as a function: closing stocks, shape (B, N), and the phase of their count -> the flows
+sent that night, shape (B, L), units per lane in the network's lane order."""
 
 # Level of every interval unless the caller asks for another.
 CONFIDENCE = 0.95
@@ -364,28 +376,102 @@ def simulate_policies(
     flow infeasible at some state, and for sizes or a start stock out of range.
     """
     _check_model(spec, model)
-    if not policies:
+    plans = {
+        name: _table_plan(model, _policy_table(model, name, policy))
+        for name, policy in policies.items()
+    }
+    return _compare(
+        spec,
+        plans,
+        checked=False,
+        days=days,
+        replications=replications,
+        rng=rng,
+        start_stock=start_stock,
+        warmup_days=warmup_days,
+        reference=reference,
+        start_phase=start_phase,
+        confidence=confidence,
+    )
+
+
+def simulate_plans(
+    spec: NetworkSpec,
+    plans: Mapping[str, Plan],
+    *,
+    days: int,
+    replications: int,
+    rng: np.random.Generator,
+    start_stock: Sequence[int] | None = None,
+    warmup_days: int = 0,
+    reference: str | None = None,
+    start_phase: int = 0,
+    confidence: float = CONFIDENCE,
+) -> SimulationReport:
+    """simulate_policies for policies given as plans (see module docs): no model is built, so
+    any network the specification allows can be simulated. Each night's flows are checked;
+    ValueError names the plan, the stock and the limit broken."""
+    return _compare(
+        spec,
+        plans,
+        checked=True,
+        days=days,
+        replications=replications,
+        rng=rng,
+        start_stock=start_stock,
+        warmup_days=warmup_days,
+        reference=reference,
+        start_phase=start_phase,
+        confidence=confidence,
+    )
+
+
+def _compare(
+    spec: NetworkSpec,
+    plans: Mapping[str, Plan],
+    *,
+    checked: bool,
+    days: int,
+    replications: int,
+    rng: np.random.Generator,
+    start_stock: Sequence[int] | None,
+    warmup_days: int,
+    reference: str | None,
+    start_phase: int,
+    confidence: float,
+) -> SimulationReport:
+    if not plans:
         raise ValueError("no policies to simulate")
-    if reference is not None and reference not in policies:
+    if reference is not None and reference not in plans:
         raise ValueError(
             f"reference {reference!r} is not one of the policies "
-            f"({', '.join(repr(name) for name in policies)})"
+            f"({', '.join(repr(name) for name in plans)})"
         )
     _check_sizes(days, replications, warmup_days, start_phase, confidence)
-    names = list(policies)
-    tables = [_policy_table(model, name, policies[name]) for name in names]
-    start = _start_stock(model, start_stock)
+    names = list(plans)
+    network = _Network.of(spec)
+    start = _start_stock(network, start_stock)
 
-    k, r, n = len(names), replications, model.n_locations
+    k, r, n = len(names), replications, network.n_locations
     profit = np.zeros((k, r))
     units = np.zeros((k, r))
     move_cost = np.zeros((k, r))
     sold = np.zeros((k, r, n))
     short = np.zeros((k, r, n))
     demanded = np.zeros((r, n))
-    for t, day in enumerate(
-        _simulate(spec, model, tables, start, warmup_days + days, r, rng, start_phase)
-    ):
+    runs = [(name, plans[name]) for name in names] if checked else None
+    days_run = _simulate(
+        spec,
+        network,
+        [plans[name] for name in names],
+        start,
+        warmup_days + days,
+        r,
+        rng,
+        start_phase,
+        checked=runs,
+    )
+    for t, day in enumerate(days_run):
         if t < warmup_days:
             continue
         profit += day.profit
@@ -409,12 +495,12 @@ def simulate_policies(
                 fill_rate=_ratio_interval(sold[j].sum(axis=1), demanded.sum(axis=1), confidence),
                 fill_rate_by_location={
                     location: _ratio_interval(sold[j, :, i], demanded[:, i], confidence)
-                    for i, location in enumerate(model.location_ids)
+                    for i, location in enumerate(network.location_ids)
                 },
                 stockout_days=_t_interval(short[j].sum(axis=1) / (days * n), confidence),
                 stockout_days_by_location={
                     location: _t_interval(short[j, :, i] / days, confidence)
-                    for i, location in enumerate(model.location_ids)
+                    for i, location in enumerate(network.location_ids)
                 },
                 units_moved_per_night=_t_interval(units[j] / days, confidence),
                 move_cost_per_day=_t_interval(move_cost[j] / days, confidence),
@@ -422,7 +508,7 @@ def simulate_policies(
             )
         )
     return SimulationReport(
-        location_ids=model.location_ids,
+        location_ids=network.location_ids,
         days=days,
         replications=replications,
         warmup_days=warmup_days,
@@ -458,11 +544,12 @@ def simulate_discounted_return(
     if not 0.0 < discount <= 1.0:
         raise ValueError(f"discount must lie in (0, 1], got {discount}")
     _check_sizes(days, replications, 0, start_phase, confidence)
-    table = _policy_table(model, "policy", policy)
-    start = _start_stock(model, start_stock)
+    plan = _table_plan(model, _policy_table(model, "policy", policy))
+    network = _Network.of(spec)
+    start = _start_stock(network, start_stock)
     total = np.zeros(replications)
     weight = 1.0
-    for day in _simulate(spec, model, [table], start, days, replications, rng, start_phase):
+    for day in _simulate(spec, network, [plan], start, days, replications, rng, start_phase):
         total += weight * day.profit[0]
         weight *= discount
     return _t_interval(total, confidence)
@@ -484,24 +571,85 @@ class _Day:
     demand: NDArray[np.int64]
 
 
+@dataclass(frozen=True, eq=False)
+class _Network:
+    """What a simulated day needs of a specification, as arrays.
+
+    incidence: shape (L, N), +1 at a lane's receiver and -1 at its sender, so that the post-move
+    stock is s + f @ incidence. night_limits: shape (P, L), most units per lane on the night of
+    each phase; network_limit: most units over all lanes in a night (None: no limit).
+    """
+
+    location_ids: tuple[str, ...]
+    capacities: NDArray[np.int64]
+    margin: NDArray[np.float64]
+    holding: NDArray[np.float64]
+    penalty: NDArray[np.float64]
+    senders: NDArray[np.int64]
+    incidence: NDArray[np.int64]
+    unit_costs: NDArray[np.float64]
+    night_limits: NDArray[np.int64]
+    network_limit: int | None
+
+    @classmethod
+    def of(cls, spec: NetworkSpec) -> _Network:
+        index = {location_id: i for i, location_id in enumerate(spec.location_ids)}
+        n, n_lanes = len(index), len(spec.lanes)
+        senders = np.zeros((n_lanes, n), dtype=np.int64)
+        receivers = np.zeros((n_lanes, n), dtype=np.int64)
+        for lane, spec_lane in enumerate(spec.lanes):
+            senders[lane, index[spec_lane.from_]] = 1
+            receivers[lane, index[spec_lane.to]] = 1
+        phases = 7 if spec.is_periodic else 1
+        return cls(
+            location_ids=tuple(spec.location_ids),
+            capacities=np.array([loc.capacity for loc in spec.locations], dtype=np.int64),
+            margin=np.array([loc.unit_margin for loc in spec.locations]),
+            holding=np.array([loc.holding_cost for loc in spec.locations]),
+            penalty=np.array([loc.stockout_penalty for loc in spec.locations]),
+            senders=senders,
+            incidence=receivers - senders,
+            unit_costs=np.array([lane.unit_cost for lane in spec.lanes], dtype=np.float64),
+            night_limits=np.array(
+                [[lane.max_units_on(day) for lane in spec.lanes] for day in range(phases)],
+                dtype=np.int64,
+            ),
+            network_limit=spec.max_units_per_night,
+        )
+
+    @property
+    def n_locations(self) -> int:
+        return len(self.location_ids)
+
+
+def _table_plan(model: TransferModel, table: NDArray[np.int64]) -> Plan:
+    """A checked policy table (shape (P, S)) as a plan."""
+
+    def plan(stock: NDArray[np.int64], phase: int) -> NDArray[np.int64]:
+        flows: NDArray[np.int64] = model.flows[table[phase % table.shape[0], stock @ model.strides]]
+        return flows
+
+    return plan
+
+
 def _simulate(
     spec: NetworkSpec,
-    model: TransferModel,
-    tables: Sequence[NDArray[np.int64]],
+    network: _Network,
+    plans: Sequence[Plan],
     start: NDArray[np.int64],
     total_days: int,
     replications: int,
     rng: np.random.Generator,
     start_phase: int,
+    *,
+    checked: Sequence[tuple[str, Plan]] | None = None,
 ) -> Iterator[_Day]:
-    """Step every policy (tables: shape (P_k, S) each) through `total_days` days, vectorised
-    over policies and replications; yields each day's outcome."""
+    """Step every policy through `total_days` days, vectorised over replications (and over
+    policies after each has chosen its flows); yields each day's outcome. With `checked`
+    (name, plan) pairs, every night's flows are checked (see _check_flows)."""
     laws = daily_laws(spec)
-    margin = np.array([loc.unit_margin for loc in spec.locations])
-    holding = np.array([loc.holding_cost for loc in spec.locations])
-    penalty = np.array([loc.stockout_penalty for loc in spec.locations])
-    n, strides = model.n_locations, model.strides
-    stock = np.broadcast_to(start, (len(tables), replications, n)).copy()
+    n = network.n_locations
+    stock = np.broadcast_to(start, (len(plans), replications, n)).copy()
     block = max(1, _BLOCK_UNIFORMS // (replications * 2 * n))
     done = 0
     while done < total_days:
@@ -510,29 +658,68 @@ def _simulate(
             laws, rng, count, replications, first_phase=start_phase + done
         )
         for b in range(count):
-            flat = stock @ strides
             phase = start_phase + done + b
-            action = np.stack(
-                [table[phase % table.shape[0], flat[k]] for k, table in enumerate(tables)]
-            )
-            post = stock - model.flow_out[action] + model.flow_in[action]
+            flows = np.stack([plan(stock[k], phase) for k, plan in enumerate(plans)])
+            if checked is not None:
+                for k, (name, _) in enumerate(checked):
+                    _check_flows(network, name, stock[k], flows[k], phase)
+            post = stock + flows @ network.incidence
             demand = demand_block[b]
             sold = np.minimum(post, demand)
             lost = demand - sold
-            stock = np.minimum(post - sold + replenishment_block[b], model.capacities)
-            cost = model.flow_costs[action]
+            stock = np.minimum(post - sold + replenishment_block[b], network.capacities)
+            cost = flows @ network.unit_costs
             # Sums along the location axis treat every (policy, replication) row alike, so two
             # copies of one policy earn bit-identical profits.
-            profit = (sold * margin - post * holding - lost * penalty).sum(axis=-1) - cost
+            profit = (sold * network.margin - post * network.holding - lost * network.penalty).sum(
+                axis=-1
+            ) - cost
             yield _Day(
                 profit=profit,
-                units=model.flow_units[action],
+                units=flows.sum(axis=-1),
                 move_cost=cost,
                 sold=sold,
                 short=(lost > 0).astype(np.int64),
                 demand=demand,
             )
         done += count
+
+
+def _check_flows(
+    network: _Network,
+    name: str,
+    stock: NDArray[np.int64],
+    flows: NDArray[np.int64],
+    phase: int,
+) -> None:
+    """ValueError unless every row of `flows` (shape (R, L)) is feasible at the matching row of
+    `stock` (shape (R, N)) on the night of `phase`."""
+    if flows.shape != (stock.shape[0], network.incidence.shape[0]):
+        raise ValueError(
+            f"plan {name!r} returned flows of shape {flows.shape}; expected "
+            f"{(stock.shape[0], network.incidence.shape[0])}, one row per stock and a column "
+            "per lane"
+        )
+    limits = network.night_limits[phase % network.night_limits.shape[0]]
+    post = stock + flows @ network.incidence
+    broken = [
+        ("a negative number of units on a lane", np.any(flows < 0, axis=1)),
+        ("more units on a lane than its limit that night", np.any(flows > limits, axis=1)),
+        ("more than is on hand", np.any(flows @ network.senders > stock, axis=1)),
+        ("a location beyond its capacity", np.any(post > network.capacities, axis=1)),
+    ]
+    if network.network_limit is not None:
+        broken.append(
+            ("more units than the nightly limit", flows.sum(axis=1) > network.network_limit)
+        )
+    for what, rows in broken:
+        if rows.any():
+            row = int(np.argmax(rows))
+            moves = ", ".join(str(int(u)) for u in flows[row])
+            raise ValueError(
+                f"plan {name!r} sends flows ({moves}) at closing stock "
+                f"({_describe_stock(network.location_ids, stock[row])}): {what}"
+            )
 
 
 # -- validation -------------------------------------------------------------------------------
@@ -572,9 +759,9 @@ def _check_sizes(
         raise ValueError(f"confidence must lie in (0, 1), got {confidence}")
 
 
-def _describe_stock(model: TransferModel, stock: NDArray[np.int64]) -> str:
+def _describe_stock(location_ids: Sequence[str], stock: NDArray[np.int64]) -> str:
     return ", ".join(
-        f"{location}={int(u)}" for location, u in zip(model.location_ids, stock, strict=True)
+        f"{location}={int(u)}" for location, u in zip(location_ids, stock, strict=True)
     )
 
 
@@ -620,15 +807,15 @@ def _policy_table(model: TransferModel, name: str, policy: ArrayLike) -> NDArray
             state = int(np.argmax(closed))
             raise ValueError(
                 f"policy {name!r}{where} chooses {_describe_flow(model, int(actions[state]))} "
-                f"at closing stock ({_describe_stock(model, states[state])}) on a night whose "
-                "lane limits do not allow it"
+                f"at closing stock ({_describe_stock(model.location_ids, states[state])}) on a "
+                "night whose lane limits do not allow it"
             )
         outside = (actions < 0) | (actions >= model.n_flows)
         if outside.any():
             state = int(np.argmax(outside))
             raise ValueError(
                 f"policy {name!r}{where} chooses flow {int(actions[state])} at closing stock "
-                f"({_describe_stock(model, states[state])}), outside the flow table "
+                f"({_describe_stock(model.location_ids, states[state])}), outside the flow table "
                 f"0..{model.n_flows - 1}"
             )
         out, inn = model.flow_out[actions], model.flow_in[actions]
@@ -637,22 +824,24 @@ def _policy_table(model: TransferModel, name: str, policy: ArrayLike) -> NDArray
             state = int(np.argmax(infeasible))
             raise ValueError(
                 f"policy {name!r}{where} chooses {_describe_flow(model, int(actions[state]))} "
-                f"at closing stock ({_describe_stock(model, states[state])}), where it is not "
-                "feasible: it sends more than is on hand or fills a location beyond capacity"
+                f"at closing stock ({_describe_stock(model.location_ids, states[state])}), where "
+                "it is not feasible: it sends more than is on hand or fills a location beyond "
+                "capacity"
             )
     return table
 
 
-def _start_stock(model: TransferModel, start_stock: Sequence[int] | None) -> NDArray[np.int64]:
+def _start_stock(network: _Network, start_stock: Sequence[int] | None) -> NDArray[np.int64]:
     if start_stock is None:
-        return model.capacities // 2
+        return network.capacities // 2
     stock = np.asarray(start_stock)
-    if stock.shape != (model.n_locations,) or not np.issubdtype(stock.dtype, np.integer):
+    ids = network.location_ids
+    if stock.shape != (len(ids),) or not np.issubdtype(stock.dtype, np.integer):
         raise ValueError(
-            f"start stock must be {model.n_locations} whole numbers of units, one per location "
-            f"({', '.join(model.location_ids)}), got {list(start_stock)}"
+            f"start stock must be {len(ids)} whole numbers of units, one per location "
+            f"({', '.join(ids)}), got {list(start_stock)}"
         )
-    for location, units, capacity in zip(model.location_ids, stock, model.capacities, strict=True):
+    for location, units, capacity in zip(ids, stock, network.capacities, strict=True):
         if not 0 <= units <= capacity:
             raise ValueError(f"start stock at {location!r} is {int(units)}, outside 0..{capacity}")
     return stock.astype(np.int64)
