@@ -6,7 +6,7 @@ import logging
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
 
-from fastapi import FastAPI
+from fastapi import FastAPI, Request, Response
 from sqlalchemy.exc import OperationalError
 
 from service.api import (
@@ -26,7 +26,7 @@ from service.db.migrate import require_migrated
 from service.db.session import make_engine, make_session_factory
 from service.logs import configure_server_logging
 from service.metrics import MeteredPolicyCache
-from service.middleware import BodySizeLimit, Idempotency
+from service.middleware import BodySizeLimit, Idempotency, RepeatAllowed
 from service.problems import RequestId, install_problem_handlers
 from service.ratelimit import RateLimiter
 from service.settings import Settings
@@ -80,6 +80,12 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     )
     app.state.settings = settings
     install_problem_handlers(app)
+
+    @app.exception_handler(RepeatAllowed)
+    async def repeat_allowed(request: Request, exc: RepeatAllowed) -> Response:
+        # Never sent: the Idempotency middleware answers with the kept response instead.
+        return Response(status_code=204)
+
     for module in (
         networks,
         recommendations,

@@ -16,6 +16,7 @@ from starlette.concurrency import run_in_threadpool
 from service import auth
 from service.auth import Identity, Scope
 from service.db.tables import Network
+from service.middleware import repeat_allowed
 from service.policies import PolicyCache
 from service.problems import Forbidden, NotFound, RateLimited, Unauthorized
 from service.ratelimit import RateLimiter
@@ -125,12 +126,18 @@ async def get_identity(request: Request) -> Identity:
 
 
 def require(scope: Scope) -> Callable[..., Coroutine[Any, Any, Identity]]:
-    async def check(identity: Annotated[Identity, Depends(get_identity)]) -> Identity:
+    """The caller, with at least `scope`. Every /v1 route depends on this: a repeated
+    Idempotency-Key gets its kept answer only after these checks pass (service.middleware)."""
+
+    async def check(
+        request: Request, identity: Annotated[Identity, Depends(get_identity)]
+    ) -> Identity:
         if not auth.scope_allows(identity.scope, scope):
             raise Forbidden(
                 f"this needs a key with {scope} scope; key {identity.key_prefix} "
                 f"has {identity.scope}"
             )
+        repeat_allowed(request.scope)
         return identity
 
     return check
