@@ -8,8 +8,9 @@ Idempotency-Key (on POST and PUT under /v1): the first request with a key claims
 until it expires. Records belong to the API key that sent the request: no other key, even of
 the same tenant, ever sees them. A repeat runs the route's own checks first (authentication,
 scope, rate limit: `service.api.deps.require`, which raises `RepeatAllowed` once they pass);
-only then does it get the kept response, marked `Idempotent-Replayed: true`; the same key with a
-different body is 422; a repeat while the first is still running is 409. Only responses of
+only then does it get the kept response, marked `Stockrelay-Replay-Of: <the first request's
+id>`; the same key with a different body is 422; a repeat while the first is still running is
+409. Only responses of
 requests that ran are kept: 2xx and the route's own 4xx, never a refusal before the route
 (401, 403, 429), a 503 or a server error; those release the key, so the client's retry runs.
 """
@@ -44,6 +45,8 @@ Send = Callable[[Message], Awaitable[None]]
 ASGIApp = Callable[[Scope, Receive, Send], Awaitable[None]]
 
 IDEMPOTENCY_HEADER = b"idempotency-key"
+# On a replayed answer: the id (X-Request-ID) of the request that produced it.
+REPLAY_HEADER = b"stockrelay-replay-of"
 _MAX_KEY_LENGTH = 200
 # Answers given before the route ran, or that a retry may change: never kept, never replayed.
 _NOT_KEPT = frozenset({0, 401, 403, 429, 503})
@@ -313,7 +316,7 @@ class Idempotency:
         headers = [
             (k.encode("latin-1"), v.encode("latin-1")) for k, v in json.loads(record.headers)
         ]
-        headers.append((b"idempotent-replayed", b"true"))
+        headers.append((REPLAY_HEADER, record.request_id.encode("latin-1")))
         await send({"type": "http.response.start", "status": record.status, "headers": headers})
         await send({"type": "http.response.body", "body": record.body})
 
