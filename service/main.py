@@ -19,6 +19,7 @@ from service.api import (
     ops,
     pictures,
     policies,
+    problem_types,
     recommendations,
 )
 from service.api.deps import KeyCache
@@ -97,6 +98,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         jobs,
         health,
         ops,
+        problem_types,
     ):
         app.include_router(module.router)
     # Added last = outermost: request ids first (also handed to the log lines), then the body

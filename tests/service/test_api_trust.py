@@ -353,3 +353,22 @@ def test_rate_limits_apply_before_replays_and_a_429_is_not_kept(engine: Engine) 
         assert REPLAY_HEADER not in retried.headers
         clock.now += 1.0
         assert len(client.get("/v1/networks").json()) == 2
+
+
+@sqlite_only
+def test_problem_types_are_served_by_the_service_without_a_key(engine: Engine) -> None:
+    with open_client(engine) as client:
+        client.headers.pop("Authorization")
+        problem = assert_problem(client.get("/v1/networks"), 401, "unauthorized")
+        # RFC 9457, section 3.1.1: `type` is a URI reference, resolved against the request's.
+        described = client.get(problem["type"])
+        assert described.status_code == 200
+        assert described.json()["type"] == problem["type"]
+        assert described.json()["title"] == problem["title"]
+        assert "Authorization" in described.json()["description"]
+        listed = client.get("/problems").json()
+        assert len(listed) > 20
+        for entry in listed:
+            assert entry["type"].startswith("/problems/")
+            assert client.get(entry["type"]).json() == entry
+        assert_problem(client.get("/problems/no-such-thing"), 404, "not-found")
