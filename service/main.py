@@ -5,6 +5,7 @@ from __future__ import annotations
 import logging
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
+from typing import Any
 
 from fastapi import FastAPI, Request, Response
 from sqlalchemy.exc import OperationalError
@@ -23,6 +24,7 @@ from service.api import (
     recommendations,
 )
 from service.api.deps import KeyCache
+from service.api.docs import describe_fields, document_problems
 from service.db.migrate import require_migrated
 from service.db.session import make_engine, make_session_factory
 from service.logs import configure_server_logging
@@ -42,8 +44,11 @@ locations sharing a scarce item. Each network version is solved exactly (a Marko
 process, Howard's policy iteration) by background workers; recommendations are read from the
 cached optimal policy. Errors are RFC 9457 problem details (application/problem+json).
 
-Every /v1 request needs `Authorization: Bearer <API key>` (`stockrelay keys create`); read
-scope for GET, write scope for POST, PUT and DELETE. POST and PUT accept an `Idempotency-Key`.
+Every /v1 request needs `Authorization: Bearer <API key>` (`stockrelay keys create`). Read
+scope answers GET and recommendations, write scope also creates and changes networks and
+closing counts. Operations that need more than read scope list 403. POST and PUT accept an
+`Idempotency-Key`. Each problem's `type` is a path of this service (`/problems/<slug>`) that
+describes it.
 """
 
 
@@ -100,7 +105,17 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         ops,
         problem_types,
     ):
+        document_problems(module.router)
         app.include_router(module.router)
+    generate_openapi = app.openapi
+
+    def openapi() -> dict[str, Any]:
+        # FastAPI's documented way to extend the document: generated once, then amended.
+        if app.openapi_schema is None:
+            describe_fields(generate_openapi())
+        return app.openapi_schema  # type: ignore[return-value]
+
+    app.openapi = openapi  # type: ignore[method-assign]
     # Added last = outermost: request ids first (also handed to the log lines), then the body
     # limit, then idempotent replays.
     app.add_middleware(

@@ -33,6 +33,7 @@ from service.policies import (
 from solver import InvalidStockError, ModelTooLargeError, NotUnichainError
 
 __all__ = [
+    "POLICY_NOT_READY",
     "PROBLEM_RESPONSES",
     "PROBLEM_TYPES",
     "TYPE_BASE",
@@ -443,25 +444,35 @@ class RequestId:
 
 
 _PROBLEM_STATUSES = {
-    400: "The request body is not readable JSON",
+    400: "The request body cannot be read",
     401: "No valid API key",
     403: "The key lacks the scope",
     404: "No such network, location or job (for this key's tenant)",
-    409: "Conflicts with the current state",
+    409: "Conflicts with the current state, or a request with this Idempotency-Key is running",
     412: "If-Match names an older version",
     413: "Request body too large",
     415: "Unsupported media type",
     422: "Invalid input; `errors` points at each offending field",
     428: "If-Match required",
     429: "Too many requests for this key; see Retry-After",
-    503: "Policy not ready, or database unavailable; see Retry-After",
+    503: "Database unavailable; see Retry-After",
 }
 
-# Documented on every /v1 route: the problems it may answer with, as application/problem+json.
-PROBLEM_RESPONSES: dict[int | str, dict[str, Any]] = {
-    status: {
+
+def _problem_response(description: str) -> dict[str, Any]:
+    return {
         "description": description,
         "content": {PROBLEM_JSON: {"schema": {"$ref": "#/components/schemas/Problem"}}},
     }
-    for status, description in _PROBLEM_STATUSES.items()
+
+
+# The problems an operation may answer with, as application/problem+json; service.api.docs
+# picks those that can happen to each /v1 operation.
+PROBLEM_RESPONSES: dict[int | str, dict[str, Any]] = {
+    status: _problem_response(description) for status, description in _PROBLEM_STATUSES.items()
+}
+
+# For a decorator's `responses`: a route that reads a solved policy.
+POLICY_NOT_READY: dict[int | str, dict[str, Any]] = {
+    503: _problem_response("Policy not ready, or database unavailable; see Retry-After")
 }

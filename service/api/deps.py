@@ -6,8 +6,8 @@ from __future__ import annotations
 import hashlib
 import threading
 import time
-from collections.abc import Callable, Coroutine, Iterator
-from typing import Annotated, Any
+from collections.abc import Iterator
+from typing import Annotated
 
 from fastapi import Depends, Path, Request
 from sqlalchemy.orm import Session, sessionmaker
@@ -28,6 +28,7 @@ __all__ = [
     "JobId",
     "NetworkId",
     "Reader",
+    "Require",
     "SessionDep",
     "SettingsDep",
     "Writer",
@@ -125,22 +126,28 @@ async def get_identity(request: Request) -> Identity:
     return identity
 
 
-def require(scope: Scope) -> Callable[..., Coroutine[Any, Any, Identity]]:
-    """The caller, with at least `scope`. Every /v1 route depends on this: a repeated
-    Idempotency-Key gets its kept answer only after these checks pass (service.middleware)."""
+class Require:
+    """Dependency: the caller, with at least `scope`. Every /v1 route depends on one: a repeated
+    Idempotency-Key gets its kept answer only after these checks pass (service.middleware), and
+    the OpenAPI document lists 403 only where a key may lack the scope."""
 
-    async def check(
-        request: Request, identity: Annotated[Identity, Depends(get_identity)]
+    def __init__(self, scope: Scope) -> None:
+        self.scope: Scope = scope
+
+    async def __call__(
+        self, request: Request, identity: Annotated[Identity, Depends(get_identity)]
     ) -> Identity:
-        if not auth.scope_allows(identity.scope, scope):
+        if not auth.scope_allows(identity.scope, self.scope):
             raise Forbidden(
-                f"this needs a key with {scope} scope; key {identity.key_prefix} "
+                f"this needs a key with {self.scope} scope; key {identity.key_prefix} "
                 f"has {identity.scope}"
             )
         repeat_allowed(request.scope)
         return identity
 
-    return check
+
+def require(scope: Scope) -> Require:
+    return Require(scope)
 
 
 Reader = Annotated[Identity, Depends(require("read"))]

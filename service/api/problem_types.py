@@ -6,7 +6,7 @@ from typing import Annotated
 
 from fastapi import APIRouter, Path
 
-from service.problems import PROBLEM_JSON, PROBLEM_TYPES, TYPE_BASE, NotFound
+from service.problems import PROBLEM_RESPONSES, PROBLEM_TYPES, TYPE_BASE, NotFound
 from service.schemas import ProblemTypeOut
 
 __all__ = ["router"]
@@ -29,14 +29,14 @@ def list_problem_types() -> list[ProblemTypeOut]:
     "/{slug}",
     response_model=ProblemTypeOut,
     responses={
-        404: {
-            "description": "No such problem type",
-            "content": {PROBLEM_JSON: {"schema": {"$ref": "#/components/schemas/Problem"}}},
-        }
+        404: {**PROBLEM_RESPONSES[404], "description": "No such problem type"},
+        422: {**PROBLEM_RESPONSES[422], "description": "Not a problem type's slug"},
     },
 )
 def get_problem_type(
-    slug: Annotated[str, Path(description="The last part of a problem's type.")],
+    slug: Annotated[
+        str, Path(pattern="^[a-z0-9-]{1,100}$", description="The last part of a problem's type.")
+    ],
 ) -> ProblemTypeOut:
     """What one problem type means and what to do about it. No key needed."""
     if slug not in PROBLEM_TYPES:

@@ -15,6 +15,7 @@ from fastapi.routing import APIRoute
 from sqlalchemy import Engine
 
 import service.api
+from service.api.deps import Require
 from service.auth import revoke_key
 from service.db.session import make_session_factory
 from service.ratelimit import RateLimiter
@@ -254,14 +255,11 @@ def test_networks_beyond_the_solver_limits_are_refused_with_their_sizes(engine: 
 
 
 def _checks_keys(dependant: Dependant) -> bool:
-    return any(
-        getattr(sub.call, "__qualname__", "").startswith("require.") or _checks_keys(sub)
-        for sub in dependant.dependencies
-    )
+    return any(isinstance(sub.call, Require) or _checks_keys(sub) for sub in dependant.dependencies)
 
 
 def test_every_write_under_v1_checks_the_key_before_a_replay() -> None:
-    # The Idempotency middleware replays only once require() has passed; a POST or PUT without
+    # The Idempotency middleware replays only once Require has passed; a POST or PUT without
     # it would run again on every repeat.
     routers = [
         importlib.import_module(f"service.api.{module.name}").__dict__.get("router")
