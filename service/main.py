@@ -24,7 +24,7 @@ from service.api import (
     recommendations,
 )
 from service.api.deps import KeyCache
-from service.api.docs import describe_fields, document_problems
+from service.api.docs import describe_fields, document_problems, install_docs
 from service.db.migrate import require_migrated
 from service.db.session import make_engine, make_session_factory
 from service.logs import configure_server_logging
@@ -83,9 +83,12 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         version="0.1.0",
         description=DESCRIPTION,
         lifespan=lifespan,
+        docs_url=None,  # served by install_docs, from local files
+        redoc_url=None,
     )
     app.state.settings = settings
     install_problem_handlers(app)
+    install_docs(app)
 
     @app.exception_handler(RepeatAllowed)
     async def repeat_allowed(request: Request, exc: RepeatAllowed) -> Response:

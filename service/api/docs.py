@@ -1,5 +1,5 @@
-"""The API's documentation: which problems each /v1 operation can answer with, and a
-description of every request and response field.
+"""The API's documentation: which problems each /v1 operation can answer with, a
+description of every request and response field, and /docs served without any CDN.
 
 Every operation lists only the problem statuses that can happen to it, worked out from what
 the route depends on, plus those its decorator declares (a 409 the route raises, a 503 while
@@ -16,16 +16,27 @@ its policy is being solved):
 from __future__ import annotations
 
 from collections.abc import Iterator
+from pathlib import Path
 from typing import Any
 
-from fastapi import APIRouter
+from fastapi import APIRouter, FastAPI
 from fastapi.dependencies.models import Dependant
+from fastapi.openapi.docs import get_swagger_ui_html, get_swagger_ui_oauth2_redirect_html
+from fastapi.responses import HTMLResponse
 from fastapi.routing import APIRoute
+from fastapi.staticfiles import StaticFiles
+from swagger_ui.utils import SWAGGER_UI_PY_ROOT
 
 from service.api.deps import Require
 from service.problems import PROBLEM_RESPONSES
 
-__all__ = ["FIELD_DESCRIPTIONS", "describe_fields", "document_problems", "problem_statuses"]
+__all__ = [
+    "FIELD_DESCRIPTIONS",
+    "describe_fields",
+    "document_problems",
+    "install_docs",
+    "problem_statuses",
+]
 
 
 def _walk(dependant: Dependant) -> Iterator[Dependant]:
@@ -297,3 +308,33 @@ def describe_fields(document: dict[str, Any]) -> None:
                 found = _description(name, field)
                 if found is not None:
                     prop["description"] = found
+
+
+# The Swagger UI distribution files that swagger-ui-py (PyPI) ships.
+SWAGGER_UI_FILES = Path(SWAGGER_UI_PY_ROOT) / "static"
+DOCS_ASSETS = "/docs/assets"
+
+
+def install_docs(app: FastAPI) -> None:
+    """/docs with the Swagger UI files served from DOCS_ASSETS, FastAPI's documented way to
+    self-host them (create the app with docs_url=None and redoc_url=None): the page works
+    offline and loads nothing from elsewhere."""
+    app.mount(DOCS_ASSETS, StaticFiles(directory=SWAGGER_UI_FILES), name="docs-assets")
+    redirect = "/docs/oauth2-redirect"
+
+    @app.get("/docs", include_in_schema=False)
+    async def swagger_ui() -> HTMLResponse:
+        return get_swagger_ui_html(
+            openapi_url=app.openapi_url or "/openapi.json",
+            title=f"{app.title} API",
+            oauth2_redirect_url=redirect,
+            swagger_js_url=f"{DOCS_ASSETS}/swagger-ui-bundle.js",
+            swagger_css_url=f"{DOCS_ASSETS}/swagger-ui.css",
+            swagger_favicon_url=f"{DOCS_ASSETS}/favicon-32x32.png",
+            # No badge that would send the document to an outside validator.
+            swagger_ui_parameters={"validatorUrl": None},
+        )
+
+    @app.get(redirect, include_in_schema=False)
+    async def swagger_ui_redirect() -> HTMLResponse:
+        return get_swagger_ui_oauth2_redirect_html()

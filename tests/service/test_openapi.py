@@ -4,10 +4,16 @@ from __future__ import annotations
 
 import json
 import re
+from html.parser import HTMLParser
 from pathlib import Path
 from typing import Any
+from urllib.parse import urlsplit
 
+from fastapi.testclient import TestClient
+
+from service.main import create_app
 from service.operations import openapi_document
+from service.settings import Settings
 
 COMMITTED = Path(__file__).resolve().parents[2] / "openapi" / "openapi.json"
 
@@ -80,3 +86,36 @@ def test_every_field_of_every_schema_is_described() -> None:
         if not prop.get("description")
     ]
     assert undescribed == [], "describe them in the model or service.api.docs.FIELD_DESCRIPTIONS"
+
+
+def test_docs_load_only_files_the_app_serves() -> None:
+    # Neither the page nor its files need the database: the lifespan is not entered.
+    client = TestClient(create_app(Settings()))
+    page = client.get("/docs")
+    assert page.status_code == 200
+    parser = _References()
+    parser.feed(page.text)
+    assert len(parser.urls) >= 2, "the page names no script or stylesheet"
+    # Every script, stylesheet and icon is a path of this app (no scheme, no host).
+    for url in parser.urls:
+        assert urlsplit(url).scheme == "" and urlsplit(url).netloc == "", url
+        assert url.startswith("/"), url
+        assert client.get(url).status_code == 200, url
+    # The page's own script reads the document from this app, and names no other host.
+    assert re.findall(r"url: '([^']*)'", page.text) == ["/openapi.json"]
+    assert "://" not in page.text
+    assert client.get("/openapi.json").status_code == 200
+
+
+class _References(HTMLParser):
+    """The URLs a page loads: script src, link href, img src."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.urls: list[str] = []
+
+    def handle_starttag(self, tag: str, attrs: list[tuple[str, str | None]]) -> None:
+        wanted = {"script": "src", "link": "href", "img": "src"}.get(tag)
+        for name, value in attrs:
+            if name == wanted and value:
+                self.urls.append(value)
