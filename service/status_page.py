@@ -550,10 +550,12 @@ def _closing_table(view: StatusView) -> str:
 
 
 def sparkline(values: Sequence[float], width: int = 160, height: int = 28) -> str:
-    """An inline SVG polyline of `values` (oldest first), scaled from 0 to their maximum; the
-    newest value is marked with a dot."""
+    """An inline SVG polyline of `values` (oldest first, at least one), scaled from 0 to their
+    maximum; the newest value is marked with a dot."""
+    if len(values) == 1:
+        values = [values[0], values[0]]  # one solve: a level line, not a lone dot
     top = max(values) or 1.0
-    step = width / max(1, len(values) - 1)
+    step = width / (len(values) - 1)
     points = [
         (round(i * step, 1), round(height - 2 - (height - 4) * value / top, 1))
         for i, value in enumerate(values)
