@@ -18,7 +18,7 @@ random closing stocks:
 
 Client, server and database share this machine's two cores; the table gives the CPU time of the
 server processes and of this (client) process per request (per batch in the batch rows), so
-that a bound can be told from a busy machine. Targets (the API issue): p99 under 10 ms for one
+that a bound can be told from a busy machine. The project's targets: p99 under 10 ms for one
 client; 500 requests/s sustained by 32 clients with no errors.
 """
 

@@ -13,7 +13,7 @@ Networks (scenarios of our own):
 
 Per case it reports sizes, build and solve seconds (measured separately), the tracemalloc peak of
 the solve, the process's max RSS so far, iterations, matrix-vector products, residual, error
-bound and convergence, and checks the targets of the issue where one exists. A table goes to
+bound and convergence, and checks the project's speed targets where one is set. A table goes to
 stdout and everything to JSON (default benchmarks/results/solve.json).
 
 BLAS runs single-threaded: the thread-count variables are set below, before numpy is imported.
@@ -80,7 +80,7 @@ UNUSED_DISCOUNT = 0.99
 
 @dataclass(frozen=True)
 class Case:
-    """One benchmark case: a network, a criterion and, where the issue sets one, a target."""
+    """One benchmark case: a network, a criterion and, where the project sets one, a target."""
 
     name: str
     spec: NetworkSpec
@@ -201,7 +201,7 @@ def three_store_network(discount: float) -> NetworkSpec:
 
 
 def benchmark_cases(quick: bool) -> list[Case]:
-    """The cases of the issue; `quick` keeps the two-store networks of capacity 20 and 50."""
+    """The benchmark cases; `quick` keeps the two-store networks of capacity 20 and 50."""
     cases: list[Case] = []
     for busier, label in ((True, "2 stores"), (False, "2 slow stores")):
         for capacity in QUICK_CAPACITIES if quick else TWO_STORE_CAPACITIES:
@@ -475,7 +475,7 @@ def print_notes() -> None:
     )
     print(
         "peak MB: tracemalloc peak during one solve; RSS MB: process max RSS so far "
-        "(getrusage, cumulative); matvecs: result.evaluation_sweeps; target: the issue's "
+        "(getrusage, cumulative); matvecs: result.evaluation_sweeps; target: the project's "
         "one-core target, pass when solve s is below it."
     )
 

@@ -42,6 +42,7 @@ _PREFIX = "sr_"
 class Identity:
     """Who is calling: the key's tenant and scope. Never holds the key."""
 
+    key_id: int
     tenant_id: int
     tenant: str
     key_prefix: str
@@ -82,7 +83,7 @@ def authenticate(session: Session, key: str) -> Identity | None:
     if not hmac.compare_digest(row.key_hash, _digest(key)):
         return None
     tenant = session.get_one(Tenant, row.tenant_id)
-    return Identity(row.tenant_id, tenant.name, row.prefix, row.scope)  # type: ignore[arg-type]
+    return Identity(row.id, row.tenant_id, tenant.name, row.prefix, row.scope)  # type: ignore[arg-type]
 
 
 def list_keys(session: Session) -> Sequence[tuple[ApiKey, str]]:

@@ -5,8 +5,9 @@ from __future__ import annotations
 import logging
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
+from typing import Any
 
-from fastapi import FastAPI
+from fastapi import FastAPI, Request, Response
 from sqlalchemy.exc import OperationalError
 
 from service.api import (
@@ -19,14 +20,16 @@ from service.api import (
     ops,
     pictures,
     policies,
+    problem_types,
     recommendations,
 )
 from service.api.deps import KeyCache
+from service.api.docs import describe_fields, document_problems, install_docs
 from service.db.migrate import require_migrated
 from service.db.session import make_engine, make_session_factory
 from service.logs import configure_server_logging
 from service.metrics import MeteredPolicyCache
-from service.middleware import BodySizeLimit, Idempotency
+from service.middleware import BodySizeLimit, Idempotency, RepeatAllowed
 from service.problems import RequestId, install_problem_handlers
 from service.ratelimit import RateLimiter
 from service.settings import Settings
@@ -41,8 +44,11 @@ locations sharing a scarce item. Each network version is solved exactly (a Marko
 process, Howard's policy iteration) by background workers; recommendations are read from the
 cached optimal policy. Errors are RFC 9457 problem details (application/problem+json).
 
-Every /v1 request needs `Authorization: Bearer <API key>` (`stockrelay keys create`); read
-scope for GET, write scope for POST, PUT and DELETE. POST and PUT accept an `Idempotency-Key`.
+Every /v1 request needs `Authorization: Bearer <API key>` (`stockrelay keys create`). Read
+scope answers GET and recommendations, write scope also creates and changes networks and
+closing counts. Operations that need more than read scope list 403. POST and PUT accept an
+`Idempotency-Key`. Each problem's `type` is a path of this service (`/problems/<slug>`) that
+describes it.
 """
 
 
@@ -77,9 +83,18 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         version="0.1.0",
         description=DESCRIPTION,
         lifespan=lifespan,
+        docs_url=None,  # served by install_docs, from local files
+        redoc_url=None,
     )
     app.state.settings = settings
     install_problem_handlers(app)
+    install_docs(app)
+
+    @app.exception_handler(RepeatAllowed)
+    async def repeat_allowed(request: Request, exc: RepeatAllowed) -> Response:
+        # Never sent: the Idempotency middleware answers with the kept response instead.
+        return Response(status_code=204)
+
     for module in (
         networks,
         recommendations,
@@ -91,8 +106,19 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         jobs,
         health,
         ops,
+        problem_types,
     ):
+        document_problems(module.router)
         app.include_router(module.router)
+    generate_openapi = app.openapi
+
+    def openapi() -> dict[str, Any]:
+        # FastAPI's documented way to extend the document: generated once, then amended.
+        if app.openapi_schema is None:
+            describe_fields(generate_openapi())
+        return app.openapi_schema  # type: ignore[return-value]
+
+    app.openapi = openapi  # type: ignore[method-assign]
     # Added last = outermost: request ids first (also handed to the log lines), then the body
     # limit, then idempotent replays.
     app.add_middleware(

@@ -3,12 +3,16 @@
 Body size: a request whose Content-Length, or whose streamed body, exceeds the limit gets 413
 before any route sees it.
 
-Idempotency-Key (on POST and PUT): the first request with a key claims it (a row in
-`idempotency_records`, keyed by tenant, key, method and path), runs, and its response is kept
-until it expires. A repeat with the same body gets that response again, marked
-`Idempotent-Replayed: true`; the same key with a different body is 422; a repeat while the first
-is still running is 409. A first request that ends in a server error releases the key, so the
-client's retry runs again.
+Idempotency-Key (on POST and PUT under /v1): the first request with a key claims it (a row in
+`idempotency_records`, keyed by API key, key, method and path), runs, and its response is kept
+until it expires. Records belong to the API key that sent the request: no other key, even of
+the same tenant, ever sees them. A repeat runs the route's own checks first (authentication,
+scope, rate limit: `service.api.deps.require`, which raises `RepeatAllowed` once they pass);
+only then does it get the kept response, marked `Stockrelay-Replay-Of: <the first request's
+id>`; the same key with a different body is 422; a repeat while the first is still running is
+409. Only responses of
+requests that ran are kept: 2xx and the route's own 4xx, never a refusal before the route
+(401, 403, 429), a 503 or a server error; those release the key, so the client's retry runs.
 """
 
 from __future__ import annotations
@@ -30,7 +34,7 @@ from service.db.base import utcnow
 from service.db.tables import IdempotencyRecord
 from service.problems import PROBLEM_JSON, problem_body
 
-__all__ = ["BodySizeLimit", "Idempotency"]
+__all__ = ["BodySizeLimit", "Idempotency", "RepeatAllowed", "repeat_allowed"]
 
 log = logging.getLogger(__name__)
 
@@ -41,7 +45,32 @@ Send = Callable[[Message], Awaitable[None]]
 ASGIApp = Callable[[Scope, Receive, Send], Awaitable[None]]
 
 IDEMPOTENCY_HEADER = b"idempotency-key"
+# On a replayed answer: the id (X-Request-ID) of the request that produced it.
+REPLAY_HEADER = b"stockrelay-replay-of"
 _MAX_KEY_LENGTH = 200
+# Answers given before the route ran, or that a retry may change: never kept, never replayed.
+_NOT_KEPT = frozenset({0, 401, 403, 429, 503})
+# scope["state"] key: set while a repeat waits for the route's checks, and by those checks.
+_REPEAT = "idempotent_repeat"
+_CLEARED = "cleared"
+
+
+def _unguarded(scope: Scope) -> bool:
+    """Only /v1 routes check keys (and so call repeat_allowed)."""
+    return not str(scope.get("path", "")).startswith("/v1/")
+
+
+class RepeatAllowed(Exception):
+    """Raised by the route's checks when a repeat passed authentication, scope and rate limit:
+    the route does not run, the middleware answers with the kept response."""
+
+
+def repeat_allowed(scope: Scope) -> None:
+    """Called by the route's checks once they pass: raises RepeatAllowed during a repeat."""
+    state = scope.get("state", {})
+    if state.get(_REPEAT) is not None:
+        state[_REPEAT] = _CLEARED
+        raise RepeatAllowed
 
 
 async def send_problem(
@@ -151,7 +180,7 @@ class Idempotency:
 
     async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
         key = _header(scope, IDEMPOTENCY_HEADER) if scope["type"] == "http" else None
-        if key is None or scope["method"] not in ("POST", "PUT"):
+        if key is None or scope["method"] not in ("POST", "PUT") or _unguarded(scope):
             await self.app(scope, receive, send)
             return
         if not 1 <= len(key) <= _MAX_KEY_LENGTH:
@@ -164,16 +193,19 @@ class Idempotency:
                 f"Idempotency-Key must be 1 to {_MAX_KEY_LENGTH} characters",
             )
             return
-        tenant_id = await run_in_threadpool(self._tenant, scope)
-        if tenant_id is None:  # unauthenticated: the route answers 401
+        key_id = await run_in_threadpool(self._key_id, scope)
+        if key_id is None:  # unauthenticated: the route answers 401
             await self.app(scope, receive, send)
             return
         body = await _read_body(receive, 1 << 62)
         digest = hashlib.sha256(body).hexdigest()
         method, path = scope["method"], scope["path"]
-        claimed = await run_in_threadpool(self._claim, tenant_id, key, method, path, digest)
+        request_id = str(scope.get("state", {}).get("request_id") or "")
+        claimed = await run_in_threadpool(
+            self._claim, key_id, key, method, path, digest, request_id
+        )
         if isinstance(claimed, IdempotencyRecord):
-            await self._answer_repeat(scope, send, claimed, digest)
+            await self._repeat(scope, _replaying(body, receive), send, claimed, digest)
             return
 
         status, headers, chunks = 0, [], []
@@ -191,7 +223,26 @@ class Idempotency:
         finally:
             await run_in_threadpool(self._settle, claimed, status, headers, b"".join(chunks))
 
-    def _tenant(self, scope: Scope) -> int | None:
+    async def _repeat(
+        self, scope: Scope, receive: Receive, send: Send, record: IdempotencyRecord, digest: str
+    ) -> None:
+        """Run the route's checks; when they pass, answer for the kept record, else pass their
+        refusal on (kept nowhere)."""
+        state = scope.setdefault("state", {})
+        state[_REPEAT] = record.id
+        messages: list[Message] = []
+
+        async def hold(message: Message) -> None:
+            messages.append(message)
+
+        await self.app(scope, receive, hold)
+        if state.pop(_REPEAT, None) == _CLEARED:
+            await self._answer_repeat(scope, send, record, digest)
+            return
+        for message in messages:
+            await send(message)
+
+    def _key_id(self, scope: Scope) -> int | None:
         authorization = _header(scope, b"authorization") or ""
         if not authorization.lower().startswith("bearer "):
             return None
@@ -200,17 +251,18 @@ class Idempotency:
                 identity = auth.authenticate(session, authorization[7:].strip())
         except SQLAlchemyError:
             return None  # the route reports the database problem
-        return None if identity is None else identity.tenant_id
+        return None if identity is None else identity.key_id
 
     def _claim(
-        self, tenant_id: int, key: str, method: str, path: str, digest: str
+        self, key_id: int, key: str, method: str, path: str, digest: str, request_id: str
     ) -> int | IdempotencyRecord:
         """The id of a fresh claim, or the record that holds the key already."""
         now = utcnow()
         with self.sessions().begin() as session:
             session.execute(delete(IdempotencyRecord).where(IdempotencyRecord.expires_at < now))
             record = IdempotencyRecord(
-                tenant_id=tenant_id,
+                api_key_id=key_id,
+                request_id=request_id[:100],
                 key=key,
                 method=method,
                 path=path,
@@ -228,7 +280,7 @@ class Idempotency:
             except IntegrityError:
                 existing = session.scalars(
                     select(IdempotencyRecord).where(
-                        IdempotencyRecord.tenant_id == tenant_id,
+                        IdempotencyRecord.api_key_id == key_id,
                         IdempotencyRecord.key == key,
                         IdempotencyRecord.method == method,
                         IdempotencyRecord.path == path,
@@ -264,7 +316,7 @@ class Idempotency:
         headers = [
             (k.encode("latin-1"), v.encode("latin-1")) for k, v in json.loads(record.headers)
         ]
-        headers.append((b"idempotent-replayed", b"true"))
+        headers.append((REPLAY_HEADER, record.request_id.encode("latin-1")))
         await send({"type": "http.response.start", "status": record.status, "headers": headers})
         await send({"type": "http.response.body", "body": record.body})
 
@@ -275,8 +327,8 @@ class Idempotency:
             record = session.get(IdempotencyRecord, record_id)
             if record is None:
                 return
-            if status == 0 or status >= 500:
-                session.delete(record)  # nothing to replay: let the retry run
+            if status in _NOT_KEPT or status >= 500:
+                session.delete(record)  # the route did not run, or may answer otherwise now
                 return
             record.status = status
             record.headers = json.dumps(

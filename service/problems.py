@@ -4,6 +4,9 @@ Code raises the exceptions below (or solver errors); this module alone turns the
 validation errors, into responses. Every problem carries a stable `type`, a human `detail`, the
 request path as `instance` and the request id; validation problems list one JSON pointer per
 offending field in `errors`.
+
+A problem's `type` is a relative URI, `/problems/<slug>`, that this service answers itself
+(GET, no key): the title and a short description of that kind of problem (PROBLEM_TYPES).
 """
 
 from __future__ import annotations
@@ -30,7 +33,10 @@ from service.policies import (
 from solver import InvalidStockError, ModelTooLargeError, NotUnichainError
 
 __all__ = [
+    "POLICY_NOT_READY",
     "PROBLEM_RESPONSES",
+    "PROBLEM_TYPES",
+    "TYPE_BASE",
     "ApiProblem",
     "Conflict",
     "Forbidden",
@@ -49,9 +55,111 @@ __all__ = [
 log = logging.getLogger(__name__)
 
 PROBLEM_JSON = "application/problem+json"
-TYPE_BASE = "https://stockrelay.dev/problems/"
+TYPE_BASE = "/problems/"
 REQUEST_ID_HEADER = "X-Request-ID"
 RETRY_AFTER_SECONDS = 5
+
+
+# slug -> (title, what it means and what to do). Every problem this service answers with has an
+# entry; GET /problems/<slug> serves it.
+PROBLEM_TYPES: dict[str, tuple[str, str]] = {
+    "bad-request": ("Bad request", "The request cannot be handled as sent; `detail` says why."),
+    "malformed-body": (
+        "Malformed body",
+        "The request body is not readable JSON. Send a JSON document with "
+        "Content-Type: application/json.",
+    ),
+    "unauthorized": (
+        "Unauthorized",
+        "No valid API key: send `Authorization: Bearer <key>` with a key from "
+        "`stockrelay keys create` that has not been revoked.",
+    ),
+    "forbidden": (
+        "Forbidden",
+        "The key is valid but its scope is too low for this request (read < write < admin).",
+    ),
+    "rate-limited": (
+        "Too many requests",
+        "This key sent more requests per second than allowed; wait for Retry-After seconds.",
+    ),
+    "not-found": (
+        "Not found",
+        "No such network, location, job or path for this key's tenant (another tenant's "
+        "objects look exactly like missing ones).",
+    ),
+    "method-not-allowed": ("Method not allowed", "The path exists but not with this method."),
+    "conflict": (
+        "Conflict",
+        "The request contradicts the current state (e.g. a name already taken); `detail` says "
+        "which and what to do instead.",
+    ),
+    "version-mismatch": (
+        "Version mismatch",
+        "If-Match names an older version of the network: read the current version and decide "
+        "again.",
+    ),
+    "if-match-required": (
+        "If-Match required",
+        'Changing a network needs If-Match with its current version number, e.g. If-Match: "3".',
+    ),
+    "unsupported-media-type": (
+        "Unsupported media type",
+        "The body's Content-Type is not one this route reads; `detail` lists those it does.",
+    ),
+    "body-too-large": (
+        "Request body too large",
+        "The body exceeds the service's limit (`limit`, in bytes); split the upload.",
+    ),
+    "invalid-input": (
+        "Invalid input",
+        "A field of the request is invalid; `errors` holds one JSON pointer (RFC 6901) and a "
+        "reason per offending field.",
+    ),
+    "invalid-stock": (
+        "Invalid stock",
+        "A closing stock is missing, unknown or outside 0..capacity of its location; `errors` "
+        "points at each one.",
+    ),
+    "network-too-large": (
+        "Network too large",
+        "The network has more stock states or state-move pairs than the solver accepts here "
+        "(`states`, `pairs`); lower capacities or lane limits.",
+    ),
+    "not-unichain": (
+        "Average criterion undefined",
+        "Some stock levels never reach each other, so one long-run average profit does not "
+        "exist; use the discounted criterion or change the network.",
+    ),
+    "invalid-idempotency-key": (
+        "Invalid Idempotency-Key",
+        "An Idempotency-Key must be 1 to 200 characters.",
+    ),
+    "idempotency-key-reused": (
+        "Idempotency-Key reused",
+        "This Idempotency-Key was sent before with another body; use a new key for a new request.",
+    ),
+    "request-in-progress": (
+        "Request in progress",
+        "The first request with this Idempotency-Key is still running; retry after Retry-After.",
+    ),
+    "policy-not-ready": (
+        "Policy not ready",
+        "The network's policy is still being solved (`job_state`); retry after Retry-After.",
+    ),
+    "database-unavailable": (
+        "Database unavailable",
+        "The database cannot be reached; nothing was changed. Retry after Retry-After.",
+    ),
+    "not-ready": (
+        "Not ready",
+        "The service cannot serve yet: its database is unreachable or not migrated.",
+    ),
+    "http-error": ("HTTP error", "An HTTP-level refusal; `status` and `detail` say which."),
+    "internal-error": (
+        "Internal error",
+        "A fault of the service, not of the request; quote the request id when reporting it.",
+    ),
+}
 
 
 class ApiProblem(Exception):
@@ -336,25 +444,35 @@ class RequestId:
 
 
 _PROBLEM_STATUSES = {
-    400: "The request body is not readable JSON",
+    400: "The request body cannot be read",
     401: "No valid API key",
     403: "The key lacks the scope",
     404: "No such network, location or job (for this key's tenant)",
-    409: "Conflicts with the current state",
+    409: "Conflicts with the current state, or a request with this Idempotency-Key is running",
     412: "If-Match names an older version",
     413: "Request body too large",
     415: "Unsupported media type",
     422: "Invalid input; `errors` points at each offending field",
     428: "If-Match required",
     429: "Too many requests for this key; see Retry-After",
-    503: "Policy not ready, or database unavailable; see Retry-After",
+    503: "Database unavailable; see Retry-After",
 }
 
-# Documented on every /v1 route: the problems it may answer with, as application/problem+json.
-PROBLEM_RESPONSES: dict[int | str, dict[str, Any]] = {
-    status: {
+
+def _problem_response(description: str) -> dict[str, Any]:
+    return {
         "description": description,
         "content": {PROBLEM_JSON: {"schema": {"$ref": "#/components/schemas/Problem"}}},
     }
-    for status, description in _PROBLEM_STATUSES.items()
+
+
+# The problems an operation may answer with, as application/problem+json; service.api.docs
+# picks those that can happen to each /v1 operation.
+PROBLEM_RESPONSES: dict[int | str, dict[str, Any]] = {
+    status: _problem_response(description) for status, description in _PROBLEM_STATUSES.items()
+}
+
+# For a decorator's `responses`: a route that reads a solved policy.
+POLICY_NOT_READY: dict[int | str, dict[str, Any]] = {
+    503: _problem_response("Policy not ready, or database unavailable; see Retry-After")
 }

@@ -287,6 +287,14 @@ class Problem(BaseModel):
     instance: str | None = None
 
 
+class ProblemTypeOut(BaseModel):
+    """One kind of problem: what a problem's `type` URI names."""
+
+    type: str = Field(description="The URI problems of this kind carry, e.g. /problems/not-found.")
+    title: str = Field(description="The short summary every problem of this kind carries.")
+    description: str = Field(description="What it means and what to do about it.")
+
+
 class BatchOutcome(BaseModel):
     """Exactly one of `result` and `problem`."""
 

@@ -2,24 +2,37 @@
 
 `gather` reads what the page shows (a handful of read-only queries, whatever the number of
 networks); `render` turns it into HTML with every piece of stored text escaped. The page has no
-script and refers to nothing outside itself: styles are inline and the policy heatmap is the SVG
-of `service.pictures`, embedded in the page.
+script and refers to nothing outside itself: styles are inline, the policy heatmap is the SVG
+of `service.pictures` and the solve-time sparklines are small SVG polylines, embedded in the
+page. Besides solves and jobs it shows which locations have sent tonight's closing counts, and
+the README's caution in one line.
 """
 
 from __future__ import annotations
 
 import html
+import json
 import logging
+import statistics
+from collections import defaultdict
 from collections.abc import Iterable, Sequence
-from dataclasses import dataclass
-from datetime import datetime
+from dataclasses import dataclass, field
+from datetime import date, datetime
 
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
 from service.db import repository
 from service.db.base import utcnow
-from service.db.tables import JobKind, JobState, Network, NetworkVersion, Policy, SolveJob
+from service.db.tables import (
+    ClosingCount,
+    JobKind,
+    JobState,
+    Network,
+    NetworkVersion,
+    Policy,
+    SolveJob,
+)
 from service.pictures import caption, choose_plane, net_inflow_grid, render_moves
 from service.policies import (
     NetworkRef,
@@ -27,11 +40,16 @@ from service.policies import (
     PolicyNotReadyError,
     ServedPolicy,
     load_policy,
+    today_in,
 )
+from solver import NetworkSpec
 
 __all__ = [
+    "CAUTION",
     "CRITERIA",
     "RECENT_JOBS",
+    "SOLVE_HISTORY",
+    "Closing",
     "Heatmap",
     "JobLine",
     "NetworkLine",
@@ -41,6 +59,7 @@ __all__ = [
     "age",
     "gather",
     "render",
+    "sparkline",
 ]
 
 log = logging.getLogger(__name__)
@@ -51,6 +70,13 @@ RECENT_JOBS = 20
 QUEUE_ROWS = 100
 # How often the browser reloads the page (an HTTP refresh, not a script).
 REFRESH_SECONDS = 30
+# Finished solves per network drawn in its solve-time sparkline, oldest to newest.
+SOLVE_HISTORY = 30
+# The README's "Cautions", in one line.
+CAUTION = (
+    "Moves follow the model and its parameters: a person reviews them before acting, above all "
+    "after an automatic calibration, and local rules on labour, transport and safety come first."
+)
 
 
 class UnknownNetworkChoice(LookupError):
@@ -71,11 +97,24 @@ class SolveCell:
 
 
 @dataclass(frozen=True)
+class Closing:
+    """Tonight's closing counts of one network: the business date (today in the network's time
+    zone) and its locations, in network order, split by whether they have reported."""
+
+    business_date: date
+    reported: tuple[str, ...]
+    missing: tuple[str, ...]
+
+
+@dataclass(frozen=True)
 class NetworkLine:
     id: int
     name: str
     version: int
     solves: tuple[SolveCell, ...]
+    closing: Closing | None = None
+    # Seconds of the network's last finished solves (any version, any criterion), oldest first.
+    solve_times: tuple[float, ...] = field(default=())
 
 
 @dataclass(frozen=True)
@@ -165,7 +204,11 @@ def gather(
 def _networks(session: Session, tenant_id: int) -> list[NetworkLine]:
     rows = session.execute(
         repository.with_current_version(
-            Network.id, Network.name, NetworkVersion.number, NetworkVersion.spec_hash
+            Network.id,
+            Network.name,
+            NetworkVersion.number,
+            NetworkVersion.spec_hash,
+            NetworkVersion.spec_json,
         )
         .where(Network.tenant_id == tenant_id, Network.archived.is_(False))
         .order_by(Network.id)
@@ -192,6 +235,8 @@ def _networks(session: Session, tenant_id: int) -> list[NetworkLine]:
         (job.spec_hash, job.criterion): job
         for job in session.scalars(select(SolveJob).where(SolveJob.id.in_(newest_job)))
     }
+    closing = _closing(session, [(row.id, row.spec_json) for row in rows])
+    times = _solve_times(session, tenant_id)
     lines = []
     for row in rows:
         cells = []
@@ -208,8 +253,75 @@ def _networks(session: Session, tenant_id: int) -> list[NetworkLine]:
                 state = JobState.QUEUED.value if job.state == JobState.DONE else job.state
                 error = job.error if job.state == JobState.FAILED else None
                 cells.append(SolveCell(criterion, state, job_id=job.id, error=error))
-        lines.append(NetworkLine(row.id, row.name, row.number, tuple(cells)))
+        lines.append(
+            NetworkLine(
+                row.id,
+                row.name,
+                row.number,
+                tuple(cells),
+                closing.get(row.id),
+                tuple(times.get(row.id, ())),
+            )
+        )
     return lines
+
+
+def _closing(session: Session, networks: Sequence[tuple[int, str]]) -> dict[int, Closing]:
+    """Tonight's counts of each (network id, current specification JSON): one query."""
+    tonight: dict[int, tuple[date, list[str]]] = {}
+    for network_id, spec_json in networks:
+        spec = json.loads(spec_json)
+        zone = spec.get("timezone") or NetworkSpec.model_fields["timezone"].default
+        tonight[network_id] = (today_in(zone), [location["id"] for location in spec["locations"]])
+    reported: dict[int, set[str]] = defaultdict(set)
+    if tonight:
+        dates = {business_date for business_date, _ in tonight.values()}
+        for network_id, location_id, business_date in session.execute(
+            select(
+                ClosingCount.network_id, ClosingCount.location_id, ClosingCount.business_date
+            ).where(ClosingCount.network_id.in_(tonight), ClosingCount.business_date.in_(dates))
+        ).all():
+            if tonight[network_id][0] == business_date:
+                reported[network_id].add(location_id)
+    return {
+        network_id: Closing(
+            business_date,
+            tuple(location for location in locations if location in reported[network_id]),
+            tuple(location for location in locations if location not in reported[network_id]),
+        )
+        for network_id, (business_date, locations) in tonight.items()
+    }
+
+
+def _solve_times(session: Session, tenant_id: int) -> dict[int, list[float]]:
+    """Solve seconds of the last SOLVE_HISTORY finished solves of each network, oldest first."""
+    ranked = (
+        select(
+            Network.id.label("network_id"),
+            SolveJob.solve_seconds,
+            SolveJob.id.label("job_id"),
+            func.row_number()
+            .over(partition_by=Network.id, order_by=SolveJob.id.desc())
+            .label("rank"),
+        )
+        .join(NetworkVersion, NetworkVersion.id == SolveJob.version_id)
+        .join(Network, Network.id == NetworkVersion.network_id)
+        .where(
+            SolveJob.tenant_id == tenant_id,
+            SolveJob.kind == JobKind.SOLVE.value,
+            SolveJob.state == JobState.DONE.value,
+            SolveJob.solve_seconds.is_not(None),
+        )
+        .subquery()
+    )
+    times: dict[int, list[float]] = defaultdict(list)
+    for network_id, seconds in session.execute(
+        select(ranked.c.network_id, ranked.c.solve_seconds)
+        .where(ranked.c.rank <= SOLVE_HISTORY)
+        .order_by(ranked.c.network_id, ranked.c.job_id)
+    ).all():
+        times[network_id].append(float(seconds))
+    return times
 
 
 def _jobs(
@@ -412,6 +524,74 @@ def _recent_table(view: StatusView) -> str:
     )
 
 
+def _closing_table(view: StatusView) -> str:
+    if not view.networks:
+        return '<p class="empty">No networks yet.</p>'
+    rows = []
+    for network in view.networks:
+        closing = network.closing
+        if closing is None:
+            continue
+        total = len(closing.reported) + len(closing.missing)
+        reported = ", ".join(closing.reported) or "none yet"
+        missing = ", ".join(closing.missing) or "none: all reported"
+        state = "done" if not closing.missing else "queued"
+        rows.append(
+            f'<tr data-network="{network.id}"><td>{_e(network.name)}</td>'
+            f"<td>{_e(closing.business_date.isoformat())}</td>"
+            f'<td><span class="state state-{state}">{len(closing.reported)} of {total}</span></td>'
+            f"<td>{_e(reported)}</td><td>{_e(missing)}</td></tr>"
+        )
+    return (
+        '<table class="closing"><thead><tr><th>network</th><th>business date</th>'
+        "<th>reported</th><th>locations reported</th><th>still to report</th></tr></thead>"
+        f"<tbody>{''.join(rows)}</tbody></table>"
+    )
+
+
+def sparkline(values: Sequence[float], width: int = 160, height: int = 28) -> str:
+    """An inline SVG polyline of `values` (oldest first, at least one), scaled from 0 to their
+    maximum; the newest value is marked with a dot."""
+    if len(values) == 1:
+        values = [values[0], values[0]]  # one solve: a level line, not a lone dot
+    top = max(values) or 1.0
+    step = width / (len(values) - 1)
+    points = [
+        (round(i * step, 1), round(height - 2 - (height - 4) * value / top, 1))
+        for i, value in enumerate(values)
+    ]
+    line = " ".join(f"{x},{y}" for x, y in points)
+    last_x, last_y = points[-1]
+    return (
+        f'<svg class="spark" width="{width}" height="{height}" viewBox="0 0 {width} {height}" '
+        'role="img" aria-label="solve seconds, oldest to newest">'
+        f'<polyline points="{line}" fill="none" stroke="#3d5a80" stroke-width="1.5"/>'
+        f'<circle cx="{last_x}" cy="{last_y}" r="2.5" fill="#3d5a80"/></svg>'
+    )
+
+
+def _solve_times_table(view: StatusView) -> str:
+    timed = [network for network in view.networks if network.solve_times]
+    if not timed:
+        return '<p class="empty">No finished solves yet.</p>'
+    rows = []
+    for network in timed:
+        times = network.solve_times
+        rows.append(
+            f'<tr data-network="{network.id}"><td>{_e(network.name)}</td>'
+            f"<td>{sparkline(times)}</td>"
+            f'<td class="num">{len(times)}</td>'
+            f'<td class="num">{_e(_seconds(times[-1]))}</td>'
+            f'<td class="num">{_e(_seconds(statistics.median(times)))}</td>'
+            f'<td class="num">{_e(_seconds(max(times)))}</td></tr>'
+        )
+    return (
+        '<table class="solve-times"><thead><tr><th>network</th><th>oldest to newest</th>'
+        "<th>solves</th><th>last</th><th>median</th><th>longest</th></tr></thead>"
+        f"<tbody>{''.join(rows)}</tbody></table>"
+    )
+
+
 def _heatmap_section(view: StatusView) -> str:
     if view.heatmap is None:
         return ""
@@ -478,6 +658,9 @@ a { color: var(--accent); }
 .error { color: #8e2f1e; font-size: 12px; white-space: pre-wrap; word-break: break-word; }
 .empty { color: var(--muted); margin: 4px 0; }
 figure.picture { margin: 0; }
+.caution { margin: 0 0 14px; padding: 8px 14px; border-left: 4px solid #c9a227;
+  background: #fbf6e4; color: #5c4a10; }
+svg.spark { display: block; }
 svg.heatmap { max-width: 100%; height: auto; }
 """
 
@@ -495,11 +678,15 @@ def render(view: StatusView) -> str:
         f"<header><h1>stockrelay</h1><p>status of tenant <b>{_e(view.tenant)}</b></p>"
         f"<p>{_e(view.now.strftime('%Y-%m-%d %H:%M:%S'))} UTC · reloads every "
         f"{REFRESH_SECONDS} s</p></header><main>"
+        f'<p class="caution">{_e(CAUTION)}</p>'
         f"{_tiles(view)}"
         f'<section id="networks"><h2>Networks</h2>{_networks_table(view)}</section>'
+        f'<section id="closing"><h2>Tonight\'s closing counts</h2>{_closing_table(view)}'
+        "</section>"
         f'<section id="queue"><h2>Queue ({view.live_jobs} live{shown})</h2>'
         f"{_queue_table(view)}</section>"
         f"{_heatmap_section(view)}"
+        f'<section id="solve-times"><h2>Solve times</h2>{_solve_times_table(view)}</section>'
         f'<section id="recent"><h2>Recent jobs</h2>{_recent_table(view)}</section>'
         "</main></body></html>\n"
     )

@@ -16,7 +16,7 @@ from service.analysis import apply_overrides, check_simulation, new_seed, run_wh
 from service.api.deps import JobId, NetworkId, Reader, SessionDep, SettingsDep, Writer, get_network
 from service.db import repository
 from service.db.tables import JobKind, Network, NetworkVersion, SolveJob
-from service.problems import PROBLEM_RESPONSES, NotFound
+from service.problems import NotFound
 from service.schemas import (
     SimulationJobOut,
     SimulationReportOut,
@@ -29,9 +29,7 @@ from service.schemas import (
 from solver import NetworkSpec
 from solver.build import check_size
 
-router = APIRouter(
-    prefix="/v1/networks/{network_id}", tags=["analysis"], responses=PROBLEM_RESPONSES
-)
+router = APIRouter(prefix="/v1/networks/{network_id}", tags=["analysis"])
 
 
 def _current(session: Session, network: Network) -> tuple[NetworkVersion, NetworkSpec]:

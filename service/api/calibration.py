@@ -56,9 +56,7 @@ from solver.build import check_size
 from solver.calibration import CountEstimate, WeekdayEffect
 from solver.spec import WEEKDAYS
 
-router = APIRouter(
-    prefix="/v1/networks/{network_id}", tags=["calibration"], responses=PROBLEM_RESPONSES
-)
+router = APIRouter(prefix="/v1/networks/{network_id}", tags=["calibration"])
 
 CSV_COLUMNS = ("date", "location", "units_sold", "stock_at_open", "units_received")
 # History is local business days; a day ahead of the server's UTC date allows for time zones.
@@ -195,6 +193,7 @@ def _locations(session: Session, network_id: int) -> list[LocationHistoryOut]:
     "/history",
     response_model=HistoryStored,
     openapi_extra=_UPLOAD_DOC,
+    responses={415: PROBLEM_RESPONSES[415]},
 )
 async def upload_history(
     network_id: NetworkId,

@@ -18,15 +18,11 @@ from service.db import repository
 from service.db.base import utcnow
 from service.db.tables import ClosingCount, Instruction, Network, NetworkVersion
 from service.policies import PolicyNotReadyError, StockProblemsError, recommend
-from service.problems import PROBLEM_RESPONSES, Conflict, InvalidInput, NotFound
+from service.problems import POLICY_NOT_READY, PROBLEM_RESPONSES, Conflict, InvalidInput, NotFound
 from service.schemas import ClosingStockIn, ClosingStockOut, InstructionsOut, Movement
 from solver import NetworkSpec
 
-router = APIRouter(
-    prefix="/v1/networks/{network_id}/locations/{location}",
-    tags=["closing"],
-    responses=PROBLEM_RESPONSES,
-)
+router = APIRouter(prefix="/v1/networks/{network_id}/locations/{location}", tags=["closing"])
 
 # Business dates are local to the stores; allow a day either side of the server's UTC date.
 _DATE_SLACK = timedelta(days=1)
@@ -129,7 +125,11 @@ def report_closing_stock(
     )
 
 
-@router.get("/instructions", response_model=InstructionsOut)
+@router.get(
+    "/instructions",
+    response_model=InstructionsOut,
+    responses={409: PROBLEM_RESPONSES[409], **POLICY_NOT_READY},
+)
 def location_instructions(
     network_id: NetworkId,
     location: str,

@@ -6,8 +6,8 @@ from __future__ import annotations
 import hashlib
 import threading
 import time
-from collections.abc import Callable, Coroutine, Iterator
-from typing import Annotated, Any
+from collections.abc import Iterator
+from typing import Annotated
 
 from fastapi import Depends, Path, Request
 from sqlalchemy.orm import Session, sessionmaker
@@ -16,6 +16,7 @@ from starlette.concurrency import run_in_threadpool
 from service import auth
 from service.auth import Identity, Scope
 from service.db.tables import Network
+from service.middleware import repeat_allowed
 from service.policies import PolicyCache
 from service.problems import Forbidden, NotFound, RateLimited, Unauthorized
 from service.ratelimit import RateLimiter
@@ -27,6 +28,7 @@ __all__ = [
     "JobId",
     "NetworkId",
     "Reader",
+    "Require",
     "SessionDep",
     "SettingsDep",
     "Writer",
@@ -124,16 +126,28 @@ async def get_identity(request: Request) -> Identity:
     return identity
 
 
-def require(scope: Scope) -> Callable[..., Coroutine[Any, Any, Identity]]:
-    async def check(identity: Annotated[Identity, Depends(get_identity)]) -> Identity:
-        if not auth.scope_allows(identity.scope, scope):
+class Require:
+    """Dependency: the caller, with at least `scope`. Every /v1 route depends on one: a repeated
+    Idempotency-Key gets its kept answer only after these checks pass (service.middleware), and
+    the OpenAPI document lists 403 only where a key may lack the scope."""
+
+    def __init__(self, scope: Scope) -> None:
+        self.scope: Scope = scope
+
+    async def __call__(
+        self, request: Request, identity: Annotated[Identity, Depends(get_identity)]
+    ) -> Identity:
+        if not auth.scope_allows(identity.scope, self.scope):
             raise Forbidden(
-                f"this needs a key with {scope} scope; key {identity.key_prefix} "
+                f"this needs a key with {self.scope} scope; key {identity.key_prefix} "
                 f"has {identity.scope}"
             )
+        repeat_allowed(request.scope)
         return identity
 
-    return check
+
+def require(scope: Scope) -> Require:
+    return Require(scope)
 
 
 Reader = Annotated[Identity, Depends(require("read"))]

@@ -10,10 +10,10 @@ from fastapi import APIRouter, Query
 from service.api.deps import JobId, Reader, SessionDep
 from service.db import repository
 from service.db.tables import JobKind, NetworkVersion
-from service.problems import PROBLEM_RESPONSES, NotFound
+from service.problems import NotFound
 from service.schemas import JobOut
 
-router = APIRouter(prefix="/v1/jobs", tags=["jobs"], responses=PROBLEM_RESPONSES)
+router = APIRouter(prefix="/v1/jobs", tags=["jobs"])
 
 
 @router.get("/{job_id}", response_model=JobOut)

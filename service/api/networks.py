@@ -10,12 +10,12 @@ from service.api.deps import NetworkId, Reader, SessionDep, SettingsDep, Writer,
 from service.api.views import network_out
 from service.db import repository
 from service.db.tables import Tenant
-from service.problems import PROBLEM_RESPONSES, Conflict, PreconditionFailed, PreconditionRequired
+from service.problems import Conflict, PreconditionFailed, PreconditionRequired
 from service.schemas import NetworkCreate, NetworkCreated, NetworkOut, NetworkUpdate, VersionOut
 from solver import NetworkSpec
 from solver.build import check_size
 
-router = APIRouter(prefix="/v1/networks", tags=["networks"], responses=PROBLEM_RESPONSES)
+router = APIRouter(prefix="/v1/networks", tags=["networks"])
 
 
 IfMatch = Annotated[str | None, Header(description="The current version number, as given in ETag.")]

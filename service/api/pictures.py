@@ -29,13 +29,13 @@ from service.pictures import (
     value_label,
 )
 from service.policies import PolicyCache, ServedPolicy, load_policy
-from service.problems import PROBLEM_RESPONSES, InvalidInput
+from service.problems import POLICY_NOT_READY, InvalidInput
 from service.schemas import CriterionName
 from service.schemas import WeekdayName as Weekday
 from solver import PolicyResult
 from solver.spec import WEEKDAYS
 
-router = APIRouter(tags=["pictures"], responses=PROBLEM_RESPONSES)
+router = APIRouter(tags=["pictures"])
 
 _MEDIA_TYPES: dict[ImageFormat, str] = {"svg": "image/svg+xml", "png": "image/png"}
 # Pictures of one policy version never change, but a newer version may be served at any time.
@@ -47,7 +47,8 @@ def _picture_doc(image_format: ImageFormat, what: str) -> dict[int | str, dict[s
         200: {
             "description": f"{what} The served policy's version is in `X-Policy-Version`.",
             "content": {_MEDIA_TYPES[image_format]: {"schema": {"type": "string"}}},
-        }
+        },
+        **POLICY_NOT_READY,
     }
 
 

@@ -16,15 +16,16 @@ from fastapi.responses import StreamingResponse
 
 from service.api.deps import CacheDep, NetworkId, Reader, SessionDep, get_network
 from service.policies import ServedPolicy, load_policy
-from service.problems import PROBLEM_RESPONSES
+from service.problems import POLICY_NOT_READY
 from service.schemas import CriterionName
 from solver.spec import WEEKDAYS
 
-router = APIRouter(tags=["policies"], responses=PROBLEM_RESPONSES)
+router = APIRouter(tags=["policies"])
 
 _ROWS_PER_CHUNK = 4096
 
 _EXPORT_DOC: dict[int | str, dict[str, Any]] = {
+    **POLICY_NOT_READY,
     200: {
         "description": "The policy table. CSV: one row per closing stock, columns: the stock of "
         "each location, the units on each lane (`from->to`), the value; for a network with "
@@ -32,7 +33,7 @@ _EXPORT_DOC: dict[int | str, dict[str, Any]] = {
         "table per weekday. JSON: the same rows under `rows`, with `columns`, `version`, "
         "`criterion` and `profit_per_day`.",
         "content": {"text/csv": {"schema": {"type": "string"}}, "application/json": {}},
-    }
+    },
 }
 
 

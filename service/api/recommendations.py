@@ -22,7 +22,7 @@ from service.api.views import recommendation_out
 from service.auth import Identity
 from service.metrics import observe_recommendation
 from service.policies import NetworkRef, PolicyCache, recommend
-from service.problems import PROBLEM_RESPONSES, problem_body, problem_for
+from service.problems import POLICY_NOT_READY, problem_body, problem_for
 from service.schemas import (
     BatchItem,
     BatchOutcome,
@@ -33,7 +33,7 @@ from service.schemas import (
     RecommendationRequest,
 )
 
-router = APIRouter(tags=["recommendations"], responses=PROBLEM_RESPONSES)
+router = APIRouter(tags=["recommendations"])
 log = logging.getLogger(__name__)
 audit = logging.getLogger("stockrelay.audit")
 
@@ -75,7 +75,11 @@ def _recommend_one(
     return recommendation_out(network_id, criterion, served, recommendation, night_of)
 
 
-@router.post("/v1/networks/{network_id}/recommendation", response_model=RecommendationOut)
+@router.post(
+    "/v1/networks/{network_id}/recommendation",
+    response_model=RecommendationOut,
+    responses=POLICY_NOT_READY,
+)
 async def recommend_transfers(
     network_id: NetworkId,
     body: RecommendationRequest,

@@ -245,13 +245,15 @@ class ApiKey(Base):
 
 
 class IdempotencyRecord(Base):
-    """The first response to a POST or PUT sent with an Idempotency-Key, replayed on repeats."""
+    """The first response to a POST or PUT sent with an Idempotency-Key, replayed on repeats of
+    the same API key. `request_id` is the first request's id (X-Request-ID)."""
 
     __tablename__ = "idempotency_records"
-    __table_args__ = (UniqueConstraint("tenant_id", "key", "method", "path"),)
+    __table_args__ = (UniqueConstraint("api_key_id", "key", "method", "path"),)
 
     id: Mapped[int] = mapped_column(primary_key=True)
-    tenant_id: Mapped[int] = mapped_column(ForeignKey("tenants.id"))
+    api_key_id: Mapped[int] = mapped_column(ForeignKey("api_keys.id"))
+    request_id: Mapped[str] = mapped_column(String(100))
     key: Mapped[str] = mapped_column(String(200))
     method: Mapped[str] = mapped_column(String(8))
     path: Mapped[str] = mapped_column(String(500))

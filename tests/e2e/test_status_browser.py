@@ -92,6 +92,10 @@ def test_status_page_in_chromium(tmp_path: Path, live: Live) -> None:
             box = heatmap.bounding_box()
             assert box is not None and box["width"] > 300 and box["height"] > 200
             assert page.locator("#recent table.recent tbody tr").count() == 2
+            assert page.locator("p.caution").is_visible()
+            assert page.locator("#closing table.closing tbody tr").count() == 2
+            spark = page.locator(f'#solve-times tr[data-network="{first_id}"] svg.spark')
+            assert spark.is_visible()
 
             ARTIFACTS.mkdir(exist_ok=True)
             screenshot = ARTIFACTS / "status-page.png"

@@ -19,6 +19,7 @@ from service.auth import Scope, create_key
 from service.db.repository import get_or_create_tenant
 from service.db.session import make_session_factory
 from service.main import create_app
+from service.problems import PROBLEM_TYPES
 from service.schemas import DEMO_NETWORK
 from service.settings import Settings
 from service.worker import Worker
@@ -40,7 +41,8 @@ __all__ = [
     "weekly_document",
 ]
 
-PROBLEM_TYPE_BASE = "https://stockrelay.dev/problems/"
+# Problem types are URIs this service answers itself (GET /problems/<slug>).
+PROBLEM_TYPE_BASE = "/problems/"
 # RFC 9457, section 3.1: the members every problem of this API carries.
 PROBLEM_MEMBERS = ("type", "title", "status", "detail", "instance")
 
@@ -158,6 +160,8 @@ def assert_problem(response: httpx.Response, status: int, slug: str | None = Non
     assert isinstance(body["detail"], str) and body["detail"]
     if slug is not None:
         assert body["type"] == PROBLEM_TYPE_BASE + slug
+    # Every type named is one the service describes at its URI.
+    assert body["type"].removeprefix(PROBLEM_TYPE_BASE) in PROBLEM_TYPES, body["type"]
     sent = response.request.headers["X-Request-ID"]
     assert response.headers["X-Request-ID"] == sent
     assert body["request_id"] == sent

@@ -345,7 +345,7 @@ def test_batch_answers_in_order_with_one_problem_per_bad_item(
     missing = outcomes[1]["problem"]
     assert (missing["status"], missing["type"], missing["item"]) == (
         404,
-        "https://stockrelay.dev/problems/not-found",
+        "/problems/not-found",
         1,
     )
     assert "4242" in missing["detail"]

@@ -2,15 +2,23 @@
 
 from __future__ import annotations
 
+import importlib
 import json
 import logging
+import pkgutil
 from typing import Any
 
 import pytest
+from fastapi import APIRouter
+from fastapi.dependencies.models import Dependant
+from fastapi.routing import APIRoute
 from sqlalchemy import Engine
 
+import service.api
+from service.api.deps import Require
 from service.auth import revoke_key
 from service.db.session import make_session_factory
+from service.ratelimit import RateLimiter
 from tests.service.api_support import (
     assert_problem,
     create_network,
@@ -22,6 +30,8 @@ from tests.service.api_support import (
 )
 
 STOCK = {"riverside": 13, "hilltop": 1}
+# A replayed answer names the request that produced it (its X-Request-ID).
+REPLAY_HEADER = "stockrelay-replay-of"
 
 
 def bearer(key: str) -> dict[str, str]:
@@ -157,16 +167,21 @@ def test_idempotent_create_replays_and_refuses_a_different_body(engine: Engine) 
         again = client.post("/v1/networks", json=demo_document(), headers={"Idempotency-Key": "a1"})
         assert first.status_code == again.status_code == 201
         assert again.json() == first.json()
-        assert again.headers["idempotent-replayed"] == "true"
-        assert "idempotent-replayed" not in first.headers
+        assert again.headers[REPLAY_HEADER] == first.request.headers["X-Request-ID"]
+        assert again.headers["X-Request-ID"] != first.headers["X-Request-ID"]
+        assert REPLAY_HEADER not in first.headers
         assert len(client.get("/v1/networks").json()) == 1
         changed = client.post(
             "/v1/networks", json=demo_document(discount=0.9), headers={"Idempotency-Key": "a1"}
         )
         assert_problem(changed, 422, "idempotency-key-reused")
-        # Keys belong to a tenant: another tenant's same key runs its own request.
+        # Records belong to an API key: another tenant's key with the same Idempotency-Key runs
+        # its own request, and so does another key of the same tenant (here: the name is taken).
         other = {**bearer(make_key(engine, tenant="other")), "Idempotency-Key": "a1"}
         assert client.post("/v1/networks", json=demo_document(), headers=other).status_code == 201
+        colleague = {**bearer(make_key(engine)), "Idempotency-Key": "a1"}
+        taken = client.post("/v1/networks", json=demo_document(), headers=colleague)
+        assert_problem(taken, 409, "conflict")
 
 
 @sqlite_only
@@ -176,7 +191,8 @@ def test_a_failed_first_attempt_is_not_replayed_as_success(engine: Engine) -> No
         first = client.post("/v1/networks", json=bad, headers={"Idempotency-Key": "k"})
         assert_problem(first, 422, "invalid-input")
         again = client.post("/v1/networks", json=bad, headers={"Idempotency-Key": "k"})
-        assert again.status_code == 422 and again.headers["idempotent-replayed"] == "true"
+        assert again.status_code == 422
+        assert again.headers[REPLAY_HEADER] == first.headers["X-Request-ID"]
 
 
 @sqlite_only
@@ -236,3 +252,121 @@ def test_networks_beyond_the_solver_limits_are_refused_with_their_sizes(engine: 
         problem = assert_problem(update, 422, "network-too-large")
         assert problem["pairs"] == 489 and "450 pairs" in problem["detail"]
         assert client.get(f"/v1/networks/{created['id']}").json()["version"] == 1
+
+
+def _checks_keys(dependant: Dependant) -> bool:
+    return any(isinstance(sub.call, Require) or _checks_keys(sub) for sub in dependant.dependencies)
+
+
+def test_every_write_under_v1_checks_the_key_before_a_replay() -> None:
+    # The Idempotency middleware replays only once Require has passed; a POST or PUT without
+    # it would run again on every repeat.
+    routers = [
+        importlib.import_module(f"service.api.{module.name}").__dict__.get("router")
+        for module in pkgutil.iter_modules(service.api.__path__)
+    ]
+    writes = [
+        route
+        for router in routers
+        if isinstance(router, APIRouter)
+        for route in router.routes
+        if isinstance(route, APIRoute)
+        and route.path.startswith("/v1/")
+        and route.methods & {"POST", "PUT"}
+    ]
+    assert writes
+    for route in writes:
+        assert _checks_keys(route.dependant), route.path
+
+
+def _history(day: str) -> dict[str, Any]:
+    return {
+        "rows": [
+            {
+                "date": day,
+                "location": "riverside",
+                "units_sold": 2,
+                "stock_at_open": 5,
+                "units_received": 0,
+            }
+        ]
+    }
+
+
+@sqlite_only
+def test_a_read_key_never_gets_a_write_keys_stored_answer(engine: Engine) -> None:
+    with open_client(engine) as client:
+        created = create_network(client)
+        url = f"/v1/networks/{created['id']}/history"
+        first = client.post(url, json=_history("2026-11-30"), headers={"Idempotency-Key": "k-123"})
+        assert first.status_code == 200, first.text
+        reader = {**bearer(make_key(engine, scope="read")), "Idempotency-Key": "k-123"}
+        refused = client.post(url, json=_history("2026-11-30"), headers=reader)
+        assert "write scope" in assert_problem(refused, 403, "forbidden")["detail"]
+
+
+@sqlite_only
+def test_a_refusal_is_not_kept_and_the_key_that_may_write_runs(engine: Engine) -> None:
+    with open_client(engine) as client:
+        created = create_network(client)
+        url = f"/v1/networks/{created['id']}/history"
+        reader = {**bearer(make_key(engine, scope="read")), "Idempotency-Key": "k-456"}
+        assert_problem(client.post(url, json=_history("2026-12-01"), headers=reader), 403)
+        writer = {"Idempotency-Key": "k-456"}
+        stored = client.post(url, json=_history("2026-12-01"), headers=writer)
+        assert stored.status_code == 200, stored.text
+        assert stored.json()["inserted"] == 1
+        [riverside] = client.get(url).json()["locations"]
+        assert (riverside["location"], riverside["days"]) == ("riverside", 1)
+
+
+class _Clock:
+    def __init__(self) -> None:
+        self.now = 0.0
+
+    def __call__(self) -> float:
+        return self.now
+
+
+@sqlite_only
+def test_rate_limits_apply_before_replays_and_a_429_is_not_kept(engine: Engine) -> None:
+    with open_client(engine) as client:
+        clock = _Clock()
+        client.app.state.rate_limiter = RateLimiter(1.0, 1, clock=clock)  # type: ignore[attr-defined]
+        key = {"Idempotency-Key": "n-1"}
+        assert client.post("/v1/networks", json=demo_document(), headers=key).status_code == 201
+        # Over the limit: the repeat is refused, not replayed.
+        assert_problem(client.post("/v1/networks", json=demo_document(), headers=key), 429)
+        clock.now += 1.0
+        replayed = client.post("/v1/networks", json=demo_document(), headers=key)
+        assert replayed.status_code == 201 and REPLAY_HEADER in replayed.headers
+
+        # A write refused with 429 is not kept: the retry runs.
+        other = {"Idempotency-Key": "n-2"}
+        body = demo_document(name="second")
+        assert_problem(client.post("/v1/networks", json=body, headers=other), 429)
+        clock.now += 1.0
+        retried = client.post("/v1/networks", json=body, headers=other)
+        assert retried.status_code == 201, retried.text
+        assert REPLAY_HEADER not in retried.headers
+        clock.now += 1.0
+        assert len(client.get("/v1/networks").json()) == 2
+
+
+@sqlite_only
+def test_problem_types_are_served_by_the_service_without_a_key(engine: Engine) -> None:
+    with open_client(engine) as client:
+        client.headers.pop("Authorization")
+        problem = assert_problem(client.get("/v1/networks"), 401, "unauthorized")
+        # RFC 9457, section 3.1.1: `type` is a URI reference, resolved against the request's.
+        described = client.get(problem["type"])
+        assert described.status_code == 200
+        assert described.json()["type"] == problem["type"]
+        assert described.json()["title"] == problem["title"]
+        assert "Authorization" in described.json()["description"]
+        listed = client.get("/problems").json()
+        assert len(listed) > 20
+        for entry in listed:
+            assert entry["type"].startswith("/problems/")
+            assert client.get(entry["type"]).json() == entry
+        assert_problem(client.get("/problems/no-such-thing"), 404, "not-found")

@@ -3,9 +3,17 @@
 from __future__ import annotations
 
 import json
+import re
+from html.parser import HTMLParser
 from pathlib import Path
+from typing import Any
+from urllib.parse import urlsplit
 
+from fastapi.testclient import TestClient
+
+from service.main import create_app
 from service.operations import openapi_document
+from service.settings import Settings
 
 COMMITTED = Path(__file__).resolve().parents[2] / "openapi" / "openapi.json"
 
@@ -26,3 +34,88 @@ def test_examples_use_the_demo_scenario() -> None:
     paths = document["paths"]
     assert "/v1/networks/{network_id}/recommendation" in paths
     assert "/v1/networks/{network_id}/locations/{location}/instructions" in paths
+
+
+def _problems(document: dict[str, Any], method: str, path: str) -> set[int]:
+    responses = document["paths"][path][method]["responses"]
+    return {int(status) for status in responses if int(status) >= 400}
+
+
+def test_each_operation_lists_only_the_problems_that_can_happen_to_it() -> None:
+    document = openapi_document()
+    listed = {
+        (method, path): _problems(document, method, path)
+        for path, operations in document["paths"].items()
+        if path.startswith("/v1/")
+        for method in operations
+    }
+    assert len(set(map(frozenset, listed.values()))) > 5
+    # No parameters, read scope: only the key, its rate and the database can fail.
+    assert listed["get", "/v1/networks"] <= {401, 422, 429, 503}
+    # Read scope is the lowest: a read route never answers 403; recommendations are read.
+    for (method, path), statuses in listed.items():
+        if method == "get":
+            assert not statuses & {400, 403, 412, 413, 428}, (method, path)
+    assert 403 not in listed["post", "/v1/networks/{network_id}/recommendation"]
+    assert 403 not in listed["post", "/v1/recommendations/batch"]
+    assert 403 in listed["post", "/v1/networks"]
+    # Only routes that take If-Match compare versions.
+    assert {412, 428} <= listed["put", "/v1/networks/{network_id}"]
+    assert not {412, 428} & listed["post", "/v1/networks"]
+    assert 415 in listed["post", "/v1/networks/{network_id}/history"]
+    assert 415 not in listed["post", "/v1/networks"]
+    assert 404 not in listed["post", "/v1/networks"]
+    instructions = "/v1/networks/{network_id}/locations/{location}/instructions"
+    assert 409 in listed["get", instructions]
+    assert 409 not in listed["get", "/v1/networks/{network_id}"]
+
+
+def test_the_scope_sentence_agrees_with_the_readme() -> None:
+    readme = COMMITTED.parents[1].joinpath("README.md").read_text(encoding="utf-8")
+    [sentence] = re.findall(r"Read\s+scope answers[^.]*\.", readme)
+    description = " ".join(openapi_document()["info"]["description"].split())
+    assert " ".join(sentence.split()) in description
+
+
+def test_every_field_of_every_schema_is_described() -> None:
+    schemas = openapi_document()["components"]["schemas"]
+    undescribed = [
+        f"{name}.{field}"
+        for name, schema in schemas.items()
+        for field, prop in schema.get("properties", {}).items()
+        if not prop.get("description")
+    ]
+    assert undescribed == [], "describe them in the model or service.api.docs.FIELD_DESCRIPTIONS"
+
+
+def test_docs_load_only_files_the_app_serves() -> None:
+    # Neither the page nor its files need the database: the lifespan is not entered.
+    client = TestClient(create_app(Settings()))
+    page = client.get("/docs")
+    assert page.status_code == 200
+    parser = _References()
+    parser.feed(page.text)
+    assert len(parser.urls) >= 2, "the page names no script or stylesheet"
+    # Every script, stylesheet and icon is a path of this app (no scheme, no host).
+    for url in parser.urls:
+        assert urlsplit(url).scheme == "" and urlsplit(url).netloc == "", url
+        assert url.startswith("/"), url
+        assert client.get(url).status_code == 200, url
+    # The page's own script reads the document from this app, and names no other host.
+    assert re.findall(r"url: '([^']*)'", page.text) == ["/openapi.json"]
+    assert "://" not in page.text
+    assert client.get("/openapi.json").status_code == 200
+
+
+class _References(HTMLParser):
+    """The URLs a page loads: script src, link href, img src."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.urls: list[str] = []
+
+    def handle_starttag(self, tag: str, attrs: list[tuple[str, str | None]]) -> None:
+        wanted = {"script": "src", "link": "href", "img": "src"}.get(tag)
+        for name, value in attrs:
+            if name == wanted and value:
+                self.urls.append(value)

@@ -5,6 +5,8 @@ of stored text is escaped. Pages are read with the standard library's HTML parse
 from __future__ import annotations
 
 import base64
+import re
+from datetime import date, timedelta
 from html.parser import HTMLParser
 from typing import Any
 
@@ -14,7 +16,8 @@ from sqlalchemy import Engine, select, update
 
 from service.db.session import make_session_factory
 from service.db.tables import SolveJob
-from service.status_page import age
+from service.policies import today_in
+from service.status_page import CAUTION, age, sparkline
 from tests.service.api_support import (
     assert_problem,
     create_network,
@@ -225,3 +228,65 @@ def test_simulations_wait_in_the_queue_without_changing_the_solve_state(engine: 
     assert network[3] == f"failed job {solve_id} no luck", "the solve's state, not the simulation's"
     [queued] = shown.tables["queue"]
     assert queued[2:5] == ["simulation", "discounted", "queued"]
+
+
+def test_tonights_closing_counts_show_who_has_reported(engine: Engine) -> None:
+    with open_client(engine) as client:
+        key = make_key(engine, scope="read")
+        document = demo_document(timezone="Pacific/Auckland")
+        network = create_network(client, document)["id"]
+        tonight = today_in("Pacific/Auckland").isoformat()
+        before = page(client, key)
+        [row] = before.tables["closing"]
+        assert row == [document["name"], tonight, "0 of 2", "none yet", "riverside, hilltop"]
+
+        url = f"/v1/networks/{network}/locations/hilltop/closing-stock"
+        sent = client.put(url, json={"business_date": tonight, "units": 4})
+        assert sent.status_code == 200, sent.text
+        # A count for the night before is not tonight's.
+        yesterday = (date.fromisoformat(tonight) - timedelta(days=1)).isoformat()
+        earlier = client.put(
+            f"/v1/networks/{network}/locations/riverside/closing-stock",
+            json={"business_date": yesterday, "units": 1},
+        )
+        assert earlier.status_code == 200, earlier.text
+        [row] = page(client, key).tables["closing"]
+        assert row == [document["name"], tonight, "1 of 2", "hilltop", "riverside"]
+
+
+def test_solve_times_are_drawn_per_network(engine: Engine) -> None:
+    with open_client(engine) as client:
+        key = make_key(engine, scope="read")
+        assert "No finished solves yet." in "".join(page(client, key).text)
+        network = create_network(client, demo_document(criteria=["discounted", "average"]))["id"]
+        run_worker(engine)
+        shown = page(client, key)
+    with make_session_factory(engine)() as session:
+        seconds = sorted(
+            job.solve_seconds
+            for job in session.scalars(select(SolveJob))
+            if job.solve_seconds is not None
+        )
+    [row] = shown.tables["solve-times"]
+    assert row[0] == demo_document()["name"]
+    assert row[2] == "2"
+    assert row[5] == f"{max(seconds):.3f} s"
+    assert shown.has("svg", **{"class": "spark"})
+    assert shown.has("tr", **{"data-network": str(network)})
+
+
+def test_a_sparkline_spans_zero_to_the_largest_value() -> None:
+    svg = sparkline([0.0, 2.0, 1.0], width=100, height=20)
+    [points] = re.findall(r'points="([^"]*)"', svg)
+    xs, ys = zip(*(map(float, point.split(",")) for point in points.split()), strict=True)
+    assert xs == (0.0, 50.0, 100.0)
+    # SVG y grows downward: zero on the bottom margin, the largest value on the top one.
+    assert ys == (18.0, 2.0, 10.0)
+    assert "<script" not in sparkline([1.0])
+
+
+def test_the_cautions_are_on_the_page(engine: Engine) -> None:
+    with open_client(engine) as client:
+        shown = page(client, make_key(engine, scope="read"))
+    assert CAUTION in " ".join("".join(shown.text).split())
+    assert shown.has("p", **{"class": "caution"})
