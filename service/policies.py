@@ -23,15 +23,17 @@ from sqlalchemy.orm import Session
 from service.codec import CorruptPolicyError, decode_policy
 from service.db import repository
 from service.db.repository import VersionHead
-from service.db.tables import NetworkVersion
+from service.db.tables import Network, NetworkVersion
 from solver import InvalidStockError, PolicyResult, Recommendation
 from solver.spec import DEFAULT_TIMEZONE
 
 __all__ = [
+    "CRITERIA_ORDER",
     "NetworkKey",
     "NetworkRef",
     "PolicyCache",
     "PolicyNotReadyError",
+    "PolicyNotSolvedError",
     "ServedPolicy",
     "StockProblemsError",
     "UnknownNetworkError",
@@ -42,6 +44,11 @@ __all__ = [
 ]
 
 log = logging.getLogger(__name__)
+
+# A request that names no criterion gets the first of these the network's current version is
+# solved for (or being solved for): the same rule for recommendations, closing instructions,
+# exports and pictures.
+CRITERIA_ORDER = ("discounted", "average")
 
 
 class UnknownNetworkError(LookupError):
@@ -56,9 +63,21 @@ class PolicyNotReadyError(Exception):
         self.job_state = job_state
 
 
+class PolicyNotSolvedError(PolicyNotReadyError):
+    """No job will produce the asked policy: the current version is not solved for the
+    criterion (not requested, or its solve failed). `criteria` are those it is solved or being
+    solved for. (A kind of PolicyNotReadyError, so that whoever only skips unready policies
+    skips these too.)"""
+
+    def __init__(self, message: str, *, criteria: list[str], job_state: str | None) -> None:
+        super().__init__(message, job_state=job_state)
+        self.criteria = criteria
+
+
 @dataclass(frozen=True)
 class ServedPolicy:
     result: PolicyResult
+    criterion: str
     version_id: int
     version_number: int
     solved_at: datetime
@@ -120,28 +139,93 @@ class NetworkRef:
 
 
 def load_policy(
-    session: Session, cache: PolicyCache, network: NetworkKey, criterion: str
+    session: Session, cache: PolicyCache, network: NetworkKey, criterion: str | None
 ) -> ServedPolicy:
-    """The policy of the newest version of `network` that has one; `stale` when a newer version
-    is still waiting for its solve. NotFound when the network is missing, another tenant's or
-    archived (UnknownNetworkError); PolicyNotReadyError when no version has a policy."""
+    """The policy of the newest version of `network` that has one for `criterion` (None: the
+    first of CRITERIA_ORDER the current version is solved for). An older version answers, with
+    `stale` set, only while the current one's solve is queued or running: `stale` never lasts
+    when nothing is being solved. UnknownNetworkError when the network is missing, another
+    tenant's or archived; PolicyNotReadyError while the current version's solve is under way
+    and no older version has a policy; PolicyNotSolvedError when no job will produce it."""
     versions = repository.live_versions_newest_first(session, network.tenant_id, network.id)
     if not versions:
-        raise UnknownNetworkError(f"no network {network.id}")
+        raise UnknownNetworkError(_unknown(session, network))
+    newest = versions[0]
+    if criterion is None:
+        criterion = _default_criterion(session, cache, network, newest)
     for version in versions:
         entry = cache.get((version.id, criterion)) or _load(session, network, version, criterion)
         if entry is None:
+            if version is newest:
+                _check_being_solved(session, network, newest, criterion)
             continue
         cache.put((version.id, criterion), entry)
         return ServedPolicy(
             result=entry.result,
+            criterion=criterion,
             version_id=version.id,
             version_number=version.number,
             solved_at=entry.solved_at,
-            stale=version is not versions[0],
+            stale=version is not newest,
             calibrated_at=version.calibrated_at,
         )
-    raise _not_ready(session, network, versions[0], criterion)
+    raise _not_ready(session, network, newest, criterion)
+
+
+def _unknown(session: Session, network: NetworkKey) -> str:
+    """Why a network serves nothing: missing (or another tenant's), or archived."""
+    row = session.get(Network, network.id)
+    if row is not None and row.tenant_id == network.tenant_id and row.archived:
+        return (
+            f"network {network.id} is archived: it serves no recommendations or instructions "
+            f"(GET /v1/networks/{network.id} still shows it)"
+        )
+    return f"no network {network.id}"
+
+
+def _default_criterion(
+    session: Session, cache: PolicyCache, network: NetworkKey, newest: VersionHead
+) -> str:
+    # The common case costs nothing: the current version's first criterion is cached.
+    if cache.get((newest.id, CRITERIA_ORDER[0])) is not None:
+        return CRITERIA_ORDER[0]
+    requested = repository.criteria_requested(session, network.tenant_id, newest.spec_hash)
+    for criterion in CRITERIA_ORDER:
+        if criterion in requested:
+            return criterion
+    return CRITERIA_ORDER[0]
+
+
+def _check_being_solved(
+    session: Session, network: NetworkKey, newest: VersionHead, criterion: str
+) -> None:
+    """PolicyNotSolvedError unless the current version's solve for `criterion` is queued or
+    running (its policy is not stored yet)."""
+    jobs = repository.jobs_for(session, network.tenant_id, newest.spec_hash, criterion)
+    if jobs and jobs[0].state in repository.LIVE_STATES:
+        return
+    requested = repository.criteria_requested(session, network.tenant_id, newest.spec_hash)
+    solved_for = [c for c in CRITERIA_ORDER if c in requested and c != criterion]
+    others = (
+        f"it is solved (or being solved) for {', '.join(solved_for)}; ask for that criterion"
+        if solved_for
+        else "it is solved for no criterion"
+    )
+    if jobs:
+        job = jobs[0]
+        raise PolicyNotSolvedError(
+            f"the {criterion} solve of version {newest.number} of network {network.id} failed "
+            f"(job {job.id}: {job.error}); retry the job or send a corrected version; {others}",
+            criteria=solved_for,
+            job_state=job.state,
+        )
+    raise PolicyNotSolvedError(
+        f"version {newest.number} of network {network.id} is not solved for {criterion}: "
+        f"{others}, or add {criterion} to its criteria (PUT /v1/networks/{network.id} with "
+        '"criteria")',
+        criteria=solved_for,
+        job_state=None,
+    )
 
 
 def _load(
@@ -216,7 +300,7 @@ def recommend(
     cache: PolicyCache,
     network: NetworkKey,
     stock: Mapping[str, int],
-    criterion: str = "discounted",
+    criterion: str | None = None,
     *,
     business_date: date | None = None,
 ) -> tuple[ServedPolicy, Recommendation, date | None]:

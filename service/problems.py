@@ -24,6 +24,7 @@ from service.analysis import AnalysisInputError
 from service.logs import REQUEST_ID
 from service.policies import (
     PolicyNotReadyError,
+    PolicyNotSolvedError,
     StockProblemsError,
     UnknownNetworkError,
 )
@@ -170,6 +171,15 @@ def problem_for(exc: Exception) -> tuple[int, str, str, str, dict[str, Any]] | N
         return 422, InvalidInput.slug, InvalidInput.title, str(exc), {"errors": errors}
     if isinstance(exc, UnknownNetworkError):
         return 404, NotFound.slug, NotFound.title, str(exc), {}
+    if isinstance(exc, PolicyNotSolvedError):
+        # 409, never 503 + Retry-After: no job will produce this policy by waiting.
+        return (
+            409,
+            "policy-not-solved",
+            "Not solved for this criterion",
+            str(exc),
+            {"criteria": exc.criteria, "job_state": exc.job_state},
+        )
     if isinstance(exc, PolicyNotReadyError):
         return 503, "policy-not-ready", "Policy not ready", str(exc), {"job_state": exc.job_state}
     if isinstance(exc, ModelTooLargeError):
@@ -193,6 +203,7 @@ DOMAIN_ERRORS: tuple[type[Exception], ...] = (
     AnalysisInputError,
     InvalidStockError,
     PolicyNotReadyError,
+    PolicyNotSolvedError,
     UnknownNetworkError,
     ModelTooLargeError,
     NotUnichainError,

@@ -23,6 +23,7 @@ from solver import NetworkSpec
 from solver.spec import LaneSpec
 
 __all__ = [
+    "DEFAULT_CRITERION_RULE",
     "AutoApplyOut",
     "BatchItem",
     "BatchOutcome",
@@ -75,6 +76,9 @@ __all__ = [
 ]
 
 CriterionName = Literal["discounted", "average"]
+DEFAULT_CRITERION_RULE = (
+    "Absent: the first of discounted, average that the network's current version is solved for."
+)
 # Weekdays as the network specification names them (solver.spec.WEEKDAYS), Monday first.
 WeekdayName = Literal["mon", "tue", "wed", "thu", "fri", "sat", "sun"]
 
@@ -135,7 +139,14 @@ class NetworkCreate(NetworkSpec):
 
 
 class NetworkUpdate(NetworkCreate):
-    """The next version of a network's specification (send If-Match with the current version)."""
+    """The next version of a network's specification (send If-Match with the current version).
+    Without `criteria` the next version is solved for the criteria the current one is."""
+
+    criteria: Criteria | None = Field(  # type: ignore[assignment]
+        default=None,
+        description="Criteria to solve the new version for; absent: those of the current "
+        "version (as calibration apply does).",
+    )
 
 
 class JobOut(_Out):
@@ -203,7 +214,7 @@ class RecommendationRequest(BaseModel):
     )
 
     stock: Stock
-    criterion: CriterionName = "discounted"
+    criterion: CriterionName | None = Field(default=None, description=DEFAULT_CRITERION_RULE)
     business_date: BusinessDate = None
 
 
@@ -220,7 +231,11 @@ class RecommendationOut(BaseModel):
     network_id: int
     criterion: str
     version: int = Field(description="Version whose policy answered.")
-    stale: bool = Field(description="True when a newer version is still being solved.")
+    stale: bool = Field(
+        description="True when the current version's solve for this criterion is queued or "
+        "running and an older version answers meanwhile; never while nothing is being solved "
+        "(a current version not solved for the criterion answers 409 instead)."
+    )
     solved_at: Timestamp
     parameters_calibrated_at: Timestamp | None = Field(
         description="When that version's demand and replenishment were estimated from sales "
@@ -255,7 +270,7 @@ class BatchItem(BaseModel):
 
     network_id: Annotated[int, Field(ge=1, le=2_147_483_647)]
     stock: Stock
-    criterion: CriterionName = "discounted"
+    criterion: CriterionName | None = Field(default=None, description=DEFAULT_CRITERION_RULE)
     business_date: BusinessDate = None
 
 

@@ -165,14 +165,14 @@ def _issue(
 ) -> Instruction:
     try:
         served, recommendation, _ = recommend(
-            session, cache, network, counts, "discounted", business_date=business_date
+            session, cache, network, counts, None, business_date=business_date
         )
     except StockProblemsError as exc:
         # The counts fit the current version (they were checked on arrival); only an older
         # policy, served while the current one is solved, can refuse them: wait for it.
         raise PolicyNotReadyError(
             f"the closing stock fits version {_current_number(session, network)} of network "
-            f"{network.id}, whose discounted policy is not ready yet ({exc})",
+            f"{network.id}, whose policy is not ready yet ({exc})",
             job_state=None,
         ) from exc
     transfers = transfers_of(served.result, recommendation.flows)
@@ -184,7 +184,7 @@ def _issue(
         network_id=network.id,
         business_date=business_date,
         version_id=served.version_id,
-        criterion="discounted",
+        criterion=served.criterion,
         plan=json.dumps(plan, sort_keys=True),
         computed_at=utcnow(),
     )

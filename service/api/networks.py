@@ -106,7 +106,14 @@ def update_network(
         if other is not None and other.id != network.id:
             raise Conflict(f"another network is named {spec.name!r}")
         network.name = spec.name
-    version, jobs = repository.add_version(session, network, spec, body.criteria)
+    # Absent criteria carry over, as calibration apply does: an exported specification sent
+    # back as the next version keeps every criterion it was solved for.
+    criteria = (
+        body.criteria
+        or repository.criteria_requested(session, network.tenant_id, current.spec_hash)
+        or ["discounted"]
+    )
+    version, jobs = repository.add_version(session, network, spec, criteria)
     response.headers["ETag"] = etag(version.number)
     return network_out(session, network, jobs)
 

@@ -30,7 +30,7 @@ from service.pictures import (
 )
 from service.policies import PolicyCache, ServedPolicy, load_policy
 from service.problems import PROBLEM_RESPONSES, InvalidInput
-from service.schemas import CriterionName
+from service.schemas import DEFAULT_CRITERION_RULE, CriterionName
 from service.schemas import WeekdayName as Weekday
 from solver import PolicyResult
 from solver.spec import WEEKDAYS
@@ -116,6 +116,7 @@ def _phase(result: PolicyResult, query: PlaneQuery) -> tuple[int, str]:
 
 
 PlaneDep = Annotated[PlaneQuery, Depends(plane_query)]
+CriterionQuery = Annotated[CriterionName | None, Query(description=DEFAULT_CRITERION_RULE)]
 Annotate = Annotated[
     bool,
     Query(
@@ -136,7 +137,7 @@ def policy_svg(
     cache: CacheDep,
     caller: Reader,
     plane: PlaneDep,
-    criterion: CriterionName = "discounted",
+    criterion: CriterionQuery = None,
     annotate: Annotate = False,
 ) -> Response:
     return _moves(session, cache, caller.tenant_id, network_id, criterion, plane, annotate, "svg")
@@ -153,7 +154,7 @@ def policy_png(
     cache: CacheDep,
     caller: Reader,
     plane: PlaneDep,
-    criterion: CriterionName = "discounted",
+    criterion: CriterionQuery = None,
     annotate: Annotate = False,
 ) -> Response:
     return _moves(session, cache, caller.tenant_id, network_id, criterion, plane, annotate, "png")
@@ -170,7 +171,7 @@ def value_svg(
     cache: CacheDep,
     caller: Reader,
     plane: PlaneDep,
-    criterion: CriterionName = "discounted",
+    criterion: CriterionQuery = None,
 ) -> Response:
     return _values(session, cache, caller.tenant_id, network_id, criterion, plane, "svg")
 
@@ -186,7 +187,7 @@ def value_png(
     cache: CacheDep,
     caller: Reader,
     plane: PlaneDep,
-    criterion: CriterionName = "discounted",
+    criterion: CriterionQuery = None,
 ) -> Response:
     return _values(session, cache, caller.tenant_id, network_id, criterion, plane, "png")
 
@@ -196,14 +197,14 @@ def _moves(
     cache: PolicyCache,
     tenant_id: int,
     network_id: int,
-    criterion: str,
+    criterion: str | None,
     query: PlaneQuery,
     annotate: bool,
     image_format: ImageFormat,
 ) -> Response:
     network, served, plane = _served_plane(session, cache, tenant_id, network_id, criterion, query)
     phase, night = _phase(served.result, query)
-    subject = f"version {served.version_number} · net moves, {criterion} policy{night}"
+    subject = f"version {served.version_number} · net moves, {served.criterion} policy{night}"
     body = render_moves(
         net_inflow_grid(served.result, plane, phase),
         x_id=plane.x_id,
@@ -220,13 +221,13 @@ def _values(
     cache: PolicyCache,
     tenant_id: int,
     network_id: int,
-    criterion: str,
+    criterion: str | None,
     query: PlaneQuery,
     image_format: ImageFormat,
 ) -> Response:
     network, served, plane = _served_plane(session, cache, tenant_id, network_id, criterion, query)
     phase, night = _phase(served.result, query)
-    subject = f"version {served.version_number} · value of the {criterion} policy{night}"
+    subject = f"version {served.version_number} · value of the {served.criterion} policy{night}"
     if served.result.gain is not None:
         subject += f", profit per day {served.result.gain:,.2f}"
     body = render_values(
@@ -234,7 +235,7 @@ def _values(
         x_id=plane.x_id,
         y_id=plane.y_id,
         title=caption(network.name, subject, plane),
-        colour_label=value_label(criterion),
+        colour_label=value_label(served.criterion),
         image_format=image_format,
     )
     return _image(body, image_format, served)
@@ -245,7 +246,7 @@ def _served_plane(
     cache: PolicyCache,
     tenant_id: int,
     network_id: int,
-    criterion: str,
+    criterion: str | None,
     query: PlaneQuery,
 ) -> tuple[Network, ServedPolicy, Plane]:
     """The network (404), the served policy (503 before its solve) and the plane to draw (422

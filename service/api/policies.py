@@ -17,7 +17,7 @@ from fastapi.responses import StreamingResponse
 from service.api.deps import CacheDep, NetworkId, Reader, SessionDep, get_network
 from service.policies import ServedPolicy, load_policy
 from service.problems import PROBLEM_RESPONSES
-from service.schemas import CriterionName
+from service.schemas import DEFAULT_CRITERION_RULE, CriterionName
 from solver.spec import WEEKDAYS
 
 router = APIRouter(tags=["policies"], responses=PROBLEM_RESPONSES)
@@ -45,7 +45,7 @@ def export_policy(
     cache: CacheDep,
     caller: Reader,
     format: Annotated[Literal["json", "csv"], Query()] = "json",
-    criterion: CriterionName = "discounted",
+    criterion: Annotated[CriterionName | None, Query(description=DEFAULT_CRITERION_RULE)] = None,
 ) -> StreamingResponse:
     network = get_network(session, caller.tenant_id, network_id)
     served = load_policy(session, cache, network, criterion)
@@ -56,7 +56,7 @@ def export_policy(
     if format == "csv":
         return StreamingResponse(_csv(served), media_type="text/csv", headers=headers)
     return StreamingResponse(
-        _json(served, network_id, criterion), media_type="application/json", headers=headers
+        _json(served, network_id), media_type="application/json", headers=headers
     )
 
 
@@ -89,11 +89,11 @@ def _csv(served: ServedPolicy) -> Iterator[str]:
         yield buffer.getvalue()
 
 
-def _json(served: ServedPolicy, network_id: NetworkId, criterion: str) -> Iterator[str]:
+def _json(served: ServedPolicy, network_id: NetworkId) -> Iterator[str]:
     head = {
         "network_id": network_id,
         "version": served.version_number,
-        "criterion": criterion,
+        "criterion": served.criterion,
         "profit_per_day": served.result.gain,
         "columns": _columns(served),
     }

@@ -77,7 +77,6 @@ def transfers_of(result: PolicyResult, flows: tuple[int, ...]) -> list[TransferO
 
 def recommendation_out(
     network_id: int,
-    criterion: str,
     served: ServedPolicy,
     recommendation: Recommendation,
     business_date: date | None = None,
@@ -86,7 +85,7 @@ def recommendation_out(
     ids = result.location_ids
     return RecommendationOut(
         network_id=network_id,
-        criterion=criterion,
+        criterion=served.criterion,
         version=served.version_number,
         stale=served.stale,
         solved_at=served.solved_at,

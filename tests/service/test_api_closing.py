@@ -131,6 +131,29 @@ def test_every_location_reads_the_same_kept_plan(client: TestClient, engine: Eng
     assert again == plans["riverside"]
 
 
+def test_a_network_solved_only_for_average_gets_average_instructions(
+    client: TestClient, engine: Engine
+) -> None:
+    network_id = create_network(client, demo_document(criteria=["average"]))["id"]
+    run_worker(engine)
+    vector = [DEMO_SPEC.locations[0].capacity, 0]
+    day = today()
+    for location, units in stock_of(DEMO_SPEC, vector).items():
+        assert report(client, network_id, location, day, units).status_code == 200
+    response = instructions(client, network_id, "riverside", day)
+    assert response.status_code == 200, response.text
+    plan = response.json()
+    assert plan["criterion"] == "average"
+    result = solve_network(DEMO_SPEC, criterion="average")
+    transfers = expected_transfers(result, result.recommend(vector))
+    assert plan["send"] == [{"location": t["to"], "units": t["units"]} for t in transfers]
+    # A recommendation that names no criterion follows the same rule.
+    answer = client.post(
+        f"/v1/networks/{network_id}/recommendation", json={"stock": stock_of(DEMO_SPEC, vector)}
+    )
+    assert answer.status_code == 200 and answer.json()["criterion"] == "average"
+
+
 def test_all_reported_without_a_policy_is_503_and_nothing_is_kept(
     client: TestClient, engine: Engine
 ) -> None:

@@ -101,9 +101,13 @@ def test_not_ready_before_the_solve(client: TestClient) -> None:
     assert problem["job_state"] == "queued"
     # RFC 9110, section 10.2.3: Retry-After as delay-seconds.
     assert int(queued.headers["Retry-After"]) > 0
-    unrequested = assert_problem(recommend(client, network_id, stock, "average"), 503)
-    assert unrequested["type"].endswith("/policy-not-ready")
+    # No job will ever solve the average policy: a conflict naming the criteria in use, and no
+    # Retry-After (waiting would not help).
+    response = recommend(client, network_id, stock, "average")
+    unrequested = assert_problem(response, 409, "policy-not-solved")
+    assert "Retry-After" not in response.headers
     assert unrequested["job_state"] is None
+    assert unrequested["criteria"] == ["discounted"]
     assert "average" in unrequested["detail"]
 
 
