@@ -114,8 +114,20 @@ def update_network(
         or ["discounted"]
     )
     version, jobs = repository.add_version(session, network, spec, criteria)
+    if current.calibrated_at is not None and _same_laws(
+        NetworkSpec.model_validate_json(current.spec_json), spec
+    ):
+        # The estimated numbers were sent back unchanged (e.g. only a capacity changed): they
+        # are still the estimates of that calibration.
+        version.calibrated_at = current.calibrated_at
     response.headers["ETag"] = etag(version.number)
     return network_out(session, network, jobs)
+
+
+def _same_laws(before: NetworkSpec, after: NetworkSpec) -> bool:
+    """Whether every location of `after` has the demand and replenishment it had in `before`."""
+    laws = {loc.id: (loc.demand, loc.replenishment) for loc in before.locations}
+    return all(laws.get(loc.id) == (loc.demand, loc.replenishment) for loc in after.locations)
 
 
 @router.delete("/{network_id}", status_code=status.HTTP_204_NO_CONTENT)

@@ -1,6 +1,8 @@
 """The whole policy table, for ERP import: stock levels, flows per lane, value. Streamed.
 
-A weekly network's policy has one table per weekday of the closing count: its rows start with a
+Every CSV row starts with the `version` and `criterion` of the policy served (so that a file
+saved on its own still says what it is; any CSV reader takes them as two more columns). A weekly
+network's policy has one table per weekday of the closing count: its rows go on with a
 `weekday` column (mon .. sun), Monday's rows first; a stationary policy has no such column."""
 
 from __future__ import annotations
@@ -26,11 +28,12 @@ _ROWS_PER_CHUNK = 4096
 
 _EXPORT_DOC: dict[int | str, dict[str, Any]] = {
     200: {
-        "description": "The policy table. CSV: one row per closing stock, columns: the stock of "
-        "each location, the units on each lane (`from->to`), the value; for a network with "
-        "weekly fields the rows start with the `weekday` of the closing count (mon .. sun), one "
-        "table per weekday. JSON: the same rows under `rows`, with `columns`, `version`, "
-        "`criterion` and `profit_per_day`.",
+        "description": "The policy table. CSV: one row per closing stock, columns: the "
+        "policy's `version` and `criterion` (the same on every row), the stock of each "
+        "location, the units on each lane (`from->to`), the value; for a network with weekly "
+        "fields the stock is preceded by the `weekday` of the closing count (mon .. sun), one "
+        "table per weekday. JSON: the same rows (without version and criterion) under `rows`, "
+        "with `columns`, `version`, `criterion` and `profit_per_day`.",
         "content": {"text/csv": {"schema": {"type": "string"}}, "application/json": {}},
     }
 }
@@ -81,11 +84,12 @@ def _chunks(served: ServedPolicy) -> Iterator[tuple[list[str], np.ndarray, np.nd
 
 
 def _csv(served: ServedPolicy) -> Iterator[str]:
-    yield ",".join(_columns(served)) + "\n"
+    yield ",".join(["version", "criterion", *_columns(served)]) + "\n"
     for lead, stock, flows, values in _chunks(served):
         buffer = io.StringIO()
         for s, f, v in zip(stock.tolist(), flows.tolist(), values.tolist(), strict=True):
-            buffer.write(",".join(map(str, (*lead, *s, *f))) + f",{v!r}\n")
+            cells = (served.version_number, served.criterion, *lead, *s, *f)
+            buffer.write(",".join(map(str, cells)) + f",{v!r}\n")
         yield buffer.getvalue()
 
 

@@ -238,6 +238,23 @@ def test_apply_creates_a_calibrated_version_and_recommendations_say_so(
     estimates = client.get(f"/v1/networks/{network['id']}/calibration").json()
     assert estimates["spec"] == calibrated
 
+    # The calibrated numbers sent back unchanged (another field changed) stay calibrated ...
+    path = f"/v1/networks/{network['id']}"
+    stock = {"stock": {"riverside": 3, "hilltop": 4}}
+    resent = {**calibrated, "locations": [dict(loc) for loc in calibrated["locations"]]}
+    resent["locations"][0]["holding_cost"] = 0.11
+    assert client.put(path, json=resent, headers={"If-Match": '"2"'}).status_code == 200
+    run_worker(engine)
+    kept = client.post(f"{path}/recommendation", json=stock).json()
+    assert kept["version"] == 3
+    assert kept["parameters_calibrated_at"] == after["parameters_calibrated_at"]
+    # ... and a changed demand law is no longer an estimate.
+    resent["locations"][1]["demand"] = {"dist": "poisson", "mean": 1.5}
+    assert client.put(path, json=resent, headers={"If-Match": '"3"'}).status_code == 200
+    run_worker(engine)
+    edited = client.post(f"{path}/recommendation", json=stock).json()
+    assert (edited["version"], edited["parameters_calibrated_at"]) == (4, None)
+
 
 def test_apply_without_history_is_a_conflict(client: TestClient) -> None:
     network = create_network(client)
