@@ -74,6 +74,7 @@ __all__ = [
     "latest_version",
     "list_jobs",
     "list_networks",
+    "live_analysis_jobs",
     "live_versions_newest_first",
     "network_by_name",
     "policy_for",
@@ -529,6 +530,20 @@ def analysis_job(
         )
     ).one_or_none()
     return None if row is None else (row[0], row[1])
+
+
+def live_analysis_jobs(session: Session, tenant_id: int) -> int:
+    """How many simulations and what-if comparisons of the tenant are queued or running."""
+    return int(
+        session.scalar(
+            select(func.count()).where(
+                SolveJob.tenant_id == tenant_id,
+                SolveJob.kind != JobKind.SOLVE.value,
+                SolveJob.state.in_(LIVE_STATES),
+            )
+        )
+        or 0
+    )
 
 
 def get_job(session: Session, job_id: int) -> SolveJob | None:
