@@ -58,6 +58,7 @@ __all__ = [
     "Problem",
     "RecommendationOut",
     "RecommendationRequest",
+    "RelayOut",
     "SimulationJobOut",
     "SimulationReportOut",
     "SimulationRequest",
@@ -227,6 +228,16 @@ class TransferOut(BaseModel):
     unit_cost: float
 
 
+class RelayOut(BaseModel):
+    """A location that both receives and sends units on one night: units pass through it."""
+
+    location: str
+    receives: int = Field(description="Units arriving tonight, over all lanes.")
+    sends: int = Field(description="Units leaving tonight, over all lanes.")
+    net_change: int = Field(description="receives - sends: what its stock gains tonight.")
+    explanation: str = Field(description="Why units go through this location, in words.")
+
+
 class RecommendationOut(BaseModel):
     network_id: int
     criterion: str
@@ -245,6 +256,11 @@ class RecommendationOut(BaseModel):
     stock: dict[str, int]
     transfers: list[TransferOut] = Field(description="Tonight's moves; empty when none pays.")
     stock_after_transfers: dict[str, int]
+    relays: list[RelayOut] = Field(
+        default_factory=list,
+        description="Locations that receive and send on the same night (three or more "
+        "locations), with their net change and why; empty when there are none.",
+    )
     transfer_cost: float
     expected_value: float = Field(
         description="Value of following the policy from this stock (discounted: expected "
@@ -346,6 +362,14 @@ class InstructionsOut(BaseModel):
     computed_at: Timestamp
     send: list[Movement] = Field(description="Units this location sends tonight, by destination.")
     receive: list[Movement] = Field(description="Units this location receives, by origin.")
+    net_change: int = Field(description="Units received minus units sent tonight.")
+    relay: bool = Field(
+        description="True when this location both receives and sends tonight: units pass "
+        "through it (see relay_explanation)."
+    )
+    relay_explanation: str | None = Field(
+        default=None, description="Why units go through this location, for a relay."
+    )
     stock: dict[str, int] = Field(description="The closing stock the instructions answer.")
 
 

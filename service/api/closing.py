@@ -13,7 +13,7 @@ from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
 from service.api.deps import CacheDep, NetworkId, Reader, SessionDep, Writer, get_network
-from service.api.views import transfers_of
+from service.api.views import relays_of, transfers_of
 from service.db import repository
 from service.db.base import utcnow
 from service.db.tables import ClosingCount, Instruction, Network, NetworkVersion
@@ -179,6 +179,7 @@ def _issue(
     plan = {
         "stock": counts,
         "transfers": [t.model_dump(by_alias=True) for t in transfers],
+        "relays": [relay.model_dump() for relay in relays_of(served.result, transfers)],
     }
     instruction = Instruction(
         network_id=network.id,
@@ -204,6 +205,9 @@ def _for_location(
 ) -> InstructionsOut:
     plan = json.loads(instruction.plan)
     version = session.get_one(NetworkVersion, instruction.version_id)
+    relay = next((r for r in plan.get("relays", []) if r["location"] == location), None)
+    received = sum(t["units"] for t in plan["transfers"] if t["to"] == location)
+    sent = sum(t["units"] for t in plan["transfers"] if t["from"] == location)
     return InstructionsOut(
         network_id=network_id,
         location=location,
@@ -221,5 +225,8 @@ def _for_location(
             for t in plan["transfers"]
             if t["to"] == location
         ],
+        net_change=received - sent,
+        relay=received > 0 and sent > 0,
+        relay_explanation=None if relay is None else relay["explanation"],
         stock=plan["stock"],
     )

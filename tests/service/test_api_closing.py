@@ -22,6 +22,7 @@ from tests.service.api_support import (
     stock_of,
     weekly_document,
 )
+from tests.service.test_api_recommendations import chain_document, relay_stock
 
 DEMO_SPEC = NetworkSpec.model_validate(demo_document())
 
@@ -279,3 +280,23 @@ def test_weekly_instructions_follow_the_weekday_of_the_business_date(
         {"from": m["location"], "to": "riverside", "units": m["units"]} for m in tonight["receive"]
     ]
     assert moved == [{k: t[k] for k in ("from", "to", "units")} for t in expected]
+
+
+def test_instructions_mark_a_relay_with_its_net_change(client: TestClient, engine: Engine) -> None:
+    document = chain_document()
+    spec = NetworkSpec.model_validate(document)
+    network_id = create_network(client, document)["id"]
+    run_worker(engine)
+    vector = relay_stock(spec)
+    day = today()
+    for location, units in stock_of(spec, vector).items():
+        assert report(client, network_id, location, day, units).status_code == 200
+    plans = {loc: instructions(client, network_id, loc, day).json() for loc in spec.location_ids}
+    assert [loc for loc, plan in plans.items() if plan["relay"]] == ["middle"]
+    middle = plans["middle"]
+    received = sum(m["units"] for m in middle["receive"])
+    sent = sum(m["units"] for m in middle["send"])
+    assert received > 0 and sent > 0 and middle["net_change"] == received - sent
+    assert "no lane from depot to far" in middle["relay_explanation"]
+    assert plans["depot"]["net_change"] == -plans["depot"]["send"][0]["units"]
+    assert plans["depot"]["relay_explanation"] is None
