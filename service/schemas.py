@@ -34,6 +34,7 @@ __all__ = [
     "CalibrationSettingsOut",
     "ClosingStockIn",
     "ClosingStockOut",
+    "CorrectionOut",
     "CriterionName",
     "EstimateOut",
     "HistoryOut",
@@ -337,6 +338,13 @@ class ClosingStockIn(BaseModel):
 
     business_date: date
     units: _Units
+    correction: bool = Field(
+        default=False,
+        description="Correct a count after the night's instructions were issued: they are "
+        "computed again from the corrected counts as the next `revision`, and the correction "
+        "(key, time, old and new count) is kept and listed in the instructions. Without it, a "
+        "count sent after the instructions were issued is refused (409).",
+    )
 
 
 class ClosingStockOut(BaseModel):
@@ -346,11 +354,27 @@ class ClosingStockOut(BaseModel):
     units: int
     reported_at: Timestamp
     missing: list[str] = Field(description="Locations yet to report for this business date.")
+    revision: int | None = Field(
+        default=None,
+        description="Revision of the night's instructions after this report (null while they "
+        "are not issued yet); a correction that changes the count raises it by one.",
+    )
 
 
 class Movement(BaseModel):
     location: str
     units: int
+
+
+class CorrectionOut(BaseModel):
+    """A closing count corrected after the instructions were first issued."""
+
+    location: str
+    old_units: int
+    new_units: int
+    revision: int = Field(description="The revision of the instructions it produced.")
+    key_prefix: str = Field(description="Public prefix of the API key that sent it.")
+    corrected_at: Timestamp
 
 
 class InstructionsOut(BaseModel):
@@ -359,7 +383,23 @@ class InstructionsOut(BaseModel):
     business_date: date
     version: int
     criterion: str
-    computed_at: Timestamp
+    computed_at: Timestamp = Field(description="When this revision was computed.")
+    revision: int = Field(
+        description="1 when first issued, one more for each correction of a count (also in "
+        "the ETag header)."
+    )
+    moves_changed_in_revision: int = Field(
+        description="The revision in which this location's sends and receives last changed: "
+        "above the revision it acted on, its instructions are new."
+    )
+    corrections: list[CorrectionOut] = Field(
+        description="Counts of this night corrected after the first issue, oldest first."
+    )
+    notes: list[str] = Field(
+        default_factory=list,
+        description="What deserves a look before acting: a stale or uncalibrated policy, a "
+        "move that leaves the sender below its expected demand for tomorrow.",
+    )
     send: list[Movement] = Field(description="Units this location sends tonight, by destination.")
     receive: list[Movement] = Field(description="Units this location receives, by origin.")
     net_change: int = Field(description="Units received minus units sent tonight.")
