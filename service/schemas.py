@@ -428,7 +428,10 @@ class HistoryRowIn(BaseModel):
     location: Annotated[str, Field(min_length=1, max_length=64)]
     units_sold: _Count
     stock_at_open: _Count = Field(description="Units on hand when the day began.")
-    units_received: _Count = Field(description="Units delivered during the day (on sale the next).")
+    units_received: _Count = Field(
+        description="Units delivered during the day (on sale the next day, or the same day "
+        "with the network's receipts_sell_same_day calibration setting)."
+    )
 
 
 class HistoryUpload(BaseModel):
@@ -511,6 +514,13 @@ class CalibrationSettingsIn(BaseModel):
         default=None,
         description="Apply a new estimate by itself when it moves a mean or variance by more "
         "than this fraction (none: never).",
+    )
+    receipts_sell_same_day: bool = Field(
+        default=False,
+        description="True: units received in the morning are on sale the same day, so a day "
+        "may sell up to stock_at_open + units_received and is sold out when it sells all of "
+        "them. False (default): receipts are on sale from the next day, and a row selling more "
+        "than its stock at open is refused.",
     )
 
 

@@ -736,18 +736,17 @@ def sales_history(
 
 
 def sales_history_summary(
-    session: Session, network_id: int
+    session: Session, network_id: int, *, receipts_sell_same_day: bool = False
 ) -> list[tuple[str, int, int, date, date]]:
-    """(location, days, sold-out days, first day, last day) per location with history."""
-    sold_out = func.sum(
-        case(
-            (
-                and_(SalesDay.units_sold == SalesDay.stock_at_open, SalesDay.stock_at_open > 0),
-                1,
-            ),
-            else_=0,
-        )
+    """(location, days, sold-out days, first day, last day) per location with history. A day
+    sold out when it sold all it could: its stock at open, plus its receipts when they sell the
+    same day."""
+    available = (
+        SalesDay.stock_at_open + SalesDay.units_received
+        if receipts_sell_same_day
+        else SalesDay.stock_at_open
     )
+    sold_out = func.sum(case((and_(SalesDay.units_sold == available, available > 0), 1), else_=0))
     rows = session.execute(
         select(
             SalesDay.location_id,
