@@ -13,7 +13,7 @@ import threading
 from collections import OrderedDict
 from collections.abc import Mapping
 from dataclasses import dataclass
-from datetime import date, datetime
+from datetime import UTC, date, datetime, time, timedelta
 from typing import Protocol
 from zoneinfo import ZoneInfo
 
@@ -37,10 +37,13 @@ __all__ = [
     "ServedPolicy",
     "StockProblemsError",
     "UnknownNetworkError",
+    "business_date_now",
+    "business_date_of",
     "load_policy",
     "recommend",
     "stock_vector",
     "today_in",
+    "utc_now",
 ]
 
 log = logging.getLogger(__name__)
@@ -307,25 +310,51 @@ def recommend(
     """Tonight's moves for `network` from closing `stock` (units by location id) counted on
     `business_date`, and the business date whose night the answer is for. A stationary policy
     is the same every night (the date is returned as given); a weekly one uses the night after
-    the business date, by default today's in the network's time zone."""
+    the business date, by default the current business date where the stores are (see
+    business_date_now)."""
     served = load_policy(session, cache, network, criterion)
     result = served.result
     if result.phases > 1 and business_date is None:
-        business_date = today_in(_timezone_of(session, served.version_id))
+        business_date = business_date_of(session, network.id)
     phase = 0 if business_date is None else result.phase_of(business_date.weekday())
     recommendation = result.recommend(stock_vector(result, stock), phase=phase)
     return served, recommendation, business_date
 
 
+def utc_now() -> datetime:
+    """The current moment (aware, UTC): the read path's only clock, replaced in tests."""
+    return datetime.now(UTC)
+
+
 def today_in(zone: str) -> date:
     """Today's date where the locations are (an IANA time zone)."""
-    return datetime.now(ZoneInfo(zone)).date()
+    return utc_now().astimezone(ZoneInfo(zone)).date()
 
 
-def _timezone_of(session: Session, version_id: int) -> str:
-    # Only weekly networks need it, and only when the caller gave no business date.
-    spec_json = session.scalar(
-        select(NetworkVersion.spec_json).where(NetworkVersion.id == version_id)
-    )
-    zone: str = json.loads(spec_json or "{}").get("timezone", DEFAULT_TIMEZONE)
-    return zone
+def business_date_now(zone: str, cutoff: time | None, now: datetime | None = None) -> date:
+    """The business date a closing count sent now belongs to: the local date in `zone`, or the
+    day before while the local time is before `cutoff` (a count sent at 02:00 with a 04:00
+    cut-off closes the previous day). No cut-off: midnight."""
+    local = (now or utc_now()).astimezone(ZoneInfo(zone))
+    if cutoff is not None and local.time().replace(tzinfo=None) < cutoff:
+        return local.date() - timedelta(days=1)
+    return local.date()
+
+
+def business_date_of(session: Session, network_id: int) -> date:
+    """The current business date of a network, from its current version's time zone and its
+    closing cut-off. Only asked when a caller gives no business date."""
+    zone, cutoff = _clock_of(session, network_id)
+    return business_date_now(zone, cutoff)
+
+
+def _clock_of(session: Session, network_id: int) -> tuple[str, time | None]:
+    row = session.execute(
+        select(NetworkVersion.spec_json, Network.closing_cutoff)
+        .join(Network, Network.id == NetworkVersion.network_id)
+        .where(NetworkVersion.network_id == network_id)
+        .order_by(NetworkVersion.number.desc())
+        .limit(1)
+    ).one()
+    zone: str = json.loads(row[0]).get("timezone", DEFAULT_TIMEZONE)
+    return zone, row[1]

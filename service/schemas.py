@@ -4,7 +4,7 @@ NetworkSpec; everything else is defined here, inputs separate from outputs."""
 from __future__ import annotations
 
 import json
-from datetime import UTC, date, datetime
+from datetime import UTC, date, datetime, time
 from pathlib import Path
 from typing import Annotated, Any, Literal
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
@@ -130,14 +130,32 @@ class NetworkCreate(NetworkSpec):
     model_config = ConfigDict(json_schema_extra={"examples": [DEMO_NETWORK]})
 
     criteria: Criteria = ["discounted"]  # noqa: RUF012  (pydantic copies defaults)
+    closing_cutoff: time | None = Field(
+        default=None,
+        description="Local time (in `timezone`) before which a closing count belongs to the "
+        "previous business date, e.g. 04:00 for stores that close after midnight; absent: "
+        "midnight on creation, unchanged on update. Not part of the specification: changing "
+        "it queues no solve.",
+    )
 
     @field_validator("timezone")
     @classmethod
     def _known_timezone(cls, zone: str) -> str:
         return known_timezone(zone)
 
+    @field_validator("closing_cutoff")
+    @classmethod
+    def _whole_minutes(cls, cutoff: time | None) -> time | None:
+        if cutoff is not None and (
+            cutoff.tzinfo is not None or cutoff.second or cutoff.microsecond
+        ):
+            raise ValueError("give a local time of day in whole minutes, e.g. 04:00")
+        return cutoff
+
     def spec(self) -> NetworkSpec:
-        return NetworkSpec.model_validate(self.model_dump(by_alias=True, exclude={"criteria"}))
+        return NetworkSpec.model_validate(
+            self.model_dump(by_alias=True, exclude={"criteria", "closing_cutoff"})
+        )
 
 
 class NetworkUpdate(NetworkCreate):
@@ -183,6 +201,10 @@ class NetworkOut(_Out):
     created_at: Timestamp
     version: int = Field(description="Current version number; send it in If-Match to update.")
     spec_hash: str = Field(description="SHA-256 of the current specification as canonical JSON.")
+    closing_cutoff: str = Field(
+        description="Local time (HH:MM) before which a closing count belongs to the previous "
+        "business date; 00:00: midnight."
+    )
     solves: list[SolveState]
 
 
@@ -201,8 +223,9 @@ BusinessDate = Annotated[
     date | None,
     Field(
         description="Business date of the closing count; tonight is the night after it. "
-        "Matters only for a network with weekly fields, where it defaults to today in the "
-        "network's time zone.",
+        "Matters only for a network with weekly fields, where it defaults to the current "
+        "business date: today in the network's time zone, or yesterday before its "
+        "closing_cutoff.",
         ge=date(2000, 1, 1),
         le=date(2199, 12, 31),
     ),
@@ -336,7 +359,11 @@ class ClosingStockIn(BaseModel):
         json_schema_extra={"examples": [{"business_date": "2026-12-01", "units": 13}]},
     )
 
-    business_date: date
+    business_date: date | None = Field(
+        default=None,
+        description="The business date closed; default: the network's current business date "
+        "(today in its time zone, or yesterday before its closing_cutoff).",
+    )
     units: _Units
     correction: bool = Field(
         default=False,

@@ -27,7 +27,13 @@ from service.calibration import law_moments
 from service.db import repository
 from service.db.base import utcnow
 from service.db.tables import ClosingCorrection, ClosingCount, Instruction, Network, NetworkVersion
-from service.policies import PolicyNotReadyError, ServedPolicy, StockProblemsError, recommend
+from service.policies import (
+    PolicyNotReadyError,
+    ServedPolicy,
+    StockProblemsError,
+    business_date_of,
+    recommend,
+)
 from service.problems import PROBLEM_RESPONSES, Conflict, InvalidInput, NotFound
 from service.schemas import (
     ClosingStockIn,
@@ -133,12 +139,13 @@ def report_closing_stock(
     network = get_network(session, caller.tenant_id, network_id)
     spec = repository.current_spec(session, network.id)
     capacity = _check_location(spec, network_id, location)
-    _check_date(network, body.business_date, "/business_date")
+    business_date = body.business_date or business_date_of(session, network.id)
+    _check_date(network, business_date, "/business_date")
     _check_units(network_id, location, body.units, capacity)
-    issued = _instruction(session, network_id, body.business_date, for_update=body.correction)
+    issued = _instruction(session, network_id, business_date, for_update=body.correction)
     if issued is not None and not body.correction:
         raise Conflict(
-            f"instructions for {body.business_date} were issued at {issued.computed_at:%H:%M:%S} "
+            f"instructions for {business_date} were issued at {issued.computed_at:%H:%M:%S} "
             "UTC from the counts then reported; they are kept so every location acts on the "
             'same plan. To correct a count, send it again with "correction": true: the '
             f"instructions are issued again as revision {issued.revision + 1}, and every "
@@ -148,25 +155,23 @@ def report_closing_stock(
         select(ClosingCount).where(
             ClosingCount.network_id == network_id,
             ClosingCount.location_id == location,
-            ClosingCount.business_date == body.business_date,
+            ClosingCount.business_date == business_date,
         )
     ).one_or_none()
     if row is None:
-        row = ClosingCount(
-            network_id=network_id, location_id=location, business_date=body.business_date
-        )
+        row = ClosingCount(network_id=network_id, location_id=location, business_date=business_date)
         session.add(row)
     old_units = row.units
     row.units = body.units
     row.reported_at = utcnow()
     session.flush()
-    counts = _counts(session, network_id, body.business_date)
+    counts = _counts(session, network_id, business_date)
     if issued is not None and old_units != body.units:
         _correct(session, cache, network, issued, counts, location, old_units, body.units, caller)
     return ClosingStockOut(
         network_id=network_id,
         location=location,
-        business_date=body.business_date,
+        business_date=business_date,
         units=body.units,
         reported_at=row.reported_at,
         missing=_missing(spec, counts),
@@ -249,11 +254,17 @@ def _etag(instruction: Instruction) -> str:
 def location_instructions(
     network_id: NetworkId,
     location: str,
-    business_date: Annotated[date, Query(description="The business day whose closing counts.")],
     session: SessionDep,
     cache: CacheDep,
     caller: Reader,
     response: Response,
+    business_date: Annotated[
+        date | None,
+        Query(
+            description="The business day whose closing counts; default: the network's current "
+            "business date (today in its time zone, or yesterday before its closing_cutoff)."
+        ),
+    ] = None,
     if_none_match: Annotated[
         str | None,
         Header(description="An ETag seen before: 304 while the instructions are unchanged."),
@@ -264,6 +275,8 @@ def location_instructions(
     network = get_network(session, caller.tenant_id, network_id)
     spec = repository.current_spec(session, network.id)
     _check_location(spec, network_id, location)
+    if business_date is None:
+        business_date = business_date_of(session, network.id)
     _check_date(network, business_date, "query:/business_date")
     issued = _instruction(session, network_id, business_date)
     if issued is None:

@@ -57,6 +57,7 @@ def create_network(
         )
     tenant = session.get_one(Tenant, caller.tenant_id)
     network, version, jobs = repository.create_network(session, tenant, spec, body.criteria)
+    network.closing_cutoff = body.closing_cutoff
     response.headers["Location"] = f"/v1/networks/{network.id}"
     response.headers["ETag"] = etag(version.number)
     return network_out(session, network, jobs)
@@ -114,6 +115,8 @@ def update_network(
         or ["discounted"]
     )
     version, jobs = repository.add_version(session, network, spec, criteria)
+    if body.closing_cutoff is not None:
+        network.closing_cutoff = body.closing_cutoff
     if current.calibrated_at is not None and _same_laws(
         NetworkSpec.model_validate_json(current.spec_json), spec
     ):

@@ -28,7 +28,7 @@ from service.pictures import (
     value_grid,
     value_label,
 )
-from service.policies import PolicyCache, ServedPolicy, load_policy
+from service.policies import PolicyCache, ServedPolicy, business_date_of, load_policy
 from service.problems import PROBLEM_RESPONSES, InvalidInput
 from service.schemas import DEFAULT_CRITERION_RULE, CriterionName
 from service.schemas import WeekdayName as Weekday
@@ -100,18 +100,22 @@ async def plane_query(
         Weekday | None,
         Query(
             description="For a network with weekly fields: the policy for closing counts on "
-            "this weekday (the moves of that night); default mon. Ignored otherwise."
+            "this weekday (the moves of that night); default: the weekday of the network's "
+            "current business date (today in its time zone, or yesterday before its "
+            "closing_cutoff). Ignored otherwise."
         ),
     ] = None,
 ) -> PlaneQuery:
     return PlaneQuery(x, y, at, weekday)
 
 
-def _phase(result: PolicyResult, query: PlaneQuery) -> tuple[int, str]:
+def _phase(
+    session: Session, network: Network, result: PolicyResult, query: PlaneQuery
+) -> tuple[int, str]:
     """The phase to draw and the words for it in a title ("" for a stationary policy)."""
     if result.phases == 1:
         return 0, ""
-    day = query.weekday or "mon"
+    day = query.weekday or WEEKDAYS[business_date_of(session, network.id).weekday()]
     return result.phase_of(WEEKDAYS.index(day)), f", {day} night"
 
 
@@ -203,7 +207,7 @@ def _moves(
     image_format: ImageFormat,
 ) -> Response:
     network, served, plane = _served_plane(session, cache, tenant_id, network_id, criterion, query)
-    phase, night = _phase(served.result, query)
+    phase, night = _phase(session, network, served.result, query)
     subject = f"version {served.version_number} · net moves, {served.criterion} policy{night}"
     body = render_moves(
         net_inflow_grid(served.result, plane, phase),
@@ -226,7 +230,7 @@ def _values(
     image_format: ImageFormat,
 ) -> Response:
     network, served, plane = _served_plane(session, cache, tenant_id, network_id, criterion, query)
-    phase, night = _phase(served.result, query)
+    phase, night = _phase(session, network, served.result, query)
     subject = f"version {served.version_number} · value of the {served.criterion} policy{night}"
     if served.result.gain is not None:
         subject += f", profit per day {served.result.gain:,.2f}"

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from datetime import date
+from datetime import date, time
 
 from sqlalchemy.orm import Session
 
@@ -60,6 +60,7 @@ def network_out(
         "created_at": network.created_at,
         "version": version.number,
         "spec_hash": version.spec_hash,
+        "closing_cutoff": (network.closing_cutoff or time(0)).strftime("%H:%M"),
         "solves": solves,
     }
     if jobs is None:

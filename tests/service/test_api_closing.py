@@ -11,8 +11,10 @@ from typing import Any
 from fastapi.testclient import TestClient
 from sqlalchemy import Engine
 
+import service.policies
 from service.calibration import law_moments
 from solver import NetworkSpec, solve_network
+from solver.spec import WEEKDAYS as WEEK
 from tests.service.api_support import (
     assert_problem,
     create_network,
@@ -231,8 +233,6 @@ def test_business_date_must_lie_between_the_day_before_creation_and_tomorrow(
         assert report(client, network_id, "riverside", day, 3).status_code == 200
     malformed = instructions(client, network_id, "riverside", "next tuesday")
     assert pointers(assert_problem(malformed, 422, "invalid-input")) == ["query:/business_date"]
-    absent = client.get(f"/v1/networks/{network_id}/locations/riverside/instructions")
-    assert pointers(assert_problem(absent, 422, "invalid-input")) == ["query:/business_date"]
 
 
 @sqlite_only
@@ -427,3 +427,48 @@ def test_instructions_note_uncalibrated_parameters_and_a_sender_left_short(
         assert any("not estimated from sales history" in note for note in notes)
         flagged = sorted(n.split(" sends ")[0] for n in notes if " sends " in n)
         assert flagged == sorted(short_senders(vector)), (vector, notes)
+
+
+def test_counts_before_the_closing_cutoff_belong_to_the_previous_business_date(
+    client: TestClient, engine: Engine, monkeypatch: Any
+) -> None:
+    document = weekly_document(timezone="UTC", closing_cutoff="04:00")
+    created = create_network(client, document)
+    assert created["closing_cutoff"] == "04:00"
+    network_id = created["id"]
+    run_worker(engine)
+    day = today()
+    yesterday = day - timedelta(days=1)
+
+    def at(hour: int, minute: int) -> None:
+        moment = datetime(day.year, day.month, day.day, hour, minute, tzinfo=UTC)
+        monkeypatch.setattr(service.policies, "utc_now", lambda: moment)
+
+    at(2, 30)  # after midnight, before the cut-off: still yesterday's close
+    reported = client.put(
+        f"/v1/networks/{network_id}/locations/riverside/closing-stock", json={"units": 4}
+    )
+    assert reported.status_code == 200, reported.text
+    assert reported.json()["business_date"] == yesterday.isoformat()
+    waiting = client.get(f"/v1/networks/{network_id}/locations/hilltop/instructions")
+    assert assert_problem(waiting, 409)["missing"] == ["hilltop"]
+    assert yesterday.isoformat() in waiting.json()["detail"]
+    answer = client.post(
+        f"/v1/networks/{network_id}/recommendation",
+        json={"stock": {"riverside": 4, "hilltop": 2}},
+    ).json()
+    assert (answer["business_date"], answer["night"]) == (
+        yesterday.isoformat(),
+        WEEK[yesterday.weekday()],
+    )
+    # Pictures of a weekly policy default to the same night, not to Monday.
+    picture = client.get(f"/v1/networks/{network_id}/policy.svg")
+    assert f"{WEEK[yesterday.weekday()]} night" in picture.text
+
+    at(4, 0)  # from the cut-off on: today's business date
+    reported = client.put(
+        f"/v1/networks/{network_id}/locations/riverside/closing-stock", json={"units": 5}
+    )
+    assert reported.json()["business_date"] == day.isoformat()
+    picture = client.get(f"/v1/networks/{network_id}/policy.svg")
+    assert f"{WEEK[day.weekday()]} night" in picture.text

@@ -365,6 +365,31 @@ def test_put_without_criteria_keeps_those_in_use_and_a_put_may_change_them(
     assert solves_by_criterion(client.get(path).json())["average"]["state"] == "not_requested"
 
 
+def test_closing_cutoff_is_kept_on_the_network_and_queues_no_solve(
+    client: TestClient, engine: Engine
+) -> None:
+    created = create_network(client)
+    # Not part of the specification: the demo's hash is the same with or without it.
+    assert created["closing_cutoff"] == "00:00"
+    assert created["spec_hash"] == spec_hash_of(demo_document())
+    run_worker(engine)
+    path = f"/v1/networks/{created['id']}"
+    moved = client.put(
+        path, json=demo_document(closing_cutoff="04:30"), headers={"If-Match": '"1"'}
+    )
+    assert moved.status_code == 200, moved.text
+    body = moved.json()
+    assert (body["closing_cutoff"], body["jobs"]) == ("04:30", [])
+    assert body["spec_hash"] == created["spec_hash"]
+    # An update without it keeps it; seconds are refused.
+    kept = client.put(path, json=demo_document(), headers={"If-Match": '"2"'}).json()
+    assert kept["closing_cutoff"] == "04:30"
+    bad = client.put(
+        path, json=demo_document(closing_cutoff="04:30:15"), headers={"If-Match": '"3"'}
+    )
+    assert pointers(assert_problem(bad, 422)) == ["/closing_cutoff"]
+
+
 def test_rename_onto_another_networks_name_is_a_conflict(client: TestClient) -> None:
     first = create_network(client, demo_document(name="East side"))
     second = create_network(client, demo_document(name="West side"))
