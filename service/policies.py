@@ -115,6 +115,11 @@ class PolicyCache:
             self._entries.move_to_end(key)
             return entry
 
+    def __contains__(self, key: tuple[int, str]) -> bool:
+        """Whether `key` is cached, without counting a lookup or refreshing its place."""
+        with self._lock:
+            return key in self._entries
+
     def put(self, key: tuple[int, str], entry: _Entry) -> None:
         if self.size <= 0:
             return
@@ -190,7 +195,7 @@ def _default_criterion(
     session: Session, cache: PolicyCache, network: NetworkKey, newest: VersionHead
 ) -> str:
     # The common case costs nothing: the current version's first criterion is cached.
-    if cache.get((newest.id, CRITERIA_ORDER[0])) is not None:
+    if (newest.id, CRITERIA_ORDER[0]) in cache:
         return CRITERIA_ORDER[0]
     requested = repository.criteria_requested(session, network.tenant_id, newest.spec_hash)
     for criterion in CRITERIA_ORDER:
