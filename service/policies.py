@@ -261,18 +261,12 @@ def _load(
 def _not_ready(
     session: Session, network: NetworkKey, version: VersionHead, criterion: str
 ) -> PolicyNotReadyError:
-    jobs = repository.jobs_for(session, network.tenant_id, version.spec_hash, criterion)
-    if not jobs:
-        return PolicyNotReadyError(
-            f"no {criterion} solve was requested for version {version.number} of network "
-            f"{network.id}",
-            job_state=None,
-        )
-    job = jobs[0]
-    detail = f": {job.error}" if job.error and job.state == "failed" else ""
+    """The current version's solve is live (checked by _check_being_solved) and no version has
+    a policy yet: worth waiting for."""
+    job = repository.jobs_for(session, network.tenant_id, version.spec_hash, criterion)[0]
     return PolicyNotReadyError(
         f"the {criterion} policy of version {version.number} of network {network.id} is not "
-        f"ready (job {job.id} {job.state}{detail})",
+        f"ready (job {job.id} {job.state})",
         job_state=job.state,
     )
 

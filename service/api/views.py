@@ -141,7 +141,7 @@ def _why_through(
         return f"there is no lane from {start} to {end}, so units reach {end} through {location}"
     cost, limit = direct
     if direct_moved is not None and direct_moved.units >= limit:
-        return f"the direct lane {start} -> {end} is full tonight ({limit} units)"
+        return f"the direct lane {start} -> {end} is full tonight (at most {limit})"
     if cost > via:
         return (
             f"the direct lane {start} -> {end} costs {cost:g} a unit, more than {via:g} "

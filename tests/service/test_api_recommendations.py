@@ -18,6 +18,7 @@ from sqlalchemy import Engine
 
 import service.policies
 from service.api import recommendations as recommendations_module
+from service.api.views import relays_of, transfers_of
 from solver import NetworkSpec, PolicyResult, solve_network
 from solver.spec import WEEKDAYS as WEEK
 from tests.service.api_support import (
@@ -535,3 +536,33 @@ def test_a_location_that_receives_and_sends_is_marked_as_a_relay(
     # Nothing relays from a stock where no location sends and receives.
     quiet = recommend(client, network_id, {"depot": 0, "middle": 0, "far": 0}).json()
     assert quiet["relays"] == []
+
+
+@pytest.mark.parametrize(
+    ("direct", "reason"),
+    [
+        ({"unit_cost": 3.0, "max_units": 1}, "costs 3 a unit, more than 1 through middle"),
+        ({"unit_cost": 0.9, "max_units": 1}, "the direct lane depot -> far is full tonight"),
+    ],
+)
+def test_a_relay_beside_a_direct_lane_says_why_the_lane_is_not_used_alone(
+    direct: dict[str, Any], reason: str
+) -> None:
+    document = chain_document()
+    document["lanes"].append({"from": "depot", "to": "far", **direct})
+    spec = NetworkSpec.model_validate(document)
+    result = solve_network(spec)
+    found = []
+    for vector in itertools.product(*(range(loc.capacity + 1) for loc in spec.locations)):
+        flows = result.recommend(list(vector)).flows
+        for relay in relays_of(result, transfers_of(result, flows)):
+            if reason in relay.explanation:
+                found.append(flows)
+    assert found, f"no relay explained by {reason!r}"
+    # The reason holds for the moves themselves (lane 2 is the direct lane of the document).
+    for flows in found:
+        assert flows[0] > 0 and flows[1] > 0
+        if "full" in reason:
+            assert flows[2] == direct["max_units"]
+        else:
+            assert direct["unit_cost"] > 0.5 + 0.5
