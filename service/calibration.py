@@ -4,6 +4,10 @@ version those estimates would make.
 For each location with history, solver.calibration estimates demand by censored maximum
 likelihood (sold-out days count as "at least") and replenishment from receipts. The proposal is
 the current specification with those laws put in; locations without usable history keep theirs.
+With the network's `receipts_sell_same_day` setting, units received in the morning count as on
+sale that day: a day could sell stock at open plus receipts, and sold out when it sold all of
+them; without it (the default) receipts are on sale from the next day. The setting changes how
+history is read, not the transfer model, in which a day's replenishment is usable the next day.
 A parameter's change is |new - old| / max(|old|, CHANGE_FLOOR) for the mean and the variance of
 each law, so that a move from 0.0 to 0.01 units a day does not count as infinite.
 """
@@ -68,6 +72,14 @@ class CalibrationOptions:
     half_life_days: float | None = None
     confidence: float = DEFAULT_CONFIDENCE
     auto_apply_threshold: float | None = None
+    receipts_sell_same_day: bool = False
+
+    def available(
+        self, stock_at_open: NDArray[np.int64], received: NDArray[np.int64]
+    ) -> NDArray[np.int64]:
+        """Units each day could sell: the stock at open, plus the day's receipts when they
+        sell the same day. Shape (n_days,)."""
+        return stock_at_open + received if self.receipts_sell_same_day else stock_at_open
 
 
 @dataclass(frozen=True)
@@ -115,6 +127,7 @@ def options_for(session: Session, network_id: int) -> CalibrationOptions:
         half_life_days=row.half_life_days,
         confidence=row.confidence,
         auto_apply_threshold=row.auto_apply_threshold,
+        receipts_sell_same_day=row.receipts_sell_same_day,
     )
 
 
@@ -210,7 +223,7 @@ def propose(session: Session, network: Network, options: CalibrationOptions) -> 
             try:
                 calibration = calibrate_location(
                     days.sold,
-                    days.stock_at_open,
+                    options.available(days.stock_at_open, days.received),
                     days.received,
                     age_days=days.age_days,
                     half_life_days=options.half_life_days,
@@ -227,7 +240,11 @@ def propose(session: Session, network: Network, options: CalibrationOptions) -> 
                 else recency_weights(days.age_days, options.half_life_days)
             )
             weekday_demand = _weekday_test(
-                days.sold, days.stock_at_open, weekdays, weights, options.confidence
+                days.sold,
+                options.available(days.stock_at_open, days.received),
+                weekdays,
+                weights,
+                options.confidence,
             )
             # Receipts are never censored: an opening stock above them marks no day sold out.
             weekday_replenishment = _weekday_test(

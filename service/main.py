@@ -45,8 +45,10 @@ process, Howard's policy iteration) by background workers; recommendations are r
 cached optimal policy. Errors are RFC 9457 problem details (application/problem+json).
 
 Every /v1 request needs `Authorization: Bearer <API key>` (`stockrelay keys create`). Read
-scope answers GET and recommendations, write scope also creates and changes networks and
-closing counts. Operations that need more than read scope list 403. POST and PUT accept an
+scope answers GET and recommendations, and may start simulations and what-if comparisons (they
+change no stored network or policy; since they cost solver time, a tenant has at most
+`STOCKRELAY_ANALYSIS_MAX_LIVE_JOBS` (4) of them queued or running at once, 429 beyond); write
+scope also creates and changes networks and closing counts. Operations that need more than read scope list 403. POST and PUT accept an
 `Idempotency-Key`. Each problem's `type` is a path of this service (`/problems/<slug>`) that
 describes it.
 """

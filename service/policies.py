@@ -13,7 +13,7 @@ import threading
 from collections import OrderedDict
 from collections.abc import Mapping
 from dataclasses import dataclass
-from datetime import date, datetime
+from datetime import UTC, date, datetime, time, timedelta
 from typing import Protocol
 from zoneinfo import ZoneInfo
 
@@ -23,25 +23,35 @@ from sqlalchemy.orm import Session
 from service.codec import CorruptPolicyError, decode_policy
 from service.db import repository
 from service.db.repository import VersionHead
-from service.db.tables import NetworkVersion
+from service.db.tables import Network, NetworkVersion
 from solver import InvalidStockError, PolicyResult, Recommendation
 from solver.spec import DEFAULT_TIMEZONE
 
 __all__ = [
+    "CRITERIA_ORDER",
     "NetworkKey",
     "NetworkRef",
     "PolicyCache",
     "PolicyNotReadyError",
+    "PolicyNotSolvedError",
     "ServedPolicy",
     "StockProblemsError",
     "UnknownNetworkError",
+    "business_date_now",
+    "business_date_of",
     "load_policy",
     "recommend",
     "stock_vector",
     "today_in",
+    "utc_now",
 ]
 
 log = logging.getLogger(__name__)
+
+# A request that names no criterion gets the first of these the network's current version is
+# solved for (or being solved for): the same rule for recommendations, closing instructions,
+# exports and pictures.
+CRITERIA_ORDER = ("discounted", "average")
 
 
 class UnknownNetworkError(LookupError):
@@ -56,9 +66,21 @@ class PolicyNotReadyError(Exception):
         self.job_state = job_state
 
 
+class PolicyNotSolvedError(PolicyNotReadyError):
+    """No job will produce the asked policy: the current version is not solved for the
+    criterion (not requested, or its solve failed). `criteria` are those it is solved or being
+    solved for. (A kind of PolicyNotReadyError, so that whoever only skips unready policies
+    skips these too.)"""
+
+    def __init__(self, message: str, *, criteria: list[str], job_state: str | None) -> None:
+        super().__init__(message, job_state=job_state)
+        self.criteria = criteria
+
+
 @dataclass(frozen=True)
 class ServedPolicy:
     result: PolicyResult
+    criterion: str
     version_id: int
     version_number: int
     solved_at: datetime
@@ -93,6 +115,11 @@ class PolicyCache:
             self._entries.move_to_end(key)
             return entry
 
+    def __contains__(self, key: tuple[int, str]) -> bool:
+        """Whether `key` is cached, without counting a lookup or refreshing its place."""
+        with self._lock:
+            return key in self._entries
+
     def put(self, key: tuple[int, str], entry: _Entry) -> None:
         if self.size <= 0:
             return
@@ -120,28 +147,93 @@ class NetworkRef:
 
 
 def load_policy(
-    session: Session, cache: PolicyCache, network: NetworkKey, criterion: str
+    session: Session, cache: PolicyCache, network: NetworkKey, criterion: str | None
 ) -> ServedPolicy:
-    """The policy of the newest version of `network` that has one; `stale` when a newer version
-    is still waiting for its solve. NotFound when the network is missing, another tenant's or
-    archived (UnknownNetworkError); PolicyNotReadyError when no version has a policy."""
+    """The policy of the newest version of `network` that has one for `criterion` (None: the
+    first of CRITERIA_ORDER the current version is solved for). An older version answers, with
+    `stale` set, only while the current one's solve is queued or running: `stale` never lasts
+    when nothing is being solved. UnknownNetworkError when the network is missing, another
+    tenant's or archived; PolicyNotReadyError while the current version's solve is under way
+    and no older version has a policy; PolicyNotSolvedError when no job will produce it."""
     versions = repository.live_versions_newest_first(session, network.tenant_id, network.id)
     if not versions:
-        raise UnknownNetworkError(f"no network {network.id}")
+        raise UnknownNetworkError(_unknown(session, network))
+    newest = versions[0]
+    if criterion is None:
+        criterion = _default_criterion(session, cache, network, newest)
     for version in versions:
         entry = cache.get((version.id, criterion)) or _load(session, network, version, criterion)
         if entry is None:
+            if version is newest:
+                _check_being_solved(session, network, newest, criterion)
             continue
         cache.put((version.id, criterion), entry)
         return ServedPolicy(
             result=entry.result,
+            criterion=criterion,
             version_id=version.id,
             version_number=version.number,
             solved_at=entry.solved_at,
-            stale=version is not versions[0],
+            stale=version is not newest,
             calibrated_at=version.calibrated_at,
         )
-    raise _not_ready(session, network, versions[0], criterion)
+    raise _not_ready(session, network, newest, criterion)
+
+
+def _unknown(session: Session, network: NetworkKey) -> str:
+    """Why a network serves nothing: missing (or another tenant's), or archived."""
+    row = session.get(Network, network.id)
+    if row is not None and row.tenant_id == network.tenant_id and row.archived:
+        return (
+            f"network {network.id} is archived: it serves no recommendations or instructions "
+            f"(GET /v1/networks/{network.id} still shows it)"
+        )
+    return f"no network {network.id}"
+
+
+def _default_criterion(
+    session: Session, cache: PolicyCache, network: NetworkKey, newest: VersionHead
+) -> str:
+    # The common case costs nothing: the current version's first criterion is cached.
+    if (newest.id, CRITERIA_ORDER[0]) in cache:
+        return CRITERIA_ORDER[0]
+    requested = repository.criteria_requested(session, network.tenant_id, newest.spec_hash)
+    for criterion in CRITERIA_ORDER:
+        if criterion in requested:
+            return criterion
+    return CRITERIA_ORDER[0]
+
+
+def _check_being_solved(
+    session: Session, network: NetworkKey, newest: VersionHead, criterion: str
+) -> None:
+    """PolicyNotSolvedError unless the current version's solve for `criterion` is queued or
+    running (its policy is not stored yet)."""
+    jobs = repository.jobs_for(session, network.tenant_id, newest.spec_hash, criterion)
+    if jobs and jobs[0].state in repository.LIVE_STATES:
+        return
+    requested = repository.criteria_requested(session, network.tenant_id, newest.spec_hash)
+    solved_for = [c for c in CRITERIA_ORDER if c in requested and c != criterion]
+    others = (
+        f"it is solved (or being solved) for {', '.join(solved_for)}; ask for that criterion"
+        if solved_for
+        else "it is solved for no criterion"
+    )
+    if jobs:
+        job = jobs[0]
+        raise PolicyNotSolvedError(
+            f"the {criterion} solve of version {newest.number} of network {network.id} failed "
+            f"(job {job.id}: {job.error}); retry the job or send a corrected version; {others}",
+            criteria=solved_for,
+            job_state=job.state,
+        )
+    raise PolicyNotSolvedError(
+        f"version {newest.number} of network {network.id} is not solved for {criterion}: "
+        f"{others}, or add {criterion} to its criteria (PUT /v1/networks/{network.id} with "
+        '"criteria")',
+        criteria=solved_for,
+        job_state=None,
+    )
 
 
 def _load(
@@ -169,18 +261,12 @@ def _load(
 def _not_ready(
     session: Session, network: NetworkKey, version: VersionHead, criterion: str
 ) -> PolicyNotReadyError:
-    jobs = repository.jobs_for(session, network.tenant_id, version.spec_hash, criterion)
-    if not jobs:
-        return PolicyNotReadyError(
-            f"no {criterion} solve was requested for version {version.number} of network "
-            f"{network.id}",
-            job_state=None,
-        )
-    job = jobs[0]
-    detail = f": {job.error}" if job.error and job.state == "failed" else ""
+    """The current version's solve is live (checked by _check_being_solved) and no version has
+    a policy yet: worth waiting for."""
+    job = repository.jobs_for(session, network.tenant_id, version.spec_hash, criterion)[0]
     return PolicyNotReadyError(
         f"the {criterion} policy of version {version.number} of network {network.id} is not "
-        f"ready (job {job.id} {job.state}{detail})",
+        f"ready (job {job.id} {job.state})",
         job_state=job.state,
     )
 
@@ -216,32 +302,58 @@ def recommend(
     cache: PolicyCache,
     network: NetworkKey,
     stock: Mapping[str, int],
-    criterion: str = "discounted",
+    criterion: str | None = None,
     *,
     business_date: date | None = None,
 ) -> tuple[ServedPolicy, Recommendation, date | None]:
     """Tonight's moves for `network` from closing `stock` (units by location id) counted on
     `business_date`, and the business date whose night the answer is for. A stationary policy
     is the same every night (the date is returned as given); a weekly one uses the night after
-    the business date, by default today's in the network's time zone."""
+    the business date, by default the current business date where the stores are (see
+    business_date_now)."""
     served = load_policy(session, cache, network, criterion)
     result = served.result
     if result.phases > 1 and business_date is None:
-        business_date = today_in(_timezone_of(session, served.version_id))
+        business_date = business_date_of(session, network.id)
     phase = 0 if business_date is None else result.phase_of(business_date.weekday())
     recommendation = result.recommend(stock_vector(result, stock), phase=phase)
     return served, recommendation, business_date
 
 
+def utc_now() -> datetime:
+    """The current moment (aware, UTC): the read path's only clock, replaced in tests."""
+    return datetime.now(UTC)
+
+
 def today_in(zone: str) -> date:
     """Today's date where the locations are (an IANA time zone)."""
-    return datetime.now(ZoneInfo(zone)).date()
+    return utc_now().astimezone(ZoneInfo(zone)).date()
 
 
-def _timezone_of(session: Session, version_id: int) -> str:
-    # Only weekly networks need it, and only when the caller gave no business date.
-    spec_json = session.scalar(
-        select(NetworkVersion.spec_json).where(NetworkVersion.id == version_id)
-    )
-    zone: str = json.loads(spec_json or "{}").get("timezone", DEFAULT_TIMEZONE)
-    return zone
+def business_date_now(zone: str, cutoff: time | None, now: datetime | None = None) -> date:
+    """The business date a closing count sent now belongs to: the local date in `zone`, or the
+    day before while the local time is before `cutoff` (a count sent at 02:00 with a 04:00
+    cut-off closes the previous day). No cut-off: midnight."""
+    local = (now or utc_now()).astimezone(ZoneInfo(zone))
+    if cutoff is not None and local.time().replace(tzinfo=None) < cutoff:
+        return local.date() - timedelta(days=1)
+    return local.date()
+
+
+def business_date_of(session: Session, network_id: int) -> date:
+    """The current business date of a network, from its current version's time zone and its
+    closing cut-off. Only asked when a caller gives no business date."""
+    zone, cutoff = _clock_of(session, network_id)
+    return business_date_now(zone, cutoff)
+
+
+def _clock_of(session: Session, network_id: int) -> tuple[str, time | None]:
+    row = session.execute(
+        select(NetworkVersion.spec_json, Network.closing_cutoff)
+        .join(Network, Network.id == NetworkVersion.network_id)
+        .where(NetworkVersion.network_id == network_id)
+        .order_by(NetworkVersion.number.desc())
+        .limit(1)
+    ).one()
+    zone: str = json.loads(row[0]).get("timezone", DEFAULT_TIMEZONE)
+    return zone, row[1]

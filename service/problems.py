@@ -27,6 +27,7 @@ from service.analysis import AnalysisInputError
 from service.logs import REQUEST_ID
 from service.policies import (
     PolicyNotReadyError,
+    PolicyNotSolvedError,
     StockProblemsError,
     UnknownNetworkError,
 )
@@ -145,6 +146,12 @@ PROBLEM_TYPES: dict[str, tuple[str, str]] = {
     "policy-not-ready": (
         "Policy not ready",
         "The network's policy is still being solved (`job_state`); retry after Retry-After.",
+    ),
+    "policy-not-solved": (
+        "Not solved for this criterion",
+        "No solve of the network's current version is queued or running for this criterion, "
+        "so waiting will not help: ask for one of the criteria in use (`criteria`), or add "
+        "the criterion with a PUT of the network.",
     ),
     "database-unavailable": (
         "Database unavailable",
@@ -278,6 +285,15 @@ def problem_for(exc: Exception) -> tuple[int, str, str, str, dict[str, Any]] | N
         return 422, InvalidInput.slug, InvalidInput.title, str(exc), {"errors": errors}
     if isinstance(exc, UnknownNetworkError):
         return 404, NotFound.slug, NotFound.title, str(exc), {}
+    if isinstance(exc, PolicyNotSolvedError):
+        # 409, never 503 + Retry-After: no job will produce this policy by waiting.
+        return (
+            409,
+            "policy-not-solved",
+            "Not solved for this criterion",
+            str(exc),
+            {"criteria": exc.criteria, "job_state": exc.job_state},
+        )
     if isinstance(exc, PolicyNotReadyError):
         return 503, "policy-not-ready", "Policy not ready", str(exc), {"job_state": exc.job_state}
     if isinstance(exc, ModelTooLargeError):
@@ -301,6 +317,7 @@ DOMAIN_ERRORS: tuple[type[Exception], ...] = (
     AnalysisInputError,
     InvalidStockError,
     PolicyNotReadyError,
+    PolicyNotSolvedError,
     UnknownNetworkError,
     ModelTooLargeError,
     NotUnichainError,

@@ -4,7 +4,7 @@ NetworkSpec; everything else is defined here, inputs separate from outputs."""
 from __future__ import annotations
 
 import json
-from datetime import UTC, date, datetime
+from datetime import UTC, date, datetime, time
 from pathlib import Path
 from typing import Annotated, Any, Literal
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
@@ -23,6 +23,7 @@ from solver import NetworkSpec
 from solver.spec import LaneSpec
 
 __all__ = [
+    "DEFAULT_CRITERION_RULE",
     "AutoApplyOut",
     "BatchItem",
     "BatchOutcome",
@@ -33,6 +34,7 @@ __all__ = [
     "CalibrationSettingsOut",
     "ClosingStockIn",
     "ClosingStockOut",
+    "CorrectionOut",
     "CriterionName",
     "EstimateOut",
     "HistoryOut",
@@ -57,6 +59,7 @@ __all__ = [
     "Problem",
     "RecommendationOut",
     "RecommendationRequest",
+    "RelayOut",
     "SimulationJobOut",
     "SimulationReportOut",
     "SimulationRequest",
@@ -75,6 +78,9 @@ __all__ = [
 ]
 
 CriterionName = Literal["discounted", "average"]
+DEFAULT_CRITERION_RULE = (
+    "Absent: the first of discounted, average that the network's current version is solved for."
+)
 # Weekdays as the network specification names them (solver.spec.WEEKDAYS), Monday first.
 WeekdayName = Literal["mon", "tue", "wed", "thu", "fri", "sat", "sun"]
 
@@ -124,18 +130,43 @@ class NetworkCreate(NetworkSpec):
     model_config = ConfigDict(json_schema_extra={"examples": [DEMO_NETWORK]})
 
     criteria: Criteria = ["discounted"]  # noqa: RUF012  (pydantic copies defaults)
+    closing_cutoff: time | None = Field(
+        default=None,
+        description="Local time (in `timezone`) before which a closing count belongs to the "
+        "previous business date, e.g. 04:00 for stores that close after midnight; absent: "
+        "midnight on creation, unchanged on update. Not part of the specification: changing "
+        "it queues no solve.",
+    )
 
     @field_validator("timezone")
     @classmethod
     def _known_timezone(cls, zone: str) -> str:
         return known_timezone(zone)
 
+    @field_validator("closing_cutoff")
+    @classmethod
+    def _whole_minutes(cls, cutoff: time | None) -> time | None:
+        if cutoff is not None and (
+            cutoff.tzinfo is not None or cutoff.second or cutoff.microsecond
+        ):
+            raise ValueError("give a local time of day in whole minutes, e.g. 04:00")
+        return cutoff
+
     def spec(self) -> NetworkSpec:
-        return NetworkSpec.model_validate(self.model_dump(by_alias=True, exclude={"criteria"}))
+        return NetworkSpec.model_validate(
+            self.model_dump(by_alias=True, exclude={"criteria", "closing_cutoff"})
+        )
 
 
 class NetworkUpdate(NetworkCreate):
-    """The next version of a network's specification (send If-Match with the current version)."""
+    """The next version of a network's specification (send If-Match with the current version).
+    Without `criteria` the next version is solved for the criteria the current one is."""
+
+    criteria: Criteria | None = Field(  # type: ignore[assignment]
+        default=None,
+        description="Criteria to solve the new version for; absent: those of the current "
+        "version (as calibration apply does).",
+    )
 
 
 class JobOut(_Out):
@@ -170,6 +201,10 @@ class NetworkOut(_Out):
     created_at: Timestamp
     version: int = Field(description="Current version number; send it in If-Match to update.")
     spec_hash: str = Field(description="SHA-256 of the current specification as canonical JSON.")
+    closing_cutoff: str = Field(
+        description="Local time (HH:MM) before which a closing count belongs to the previous "
+        "business date; 00:00: midnight."
+    )
     solves: list[SolveState]
 
 
@@ -188,8 +223,9 @@ BusinessDate = Annotated[
     date | None,
     Field(
         description="Business date of the closing count; tonight is the night after it. "
-        "Matters only for a network with weekly fields, where it defaults to today in the "
-        "network's time zone.",
+        "Matters only for a network with weekly fields, where it defaults to the current "
+        "business date: today in the network's time zone, or yesterday before its "
+        "closing_cutoff.",
         ge=date(2000, 1, 1),
         le=date(2199, 12, 31),
     ),
@@ -203,7 +239,7 @@ class RecommendationRequest(BaseModel):
     )
 
     stock: Stock
-    criterion: CriterionName = "discounted"
+    criterion: CriterionName | None = Field(default=None, description=DEFAULT_CRITERION_RULE)
     business_date: BusinessDate = None
 
 
@@ -216,11 +252,25 @@ class TransferOut(BaseModel):
     unit_cost: float
 
 
+class RelayOut(BaseModel):
+    """A location that both receives and sends units on one night: units pass through it."""
+
+    location: str
+    receives: int = Field(description="Units arriving tonight, over all lanes.")
+    sends: int = Field(description="Units leaving tonight, over all lanes.")
+    net_change: int = Field(description="receives - sends: what its stock gains tonight.")
+    explanation: str = Field(description="Why units go through this location, in words.")
+
+
 class RecommendationOut(BaseModel):
     network_id: int
     criterion: str
     version: int = Field(description="Version whose policy answered.")
-    stale: bool = Field(description="True when a newer version is still being solved.")
+    stale: bool = Field(
+        description="True when the current version's solve for this criterion is queued or "
+        "running and an older version answers meanwhile; never while nothing is being solved "
+        "(a current version not solved for the criterion answers 409 instead)."
+    )
     solved_at: Timestamp
     parameters_calibrated_at: Timestamp | None = Field(
         description="When that version's demand and replenishment were estimated from sales "
@@ -230,6 +280,11 @@ class RecommendationOut(BaseModel):
     stock: dict[str, int]
     transfers: list[TransferOut] = Field(description="Tonight's moves; empty when none pays.")
     stock_after_transfers: dict[str, int]
+    relays: list[RelayOut] = Field(
+        default_factory=list,
+        description="Locations that receive and send on the same night (three or more "
+        "locations), with their net change and why; empty when there are none.",
+    )
     transfer_cost: float
     expected_value: float = Field(
         description="Value of following the policy from this stock (discounted: expected "
@@ -255,7 +310,7 @@ class BatchItem(BaseModel):
 
     network_id: Annotated[int, Field(ge=1, le=2_147_483_647)]
     stock: Stock
-    criterion: CriterionName = "discounted"
+    criterion: CriterionName | None = Field(default=None, description=DEFAULT_CRITERION_RULE)
     business_date: BusinessDate = None
 
 
@@ -312,8 +367,19 @@ class ClosingStockIn(BaseModel):
         json_schema_extra={"examples": [{"business_date": "2026-12-01", "units": 13}]},
     )
 
-    business_date: date
+    business_date: date | None = Field(
+        default=None,
+        description="The business date closed; default: the network's current business date "
+        "(today in its time zone, or yesterday before its closing_cutoff).",
+    )
     units: _Units
+    correction: bool = Field(
+        default=False,
+        description="Correct a count after the night's instructions were issued: they are "
+        "computed again from the corrected counts as the next `revision`, and the correction "
+        "(key, time, old and new count) is kept and listed in the instructions. Without it, a "
+        "count sent after the instructions were issued is refused (409).",
+    )
 
 
 class ClosingStockOut(BaseModel):
@@ -323,11 +389,27 @@ class ClosingStockOut(BaseModel):
     units: int
     reported_at: Timestamp
     missing: list[str] = Field(description="Locations yet to report for this business date.")
+    revision: int | None = Field(
+        default=None,
+        description="Revision of the night's instructions after this report (null while they "
+        "are not issued yet); a correction that changes the count raises it by one.",
+    )
 
 
 class Movement(BaseModel):
     location: str
     units: int
+
+
+class CorrectionOut(BaseModel):
+    """A closing count corrected after the instructions were first issued."""
+
+    location: str
+    old_units: int = Field(description="The count it replaced, units.")
+    new_units: int = Field(description="The corrected count, units.")
+    revision: int = Field(description="The revision of the instructions it produced.")
+    key_prefix: str = Field(description="Public prefix of the API key that sent it.")
+    corrected_at: Timestamp = Field(description="When the correction was received (UTC).")
 
 
 class InstructionsOut(BaseModel):
@@ -336,9 +418,33 @@ class InstructionsOut(BaseModel):
     business_date: date
     version: int
     criterion: str
-    computed_at: Timestamp
+    computed_at: Timestamp = Field(description="When this revision was computed.")
+    revision: int = Field(
+        description="1 when first issued, one more for each correction of a count (also in "
+        "the ETag header)."
+    )
+    moves_changed_in_revision: int = Field(
+        description="The revision in which this location's sends and receives last changed: "
+        "above the revision it acted on, its instructions are new."
+    )
+    corrections: list[CorrectionOut] = Field(
+        description="Counts of this night corrected after the first issue, oldest first."
+    )
+    notes: list[str] = Field(
+        default_factory=list,
+        description="What deserves a look before acting: a stale or uncalibrated policy, a "
+        "move that leaves the sender below its expected demand for tomorrow.",
+    )
     send: list[Movement] = Field(description="Units this location sends tonight, by destination.")
     receive: list[Movement] = Field(description="Units this location receives, by origin.")
+    net_change: int = Field(description="Units received minus units sent tonight.")
+    relay: bool = Field(
+        description="True when this location both receives and sends tonight: units pass "
+        "through it (see relay_explanation)."
+    )
+    relay_explanation: str | None = Field(
+        default=None, description="Why units go through this location, for a relay."
+    )
     stock: dict[str, int] = Field(description="The closing stock the instructions answer.")
 
 
@@ -357,7 +463,10 @@ class HistoryRowIn(BaseModel):
     location: Annotated[str, Field(min_length=1, max_length=64)]
     units_sold: _Count
     stock_at_open: _Count = Field(description="Units on hand when the day began.")
-    units_received: _Count = Field(description="Units delivered during the day (on sale the next).")
+    units_received: _Count = Field(
+        description="Units delivered during the day (on sale the next day, or the same day "
+        "with the network's receipts_sell_same_day calibration setting)."
+    )
 
 
 class HistoryUpload(BaseModel):
@@ -440,6 +549,13 @@ class CalibrationSettingsIn(BaseModel):
         default=None,
         description="Apply a new estimate by itself when it moves a mean or variance by more "
         "than this fraction (none: never).",
+    )
+    receipts_sell_same_day: bool = Field(
+        default=False,
+        description="True: units received in the morning are on sale the same day, so a day "
+        "may sell up to stock_at_open + units_received and is sold out when it sells all of "
+        "them. False (default): receipts are on sale from the next day, and a row selling more "
+        "than its stock at open is refused.",
     )
 
 

@@ -54,6 +54,15 @@ class Settings(BaseSettings):
             "states are answered at once; larger ones are queued for a worker.",
         ),
     ] = 20_000
+    analysis_max_live_jobs: Annotated[
+        int,
+        Field(
+            ge=1,
+            description="Simulations and queued what-if comparisons one tenant may have queued "
+            "or running at once; another answers 429 until one finishes. (Read keys may start "
+            "them: they change no stored data, but they cost solver time.)",
+        ),
+    ] = 4
 
     rate_limit_per_second: Annotated[
         float, Field(gt=0, description="Sustained requests per second per API key.")

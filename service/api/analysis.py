@@ -1,7 +1,11 @@
 """Simulations and what-if comparisons: evidence for the optimal policy on simulated days beside
 simple rules, and what a change to the network would be worth before it is made. Simulations
 are queued for the workers; a what-if comparison of small networks is answered at once, of
-larger ones queued."""
+larger ones queued.
+
+Scope: a read key may start them, since they change no stored network or policy; they cost
+solver time instead, so a tenant has at most `analysis_max_live_jobs` of them queued or running
+at once (429 beyond), besides the per-key request rate."""
 
 from __future__ import annotations
 
@@ -13,10 +17,10 @@ from fastapi.responses import JSONResponse
 from sqlalchemy.orm import Session
 
 from service.analysis import apply_overrides, check_simulation, new_seed, run_what_if
-from service.api.deps import JobId, NetworkId, Reader, SessionDep, SettingsDep, Writer, get_network
+from service.api.deps import JobId, NetworkId, Reader, SessionDep, SettingsDep, get_network
 from service.db import repository
 from service.db.tables import JobKind, Network, NetworkVersion, SolveJob
-from service.problems import NotFound
+from service.problems import NotFound, RateLimited
 from service.schemas import (
     SimulationJobOut,
     SimulationReportOut,
@@ -26,6 +30,7 @@ from service.schemas import (
     WhatIfRequest,
     WhatIfResultOut,
 )
+from service.settings import Settings
 from solver import NetworkSpec
 from solver.build import check_size
 
@@ -52,6 +57,21 @@ def _job_fields(network_id: int, version: NetworkVersion, job: SolveJob) -> dict
         "seconds": job.solve_seconds,
         "error": job.error,
     }
+
+
+# A simulation or a queued comparison takes seconds to minutes: a client refused for the cap
+# should not come back at once.
+_ANALYSIS_RETRY_SECONDS = "10"
+
+
+def _check_analysis_cap(session: Session, tenant_id: int, settings: Settings) -> None:
+    live = repository.live_analysis_jobs(session, tenant_id)
+    if live >= settings.analysis_max_live_jobs:
+        raise RateLimited(
+            f"{live} simulations or what-if comparisons of this tenant are queued or running "
+            f"(at most {settings.analysis_max_live_jobs}); start another when one has finished",
+            retry_after=_ANALYSIS_RETRY_SECONDS,
+        )
 
 
 def _find(
@@ -82,7 +102,7 @@ def start_simulation(
     network_id: NetworkId,
     body: SimulationRequest,
     session: SessionDep,
-    caller: Writer,
+    caller: Reader,
     settings: SettingsDep,
     response: Response,
 ) -> SimulationJobOut:
@@ -98,6 +118,7 @@ def start_simulation(
         limits=settings.size_limits,
         max_replication_days=settings.simulation_max_replication_days,
     )
+    _check_analysis_cap(session, caller.tenant_id, settings)
     params = body.model_copy(update={"seed": new_seed() if body.seed is None else body.seed})
     job = repository.enqueue_analysis(
         session,
@@ -145,7 +166,7 @@ def what_if(
     network_id: NetworkId,
     body: WhatIfRequest,
     session: SessionDep,
-    caller: Writer,
+    caller: Reader,
     settings: SettingsDep,
 ) -> WhatIfOut | JSONResponse:
     """Solve the current version and the version the overrides would make, and compare their
@@ -161,6 +182,7 @@ def what_if(
             spec, body.overrides, criterion=body.criterion, limits=settings.size_limits
         )
         return WhatIfOut(network_id=network.id, version=version.number, **result)
+    _check_analysis_cap(session, caller.tenant_id, settings)
     # exclude_unset: an absent max_units_per_night keeps the limit, a null one lifts it.
     job = repository.enqueue_analysis(
         session,

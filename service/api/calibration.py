@@ -141,12 +141,21 @@ def _parse_csv(raw: bytes) -> list[HistoryRowIn]:
 def _invalid(errors: list[tuple[str, str]]) -> InvalidInput:
     shown = errors[:20]
     more = f" (and {len(errors) - 20} more)" if len(errors) > 20 else ""
-    detail = "; ".join(f"{pointer}: {text}" for pointer, text in shown) + more
+    # Nothing of a refused upload is stored: the client still holds every row, and sends the
+    # whole upload again once the rows named are fixed.
+    detail = (
+        "; ".join(f"{pointer}: {text}" for pointer, text in shown)
+        + more
+        + "; nothing of this upload was stored"
+    )
     return InvalidInput(detail, shown)
 
 
-def _check_rows(rows: list[HistoryRowIn], spec: NetworkSpec, csv_upload: bool) -> None:
-    """Every problem the rows have against the network, each with its pointer."""
+def _check_rows(
+    rows: list[HistoryRowIn], spec: NetworkSpec, csv_upload: bool, same_day: bool
+) -> None:
+    """Every problem the rows have against the network, each with its pointer; `same_day`: the
+    network's receipts sell on the day they arrive."""
     known = set(spec.location_ids)
     latest = utcnow().date() + _DATE_SLACK
     first_seen: dict[tuple[str, date], int] = {}
@@ -157,12 +166,22 @@ def _check_rows(rows: list[HistoryRowIn], spec: NetworkSpec, csv_upload: bool) -
             errors.append((f"{where}/location", f"unknown location {row.location!r}"))
         if not _OLDEST <= row.date <= latest:
             errors.append((f"{where}/date", f"{row.date} is outside {_OLDEST}..{latest}"))
-        if row.units_sold > row.stock_at_open:
+        if same_day and row.units_sold > row.stock_at_open + row.units_received:
             errors.append(
                 (
                     f"{where}/units_sold",
                     f"{row.units_sold} units sold but only {row.stock_at_open} on hand at "
-                    "opening (receipts are on sale from the next day)",
+                    f"opening and {row.units_received} received",
+                )
+            )
+        elif not same_day and row.units_sold > row.stock_at_open:
+            errors.append(
+                (
+                    f"{where}/units_sold",
+                    f"{row.units_sold} units sold but only {row.stock_at_open} on hand at "
+                    "opening (receipts are on sale from the next day; if this network's stores "
+                    "sell morning deliveries the same day, PUT calibration/settings with "
+                    '"receipts_sell_same_day": true)',
                 )
             )
         key = (row.location, row.date)
@@ -179,12 +198,13 @@ def _check_rows(rows: list[HistoryRowIn], spec: NetworkSpec, csv_upload: bool) -
 
 
 def _locations(session: Session, network_id: int) -> list[LocationHistoryOut]:
+    same_day = options_for(session, network_id).receipts_sell_same_day
     return [
         LocationHistoryOut(
             location=location, days=days, sold_out_days=out, first_date=first, last_date=last
         )
         for location, days, out, first, last in repository.sales_history_summary(
-            session, network_id
+            session, network_id, receipts_sell_same_day=same_day
         )
     ]
 
@@ -225,7 +245,13 @@ def _store_history(
 ) -> HistoryStored:
     rows = _parse_csv(raw) if csv_upload else _parse_json(raw)
     network = get_network(session, tenant_id, network_id)
-    _check_rows(rows, repository.current_spec(session, network.id), csv_upload)
+    options = options_for(session, network.id)
+    _check_rows(
+        rows,
+        repository.current_spec(session, network.id),
+        csv_upload,
+        options.receipts_sell_same_day,
+    )
     try:
         with session.begin_nested():
             inserted, replaced = repository.store_sales_history(
@@ -241,7 +267,6 @@ def _store_history(
             "another upload stored some of these days at the same moment; send this one again "
             "(a repeat replaces them)"
         ) from exc
-    options = options_for(session, network.id)
     auto = None
     if options.auto_apply_threshold is not None:
         auto = _auto_apply(session, network, options, options.auto_apply_threshold, settings)
@@ -366,6 +391,7 @@ def _calibration_out(network: Network, proposal: Proposal) -> CalibrationOut:
             half_life_days=options.half_life_days,
             confidence=options.confidence,
             auto_apply_threshold=options.auto_apply_threshold,
+            receipts_sell_same_day=options.receipts_sell_same_day,
         ),
         locations=locations,
         spec=proposal.spec,
@@ -389,6 +415,7 @@ class Overrides:
             ),
             confidence=stored.confidence if self.confidence is None else self.confidence,
             auto_apply_threshold=stored.auto_apply_threshold,
+            receipts_sell_same_day=stored.receipts_sell_same_day,
         )
 
 
@@ -481,6 +508,7 @@ def get_calibration_settings(
         half_life_days=options.half_life_days,
         confidence=options.confidence,
         auto_apply_threshold=options.auto_apply_threshold,
+        receipts_sell_same_day=options.receipts_sell_same_day,
     )
 
 
@@ -498,5 +526,6 @@ def put_calibration_settings(
     row.half_life_days = body.half_life_days
     row.confidence = body.confidence
     row.auto_apply_threshold = body.auto_apply_threshold
+    row.receipts_sell_same_day = body.receipts_sell_same_day
     row.updated_at = utcnow()
     return CalibrationSettingsOut(network_id=network.id, **body.model_dump())

@@ -160,6 +160,11 @@ def get_network(
 ) -> Network:
     """The tenant's network, or 404 (another tenant's network looks exactly like a missing one)."""
     network = session.get(Network, network_id)
-    if network is None or network.tenant_id != tenant_id or (network.archived and not archived_ok):
+    if network is None or network.tenant_id != tenant_id:
         raise NotFound(f"no network {network_id}")
+    if network.archived and not archived_ok:
+        raise NotFound(
+            f"network {network_id} is archived: it is kept (GET /v1/networks/{network_id}) but "
+            "serves and accepts nothing more"
+        )
     return network

@@ -57,6 +57,7 @@ def create_network(
         )
     tenant = session.get_one(Tenant, caller.tenant_id)
     network, version, jobs = repository.create_network(session, tenant, spec, body.criteria)
+    network.closing_cutoff = body.closing_cutoff
     response.headers["Location"] = f"/v1/networks/{network.id}"
     response.headers["ETag"] = etag(version.number)
     return network_out(session, network, jobs)
@@ -106,9 +107,30 @@ def update_network(
         if other is not None and other.id != network.id:
             raise Conflict(f"another network is named {spec.name!r}")
         network.name = spec.name
-    version, jobs = repository.add_version(session, network, spec, body.criteria)
+    # Absent criteria carry over, as calibration apply does: an exported specification sent
+    # back as the next version keeps every criterion it was solved for.
+    criteria = (
+        body.criteria
+        or repository.criteria_requested(session, network.tenant_id, current.spec_hash)
+        or ["discounted"]
+    )
+    version, jobs = repository.add_version(session, network, spec, criteria)
+    if body.closing_cutoff is not None:
+        network.closing_cutoff = body.closing_cutoff
+    if current.calibrated_at is not None and _same_laws(
+        NetworkSpec.model_validate_json(current.spec_json), spec
+    ):
+        # The estimated numbers were sent back unchanged (e.g. only a capacity changed): they
+        # are still the estimates of that calibration.
+        version.calibrated_at = current.calibrated_at
     response.headers["ETag"] = etag(version.number)
     return network_out(session, network, jobs)
+
+
+def _same_laws(before: NetworkSpec, after: NetworkSpec) -> bool:
+    """Whether every location of `after` has the demand and replenishment it had in `before`."""
+    laws = {loc.id: (loc.demand, loc.replenishment) for loc in before.locations}
+    return all(laws.get(loc.id) == (loc.demand, loc.replenishment) for loc in after.locations)
 
 
 @router.delete("/{network_id}", status_code=status.HTTP_204_NO_CONTENT)

@@ -28,9 +28,9 @@ from service.pictures import (
     value_grid,
     value_label,
 )
-from service.policies import PolicyCache, ServedPolicy, load_policy
+from service.policies import PolicyCache, ServedPolicy, business_date_of, load_policy
 from service.problems import POLICY_NOT_READY, InvalidInput
-from service.schemas import CriterionName
+from service.schemas import DEFAULT_CRITERION_RULE, CriterionName
 from service.schemas import WeekdayName as Weekday
 from solver import PolicyResult
 from solver.spec import WEEKDAYS
@@ -101,22 +101,27 @@ async def plane_query(
         Weekday | None,
         Query(
             description="For a network with weekly fields: the policy for closing counts on "
-            "this weekday (the moves of that night); default mon. Ignored otherwise."
+            "this weekday (the moves of that night); default: the weekday of the network's "
+            "current business date (today in its time zone, or yesterday before its "
+            "closing_cutoff). Ignored otherwise."
         ),
     ] = None,
 ) -> PlaneQuery:
     return PlaneQuery(x, y, at, weekday)
 
 
-def _phase(result: PolicyResult, query: PlaneQuery) -> tuple[int, str]:
+def _phase(
+    session: Session, network: Network, result: PolicyResult, query: PlaneQuery
+) -> tuple[int, str]:
     """The phase to draw and the words for it in a title ("" for a stationary policy)."""
     if result.phases == 1:
         return 0, ""
-    day = query.weekday or "mon"
+    day = query.weekday or WEEKDAYS[business_date_of(session, network.id).weekday()]
     return result.phase_of(WEEKDAYS.index(day)), f", {day} night"
 
 
 PlaneDep = Annotated[PlaneQuery, Depends(plane_query)]
+CriterionQuery = Annotated[CriterionName | None, Query(description=DEFAULT_CRITERION_RULE)]
 Annotate = Annotated[
     bool,
     Query(
@@ -137,7 +142,7 @@ def policy_svg(
     cache: CacheDep,
     caller: Reader,
     plane: PlaneDep,
-    criterion: CriterionName = "discounted",
+    criterion: CriterionQuery = None,
     annotate: Annotate = False,
 ) -> Response:
     return _moves(session, cache, caller.tenant_id, network_id, criterion, plane, annotate, "svg")
@@ -154,7 +159,7 @@ def policy_png(
     cache: CacheDep,
     caller: Reader,
     plane: PlaneDep,
-    criterion: CriterionName = "discounted",
+    criterion: CriterionQuery = None,
     annotate: Annotate = False,
 ) -> Response:
     return _moves(session, cache, caller.tenant_id, network_id, criterion, plane, annotate, "png")
@@ -171,7 +176,7 @@ def value_svg(
     cache: CacheDep,
     caller: Reader,
     plane: PlaneDep,
-    criterion: CriterionName = "discounted",
+    criterion: CriterionQuery = None,
 ) -> Response:
     return _values(session, cache, caller.tenant_id, network_id, criterion, plane, "svg")
 
@@ -187,7 +192,7 @@ def value_png(
     cache: CacheDep,
     caller: Reader,
     plane: PlaneDep,
-    criterion: CriterionName = "discounted",
+    criterion: CriterionQuery = None,
 ) -> Response:
     return _values(session, cache, caller.tenant_id, network_id, criterion, plane, "png")
 
@@ -197,14 +202,14 @@ def _moves(
     cache: PolicyCache,
     tenant_id: int,
     network_id: int,
-    criterion: str,
+    criterion: str | None,
     query: PlaneQuery,
     annotate: bool,
     image_format: ImageFormat,
 ) -> Response:
     network, served, plane = _served_plane(session, cache, tenant_id, network_id, criterion, query)
-    phase, night = _phase(served.result, query)
-    subject = f"version {served.version_number} · net moves, {criterion} policy{night}"
+    phase, night = _phase(session, network, served.result, query)
+    subject = f"version {served.version_number} · net moves, {served.criterion} policy{night}"
     body = render_moves(
         net_inflow_grid(served.result, plane, phase),
         x_id=plane.x_id,
@@ -221,13 +226,13 @@ def _values(
     cache: PolicyCache,
     tenant_id: int,
     network_id: int,
-    criterion: str,
+    criterion: str | None,
     query: PlaneQuery,
     image_format: ImageFormat,
 ) -> Response:
     network, served, plane = _served_plane(session, cache, tenant_id, network_id, criterion, query)
-    phase, night = _phase(served.result, query)
-    subject = f"version {served.version_number} · value of the {criterion} policy{night}"
+    phase, night = _phase(session, network, served.result, query)
+    subject = f"version {served.version_number} · value of the {served.criterion} policy{night}"
     if served.result.gain is not None:
         subject += f", profit per day {served.result.gain:,.2f}"
     body = render_values(
@@ -235,7 +240,7 @@ def _values(
         x_id=plane.x_id,
         y_id=plane.y_id,
         title=caption(network.name, subject, plane),
-        colour_label=value_label(criterion),
+        colour_label=value_label(served.criterion),
         image_format=image_format,
     )
     return _image(body, image_format, served)
@@ -246,7 +251,7 @@ def _served_plane(
     cache: PolicyCache,
     tenant_id: int,
     network_id: int,
-    criterion: str,
+    criterion: str | None,
     query: PlaneQuery,
 ) -> tuple[Network, ServedPolicy, Plane]:
     """The network (404), the served policy (503 before its solve) and the plane to draw (422

@@ -1,6 +1,8 @@
 """The whole policy table, for ERP import: stock levels, flows per lane, value. Streamed.
 
-A weekly network's policy has one table per weekday of the closing count: its rows start with a
+Every CSV row starts with the `version` and `criterion` of the policy served (so that a file
+saved on its own still says what it is; any CSV reader takes them as two more columns). A weekly
+network's policy has one table per weekday of the closing count: its rows go on with a
 `weekday` column (mon .. sun), Monday's rows first; a stationary policy has no such column."""
 
 from __future__ import annotations
@@ -17,7 +19,7 @@ from fastapi.responses import StreamingResponse
 from service.api.deps import CacheDep, NetworkId, Reader, SessionDep, get_network
 from service.policies import ServedPolicy, load_policy
 from service.problems import POLICY_NOT_READY
-from service.schemas import CriterionName
+from service.schemas import DEFAULT_CRITERION_RULE, CriterionName
 from solver.spec import WEEKDAYS
 
 router = APIRouter(tags=["policies"])
@@ -27,11 +29,12 @@ _ROWS_PER_CHUNK = 4096
 _EXPORT_DOC: dict[int | str, dict[str, Any]] = {
     **POLICY_NOT_READY,
     200: {
-        "description": "The policy table. CSV: one row per closing stock, columns: the stock of "
-        "each location, the units on each lane (`from->to`), the value; for a network with "
-        "weekly fields the rows start with the `weekday` of the closing count (mon .. sun), one "
-        "table per weekday. JSON: the same rows under `rows`, with `columns`, `version`, "
-        "`criterion` and `profit_per_day`.",
+        "description": "The policy table. CSV: one row per closing stock, columns: the "
+        "policy's `version` and `criterion` (the same on every row), the stock of each "
+        "location, the units on each lane (`from->to`), the value; for a network with weekly "
+        "fields the stock is preceded by the `weekday` of the closing count (mon .. sun), one "
+        "table per weekday. JSON: the same rows (without version and criterion) under `rows`, "
+        "with `columns`, `version`, `criterion` and `profit_per_day`.",
         "content": {"text/csv": {"schema": {"type": "string"}}, "application/json": {}},
     },
 }
@@ -46,7 +49,7 @@ def export_policy(
     cache: CacheDep,
     caller: Reader,
     format: Annotated[Literal["json", "csv"], Query()] = "json",
-    criterion: CriterionName = "discounted",
+    criterion: Annotated[CriterionName | None, Query(description=DEFAULT_CRITERION_RULE)] = None,
 ) -> StreamingResponse:
     network = get_network(session, caller.tenant_id, network_id)
     served = load_policy(session, cache, network, criterion)
@@ -57,7 +60,7 @@ def export_policy(
     if format == "csv":
         return StreamingResponse(_csv(served), media_type="text/csv", headers=headers)
     return StreamingResponse(
-        _json(served, network_id, criterion), media_type="application/json", headers=headers
+        _json(served, network_id), media_type="application/json", headers=headers
     )
 
 
@@ -82,19 +85,20 @@ def _chunks(served: ServedPolicy) -> Iterator[tuple[list[str], np.ndarray, np.nd
 
 
 def _csv(served: ServedPolicy) -> Iterator[str]:
-    yield ",".join(_columns(served)) + "\n"
+    yield ",".join(["version", "criterion", *_columns(served)]) + "\n"
     for lead, stock, flows, values in _chunks(served):
         buffer = io.StringIO()
         for s, f, v in zip(stock.tolist(), flows.tolist(), values.tolist(), strict=True):
-            buffer.write(",".join(map(str, (*lead, *s, *f))) + f",{v!r}\n")
+            cells = (served.version_number, served.criterion, *lead, *s, *f)
+            buffer.write(",".join(map(str, cells)) + f",{v!r}\n")
         yield buffer.getvalue()
 
 
-def _json(served: ServedPolicy, network_id: NetworkId, criterion: str) -> Iterator[str]:
+def _json(served: ServedPolicy, network_id: NetworkId) -> Iterator[str]:
     head = {
         "network_id": network_id,
         "version": served.version_number,
-        "criterion": criterion,
+        "criterion": served.criterion,
         "profit_per_day": served.result.gain,
         "columns": _columns(served),
     }

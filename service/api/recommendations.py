@@ -61,7 +61,7 @@ def _recommend_one(
     tenant_id: int,
     network_id: NetworkId,
     stock: dict[str, int],
-    criterion: str,
+    criterion: str | None,
     business_date: date | None,
 ) -> RecommendationOut:
     served, recommendation, night_of = recommend(
@@ -72,7 +72,7 @@ def _recommend_one(
         criterion,
         business_date=business_date,
     )
-    return recommendation_out(network_id, criterion, served, recommendation, night_of)
+    return recommendation_out(network_id, served, recommendation, night_of)
 
 
 @router.post(

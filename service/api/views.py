@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from datetime import date
+from datetime import date, time
 
 from sqlalchemy.orm import Session
 
@@ -14,13 +14,14 @@ from service.schemas import (
     NetworkCreated,
     NetworkOut,
     RecommendationOut,
+    RelayOut,
     SolveState,
     TransferOut,
 )
 from solver import PolicyResult, Recommendation
 from solver.spec import WEEKDAYS
 
-__all__ = ["network_out", "recommendation_out", "transfers_of"]
+__all__ = ["network_out", "recommendation_out", "relays_of", "transfers_of"]
 
 CRITERIA = ("discounted", "average")
 
@@ -59,6 +60,7 @@ def network_out(
         "created_at": network.created_at,
         "version": version.number,
         "spec_hash": version.spec_hash,
+        "closing_cutoff": (network.closing_cutoff or time(0)).strftime("%H:%M"),
         "solves": solves,
     }
     if jobs is None:
@@ -75,26 +77,103 @@ def transfers_of(result: PolicyResult, flows: tuple[int, ...]) -> list[TransferO
     ]
 
 
+def relays_of(result: PolicyResult, transfers: list[TransferOut]) -> list[RelayOut]:
+    """Every location that receives and sends tonight, in network order, with the reason units
+    go through it rather than straight from each origin to each destination."""
+    lanes = {
+        (result.location_ids[a], result.location_ids[b]): (
+            float(result.lane_costs[lane]),
+            int(result.flows[:, lane].max()),
+        )
+        for lane, (a, b) in enumerate(result.lanes)
+    }
+    moved = {(t.from_, t.to): t for t in transfers}
+    relays = []
+    for location in result.location_ids:
+        inbound = [t for t in transfers if t.to == location]
+        outbound = [t for t in transfers if t.from_ == location]
+        if not inbound or not outbound:
+            continue
+        receives = sum(t.units for t in inbound)
+        sends = sum(t.units for t in outbound)
+        reasons = []
+        for origin in inbound:
+            for onward in outbound:
+                reasons.append(
+                    _why_through(
+                        location,
+                        origin,
+                        onward,
+                        lanes.get((origin.from_, onward.to)),
+                        moved.get((origin.from_, onward.to)),
+                    )
+                )
+        relays.append(
+            RelayOut(
+                location=location,
+                receives=receives,
+                sends=sends,
+                net_change=receives - sends,
+                explanation=(
+                    f"{location} receives {receives} and sends {sends} tonight, net "
+                    f"{receives - sends:+d} unit{'s' if abs(receives - sends) != 1 else ''} on "
+                    f"its shelf: " + "; ".join(reasons) + "."
+                ),
+            )
+        )
+    return relays
+
+
+def _why_through(
+    location: str,
+    origin: TransferOut,
+    onward: TransferOut,
+    direct: tuple[float, int] | None,
+    direct_moved: TransferOut | None,
+) -> str:
+    """Why units from origin.from_ reach onward.to through `location` (one origin-destination
+    pair of a relay)."""
+    start, end = origin.from_, onward.to
+    if start == end:
+        return f"{start} sends to {location} and takes units back from it"
+    via = origin.unit_cost + onward.unit_cost
+    if direct is None:
+        return f"there is no lane from {start} to {end}, so units reach {end} through {location}"
+    cost, limit = direct
+    if direct_moved is not None and direct_moved.units >= limit:
+        return f"the direct lane {start} -> {end} is full tonight (at most {limit})"
+    if cost > via:
+        return (
+            f"the direct lane {start} -> {end} costs {cost:g} a unit, more than {via:g} "
+            f"through {location}"
+        )
+    return (
+        f"{location}'s own units are worth more at {end}, and {start}'s refill {location} "
+        "for tomorrow"
+    )
+
+
 def recommendation_out(
     network_id: int,
-    criterion: str,
     served: ServedPolicy,
     recommendation: Recommendation,
     business_date: date | None = None,
 ) -> RecommendationOut:
     result = served.result
     ids = result.location_ids
+    transfers = transfers_of(result, recommendation.flows)
     return RecommendationOut(
         network_id=network_id,
-        criterion=criterion,
+        criterion=served.criterion,
         version=served.version_number,
         stale=served.stale,
         solved_at=served.solved_at,
         parameters_calibrated_at=served.calibrated_at,
         residual=result.residual,
         stock=dict(zip(ids, recommendation.stock, strict=True)),
-        transfers=transfers_of(result, recommendation.flows),
+        transfers=transfers,
         stock_after_transfers=dict(zip(ids, recommendation.post_move_stock, strict=True)),
+        relays=relays_of(result, transfers),
         transfer_cost=recommendation.transfer_cost,
         expected_value=recommendation.expected_value,
         value_without_transfers=recommendation.value_without_transfers,

@@ -74,6 +74,7 @@ __all__ = [
     "latest_version",
     "list_jobs",
     "list_networks",
+    "live_analysis_jobs",
     "live_versions_newest_first",
     "network_by_name",
     "policy_for",
@@ -531,6 +532,20 @@ def analysis_job(
     return None if row is None else (row[0], row[1])
 
 
+def live_analysis_jobs(session: Session, tenant_id: int) -> int:
+    """How many simulations and what-if comparisons of the tenant are queued or running."""
+    return int(
+        session.scalar(
+            select(func.count()).where(
+                SolveJob.tenant_id == tenant_id,
+                SolveJob.kind != JobKind.SOLVE.value,
+                SolveJob.state.in_(LIVE_STATES),
+            )
+        )
+        or 0
+    )
+
+
 def get_job(session: Session, job_id: int) -> SolveJob | None:
     return session.get(SolveJob, job_id)
 
@@ -721,18 +736,17 @@ def sales_history(
 
 
 def sales_history_summary(
-    session: Session, network_id: int
+    session: Session, network_id: int, *, receipts_sell_same_day: bool = False
 ) -> list[tuple[str, int, int, date, date]]:
-    """(location, days, sold-out days, first day, last day) per location with history."""
-    sold_out = func.sum(
-        case(
-            (
-                and_(SalesDay.units_sold == SalesDay.stock_at_open, SalesDay.stock_at_open > 0),
-                1,
-            ),
-            else_=0,
-        )
+    """(location, days, sold-out days, first day, last day) per location with history. A day
+    sold out when it sold all it could: its stock at open, plus its receipts when they sell the
+    same day."""
+    available = (
+        SalesDay.stock_at_open + SalesDay.units_received
+        if receipts_sell_same_day
+        else SalesDay.stock_at_open
     )
+    sold_out = func.sum(case((and_(SalesDay.units_sold == available, available > 0), 1), else_=0))
     rows = session.execute(
         select(
             SalesDay.location_id,

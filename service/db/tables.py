@@ -10,7 +10,7 @@ one specification.
 
 from __future__ import annotations
 
-from datetime import date, datetime
+from datetime import date, datetime, time
 from enum import StrEnum
 
 from sqlalchemy import (
@@ -24,6 +24,7 @@ from sqlalchemy import (
     LargeBinary,
     String,
     Text,
+    Time,
     UniqueConstraint,
     text,
 )
@@ -34,6 +35,7 @@ from service.db.base import Base, utcnow
 __all__ = [
     "ApiKey",
     "CalibrationSettings",
+    "ClosingCorrection",
     "ClosingCount",
     "IdempotencyRecord",
     "Instruction",
@@ -80,6 +82,11 @@ class Network(Base):
     name: Mapped[str] = mapped_column(String(200))
     archived: Mapped[bool] = mapped_column(Boolean, default=False)
     created_at: Mapped[datetime] = mapped_column(DateTime, default=utcnow)
+    # Local time of day (in the specification's time zone) before which a closing count still
+    # belongs to the previous business date; None: midnight. Kept here, not in the
+    # specification: it changes no number of the model, so changing it must not change the
+    # specification's hash and queue a new solve.
+    closing_cutoff: Mapped[time | None] = mapped_column(Time)
 
     versions: Mapped[list[NetworkVersion]] = relationship(
         back_populates="network", order_by="NetworkVersion.number"
@@ -191,9 +198,30 @@ class Instruction(Base):
     business_date: Mapped[date] = mapped_column(Date)
     version_id: Mapped[int] = mapped_column(ForeignKey("network_versions.id"))
     criterion: Mapped[str] = mapped_column(String(16))
-    # JSON: {"stock": {location: units}, "transfers": [{"from", "to", "units", "unit_cost"}]}
+    # JSON: {"stock": {location: units}, "transfers": [{"from", "to", "units", "unit_cost"}],
+    # "relays": [...], "notes": [...]}
     plan: Mapped[str] = mapped_column(Text)
     computed_at: Mapped[datetime] = mapped_column(DateTime, default=utcnow)
+    # 1 when first issued; each correction of a count re-issues the plan with the next number.
+    revision: Mapped[int] = mapped_column(Integer, default=1, server_default="1")
+
+
+class ClosingCorrection(Base):
+    """A closing count corrected after the night's instructions were issued: who (the key's
+    public prefix), when, the count before and after, and the revision it produced."""
+
+    __tablename__ = "closing_corrections"
+    __table_args__ = (Index("ix_closing_corrections_network_day", "network_id", "business_date"),)
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    network_id: Mapped[int] = mapped_column(ForeignKey("networks.id"))
+    location_id: Mapped[str] = mapped_column(String(64))
+    business_date: Mapped[date] = mapped_column(Date)
+    old_units: Mapped[int] = mapped_column(Integer)
+    new_units: Mapped[int] = mapped_column(Integer)
+    revision: Mapped[int] = mapped_column(Integer)
+    key_prefix: Mapped[str] = mapped_column(String(32))
+    corrected_at: Mapped[datetime] = mapped_column(DateTime, default=utcnow)
 
 
 class SalesDay(Base):
@@ -225,6 +253,11 @@ class CalibrationSettings(Base):
     half_life_days: Mapped[float | None] = mapped_column(Float)
     confidence: Mapped[float] = mapped_column(Float)
     auto_apply_threshold: Mapped[float | None] = mapped_column(Float)
+    # Units received in the morning may be sold the same day: a day's sales are then bounded
+    # by (and sold out at) stock at open plus receipts, not stock at open alone.
+    receipts_sell_same_day: Mapped[bool] = mapped_column(
+        Boolean, default=False, server_default=text("false")
+    )
     updated_at: Mapped[datetime] = mapped_column(DateTime, default=utcnow)
 
 

@@ -34,6 +34,7 @@ TABLES = {
     "sales_history",
     "calibration_settings",
     "instructions",
+    "closing_corrections",
     "api_keys",
     "idempotency_records",
 }

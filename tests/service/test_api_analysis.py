@@ -191,11 +191,31 @@ def test_simulations_of_other_networks_and_tenants_are_not_found(
     response = client.get(f"/v1/networks/{network['id']}/simulations/{job['id']}", headers=stranger)
     assert_problem(response, 404)
     reader = {"Authorization": f"Bearer {make_key(engine, scope='read')}"}
-    assert_problem(
-        client.post(f"/v1/networks/{network['id']}/simulations", json={}, headers=reader), 403
-    )
     response = client.get(f"/v1/networks/{network['id']}/simulations/{job['id']}", headers=reader)
     assert response.status_code == 200
+
+
+@sqlite_only
+def test_read_keys_may_run_simulations_and_what_if_within_the_tenants_cap(engine: Engine) -> None:
+    with open_client(engine, analysis_max_live_jobs=1) as client:
+        network = create_network(client)
+        path = f"/v1/networks/{network['id']}"
+        reader = {"Authorization": f"Bearer {make_key(engine, scope='read')}"}
+        started = client.post(f"{path}/simulations", json={"days": 5}, headers=reader)
+        assert started.status_code == 202, started.text
+        # A small what-if is answered at once and counts against no cap.
+        overrides = {"overrides": {"locations": {"hilltop": {"capacity": 8}}}}
+        answered = client.post(f"{path}/what-if", json=overrides, headers=reader)
+        assert answered.status_code == 200, answered.text
+        # One job queued: the tenant's cap of one is reached, for write keys too.
+        refused = client.post(f"{path}/simulations", json={"days": 5})
+        body = assert_problem(refused, 429, "rate-limited")
+        assert "at most 1" in body["detail"] and int(refused.headers["Retry-After"]) > 0
+        run_worker(engine)
+        again = client.post(f"{path}/simulations", json={"days": 5}, headers=reader)
+        assert again.status_code == 202
+        # Reading keys still change nothing stored: no network write.
+        assert_problem(client.delete(path, headers=reader), 403, "forbidden")
 
 
 @sqlite_only

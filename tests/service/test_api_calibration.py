@@ -238,6 +238,23 @@ def test_apply_creates_a_calibrated_version_and_recommendations_say_so(
     estimates = client.get(f"/v1/networks/{network['id']}/calibration").json()
     assert estimates["spec"] == calibrated
 
+    # The calibrated numbers sent back unchanged (another field changed) stay calibrated ...
+    path = f"/v1/networks/{network['id']}"
+    stock = {"stock": {"riverside": 3, "hilltop": 4}}
+    resent = {**calibrated, "locations": [dict(loc) for loc in calibrated["locations"]]}
+    resent["locations"][0]["holding_cost"] = 0.11
+    assert client.put(path, json=resent, headers={"If-Match": '"2"'}).status_code == 200
+    run_worker(engine)
+    kept = client.post(f"{path}/recommendation", json=stock).json()
+    assert kept["version"] == 3
+    assert kept["parameters_calibrated_at"] == after["parameters_calibrated_at"]
+    # ... and a changed demand law is no longer an estimate.
+    resent["locations"][1]["demand"] = {"dist": "poisson", "mean": 1.5}
+    assert client.put(path, json=resent, headers={"If-Match": '"3"'}).status_code == 200
+    run_worker(engine)
+    edited = client.post(f"{path}/recommendation", json=stock).json()
+    assert (edited["version"], edited["parameters_calibrated_at"]) == (4, None)
+
 
 def test_apply_without_history_is_a_conflict(client: TestClient) -> None:
     network = create_network(client)
@@ -260,6 +277,7 @@ def test_automatic_apply_past_the_threshold_only(client: TestClient) -> None:
         "half_life_days": 60.0,
         "confidence": 0.95,
         "auto_apply_threshold": 0.25,
+        "receipts_sell_same_day": False,
     }
     # Demand well above the demo's riverside mean of 2.6: applied by itself.
     rows = simulated_rows(
@@ -398,3 +416,56 @@ def test_an_automatic_version_too_large_to_solve_keeps_the_upload(engine: Engine
         assert "too large" in stored["auto_apply"]["reason"]
         assert stored["inserted"] == 2 * 7 * 26
         assert client.get(f"/v1/networks/{network['id']}").json()["version"] == 1
+
+
+def same_day_rows(seed: int, days: int) -> list[dict[str, Any]]:
+    """History of our own generator for a store that sells its morning delivery the same day:
+    Poisson demand of mean 3 met from stock at open plus the day's receipts."""
+    rng = np.random.default_rng(seed)
+    rows = []
+    for day in range(days):
+        at_open, received = int(rng.integers(0, 3)), int(rng.poisson(2.0))
+        rows.append(
+            {
+                "date": (START + timedelta(days=day)).isoformat(),
+                "location": "riverside",
+                "units_sold": min(int(rng.poisson(3.0)), at_open + received),
+                "stock_at_open": at_open,
+                "units_received": received,
+            }
+        )
+    return rows
+
+
+def test_same_day_receipts_are_a_setting_the_censoring_honours(client: TestClient) -> None:
+    network = create_network(client)
+    path = f"/v1/networks/{network['id']}"
+    rows = same_day_rows(11, 120)
+    over = [i for i, row in enumerate(rows) if row["units_sold"] > row["stock_at_open"]]
+    assert over, "the generator sold some deliveries on the day they came"
+
+    # Off (the default): each such row is named, the setting is pointed at, nothing is kept.
+    refused = assert_problem(client.post(f"{path}/history", json={"rows": rows}), 422)
+    assert pointers(refused) == [f"/rows/{i}/units_sold" for i in over][:20]
+    assert "receipts_sell_same_day" in refused["detail"]
+    assert "nothing of this upload was stored" in refused["detail"]
+    assert client.get(f"{path}/history").json()["locations"] == []
+
+    settings = client.put(f"{path}/calibration/settings", json={"receipts_sell_same_day": True})
+    assert settings.status_code == 200 and settings.json()["receipts_sell_same_day"] is True
+    stored = upload(client, network["id"], rows)
+    sold_out = sum(
+        1 for row in rows if row["units_sold"] == row["stock_at_open"] + row["units_received"] > 0
+    )
+    assert stored["locations"][0]["sold_out_days"] == sold_out > 0
+    # A day that sold all it had (stock at open plus receipts) is censored there.
+    direct = calibrate_location(
+        [r["units_sold"] for r in rows],
+        [r["stock_at_open"] + r["units_received"] for r in rows],
+        [r["units_received"] for r in rows],
+    )
+    body = client.get(f"{path}/calibration").json()
+    assert body["settings"]["receipts_sell_same_day"] is True
+    riverside = body["locations"][0]
+    assert riverside["demand"]["mean"] == pytest.approx(direct.demand.mean, rel=1e-12)
+    assert riverside["sold_out_days"] == direct.censored_days == sold_out

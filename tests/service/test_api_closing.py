@@ -4,13 +4,17 @@ read one plan, equal to the solver's recommendation from the full closing stock,
 from __future__ import annotations
 
 import itertools
+import json
 from datetime import UTC, date, datetime, timedelta
 from typing import Any
 
 from fastapi.testclient import TestClient
 from sqlalchemy import Engine
 
+import service.policies
+from service.calibration import law_moments
 from solver import NetworkSpec, solve_network
+from solver.spec import WEEKDAYS as WEEK
 from tests.service.api_support import (
     assert_problem,
     create_network,
@@ -22,6 +26,7 @@ from tests.service.api_support import (
     stock_of,
     weekly_document,
 )
+from tests.service.test_api_recommendations import chain_document, relay_stock
 
 DEMO_SPEC = NetworkSpec.model_validate(demo_document())
 
@@ -131,6 +136,29 @@ def test_every_location_reads_the_same_kept_plan(client: TestClient, engine: Eng
     assert again == plans["riverside"]
 
 
+def test_a_network_solved_only_for_average_gets_average_instructions(
+    client: TestClient, engine: Engine
+) -> None:
+    network_id = create_network(client, demo_document(criteria=["average"]))["id"]
+    run_worker(engine)
+    vector = [DEMO_SPEC.locations[0].capacity, 0]
+    day = today()
+    for location, units in stock_of(DEMO_SPEC, vector).items():
+        assert report(client, network_id, location, day, units).status_code == 200
+    response = instructions(client, network_id, "riverside", day)
+    assert response.status_code == 200, response.text
+    plan = response.json()
+    assert plan["criterion"] == "average"
+    result = solve_network(DEMO_SPEC, criterion="average")
+    transfers = expected_transfers(result, result.recommend(vector))
+    assert plan["send"] == [{"location": t["to"], "units": t["units"]} for t in transfers]
+    # A recommendation that names no criterion follows the same rule.
+    answer = client.post(
+        f"/v1/networks/{network_id}/recommendation", json={"stock": stock_of(DEMO_SPEC, vector)}
+    )
+    assert answer.status_code == 200 and answer.json()["criterion"] == "average"
+
+
 def test_all_reported_without_a_policy_is_503_and_nothing_is_kept(
     client: TestClient, engine: Engine
 ) -> None:
@@ -168,6 +196,10 @@ def test_units_must_be_an_integer_within_capacity(client: TestClient) -> None:
         problem = assert_problem(report(client, network_id, location, day, units), 422)
         assert problem["type"].endswith("/invalid-input")
         assert pointers(problem) == ["/units"], (location, units)
+        if units > 0:
+            # Above capacity: the problem says what to do about it.
+            assert "change the network" in problem["detail"]
+            assert f"PUT /v1/networks/{network_id}" in problem["detail"]
     for not_integer in (2.5, "3", True, None):
         problem = assert_problem(report(client, network_id, "riverside", day, not_integer), 422)
         assert pointers(problem) == ["/units"], not_integer
@@ -201,8 +233,6 @@ def test_business_date_must_lie_between_the_day_before_creation_and_tomorrow(
         assert report(client, network_id, "riverside", day, 3).status_code == 200
     malformed = instructions(client, network_id, "riverside", "next tuesday")
     assert pointers(assert_problem(malformed, 422, "invalid-input")) == ["query:/business_date"]
-    absent = client.get(f"/v1/networks/{network_id}/locations/riverside/instructions")
-    assert pointers(assert_problem(absent, 422, "invalid-input")) == ["query:/business_date"]
 
 
 @sqlite_only
@@ -256,3 +286,189 @@ def test_weekly_instructions_follow_the_weekday_of_the_business_date(
         {"from": m["location"], "to": "riverside", "units": m["units"]} for m in tonight["receive"]
     ]
     assert moved == [{k: t[k] for k in ("from", "to", "units")} for t in expected]
+
+
+def test_instructions_mark_a_relay_with_its_net_change(client: TestClient, engine: Engine) -> None:
+    document = chain_document()
+    spec = NetworkSpec.model_validate(document)
+    network_id = create_network(client, document)["id"]
+    run_worker(engine)
+    vector = relay_stock(spec)
+    day = today()
+    for location, units in stock_of(spec, vector).items():
+        assert report(client, network_id, location, day, units).status_code == 200
+    plans = {loc: instructions(client, network_id, loc, day).json() for loc in spec.location_ids}
+    assert [loc for loc, plan in plans.items() if plan["relay"]] == ["middle"]
+    middle = plans["middle"]
+    received = sum(m["units"] for m in middle["receive"])
+    sent = sum(m["units"] for m in middle["send"])
+    assert received > 0 and sent > 0 and middle["net_change"] == received - sent
+    assert "no lane from depot to far" in middle["relay_explanation"]
+    assert plans["depot"]["net_change"] == -plans["depot"]["send"][0]["units"]
+    assert plans["depot"]["relay_explanation"] is None
+
+
+def counts_with_other_moves(vector: list[int]) -> list[int]:
+    """`vector` with Hilltop's count changed so that the demo policy moves something else
+    (found by the in-process solver, not assumed)."""
+    result = solve_network(DEMO_SPEC)
+    before = result.recommend(vector).flows
+    for units in range(DEMO_SPEC.locations[1].capacity + 1):
+        if result.recommend([vector[0], units]).flows != before:
+            return [vector[0], units]
+    raise AssertionError("no other Hilltop count changes the moves")
+
+
+def test_a_corrected_count_reissues_the_instructions_as_the_next_revision(
+    client: TestClient, engine: Engine, caplog: Any
+) -> None:
+    network_id = create_network(client)["id"]
+    run_worker(engine)
+    day = today()
+    vector = stock_that_moves()
+    for location, units in stock_of(DEMO_SPEC, vector).items():
+        assert report(client, network_id, location, day, units).status_code == 200
+    first = instructions(client, network_id, "riverside", day)
+    assert first.json()["revision"] == 1 and first.json()["corrections"] == []
+    tag = first.headers["ETag"]
+    # RFC 9110, section 13.1.2: If-None-Match with the current tag answers 304.
+    unchanged = client.get(
+        f"/v1/networks/{network_id}/locations/riverside/instructions",
+        params={"business_date": str(day)},
+        headers={"If-None-Match": tag},
+    )
+    assert unchanged.status_code == 304 and unchanged.headers["ETag"] == tag
+
+    corrected = counts_with_other_moves(vector)
+    refused = assert_problem(report(client, network_id, "hilltop", day, corrected[1]), 409)
+    assert '"correction": true' in refused["detail"]
+    caplog.set_level("INFO", logger="stockrelay.audit")
+    response = client.put(
+        f"/v1/networks/{network_id}/locations/hilltop/closing-stock",
+        json={"business_date": day.isoformat(), "units": corrected[1], "correction": True},
+    )
+    assert response.status_code == 200, response.text
+    assert response.json()["revision"] == 2
+
+    again = instructions(client, network_id, "riverside", day)
+    assert again.headers["ETag"] != tag
+    plan = again.json()
+    result = solve_network(DEMO_SPEC)
+    transfers = expected_transfers(result, result.recommend(corrected))
+    assert plan["send"] == [
+        {"location": t["to"], "units": t["units"]} for t in transfers if t["from"] == "riverside"
+    ]
+    assert (plan["revision"], plan["moves_changed_in_revision"]) == (2, 2)
+    assert plan["stock"] == stock_of(DEMO_SPEC, corrected)
+    key_prefix = client.headers["Authorization"].removeprefix("Bearer sr_").split("_")[0]
+    [correction] = plan["corrections"]
+    assert {k: v for k, v in correction.items() if k != "corrected_at"} == {
+        "location": "hilltop",
+        "old_units": vector[1],
+        "new_units": corrected[1],
+        "revision": 2,
+        "key_prefix": key_prefix,
+    }
+    [line] = [r.getMessage() for r in caplog.records if "closing_correction" in r.getMessage()]
+    logged = json.loads(line)
+    assert (logged["old_units"], logged["new_units"], logged["key_prefix"]) == (
+        vector[1],
+        corrected[1],
+        key_prefix,
+    )
+    # The old tag no longer matches; the same count again makes no new revision.
+    stale_tag = client.get(
+        f"/v1/networks/{network_id}/locations/riverside/instructions",
+        params={"business_date": str(day)},
+        headers={"If-None-Match": tag},
+    )
+    assert stale_tag.status_code == 200
+    same = client.put(
+        f"/v1/networks/{network_id}/locations/hilltop/closing-stock",
+        json={"business_date": day.isoformat(), "units": corrected[1], "correction": True},
+    )
+    assert same.json()["revision"] == 2
+    assert len(instructions(client, network_id, "hilltop", day).json()["corrections"]) == 1
+
+
+def test_instructions_note_uncalibrated_parameters_and_a_sender_left_short(
+    client: TestClient, engine: Engine
+) -> None:
+    document = chain_document()
+    spec = NetworkSpec.model_validate(document)
+    network_id = create_network(client, document)["id"]
+    run_worker(engine)
+    day = today()
+    result = solve_network(spec)
+    tomorrow = (day + timedelta(days=1)).weekday()
+    means = [law_moments(location.demand_on(tomorrow))[0] for location in spec.locations]
+
+    def short_senders(vector: list[int]) -> list[str]:
+        recommendation = result.recommend(vector)
+        sent = [0] * len(means)
+        for (a, _), units in zip(result.lanes, recommendation.flows, strict=True):
+            sent[a] += units
+        return [
+            spec.locations[i].id
+            for i in range(len(means))
+            if sent[i] > 0 and recommendation.post_move_stock[i] < means[i]
+        ]
+
+    # Stocks where the policy leaves a sender below tomorrow's mean demand, and where it
+    # moves without doing so (found by the in-process solver).
+    stocks = [list(v) for v in itertools.product(*(range(c.capacity + 1) for c in spec.locations))]
+    short = next(v for v in stocks if short_senders(v))
+    enough = next(v for v in stocks if any(result.recommend(v).flows) and not short_senders(v))
+    for offset, vector in enumerate((short, enough)):
+        night = day - timedelta(days=offset)
+        for location, units in stock_of(spec, vector).items():
+            assert report(client, network_id, location, night, units).status_code == 200
+        notes = instructions(client, network_id, "depot", night).json()["notes"]
+        assert any("not estimated from sales history" in note for note in notes)
+        flagged = sorted(n.split(" sends ")[0] for n in notes if " sends " in n)
+        assert flagged == sorted(short_senders(vector)), (vector, notes)
+
+
+def test_counts_before_the_closing_cutoff_belong_to_the_previous_business_date(
+    client: TestClient, engine: Engine, monkeypatch: Any
+) -> None:
+    document = weekly_document(timezone="UTC", closing_cutoff="04:00")
+    created = create_network(client, document)
+    assert created["closing_cutoff"] == "04:00"
+    network_id = created["id"]
+    run_worker(engine)
+    day = today()
+    yesterday = day - timedelta(days=1)
+
+    def at(hour: int, minute: int) -> None:
+        moment = datetime(day.year, day.month, day.day, hour, minute, tzinfo=UTC)
+        monkeypatch.setattr(service.policies, "utc_now", lambda: moment)
+
+    at(2, 30)  # after midnight, before the cut-off: still yesterday's close
+    reported = client.put(
+        f"/v1/networks/{network_id}/locations/riverside/closing-stock", json={"units": 4}
+    )
+    assert reported.status_code == 200, reported.text
+    assert reported.json()["business_date"] == yesterday.isoformat()
+    waiting = client.get(f"/v1/networks/{network_id}/locations/hilltop/instructions")
+    assert assert_problem(waiting, 409)["missing"] == ["hilltop"]
+    assert yesterday.isoformat() in waiting.json()["detail"]
+    answer = client.post(
+        f"/v1/networks/{network_id}/recommendation",
+        json={"stock": {"riverside": 4, "hilltop": 2}},
+    ).json()
+    assert (answer["business_date"], answer["night"]) == (
+        yesterday.isoformat(),
+        WEEK[yesterday.weekday()],
+    )
+    # Pictures of a weekly policy default to the same night, not to Monday.
+    picture = client.get(f"/v1/networks/{network_id}/policy.svg")
+    assert f"{WEEK[yesterday.weekday()]} night" in picture.text
+
+    at(4, 0)  # from the cut-off on: today's business date
+    reported = client.put(
+        f"/v1/networks/{network_id}/locations/riverside/closing-stock", json={"units": 5}
+    )
+    assert reported.json()["business_date"] == day.isoformat()
+    picture = client.get(f"/v1/networks/{network_id}/policy.svg")
+    assert f"{WEEK[day.weekday()]} night" in picture.text

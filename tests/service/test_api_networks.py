@@ -335,6 +335,61 @@ def test_put_of_an_identical_specification_queues_no_solve(
     assert len(listed) == 1
 
 
+def test_put_without_criteria_keeps_those_in_use_and_a_put_may_change_them(
+    client: TestClient, engine: Engine
+) -> None:
+    created = create_network(client, demo_document(criteria=["discounted", "average"]))
+    run_worker(engine)
+    path = f"/v1/networks/{created['id']}"
+    stock = {"stock": {"riverside": 5, "hilltop": 5}, "criterion": "average"}
+    # An exported specification, changed and sent back as the next version without criteria.
+    exported = client.get(f"{path}/versions").json()[0]["spec"]
+    exported["locations"][1]["capacity"] = 11
+    response = client.put(path, json=exported, headers={"If-Match": '"1"'})
+    assert response.status_code == 200, response.text
+    assert sorted(job["criterion"] for job in response.json()["jobs"]) == ["average", "discounted"]
+    run_worker(engine)
+    answer = client.post(f"{path}/recommendation", json=stock).json()
+    assert (answer["version"], answer["stale"]) == (2, False)
+
+    # Explicit criteria change them: average is no longer solved, and is refused rather than
+    # answered by version 2 as stale for ever.
+    exported["locations"][1]["capacity"] = 12
+    response = client.put(
+        path, json={**exported, "criteria": ["discounted"]}, headers={"If-Match": '"2"'}
+    )
+    assert [job["criterion"] for job in response.json()["jobs"]] == ["discounted"]
+    run_worker(engine)
+    refused = assert_problem(client.post(f"{path}/recommendation", json=stock), 409)
+    assert refused["criteria"] == ["discounted"]
+    assert solves_by_criterion(client.get(path).json())["average"]["state"] == "not_requested"
+
+
+def test_closing_cutoff_is_kept_on_the_network_and_queues_no_solve(
+    client: TestClient, engine: Engine
+) -> None:
+    created = create_network(client)
+    # Not part of the specification: the demo's hash is the same with or without it.
+    assert created["closing_cutoff"] == "00:00"
+    assert created["spec_hash"] == spec_hash_of(demo_document())
+    run_worker(engine)
+    path = f"/v1/networks/{created['id']}"
+    moved = client.put(
+        path, json=demo_document(closing_cutoff="04:30"), headers={"If-Match": '"1"'}
+    )
+    assert moved.status_code == 200, moved.text
+    body = moved.json()
+    assert (body["closing_cutoff"], body["jobs"]) == ("04:30", [])
+    assert body["spec_hash"] == created["spec_hash"]
+    # An update without it keeps it; seconds are refused.
+    kept = client.put(path, json=demo_document(), headers={"If-Match": '"2"'}).json()
+    assert kept["closing_cutoff"] == "04:30"
+    bad = client.put(
+        path, json=demo_document(closing_cutoff="04:30:15"), headers={"If-Match": '"3"'}
+    )
+    assert pointers(assert_problem(bad, 422)) == ["/closing_cutoff"]
+
+
 def test_rename_onto_another_networks_name_is_a_conflict(client: TestClient) -> None:
     first = create_network(client, demo_document(name="East side"))
     second = create_network(client, demo_document(name="West side"))
@@ -400,8 +455,14 @@ def test_delete_archives_the_network(client: TestClient, engine: Engine) -> None
 
     deleted = client.delete(path)
     assert deleted.status_code == 204 and deleted.content == b""
-    assert_problem(client.post(f"{path}/recommendation", json=stock), 404, "not-found")
-    assert_problem(client.get(f"{path}/policy"), 404, "not-found")
+    gone = assert_problem(client.post(f"{path}/recommendation", json=stock), 404, "not-found")
+    assert f"network {created['id']} is archived" in gone["detail"]
+    exported = assert_problem(client.get(f"{path}/policy"), 404, "not-found")
+    assert "archived" in exported["detail"]
+    batch = client.post(
+        "/v1/recommendations/batch", json={"items": [{"network_id": created["id"], **stock}]}
+    ).json()
+    assert "archived" in batch["items"][0]["problem"]["detail"]
     assert_problem(client.put(path, json=demo_document(), headers={"If-Match": '"1"'}), 404)
     assert_problem(client.delete(path), 404)
     # Kept, and readable as archived.

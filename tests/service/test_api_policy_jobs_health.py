@@ -50,9 +50,14 @@ def assert_rows_match(rows: list[list[float]], result: PolicyResult) -> None:
     assert_allclose(table[:, -1], result.values[0], rtol=RTOL, atol=ATOL)
 
 
-def parse_csv(text: str) -> tuple[list[str], list[list[float]]]:
+def parse_csv(text: str, version: int = 1) -> tuple[list[str], list[list[float]]]:
+    """The header and rows after the leading version and criterion columns, which every row
+    carries (checked here); cells as numbers."""
     header, *rows = list(csv.reader(io.StringIO(text)))
-    return header, [[float(cell) for cell in row] for row in rows]
+    assert header[:2] == ["version", "criterion"]
+    assert {row[0] for row in rows} == {str(version)}
+    assert len({row[1] for row in rows}) == 1
+    return header[2:], [[float(cell) for cell in row[2:]] for row in rows]
 
 
 # -- policy export -----------------------------------------------------------------------------
@@ -60,10 +65,30 @@ def parse_csv(text: str) -> tuple[list[str], list[list[float]]]:
 
 def test_export_before_the_solve_is_503(client: TestClient) -> None:
     network_id = create_network(client)["id"]
-    for params in ({}, {"format": "csv"}, {"criterion": "average"}):
+    for params in ({}, {"format": "csv"}):
         response = client.get(f"/v1/networks/{network_id}/policy", params=params)
         assert_problem(response, 503, "policy-not-ready")
         assert int(response.headers["Retry-After"]) > 0
+    # Never solved for average: no job will make it, so no Retry-After.
+    response = client.get(f"/v1/networks/{network_id}/policy", params={"criterion": "average"})
+    assert_problem(response, 409, "policy-not-solved")
+
+
+def test_csv_export_carries_version_and_criterion_on_every_row(
+    client: TestClient, engine: Engine
+) -> None:
+    document = demo_document(criteria=["discounted", "average"])
+    network_id = create_network(client, document)["id"]
+    changed = demo_document()
+    changed["locations"][1]["capacity"] = 8
+    put = client.put(f"/v1/networks/{network_id}", json=changed, headers={"If-Match": '"1"'})
+    assert put.status_code == 200
+    run_worker(engine)
+    text = client.get(
+        f"/v1/networks/{network_id}/policy", params={"format": "csv", "criterion": "average"}
+    ).text
+    rows = list(csv.DictReader(io.StringIO(text)))
+    assert rows and {(row["version"], row["criterion"]) for row in rows} == {("2", "average")}
 
 
 def test_csv_and_json_exports_equal_the_solver(client: TestClient, engine: Engine) -> None:
@@ -134,6 +159,7 @@ def test_weekly_policy_exports_one_table_per_weekday(client: TestClient, engine:
     result = solve_network(spec)
     path = f"/v1/networks/{network_id}/policy"
     header, *rows = list(csv.reader(io.StringIO(client.get(path, params={"format": "csv"}).text)))
+    header, rows = header[2:], [row[2:] for row in rows]
     assert header == ["weekday", *expected_columns(spec)]
     assert len(rows) == 7 * result.n_states
     weekdays = ["mon", "tue", "wed", "thu", "fri", "sat", "sun"]

@@ -4,6 +4,7 @@ to the in-process solver after it, stale while a newer version waits, and a prob
 
 from __future__ import annotations
 
+import itertools
 import logging
 from datetime import date, datetime, timedelta
 from typing import Any
@@ -17,6 +18,7 @@ from sqlalchemy import Engine
 
 import service.policies
 from service.api import recommendations as recommendations_module
+from service.api.views import relays_of, transfers_of
 from solver import NetworkSpec, PolicyResult, solve_network
 from solver.spec import WEEKDAYS as WEEK
 from tests.service.api_support import (
@@ -101,9 +103,13 @@ def test_not_ready_before_the_solve(client: TestClient) -> None:
     assert problem["job_state"] == "queued"
     # RFC 9110, section 10.2.3: Retry-After as delay-seconds.
     assert int(queued.headers["Retry-After"]) > 0
-    unrequested = assert_problem(recommend(client, network_id, stock, "average"), 503)
-    assert unrequested["type"].endswith("/policy-not-ready")
+    # No job will ever solve the average policy: a conflict naming the criteria in use, and no
+    # Retry-After (waiting would not help).
+    response = recommend(client, network_id, stock, "average")
+    unrequested = assert_problem(response, 409, "policy-not-solved")
+    assert "Retry-After" not in response.headers
     assert unrequested["job_state"] is None
+    assert unrequested["criteria"] == ["discounted"]
     assert "average" in unrequested["detail"]
 
 
@@ -470,3 +476,93 @@ def test_batch_item_that_fails_unexpectedly_is_a_500_problem_of_its_own(
     assert "disk on fire" not in failed["problem"]["detail"]
     assert_matches_solver(answered["result"], DEMO_SPEC, solve_network(DEMO_SPEC), [4, 2])
     assert any("b-42" in r.getMessage() and r.exc_info for r in caplog.records)
+
+
+# -- relays ------------------------------------------------------------------------------------
+
+
+def chain_document() -> dict[str, Any]:
+    """Three stores of our own in a line: a depot feeds a middle store, which feeds a busy far
+    store; there is no lane from the depot to the far store."""
+
+    def store(location: str, capacity: int, mean: float) -> dict[str, Any]:
+        return {
+            "id": location,
+            "capacity": capacity,
+            "unit_margin": 10.0,
+            "holding_cost": 0.2,
+            "stockout_penalty": 2.0,
+            "demand": {"dist": "poisson", "mean": mean},
+            "replenishment": {"dist": "poisson", "mean": 0.5},
+        }
+
+    return {
+        "name": "Depot, middle and far store",
+        "discount": 0.95,
+        "locations": [store("depot", 8, 0.3), store("middle", 5, 1.5), store("far", 5, 3.0)],
+        "lanes": [
+            {"from": "depot", "to": "middle", "unit_cost": 0.5, "max_units": 3},
+            {"from": "middle", "to": "far", "unit_cost": 0.5, "max_units": 3},
+        ],
+    }
+
+
+def relay_stock(spec: NetworkSpec) -> list[int]:
+    """A closing stock from which the middle store both receives and sends (found by the
+    in-process solver, not assumed)."""
+    result = solve_network(spec)
+    for vector in itertools.product(*(range(loc.capacity + 1) for loc in spec.locations)):
+        flows = result.recommend(list(vector)).flows
+        if flows[0] > 0 and flows[1] > 0:
+            return list(vector)
+    raise AssertionError("the chain policy never relays")
+
+
+def test_a_location_that_receives_and_sends_is_marked_as_a_relay(
+    client: TestClient, engine: Engine
+) -> None:
+    document = chain_document()
+    spec = NetworkSpec.model_validate(document)
+    network_id = create_network(client, document)["id"]
+    run_worker(engine)
+    vector = relay_stock(spec)
+    flows = solve_network(spec).recommend(vector).flows
+    body = recommend(client, network_id, stock_of(spec, vector)).json()
+    (relay,) = body["relays"]
+    assert (relay["location"], relay["receives"], relay["sends"]) == ("middle", flows[0], flows[1])
+    assert relay["net_change"] == flows[0] - flows[1]
+    assert body["stock_after_transfers"]["middle"] == vector[1] + relay["net_change"]
+    assert "no lane from depot to far" in relay["explanation"]
+    # Nothing relays from a stock where no location sends and receives.
+    quiet = recommend(client, network_id, {"depot": 0, "middle": 0, "far": 0}).json()
+    assert quiet["relays"] == []
+
+
+@pytest.mark.parametrize(
+    ("direct", "reason"),
+    [
+        ({"unit_cost": 3.0, "max_units": 1}, "costs 3 a unit, more than 1 through middle"),
+        ({"unit_cost": 0.9, "max_units": 1}, "the direct lane depot -> far is full tonight"),
+    ],
+)
+def test_a_relay_beside_a_direct_lane_says_why_the_lane_is_not_used_alone(
+    direct: dict[str, Any], reason: str
+) -> None:
+    document = chain_document()
+    document["lanes"].append({"from": "depot", "to": "far", **direct})
+    spec = NetworkSpec.model_validate(document)
+    result = solve_network(spec)
+    found = []
+    for vector in itertools.product(*(range(loc.capacity + 1) for loc in spec.locations)):
+        flows = result.recommend(list(vector)).flows
+        for relay in relays_of(result, transfers_of(result, flows)):
+            if reason in relay.explanation:
+                found.append(flows)
+    assert found, f"no relay explained by {reason!r}"
+    # The reason holds for the moves themselves (lane 2 is the direct lane of the document).
+    for flows in found:
+        assert flows[0] > 0 and flows[1] > 0
+        if "full" in reason:
+            assert flows[2] == direct["max_units"]
+        else:
+            assert direct["unit_cost"] > 0.5 + 0.5

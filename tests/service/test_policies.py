@@ -8,7 +8,7 @@ from sqlalchemy.orm import Session, sessionmaker
 
 from service.db import repository
 from service.db.tables import Network, Policy, SolveJob
-from service.policies import PolicyCache, PolicyNotReadyError, recommend
+from service.policies import PolicyCache, PolicyNotReadyError, PolicyNotSolvedError, recommend
 from solver import InvalidStockError, solve_network
 from tests.service.test_repository import demo
 from tests.service.test_worker import make_worker
@@ -26,7 +26,7 @@ def serve(
     cache: PolicyCache,
     network_id: int,
     stock: dict[str, int],
-    criterion: str = "discounted",
+    criterion: str | None = "discounted",
 ):  # type: ignore[no-untyped-def]
     with sessions.begin() as session:
         served, recommendation, _ = recommend(
@@ -42,8 +42,35 @@ def test_nothing_is_served_before_the_solve(
     with pytest.raises(PolicyNotReadyError, match="job 1 queued") as info:
         serve(sessions, PolicyCache(4), network_id, {"riverside": 3, "hilltop": 2})
     assert info.value.job_state == "queued"
-    with pytest.raises(PolicyNotReadyError, match="no average solve was requested"):
+    with pytest.raises(PolicyNotSolvedError, match="not solved for average") as never:
         serve(sessions, PolicyCache(4), network_id, {"riverside": 3, "hilltop": 2}, "average")
+    assert never.value.criteria == ["discounted"]
+
+
+def test_an_older_version_is_not_served_as_stale_when_nothing_solves_the_newest(
+    engine: Engine, sessions: sessionmaker[Session]
+) -> None:
+    network_id = new_network(sessions)
+    worker = make_worker(engine, sessions)
+    worker.run(until_idle=True)
+    with sessions.begin() as session:
+        network = session.get_one(Network, network_id)
+        _, jobs = repository.add_version(session, network, demo(discount=0.98), ["discounted"])
+        # The newest version's only solve fails for good.
+        jobs[0].state = "failed"
+        jobs[0].error = "gave up"
+    with pytest.raises(PolicyNotSolvedError, match="failed") as failed:
+        serve(sessions, PolicyCache(4), network_id, {"riverside": 5, "hilltop": 5})
+    assert failed.value.job_state == "failed"
+    with sessions.begin() as session:
+        network = session.get_one(Network, network_id)
+        # A version solved for another criterion only: discounted is no longer in use.
+        repository.add_version(session, network, demo(discount=0.97), ["average"])
+    with pytest.raises(PolicyNotSolvedError, match="not solved for discounted"):
+        serve(sessions, PolicyCache(4), network_id, {"riverside": 5, "hilltop": 5})
+    worker.run(until_idle=True)
+    served, _ = serve(sessions, PolicyCache(4), network_id, {"riverside": 5, "hilltop": 5}, None)
+    assert (served.criterion, served.version_number, served.stale) == ("average", 3, False)
 
 
 def test_recommendation_equals_the_solver_and_comes_from_the_cache(
