@@ -7,10 +7,12 @@ import json
 import sys
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
+from pathlib import Path
 from typing import Any, TypeVar
 
 from pydantic import ValidationError
 from sqlalchemy import Engine
+from sqlalchemy.engine import make_url
 from sqlalchemy.exc import OperationalError
 from sqlalchemy.orm import Session, sessionmaker
 
@@ -56,9 +58,26 @@ def load_settings() -> Settings:
         raise UsageError(f"invalid settings: {problems}") from exc
 
 
+def _require_sqlite_file(url: str) -> None:
+    """Refuse, in one line naming it, a SQLite database file that does not exist: connecting
+    would create an empty one (and its folder) wherever the command happens to run."""
+    parsed = make_url(url)
+    if parsed.get_backend_name() != "sqlite" or parsed.database in (None, "", ":memory:"):
+        return
+    path = Path(parsed.database)
+    if not path.is_file():
+        raise UsageError(
+            f"no database at {path.resolve()} (database URL {url}): run `stockrelay migrate` "
+            "to create it there, or point STOCKRELAY_DATABASE_URL at an existing one"
+        )
+
+
 @contextmanager
 def _database(*, migrated: bool = True) -> Iterator[tuple[Settings, Engine]]:
+    """Settings and an engine. Only `migrate` (migrated=False) may create a SQLite file."""
     settings = load_settings()
+    if migrated:
+        _require_sqlite_file(settings.database_url)
     engine = make_engine(settings.database_url, pool_size=settings.database_pool_size)
     try:
         if migrated:

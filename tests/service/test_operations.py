@@ -301,3 +301,34 @@ def test_invalid_settings_are_refused_naming_the_variable(
         assert_one_line_error(code, captured.out, captured.err)
         assert "STOCKRELAY_LEASE_SECONDS" in captured.err
     assert not database.parent.exists()
+
+
+def test_only_migrate_creates_a_database_and_the_others_name_the_one_they_looked_for(
+    monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str], tmp_path: Path
+) -> None:
+    monkeypatch.chdir(tmp_path)  # run from another folder, with the default URL
+    monkeypatch.delenv("STOCKRELAY_DATABASE_URL", raising=False)
+    expected = tmp_path / "var" / "stockrelay.db"
+    commands = (
+        ["jobs", "list"],
+        ["jobs", "retry", "1"],
+        ["networks", "list"],
+        ["networks", "import", str(DEMO)],
+        ["networks", "export", "1"],
+        ["keys", "list"],
+        ["keys", "create", "--tenant", "t", "--scope", "read"],
+        ["worker", "--until-idle"],
+        ["serve"],
+        ["run"],
+    )
+    for argv in commands:
+        code = main(argv)
+        captured = capsys.readouterr()
+        assert_one_line_error(code, captured.out, captured.err)
+        assert str(expected) in captured.err and "stockrelay migrate" in captured.err, argv
+        assert not (tmp_path / "var").exists(), argv
+
+    assert main(["migrate"]) == 0
+    assert expected.is_file()
+    capsys.readouterr()
+    assert main(["networks", "list"]) == 0
