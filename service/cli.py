@@ -16,6 +16,7 @@ from pydantic import ValidationError
 
 from service import operations
 from service.analysis import AnalysisInputError, run_simulation
+from service.db.tables import JobKind
 from service.errors import UsageError
 from service.files import load_network, write_json_atomically
 from service.logs import logging_from_environment
@@ -170,12 +171,28 @@ def _parser() -> argparse.ArgumentParser:
 
     jobs = commands.add_parser("jobs", help="list solve jobs or retry a failed one")
     job_commands = jobs.add_subparsers(dest="action", required=True, metavar="ACTION")
-    list_jobs = job_commands.add_parser("list", help="newest jobs first")
-    list_jobs.add_argument("--state", choices=["queued", "running", "done", "failed"])
-    list_jobs.add_argument("--limit", type=_positive, default=50)
+    list_jobs = job_commands.add_parser(
+        "list",
+        help="newest jobs first: id, state, kind, criterion, network, version, attempts, "
+        "seconds, error",
+    )
+    list_jobs.add_argument(
+        "--state", choices=["queued", "running", "done", "failed"], help="only jobs in this state"
+    )
+    list_jobs.add_argument(
+        "--kind",
+        choices=[kind.value for kind in JobKind],
+        help="only solves, simulations or what-if comparisons (default: every kind)",
+    )
+    list_jobs.add_argument("--limit", type=_positive, default=50, help="at most this many (50)")
     list_jobs.set_defaults(handler=operations.list_jobs)
-    retry = job_commands.add_parser("retry", help="queue a failed job again")
-    retry.add_argument("id", type=int)
+    retry = job_commands.add_parser(
+        "retry",
+        help="queue a failed job again with fresh attempts",
+        description="Queue a "
+        "failed job again with fresh attempts (after fixing what made it fail).",
+    )
+    retry.add_argument("id", type=int, help="the job's id (see `stockrelay jobs list`)")
     retry.set_defaults(handler=operations.retry_job)
     return parser
 

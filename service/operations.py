@@ -21,7 +21,7 @@ from service.db import repository
 from service.db.migrate import DatabaseNotMigratedError, current_revision, require_migrated
 from service.db.migrate import upgrade as upgrade_schema
 from service.db.session import make_engine, make_session_factory
-from service.db.tables import Network
+from service.db.tables import JobKind, Network
 from service.errors import UsageError
 from service.files import load_network, write_json_atomically
 from service.settings import Settings
@@ -242,13 +242,16 @@ def list_networks(_args: argparse.Namespace) -> int:
 
 
 def list_jobs(args: argparse.Namespace) -> int:
+    kind = None if args.kind is None else JobKind(args.kind)
+
     def work(session: Session) -> list[str]:
         return [
-            f"{job.id:>6}  {job.state:<8} {job.criterion:<10} version {job.version_id:<5} "
+            f"{job.id:>6}  {job.state:<8} {job.kind:<8} {job.criterion:<10} "
+            f"network {job.network_id:<4} version {job.version_number:<4} "
             f"attempts {job.attempts}"
             + (f"  {job.solve_seconds:.3f} s" if job.solve_seconds is not None else "")
             + (f"  error: {job.error}" if job.error else "")
-            for job in repository.list_jobs(session, args.state, args.limit)
+            for job in repository.list_jobs(session, args.state, args.limit, kind=kind)
         ]
 
     with _database() as (_settings, engine):
@@ -299,6 +302,8 @@ def revoke_key(args: argparse.Namespace) -> int:
 
 def retry_job(args: argparse.Namespace) -> int:
     def work(session: Session) -> None:
+        if repository.get_job(session, args.id) is None:
+            raise UsageError(f"no job {args.id}")
         if repository.retry_job(session, args.id) is None:
             raise UsageError(
                 f"job {args.id} is not a failed job, or another solve of it is already queued"

@@ -226,6 +226,28 @@ def test_job_list_filters_by_state_and_bounds_its_limit(client: TestClient, engi
     assert pointers(lost) == ["query:/state"]
 
 
+def test_jobs_name_their_network_and_version_number(client: TestClient) -> None:
+    first = create_network(client, demo_document(name="First"))
+    second = create_network(client, demo_document(name="Second"))
+    changed = demo_document(name="Second", discount=0.9)
+    response = client.put(f"/v1/networks/{second['id']}", json=changed, headers={"If-Match": '"1"'})
+    assert response.status_code == 200, response.text
+    [next_job] = response.json()["jobs"]
+
+    listed = {job["id"]: job for job in client.get("/v1/jobs").json()}
+    expected = {
+        first["jobs"][0]["id"]: (first["id"], 1),
+        second["jobs"][0]["id"]: (second["id"], 1),
+        next_job["id"]: (second["id"], 2),
+    }
+    assert {i: (j["network_id"], j["version_number"]) for i, j in listed.items()} == expected
+    assert (next_job["network_id"], next_job["version_number"]) == (second["id"], 2)
+    one = client.get(f"/v1/jobs/{next_job['id']}").json()
+    assert (one["network_id"], one["version_number"]) == (second["id"], 2)
+    # The row id of the version stays, and differs from the number once networks share a table.
+    assert one["version_id"] == 3
+
+
 # -- health ------------------------------------------------------------------------------------
 
 

@@ -15,8 +15,9 @@ from sqlalchemy import Engine, func, select
 from sqlalchemy.orm import Session, sessionmaker
 
 from service.cli import main
+from service.db import repository
 from service.db.session import make_engine, make_session_factory
-from service.db.tables import Network, NetworkVersion, Policy, SolveJob, Tenant
+from service.db.tables import JobKind, Network, NetworkVersion, Policy, SolveJob, Tenant
 from solver import NetworkSpec
 
 DEMO = Path(__file__).resolve().parents[2] / "service" / "data" / "demo_network.json"
@@ -209,8 +210,10 @@ def test_jobs_list_filters_by_state_and_the_worker_drains_the_queue(
     lines = out.splitlines()
     assert len(lines) == 2
     # Newest first.
-    assert lines[0].split()[:3] == ["2", "queued", "average"]
-    assert lines[1].split()[:3] == ["1", "queued", "discounted"]
+    assert lines[0].split()[:8] == [
+        "2", "queued", "solve", "average", "network", "1", "version", "1"
+    ]  # fmt: skip
+    assert lines[1].split()[:4] == ["1", "queued", "solve", "discounted"]
     assert all(line.endswith("attempts 0") for line in lines)
     assert run("jobs", "list", "--state", "queued")[1] == out
     assert run("jobs", "list", "--state", "done") == (0, "", "")
@@ -221,9 +224,9 @@ def test_jobs_list_filters_by_state_and_the_worker_drains_the_queue(
     assert run("jobs", "list", "--state", "queued") == (0, "", "")
     code, out, _ = run("jobs", "list", "--state", "done")
     done = out.splitlines()
-    assert [line.split()[:3] for line in done] == [
-        ["2", "done", "average"],
-        ["1", "done", "discounted"],
+    assert [line.split()[:4] for line in done] == [
+        ["2", "done", "solve", "average"],
+        ["1", "done", "solve", "discounted"],
     ]
     assert all(re.search(r"attempts 1  \d+\.\d{3} s$", line) for line in done), done
     assert [(j.state, j.attempts) for j in jobs(sessions)] == [("done", 1), ("done", 1)]
@@ -255,7 +258,9 @@ def test_retry_requeues_a_failed_job_and_refuses_any_other(
     assert (job.state, job.attempts, job.error) == ("done", 1, None)
     assert rows(sessions, Policy) == 1
     assert_one_line_error(*run("jobs", "retry", str(job.id)))
-    assert_one_line_error(*run("jobs", "retry", "99"))
+    code, out, err = run("jobs", "retry", "99")
+    assert_one_line_error(code, out, err)
+    assert err == "stockrelay: error: no job 99\n"
     assert [(j.state, j.attempts) for j in jobs(sessions)] == [("done", 1)]
 
 
@@ -332,3 +337,35 @@ def test_only_migrate_creates_a_database_and_the_others_name_the_one_they_looked
     assert expected.is_file()
     capsys.readouterr()
     assert main(["networks", "list"]) == 0
+
+
+def test_jobs_list_shows_network_version_number_and_every_kind(
+    run: Run, sessions: sessionmaker[Session], tmp_path: Path
+) -> None:
+    # Two networks, the second with two versions: version numbers differ from row ids.
+    run("networks", "import", str(DEMO))
+    other = write(tmp_path / "other.json", demo_document(name="Other store pair"))
+    run("networks", "import", str(other))
+    run("networks", "import", str(write(tmp_path / "o2.json", demo_document(
+        name="Other store pair", discount=0.9))))  # fmt: skip
+    with sessions.begin() as session:
+        version = session.scalars(select(NetworkVersion).where(NetworkVersion.number == 2)).one()
+        tenant_id = session.scalars(select(Tenant.id)).one()
+        simulation = repository.enqueue_analysis(
+            session, tenant_id, version, JobKind.SIMULATE, "average", "{}"
+        ).id
+
+    code, out, err = run("jobs", "list")
+    assert (code, err) == (0, "")
+    shown = [line.split()[:8] for line in out.splitlines()]
+    assert shown == [
+        [str(simulation), "queued", "simulate", "average", "network", "2", "version", "2"],
+        ["3", "queued", "solve", "discounted", "network", "2", "version", "2"],
+        ["2", "queued", "solve", "discounted", "network", "2", "version", "1"],
+        ["1", "queued", "solve", "discounted", "network", "1", "version", "1"],
+    ]
+    _, only_simulations, _ = run("jobs", "list", "--kind", "simulate")
+    assert [line.split()[0] for line in only_simulations.splitlines()] == [str(simulation)]
+    _, solves, _ = run("jobs", "list", "--kind", "solve")
+    assert [line.split()[0] for line in solves.splitlines()] == ["3", "2", "1"]
+    assert run("jobs", "list", "--kind", "what_if") == (0, "", "")
