@@ -133,20 +133,30 @@ DEMO_KEY_LABEL = "demo key made by `stockrelay run`"
 
 
 def run(args: argparse.Namespace) -> int:
-    """API and workers for trying stockrelay out, with a fresh write key for the default tenant
-    (the one made by the previous run is revoked)."""
-    from service.supervisor import supervise
+    """API and workers for trying stockrelay out, with a write key for the default tenant that
+    is revoked when the run stops (and, should the run be killed, by the next run)."""
+    from service import supervisor
 
-    def demo_key(session: Session) -> str:
+    def demo_key(session: Session) -> tuple[str, str]:
+        # A run that was killed could not revoke its key: do it now.
         for key, _tenant in auth.list_keys(session):
             if key.label == DEMO_KEY_LABEL and key.revoked_at is None:
                 auth.revoke_key(session, key.prefix)
         tenant = repository.get_or_create_tenant(session, DEFAULT_TENANT)
-        return auth.create_key(session, tenant, "write", DEMO_KEY_LABEL)[1]
+        row, secret = auth.create_key(session, tenant, "write", DEMO_KEY_LABEL)
+        return row.prefix, secret
 
     with _database() as (_settings, engine):  # refuses an un-migrated database in one line
-        key = _in_transaction(engine, demo_key)
-    return supervise(args.host, args.port, args.workers, key)
+        problem = supervisor.port_problem(args.host, args.port)
+        if problem is not None:
+            raise UsageError(f"{problem}; stop what uses it or choose another --port")
+        prefix, key = _in_transaction(engine, demo_key)
+    try:
+        return supervisor.supervise(args.host, args.port, args.workers, key)
+    finally:
+        with _database() as (_settings, engine):
+            _in_transaction(engine, lambda session: auth.revoke_key(session, prefix))
+        sys.stderr.write(f"stockrelay: the key made for this run ({prefix}) is revoked\n")
 
 
 def openapi_document() -> dict[str, Any]:

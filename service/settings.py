@@ -68,6 +68,14 @@ class Settings(BaseSettings):
     key_cache_seconds: Annotated[
         float, Field(ge=0, description="How long a process trusts a key it has checked.")
     ] = 5.0
+    run_token: Annotated[
+        str | None,
+        Field(
+            description="Set by `stockrelay run` for the API it starts: /readyz echoes it in "
+            "the Stockrelay-Run header, so the supervisor knows it reached its own child and "
+            "not another server on the same port.",
+        ),
+    ] = None
     log_format: Annotated[
         Literal["text", "json"],
         Field(description="Log lines as text for people, or one JSON object per line."),

@@ -12,6 +12,9 @@ from service.problems import PROBLEM_JSON, problem_body
 
 router = APIRouter(tags=["health"])
 
+# Carries Settings.run_token: how `stockrelay run` tells its own API from another server.
+RUN_HEADER = "Stockrelay-Run"
+
 
 @router.get("/healthz")
 def healthz() -> dict[str, str]:
@@ -29,4 +32,5 @@ def readyz(request: Request) -> JSONResponse:
         detail = str(exc) if isinstance(exc, DatabaseNotMigratedError) else "database unreachable"
         body = problem_body(request, 503, "not-ready", "Not ready", detail)
         return JSONResponse(body, 503, media_type=PROBLEM_JSON, headers={"Retry-After": "5"})
-    return JSONResponse({"status": "ready"})
+    token = request.app.state.settings.run_token
+    return JSONResponse({"status": "ready"}, headers={RUN_HEADER: token} if token else None)
