@@ -219,6 +219,7 @@ def _criteria(text: str) -> list[str]:
 
 def _solve(args: argparse.Namespace) -> int:
     spec = load_network(args.network)
+    operations.load_settings().limit_blas_threads()
     try:
         result = solve_network(spec, criterion=args.criterion, method=args.method)
     except (SolverError, ValueError) as exc:
@@ -234,6 +235,7 @@ _OPTIONS = {"warmup_days": "--warmup"}
 
 def _simulate(args: argparse.Namespace) -> int:
     spec = load_network(args.network)
+    operations.load_settings().limit_blas_threads()
     try:
         params = SimulationRequest(
             criterion=args.criterion,

@@ -51,6 +51,9 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     schema revision this code needs. A database that cannot be reached at start is not refused:
     requests answer 503 and /readyz fails until it returns."""
     settings = settings or Settings()
+    # Requests solve what-if comparisons and simulations beside other processes. Here, not in
+    # the lifespan: OpenBLAS takes its thread count only from the main thread.
+    settings.limit_blas_threads()
 
     @asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:

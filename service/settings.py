@@ -6,6 +6,7 @@ from typing import Annotated, Literal
 
 from pydantic import Field, ValidationInfo, field_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
+from threadpoolctl import threadpool_limits
 
 from solver import SizeLimits
 
@@ -68,6 +69,15 @@ class Settings(BaseSettings):
     key_cache_seconds: Annotated[
         float, Field(ge=0, description="How long a process trusts a key it has checked.")
     ] = 5.0
+    blas_threads: Annotated[
+        int,
+        Field(
+            ge=1,
+            le=256,
+            description="Threads of the BLAS library per process (worker, API and CLI). One "
+            "keeps a solve fast when other processes share the cores; scale out by processes.",
+        ),
+    ] = 1
     run_token: Annotated[
         str | None,
         Field(
@@ -99,6 +109,12 @@ class Settings(BaseSettings):
             if url.startswith(prefix):
                 return "postgresql+psycopg://" + url[len(prefix) :]
         return url
+
+    def limit_blas_threads(self) -> None:
+        """Apply `blas_threads` to every BLAS library this process has loaded (numpy's and
+        scipy's): by default one thread per core, which collapses when the cores are busy.
+        Call it from the main thread: OpenBLAS ignores the request from any other."""
+        threadpool_limits(limits=self.blas_threads, user_api="blas")
 
     @property
     def size_limits(self) -> SizeLimits:

@@ -7,6 +7,7 @@ import csv
 import io
 import json
 import re
+from collections.abc import Callable
 from datetime import datetime
 
 import numpy as np
@@ -14,6 +15,7 @@ import pytest
 from fastapi.testclient import TestClient
 from numpy.testing import assert_allclose, assert_array_equal
 from sqlalchemy import Engine
+from threadpoolctl import threadpool_limits
 
 from service.db.migrate import DatabaseNotMigratedError, downgrade
 from service.main import create_app
@@ -274,6 +276,20 @@ def test_app_refuses_to_start_on_an_unmigrated_database(database_url: str) -> No
     app = create_app(Settings(database_url=database_url))
     with pytest.raises(DatabaseNotMigratedError, match="stockrelay migrate"), TestClient(app):
         pass
+
+
+@sqlite_only
+@pytest.mark.parametrize(("threads", "expected"), [({}, 1), ({"blas_threads": 3}, 3)])
+def test_the_api_process_uses_the_configured_blas_threads(
+    database_url: str,
+    engine: Engine,
+    threads: dict[str, int],
+    expected: int,
+    blas_threads: Callable[[], set[int]],
+) -> None:
+    threadpool_limits(limits=2, user_api="blas")  # as a 2-core machine starts
+    with TestClient(create_app(Settings(database_url=database_url, **threads))):
+        assert blas_threads() == {expected}
 
 
 # -- what every problem shares -----------------------------------------------------------------

@@ -5,12 +5,15 @@ from __future__ import annotations
 import json
 import subprocess
 import sys
+from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 import pytest
+from threadpoolctl import threadpool_limits
 
+from service import cli
 from service.analysis import run_simulation
 from service.cli import main
 from service.schemas import SimulationRequest
@@ -225,3 +228,35 @@ def test_simulate_bad_input_is_one_line(
     assert (code, stdout) == (2, "")
     assert stderr.count("\n") == 1 and stderr.startswith("stockrelay: error: ")
     assert message in stderr
+
+
+# -- BLAS threads -------------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize(("setting", "expected"), [(None, 1), ("3", 3)])
+@pytest.mark.parametrize("command", ["solve", "simulate"])
+def test_cli_work_uses_the_configured_blas_threads(
+    command: str,
+    setting: str | None,
+    expected: int,
+    blas_threads: Callable[[], set[int]],
+    monkeypatch: pytest.MonkeyPatch,
+    capsys: pytest.CaptureFixture[str],
+) -> None:
+    if setting is None:
+        monkeypatch.delenv("STOCKRELAY_BLAS_THREADS", raising=False)
+    else:
+        monkeypatch.setenv("STOCKRELAY_BLAS_THREADS", setting)
+    threadpool_limits(limits=2, user_api="blas")  # as a 2-core machine starts
+    seen: list[set[int]] = []
+    name = "solve_network" if command == "solve" else "run_simulation"
+    real = getattr(cli, name)
+
+    def watched(*args: Any, **kwargs: Any) -> Any:
+        seen.append(blas_threads())
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(cli, name, watched)
+    code, _, _ = run([command, str(DEMO), *(SHORT if command == "simulate" else [])], capsys)
+    assert code == 0
+    assert seen == [{expected}]
