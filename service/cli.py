@@ -6,7 +6,9 @@ import argparse
 import json
 import logging
 import math
+import os
 import sys
+import time
 from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
@@ -21,7 +23,7 @@ from service.errors import UsageError
 from service.files import load_network, write_json_atomically
 from service.logs import logging_from_environment
 from service.schemas import SimulationRequest
-from solver import NetworkSpec, PolicyResult, SolverError, solve_network
+from solver import NetworkSpec, PolicyResult, Progress, SolverError, solve_network
 from solver.spec import WEEKDAYS
 
 __all__ = ["main"]
@@ -29,7 +31,12 @@ __all__ = ["main"]
 log = logging.getLogger(__name__)
 
 EXIT_BAD_INPUT = 2
+EXIT_INTERRUPTED = 130  # 128 + SIGINT, as shells report a command stopped by Ctrl-C
+# Solver progress goes to stderr once a solve has taken this long, at most this often.
+PROGRESS_AFTER_SECONDS = 2.0
+PROGRESS_EVERY_SECONDS = 0.5
 _GRID_MAX_SIDE = 21
+TENANT_NAME_MAX = 100  # the width of tenants.name
 
 
 def main(argv: Sequence[str] | None = None) -> int:
@@ -41,6 +48,14 @@ def main(argv: Sequence[str] | None = None) -> int:
     except UsageError as exc:
         sys.stderr.write(f"stockrelay: error: {exc}\n")
         return EXIT_BAD_INPUT
+    except KeyboardInterrupt:
+        sys.stderr.write("stockrelay: interrupted\n")
+        return EXIT_INTERRUPTED
+    except BrokenPipeError:
+        # The reader went away (`stockrelay jobs list | head`): stop quietly, and keep Python
+        # from complaining when it flushes stdout at exit.
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return 1
     return code
 
 
@@ -131,7 +146,12 @@ def _parser() -> argparse.ArgumentParser:
         "network of the same name, and queue its solves",
     )
     import_.add_argument("network", type=Path, metavar="NETWORK.json")
-    import_.add_argument("--tenant", default=operations.DEFAULT_TENANT)
+    import_.add_argument(
+        "--tenant",
+        type=_tenant,
+        default=operations.DEFAULT_TENANT,
+        help=f"the tenant that owns it (default: {operations.DEFAULT_TENANT})",
+    )
     import_.add_argument(
         "--criteria",
         default="discounted",
@@ -159,7 +179,9 @@ def _parser() -> argparse.ArgumentParser:
     create_key = key_commands.add_parser(
         "create", help="create a key and print it (once: only its hash is stored)"
     )
-    create_key.add_argument("--tenant", required=True)
+    create_key.add_argument(
+        "--tenant", type=_tenant, required=True, help="the tenant whose data the key reaches"
+    )
     create_key.add_argument("--scope", choices=["read", "write", "admin"], required=True)
     create_key.add_argument("--label", help="a note saying whose key this is")
     create_key.set_defaults(handler=operations.create_key)
@@ -207,6 +229,15 @@ def _positive(text: str) -> int:
     return value
 
 
+def _tenant(text: str) -> str:
+    name = text.strip()
+    if not 1 <= len(name) <= TENANT_NAME_MAX or not name.isprintable():
+        raise argparse.ArgumentTypeError(
+            f"a tenant is named by 1 to {TENANT_NAME_MAX} printable characters, got {text!r}"
+        )
+    return name
+
+
 def _criteria(text: str) -> list[str]:
     criteria = [part.strip() for part in text.split(",") if part.strip()]
     unknown = [c for c in criteria if c not in ("discounted", "average")]
@@ -217,11 +248,34 @@ def _criteria(text: str) -> list[str]:
     return criteria
 
 
+class ProgressLines:
+    """Solver progress on stderr, one line per iteration (at most every PROGRESS_EVERY_SECONDS),
+    once the work has taken PROGRESS_AFTER_SECONDS: quick commands stay quiet."""
+
+    def __init__(self) -> None:
+        self.start = time.monotonic()
+        self.last = -math.inf
+
+    def __call__(self, progress: Progress) -> None:
+        now = time.monotonic()
+        elapsed = now - self.start
+        if elapsed < PROGRESS_AFTER_SECONDS or now - self.last < PROGRESS_EVERY_SECONDS:
+            return
+        self.last = now
+        sys.stderr.write(
+            f"stockrelay: iteration {progress.iteration}, residual {progress.residual:.3g}, "
+            f"{elapsed:.1f} s elapsed\n"
+        )
+        sys.stderr.flush()
+
+
 def _solve(args: argparse.Namespace) -> int:
     spec = load_network(args.network)
     operations.load_settings().limit_blas_threads()
     try:
-        result = solve_network(spec, criterion=args.criterion, method=args.method)
+        result = solve_network(
+            spec, criterion=args.criterion, method=args.method, progress=ProgressLines()
+        )
     except (SolverError, ValueError) as exc:
         raise UsageError(f"{args.network}: {exc}") from exc
     if args.out is not None:
@@ -252,7 +306,7 @@ def _simulate(args: argparse.Namespace) -> int:
             )
         ) from exc
     try:
-        report = run_simulation(spec, params)
+        report = run_simulation(spec, params, progress=ProgressLines())
     except AnalysisInputError as exc:
         raise UsageError("; ".join(detail for _, detail in exc.errors)) from exc
     except (SolverError, ValueError) as exc:

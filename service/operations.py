@@ -78,7 +78,10 @@ def _database(*, migrated: bool = True) -> Iterator[tuple[Settings, Engine]]:
     settings = load_settings()
     if migrated:
         _require_sqlite_file(settings.database_url)
-    engine = make_engine(settings.database_url, pool_size=settings.database_pool_size)
+    try:
+        engine = make_engine(settings.database_url, pool_size=settings.database_pool_size)
+    except OSError as exc:  # the SQLite file's folder cannot be made
+        raise UsageError(f"cannot create the database {settings.database_url}: {exc}") from exc
     try:
         if migrated:
             require_migrated(engine)
@@ -87,7 +90,9 @@ def _database(*, migrated: bool = True) -> Iterator[tuple[Settings, Engine]]:
         raise UsageError(str(exc)) from exc
     except OperationalError as exc:
         where = engine.url.render_as_string(hide_password=True)
-        raise UsageError(f"cannot use database {where}: {exc.orig or exc}") from exc
+        # Drivers spread their messages over several lines; the CLI says it in one.
+        reason = " ".join(str(exc.orig or exc).split())
+        raise UsageError(f"cannot use database {where}: {reason}") from exc
     finally:
         engine.dispose()
 
@@ -108,9 +113,13 @@ def serve(args: argparse.Namespace) -> int:
     import uvicorn
 
     from service.main import create_app
+    from service.supervisor import port_problem
 
     with _database() as (settings, _engine):
         pass  # refuse to start, with one line, on a database that is not migrated
+    problem = port_problem(args.host, args.port)
+    if problem is not None:
+        raise UsageError(problem)
     if args.workers == 1:
         uvicorn.run(create_app(settings), host=args.host, port=args.port, log_level="info")
     else:
@@ -149,7 +158,7 @@ def run(args: argparse.Namespace) -> int:
     with _database() as (_settings, engine):  # refuses an un-migrated database in one line
         problem = supervisor.port_problem(args.host, args.port)
         if problem is not None:
-            raise UsageError(f"{problem}; stop what uses it or choose another --port")
+            raise UsageError(problem)
         prefix, key = _in_transaction(engine, demo_key)
     try:
         return supervisor.supervise(args.host, args.port, args.workers, key)
@@ -163,7 +172,7 @@ def openapi_document() -> dict[str, Any]:
     """The OpenAPI document of the app, as committed in openapi/openapi.json."""
     from service.main import create_app
 
-    document: dict[str, Any] = create_app(Settings()).openapi()
+    document: dict[str, Any] = create_app(load_settings()).openapi()
     return document
 
 
@@ -172,7 +181,10 @@ def write_openapi(args: argparse.Namespace) -> int:
     if args.out is None:
         sys.stdout.write(text)
     else:
-        args.out.write_text(text, encoding="utf-8")
+        try:
+            args.out.write_text(text, encoding="utf-8")
+        except OSError as exc:
+            raise UsageError(f"cannot write {args.out}: {exc.strerror or exc}") from exc
     return 0
 
 

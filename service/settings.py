@@ -6,6 +6,8 @@ from typing import Annotated, Literal
 
 from pydantic import Field, ValidationInfo, field_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
+from sqlalchemy.engine import make_url
+from sqlalchemy.exc import ArgumentError
 from threadpoolctl import threadpool_limits
 
 from solver import SizeLimits
@@ -107,7 +109,14 @@ class Settings(BaseSettings):
     def _psycopg_for_postgresql(cls, url: str) -> str:
         for prefix in ("postgresql://", "postgres://"):
             if url.startswith(prefix):
-                return "postgresql+psycopg://" + url[len(prefix) :]
+                url = "postgresql+psycopg://" + url[len(prefix) :]
+        example = "e.g. sqlite:///./var/stockrelay.db or postgresql://user@host:5432/database"
+        try:
+            backend = make_url(url).get_backend_name()
+        except ArgumentError as exc:
+            raise ValueError(f"not a database URL; expected {example}") from exc
+        if backend not in ("sqlite", "postgresql"):
+            raise ValueError(f"stockrelay stores its data in SQLite or PostgreSQL, {example}")
         return url
 
     def limit_blas_threads(self) -> None:

@@ -124,14 +124,17 @@ def port_problem(host: str, port: int) -> str | None:
     try:
         infos = socket.getaddrinfo(host, port, type=socket.SOCK_STREAM, flags=socket.AI_PASSIVE)
     except socket.gaierror as exc:
-        return f"cannot resolve host {host!r}: {exc.strerror or exc}"
+        return f"cannot resolve host {host!r}: {exc.strerror or exc}; check --host"
     family, kind, proto, _, address = infos[0]
     with socket.socket(family, kind, proto) as probe:
         probe.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
         try:
             probe.bind(address)
         except OSError as exc:
-            return f"cannot listen on {host}:{port}: {exc.strerror or exc}"
+            return (
+                f"cannot listen on {host}:{port}: {exc.strerror or exc}; stop what uses it or "
+                "choose another --port"
+            )
     return None
 
 

@@ -3,8 +3,11 @@
 from __future__ import annotations
 
 import json
+import re
+import signal
 import subprocess
 import sys
+import time
 from collections.abc import Callable
 from pathlib import Path
 from typing import Any
@@ -153,6 +156,54 @@ def test_console_script_runs_as_installed(tmp_path: Path) -> None:
         [sys.executable, "-m", "service.cli", "solve"], capture_output=True, text=True, check=False
     )
     assert usage.returncode == 2
+
+
+PROGRESS_LINE = re.compile(r"^stockrelay: iteration (\d+), residual \S+, \d+\.\d s elapsed$")
+
+
+def test_solve_reports_progress_on_stderr_once_it_takes_long(
+    monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
+) -> None:
+    monkeypatch.setattr(cli, "PROGRESS_AFTER_SECONDS", 0.0)  # as if every solve were long
+    monkeypatch.setattr(cli, "PROGRESS_EVERY_SECONDS", 0.0)
+    code, out, err = run(["solve", str(DEMO)], capsys)
+
+    assert code == 0
+    iterations = int(re.search(r"^iterations\s+(\d+)", out, re.MULTILINE)[1])  # type: ignore[index]
+    matches = [PROGRESS_LINE.match(line) for line in err.splitlines()]
+    assert all(matches), err
+    assert [int(m[1]) for m in matches if m] == list(range(1, iterations + 1))
+
+
+def test_ctrl_c_during_a_long_solve_exits_130_in_one_line(tmp_path: Path) -> None:
+    # Value iteration at discount 0.997 on 151 x 151 stock levels runs for many seconds.
+    document = demo_document()
+    for location in document["locations"]:
+        location["capacity"] = 150
+    network = tmp_path / "slow.json"
+    network.write_text(json.dumps(document))
+    err = tmp_path / "err.txt"
+    with err.open("wb") as sink:
+        process = subprocess.Popen(
+            [sys.executable, "-m", "service.cli", "solve", str(network), "--method",
+             "value-iteration"],
+            stdout=subprocess.DEVNULL, stderr=sink,
+        )  # fmt: skip
+    try:
+        give_up = time.monotonic() + 60
+        while "iteration" not in err.read_text():  # progress: the solve is under way
+            assert process.poll() is None, err.read_text()
+            assert time.monotonic() < give_up, "no progress printed within 60 s"
+            time.sleep(0.1)
+        process.send_signal(signal.SIGINT)
+        assert process.wait(timeout=60) == 130
+    finally:
+        if process.poll() is None:
+            process.kill()
+            process.wait()
+    lines = err.read_text().splitlines()
+    assert all(PROGRESS_LINE.match(line) for line in lines[:-1]), lines
+    assert lines[-1] == "stockrelay: interrupted"
 
 
 @pytest.mark.parametrize("limit", ["0", "-1", "many"])

@@ -6,6 +6,7 @@ from __future__ import annotations
 import json
 import re
 import signal
+import socket
 from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import Any
@@ -14,11 +15,13 @@ import pytest
 from sqlalchemy import Engine, func, select
 from sqlalchemy.orm import Session, sessionmaker
 
+from service import auth, supervisor
 from service.cli import main
 from service.db import repository
 from service.db.session import make_engine, make_session_factory
 from service.db.tables import JobKind, Network, NetworkVersion, Policy, SolveJob, Tenant
 from solver import NetworkSpec
+from tests.e2e.live import free_port
 
 DEMO = Path(__file__).resolve().parents[2] / "service" / "data" / "demo_network.json"
 
@@ -369,3 +372,54 @@ def test_jobs_list_shows_network_version_number_and_every_kind(
     _, solves, _ = run("jobs", "list", "--kind", "solve")
     assert [line.split()[0] for line in solves.splitlines()] == ["3", "2", "1"]
     assert run("jobs", "list", "--kind", "what_if") == (0, "", "")
+
+
+def test_user_mistakes_are_one_line_never_a_traceback(
+    run: Run, monkeypatch: pytest.MonkeyPatch, tmp_path: Path
+) -> None:
+    blocker = tmp_path / "a-file"
+    blocker.write_text("")
+    code, out, err = run("openapi", "--out", str(tmp_path / "missing" / "openapi.json"))
+    assert_one_line_error(code, out, err)
+    assert "cannot write" in err and "No such file or directory" in err
+
+    with socket.socket() as taken:
+        taken.bind(("127.0.0.1", 0))
+        taken.listen()
+        code, out, err = run("serve", "--port", str(taken.getsockname()[1]))
+    assert_one_line_error(code, out, err)
+    assert "Address already in use" in err and "--port" in err
+
+    for url, expected in [
+        ("mysql://someone@db/stock", "SQLite or PostgreSQL"),
+        ("not a url", "not a database URL"),
+        (f"sqlite:///{blocker}/stockrelay.db", "cannot create the database"),
+        ("postgresql://nobody@127.0.0.1:1/none", "cannot use database"),  # nothing listens on 1
+    ]:
+        monkeypatch.setenv("STOCKRELAY_DATABASE_URL", url)
+        code, out, err = run("migrate")
+        assert_one_line_error(code, out, err)
+        assert expected in err, err
+
+
+def test_run_revokes_its_key_when_it_stops_even_on_ctrl_c(
+    run: Run, sessions: sessionmaker[Session], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    keys: list[str] = []
+
+    def supervise(host: str, port: int, workers: int, key: str) -> int:
+        with sessions() as session:
+            assert auth.authenticate(session, key) is not None  # usable while running
+        keys.append(key)
+        if len(keys) == 2:
+            raise KeyboardInterrupt
+        return 0
+
+    monkeypatch.setattr(supervisor, "supervise", supervise)
+    port = str(free_port())
+    code, _, err = run("run", "--port", port)
+    assert code == 0 and "is revoked" in err
+    code, _, err = run("run", "--port", port)
+    assert (code, err.splitlines()[-1]) == (130, "stockrelay: interrupted")
+    with sessions() as session:
+        assert [auth.authenticate(session, key) for key in keys] == [None, None]
