@@ -71,8 +71,13 @@ def _parser() -> argparse.ArgumentParser:
         help="solve a network specification and print a summary",
         description="Solve NETWORK.json exactly and print a summary; --out writes the policy.",
     )
-    solve.add_argument("network", type=Path, metavar="NETWORK.json")
-    solve.add_argument("--criterion", choices=["discounted", "average"], default="discounted")
+    solve.add_argument("network", type=Path, metavar="NETWORK.json", help=_NETWORK_HELP)
+    solve.add_argument(
+        "--criterion",
+        choices=["discounted", "average"],
+        default="discounted",
+        help="discounted profit, or long-run profit per day (default: discounted)",
+    )
     solve.add_argument(
         "--method",
         choices=["howard", "modified", "value-iteration"],
@@ -87,10 +92,15 @@ def _parser() -> argparse.ArgumentParser:
         help="simulate the optimal policy beside simple rules and compare them",
         description="Solve NETWORK.json, then simulate its optimal policy, moving nothing, and "
         "balancing days of cover on the same random days, and print each one's profit per day, "
-        "fill rate, stock-out days and moves with 95%% intervals.",
+        "fill rate, stock-out days and moves with 95% intervals.",
     )
-    simulate.add_argument("network", type=Path, metavar="NETWORK.json")
-    simulate.add_argument("--criterion", choices=["discounted", "average"], default="average")
+    simulate.add_argument("network", type=Path, metavar="NETWORK.json", help=_NETWORK_HELP)
+    simulate.add_argument(
+        "--criterion",
+        choices=["discounted", "average"],
+        default="average",
+        help="the criterion the optimal policy is solved for (default: average)",
+    )
     simulate.add_argument(
         "--days", type=int, default=365, help="days measured per replication (1..3650)"
     )
@@ -105,16 +115,29 @@ def _parser() -> argparse.ArgumentParser:
     simulate.set_defaults(handler=_simulate)
 
     migrate = commands.add_parser(
-        "migrate", help="upgrade the database (STOCKRELAY_DATABASE_URL) to the current schema"
+        "migrate",
+        help="create the database or upgrade it to the current schema",
+        description="Create the database named by STOCKRELAY_DATABASE_URL (default "
+        "./var/stockrelay.db) or upgrade it to the schema this stockrelay needs. The only "
+        "command that creates a database; run it before the others and after each upgrade.",
     )
     migrate.set_defaults(handler=operations.migrate)
 
-    serve = commands.add_parser("serve", help="run the HTTP API (uvicorn) until Ctrl-C")
-    serve.add_argument("--host", default="127.0.0.1")
-    serve.add_argument("--port", type=_positive, default=8000)
-    serve.add_argument(
-        "--workers", type=_positive, default=1, help="API processes (default 1; try one per core)"
+    serve = commands.add_parser(
+        "serve",
+        help="run the HTTP API (uvicorn) until Ctrl-C",
+        description="Serve the HTTP API on HOST:PORT until Ctrl-C or SIGTERM. Solves are done "
+        "by `stockrelay worker` processes (or use `stockrelay run` for both).",
     )
+    serve.add_argument("--host", default="127.0.0.1", help=_HOST_HELP)
+    serve.add_argument("--port", type=_positive, default=8000, help="TCP port (default 8000)")
+    serve.add_argument(
+        "--processes",
+        type=_positive,
+        default=1,
+        help="API processes sharing the port (default 1; try one per core)",
+    )
+    _renamed(serve, "--workers", "--processes")
     serve.set_defaults(handler=operations.serve)
 
     run = commands.add_parser(
@@ -123,16 +146,35 @@ def _parser() -> argparse.ArgumentParser:
         description="Start `stockrelay serve` and solve workers as child processes, print an "
         "example request once the API answers, and stop them all on Ctrl-C or SIGTERM.",
     )
-    run.add_argument("--host", default="127.0.0.1")
-    run.add_argument("--port", type=_positive, default=8000)
-    run.add_argument("--workers", type=_positive, default=1, help="solve workers (default 1)")
+    run.add_argument("--host", default="127.0.0.1", help=_HOST_HELP)
+    run.add_argument("--port", type=_positive, default=8000, help="the API's port (default 8000)")
+    run.add_argument(
+        "--solve-workers",
+        type=_positive,
+        default=1,
+        help="solve worker processes beside the API (default 1)",
+    )
+    _renamed(run, "--workers", "--solve-workers")
     run.set_defaults(handler=operations.run)
 
-    openapi = commands.add_parser("openapi", help="write the API's OpenAPI document")
-    openapi.add_argument("--out", type=Path, metavar="openapi.json", help="default: stdout")
+    openapi = commands.add_parser(
+        "openapi",
+        help="write the API's OpenAPI document",
+        description="Write the HTTP API's OpenAPI 3.1 document as JSON (the committed copy is "
+        "openapi/openapi.json).",
+    )
+    openapi.add_argument(
+        "--out", type=Path, metavar="openapi.json", help="the file to write (default: stdout)"
+    )
     openapi.set_defaults(handler=operations.write_openapi)
 
-    worker = commands.add_parser("worker", help="run a solve worker until SIGTERM or Ctrl-C")
+    worker = commands.add_parser(
+        "worker",
+        help="run a solve worker until SIGTERM or Ctrl-C",
+        description="Claim queued jobs (solves, simulations, what-if comparisons) one at a "
+        "time and store their results, until SIGTERM or Ctrl-C. Run as many as there are cores "
+        "(PostgreSQL) or one (SQLite).",
+    )
     worker.add_argument(
         "--until-idle", action="store_true", help="exit once no job is left to claim"
     )
@@ -144,8 +186,11 @@ def _parser() -> argparse.ArgumentParser:
         "import",
         help="store NETWORK.json as a new network, or as the next version of the tenant's "
         "network of the same name, and queue its solves",
+        description="Store NETWORK.json as a new network, or as the next version of the "
+        "tenant's network of the same name, and queue a solve per criterion that has neither "
+        "a policy nor a live job.",
     )
-    import_.add_argument("network", type=Path, metavar="NETWORK.json")
+    import_.add_argument("network", type=Path, metavar="NETWORK.json", help=_NETWORK_HELP)
     import_.add_argument(
         "--tenant",
         type=_tenant,
@@ -165,38 +210,65 @@ def _parser() -> argparse.ArgumentParser:
     )
     import_.set_defaults(handler=operations.import_network)
     export = network_commands.add_parser(
-        "export", help="write the current specification of a network"
+        "export",
+        help="write the current specification of a network",
+        description="Write the current (or an earlier) specification of a network as JSON.",
     )
-    export.add_argument("id", type=int)
+    export.add_argument("id", type=int, help="the network's id (see `stockrelay networks list`)")
     export.add_argument("--version", type=int, help="an earlier version number")
-    export.add_argument("--out", type=Path, metavar="NETWORK.json")
+    export.add_argument(
+        "--out", type=Path, metavar="NETWORK.json", help="the file to write (default: stdout)"
+    )
     export.set_defaults(handler=operations.export_network)
-    list_networks = network_commands.add_parser("list", help="list networks and their versions")
+    list_networks = network_commands.add_parser(
+        "list",
+        help="list networks and their versions",
+        description="List every network: id, name, latest version number, archived or not.",
+    )
     list_networks.set_defaults(handler=operations.list_networks)
 
     keys = commands.add_parser("keys", help="create, list and revoke API keys")
     key_commands = keys.add_subparsers(dest="action", required=True, metavar="ACTION")
     create_key = key_commands.add_parser(
-        "create", help="create a key and print it (once: only its hash is stored)"
+        "create",
+        help="create a key and print it (once: only its hash is stored)",
+        description="Create an API key for a tenant and print it. It is shown once: only its "
+        "hash is stored. Scopes: read (GET and recommendations) < write < admin.",
     )
     create_key.add_argument(
         "--tenant", type=_tenant, required=True, help="the tenant whose data the key reaches"
     )
-    create_key.add_argument("--scope", choices=["read", "write", "admin"], required=True)
+    create_key.add_argument(
+        "--scope",
+        choices=["read", "write", "admin"],
+        required=True,
+        help="what the key may do: read < write < admin",
+    )
     create_key.add_argument("--label", help="a note saying whose key this is")
     create_key.set_defaults(handler=operations.create_key)
-    list_keys = key_commands.add_parser("list", help="list keys (never the keys themselves)")
+    list_keys = key_commands.add_parser(
+        "list",
+        help="list keys (never the keys themselves)",
+        description="List API keys: prefix, tenant, scope, when created and revoked, label. "
+        "The keys themselves are never stored.",
+    )
     list_keys.set_defaults(handler=operations.list_keys)
-    revoke = key_commands.add_parser("revoke", help="revoke a key by its prefix")
-    revoke.add_argument("prefix")
+    revoke = key_commands.add_parser(
+        "revoke",
+        help="revoke a key by its prefix",
+        description="Revoke an API key; processes stop accepting it within "
+        "STOCKRELAY_KEY_CACHE_SECONDS.",
+    )
+    revoke.add_argument("prefix", help="the key's prefix, as `stockrelay keys list` shows it")
     revoke.set_defaults(handler=operations.revoke_key)
 
     jobs = commands.add_parser("jobs", help="list solve jobs or retry a failed one")
     job_commands = jobs.add_subparsers(dest="action", required=True, metavar="ACTION")
     list_jobs = job_commands.add_parser(
         "list",
-        help="newest jobs first: id, state, kind, criterion, network, version, attempts, "
-        "seconds, error",
+        help="list jobs, newest first",
+        description="List jobs newest first: id, state, kind, criterion, network, version "
+        "number, attempts, seconds, error.",
     )
     list_jobs.add_argument(
         "--state", choices=["queued", "running", "done", "failed"], help="only jobs in this state"
@@ -217,6 +289,40 @@ def _parser() -> argparse.ArgumentParser:
     retry.add_argument("id", type=int, help="the job's id (see `stockrelay jobs list`)")
     retry.set_defaults(handler=operations.retry_job)
     return parser
+
+
+_NETWORK_HELP = "a network specification (JSON), e.g. service/data/demo_network.json"
+_HOST_HELP = "address to listen on (default 127.0.0.1; 0.0.0.0 for every interface)"
+
+
+class _RenamedOption(argparse.Action):
+    """An option's earlier name: still accepted, with a note naming the new one."""
+
+    def __init__(self, option_strings: list[str], dest: str, new_name: str, **kwargs: Any):
+        super().__init__(option_strings, dest, **kwargs)
+        self.new_name = new_name
+
+    def __call__(
+        self,
+        parser: argparse.ArgumentParser,
+        namespace: argparse.Namespace,
+        values: Any,
+        option_string: str | None = None,
+    ) -> None:
+        sys.stderr.write(f"stockrelay: note: {option_string} is now {self.new_name}\n")
+        setattr(namespace, self.dest, values)
+
+
+def _renamed(parser: argparse.ArgumentParser, old: str, new: str) -> None:
+    """Keep accepting `old` for the option now called `new` (hidden from --help)."""
+    parser.add_argument(
+        old,
+        action=_RenamedOption,
+        new_name=new,
+        dest=new.lstrip("-").replace("-", "_"),
+        type=_positive,
+        help=argparse.SUPPRESS,
+    )
 
 
 def _positive(text: str) -> int:

@@ -120,7 +120,7 @@ def serve(args: argparse.Namespace) -> int:
     problem = port_problem(args.host, args.port)
     if problem is not None:
         raise UsageError(problem)
-    if args.workers == 1:
+    if args.processes == 1:
         uvicorn.run(create_app(settings), host=args.host, port=args.port, log_level="info")
     else:
         # Each process builds its own app (and reads the same environment).
@@ -129,7 +129,7 @@ def serve(args: argparse.Namespace) -> int:
             factory=True,
             host=args.host,
             port=args.port,
-            workers=args.workers,
+            workers=args.processes,
             log_level="info",
             # A process on a busy machine may need more than uvicorn's default 5 s to import
             # the app (numpy, scipy, matplotlib) and answer its first health check.
@@ -161,7 +161,7 @@ def run(args: argparse.Namespace) -> int:
             raise UsageError(problem)
         prefix, key = _in_transaction(engine, demo_key)
     try:
-        return supervisor.supervise(args.host, args.port, args.workers, key)
+        return supervisor.supervise(args.host, args.port, args.solve_workers, key)
     finally:
         with _database() as (_settings, engine):
             _in_transaction(engine, lambda session: auth.revoke_key(session, prefix))

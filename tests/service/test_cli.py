@@ -2,13 +2,14 @@
 
 from __future__ import annotations
 
+import argparse
 import json
 import re
 import signal
 import subprocess
 import sys
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import Any
 
@@ -311,3 +312,58 @@ def test_cli_work_uses_the_configured_blas_threads(
     code, _, _ = run([command, str(DEMO), *(SHORT if command == "simulate" else [])], capsys)
     assert code == 0
     assert seen == [{expected}]
+
+
+# -- help, names and summaries ------------------------------------------------------------------
+
+
+def commands(
+    parser: argparse.ArgumentParser, path: tuple[str, ...] = ()
+) -> Iterator[tuple[tuple[str, ...], argparse.ArgumentParser, str | None]]:
+    """Every (sub)command: its words, its parser and the help its parent lists for it."""
+    for action in parser._actions:
+        if isinstance(action, argparse._SubParsersAction):
+            listed = {choice.dest: choice.help for choice in action._choices_actions}
+            for name, sub in action.choices.items():
+                yield (*path, name), sub, listed.get(name)
+                yield from commands(sub, (*path, name))
+
+
+def test_every_command_and_option_says_what_it_does(capsys: pytest.CaptureFixture[str]) -> None:
+    found = list(commands(cli._parser()))
+    assert len(found) > 15
+    for words, parser, listed in found:
+        assert listed, f"{' '.join(words)} has no help line"
+        if any(isinstance(a, argparse._SubParsersAction) for a in parser._actions):
+            continue
+        assert parser.description, f"`stockrelay {' '.join(words)} --help` says nothing"
+        for action in parser._actions:
+            if isinstance(action, argparse._HelpAction):
+                continue
+            assert action.help, f"{' '.join(words)} {action.dest} has no help text"
+        with pytest.raises(SystemExit):
+            main([*words, "--help"])
+        text = capsys.readouterr().out
+        assert "%%" not in text, text
+    with pytest.raises(SystemExit):
+        main(["simulate", "--help"])
+    assert "with 95% intervals" in capsys.readouterr().out
+
+
+@pytest.mark.parametrize(
+    ("argv", "dest", "old"),
+    [(["serve"], "processes", "--workers"), (["run"], "solve_workers", "--workers")],
+)
+def test_renamed_options_keep_their_old_spelling_with_a_note(
+    argv: list[str], dest: str, old: str, capsys: pytest.CaptureFixture[str]
+) -> None:
+    parser = cli._parser()
+    new = "--" + dest.replace("_", "-")
+    assert getattr(parser.parse_args([*argv, new, "3"]), dest) == 3
+    assert capsys.readouterr().err == ""
+    assert getattr(parser.parse_args([*argv, old, "4"]), dest) == 4
+    assert capsys.readouterr().err == f"stockrelay: note: {old} is now {new}\n"
+    with pytest.raises(SystemExit):
+        parser.parse_args([*argv, "--help"])
+    shown = capsys.readouterr().out
+    assert new in shown and old not in shown
