@@ -23,7 +23,15 @@ from service.errors import UsageError
 from service.files import load_network, write_json_atomically
 from service.logs import logging_from_environment
 from service.schemas import SimulationRequest
-from solver import NetworkSpec, PolicyResult, Progress, SolverError, solve_network
+from solver import (
+    InvalidStockError,
+    NetworkSpec,
+    PolicyResult,
+    Progress,
+    Recommendation,
+    SolverError,
+    solve_network,
+)
 from solver.spec import WEEKDAYS
 
 __all__ = ["main"]
@@ -36,6 +44,7 @@ EXIT_INTERRUPTED = 130  # 128 + SIGINT, as shells report a command stopped by Ct
 PROGRESS_AFTER_SECONDS = 2.0
 PROGRESS_EVERY_SECONDS = 0.5
 _GRID_MAX_SIDE = 21
+_REPRESENTATIVE_MAX = 6  # locations shown full in turn in the summary of a larger network
 TENANT_NAME_MAX = 100  # the width of tenants.name
 
 
@@ -85,6 +94,12 @@ def _parser() -> argparse.ArgumentParser:
         help="algorithm (default: Howard's policy iteration)",
     )
     solve.add_argument("--out", type=Path, metavar="RESULT.json", help="write the full policy")
+    solve.add_argument(
+        "--stock",
+        type=_stock,
+        metavar="LOCATION=UNITS,...",
+        help="also print tonight's moves from this closing stock, e.g. riverside=13,hilltop=1",
+    )
     solve.set_defaults(handler=_solve)
 
     simulate = commands.add_parser(
@@ -344,6 +359,41 @@ def _tenant(text: str) -> str:
     return name
 
 
+def _stock(text: str) -> dict[str, int]:
+    """`riverside=13,hilltop=1` -> {"riverside": 13, "hilltop": 1}."""
+    stock: dict[str, int] = {}
+    for part in text.split(","):
+        location, _, units = part.partition("=")
+        try:
+            stock[location.strip()] = int(units)
+        except ValueError:
+            raise argparse.ArgumentTypeError(
+                f"expected LOCATION=UNITS,... such as riverside=13,hilltop=1, got {text!r}"
+            ) from None
+    return stock
+
+
+def _stock_of(spec: NetworkSpec, stock: dict[str, int] | None) -> tuple[int, ...] | None:
+    """--stock in the network's location order; UsageError naming what is missing or unknown."""
+    if stock is None:
+        return None
+    unknown = sorted(set(stock) - set(spec.location_ids))
+    missing = [location for location in spec.location_ids if location not in stock]
+    outside = [
+        f"{location.id} {stock[location.id]} is outside 0..{location.capacity}"
+        for location in spec.locations
+        if location.id in stock and not 0 <= stock[location.id] <= location.capacity
+    ]
+    problems = (
+        [f"no location {name!r} in the network" for name in unknown]
+        + [f"no units given for {name!r}" for name in missing]
+        + outside
+    )
+    if problems:
+        raise UsageError("--stock: " + "; ".join(problems))
+    return tuple(stock[location] for location in spec.location_ids)
+
+
 def _criteria(text: str) -> list[str]:
     criteria = [part.strip() for part in text.split(",") if part.strip()]
     unknown = [c for c in criteria if c not in ("discounted", "average")]
@@ -377,6 +427,7 @@ class ProgressLines:
 
 def _solve(args: argparse.Namespace) -> int:
     spec = load_network(args.network)
+    stock = _stock_of(spec, args.stock)
     operations.load_settings().limit_blas_threads()
     try:
         result = solve_network(
@@ -386,7 +437,7 @@ def _solve(args: argparse.Namespace) -> int:
         raise UsageError(f"{args.network}: {exc}") from exc
     if args.out is not None:
         write_json_atomically(args.out, result_document(spec, result))
-    sys.stdout.write(summary(spec, result))
+    sys.stdout.write(summary(spec, result, stock=stock))
     return 0 if result.converged else 1
 
 
@@ -459,6 +510,7 @@ def simulation_table(spec: NetworkSpec, report: dict[str, Any]) -> str:
             + ("-" if difference is None else _with_interval(difference))
         )
     lines += [f"note: {note}" for note in report["notes"]]
+    lines += ["", CAUTION]
     return "\n".join(lines) + "\n"
 
 
@@ -483,8 +535,17 @@ def result_document(spec: NetworkSpec, result: PolicyResult) -> dict[str, Any]:
     return document
 
 
-def summary(spec: NetworkSpec, result: PolicyResult) -> str:
-    """A few lines for a person: sizes, convergence, and for two locations the policy grid."""
+CAUTION = (
+    "caution: moves and figures follow the model and its parameters; a person reviews them "
+    "before acting"
+)
+
+
+def summary(
+    spec: NetworkSpec, result: PolicyResult, *, stock: tuple[int, ...] | None = None
+) -> str:
+    """A few lines for a person: sizes, convergence, for two locations the policy grid, for more
+    the moves from a few representative closing stocks, and the moves from `stock` if given."""
     lines = [
         f"network     {spec.name}",
         f"criterion   {result.criterion}"
@@ -503,7 +564,55 @@ def summary(spec: NetworkSpec, result: PolicyResult) -> str:
     if len(result.capacities) == 2:
         for phase in range(result.phases):
             lines.extend(_policy_grid(spec, result, phase))
+    else:
+        lines.extend(_representative_moves(spec, result))
+    if stock is not None:
+        lines.extend(_moves_from(spec, result, stock))
+    lines += ["", CAUTION]
     return "\n".join(lines) + "\n"
+
+
+def _moves(spec: NetworkSpec, recommendation: Recommendation) -> str:
+    moved = [
+        f"{lane.from_} -> {lane.to} {units}"
+        for lane, units in zip(spec.lanes, recommendation.flows, strict=True)
+        if units
+    ]
+    if not moved:
+        return "move nothing"
+    return f"{', '.join(moved)}  (gain {recommendation.gain_from_transfers:.2f})"
+
+
+def _describe_stock(spec: NetworkSpec, stock: Sequence[int]) -> str:
+    return ", ".join(f"{loc} {units}" for loc, units in zip(spec.location_ids, stock, strict=True))
+
+
+def _representative_moves(spec: NetworkSpec, result: PolicyResult) -> list[str]:
+    """Tonight's moves when every location is half full, and when each one in turn is full
+    while the others are empty (the first night of the week for a weekly network)."""
+    capacities = result.capacities
+    stocks = [tuple(c // 2 for c in capacities)] + [
+        tuple(c if i == full else 0 for i, c in enumerate(capacities))
+        for full in range(min(len(capacities), _REPRESENTATIVE_MAX))
+    ]
+    night = f" ({WEEKDAYS[0]} night)" if result.phases > 1 else ""
+    lines = ["", f"tonight's moves{night} from a few closing stocks (--stock for any other):"]
+    for stock in stocks:
+        lines.append(f"  {_describe_stock(spec, stock)}: {_moves(spec, result.recommend(stock))}")
+    return lines
+
+
+def _moves_from(spec: NetworkSpec, result: PolicyResult, stock: tuple[int, ...]) -> list[str]:
+    """Tonight's moves from `stock`, for each night of the week of a weekly network."""
+    try:
+        result.state_index(stock)
+    except InvalidStockError as exc:
+        raise UsageError(f"--stock: {exc}") from exc
+    lines = ["", f"from closing stock {_describe_stock(spec, stock)}:"]
+    for phase in range(result.phases):
+        night = f"{WEEKDAYS[phase]} night: " if result.phases > 1 else ""
+        lines.append(f"  {night}{_moves(spec, result.recommend(stock, phase=phase))}")
+    return lines
 
 
 def _policy_grid(spec: NetworkSpec, result: PolicyResult, phase: int) -> list[str]:
@@ -520,7 +629,7 @@ def _policy_grid(spec: NetworkSpec, result: PolicyResult, phase: int) -> list[st
         "",
         ("" if result.phases == 1 else f"{WEEKDAYS[phase]} night: ")
         + f"net units moved {first} -> {second} (rows: {first} stock, columns: {second} stock"
-        + (f", every {rows_step}th/{cols_step}th level" if rows_step > 1 or cols_step > 1 else "")
+        + (f", every {rows_step} / {cols_step} levels" if rows_step > 1 or cols_step > 1 else "")
         + ")",
         " " * 5 + "".join(f"{c:>{width}}" for c in cols),
     ]

@@ -228,7 +228,8 @@ def test_simulate_prints_one_row_per_policy(capsys: pytest.CaptureFixture[str]) 
 
     assert "20 replications of 60 days after 5 warm-up days, seed 9" in table
     assert "start stock  riverside 7, hilltop 4" in table
-    rows = {line.split()[0]: line for line in table.splitlines()[6:]}
+    rows = {line.split()[0]: line for line in table.splitlines()[6:9]}
+    assert table.endswith(f"\n\n{cli.CAUTION}\n")
     assert list(rows) == ["optimal", "do_nothing", "balance_cover"]
     for policy in report["policies"]:
         profit = policy["profit_per_day"]
@@ -367,3 +368,77 @@ def test_renamed_options_keep_their_old_spelling_with_a_note(
         parser.parse_args([*argv, "--help"])
     shown = capsys.readouterr().out
     assert new in shown and old not in shown
+
+
+def three_stores() -> dict[str, Any]:
+    document = demo_document()
+    document["name"] = "Three hardware stores"
+    document["locations"].append(
+        {"id": "lakeside", "capacity": 8, "unit_margin": 36.0, "holding_cost": 0.4,
+         "stockout_penalty": 6.0, "demand": {"dist": "poisson", "mean": 2.1},
+         "replenishment": {"dist": "poisson", "mean": 1.2}}
+    )  # fmt: skip
+    document["lanes"] += [
+        {"from": "riverside", "to": "lakeside", "unit_cost": 3.5, "max_units": 3},
+        {"from": "lakeside", "to": "hilltop", "unit_cost": 5.0, "max_units": 2},
+    ]
+    return document
+
+
+def expected_moves(spec: NetworkSpec, flows: tuple[int, ...]) -> str:
+    lanes = zip(spec.lanes, flows, strict=True)
+    moved = [f"{lane.from_} -> {lane.to} {n}" for lane, n in lanes if n]
+    return ", ".join(moved) or "move nothing"
+
+
+def test_three_store_summary_shows_moves_from_representative_and_given_stocks(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    network = tmp_path / "three.json"
+    network.write_text(json.dumps(three_stores()))
+    code, out, err = run(
+        ["solve", str(network), "--stock", "lakeside=0,riverside=13,hilltop=1"], capsys
+    )
+    assert (code, err) == (0, "")
+
+    spec = NetworkSpec.model_validate(three_stores())
+    result = solve_network(spec)
+    lines = out.splitlines()
+    shown = {
+        line.split(": ", 1)[0].strip(): line.split(": ", 1)[1]
+        for line in lines
+        if line.startswith("  ") and ": " in line
+    }
+    expected_stocks = {
+        "riverside 7, hilltop 4, lakeside 4": (7, 4, 4),  # half full
+        "riverside 14, hilltop 0, lakeside 0": (14, 0, 0),  # each full in turn
+        "riverside 0, hilltop 9, lakeside 0": (0, 9, 0),
+        "riverside 0, hilltop 0, lakeside 8": (0, 0, 8),
+    }
+    for label, stock in expected_stocks.items():
+        recommendation = result.recommend(stock)
+        assert shown[label].startswith(expected_moves(spec, recommendation.flows)), label
+    asked = result.recommend((13, 1, 0))
+    [given] = [lines[i + 1] for i, line in enumerate(lines) if line.startswith("from closing")]
+    assert given.strip().startswith(expected_moves(spec, asked.flows))
+    assert f"(gain {asked.gain_from_transfers:.2f})" in given or asked.flows == (0, 0, 0, 0)
+    assert any(n for n in asked.flows)  # the example is one that moves something
+    assert out.endswith(f"\n\n{cli.CAUTION}\n")
+
+
+@pytest.mark.parametrize(
+    ("stock", "message"),
+    [
+        ("riverside=13,hilltop=1", "no units given for 'lakeside'"),
+        ("riverside=13,hilltop=1,lakeside=0,pier=2", "no location 'pier'"),
+        ("riverside=15,hilltop=1,lakeside=0", "riverside 15 is outside 0..14"),
+    ],
+)
+def test_a_bad_stock_is_one_line_before_solving(
+    stock: str, message: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    network = tmp_path / "three.json"
+    network.write_text(json.dumps(three_stores()))
+    code, out, err = run(["solve", str(network), "--stock", stock], capsys)
+    assert (code, out) == (2, "")
+    assert err.count("\n") == 1 and message in err
