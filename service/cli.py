@@ -46,6 +46,8 @@ PROGRESS_EVERY_SECONDS = 0.5
 _GRID_MAX_SIDE = 21
 _REPRESENTATIVE_MAX = 6  # locations shown full in turn in the summary of a larger network
 TENANT_NAME_MAX = 100  # the width of tenants.name
+LABEL_MAX = 200  # the width of api_keys.label
+ROW_ID_MAX = 2**31 - 1  # INTEGER columns
 
 
 def main(argv: Sequence[str] | None = None) -> int:
@@ -229,8 +231,10 @@ def _parser() -> argparse.ArgumentParser:
         help="write the current specification of a network",
         description="Write the current (or an earlier) specification of a network as JSON.",
     )
-    export.add_argument("id", type=int, help="the network's id (see `stockrelay networks list`)")
-    export.add_argument("--version", type=int, help="an earlier version number")
+    export.add_argument(
+        "id", type=_row_id, help="the network's id (see `stockrelay networks list`)"
+    )
+    export.add_argument("--version", type=_row_id, help="an earlier version number")
     export.add_argument(
         "--out", type=Path, metavar="NETWORK.json", help="the file to write (default: stdout)"
     )
@@ -259,7 +263,9 @@ def _parser() -> argparse.ArgumentParser:
         required=True,
         help="what the key may do: read < write < admin",
     )
-    create_key.add_argument("--label", help="a note saying whose key this is")
+    create_key.add_argument(
+        "--label", type=_label, help=f"a note saying whose key this is (up to {LABEL_MAX})"
+    )
     create_key.set_defaults(handler=operations.create_key)
     list_keys = key_commands.add_parser(
         "list",
@@ -301,7 +307,7 @@ def _parser() -> argparse.ArgumentParser:
         description="Queue a "
         "failed job again with fresh attempts (after fixing what made it fail).",
     )
-    retry.add_argument("id", type=int, help="the job's id (see `stockrelay jobs list`)")
+    retry.add_argument("id", type=_row_id, help="the job's id (see `stockrelay jobs list`)")
     retry.set_defaults(handler=operations.retry_job)
     return parser
 
@@ -392,6 +398,23 @@ def _stock_of(spec: NetworkSpec, stock: dict[str, int] | None) -> tuple[int, ...
     if problems:
         raise UsageError("--stock: " + "; ".join(problems))
     return tuple(stock[location] for location in spec.location_ids)
+
+
+def _row_id(text: str) -> int:
+    """An id or number as the database stores it (a 32-bit integer on PostgreSQL)."""
+    try:
+        value = int(text)
+    except ValueError:
+        value = 0
+    if not 1 <= value <= ROW_ID_MAX:
+        raise argparse.ArgumentTypeError(f"expected a whole number 1..{ROW_ID_MAX}, got {text!r}")
+    return value
+
+
+def _label(text: str) -> str:
+    if len(text) > LABEL_MAX:
+        raise argparse.ArgumentTypeError(f"a label has at most {LABEL_MAX} characters")
+    return text
 
 
 def _criteria(text: str) -> list[str]:

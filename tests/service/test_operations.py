@@ -423,3 +423,27 @@ def test_run_revokes_its_key_when_it_stops_even_on_ctrl_c(
     assert (code, err.splitlines()[-1]) == (130, "stockrelay: interrupted")
     with sessions() as session:
         assert [auth.authenticate(session, key) for key in keys] == [None, None]
+
+
+@pytest.mark.parametrize(
+    ("argv", "message"),
+    [
+        (["jobs", "retry", "99999999999"], "expected a whole number 1..2147483647"),
+        (["networks", "export", "3000000000"], "expected a whole number 1..2147483647"),
+        (["networks", "export", "1", "--version", "0"], "expected a whole number 1.."),
+        (["keys", "create", "--tenant", "t", "--scope", "read", "--label", "x" * 201],
+         "at most 200 characters"),
+        (["keys", "create", "--tenant", "x" * 101, "--scope", "read"], "1 to 100 printable"),
+        (["networks", "import", str(DEMO), "--tenant", " "], "1 to 100 printable"),
+    ],
+)  # fmt: skip
+def test_values_the_database_cannot_hold_are_refused_by_the_parser(
+    run: Run, capsys: pytest.CaptureFixture[str], argv: list[str], message: str
+) -> None:
+    # Beyond INTEGER or a column's width, PostgreSQL would fail the statement with a traceback.
+    with pytest.raises(SystemExit) as refused:
+        run(*argv)
+    assert refused.value.code == 2
+    err = capsys.readouterr().err
+    assert "Traceback" not in err
+    assert message in err.splitlines()[-1], err
