@@ -145,8 +145,7 @@ def ready_answer(base: str, token: str) -> str | None:
         with _DIRECT.open(urllib.request.Request(base + "/readyz"), timeout=2) as response:
             return "ours" if response.headers.get(RUN_HEADER) == token else "other"
     except urllib.error.HTTPError as exc:
-        # Ours answers only once started, and then 200 (its database was checked before);
-        # any other status comes from another server.
+        # Ours not ready yet (its database unreachable), or another server's error.
         return "other" if exc.headers.get(RUN_HEADER) != token else None
     except OSError:
         return None

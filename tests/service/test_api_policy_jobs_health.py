@@ -17,6 +17,7 @@ from numpy.testing import assert_allclose, assert_array_equal
 from sqlalchemy import Engine
 from threadpoolctl import threadpool_limits
 
+from service.api.health import RUN_HEADER
 from service.db.migrate import DatabaseNotMigratedError, downgrade
 from service.main import create_app
 from service.settings import Settings
@@ -25,6 +26,7 @@ from tests.service.api_support import (
     assert_problem,
     create_network,
     demo_document,
+    open_client,
     pointers,
     run_worker,
     sqlite_only,
@@ -270,6 +272,18 @@ def test_not_ready_once_the_schema_is_behind(client: TestClient, engine: Engine)
     assert int(empty.headers["Retry-After"]) > 0
     # Liveness does not depend on the database.
     assert client.get("/healthz").status_code == 200
+
+
+def test_readiness_carries_the_run_token_only_when_one_is_set(
+    client: TestClient, engine: Engine
+) -> None:
+    # `stockrelay run` tells its own API from another server on the port by this header.
+    assert RUN_HEADER not in client.get("/readyz").headers
+    with open_client(engine, run_token="this-run") as tagged:
+        assert tagged.get("/readyz").headers[RUN_HEADER] == "this-run"
+        downgrade(engine, "-1")
+        behind = tagged.get("/readyz")
+        assert (behind.status_code, behind.headers[RUN_HEADER]) == (503, "this-run")
 
 
 def test_app_refuses_to_start_on_an_unmigrated_database(database_url: str) -> None:
