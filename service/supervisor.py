@@ -35,7 +35,7 @@ from typing import Any
 from service.api.health import RUN_HEADER
 from service.schemas import DEMO_NETWORK, DEMO_STOCK
 
-__all__ = ["port_problem", "supervise"]
+__all__ = ["port_problem", "ready_answer", "supervise"]
 
 # The worker may need up to 10 s to finish or hand back a solve, and a write it started may wait
 # up to SQLite's 30 s busy timeout for another process's; uvicorn needs a moment to drain. A
@@ -139,8 +139,8 @@ def port_problem(host: str, port: int) -> str | None:
 
 
 def ready_answer(base: str, token: str) -> str | None:
-    """Who answers `base`/readyz with 200: "ours" (the API started with `token`), "other"
-    (any other server), or None (no answer yet, or not ready)."""
+    """Who answers `base`/readyz: "ours" (ready, and started with `token`), "other" (any
+    other server, whatever its status), or None (nothing answers yet, or ours is not ready)."""
     try:
         with _DIRECT.open(urllib.request.Request(base + "/readyz"), timeout=2) as response:
             return "ours" if response.headers.get(RUN_HEADER) == token else "other"
