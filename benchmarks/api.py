@@ -1,11 +1,11 @@
 """Benchmark of the HTTP API: recommendation latency and throughput against a real uvicorn.
 
 Usage: .venv/bin/python benchmarks/api.py [--quick] [--backend sqlite|postgresql]
-                                          [--workers N] [--out PATH]
+                                          [--processes N] [--out PATH]
 
 For each database (SQLite in a temporary folder; PostgreSQL at 127.0.0.1:5432 when it answers,
 in a scratch database created and dropped here), the script migrates, starts
-`stockrelay serve --workers N` (N uvicorn processes, default one per core, access log on, as
+`stockrelay serve --processes N` (N uvicorn processes, default one per core, access log on, as
 deployed) on a free loopback port, creates the demo network over HTTP, solves it with
 `stockrelay worker --until-idle`, and measures POST /v1/networks/{id}/recommendation at seeded
 random closing stocks:
@@ -117,7 +117,7 @@ def server(url: str, log: Path, workers: int) -> Iterator[tuple[str, subprocess.
     with log.open("wb") as sink:
         process = subprocess.Popen(
             [sys.executable, "-m", "service.cli", "serve", "--host", "127.0.0.1", "--port",
-             str(port), "--workers", str(workers)],
+             str(port), "--processes", str(workers)],
             cwd=ROOT, env=environment(url), stdin=subprocess.DEVNULL, stdout=sink, stderr=sink,
         )  # fmt: skip
     base = f"http://127.0.0.1:{port}"
@@ -478,7 +478,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     parser.add_argument("--backend", choices=["sqlite", "postgresql"], action="append")
     parser.add_argument("--out", type=Path, default=DEFAULT_OUT)
     parser.add_argument(
-        "--workers", type=int, default=os.cpu_count() or 1, help="API processes (one per core)"
+        "--processes", type=int, default=os.cpu_count() or 1, help="API processes (one per core)"
     )
     args = parser.parse_args(argv)
     backends = args.backend or ["sqlite", "postgresql"]
@@ -488,7 +488,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     for backend in backends:
         if backend == "sqlite":
             with sqlite_database() as url:
-                phases += measure("sqlite", url, args.quick, args.workers)
+                phases += measure("sqlite", url, args.quick, args.processes)
             continue
         reason = postgres_unavailable()
         if reason is not None:
@@ -496,7 +496,7 @@ def main(argv: Sequence[str] | None = None) -> int:
             sys.stdout.write(f"PostgreSQL skipped: {reason}\n")
             continue
         with postgres_database() as url:
-            phases += measure("postgresql", url, args.quick, args.workers)
+            phases += measure("postgresql", url, args.quick, args.processes)
 
     sys.stdout.write(table(phases))
     document: dict[str, Any] = {
@@ -504,7 +504,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         "skipped": skipped,
         "targets": {"p99_ms_one_client": P99_TARGET_MS, "requests_per_s": THROUGHPUT_TARGET},
         "cpus": os.cpu_count(),
-        "api_processes": args.workers,
+        "api_processes": args.processes,
         "load_generator": "wrk" if shutil.which("wrk") else "httpx",
     }
     args.out.parent.mkdir(parents=True, exist_ok=True)

@@ -30,6 +30,7 @@ from solver import (
     InvalidModelError,
     NetworkSpec,
     PolicyResult,
+    ProgressCallback,
     SizeLimits,
     TransferModel,
     build_transfer_model,
@@ -170,12 +171,14 @@ def run_simulation(
     *,
     limits: SizeLimits | None = None,
     max_replication_days: int = MAX_REPLICATION_DAYS,
+    progress: ProgressCallback | None = None,
 ) -> dict[str, Any]:
     """Simulate the optimal policy of `params.criterion`, moving nothing, and balancing days of
     cover, on the same days; the report as JSON-able data (see SimulationReportOut).
 
     optimal: the stored optimal policy of `spec` for the criterion; solved here when None (or
         when it does not fit the model, e.g. stored by a solver with another flow table).
+    progress: told about each iteration of that solve.
     Raises AnalysisInputError, ModelTooLargeError, NotUnichainError (average criterion).
     """
     check_simulation(spec, params, limits=limits, max_replication_days=max_replication_days)
@@ -183,7 +186,7 @@ def run_simulation(
     policy = None if optimal is None else _policy_on(model, optimal, params.criterion)
     source = "stored"
     if policy is None:
-        policy = solve_policy_iteration(model, criterion=params.criterion).action
+        policy = solve_policy_iteration(model, criterion=params.criterion, progress=progress).action
         source = "solved"
     policies: dict[str, NDArray[np.int64]] = {
         REFERENCE: policy,

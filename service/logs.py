@@ -121,7 +121,7 @@ def logging_from_environment() -> None:
 
 def configure_server_logging(settings: Settings) -> None:
     """At API start-up. In a process whose logging nobody set up (each process of
-    `stockrelay serve --workers N` is spawned afresh by uvicorn), set it up from `settings`.
+    `stockrelay serve --processes N` is spawned afresh by uvicorn), set it up from `settings`.
     When this module's handler writes JSON, uvicorn's own loggers (start-up, access lines) go
     through it too instead of their plain-text handlers. Leaves any other set-up (a test
     runner's, an embedding application's) alone."""

@@ -48,9 +48,9 @@ Every /v1 request needs `Authorization: Bearer <API key>` (`stockrelay keys crea
 scope answers GET and recommendations, and may start simulations and what-if comparisons (they
 change no stored network or policy; since they cost solver time, a tenant has at most
 `STOCKRELAY_ANALYSIS_MAX_LIVE_JOBS` (4) of them queued or running at once, 429 beyond); write
-scope also creates and changes networks and closing counts. Operations that need more than read scope list 403. POST and PUT accept an
-`Idempotency-Key`. Each problem's `type` is a path of this service (`/problems/<slug>`) that
-describes it.
+scope also creates and changes networks and closing counts. Operations that need more than
+read scope list 403. POST and PUT accept an `Idempotency-Key`. Each problem's `type` is a path
+of this service (`/problems/<slug>`) that describes it.
 """
 
 
@@ -59,6 +59,9 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     schema revision this code needs. A database that cannot be reached at start is not refused:
     requests answer 503 and /readyz fails until it returns."""
     settings = settings or Settings()
+    # Requests solve what-if comparisons and simulations beside other processes. Here, not in
+    # the lifespan: OpenBLAS takes its thread count only from the main thread.
+    settings.limit_blas_threads()
 
     @asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:

@@ -9,7 +9,7 @@ processes, so there are two sources:
   told apart by `kind`) and `policies`, in four queries at every scrape. Every API process
   reports the same numbers, and no process shares memory with another.
 * **In process**: recommendation latency and policy cache lookups are counted by the process
-  that answered. By default they are per API process: behind `stockrelay serve --workers N` a
+  that answered. By default they are per API process: behind `stockrelay serve --processes N` a
   scrape sees the share of whichever process answered it. With PROMETHEUS_MULTIPROC_DIR set in
   the environment of `stockrelay serve` (an empty directory, emptied before every start: read by
   prometheus-client itself when it is imported), prometheus-client's multiprocess mode is used

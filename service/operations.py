@@ -7,10 +7,12 @@ import json
 import sys
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
+from pathlib import Path
 from typing import Any, TypeVar
 
 from pydantic import ValidationError
 from sqlalchemy import Engine
+from sqlalchemy.engine import make_url
 from sqlalchemy.exc import OperationalError
 from sqlalchemy.orm import Session, sessionmaker
 
@@ -19,7 +21,7 @@ from service.db import repository
 from service.db.migrate import DatabaseNotMigratedError, current_revision, require_migrated
 from service.db.migrate import upgrade as upgrade_schema
 from service.db.session import make_engine, make_session_factory
-from service.db.tables import Network
+from service.db.tables import JobKind, Network
 from service.errors import UsageError
 from service.files import load_network, write_json_atomically
 from service.settings import Settings
@@ -56,10 +58,30 @@ def load_settings() -> Settings:
         raise UsageError(f"invalid settings: {problems}") from exc
 
 
+def _require_sqlite_file(url: str) -> None:
+    """Refuse, in one line naming it, a SQLite database file that does not exist: connecting
+    would create an empty one (and its folder) wherever the command happens to run."""
+    parsed = make_url(url)
+    if parsed.get_backend_name() != "sqlite" or parsed.database in (None, "", ":memory:"):
+        return
+    path = Path(parsed.database)
+    if not path.is_file():
+        raise UsageError(
+            f"no database at {path.resolve()} (database URL {url}): run `stockrelay migrate` "
+            "to create it there, or point STOCKRELAY_DATABASE_URL at an existing one"
+        )
+
+
 @contextmanager
 def _database(*, migrated: bool = True) -> Iterator[tuple[Settings, Engine]]:
+    """Settings and an engine. Only `migrate` (migrated=False) may create a SQLite file."""
     settings = load_settings()
-    engine = make_engine(settings.database_url, pool_size=settings.database_pool_size)
+    if migrated:
+        _require_sqlite_file(settings.database_url)
+    try:
+        engine = make_engine(settings.database_url, pool_size=settings.database_pool_size)
+    except OSError as exc:  # the SQLite file's folder cannot be made
+        raise UsageError(f"cannot create the database {settings.database_url}: {exc}") from exc
     try:
         if migrated:
             require_migrated(engine)
@@ -68,7 +90,9 @@ def _database(*, migrated: bool = True) -> Iterator[tuple[Settings, Engine]]:
         raise UsageError(str(exc)) from exc
     except OperationalError as exc:
         where = engine.url.render_as_string(hide_password=True)
-        raise UsageError(f"cannot use database {where}: {exc.orig or exc}") from exc
+        # Drivers spread their messages over several lines; the CLI says it in one.
+        reason = " ".join(str(exc.orig or exc).split())
+        raise UsageError(f"cannot use database {where}: {reason}") from exc
     finally:
         engine.dispose()
 
@@ -89,10 +113,14 @@ def serve(args: argparse.Namespace) -> int:
     import uvicorn
 
     from service.main import create_app
+    from service.supervisor import port_problem
 
     with _database() as (settings, _engine):
         pass  # refuse to start, with one line, on a database that is not migrated
-    if args.workers == 1:
+    problem = port_problem(args.host, args.port)
+    if problem is not None:
+        raise UsageError(problem)
+    if args.processes == 1:
         uvicorn.run(create_app(settings), host=args.host, port=args.port, log_level="info")
     else:
         # Each process builds its own app (and reads the same environment).
@@ -101,7 +129,7 @@ def serve(args: argparse.Namespace) -> int:
             factory=True,
             host=args.host,
             port=args.port,
-            workers=args.workers,
+            workers=args.processes,
             log_level="info",
             # A process on a busy machine may need more than uvicorn's default 5 s to import
             # the app (numpy, scipy, matplotlib) and answer its first health check.
@@ -114,27 +142,37 @@ DEMO_KEY_LABEL = "demo key made by `stockrelay run`"
 
 
 def run(args: argparse.Namespace) -> int:
-    """API and workers for trying stockrelay out, with a fresh write key for the default tenant
-    (the one made by the previous run is revoked)."""
-    from service.supervisor import supervise
+    """API and workers for trying stockrelay out, with a write key for the default tenant that
+    is revoked when the run stops (and, should the run be killed, by the next run)."""
+    from service import supervisor
 
-    def demo_key(session: Session) -> str:
+    def demo_key(session: Session) -> tuple[str, str]:
+        # A run that was killed could not revoke its key: do it now.
         for key, _tenant in auth.list_keys(session):
             if key.label == DEMO_KEY_LABEL and key.revoked_at is None:
                 auth.revoke_key(session, key.prefix)
         tenant = repository.get_or_create_tenant(session, DEFAULT_TENANT)
-        return auth.create_key(session, tenant, "write", DEMO_KEY_LABEL)[1]
+        row, secret = auth.create_key(session, tenant, "write", DEMO_KEY_LABEL)
+        return row.prefix, secret
 
     with _database() as (_settings, engine):  # refuses an un-migrated database in one line
-        key = _in_transaction(engine, demo_key)
-    return supervise(args.host, args.port, args.workers, key)
+        problem = supervisor.port_problem(args.host, args.port)
+        if problem is not None:
+            raise UsageError(problem)
+        prefix, key = _in_transaction(engine, demo_key)
+    try:
+        return supervisor.supervise(args.host, args.port, args.solve_workers, key)
+    finally:
+        with _database() as (_settings, engine):
+            _in_transaction(engine, lambda session: auth.revoke_key(session, prefix))
+        sys.stderr.write(f"stockrelay: the key made for this run ({prefix}) is revoked\n")
 
 
 def openapi_document() -> dict[str, Any]:
     """The OpenAPI document of the app, as committed in openapi/openapi.json."""
     from service.main import create_app
 
-    document: dict[str, Any] = create_app(Settings()).openapi()
+    document: dict[str, Any] = create_app(load_settings()).openapi()
     return document
 
 
@@ -143,7 +181,10 @@ def write_openapi(args: argparse.Namespace) -> int:
     if args.out is None:
         sys.stdout.write(text)
     else:
-        args.out.write_text(text, encoding="utf-8")
+        try:
+            args.out.write_text(text, encoding="utf-8")
+        except OSError as exc:
+            raise UsageError(f"cannot write {args.out}: {exc.strerror or exc}") from exc
     return 0
 
 
@@ -223,13 +264,16 @@ def list_networks(_args: argparse.Namespace) -> int:
 
 
 def list_jobs(args: argparse.Namespace) -> int:
+    kind = None if args.kind is None else JobKind(args.kind)
+
     def work(session: Session) -> list[str]:
         return [
-            f"{job.id:>6}  {job.state:<8} {job.criterion:<10} version {job.version_id:<5} "
+            f"{job.id:>6}  {job.state:<8} {job.kind:<8} {job.criterion:<10} "
+            f"network {job.network_id:<4} version {job.version_number:<4} "
             f"attempts {job.attempts}"
             + (f"  {job.solve_seconds:.3f} s" if job.solve_seconds is not None else "")
             + (f"  error: {job.error}" if job.error else "")
-            for job in repository.list_jobs(session, args.state, args.limit)
+            for job in repository.list_jobs(session, args.state, args.limit, kind=kind)
         ]
 
     with _database() as (_settings, engine):
@@ -280,6 +324,8 @@ def revoke_key(args: argparse.Namespace) -> int:
 
 def retry_job(args: argparse.Namespace) -> int:
     def work(session: Session) -> None:
+        if repository.get_job(session, args.id) is None:
+            raise UsageError(f"no job {args.id}")
         if repository.retry_job(session, args.id) is None:
             raise UsageError(
                 f"job {args.id} is not a failed job, or another solve of it is already queued"

@@ -171,7 +171,9 @@ class NetworkUpdate(NetworkCreate):
 
 class JobOut(_Out):
     id: int
-    version_id: int
+    network_id: int = Field(description="The network whose version is solved.")
+    version_number: int = Field(description="The network version solved (as in If-Match).")
+    version_id: int = Field(description="Internal id of that version's row; prefer the two above.")
     criterion: str
     state: Literal["queued", "running", "done", "failed"]
     attempts: int

@@ -6,6 +6,9 @@ from typing import Annotated, Literal
 
 from pydantic import Field, ValidationInfo, field_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
+from sqlalchemy.engine import make_url
+from sqlalchemy.exc import ArgumentError
+from threadpoolctl import threadpool_limits
 
 from solver import SizeLimits
 
@@ -77,6 +80,23 @@ class Settings(BaseSettings):
     key_cache_seconds: Annotated[
         float, Field(ge=0, description="How long a process trusts a key it has checked.")
     ] = 5.0
+    blas_threads: Annotated[
+        int,
+        Field(
+            ge=1,
+            le=256,
+            description="Threads of the BLAS library per process (worker, API and CLI). One "
+            "keeps a solve fast when other processes share the cores; scale out by processes.",
+        ),
+    ] = 1
+    run_token: Annotated[
+        str | None,
+        Field(
+            description="Set by `stockrelay run` for the API it starts: /readyz echoes it in "
+            "the Stockrelay-Run header, so the supervisor knows it reached its own child and "
+            "not another server on the same port.",
+        ),
+    ] = None
     log_format: Annotated[
         Literal["text", "json"],
         Field(description="Log lines as text for people, or one JSON object per line."),
@@ -98,8 +118,21 @@ class Settings(BaseSettings):
     def _psycopg_for_postgresql(cls, url: str) -> str:
         for prefix in ("postgresql://", "postgres://"):
             if url.startswith(prefix):
-                return "postgresql+psycopg://" + url[len(prefix) :]
+                url = "postgresql+psycopg://" + url[len(prefix) :]
+        example = "e.g. sqlite:///./var/stockrelay.db or postgresql://user@host:5432/database"
+        try:
+            backend = make_url(url).get_backend_name()
+        except ArgumentError as exc:
+            raise ValueError(f"not a database URL; expected {example}") from exc
+        if backend not in ("sqlite", "postgresql"):
+            raise ValueError(f"stockrelay stores its data in SQLite or PostgreSQL, {example}")
         return url
+
+    def limit_blas_threads(self) -> None:
+        """Apply `blas_threads` to every BLAS library this process has loaded (numpy's and
+        scipy's): by default one thread per core, which collapses when the cores are busy.
+        Call it from the main thread: OpenBLAS ignores the request from any other."""
+        threadpool_limits(limits=self.blas_threads, user_api="blas")
 
     @property
     def size_limits(self) -> SizeLimits:

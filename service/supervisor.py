@@ -5,6 +5,10 @@ the API answers and the demo network's policy is ready, an example request is pr
 (SIGINT), SIGTERM or SIGHUP stops everything: SIGTERM to each child, SIGKILL to any child still
 running after the grace period. If a child exits by itself, the others are stopped too.
 
+The API child gets a random token for this run (STOCKRELAY_RUN_TOKEN) and /readyz echoes it, so
+an answer from another server that already holds the port is never taken for ours; the port is
+also tried before anything starts (`port_problem`).
+
 The children stay in the caller's process group, so a Ctrl-C typed at the terminal also reaches
 them directly (`make run` relies on that, and a killed supervisor cannot leave them deaf to
 it); a stop signal arriving twice is harmless to both uvicorn and the worker.
@@ -13,20 +17,25 @@ it); a stop signal arriving twice is harmless to both uvicorn and the worker.
 from __future__ import annotations
 
 import json
+import os
+import secrets
 import signal
+import socket
 import subprocess
 import sys
 import threading
 import time
+import urllib.error
 import urllib.request
 from collections.abc import Callable
 from dataclasses import dataclass
 from types import FrameType
 from typing import Any
 
+from service.api.health import RUN_HEADER
 from service.schemas import DEMO_NETWORK, DEMO_STOCK
 
-__all__ = ["supervise"]
+__all__ = ["port_problem", "ready_answer", "supervise"]
 
 # The worker may need up to 10 s to finish or hand back a solve, and a write it started may wait
 # up to SQLite's 30 s busy timeout for another process's; uvicorn needs a moment to drain. A
@@ -62,15 +71,29 @@ def supervise(host: str, port: int, n_workers: int, key: str) -> int:
 
     previous = {sig: signal.signal(sig, request_stop) for sig in _STOP_SIGNALS}
     children: list[Child] = []
+    token = secrets.token_urlsafe(16)
     try:
         command = [sys.executable, "-m", "service.cli"]
-        children.append(_start("API", [*command, "serve", "--host", host, "--port", str(port)]))
+        api = [*command, "serve", "--host", host, "--port", str(port)]
+        children.append(_start("API", api, {"STOCKRELAY_RUN_TOKEN": token}))
         children.extend(_start(f"worker {n + 1}", [*command, "worker"]) for n in range(n_workers))
         base = f"http://{_probe_host(host)}:{port}"
-        if _wait(
-            lambda: _get(base + "/readyz") is not None, stop, children, READY_DEADLINE_SECONDS
-        ):
-            _announce(base, n_workers, stop, children, key)
+        answer: str | None = None
+
+        def answered() -> bool:
+            nonlocal answer
+            answer = ready_answer(base, token)
+            return answer is not None
+
+        if _wait(answered, stop, children, READY_DEADLINE_SECONDS):
+            if answer == "ours":
+                _announce(base, n_workers, stop, children, key)
+            else:
+                sys.stderr.write(
+                    f"stockrelay: error: another server answers on {base}; "
+                    "stop it or choose another --port\n"
+                )
+                return 1
         while not stop.is_set() and _first_exited(children) is None:
             stop.wait(_POLL_SECONDS)
         quit_early = _first_exited(children)
@@ -87,9 +110,45 @@ def supervise(host: str, port: int, n_workers: int, key: str) -> int:
     return 0 if requested else 1
 
 
-def _start(name: str, argv: list[str]) -> Child:
+def _start(name: str, argv: list[str], environment: dict[str, str] | None = None) -> Child:
     # stdin from /dev/null: a child must never compete with the terminal for input.
-    return Child(name, subprocess.Popen(argv, stdin=subprocess.DEVNULL))
+    env = None if environment is None else {**os.environ, **environment}
+    return Child(name, subprocess.Popen(argv, stdin=subprocess.DEVNULL, env=env))
+
+
+def port_problem(host: str, port: int) -> str | None:
+    """Why the API could not listen on host:port (e.g. another server holds it), or None.
+
+    Binds and closes a socket the way uvicorn binds (SO_REUSEADDR, so a port left in TIME_WAIT
+    by an earlier run counts as free)."""
+    try:
+        infos = socket.getaddrinfo(host, port, type=socket.SOCK_STREAM, flags=socket.AI_PASSIVE)
+    except socket.gaierror as exc:
+        return f"cannot resolve host {host!r}: {exc.strerror or exc}; check --host"
+    family, kind, proto, _, address = infos[0]
+    with socket.socket(family, kind, proto) as probe:
+        probe.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
+        try:
+            probe.bind(address)
+        except OSError as exc:
+            return (
+                f"cannot listen on {host}:{port}: {exc.strerror or exc}; stop what uses it or "
+                "choose another --port"
+            )
+    return None
+
+
+def ready_answer(base: str, token: str) -> str | None:
+    """Who answers `base`/readyz: "ours" (ready, and started with `token`), "other" (any
+    other server, whatever its status), or None (nothing answers yet, or ours is not ready)."""
+    try:
+        with _DIRECT.open(urllib.request.Request(base + "/readyz"), timeout=2) as response:
+            return "ours" if response.headers.get(RUN_HEADER) == token else "other"
+    except urllib.error.HTTPError as exc:
+        # Ours not ready yet (its database unreachable), or another server's error.
+        return "other" if exc.headers.get(RUN_HEADER) != token else None
+    except OSError:
+        return None
 
 
 def _probe_host(host: str) -> str:

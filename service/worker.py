@@ -31,7 +31,6 @@ from typing import Any
 
 from pydantic import ValidationError
 from sqlalchemy.orm import Session, sessionmaker
-from threadpoolctl import threadpool_limits
 
 from service import analysis
 from service.codec import CorruptPolicyError, decode_policy, encode_policy
@@ -155,7 +154,7 @@ class Worker:
         number of jobs handled."""
         handled = 0
         # Scale-out is by processes: BLAS threads would only compete with the other workers.
-        threadpool_limits(limits=1, user_api="blas")
+        self.settings.limit_blas_threads()
         log.info("worker %s started", self.owner)
         while not self.stopping.is_set():
             if self.run_one():

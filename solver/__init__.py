@@ -17,7 +17,14 @@ from solver.errors import (
 )
 from solver.model import TransferModel
 from solver.policy_iteration import solve_modified_policy_iteration, solve_policy_iteration
-from solver.result import Alternative, Criterion, PolicyResult, Recommendation
+from solver.result import (
+    Alternative,
+    Criterion,
+    PolicyResult,
+    Progress,
+    ProgressCallback,
+    Recommendation,
+)
 from solver.spec import NetworkSpec
 
 __all__ = [
@@ -29,6 +36,8 @@ __all__ = [
     "NetworkSpec",
     "NotUnichainError",
     "PolicyResult",
+    "Progress",
+    "ProgressCallback",
     "Recommendation",
     "SizeLimits",
     "SolverError",
@@ -48,17 +57,19 @@ def solve_network(
     criterion: Criterion = "discounted",
     method: Method = "howard",
     limits: SizeLimits | None = None,
+    progress: ProgressCallback | None = None,
 ) -> PolicyResult:
-    """Build the model of `spec` and solve it; the build time is added to `seconds`."""
+    """Build the model of `spec` and solve it; the build time is added to `seconds`.
+    `progress` is called after each iteration (see Progress)."""
     if method != "howard" and criterion != "discounted":
         raise ValueError(f"method {method!r} solves the discounted criterion only")
     start = time.perf_counter()
     model = build_transfer_model(spec, limits)
     built = time.perf_counter() - start
     if method == "howard":
-        result = solve_policy_iteration(model, criterion=criterion)
+        result = solve_policy_iteration(model, criterion=criterion, progress=progress)
     else:
         sweeps = 0 if method == "value-iteration" else 20
-        result = solve_modified_policy_iteration(model, sweeps=sweeps)
+        result = solve_modified_policy_iteration(model, sweeps=sweeps, progress=progress)
     seconds = {**result.seconds, "build": built, "total": result.seconds["total"] + built}
     return dataclasses.replace(result, seconds=seconds)

@@ -52,7 +52,7 @@ from solver.evaluation import (
     evaluate_discounted,
 )
 from solver.model import TransferModel
-from solver.result import Criterion, PolicyResult
+from solver.result import Criterion, PolicyResult, Progress, ProgressCallback
 from solver.spec import WEEKDAYS
 
 __all__ = ["solve_modified_policy_iteration", "solve_policy_iteration"]
@@ -76,8 +76,20 @@ class _Clock:
         self.seconds[phase] += now - since
         return now
 
+    def elapsed(self) -> float:
+        return time.perf_counter() - self.start
+
     def done(self) -> dict[str, float]:
-        return {**self.seconds, "total": time.perf_counter() - self.start}
+        return {**self.seconds, "total": self.elapsed()}
+
+
+def _report(
+    progress: ProgressCallback | None, iteration: int, gap: NDArray[np.float64], clock: _Clock
+) -> None:
+    """Tell `progress` about one iteration; `gap` is what each state gains by its best move
+    over its current one, so its maximum is the residual ||T v - v||_inf."""
+    if progress is not None:
+        progress(Progress(iteration, max(0.0, float(gap.max())), clock.elapsed()))
 
 
 def solve_policy_iteration(
@@ -87,11 +99,13 @@ def solve_policy_iteration(
     evaluation: EvaluationMethod = "auto",
     max_iter: int = 200,
     initial_action: NDArray[np.int64] | None = None,
+    progress: ProgressCallback | None = None,
 ) -> PolicyResult:
     """Optimal transfer policy by Howard's policy iteration.
 
     initial_action: shape (P, S) (or (S,) with one phase), indices into model.flows of flows
         allowed on each night; default moves nothing.
+    progress: called after each policy evaluated and improved (see Progress).
     `iterations` counts the policies evaluated, the last one being the optimal policy.
     Hitting `max_iter` is reported through `converged`, not raised.
     Raises NotUnichainError (average criterion) when a policy has several recurrent classes.
@@ -150,10 +164,12 @@ def solve_policy_iteration(
             if tolerance <= final:
                 iterations += 1
                 converged = True
+                _report(progress, iterations, gap, clock)
                 break
             tolerance = final
             continue
         iterations += 1
+        _report(progress, iterations, gap, clock)
         action = new_action
         tolerance = max(final, min(tolerance, _TIGHTENING * float(gap.max())))
 
@@ -199,9 +215,12 @@ def solve_modified_policy_iteration(
     sweeps: int = 20,
     epsilon: float | None = None,
     max_iter: int = 1_000_000,
+    progress: ProgressCallback | None = None,
 ) -> PolicyResult:
     """Optimal discounted policy by modified policy iteration with `sweeps` partial-evaluation
     sweeps per improvement (sweeps = 0 is value iteration).
+
+    progress: called after each improvement step (see Progress).
 
     epsilon: the returned policy is epsilon-optimal (currency units); default a small fraction
     of the value scale.
@@ -223,6 +242,8 @@ def solve_modified_policy_iteration(
         action, best = greedy(table, u, TIE_RTOL * scale)
         residual = float(np.max(np.abs(best.reshape(-1) - v)))
         t = clock.add("improve", t)
+        if progress is not None:
+            progress(Progress(iterations, residual, clock.elapsed()))
         v = best.reshape(-1)
         if residual < threshold:
             converged = True

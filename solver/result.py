@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from functools import cached_property
 from typing import Literal
@@ -13,9 +13,34 @@ from numpy.typing import NDArray
 from solver.errors import InvalidStockError
 from solver.model import flow_endpoints
 
-__all__ = ["Alternative", "Criterion", "PolicyResult", "Recommendation"]
+__all__ = [
+    "Alternative",
+    "Criterion",
+    "PolicyResult",
+    "Progress",
+    "ProgressCallback",
+    "Recommendation",
+]
 
 Criterion = Literal["discounted", "average"]
+
+
+@dataclass(frozen=True)
+class Progress:
+    """Where a running solve stands after one of its iterations, for a caller to report.
+
+    iteration: policies evaluated (Howard) or sweeps done (modified policy iteration), from 1.
+    residual: ||T v - v||_inf of the current values in currency units, i.e. the most any
+        state could still gain by changing its move (Howard: before its improvement step).
+    seconds: wall-clock seconds since the algorithm started.
+    """
+
+    iteration: int
+    residual: float
+    seconds: float
+
+
+ProgressCallback = Callable[[Progress], None]
 
 
 @dataclass(frozen=True)

@@ -12,6 +12,9 @@ from service.problems import PROBLEM_JSON, problem_body
 
 router = APIRouter(tags=["health"])
 
+# Carries Settings.run_token: how `stockrelay run` tells its own API from another server.
+RUN_HEADER = "Stockrelay-Run"
+
 
 @router.get("/healthz")
 def healthz() -> dict[str, str]:
@@ -23,10 +26,13 @@ def healthz() -> dict[str, str]:
 def readyz(request: Request) -> JSONResponse:
     """The database answers and is at the schema revision this code needs."""
     engine: Engine = request.app.state.engine
+    token = request.app.state.settings.run_token
+    ours = {RUN_HEADER: token} if token else {}
     try:
         require_migrated(engine)
     except (DatabaseNotMigratedError, SQLAlchemyError) as exc:
         detail = str(exc) if isinstance(exc, DatabaseNotMigratedError) else "database unreachable"
         body = problem_body(request, 503, "not-ready", "Not ready", detail)
-        return JSONResponse(body, 503, media_type=PROBLEM_JSON, headers={"Retry-After": "5"})
-    return JSONResponse({"status": "ready"})
+        headers = {"Retry-After": "5", **ours}
+        return JSONResponse(body, 503, media_type=PROBLEM_JSON, headers=headers)
+    return JSONResponse({"status": "ready"}, headers=ours)

@@ -37,7 +37,7 @@ from sqlalchemy import (
     update,
 )
 from sqlalchemy.exc import IntegrityError
-from sqlalchemy.orm import Session
+from sqlalchemy.orm import Session, selectinload
 
 from service.codec import EncodedPolicy
 from service.db.base import utcnow
@@ -576,7 +576,12 @@ def list_jobs(
 ) -> Sequence[SolveJob]:
     """Newest first, optionally of one state and one tenant; solves unless `kind` says
     otherwise (None: every kind)."""
-    query = select(SolveJob).order_by(SolveJob.id.desc()).limit(limit)
+    query = (
+        select(SolveJob)
+        .options(selectinload(SolveJob.version))
+        .order_by(SolveJob.id.desc())
+        .limit(limit)
+    )
     if kind is not None:
         query = query.where(SolveJob.kind == kind.value)
     if state is not None:

@@ -148,6 +148,16 @@ class SolveJob(Base):
     params: Mapped[str | None] = mapped_column(Text)
     result: Mapped[str | None] = mapped_column(Text)
 
+    version: Mapped[NetworkVersion] = relationship()
+
+    @property
+    def network_id(self) -> int:
+        return self.version.network_id
+
+    @property
+    def version_number(self) -> int:
+        return self.version.number
+
 
 class Policy(Base):
     __tablename__ = "policies"

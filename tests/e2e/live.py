@@ -113,10 +113,10 @@ class Live:
         return self.serve(environment(url))[0]
 
     def serve(self, env: dict[str, Any], workers: int = 1) -> tuple[str, Process]:
-        """`stockrelay serve --workers N` with `env` on a free loopback port: its base URL once
+        """`stockrelay serve --processes N` with `env` on a free loopback port: its base URL once
         /readyz is 200, and the process."""
         port = free_port()
-        argv = ["serve", "--host", "127.0.0.1", "--port", str(port), "--workers", str(workers)]
+        argv = ["serve", "--host", "127.0.0.1", "--port", str(port), "--processes", str(workers)]
         server = self.start("api", [sys.executable, "-m", "service.cli", *argv], env)
         base = f"http://127.0.0.1:{port}"
 

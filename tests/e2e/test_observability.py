@@ -1,4 +1,4 @@
-"""Metrics and logs of `stockrelay serve --workers 2` as deployed: with PROMETHEUS_MULTIPROC_DIR
+"""Metrics and logs of `stockrelay serve --processes 2` as deployed: with PROMETHEUS_MULTIPROC_DIR
 set, every scrape reports the recommendations of both API processes, whichever process answers
 it; with STOCKRELAY_LOG_FORMAT=json each line our code logs is one JSON object carrying the
 request id the client sent. Metrics are parsed with prometheus-client's own text parser."""

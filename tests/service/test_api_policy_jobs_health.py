@@ -7,6 +7,7 @@ import csv
 import io
 import json
 import re
+from collections.abc import Callable
 from datetime import datetime
 
 import numpy as np
@@ -14,7 +15,9 @@ import pytest
 from fastapi.testclient import TestClient
 from numpy.testing import assert_allclose, assert_array_equal
 from sqlalchemy import Engine
+from threadpoolctl import threadpool_limits
 
+from service.api.health import RUN_HEADER
 from service.db.migrate import DatabaseNotMigratedError, downgrade
 from service.main import create_app
 from service.settings import Settings
@@ -23,6 +26,7 @@ from tests.service.api_support import (
     assert_problem,
     create_network,
     demo_document,
+    open_client,
     pointers,
     run_worker,
     sqlite_only,
@@ -252,6 +256,28 @@ def test_job_list_filters_by_state_and_bounds_its_limit(client: TestClient, engi
     assert pointers(lost) == ["query:/state"]
 
 
+def test_jobs_name_their_network_and_version_number(client: TestClient) -> None:
+    first = create_network(client, demo_document(name="First"))
+    second = create_network(client, demo_document(name="Second"))
+    changed = demo_document(name="Second", discount=0.9)
+    response = client.put(f"/v1/networks/{second['id']}", json=changed, headers={"If-Match": '"1"'})
+    assert response.status_code == 200, response.text
+    [next_job] = response.json()["jobs"]
+
+    listed = {job["id"]: job for job in client.get("/v1/jobs").json()}
+    expected = {
+        first["jobs"][0]["id"]: (first["id"], 1),
+        second["jobs"][0]["id"]: (second["id"], 1),
+        next_job["id"]: (second["id"], 2),
+    }
+    assert {i: (j["network_id"], j["version_number"]) for i, j in listed.items()} == expected
+    assert (next_job["network_id"], next_job["version_number"]) == (second["id"], 2)
+    one = client.get(f"/v1/jobs/{next_job['id']}").json()
+    assert (one["network_id"], one["version_number"]) == (second["id"], 2)
+    # The row id of the version stays, and differs from the number once networks share a table.
+    assert one["version_id"] == 3
+
+
 # -- health ------------------------------------------------------------------------------------
 
 
@@ -274,10 +300,36 @@ def test_not_ready_once_the_schema_is_behind(client: TestClient, engine: Engine)
     assert client.get("/healthz").status_code == 200
 
 
+def test_readiness_carries_the_run_token_only_when_one_is_set(
+    client: TestClient, engine: Engine
+) -> None:
+    # `stockrelay run` tells its own API from another server on the port by this header.
+    assert RUN_HEADER not in client.get("/readyz").headers
+    with open_client(engine, run_token="this-run") as tagged:
+        assert tagged.get("/readyz").headers[RUN_HEADER] == "this-run"
+        downgrade(engine, "-1")
+        behind = tagged.get("/readyz")
+        assert (behind.status_code, behind.headers[RUN_HEADER]) == (503, "this-run")
+
+
 def test_app_refuses_to_start_on_an_unmigrated_database(database_url: str) -> None:
     app = create_app(Settings(database_url=database_url))
     with pytest.raises(DatabaseNotMigratedError, match="stockrelay migrate"), TestClient(app):
         pass
+
+
+@sqlite_only
+@pytest.mark.parametrize(("threads", "expected"), [({}, 1), ({"blas_threads": 3}, 3)])
+def test_the_api_process_uses_the_configured_blas_threads(
+    database_url: str,
+    engine: Engine,
+    threads: dict[str, int],
+    expected: int,
+    blas_threads: Callable[[], set[int]],
+) -> None:
+    threadpool_limits(limits=2, user_api="blas")  # as a 2-core machine starts
+    with TestClient(create_app(Settings(database_url=database_url, **threads))):
+        assert blas_threads() == {expected}
 
 
 # -- what every problem shares -----------------------------------------------------------------

@@ -6,6 +6,7 @@ from __future__ import annotations
 import json
 import re
 import signal
+import socket
 from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import Any
@@ -14,10 +15,13 @@ import pytest
 from sqlalchemy import Engine, func, select
 from sqlalchemy.orm import Session, sessionmaker
 
+from service import auth, supervisor
 from service.cli import main
+from service.db import repository
 from service.db.session import make_engine, make_session_factory
-from service.db.tables import Network, NetworkVersion, Policy, SolveJob, Tenant
+from service.db.tables import JobKind, Network, NetworkVersion, Policy, SolveJob, Tenant
 from solver import NetworkSpec
+from tests.e2e.live import free_port
 
 DEMO = Path(__file__).resolve().parents[2] / "service" / "data" / "demo_network.json"
 
@@ -209,8 +213,10 @@ def test_jobs_list_filters_by_state_and_the_worker_drains_the_queue(
     lines = out.splitlines()
     assert len(lines) == 2
     # Newest first.
-    assert lines[0].split()[:3] == ["2", "queued", "average"]
-    assert lines[1].split()[:3] == ["1", "queued", "discounted"]
+    assert lines[0].split()[:8] == [
+        "2", "queued", "solve", "average", "network", "1", "version", "1"
+    ]  # fmt: skip
+    assert lines[1].split()[:4] == ["1", "queued", "solve", "discounted"]
     assert all(line.endswith("attempts 0") for line in lines)
     assert run("jobs", "list", "--state", "queued")[1] == out
     assert run("jobs", "list", "--state", "done") == (0, "", "")
@@ -221,9 +227,9 @@ def test_jobs_list_filters_by_state_and_the_worker_drains_the_queue(
     assert run("jobs", "list", "--state", "queued") == (0, "", "")
     code, out, _ = run("jobs", "list", "--state", "done")
     done = out.splitlines()
-    assert [line.split()[:3] for line in done] == [
-        ["2", "done", "average"],
-        ["1", "done", "discounted"],
+    assert [line.split()[:4] for line in done] == [
+        ["2", "done", "solve", "average"],
+        ["1", "done", "solve", "discounted"],
     ]
     assert all(re.search(r"attempts 1  \d+\.\d{3} s$", line) for line in done), done
     assert [(j.state, j.attempts) for j in jobs(sessions)] == [("done", 1), ("done", 1)]
@@ -255,7 +261,9 @@ def test_retry_requeues_a_failed_job_and_refuses_any_other(
     assert (job.state, job.attempts, job.error) == ("done", 1, None)
     assert rows(sessions, Policy) == 1
     assert_one_line_error(*run("jobs", "retry", str(job.id)))
-    assert_one_line_error(*run("jobs", "retry", "99"))
+    code, out, err = run("jobs", "retry", "99")
+    assert_one_line_error(code, out, err)
+    assert err == "stockrelay: error: no job 99\n"
     assert [(j.state, j.attempts) for j in jobs(sessions)] == [("done", 1)]
 
 
@@ -301,3 +309,141 @@ def test_invalid_settings_are_refused_naming_the_variable(
         assert_one_line_error(code, captured.out, captured.err)
         assert "STOCKRELAY_LEASE_SECONDS" in captured.err
     assert not database.parent.exists()
+
+
+def test_only_migrate_creates_a_database_and_the_others_name_the_one_they_looked_for(
+    monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str], tmp_path: Path
+) -> None:
+    monkeypatch.chdir(tmp_path)  # run from another folder, with the default URL
+    monkeypatch.delenv("STOCKRELAY_DATABASE_URL", raising=False)
+    expected = tmp_path / "var" / "stockrelay.db"
+    commands = (
+        ["jobs", "list"],
+        ["jobs", "retry", "1"],
+        ["networks", "list"],
+        ["networks", "import", str(DEMO)],
+        ["networks", "export", "1"],
+        ["keys", "list"],
+        ["keys", "create", "--tenant", "t", "--scope", "read"],
+        ["worker", "--until-idle"],
+        ["serve"],
+        ["run"],
+    )
+    for argv in commands:
+        code = main(argv)
+        captured = capsys.readouterr()
+        assert_one_line_error(code, captured.out, captured.err)
+        assert str(expected) in captured.err and "stockrelay migrate" in captured.err, argv
+        assert not (tmp_path / "var").exists(), argv
+
+    assert main(["migrate"]) == 0
+    assert expected.is_file()
+    capsys.readouterr()
+    assert main(["networks", "list"]) == 0
+
+
+def test_jobs_list_shows_network_version_number_and_every_kind(
+    run: Run, sessions: sessionmaker[Session], tmp_path: Path
+) -> None:
+    # Two networks, the second with two versions: version numbers differ from row ids.
+    run("networks", "import", str(DEMO))
+    other = write(tmp_path / "other.json", demo_document(name="Other store pair"))
+    run("networks", "import", str(other))
+    run("networks", "import", str(write(tmp_path / "o2.json", demo_document(
+        name="Other store pair", discount=0.9))))  # fmt: skip
+    with sessions.begin() as session:
+        version = session.scalars(select(NetworkVersion).where(NetworkVersion.number == 2)).one()
+        tenant_id = session.scalars(select(Tenant.id)).one()
+        simulation = repository.enqueue_analysis(
+            session, tenant_id, version, JobKind.SIMULATE, "average", "{}"
+        ).id
+
+    code, out, err = run("jobs", "list")
+    assert (code, err) == (0, "")
+    shown = [line.split()[:8] for line in out.splitlines()]
+    assert shown == [
+        [str(simulation), "queued", "simulate", "average", "network", "2", "version", "2"],
+        ["3", "queued", "solve", "discounted", "network", "2", "version", "2"],
+        ["2", "queued", "solve", "discounted", "network", "2", "version", "1"],
+        ["1", "queued", "solve", "discounted", "network", "1", "version", "1"],
+    ]
+    _, only_simulations, _ = run("jobs", "list", "--kind", "simulate")
+    assert [line.split()[0] for line in only_simulations.splitlines()] == [str(simulation)]
+    _, solves, _ = run("jobs", "list", "--kind", "solve")
+    assert [line.split()[0] for line in solves.splitlines()] == ["3", "2", "1"]
+    assert run("jobs", "list", "--kind", "what_if") == (0, "", "")
+
+
+def test_user_mistakes_are_one_line_never_a_traceback(
+    run: Run, monkeypatch: pytest.MonkeyPatch, tmp_path: Path
+) -> None:
+    blocker = tmp_path / "a-file"
+    blocker.write_text("")
+    code, out, err = run("openapi", "--out", str(tmp_path / "missing" / "openapi.json"))
+    assert_one_line_error(code, out, err)
+    assert "cannot write" in err and "No such file or directory" in err
+
+    with socket.socket() as taken:
+        taken.bind(("127.0.0.1", 0))
+        taken.listen()
+        code, out, err = run("serve", "--port", str(taken.getsockname()[1]))
+    assert_one_line_error(code, out, err)
+    assert "Address already in use" in err and "--port" in err
+
+    for url, expected in [
+        ("mysql://someone@db/stock", "SQLite or PostgreSQL"),
+        ("not a url", "not a database URL"),
+        (f"sqlite:///{blocker}/stockrelay.db", "cannot create the database"),
+        ("postgresql://nobody@127.0.0.1:1/none", "cannot use database"),  # nothing listens on 1
+    ]:
+        monkeypatch.setenv("STOCKRELAY_DATABASE_URL", url)
+        code, out, err = run("migrate")
+        assert_one_line_error(code, out, err)
+        assert expected in err, err
+
+
+def test_run_revokes_its_key_when_it_stops_even_on_ctrl_c(
+    run: Run, sessions: sessionmaker[Session], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    keys: list[str] = []
+
+    def supervise(host: str, port: int, workers: int, key: str) -> int:
+        with sessions() as session:
+            assert auth.authenticate(session, key) is not None  # usable while running
+        keys.append(key)
+        if len(keys) == 2:
+            raise KeyboardInterrupt
+        return 0
+
+    monkeypatch.setattr(supervisor, "supervise", supervise)
+    port = str(free_port())
+    code, _, err = run("run", "--port", port)
+    assert code == 0 and "is revoked" in err
+    code, _, err = run("run", "--port", port)
+    assert (code, err.splitlines()[-1]) == (130, "stockrelay: interrupted")
+    with sessions() as session:
+        assert [auth.authenticate(session, key) for key in keys] == [None, None]
+
+
+@pytest.mark.parametrize(
+    ("argv", "message"),
+    [
+        (["jobs", "retry", "99999999999"], "expected a whole number 1..2147483647"),
+        (["networks", "export", "3000000000"], "expected a whole number 1..2147483647"),
+        (["networks", "export", "1", "--version", "0"], "expected a whole number 1.."),
+        (["keys", "create", "--tenant", "t", "--scope", "read", "--label", "x" * 201],
+         "at most 200 characters"),
+        (["keys", "create", "--tenant", "x" * 101, "--scope", "read"], "1 to 100 printable"),
+        (["networks", "import", str(DEMO), "--tenant", " "], "1 to 100 printable"),
+    ],
+)  # fmt: skip
+def test_values_the_database_cannot_hold_are_refused_by_the_parser(
+    run: Run, capsys: pytest.CaptureFixture[str], argv: list[str], message: str
+) -> None:
+    # Beyond INTEGER or a column's width, PostgreSQL would fail the statement with a traceback.
+    with pytest.raises(SystemExit) as refused:
+        run(*argv)
+    assert refused.value.code == 2
+    err = capsys.readouterr().err
+    assert "Traceback" not in err
+    assert message in err.splitlines()[-1], err

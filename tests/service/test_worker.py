@@ -13,6 +13,7 @@ import numpy as np
 import pytest
 from sqlalchemy import Engine, select
 from sqlalchemy.orm import Session, sessionmaker
+from threadpoolctl import threadpool_limits
 
 from service import analysis
 from service import worker as worker_module
@@ -332,3 +333,25 @@ def test_solves_deduplicate_beside_live_simulations(sessions: sessionmaker[Sessi
         assert repository.criteria_requested(session, tenant_id, version.spec_hash) == ["average"]
         [solve] = repository.jobs_for(session, tenant_id, version.spec_hash, "average")
         assert solve.kind == "solve"
+
+
+@pytest.mark.parametrize(("threads", "expected"), [({}, 1), ({"blas_threads": 2}, 2)])
+def test_the_worker_uses_the_configured_blas_threads(
+    engine: Engine,
+    sessions: sessionmaker[Session],
+    monkeypatch: pytest.MonkeyPatch,
+    threads: dict[str, int],
+    expected: int,
+    blas_threads: Callable[[], set[int]],
+) -> None:
+    queue(sessions, ["discounted"])
+    threadpool_limits(limits=3, user_api="blas")
+    seen: list[set[int]] = []
+
+    def watched(*args: Any, **kwargs: Any) -> PolicyResult:
+        seen.append(blas_threads())
+        return solve_network(*args, **kwargs)
+
+    patch_solve(monkeypatch, watched)
+    make_worker(engine, sessions, **threads).run(until_idle=True)
+    assert seen == [{expected}]

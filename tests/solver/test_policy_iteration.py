@@ -12,6 +12,7 @@ from solver import (
     NetworkSpec,
     NotUnichainError,
     PolicyResult,
+    Progress,
     build_transfer_model,
     solve_network,
     solve_policy_iteration,
@@ -200,3 +201,29 @@ def test_every_recommended_move_earns_something(spec: NetworkSpec) -> None:
 def test_max_iter_below_one_is_refused() -> None:
     with pytest.raises(ValueError, match="max_iter"):
         solve_policy_iteration(build_transfer_model(two_stores()), max_iter=0)
+
+
+@pytest.mark.parametrize(
+    ("criterion", "method"),
+    [("discounted", "howard"), ("average", "howard"), ("discounted", "value-iteration")],
+)
+def test_progress_reports_every_iteration_and_the_final_residual(
+    criterion: str, method: str
+) -> None:
+    spec = NetworkSpec.model_validate(two_stores())
+    reports: list[Progress] = []
+    result = solve_network(spec, criterion=criterion, method=method, progress=reports.append)  # type: ignore[arg-type]
+    quiet = solve_network(spec, criterion=criterion, method=method)  # type: ignore[arg-type]
+
+    # Reporting changes nothing about the solve.
+    np.testing.assert_array_equal(result.action, quiet.action)
+    assert [r.iteration for r in reports] == list(range(1, result.iterations + 1))
+    seconds = [r.seconds for r in reports]
+    assert seconds == sorted(seconds) and seconds[-1] <= result.seconds["total"]
+    assert all(r.residual >= 0 for r in reports)
+    if method == "howard":
+        # The last policy is the one no state can improve on (beyond the tie tolerance).
+        assert reports[-1].residual <= 1e-6 * max(1.0, float(np.abs(result.values).max()))
+        assert reports[0].residual > reports[-1].residual
+    else:
+        assert reports[-1].residual == pytest.approx(result.residual)
