@@ -1,8 +1,10 @@
 """The read path: the newest ready policy of a network, cached in memory, and recommendations.
 
 Policies are decoded once per process and kept in an LRU cache keyed by (version, criterion);
-a stored policy is checksummed on every load from the database, and one that fails is deleted
-and queued for a new solve, never served.
+each version is served by the policy of its own method (exact or priced, service.modes), and a
+version whose method changed serves the previous version's policy, marked stale, until its own
+solve is done. A stored policy is checksummed on every load from the database, and one that
+fails is deleted and queued for a new solve, never served.
 """
 
 from __future__ import annotations
@@ -20,11 +22,11 @@ from zoneinfo import ZoneInfo
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
-from service.codec import CorruptPolicyError, decode_policy
+from service.codec import CorruptPolicyError, StoredPolicy, decode_policy
 from service.db import repository
 from service.db.repository import VersionHead
 from service.db.tables import NetworkVersion
-from solver import InvalidStockError, PolicyResult, Recommendation
+from solver import InvalidStockError, Recommendation
 from solver.spec import DEFAULT_TIMEZONE
 
 __all__ = [
@@ -58,7 +60,7 @@ class PolicyNotReadyError(Exception):
 
 @dataclass(frozen=True)
 class ServedPolicy:
-    result: PolicyResult
+    result: StoredPolicy
     version_id: int
     version_number: int
     solved_at: datetime
@@ -69,7 +71,7 @@ class ServedPolicy:
 
 @dataclass(frozen=True)
 class _Entry:
-    result: PolicyResult
+    result: StoredPolicy
     solved_at: datetime
 
 
@@ -147,7 +149,9 @@ def load_policy(
 def _load(
     session: Session, network: NetworkKey, version: VersionHead, criterion: str
 ) -> _Entry | None:
-    row = repository.policy_for(session, network.tenant_id, version.spec_hash, criterion)
+    row = repository.policy_for(
+        session, network.tenant_id, version.spec_hash, criterion, version.method
+    )
     if row is None:
         return None
     try:
@@ -169,7 +173,9 @@ def _load(
 def _not_ready(
     session: Session, network: NetworkKey, version: VersionHead, criterion: str
 ) -> PolicyNotReadyError:
-    jobs = repository.jobs_for(session, network.tenant_id, version.spec_hash, criterion)
+    jobs = repository.jobs_for(
+        session, network.tenant_id, version.spec_hash, criterion, version.method
+    )
     if not jobs:
         return PolicyNotReadyError(
             f"no {criterion} solve was requested for version {version.number} of network "
@@ -194,7 +200,7 @@ class StockProblemsError(InvalidStockError):
         self.problems = problems
 
 
-def stock_vector(result: PolicyResult, stock: Mapping[str, int]) -> list[int]:
+def stock_vector(result: StoredPolicy, stock: Mapping[str, int]) -> list[int]:
     """Closing stock by location id, in network order; StockProblemsError naming every missing,
     unknown or out-of-range location."""
     ids = result.location_ids

@@ -31,6 +31,7 @@ __all__ = [
     "CalibrationOut",
     "CalibrationSettingsIn",
     "CalibrationSettingsOut",
+    "CertificateOut",
     "ClosingStockIn",
     "ClosingStockOut",
     "CriterionName",
@@ -42,6 +43,7 @@ __all__ = [
     "InstructionsOut",
     "IntervalOut",
     "JobOut",
+    "JobProgressOut",
     "LaneOverride",
     "LaneRef",
     "LocationCalibrationOut",
@@ -60,6 +62,7 @@ __all__ = [
     "SimulationJobOut",
     "SimulationReportOut",
     "SimulationRequest",
+    "SolveModeName",
     "SolveState",
     "TransferOut",
     "VersionOut",
@@ -75,6 +78,8 @@ __all__ = [
 ]
 
 CriterionName = Literal["discounted", "average"]
+SolveModeName = Literal["exact", "priced", "auto"]
+MethodName = Literal["exact", "priced"]
 # Weekdays as the network specification names them (solver.spec.WEEKDAYS), Monday first.
 WeekdayName = Literal["mon", "tue", "wed", "thu", "fri", "sat", "sun"]
 
@@ -124,6 +129,13 @@ class NetworkCreate(NetworkSpec):
     model_config = ConfigDict(json_schema_extra={"examples": [DEMO_NETWORK]})
 
     criteria: Criteria = ["discounted"]  # noqa: RUF012  (pydantic copies defaults)
+    mode: SolveModeName | None = Field(
+        default=None,
+        description="How the network is solved: exact (every stock state), priced (lane "
+        "prices and per-store values, with a certified optimality gap), or auto: exact while "
+        "the network is within the exact size limits, priced beyond them. Not part of the "
+        "specification's hash. Default auto; on PUT, absent keeps the network's mode.",
+    )
 
     @field_validator("timezone")
     @classmethod
@@ -131,17 +143,37 @@ class NetworkCreate(NetworkSpec):
         return known_timezone(zone)
 
     def spec(self) -> NetworkSpec:
-        return NetworkSpec.model_validate(self.model_dump(by_alias=True, exclude={"criteria"}))
+        return NetworkSpec.model_validate(
+            self.model_dump(by_alias=True, exclude={"criteria", "mode"})
+        )
 
 
 class NetworkUpdate(NetworkCreate):
-    """The next version of a network's specification (send If-Match with the current version)."""
+    """The next version of a network's specification (send If-Match with the current version).
+    A changed `mode` queues the solves of the new method."""
+
+
+class JobProgressOut(BaseModel):
+    """The latest progress a running priced solve reported."""
+
+    stage: Literal["pricing", "certifying"] = Field(
+        description="pricing: improving the lane prices; certifying: simulating the policy "
+        "for its lower bound."
+    )
+    iteration: int
+    upper_bound: float = Field(description="Best upper bound on the optimal value so far.")
+    lower_bound: float | None = Field(
+        description="Best lower bound so far (the policy's simulated value); null until certifying."
+    )
+    elapsed: float = Field(description="Seconds since the solve started.")
+    reported_at: Timestamp
 
 
 class JobOut(_Out):
     id: int
     version_id: int
     criterion: str
+    method: MethodName = "exact"
     state: Literal["queued", "running", "done", "failed"]
     attempts: int
     created_at: Timestamp
@@ -151,6 +183,15 @@ class JobOut(_Out):
     iterations: int | None
     residual: float | None
     error: str | None
+    progress: JobProgressOut | None = Field(
+        default=None,
+        description="Priced solves: the latest progress reported while running (kept once done).",
+    )
+
+    @field_validator("progress", mode="before")
+    @classmethod
+    def _progress_json(cls, value: Any) -> Any:
+        return json.loads(value) if isinstance(value, str) else value
 
 
 class SolveState(BaseModel):
@@ -170,6 +211,10 @@ class NetworkOut(_Out):
     created_at: Timestamp
     version: int = Field(description="Current version number; send it in If-Match to update.")
     spec_hash: str = Field(description="SHA-256 of the current specification as canonical JSON.")
+    mode: SolveModeName = Field(description="The solving mode the network asks for.")
+    method: MethodName = Field(
+        description="The method that mode resolves to for the current version."
+    )
     solves: list[SolveState]
 
 
@@ -216,6 +261,25 @@ class TransferOut(BaseModel):
     unit_cost: float
 
 
+class CertificateOut(BaseModel):
+    """How far a priced policy can be from optimal, certified at one reference stock."""
+
+    reference_stock: dict[str, int]
+    upper_bound: float = Field(
+        description="Lagrangian upper bound on the optimal value at the reference stock: no "
+        "policy can do better."
+    )
+    policy_value: float = Field(description="The priced policy's simulated value there.")
+    policy_value_interval: tuple[float, float] = Field(
+        description="Confidence interval of that value (common random numbers, control variate)."
+    )
+    certified_gap: float = Field(
+        description="(upper bound - low end of the interval) / upper bound, as a fraction: "
+        "0.012 is 1.2%."
+    )
+    replications: int
+
+
 class RecommendationOut(BaseModel):
     network_id: int
     criterion: str
@@ -226,7 +290,10 @@ class RecommendationOut(BaseModel):
         description="When that version's demand and replenishment were estimated from sales "
         "history; null when they were sent as they are."
     )
-    residual: float
+    residual: float | None = Field(
+        description="Bellman residual of the exact solve; null for a priced policy (see "
+        "certificate)."
+    )
     stock: dict[str, int]
     transfers: list[TransferOut] = Field(description="Tonight's moves; empty when none pays.")
     stock_after_transfers: dict[str, int]
@@ -247,6 +314,19 @@ class RecommendationOut(BaseModel):
     )
     night: WeekdayName | None = Field(
         default=None, description="Weekday of that business date: the night of the moves."
+    )
+    method: MethodName = Field(
+        default="exact",
+        description="exact: the optimal policy over every stock state; priced: the nightly plan "
+        "from lane prices and per-store values.",
+    )
+    upper_bound: float | None = Field(
+        default=None,
+        description="Priced policies: an upper bound on the optimal value at this stock "
+        "(expected_value is then the plan's own estimate). Null for exact policies.",
+    )
+    certificate: CertificateOut | None = Field(
+        default=None, description="Priced policies: the solve's certified optimality gap."
     )
 
 
@@ -544,9 +624,10 @@ class IntervalOut(BaseModel):
 
 
 class PolicySimulationOut(BaseModel):
-    name: Literal["optimal", "do_nothing", "balance_cover"] = Field(
-        description="optimal: the solved policy; do_nothing: never move; balance_cover: move "
-        "toward equal days of cover when the move pays for itself the next day."
+    name: Literal["optimal", "priced", "do_nothing", "balance_cover"] = Field(
+        description="optimal: the solved policy; priced: the priced policy's nightly plan (a "
+        "network solved by prices); do_nothing: never move; balance_cover: move toward equal "
+        "days of cover when the move pays for itself the next day."
     )
     profit_per_day: IntervalOut = Field(description="Currency per day, move costs deducted.")
     fill_rate: IntervalOut = Field(description="Units sold / units demanded.")
@@ -556,8 +637,8 @@ class PolicySimulationOut(BaseModel):
     units_moved_per_night: IntervalOut
     move_cost_per_day: IntervalOut
     difference_to_optimal: IntervalOut | None = Field(
-        description="Profit per day minus the optimal policy's on the same days; null for the "
-        "optimal policy itself."
+        description="Profit per day minus the network's policy's (optimal, or priced) on the "
+        "same days; null for that policy itself."
     )
 
 
@@ -664,16 +745,25 @@ class WhatIfRequest(BaseModel):
 
 class WhatIfSummaryOut(BaseModel):
     states: int
+    method: MethodName = "exact"
     profit_per_day: float | None = Field(description="Long-run profit per day (average only).")
     mean_value: float | None = Field(
         description="Expected discounted profit averaged over every stock (discounted only)."
     )
     reference_stock: dict[str, int]
     value_at_reference: float | None = Field(
-        description="Expected discounted profit from the reference stock (discounted only)."
+        description="Expected discounted profit from the reference stock (discounted only; "
+        "null for a priced network)."
     )
-    residual: float
-    error_bound: float
+    upper_bound_at_reference: float | None = Field(
+        default=None,
+        description="Priced networks: the upper bound on the optimal value at the reference stock.",
+    )
+    certified_gap: float | None = Field(
+        default=None, description="Priced networks: the solve's certified gap (a fraction)."
+    )
+    residual: float | None = Field(description="Null for a priced network.")
+    error_bound: float | None = Field(description="Null for a priced network.")
 
 
 class WhatIfChangeOut(BaseModel):
@@ -682,6 +772,7 @@ class WhatIfChangeOut(BaseModel):
     profit_per_day: float | None
     mean_value: float | None
     value_at_reference: float | None
+    upper_bound_at_reference: float | None = None
 
 
 class MoveChangesOut(BaseModel):

@@ -16,6 +16,7 @@ from service.analysis import apply_overrides, check_simulation, new_seed, run_wh
 from service.api.deps import JobId, NetworkId, Reader, SessionDep, SettingsDep, Writer, get_network
 from service.db import repository
 from service.db.tables import JobKind, Network, NetworkVersion, SolveJob
+from service.modes import resolve_method
 from service.problems import PROBLEM_RESPONSES, NotFound
 from service.schemas import (
     SimulationJobOut,
@@ -99,6 +100,7 @@ def start_simulation(
         body,
         limits=settings.size_limits,
         max_replication_days=settings.simulation_max_replication_days,
+        method=version.method,
     )
     params = body.model_copy(update={"seed": new_seed() if body.seed is None else body.seed})
     job = repository.enqueue_analysis(
@@ -157,10 +159,15 @@ def what_if(
     network = get_network(session, caller.tenant_id, network_id)
     version, spec = _current(session, network)
     changed = apply_overrides(spec, body.overrides)
-    states = max(check_size(candidate, settings.size_limits)[0] for candidate in (spec, changed))
-    if states <= settings.what_if_sync_max_states:
+    limits = settings.size_limits
+    methods = {resolve_method(candidate, network.mode, limits) for candidate in (spec, changed)}
+    # Priced networks are large, or asked for: their comparisons always go to a worker.
+    if methods == {"exact"} and (
+        max(check_size(candidate, limits)[0] for candidate in (spec, changed))
+        <= settings.what_if_sync_max_states
+    ):
         result = run_what_if(
-            spec, body.overrides, criterion=body.criterion, limits=settings.size_limits
+            spec, body.overrides, criterion=body.criterion, limits=limits, mode=network.mode
         )
         return WhatIfOut(network_id=network.id, version=version.number, **result)
     # exclude_unset: an absent max_units_per_night keeps the limit, a null one lifts it.

@@ -6,10 +6,12 @@ from datetime import date
 
 from sqlalchemy.orm import Session
 
+from service.codec import StoredPolicy
 from service.db import repository
 from service.db.tables import JobState, Network, SolveJob
 from service.policies import ServedPolicy
 from service.schemas import (
+    CertificateOut,
     JobOut,
     NetworkCreated,
     NetworkOut,
@@ -17,10 +19,10 @@ from service.schemas import (
     SolveState,
     TransferOut,
 )
-from solver import PolicyResult, Recommendation
+from solver import PricedPolicy, Recommendation
 from solver.spec import WEEKDAYS
 
-__all__ = ["network_out", "recommendation_out", "transfers_of"]
+__all__ = ["certificate_out", "network_out", "recommendation_out", "transfers_of"]
 
 CRITERIA = ("discounted", "average")
 
@@ -32,13 +34,17 @@ def network_out(
     assert version is not None, "a network always has a version"
     solves = []
     for criterion in CRITERIA:
-        policy = repository.policy_for(session, network.tenant_id, version.spec_hash, criterion)
+        policy = repository.policy_for(
+            session, network.tenant_id, version.spec_hash, criterion, version.method
+        )
         if policy is not None:
             solves.append(
                 SolveState(criterion=criterion, state="ready", solved_at=policy.solved_at)
             )
             continue
-        history = repository.jobs_for(session, network.tenant_id, version.spec_hash, criterion)
+        history = repository.jobs_for(
+            session, network.tenant_id, version.spec_hash, criterion, version.method
+        )
         if not history:
             solves.append(SolveState(criterion=criterion, state="not_requested"))
             continue
@@ -59,6 +65,8 @@ def network_out(
         "created_at": network.created_at,
         "version": version.number,
         "spec_hash": version.spec_hash,
+        "mode": network.mode,
+        "method": version.method,
         "solves": solves,
     }
     if jobs is None:
@@ -66,7 +74,7 @@ def network_out(
     return NetworkCreated(**fields, jobs=[JobOut.model_validate(job) for job in jobs])
 
 
-def transfers_of(result: PolicyResult, flows: tuple[int, ...]) -> list[TransferOut]:
+def transfers_of(result: StoredPolicy, flows: tuple[int, ...]) -> list[TransferOut]:
     ids = result.location_ids
     return [
         TransferOut(from_=ids[a], to=ids[b], units=units, unit_cost=float(result.lane_costs[lane]))
@@ -84,6 +92,11 @@ def recommendation_out(
 ) -> RecommendationOut:
     result = served.result
     ids = result.location_ids
+    priced = isinstance(result, PricedPolicy)
+    upper_bound = None
+    if isinstance(result, PricedPolicy):
+        phase = 0 if business_date is None else result.phase_of(business_date.weekday())
+        upper_bound = result.upper_bound(recommendation.stock, phase=phase)
     return RecommendationOut(
         network_id=network_id,
         criterion=criterion,
@@ -91,7 +104,7 @@ def recommendation_out(
         stale=served.stale,
         solved_at=served.solved_at,
         parameters_calibrated_at=served.calibrated_at,
-        residual=result.residual,
+        residual=None if isinstance(result, PricedPolicy) else result.residual,
         stock=dict(zip(ids, recommendation.stock, strict=True)),
         transfers=transfers_of(result, recommendation.flows),
         stock_after_transfers=dict(zip(ids, recommendation.post_move_stock, strict=True)),
@@ -102,4 +115,22 @@ def recommendation_out(
         profit_per_day=result.gain,
         business_date=business_date,
         night=None if business_date is None else WEEKDAYS[business_date.weekday()],
+        method="priced" if priced else "exact",
+        upper_bound=upper_bound,
+        certificate=certificate_out(result) if isinstance(result, PricedPolicy) else None,
+    )
+
+
+def certificate_out(result: PricedPolicy) -> CertificateOut:
+    certificate = result.certificate
+    low, high = certificate.policy_value_interval
+    return CertificateOut(
+        reference_stock=dict(
+            zip(result.location_ids, (int(u) for u in certificate.reference_stock), strict=True)
+        ),
+        upper_bound=certificate.upper_bound,
+        policy_value=certificate.policy_value,
+        policy_value_interval=(low, high),
+        certified_gap=certificate.certified_gap,
+        replications=certificate.replications,
     )
