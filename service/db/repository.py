@@ -223,8 +223,8 @@ def create_network(
     spec: NetworkSpec,
     criteria: Iterable[str],
     *,
-    mode: str,
-    method: str,
+    mode: str = "auto",
+    method: str = "exact",
 ) -> tuple[Network, NetworkVersion, list[SolveJob]]:
     """A new network asking for solving `mode`, with version 1 of `spec` solved by `method`
     (the mode resolved for it), and the solve jobs it needs."""
@@ -241,7 +241,7 @@ def add_version(
     spec: NetworkSpec,
     criteria: Iterable[str],
     *,
-    method: str,
+    method: str = "exact",
 ) -> tuple[NetworkVersion, list[SolveJob]]:
     """The next version of `network`, solved by `method`, and a job per criterion that has
     neither a policy nor a live job for the same specification and method in this tenant."""
@@ -580,7 +580,7 @@ def get_job(session: Session, job_id: int) -> SolveJob | None:
 
 
 def jobs_for(
-    session: Session, tenant_id: int, spec_hash: str, criterion: str, method: str
+    session: Session, tenant_id: int, spec_hash: str, criterion: str, method: str = "exact"
 ) -> Sequence[SolveJob]:
     """Every solve job ever run for one specification, criterion and method, newest first."""
     return session.scalars(
@@ -637,7 +637,7 @@ def retry_job(session: Session, job_id: int) -> SolveJob | None:
 
 
 def policy_for(
-    session: Session, tenant_id: int, spec_hash: str, criterion: str, method: str
+    session: Session, tenant_id: int, spec_hash: str, criterion: str, method: str = "exact"
 ) -> Policy | None:
     return session.scalars(
         select(Policy).where(

@@ -469,7 +469,7 @@ def test_an_explicit_demand_distribution_cannot_be_rescaled(client: TestClient) 
 @sqlite_only
 def test_a_changed_network_over_the_size_limit_is_422_with_its_sizes(engine: Engine) -> None:
     with open_client(engine, max_states=200) as client:
-        network = create_network(client)
+        network = create_network(client, demo_document(mode="exact"))
         overrides = {"locations": {"hilltop": {"capacity": 20}}}
         response = client.post(
             f"/v1/networks/{network['id']}/what-if", json={"overrides": overrides}
