@@ -6,7 +6,7 @@ processes, so there are two sources:
 
 * **From the database** (`DatabaseCollector`): solve times, job outcomes, the queue and policy
   ages are aggregated from `solve_jobs` (which also queues simulations and what-if comparisons,
-  told apart by `kind`) and `policies`, in four queries at every scrape. Every API process
+  told apart by `kind`) and `policies`, in five queries at every scrape. Every API process
   reports the same numbers, and no process shares memory with another.
 * **In process**: recommendation latency and policy cache lookups are counted by the process
   that answered. By default they are per API process: behind `stockrelay serve --workers N` a

@@ -323,7 +323,9 @@ class RecommendationOut(BaseModel):
     upper_bound: float | None = Field(
         default=None,
         description="Priced policies: an upper bound on the optimal value at this stock "
-        "(expected_value is then the plan's own estimate). Null for exact policies.",
+        "(discounted; under the average criterion, on the optimal profit per day). "
+        "expected_value and value_without_transfers are then on the relaxation's scale. Null "
+        "for exact policies.",
     )
     certificate: CertificateOut | None = Field(
         default=None, description="Priced policies: the solve's certified optimality gap."
