@@ -38,17 +38,16 @@ from solver import (
     InvalidModelError,
     NetworkSpec,
     PolicyResult,
-    PricedPolicy,
     SizeLimits,
     TransferModel,
     build_transfer_model,
-    check_priced_size,
     solve_network,
     solve_policy_iteration,
-    solve_priced,
 )
 from solver.build import check_size
 from solver.plan_simulation import PlanFunction, do_nothing_plan, simulate_plans
+from solver.priced import check_priced_size, solve_priced
+from solver.priced_result import PricedPolicy
 from solver.simulation import (
     CONFIDENCE,
     Interval,

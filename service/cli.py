@@ -21,7 +21,8 @@ from service.files import load_network, write_json_atomically
 from service.logs import logging_from_environment
 from service.modes import resolve_method
 from service.schemas import SimulationRequest
-from solver import NetworkSpec, PolicyResult, SizeLimits, SolverError, solve_network, solve_priced
+from solver import NetworkSpec, PolicyResult, SizeLimits, SolverError, solve_network
+from solver.priced import solve_priced
 from solver.spec import WEEKDAYS
 
 __all__ = ["main"]

@@ -27,7 +27,8 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from solver import PolicyResult, PricedPolicy
+from solver import PolicyResult
+from solver.priced_result import PricedPolicy
 
 __all__ = [
     "CorruptPolicyError",

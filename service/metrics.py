@@ -405,7 +405,7 @@ class DatabaseCollector(Collector):
         )
         for job_id, network_id, criterion, text in rows:
             try:
-                report = json.loads(text)
+                report = json.loads(text or "")
                 values = [str(job_id), str(network_id), criterion, str(report["stage"])]
                 iteration.add_metric(values, float(report["iteration"]))
                 upper.add_metric(values, float(report["upper_bound"]))

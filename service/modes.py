@@ -11,8 +11,9 @@ from __future__ import annotations
 
 from typing import Literal
 
-from solver import ModelTooLargeError, NetworkSpec, SizeLimits, check_priced_size
+from solver import ModelTooLargeError, NetworkSpec, SizeLimits
 from solver.build import check_size
+from solver.priced import check_priced_size
 
 __all__ = ["Method", "Mode", "resolve_method"]
 

@@ -44,7 +44,8 @@ from matplotlib.image import AxesImage
 from matplotlib.ticker import MaxNLocator, MultipleLocator, ScalarFormatter
 from numpy.typing import NDArray
 
-from solver import PolicyResult, PricedPolicy
+from solver import PolicyResult
+from solver.priced_result import PricedPolicy
 
 __all__ = [
     "ANNOTATE_MAX_CELLS",

@@ -19,13 +19,9 @@ from typing import Any, TextIO
 import numpy as np
 from numpy.typing import NDArray
 
-from solver import (
-    ModelTooLargeError,
-    NetworkSpec,
-    PricedPolicy,
-    PricedProgress,
-    evaluate_plan_exactly,
-)
+from solver import ModelTooLargeError, NetworkSpec
+from solver.priced import evaluate_plan_exactly
+from solver.priced_result import PricedPolicy, PricedProgress
 from solver.spec import WEEKDAYS
 
 __all__ = [

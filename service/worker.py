@@ -45,13 +45,9 @@ from service.db.base import utcnow
 from service.db.tables import JobKind, NetworkVersion, SolveMethod
 from service.schemas import SimulationRequest, WhatIfRequest
 from service.settings import Settings
-from solver import (
-    NetworkSpec,
-    PricedProgress,
-    SolverError,
-    solve_network,
-    solve_priced,
-)
+from solver import Criterion, NetworkSpec, SolverError, solve_network
+from solver.priced import solve_priced
+from solver.priced_result import PricedProgress
 
 __all__ = ["PROGRESS_SECONDS", "Worker", "progress_json"]
 
@@ -114,7 +110,7 @@ class _Solve(threading.Thread):
         self.reports += 1
 
     def run(self) -> None:
-        criterion = "average" if self.criterion == "average" else "discounted"
+        criterion: Criterion = "average" if self.criterion == "average" else "discounted"
         try:
             if self.method == SolveMethod.PRICED:
                 self.result = solve_priced(self.spec, criterion=criterion, progress=self._report)

@@ -362,7 +362,9 @@ class _Store:
         discount = beta if criterion == "discounted" else 1.0
         gain = 0.0
         for _ in range(200):
-            reward = np.stack([psi[d, rows, policy[d]] + self.rewards[d, policy[d]] for d in range(phases)])
+            reward = np.stack(
+                [psi[d, rows, policy[d]] + self.rewards[d, policy[d]] for d in range(phases)]
+            )
             matrix = self._matrix(policy)
             n = phases * size
             if criterion == "discounted":
@@ -732,9 +734,11 @@ def _certify(
         part = _simulate(net, policy, reference, batch, warmup + days, rng, weights)
         samples = np.concatenate([samples, part])
         n = samples.size
-        half = float(stats.t.ppf(0.5 + options.confidence / 2, n - 1)) * float(
-            samples.std(ddof=1)
-        ) / math.sqrt(n)
+        half = (
+            float(stats.t.ppf(0.5 + options.confidence / 2, n - 1))
+            * float(samples.std(ddof=1))
+            / math.sqrt(n)
+        )
         mean = base + float(samples.mean())
         report(n, upper, mean - half + tail[0])
         if options.replications is not None or half <= target or n >= options.max_replications:
@@ -984,5 +988,3 @@ def evaluate_plan_average(
         tolerance=1e-10 * scale * math.sqrt(chain.reward.size),
     )
     return gain, bias.reshape(model.n_phases, model.n_states)
-
-

@@ -282,7 +282,9 @@ class PricedPolicy:
         posts: NDArray[np.int64] = stock[None, :] + moved
         return posts
 
-    def plan_value(self, stock: Sequence[int], flows: NDArray[np.int64], *, phase: int = 0) -> NDArray[np.float64]:
+    def plan_value(
+        self, stock: Sequence[int], flows: NDArray[np.int64], *, phase: int = 0
+    ) -> NDArray[np.float64]:
         """The relaxation's value of moving `flows` (shape (K, L)) tonight from `stock` and acting
         optimally afterwards, shape (K,): discounted, sum_i W_{i,d}(y_i) - cost + beta M_{d+1},
         an upper bound on that value in the true network (solver.priced); average, on the bias
@@ -387,7 +389,9 @@ class PricedPolicy:
         return arrays, meta
 
     @classmethod
-    def from_arrays(cls, arrays: Mapping[str, NDArray[Any]], meta: Mapping[str, Any]) -> PricedPolicy:
+    def from_arrays(
+        cls, arrays: Mapping[str, NDArray[Any]], meta: Mapping[str, Any]
+    ) -> PricedPolicy:
         """Rebuild a policy from to_arrays' output (bit-exact)."""
         if meta.get("format") != "priced-policy/1":
             raise ValueError(f"unknown priced policy format {meta.get('format')!r}")
@@ -398,7 +402,9 @@ class PricedPolicy:
             parts, start = [], 0
             for c in capacities:
                 size = phases * (c + 1)
-                parts.append(np.array(flat[start : start + size], dtype=np.float64).reshape(phases, c + 1))
+                parts.append(
+                    np.array(flat[start : start + size], dtype=np.float64).reshape(phases, c + 1)
+                )
                 start += size
             if start != flat.size:
                 raise ValueError("store value arrays do not match the capacities")

@@ -98,9 +98,9 @@ class PlanNetwork:
         stores = np.arange(n, dtype=np.int64)
         tail = np.concatenate([stores, n + stores, self.lane_from, n + self.lane_to])
         head = np.concatenate([n + stores, stores, n + self.lane_to, self.lane_from])
-        cost = np.concatenate(
-            [np.zeros(2 * n), self.lane_costs, -self.lane_costs]
-        ).astype(np.float64)
+        cost = np.concatenate([np.zeros(2 * n), self.lane_costs, -self.lane_costs]).astype(
+            np.float64
+        )
         return tail, head, cost
 
 
@@ -169,7 +169,9 @@ def plan_flows(
             value = np.take_along_axis(candidate, best[:, :, None], axis=2)[:, :, 0]
             # Strict improvement (beyond rounding) only, so zero-cost cycles never update.
             finite = np.isfinite(dist)
-            threshold = np.where(finite, dist - 1e-12 * (1.0 + np.abs(np.where(finite, dist, 0))), np.inf)
+            threshold = np.where(
+                finite, dist - 1e-12 * (1.0 + np.abs(np.where(finite, dist, 0))), np.inf
+            )
             better = value < threshold
             if not better.any():
                 break
@@ -205,11 +207,7 @@ def plan_flows(
         lane_choice = np.zeros(b, dtype=np.int64)
         if fallback.any():
             sender, receiver = network.lane_from, network.lane_to
-            direct = (
-                gain[:, receiver]
-                - loss[:, sender]
-                - network.lane_costs[None, :]
-            )
+            direct = gain[:, receiver] - loss[:, sender] - network.lane_costs[None, :]
             ok = (f < lim) & (st[:, sender] > 0) & (y[:, receiver] < caps[receiver])
             direct = np.where(ok, direct, -np.inf)
             lane_choice = direct.argmax(axis=1)
@@ -247,7 +245,10 @@ def plan_flows(
 
 def _net_opposite(flows: NDArray[np.int64], network: PlanNetwork) -> NDArray[np.int64]:
     """Cancel units sent both ways between two stores."""
-    index = {(int(a), int(b)): k for k, (a, b) in enumerate(zip(network.lane_from, network.lane_to, strict=True))}
+    index = {
+        (int(a), int(b)): k
+        for k, (a, b) in enumerate(zip(network.lane_from, network.lane_to, strict=True))
+    }
     for (a, b), k in index.items():
         other = index.get((b, a))
         if other is not None and k < other:

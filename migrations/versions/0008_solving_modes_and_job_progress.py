@@ -72,10 +72,19 @@ def downgrade() -> None:
         )
         batch_op.drop_column("method")
     _live_index(["tenant_id", "spec_hash", "criterion"])
-    with op.batch_alter_table("solve_jobs", schema=None) as batch_op:
-        batch_op.drop_column("progress")
-        batch_op.drop_column("method")
-    with op.batch_alter_table("network_versions", schema=None) as batch_op:
-        batch_op.drop_column("method")
-    with op.batch_alter_table("networks", schema=None) as batch_op:
-        batch_op.drop_column("mode")
+    for table, column in (
+        ("solve_jobs", "progress"),
+        ("solve_jobs", "method"),
+        ("network_versions", "method"),
+        ("networks", "mode"),
+    ):
+        _drop_column(table, column)
+
+
+def _drop_column(table: str, column: str) -> None:
+    """SQLite drops it in place (3.35 and later): a batch rebuild of a table that others
+    reference would fail their foreign keys, which are enforced."""
+    if op.get_bind().dialect.name == "sqlite":
+        op.execute(sa.text(f"ALTER TABLE {table} DROP COLUMN {column}"))
+    else:
+        op.drop_column(table, column)

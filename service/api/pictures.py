@@ -33,7 +33,7 @@ from service.policies import PolicyCache, ServedPolicy, load_policy
 from service.problems import PROBLEM_RESPONSES, InvalidInput
 from service.schemas import CriterionName
 from service.schemas import WeekdayName as Weekday
-from solver import PricedPolicy
+from solver.priced_result import PricedPolicy
 from solver.spec import WEEKDAYS
 
 router = APIRouter(tags=["pictures"], responses=PROBLEM_RESPONSES)

@@ -25,7 +25,7 @@ from service.policies import ServedPolicy, load_policy
 from service.priced import FULL_TABLE_MAX_STATES, all_stocks
 from service.problems import PROBLEM_RESPONSES, InvalidInput
 from service.schemas import CriterionName
-from solver import PricedPolicy
+from solver.priced_result import PricedPolicy
 from solver.spec import WEEKDAYS
 
 router = APIRouter(tags=["policies"], responses=PROBLEM_RESPONSES)

@@ -19,7 +19,8 @@ from service.schemas import (
     SolveState,
     TransferOut,
 )
-from solver import PricedPolicy, Recommendation
+from solver import Recommendation
+from solver.priced_result import PricedPolicy
 from solver.spec import WEEKDAYS
 
 __all__ = ["certificate_out", "network_out", "recommendation_out", "transfers_of"]

@@ -51,7 +51,8 @@ from service.db.tables import (
     SolveJob,
     Tenant,
 )
-from solver import NetworkSpec, PolicyResult, PricedPolicy
+from solver import NetworkSpec, PolicyResult
+from solver.priced_result import PricedPolicy
 
 __all__ = [
     "LocationHistory",

@@ -30,7 +30,8 @@ from service.db import repository
 from service.db.tables import Network, NetworkVersion, Policy, SolveJob
 from service.pictures import choose_plane, net_inflow_grid, value_grid
 from service.priced import all_stocks
-from solver import NetworkSpec, PolicyResult, PricedPolicy, build_transfer_model, solve_network
+from solver import NetworkSpec, PolicyResult, build_transfer_model, solve_network
+from solver.priced_result import PricedPolicy
 from solver.simulation import do_nothing_policy, simulate_policies
 from tests.service.api_support import (
     assert_problem,
@@ -89,7 +90,8 @@ def test_mode_round_trips_is_kept_on_put_and_a_change_queues_the_new_method(
     assert [(job["criterion"], job["method"]) for job in created["jobs"]] == [
         ("discounted", "priced")
     ]
-    assert created["spec_hash"] == plain["spec_hash"]  # the mode is not part of the hash
+    # The mode is not part of the specification's hash.
+    assert created["spec_hash"] == repository.canonical_spec(DEMO_SPEC)[1]
     path = f"/v1/networks/{created['id']}"
 
     kept = client.put(path, json=demo_document(discount=0.9), headers={"If-Match": '"1"'})
@@ -175,6 +177,7 @@ def test_worker_solves_a_priced_network_and_recommendations_carry_its_certificat
     assert exact["residual"] is not None
 
 
+@sqlite_only
 def test_batch_answers_priced_and_exact_networks_side_by_side(
     client: TestClient, engine: Engine
 ) -> None:
@@ -203,6 +206,7 @@ def test_a_mode_change_serves_the_old_method_marked_stale_until_solved(
     assert (after["method"], after["stale"], after["version"]) == ("priced", False, 2)
 
 
+@sqlite_only
 def test_priced_policy_round_trips_bit_exactly_through_the_codec(engine: Engine) -> None:
     with open_client(engine) as client:
         priced_network(client, engine)
@@ -312,6 +316,7 @@ def test_progress_of_running_solves_is_on_the_metrics_and_the_status_page(
 # -- closing, simulations, export, pictures ----------------------------------------------------
 
 
+@sqlite_only
 def test_closing_instructions_of_a_priced_network_follow_its_plan(
     client: TestClient, engine: Engine
 ) -> None:
@@ -338,6 +343,7 @@ def test_closing_instructions_of_a_priced_network_follow_its_plan(
         }
 
 
+@sqlite_only
 def test_a_simulation_of_a_priced_network_runs_its_plan_beside_moving_nothing(
     client: TestClient, engine: Engine
 ) -> None:
@@ -367,6 +373,7 @@ def test_a_simulation_of_a_priced_network_runs_its_plan_beside_moving_nothing(
     assert nothing["difference_to_optimal"] is not None
 
 
+@sqlite_only
 def test_export_of_a_priced_network_gives_prices_values_and_the_table_where_it_fits(
     client: TestClient, engine: Engine, monkeypatch: pytest.MonkeyPatch
 ) -> None:
@@ -390,6 +397,7 @@ def test_export_of_a_priced_network_gives_prices_values_and_the_table_where_it_f
     assert_problem(refused, 422, "invalid-input")
 
 
+@sqlite_only
 def test_pictures_of_a_priced_network_slice_its_plan_and_bound(
     client: TestClient, engine: Engine
 ) -> None:
