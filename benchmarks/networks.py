@@ -40,7 +40,11 @@ def large_network(
         demand: dict[str, Any] = (
             {"dist": "poisson", "mean": round(mean, 3)}
             if i % 2 == 0
-            else {"dist": "negative_binomial", "mean": round(mean, 3), "variance": round(2 * mean, 3)}
+            else {
+                "dist": "negative_binomial",
+                "mean": round(mean, 3),
+                "variance": round(2 * mean, 3),
+            }
         )
         locations.append(
             {

@@ -59,16 +59,18 @@ the reported bounds never increase.
 
 Plan and certificate. Tonight's moves maximise sum_i W_{i,d}(y_i) - c.f (solver.transfer_plan,
 on the concave envelopes of W). The certificate simulates that plan from a reference stock (per
-store, the median of its phase-0 stock in the long run under its priced policy) with common random numbers beside moving
-nothing, whose exact value is the sum of one-store values: the estimate is the exact do-nothing
-value plus the mean paired difference (a control variate with coefficient 1). Discounted: each
-replication sums T days; V^pi = E[sum_{t < T}] + beta^T E[V^pi(s_T)], and V^pi lies between
-r_min / (1 - beta) and r_max / (1 - beta) (r the expected one-day profit of any stock and move),
-so the interval is the Student t interval of the T-day sums widened by beta^T r_min / (1 - beta)
-below and beta^T r_max / (1 - beta) above; T makes that widening at most a tenth of the target
-half-width. Average: each replication's mean profit per day over `days` days after `warmup`
-days (statistical only: the warm-up bias is not bounded). certified_gap = (upper bound at the
-reference stock - low end of the interval) / |upper bound|.
+store, the median of its phase-0 stock in the long run under its own priced policy) with common
+random numbers beside moving nothing, whose exact value is the sum of one-store values: the
+estimate is the exact do-nothing value plus the mean paired difference (a control variate with
+coefficient 1). Discounted: each replication sums T days; V^pi = E[sum_{t < T}] + beta^T
+E[V^pi(s_T)], and V^pi lies between r_min / (1 - beta) and r_max / (1 - beta) (r the expected
+one-day profit of any stock and move), so the interval is the Student t interval of the T-day
+sums widened by beta^T r_min / (1 - beta) below and beta^T r_max / (1 - beta) above; T makes
+that widening at most a tenth of the target half-width. Average: each replication's mean profit
+per day over `days` days after `warmup` days (statistical only: the warm-up bias is not
+bounded). certified_gap = (upper bound at the reference stock - low end of the interval) /
+|upper bound|, where the upper bound is the smaller of the bound from the averaged prices and
+the bound from prices minimised at the reference stock itself (both valid).
 """
 
 from __future__ import annotations
@@ -102,11 +104,9 @@ __all__ = [
 
 # Policy improvement switches only for a gain beyond this fraction of the store's value scale.
 _TIE_RTOL = 1e-10
-# Certificate: first batch of replications, horizon cap, average-criterion run length.
+# Certificate: first batch of replications, and the longest discounted horizon (days).
 _FIRST_REPLICATIONS = 128
 _MAX_HORIZON = 20_000
-_AVERAGE_WARMUP = 300
-_AVERAGE_DAYS = 3_000
 # Cutting planes kept in the model at most (oldest inactive ones are dropped first).
 _MAX_CUTS = 400
 # Rows planned at once by evaluate_plan_exactly.
@@ -650,6 +650,17 @@ def _reward_range(net: _Network) -> tuple[float, float]:
     return low - max(costs), high
 
 
+def _incidence(
+    lane_from: NDArray[np.int64], lane_to: NDArray[np.int64], n_stores: int
+) -> NDArray[np.int64]:
+    """(L, N): +1 at each lane's receiver, -1 at its sender; flows @ it is the stock change."""
+    incidence = np.zeros((lane_from.size, n_stores), dtype=np.int64)
+    lanes = np.arange(lane_from.size)
+    incidence[lanes, lane_from] -= 1
+    incidence[lanes, lane_to] += 1
+    return incidence
+
+
 def _simulate(
     net: _Network,
     policy: PricedPolicy,
@@ -667,6 +678,7 @@ def _simulate(
     holding = np.array([loc.holding_cost for loc in spec.locations])
     penalty = np.array([loc.stockout_penalty for loc in spec.locations])
     caps = net.capacities
+    incidence = _incidence(net.lane_from, net.lane_to, net.n_stores)
     plan_stock = np.broadcast_to(stock, (replications, caps.size)).copy()
     idle_stock = plan_stock.copy()
     total = np.zeros(replications)
@@ -679,10 +691,7 @@ def _simulate(
             t = done + k
             d = t % net.phases
             flows = policy.plan_batch(plan_stock, phase=d)
-            moved = np.zeros_like(plan_stock)
-            np.add.at(moved, (slice(None), net.lane_from), -flows)
-            np.add.at(moved, (slice(None), net.lane_to), flows)
-            post = plan_stock + moved
+            post = plan_stock + flows @ incidence
             profits = []
             for posts in (post, idle_stock):
                 sold = np.minimum(posts, demand[k])
@@ -718,13 +727,13 @@ def _certify(
         spread = max(high_r - low_r, 1e-12) / (1.0 - beta)
         wanted = 0.1 * target / spread
         days = int(min(_MAX_HORIZON, max(1, math.ceil(math.log(wanted) / math.log(beta)))))
-        weights = beta ** np.arange(days)
+        weights = np.power(beta, np.arange(days, dtype=np.float64))
         base = _truncated_do_nothing(net, reference, days)
         tail = (beta**days * low_r / (1.0 - beta), beta**days * high_r / (1.0 - beta))
         warmup = 0
     else:
-        days = _AVERAGE_DAYS
-        warmup = _AVERAGE_WARMUP
+        days = options.average_days
+        warmup = options.average_warmup
         weights = np.concatenate([np.zeros(warmup), np.full(days, 1.0 / days)])
         base = _do_nothing_gain(net, laws)
         tail = (0.0, 0.0)
@@ -928,16 +937,14 @@ def _evaluation_model(spec: NetworkSpec, limits: SizeLimits | None) -> TransferM
 
 def _plan_chain(model: TransferModel, policy: PricedPolicy) -> PolicyChain:
     states = np.indices(model.shape).reshape(model.n_locations, -1).T.astype(np.int64)
+    incidence = _incidence(model.lane_from, model.lane_to, model.n_locations)
     post = np.empty((model.n_phases, model.n_states), dtype=np.int64)
     reward = np.empty((model.n_phases, model.n_states))
     for d in range(model.n_phases):
         for start in range(0, model.n_states, _PLAN_CHUNK):
             chunk = states[start : start + _PLAN_CHUNK]
             flows = policy.plan_batch(chunk, phase=d)
-            moved = np.zeros_like(chunk)
-            np.add.at(moved, (slice(None), model.lane_from), -flows)
-            np.add.at(moved, (slice(None), model.lane_to), flows)
-            index = (chunk + moved) @ model.strides
+            index = (chunk + flows @ incidence) @ model.strides
             post[d, start : start + chunk.shape[0]] = index
             reward[d, start : start + chunk.shape[0]] = (
                 model.reward[d].reshape(-1)[index] - flows @ model.lane_costs

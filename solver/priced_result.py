@@ -44,6 +44,8 @@ class PricedOptions:
     target_half_width: relative half-width aimed at by the adaptive replications; the
         discounted horizon is chosen so that the truncation term is at most a tenth of it.
     confidence: level of the policy value's interval.
+    average_days, average_warmup: average criterion, days measured per replication after the
+        warm-up days.
     """
 
     max_iterations: int = 400
@@ -54,6 +56,8 @@ class PricedOptions:
     time_limit: float | None = None
     target_half_width: float = 0.002
     confidence: float = 0.95
+    average_days: int = 3_000
+    average_warmup: int = 300
 
     def __post_init__(self) -> None:
         if self.max_iterations < 1:
@@ -66,6 +70,8 @@ class PricedOptions:
             raise ValueError(f"max_replications must be at least 2, got {self.max_replications}")
         if self.time_limit is not None and not self.time_limit > 0:
             raise ValueError(f"time_limit must be positive, got {self.time_limit}")
+        if self.average_days < 1 or self.average_warmup < 0:
+            raise ValueError("average_days must be at least 1 and average_warmup at least 0")
         if not 0.0 < self.confidence < 1.0:
             raise ValueError(f"confidence must lie in (0, 1), got {self.confidence}")
 
@@ -168,7 +174,7 @@ class PricedPolicy:
             raise ValueError(f"weekday must be 0 (Monday) to 6 (Sunday), got {weekday}")
         return weekday % self.phases
 
-    def _check_stock(self, stock: Sequence[int]) -> NDArray[np.int64]:
+    def _check_stock(self, stock: Sequence[int] | NDArray[np.int64]) -> NDArray[np.int64]:
         if len(stock) != len(self.capacities):
             raise InvalidStockError(
                 f"expected stock for {len(self.capacities)} locations, got {len(stock)}"
@@ -283,7 +289,7 @@ class PricedPolicy:
         return posts
 
     def plan_value(
-        self, stock: Sequence[int], flows: NDArray[np.int64], *, phase: int = 0
+        self, stock: Sequence[int] | NDArray[np.int64], flows: NDArray[np.int64], *, phase: int = 0
     ) -> NDArray[np.float64]:
         """The relaxation's value of moving `flows` (shape (K, L)) tonight from `stock` and acting
         optimally afterwards, shape (K,): discounted, sum_i W_{i,d}(y_i) - cost + beta M_{d+1},

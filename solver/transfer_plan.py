@@ -15,11 +15,12 @@ l = i -> j (capacity u_l, cost c_l); Y_i -> T carries y_i <= C_i with convex cos
 unit segment at a time. A plan is a circulation; out_i <= s_i holds because a store only sends
 units that reach O_i, i.e. its own closing stock (a unit received tonight is not sent on).
 
-Algorithm: start from moving nothing (every unit stays) and repeatedly push one unit around the
+Algorithm: start from moving nothing (every unit stays) and repeatedly push units around the
 most profitable cycle through T in the residual network: T -> Y_i (one unit less at i, losing
 W_i(y_i) - W_i(y_i - 1)), a shortest path to some Y_j over residual stay, lane and reversed arcs
-(Bellman-Ford from T), and Y_j -> T (one unit more at j, gaining W_j(y_j + 1) - W_j(y_j)); stop
-when no cycle gains more than a tolerance. Invariant: the residual arcs not entering T have
+(Bellman-Ford from T), and Y_j -> T (one unit more at j, gaining W_j(y_j + 1) - W_j(y_j)), as
+many units as stay profitable and fit the path's residual capacities; stop when no cycle gains
+more than a tolerance. Invariant: the residual arcs not entering T have
 non-negative reduced cost under the Bellman-Ford distances (true at the start, where the only
 residual arcs are stays and lanes with c_l >= 0, and kept by augmenting along shortest paths,
 as in successive shortest paths; concavity of W keeps T's arcs in order). Every negative cycle
@@ -183,24 +184,53 @@ def plan_flows(
         take = profit > tolerance
         # Walk each path back to T: lane count, then apply (only rows that take it).
         node = n + j
+        r = rows[:, 0]
         delta_lanes = np.zeros(b, dtype=np.int64)
+        room = np.full(b, np.iinfo(np.int64).max // 4, dtype=np.int64)
         path: list[NDArray[np.int64]] = []
         for _ in range(n_nodes + 1):
-            arc = pred[rows[:, 0], node]
+            arc = pred[r, node]
             live = arc != _NONE
             if not live.any():
                 break
             safe = np.where(live, arc, 0)
+            kind_unstay = live & (safe >= n) & (safe < 2 * n)
             kind_lane = live & (safe >= 2 * n) & (safe < 2 * n + n_lanes)
             kind_back = live & (safe >= 2 * n + n_lanes)
             delta_lanes += kind_lane.astype(np.int64) - kind_back.astype(np.int64)
+            lane = np.clip(safe - 2 * n, 0, n_lanes - 1)
+            back = np.clip(safe - 2 * n - n_lanes, 0, n_lanes - 1)
+            residual = np.where(kind_unstay, st[r, np.clip(safe - n, 0, n - 1)], room)
+            residual = np.where(kind_lane, lim[r, lane] - f[r, lane], residual)
+            residual = np.where(kind_back, f[r, back], residual)
+            room = np.minimum(room, residual)
             path.append(np.where(live, arc, _NONE))
             node = np.where(live, tail[safe], node)
-        start = node - n  # the store that gives up a unit (T -> Y_start)
+        start = node - n  # the store that gives up units (T -> Y_start)
         # A path that does not lead back to T (only on rounding-level cycles) is not taken.
-        take &= (node >= n) & (pred[rows[:, 0], node] == _NONE)
-        fits = used[active] + delta_lanes <= budget
+        take &= (node >= n) & (pred[r, node] == _NONE) & (start != j)
+        start = np.clip(start, 0, n - 1)
+        # Units pushed around the same cycle: the internal path keeps its cost and every
+        # internal residual arc keeps a non-negative reduced cost (so the invariant holds for
+        # any amount); the k-th unit gains W_j(y_j + k) - W_j(y_j + k - 1) and loses
+        # W_i(y_i - k + 1) - W_i(y_i - k), which fall with k by concavity.
+        k = np.arange(1, width_c + 1)[None, :]
+        y_start, y_end = y[r, start], y[r, j]
+        internal = dist[r, n + j] - up[start, np.maximum(y_start - 1, 0)]
+        lose = np.where(
+            k <= y_start[:, None], up[start[:, None], np.maximum(y_start[:, None] - k, 0)], np.inf
+        )
+        win = up[j[:, None], np.minimum(y_end[:, None] + k - 1, width_c)]
+        worth = (win - lose - internal[:, None] > tolerance) & (k <= room[:, None])
+        units = worth.sum(axis=1)
+        if network_limit is not None:
+            spare = budget - used[active]
+            units = np.where(
+                delta_lanes > 0, np.minimum(units, spare // np.maximum(delta_lanes, 1)), units
+            )
+        fits = units >= 1
         full_take = take & fits
+        units = np.where(full_take, units, 0)
         # Rows whose best cycle does not fit: the best single-lane move that fits, if any.
         fallback = take & ~fits & (used[active] < budget)
         lane_take = np.zeros(b, dtype=np.bool_)
@@ -223,13 +253,14 @@ def plan_flows(
             unstay_arc = (a >= n) & (a < 2 * n)
             lane_arc = (a >= 2 * n) & (a < 2 * n + n_lanes)
             back_arc = a >= 2 * n + n_lanes
-            np.add.at(st, (idx[stay_arc], a[stay_arc]), 1)
-            np.add.at(st, (idx[unstay_arc], a[unstay_arc] - n), -1)
-            np.add.at(f, (idx[lane_arc], a[lane_arc] - 2 * n), 1)
-            np.add.at(f, (idx[back_arc], a[back_arc] - 2 * n - n_lanes), -1)
+            u = units[idx]
+            np.add.at(st, (idx[stay_arc], a[stay_arc]), u[stay_arc])
+            np.add.at(st, (idx[unstay_arc], a[unstay_arc] - n), -u[unstay_arc])
+            np.add.at(f, (idx[lane_arc], a[lane_arc] - 2 * n), u[lane_arc])
+            np.add.at(f, (idx[back_arc], a[back_arc] - 2 * n - n_lanes), -u[back_arc])
         idx = np.flatnonzero(full_take)
-        np.add.at(y, (idx, start[idx]), -1)
-        np.add.at(y, (idx, j[idx]), 1)
+        np.add.at(y, (idx, start[idx]), -units[idx])
+        np.add.at(y, (idx, j[idx]), units[idx])
         # Apply single-lane fallbacks.
         idx = np.flatnonzero(lane_take)
         lanes = lane_choice[idx]
@@ -238,7 +269,7 @@ def plan_flows(
         np.add.at(y, (idx, network.lane_from[lanes]), -1)
         np.add.at(y, (idx, network.lane_to[lanes]), 1)
         post[active], stay[active], flows[active] = y, st, f
-        used[active] += np.where(full_take, delta_lanes, 0) + lane_take.astype(np.int64)
+        used[active] += units * delta_lanes + lane_take.astype(np.int64)
         active = active[full_take | lane_take]
     return _net_opposite(flows, network)
 
