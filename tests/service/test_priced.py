@@ -501,3 +501,28 @@ def test_networks_import_takes_a_mode(
         rows = session.execute(select(NetworkVersion.number, NetworkVersion.method)).all()
         modes = session.scalars(select(Network.mode)).all()
     assert sorted(rows) == [(1, "priced"), (2, "priced")] and modes == ["priced"]
+
+
+@sqlite_only
+def test_a_what_if_comparison_of_a_priced_network_is_queued_and_solved_by_prices(
+    client: TestClient, engine: Engine, exact_demo: PolicyResult
+) -> None:
+    network_id = priced_network(client, engine)
+    overrides = {"lanes": [{"from": "riverside", "to": "hilltop", "unit_cost": 1000.0}]}
+    response = client.post(f"/v1/networks/{network_id}/what-if", json={"overrides": overrides})
+    assert response.status_code == 202, response.text  # priced comparisons go to a worker
+    assert run_worker(engine) == 1
+    done = client.get(response.headers["Location"]).json()
+    assert done["state"] == "done", done["error"]
+    base, changed = done["result"]["base"], done["result"]["changed"]
+    assert (base["method"], changed["method"]) == ("priced", "priced")
+    assert base["residual"] is None and base["mean_value"] is None
+    reference = list(base["reference_stock"].values())
+    # Each bound lies above its network's optimal value at the reference stock.
+    optimal = float(exact_demo.values[0, exact_demo.state_index(reference)])
+    assert base["upper_bound_at_reference"] >= optimal - 1e-9 * scale(exact_demo)
+    assert done["result"]["change"]["upper_bound_at_reference"] == pytest.approx(
+        changed["upper_bound_at_reference"] - base["upper_bound_at_reference"]
+    )
+    moves = done["result"]["moves"]
+    assert moves["comparable"] is True and moves["states_changed"] >= 0
