@@ -93,7 +93,8 @@ def priced_result_document(spec: NetworkSpec, policy: PricedPolicy) -> dict[str,
     `upper_bound` the bound at every state, and `value` the plan's exact value (within the
     exact size limits; else null); with more, all three are null. `residual` is always null (no
     Bellman residual: the certificate says how good the policy is). A weekly network's lists
-    have one entry per weekday (`weekdays`)."""
+    have one entry per weekday (`weekdays`). Under the average criterion `gain` and every
+    `upper_bound` are the bound on the optimal profit per day, and `value` the plan's bias."""
     periodic = policy.phases > 1
     small = policy.n_states <= FULL_TABLE_MAX_STATES
     plans: Any = None
@@ -157,7 +158,7 @@ def priced_summary(spec: NetworkSpec, policy: PricedPolicy) -> str:
         f"seconds     {policy.seconds['total']:.3f}",
     ]
     if policy.gain is not None:
-        lines.append(f"profit/day  {policy.gain:.4f}")
+        lines.append(f"profit/day  at most {policy.gain:.4f} (the bound)")
     return "\n".join(lines) + "\n"
 
 
