@@ -305,7 +305,8 @@ class RecommendationOut(BaseModel):
     value_without_transfers: float
     gain_from_transfers: float
     profit_per_day: float | None = Field(
-        description="Long-run profit per day of the policy (average criterion only)."
+        description="Long-run profit per day of the policy (average criterion only; for a "
+        "priced policy, the upper bound on the optimal profit per day)."
     )
     business_date: date | None = Field(
         default=None,

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from datetime import date
+from typing import Any
 
 from sqlalchemy.orm import Session
 
@@ -93,11 +94,16 @@ def recommendation_out(
 ) -> RecommendationOut:
     result = served.result
     ids = result.location_ids
-    priced = isinstance(result, PricedPolicy)
-    upper_bound = None
+    priced: dict[str, Any] = {}
     if isinstance(result, PricedPolicy):
         phase = 0 if business_date is None else result.phase_of(business_date.weekday())
-        upper_bound = result.upper_bound(recommendation.stock, phase=phase)
+        priced = {
+            "method": "priced",
+            "residual": None,
+            "upper_bound": result.upper_bound(recommendation.stock, phase=phase),
+            "certificate": certificate_out(result),
+        }
+    fields: dict[str, Any] = {"residual": getattr(result, "residual", None), **priced}
     return RecommendationOut(
         network_id=network_id,
         criterion=criterion,
@@ -105,7 +111,6 @@ def recommendation_out(
         stale=served.stale,
         solved_at=served.solved_at,
         parameters_calibrated_at=served.calibrated_at,
-        residual=None if isinstance(result, PricedPolicy) else result.residual,
         stock=dict(zip(ids, recommendation.stock, strict=True)),
         transfers=transfers_of(result, recommendation.flows),
         stock_after_transfers=dict(zip(ids, recommendation.post_move_stock, strict=True)),
@@ -116,9 +121,7 @@ def recommendation_out(
         profit_per_day=result.gain,
         business_date=business_date,
         night=None if business_date is None else WEEKDAYS[business_date.weekday()],
-        method="priced" if priced else "exact",
-        upper_bound=upper_bound,
-        certificate=certificate_out(result) if isinstance(result, PricedPolicy) else None,
+        **fields,
     )
 
 
