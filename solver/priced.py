@@ -21,7 +21,8 @@ s_i in 0..C_i and phases d; tonight it sends a <= s_i units and takes b, y = s_i
            (greedy over the out-lanes by that margin: concave piecewise linear),
     h(b) = min { sum_{l into i} lambda_{d,l} take_l : sum take = b }  (greedy: convex),
 
-and next stock from K_{i,d}[y, .] (solver.build). Local restrictions of one store's moves (a
+and next stock from K_{i,d}[y, .] (solver.build), with a and b at most U_d (no feasible
+network flow sends or takes more at one store). Local restrictions of one store's moves (a
 minimum to keep, a most to send or take) would only narrow the (a, b) range of psi.
 
 Theorem (the bound). For any prices, with V_{i,d} the optimal discounted value of store i's
@@ -288,6 +289,10 @@ class _Store:
         self.in_lanes = np.flatnonzero(net.lane_to == i)
         self.costs = net.lane_costs
         self.limits = net.lane_limits
+        # Most units one store can send or take in a night: its capacity, its lanes' limits and
+        # the network limit (valid for every feasible network flow, so the bound stays valid).
+        self.most = np.where(net.network_limit < 0, self.capacity, net.network_limit)
+        self.most = np.minimum(self.most, self.capacity)
         self.phases = net.phases
         # Initial law of the occupation measure over (d, s), phase-major, summing to 1.
         self.start = law.reshape(-1) / net.phases
@@ -315,8 +320,8 @@ class _Store:
             orders.append((send_order, take_order))
             send_caps = self.limits[d, send_order]
             take_caps = self.limits[d, take_order]
-            top_a = int(min(c, send_caps.sum()))
-            top_b = int(min(c, take_caps.sum()))
+            top_a = int(min(self.most[d], send_caps.sum()))
+            top_b = int(min(self.most[d], take_caps.sum()))
             g = np.concatenate(
                 [[0.0], np.cumsum(np.repeat(np.sort(margin)[::-1], send_caps))[:top_a]]
             )

@@ -9,7 +9,6 @@ simulation and `evaluate_plan_exactly` use, so the policy served is the policy m
 
 from __future__ import annotations
 
-import json
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from functools import cached_property
@@ -391,7 +390,6 @@ class PricedPolicy:
             "converged": self.converged,
             "seconds": dict(self.seconds),
         }
-        json.dumps(meta)  # fails here, not in the caller's codec, if something is not JSON-able
         return arrays, meta
 
     @classmethod

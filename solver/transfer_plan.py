@@ -126,15 +126,18 @@ def plan_flows(
     batch = stocks.shape[0]
     caps = network.capacities
     limits = np.broadcast_to(np.asarray(lane_limits, dtype=np.int64), (batch, n_lanes))
-    tail, head, cost = network.arcs()
-    n_arcs = tail.size
+    tail, _, _ = network.arcs()
     n_nodes = 2 * n
-    # Incoming arcs per node, padded with a dummy arc (index n_arcs) that is never available.
-    incoming = [np.flatnonzero(head == v) for v in range(n_nodes)]
-    width = max(1, max(len(a) for a in incoming))
-    inc = np.full((n_nodes, width), n_arcs, dtype=np.int64)
-    for v, arcs in enumerate(incoming):
-        inc[v, : arcs.size] = arcs
+    # Arc ids by (sender a, receiver j): into Y_j from O_a (stay when a == j, else lane a -> j)
+    # and into O_a from Y_j (un-stay when a == j, else the reversed lane a -> j); -1: none.
+    lane_id = np.full((n, n), -1, dtype=np.int64)
+    lane_id[network.lane_from, network.lane_to] = np.arange(n_lanes)
+    has_lane = lane_id >= 0
+    into_y = np.where(has_lane, 2 * n + lane_id, _NONE)
+    into_o = np.where(has_lane, 2 * n + n_lanes + lane_id, _NONE)
+    diagonal = np.arange(n)
+    into_y[diagonal, diagonal] = diagonal
+    into_o[diagonal, diagonal] = n + diagonal
     width_c = values.shape[1]
     # Marginal values: up[i, y] = W_i(y + 1) - W_i(y) for y < C_i.
     up = np.full((n, width_c + 1), -np.inf)
@@ -155,29 +158,47 @@ def plan_flows(
         rows = np.arange(b)[:, None]
         gain = up[store_rows[None, :], y]  # (b, N): value of one more unit, -inf when full
         loss = np.where(y > 0, up[store_rows[None, :], np.maximum(y - 1, 0)], np.inf)
-        available = np.concatenate(
-            [np.ones((b, n), dtype=np.bool_), st > 0, f < lim, f > 0], axis=1
+        # Residual arc costs as (b, sender, receiver) matrices, inf where unavailable.
+        forward = np.full((b, n, n), np.inf)
+        forward[:, network.lane_from, network.lane_to] = np.where(
+            f < lim, network.lane_costs[None, :], np.inf
         )
-        arc_cost = np.where(available, cost[None, :], np.inf)
-        arc_cost = np.concatenate([arc_cost, np.full((b, 1), np.inf)], axis=1)
-        dist = np.full((b, n_nodes), np.inf)
-        dist[:, n:] = loss
-        pred = np.full((b, n_nodes), _NONE, dtype=np.int64)
+        forward[:, diagonal, diagonal] = 0.0
+        backward = np.full((b, n, n), np.inf)
+        backward[:, network.lane_from, network.lane_to] = np.where(
+            f > 0, -network.lane_costs[None, :], np.inf
+        )
+        backward[:, diagonal, diagonal] = np.where(st > 0, 0.0, np.inf)
+        dist_y = loss.copy()
+        dist_o = np.full((b, n), np.inf)
+        pred_y = np.full((b, n), _NONE, dtype=np.int64)
+        pred_o = np.full((b, n), _NONE, dtype=np.int64)
+        live = np.arange(b)
+        # Bellman-Ford in alternating half-steps (O from Y, then Y from O; the residual network
+        # is bipartite between the two), only on rows whose distances still change.
         for _ in range(n_nodes):
-            through = np.concatenate([dist[:, tail], np.full((b, 1), np.inf)], axis=1)
-            candidate = (through + arc_cost)[:, inc]  # (b, nodes, width)
+            changed = np.zeros(live.size, dtype=np.bool_)
+            candidate = dist_y[live][:, None, :] + backward[live]  # (l, a, j)
             best = candidate.argmin(axis=2)
             value = np.take_along_axis(candidate, best[:, :, None], axis=2)[:, :, 0]
-            # Strict improvement (beyond rounding) only, so zero-cost cycles never update.
-            finite = np.isfinite(dist)
-            threshold = np.where(
-                finite, dist - 1e-12 * (1.0 + np.abs(np.where(finite, dist, 0))), np.inf
-            )
-            better = value < threshold
-            if not better.any():
+            better = value < _threshold(dist_o[live])
+            if better.any():
+                changed |= better.any(axis=1)
+                dist_o[live] = np.where(better, value, dist_o[live])
+                pred_o[live] = np.where(better, into_o[diagonal[None, :], best], pred_o[live])
+            candidate = dist_o[live][:, :, None] + forward[live]  # (l, a, j)
+            best = candidate.argmin(axis=1)
+            value = np.take_along_axis(candidate, best[:, None, :], axis=1)[:, 0, :]
+            better = value < _threshold(dist_y[live])
+            if better.any():
+                changed |= better.any(axis=1)
+                dist_y[live] = np.where(better, value, dist_y[live])
+                pred_y[live] = np.where(better, into_y[best, diagonal[None, :]], pred_y[live])
+            live = live[changed]
+            if not live.size:
                 break
-            dist = np.where(better, value, dist)
-            pred = np.where(better, inc[np.arange(n_nodes)[None, :], best], pred)
+        dist = np.concatenate([dist_o, dist_y], axis=1)
+        pred = np.concatenate([pred_o, pred_y], axis=1)
         cycle = dist[:, n:] - gain  # (b, N): cost of the best cycle ending at Y_j
         j = cycle.argmin(axis=1)
         profit = -cycle[rows[:, 0], j]
@@ -272,6 +293,15 @@ def plan_flows(
         used[active] += units * delta_lanes + lane_take.astype(np.int64)
         active = active[full_take | lane_take]
     return _net_opposite(flows, network)
+
+
+def _threshold(dist: NDArray[np.float64]) -> NDArray[np.float64]:
+    """Distances a candidate must beat: strictly, beyond rounding, so that zero-cost cycles
+    never update anything."""
+    finite = np.isfinite(dist)
+    margin = 1e-12 * (1.0 + np.abs(np.where(finite, dist, 0.0)))
+    result: NDArray[np.float64] = np.where(finite, dist - margin, np.inf)
+    return result
 
 
 def _net_opposite(flows: NDArray[np.int64], network: PlanNetwork) -> NDArray[np.int64]:
