@@ -43,6 +43,7 @@ from tests.service.api_support import (
     sqlite_only,
     stock_of,
 )
+from tests.service.test_api_calibration import simulated_rows, upload
 from tests.service.test_metrics import scrape, value
 from tests.service.test_repository import demo
 from tests.service.test_status_page import basic
@@ -526,3 +527,16 @@ def test_a_what_if_comparison_of_a_priced_network_is_queued_and_solved_by_prices
     )
     moves = done["result"]["moves"]
     assert moves["comparable"] is True and moves["states_changed"] >= 0
+
+
+def test_calibration_applied_to_a_priced_network_keeps_its_method(client: TestClient) -> None:
+    network = create_network(client, demo_document(mode="priced"))
+    rows = simulated_rows(5, 60, {"riverside": 4.0, "hilltop": 1.0}, {"riverside": 5, "hilltop": 3})
+    upload(client, network["id"], rows)
+    applied = client.post(
+        f"/v1/networks/{network['id']}/calibration/apply", headers={"If-Match": '"1"'}
+    )
+    assert applied.status_code == 201, applied.text
+    body = applied.json()
+    assert (body["version"], body["mode"], body["method"]) == (2, "priced", "priced")
+    assert [job["method"] for job in body["jobs"]] == ["priced"]
