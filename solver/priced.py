@@ -76,6 +76,7 @@ the bound from prices minimised at the reference stock itself (both valid).
 
 from __future__ import annotations
 
+import functools
 import math
 import time
 from collections.abc import Callable
@@ -674,9 +675,11 @@ def _simulate(
     days: int,
     rng: np.random.Generator,
     weights: NDArray[np.float64],
+    tick: Callable[[], None] = lambda: None,
 ) -> NDArray[np.float64]:
     """Per replication, sum_t weights[t] (profit of the plan - profit of moving nothing) on
-    common random numbers, shape (replications,)."""
+    common random numbers, shape (replications,). `tick` is called after every block of
+    days (for progress reports)."""
     spec = net.spec
     laws = daily_laws(spec)
     margin = np.array([loc.unit_margin for loc in spec.locations])
@@ -708,6 +711,7 @@ def _simulate(
             )
             total += weights[t] * (profits[0] - flows @ net.lane_costs - profits[1])
         done += count
+        tick()
     return total
 
 
@@ -744,8 +748,19 @@ def _certify(
         tail = (0.0, 0.0)
     samples = np.zeros(0)
     batch = options.replications or _FIRST_REPLICATIONS
+    low: float | None = None
     while True:
-        part = _simulate(net, policy, reference, batch, warmup + days, rng, weights)
+        done = samples.size
+        part = _simulate(
+            net,
+            policy,
+            reference,
+            batch,
+            warmup + days,
+            rng,
+            weights,
+            functools.partial(report, done, upper, low),
+        )
         samples = np.concatenate([samples, part])
         n = samples.size
         half = (
@@ -754,7 +769,8 @@ def _certify(
             / math.sqrt(n)
         )
         mean = base + float(samples.mean())
-        report(n, upper, mean - half + tail[0])
+        low = mean - half + tail[0]
+        report(n, upper, low)
         if options.replications is not None or half <= target or n >= options.max_replications:
             break
         batch = min(n, options.max_replications - n)

@@ -77,10 +77,13 @@ class PricedOptions:
 
 @dataclass(frozen=True)
 class PricedProgress:
-    """One progress report: stage "pricing" (after each pricing iteration) or "certifying"
-    (after each batch of replications). upper_bound: best bound so far at the pricing
-    objective (see solver.priced); lower_bound: low end of the policy value's interval once
-    known. elapsed: seconds since the solve started."""
+    """One progress report: stage "pricing" (after each pricing iteration; iteration counts
+    them, continuing through the pricing at the reference stock) or "certifying" (every 256
+    simulated days and after each batch of replications; iteration = replications finished).
+    upper_bound: the best bound so far (pricing: the pricing objective, see solver.priced;
+    certifying: the bound at the reference stock); lower_bound: low end of the policy value's
+    interval once a batch has finished, else None. elapsed: seconds since the solve
+    started."""
 
     stage: str
     iteration: int

@@ -358,3 +358,20 @@ def test_size_limits_name_the_priced_mode() -> None:
     large = random_network(82, (30,) * 6)
     with pytest.raises(ModelTooLargeError, match="priced"):
         check_size(large)
+
+
+def test_progress_reports_pricing_then_certifying() -> None:
+    spec = random_network(91, (10, 12, 8))
+    reports: list[Any] = []
+    policy = solve_priced(spec, options=QUICK, progress=reports.append)
+    stages = [r.stage for r in reports]
+    assert stages[0] == "pricing" and stages[-1] == "certifying"
+    assert stages == sorted(stages, key=lambda s: s != "pricing")
+    pricing = [r for r in reports if r.stage == "pricing"]
+    assert [r.iteration for r in pricing] == sorted(r.iteration for r in pricing)
+    first = [r.upper_bound for r in pricing if r.iteration <= policy.iterations]
+    assert all(b <= a for a, b in itertools.pairwise(first))
+    last = reports[-1]
+    assert last.lower_bound == policy.certificate.policy_value_interval[0]
+    assert last.iteration == policy.certificate.replications
+    assert all(a.elapsed <= b.elapsed for a, b in itertools.pairwise(reports))
