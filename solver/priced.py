@@ -121,20 +121,24 @@ class PricedLimits:
     of the capacity, the price vector with lanes x phases."""
 
     max_capacity: int = 300
+    max_weekly_capacity: int = 150
     max_lanes: int = 3_000
 
 
 def check_priced_size(spec: NetworkSpec, limits: PricedLimits | None = None) -> None:
     """Raise ModelTooLargeError when `spec` exceeds the priced method's own limits."""
     limits = limits or PricedLimits()
-    big = [loc for loc in spec.locations if loc.capacity > limits.max_capacity]
+    # A weekly store's subproblem has 7 (C + 1) states, solved densely.
+    most = limits.max_weekly_capacity if spec.is_periodic else limits.max_capacity
+    big = [loc for loc in spec.locations if loc.capacity > most]
     states = 1
     for loc in spec.locations:
         states *= loc.capacity + 1
     if big:
         names = ", ".join(f"{loc.id!r} ({loc.capacity})" for loc in big)
         raise ModelTooLargeError(
-            f"the priced mode solves stores of capacity up to {limits.max_capacity:,}; "
+            f"the priced mode solves stores of capacity up to {most:,}"
+            f"{' in a network with weekly fields' if spec.is_periodic else ''}; "
             f"{names} exceed it",
             states=states * n_phases(spec),
             pairs=None,
