@@ -67,7 +67,7 @@ coefficient 1). Discounted: each replication sums T days; V^pi = E[sum_{t < T}] 
 E[V^pi(s_T)], and V^pi lies between r_min / (1 - beta) and r_max / (1 - beta) (r the expected
 one-day profit of any stock and move), so the interval is the Student t interval of the T-day
 sums widened by beta^T r_min / (1 - beta) below and beta^T r_max / (1 - beta) above; T makes
-that widening at most a tenth of the target half-width. Average: each replication's mean profit
+that widening at most a quarter of the target half-width. Average: each replication's mean profit
 per day over `days` days after `warmup` days (statistical only: the warm-up bias is not
 bounded). certified_gap = (upper bound at the reference stock - low end of the interval) /
 |upper bound|, where the upper bound is the smaller of the bound from the averaged prices and
@@ -107,7 +107,7 @@ __all__ = [
 # Policy improvement switches only for a gain beyond this fraction of the store's value scale.
 _TIE_RTOL = 1e-10
 # Certificate: first batch of replications, and the longest discounted horizon (days).
-_FIRST_REPLICATIONS = 128
+_FIRST_REPLICATIONS = 64
 _MAX_HORIZON = 20_000
 # Cutting planes kept in the model at most (oldest inactive ones are dropped first).
 _MAX_CUTS = 400
@@ -121,20 +121,24 @@ class PricedLimits:
     of the capacity, the price vector with lanes x phases."""
 
     max_capacity: int = 300
+    max_weekly_capacity: int = 150
     max_lanes: int = 3_000
 
 
 def check_priced_size(spec: NetworkSpec, limits: PricedLimits | None = None) -> None:
     """Raise ModelTooLargeError when `spec` exceeds the priced method's own limits."""
     limits = limits or PricedLimits()
-    big = [loc for loc in spec.locations if loc.capacity > limits.max_capacity]
+    # A weekly store's subproblem has 7 (C + 1) states, solved densely.
+    most = limits.max_weekly_capacity if spec.is_periodic else limits.max_capacity
+    big = [loc for loc in spec.locations if loc.capacity > most]
     states = 1
     for loc in spec.locations:
         states *= loc.capacity + 1
     if big:
         names = ", ".join(f"{loc.id!r} ({loc.capacity})" for loc in big)
         raise ModelTooLargeError(
-            f"the priced mode solves stores of capacity up to {limits.max_capacity:,}; "
+            f"the priced mode solves stores of capacity up to {most:,}"
+            f"{' in a network with weekly fields' if spec.is_periodic else ''}; "
             f"{names} exceed it",
             states=states * n_phases(spec),
             pairs=None,
@@ -734,7 +738,7 @@ def _certify(
     if criterion == "discounted":
         low_r, high_r = _reward_range(net)
         spread = max(high_r - low_r, 1e-12) / (1.0 - beta)
-        wanted = 0.1 * target / spread
+        wanted = 0.25 * target / spread
         days = int(min(_MAX_HORIZON, max(1, math.ceil(math.log(wanted) / math.log(beta)))))
         weights = np.power(beta, np.arange(days, dtype=np.float64))
         base = _truncated_do_nothing(net, reference, days)

@@ -35,13 +35,13 @@ class PricedOptions:
     tolerance: pricing stops when the cutting-plane model predicts less than this relative
         decrease of the bound (fraction of the bound).
     replications: simulated replications for the certificate; None chooses them adaptively,
-        doubling from 128 until the interval's half-width is at most target_half_width of the
+        doubling from 64 until the interval's half-width is at most target_half_width of the
         bound or max_replications is reached.
     max_replications: cap of the adaptive choice.
     seed: seed of the certificate's random numbers (numpy default_rng).
     time_limit: seconds for pricing (checked between iterations), None for no limit.
     target_half_width: relative half-width aimed at by the adaptive replications; the
-        discounted horizon is chosen so that the truncation term is at most a tenth of it.
+        discounted horizon is chosen so that the truncation term is at most a quarter of it.
     confidence: level of the policy value's interval.
     average_days, average_warmup: average criterion, days measured per replication after the
         warm-up days.
@@ -53,7 +53,7 @@ class PricedOptions:
     max_replications: int = 1024
     seed: int = 0
     time_limit: float | None = None
-    target_half_width: float = 0.002
+    target_half_width: float = 0.0025
     confidence: float = 0.95
     average_days: int = 3_000
     average_warmup: int = 300
@@ -96,8 +96,11 @@ class PricedProgress:
 class Certificate:
     """How far the priced policy can be from optimal, at one reference closing stock (phase 0).
 
-    upper_bound: the Lagrangian bound at reference_stock (discounted: on the optimal value;
-        average: on the optimal profit per day).
+    reference_stock: per store, the median of its phase-0 stock in the long run under its own
+        priced policy (solver.priced).
+    upper_bound: the Lagrangian bound at reference_stock (discounted: on the optimal value,
+        the smaller of upper_bound(reference_stock) and the bound from prices minimised at
+        that stock; average: on the optimal profit per day).
     policy_value: the policy's estimated value there (discounted profit, or profit per day).
     policy_value_interval: confidence interval of the policy's value (discounted: simulation
         interval widened by the truncation bound, see solver.priced).
