@@ -431,7 +431,7 @@ def _recent_table(view: StatusView) -> str:
         rows.append(
             f'<tr data-job="{job.id}"><td class="num">{job.id}</td>'
             f'<td>{_e(job.network_name)} <span class="detail">v{job.version}</span></td>'
-            f"<td>{_e(_work(job.kind))}</td><td>{_e(job.criterion)}</td>"
+            f"<td>{_e(_work(job.kind, job.method))}</td><td>{_e(job.criterion)}</td>"
             f"<td>{_badge(job.state)}</td>"
             f'<td class="num">{job.attempts}</td>'
             f'<td class="num">{_e(_seconds(job.solve_seconds))}</td>'

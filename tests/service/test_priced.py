@@ -407,6 +407,9 @@ def test_pictures_of_a_priced_network_slice_its_plan_and_bound(
         response = client.get(f"/v1/networks/{network_id}/{picture}")
         assert response.status_code == 200, response.text
         assert response.headers["content-type"] == "image/svg+xml"
+    key = client.headers["Authorization"].removeprefix("Bearer ")
+    status = client.get("/status", headers=basic(key)).text
+    assert "<svg" in status and "priced solve" in status  # its heatmap, and the done job
     policy = stored_priced(engine)
     plane = choose_plane(policy, "hilltop", "riverside", {})
     moves, bounds = net_inflow_grid(policy, plane), value_grid(policy, plane)
