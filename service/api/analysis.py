@@ -90,7 +90,8 @@ def start_simulation(
     response: Response,
 ) -> SimulationJobOut:
     """Queue a simulation of the current version: its optimal policy, moving nothing, and
-    balancing days of cover, on the same simulated days. The answer names the seed; the same
+    balancing days of cover, on the same simulated days (a priced network: its priced plan and
+    moving nothing). The answer names the seed; the same
     seed gives the same report. 422 when the start stock does not fit the network or the
     simulation is longer than the limit allows."""
     network = get_network(session, caller.tenant_id, network_id)
@@ -153,8 +154,8 @@ def what_if(
     settings: SettingsDep,
 ) -> WhatIfOut | JSONResponse:
     """Solve the current version and the version the overrides would make, and compare their
-    optimal values and moves. Answered at once when both networks are small, else queued (202
-    with the job). 422 naming unknown locations and lanes, every problem of the changed
+    optimal values and moves. Answered at once when both networks are small and exact, else
+    queued (202 with the job); priced networks compare upper bounds. 422 naming unknown locations and lanes, every problem of the changed
     network, and the sizes of one over the solver's limits."""
     network = get_network(session, caller.tenant_id, network_id)
     version, spec = _current(session, network)
