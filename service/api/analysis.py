@@ -155,8 +155,9 @@ def what_if(
 ) -> WhatIfOut | JSONResponse:
     """Solve the current version and the version the overrides would make, and compare their
     optimal values and moves. Answered at once when both networks are small and exact, else
-    queued (202 with the job); priced networks compare upper bounds. 422 naming unknown locations and lanes, every problem of the changed
-    network, and the sizes of one over the solver's limits."""
+    queued (202 with the job); priced networks compare upper bounds. 422 naming unknown
+    locations and lanes, every problem of the changed network, and the sizes of one over the
+    solver's limits."""
     network = get_network(session, caller.tenant_id, network_id)
     version, spec = _current(session, network)
     changed = apply_overrides(spec, body.overrides)
