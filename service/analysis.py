@@ -11,6 +11,12 @@ the optimal policy.
 A what-if comparison applies overrides to a specification, solves both networks for one
 criterion and reports how the optimal value changes and at how many stocks the recommended
 moves differ.
+
+A priced network (service.modes) has no table over stock states: its simulation runs the priced
+policy's nightly plan (solver.simulation.simulate_plans, the same common random numbers) beside
+moving nothing and balancing days of cover one unit at a time (solver.heuristics), and
+its what-if comparison solves both networks by prices and compares their upper bounds and
+certified policy values (the moves state by state only where the stock states are few).
 """
 
 from __future__ import annotations
@@ -24,6 +30,8 @@ import numpy as np
 from numpy.typing import NDArray
 from pydantic import ValidationError
 
+from service.modes import resolve_method
+from service.priced import FULL_TABLE_MAX_STATES, plan_table
 from service.schemas import MAX_SEED, Overrides, SimulationRequest
 from solver import (
     Criterion,
@@ -38,13 +46,18 @@ from solver import (
     solve_policy_iteration,
 )
 from solver.build import check_size
+from solver.heuristics import balance_cover_plan, do_nothing_plan
+from solver.priced import check_priced_size, solve_priced
+from solver.priced_result import PricedPolicy
 from solver.simulation import (
     CONFIDENCE,
     Interval,
+    Plan,
     PolicyOutcome,
     balance_cover_policy,
     do_nothing_policy,
     mean_demands,
+    simulate_plans,
     simulate_policies,
 )
 
@@ -63,6 +76,7 @@ __all__ = [
 # simulation's time is bounded by this and the network's size by the solver's limits.
 MAX_REPLICATION_DAYS = 2_000_000
 REFERENCE = "optimal"
+PRICED_REFERENCE = "priced"
 
 
 class AnalysisInputError(ValueError):
@@ -128,9 +142,11 @@ def check_simulation(
     *,
     limits: SizeLimits | None = None,
     max_replication_days: int = MAX_REPLICATION_DAYS,
+    method: str = "exact",
 ) -> None:
     """Refuse, before any work, a simulation that does not fit `spec` or is too long:
-    AnalysisInputError (start stock, length) or ModelTooLargeError (the network)."""
+    AnalysisInputError (start stock, length) or ModelTooLargeError (the network, for the size
+    limits of `method`)."""
     errors: list[tuple[str, str]] = []
     if params.start_stock is not None:
         errors += _start_stock_problems(spec, params.start_stock)
@@ -145,7 +161,10 @@ def check_simulation(
         )
     if errors:
         raise AnalysisInputError(errors)
-    check_size(spec, limits)
+    if method == "priced":
+        check_priced_size(spec)
+    else:
+        check_size(spec, limits)
 
 
 def _start_stock_problems(spec: NetworkSpec, stock: Mapping[str, int]) -> list[tuple[str, str]]:
@@ -167,20 +186,25 @@ def _start_stock_problems(spec: NetworkSpec, stock: Mapping[str, int]) -> list[t
 def run_simulation(
     spec: NetworkSpec,
     params: SimulationRequest,
-    optimal: PolicyResult | None = None,
+    optimal: PolicyResult | PricedPolicy | None = None,
     *,
     limits: SizeLimits | None = None,
     max_replication_days: int = MAX_REPLICATION_DAYS,
     progress: ProgressCallback | None = None,
+    method: str = "exact",
 ) -> dict[str, Any]:
     """Simulate the optimal policy of `params.criterion`, moving nothing, and balancing days of
-    cover, on the same days; the report as JSON-able data (see SimulationReportOut).
+    cover, on the same days; the report as JSON-able data (see SimulationReportOut). With
+    `method` priced (or a priced `optimal`), the priced policy's plan and moving nothing.
 
-    optimal: the stored optimal policy of `spec` for the criterion; solved here when None (or
+    optimal: the stored policy of `spec` for the criterion; solved here when None (or
         when it does not fit the model, e.g. stored by a solver with another flow table).
     progress: told about each iteration of that solve.
     Raises AnalysisInputError, ModelTooLargeError, NotUnichainError (average criterion).
     """
+    if method == "priced" or isinstance(optimal, PricedPolicy):
+        priced = optimal if isinstance(optimal, PricedPolicy) else None
+        return _run_priced_simulation(spec, params, priced, max_replication_days)
     check_simulation(spec, params, limits=limits, max_replication_days=max_replication_days)
     model = build_transfer_model(spec, limits)
     policy = None if optimal is None else _policy_on(model, optimal, params.criterion)
@@ -230,6 +254,77 @@ def run_simulation(
     return _require_finite(document, "")
 
 
+def _plan_of(policy: PricedPolicy) -> Plan:
+    def plan(stocks: NDArray[np.int64], phase: int) -> NDArray[np.int64]:
+        return np.asarray(policy.plan_batch(stocks, phase=phase % policy.phases), dtype=np.int64)
+
+    return plan
+
+
+def _run_priced_simulation(
+    spec: NetworkSpec,
+    params: SimulationRequest,
+    stored: PricedPolicy | None,
+    max_replication_days: int,
+) -> dict[str, Any]:
+    check_simulation(spec, params, max_replication_days=max_replication_days, method="priced")
+    source = "stored"
+    policy = stored
+    if (
+        policy is None
+        or policy.criterion != params.criterion
+        or policy.location_ids != tuple(spec.location_ids)
+    ):
+        policy = solve_priced(spec, criterion=params.criterion)
+        source = "solved"
+    seed = new_seed() if params.seed is None else params.seed
+    start = (
+        None
+        if params.start_stock is None
+        else [params.start_stock[location] for location in spec.location_ids]
+    )
+    plans: dict[str, Plan] = {
+        PRICED_REFERENCE: _plan_of(policy),
+        "do_nothing": do_nothing_plan(spec),
+    }
+    notes = [
+        "the network is solved by prices: its priced policy is simulated in place of the "
+        "optimal one"
+    ]
+    try:
+        plans["balance_cover"] = balance_cover_plan(spec)
+        notes.append(
+            "balance_cover moves one unit at a time (the form of the rule for networks "
+            "without a flow table)"
+        )
+    except ValueError as exc:
+        notes.append(f"balance_cover left out: {exc}")
+    report = simulate_plans(
+        spec,
+        plans,
+        days=params.days,
+        replications=params.replications,
+        rng=np.random.default_rng(seed),
+        start_stock=start,
+        warmup_days=params.warmup_days,
+        reference=PRICED_REFERENCE,
+        confidence=CONFIDENCE,
+    )
+    document = {
+        "criterion": params.criterion,
+        "days": report.days,
+        "replications": report.replications,
+        "warmup_days": report.warmup_days,
+        "seed": seed,
+        "confidence": report.confidence,
+        "start_stock": dict(zip(report.location_ids, report.start_stock, strict=True)),
+        "optimal_source": source,
+        "policies": [_outcome(outcome, PRICED_REFERENCE) for outcome in report.outcomes],
+        "notes": notes,
+    }
+    return _require_finite(document, "")
+
+
 def _policy_on(
     model: TransferModel, optimal: PolicyResult, criterion: str
 ) -> NDArray[np.int64] | None:
@@ -262,7 +357,7 @@ def _interval(interval: Interval) -> dict[str, float | None]:
     }
 
 
-def _outcome(outcome: PolicyOutcome) -> dict[str, Any]:
+def _outcome(outcome: PolicyOutcome, reference: str = REFERENCE) -> dict[str, Any]:
     difference = outcome.difference_to_reference
     return {
         "name": outcome.name,
@@ -279,7 +374,7 @@ def _outcome(outcome: PolicyOutcome) -> dict[str, Any]:
         "units_moved_per_night": _interval(outcome.units_moved_per_night),
         "move_cost_per_day": _interval(outcome.move_cost_per_day),
         "difference_to_optimal": (
-            None if difference is None or outcome.name == REFERENCE else _interval(difference)
+            None if difference is None or outcome.name == reference else _interval(difference)
         ),
     }
 
@@ -421,9 +516,12 @@ def run_what_if(
     *,
     criterion: Criterion = "discounted",
     limits: SizeLimits | None = None,
+    mode: str = "exact",
 ) -> dict[str, Any]:
-    """Solve `spec` and `spec` with `overrides` for `criterion`; the comparison as JSON-able
-    data (see WhatIfResultOut).
+    """Solve `spec` and `spec` with `overrides` for `criterion`, each by the method `mode`
+    resolves to for it (service.modes); the comparison as JSON-able data (see
+    WhatIfResultOut). A priced network's summary has its upper bound at the reference stock
+    and no mean value.
 
     Values compared: discounted, the mean value over all stocks and the value at a reference
     stock (half of every base capacity, rounded down, and at most the changed capacity);
@@ -431,8 +529,16 @@ def run_what_if(
     NotUnichainError.
     """
     changed_spec = apply_overrides(spec, overrides)
-    base = _solve(spec, criterion, limits, "", "the network")
-    changed = _solve(changed_spec, criterion, limits, "/overrides", "the changed network")
+    limits = limits or SizeLimits()
+    base = _solve(spec, criterion, limits, "", "the network", resolve_method(spec, mode, limits))
+    changed = _solve(
+        changed_spec,
+        criterion,
+        limits,
+        "/overrides",
+        "the changed network",
+        resolve_method(changed_spec, mode, limits),
+    )
     reference = tuple(c // 2 for c in base.capacities)
     changed_reference = tuple(
         min(units, capacity) for units, capacity in zip(reference, changed.capacities, strict=True)
@@ -443,7 +549,12 @@ def run_what_if(
         key: None
         if base_summary[key] is None or changed_summary[key] is None
         else changed_summary[key] - base_summary[key]
-        for key in ("profit_per_day", "mean_value", "value_at_reference")
+        for key in (
+            "profit_per_day",
+            "mean_value",
+            "value_at_reference",
+            "upper_bound_at_reference",
+        )
     }
     document = {
         "criterion": criterion,
@@ -457,20 +568,42 @@ def run_what_if(
 
 
 def _solve(
-    spec: NetworkSpec, criterion: Criterion, limits: SizeLimits | None, pointer: str, what: str
-) -> PolicyResult:
-    """solve_network, with a model the solver refuses (amounts so large that the expected
-    profit overflows) reported as the request's fault, at `pointer`."""
+    spec: NetworkSpec,
+    criterion: Criterion,
+    limits: SizeLimits | None,
+    pointer: str,
+    what: str,
+    method: str = "exact",
+) -> PolicyResult | PricedPolicy:
+    """solve_network (or solve_priced), with a model the solver refuses (amounts so large that
+    the expected profit overflows) reported as the request's fault, at `pointer`."""
     try:
+        if method == "priced":
+            return solve_priced(spec, criterion=criterion)
         return solve_network(spec, criterion=criterion, limits=limits)
     except InvalidModelError as exc:
         raise AnalysisInputError([(pointer, f"{what} cannot be solved: {exc}")]) from exc
 
 
-def _summary(result: PolicyResult, reference: tuple[int, ...]) -> dict[str, Any]:
+def _summary(result: PolicyResult | PricedPolicy, reference: tuple[int, ...]) -> dict[str, Any]:
     discounted = result.criterion == "discounted"
+    if isinstance(result, PricedPolicy):
+        certificate = result.certificate
+        return {
+            "states": result.n_states,
+            "method": "priced",
+            "profit_per_day": result.gain,
+            "mean_value": None,
+            "reference_stock": dict(zip(result.location_ids, reference, strict=True)),
+            "value_at_reference": None,
+            "upper_bound_at_reference": result.upper_bound(reference),
+            "certified_gap": certificate.certified_gap,
+            "residual": None,
+            "error_bound": None,
+        }
     return {
         "states": result.n_states,
+        "method": "exact",
         "profit_per_day": result.gain,
         # Under the average criterion values are relative (0 at the empty stock): not compared.
         "mean_value": float(result.values.mean()) if discounted else None,
@@ -479,17 +612,21 @@ def _summary(result: PolicyResult, reference: tuple[int, ...]) -> dict[str, Any]
         "value_at_reference": (
             float(result.values[0, result.state_index(reference)]) if discounted else None
         ),
+        "upper_bound_at_reference": None,
+        "certified_gap": None,
         "residual": result.residual,
         "error_bound": result.error_bound,
     }
 
 
-def _moves_by_lane(result: PolicyResult, lanes: Sequence[tuple[str, str]]) -> NDArray[np.int64]:
+def _moves_by_lane(
+    result: PolicyResult | PricedPolicy, lanes: Sequence[tuple[str, str]]
+) -> NDArray[np.int64]:
     """Units moved along each of `lanes` (by their ends) in every state of every phase, shape
     (P, S, len(lanes)); 0 on a lane the network lacks."""
     ids = result.location_ids
     own = {(ids[a], ids[b]): k for k, (a, b) in enumerate(result.lanes)}
-    flows = result.policy_flows()
+    flows = plan_table(result) if isinstance(result, PricedPolicy) else result.policy_flows()
     moves = np.zeros((result.phases, result.n_states, len(lanes)), dtype=np.int64)
     for column, lane in enumerate(lanes):
         if lane in own:
@@ -497,7 +634,9 @@ def _moves_by_lane(result: PolicyResult, lanes: Sequence[tuple[str, str]]) -> ND
     return moves
 
 
-def _move_changes(base: PolicyResult, changed: PolicyResult) -> dict[str, Any]:
+def _move_changes(
+    base: PolicyResult | PricedPolicy, changed: PolicyResult | PricedPolicy
+) -> dict[str, Any]:
     """At how many stocks the two policies recommend different moves; lanes are matched by
     their ends, so a lane added or removed compares with moving nothing along it."""
     sizes = {"base_states": base.n_states, "changed_states": changed.n_states}
@@ -508,6 +647,15 @@ def _move_changes(base: PolicyResult, changed: PolicyResult) -> dict[str, Any]:
             **sizes,
             "detail": f"the capacities differ, so the stocks do not correspond: "
             f"{base.n_states:,} stock states before, {changed.n_states:,} after",
+        }
+    priced = isinstance(base, PricedPolicy) or isinstance(changed, PricedPolicy)
+    if priced and base.n_states * base.phases > FULL_TABLE_MAX_STATES:
+        return {
+            "comparable": False,
+            "states_changed": None,
+            **sizes,
+            "detail": f"a priced network's moves are compared stock by stock only up to "
+            f"{FULL_TABLE_MAX_STATES:,} stock states; this one has {base.n_states:,}",
         }
     ids = base.location_ids
     lanes = list(dict.fromkeys((ids[a], ids[b]) for a, b in (*base.lanes, *changed.lanes)))

@@ -285,8 +285,11 @@ def apply_proposal(
     proposal: Proposal,
     criteria: Sequence[str],
     calibrated_at: datetime,
+    *,
+    method: str,
 ) -> tuple[NetworkVersion, list[SolveJob]]:
-    """The proposal as the network's next version, with its solves queued."""
-    version, jobs = repository.add_version(session, network, proposal.spec, criteria)
+    """The proposal as the network's next version, solved by `method` (the network's mode
+    resolved for it, service.modes), with its solves queued."""
+    version, jobs = repository.add_version(session, network, proposal.spec, criteria, method=method)
     version.calibrated_at = calibrated_at
     return version, jobs

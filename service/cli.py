@@ -16,12 +16,13 @@ from typing import Any
 import numpy as np
 from pydantic import ValidationError
 
-from service import operations
+from service import operations, priced
 from service.analysis import AnalysisInputError, run_simulation
 from service.db.tables import JobKind
 from service.errors import UsageError
 from service.files import load_network, write_json_atomically
 from service.logs import logging_from_environment
+from service.modes import resolve_method
 from service.schemas import SimulationRequest
 from solver import (
     InvalidStockError,
@@ -29,9 +30,11 @@ from solver import (
     PolicyResult,
     Progress,
     Recommendation,
+    SizeLimits,
     SolverError,
     solve_network,
 )
+from solver.priced import solve_priced
 from solver.spec import WEEKDAYS
 
 __all__ = ["main"]
@@ -101,6 +104,13 @@ def _parser() -> argparse.ArgumentParser:
         type=_stock,
         metavar="LOCATION=UNITS,...",
         help="also print tonight's moves from this closing stock, e.g. riverside=13,hilltop=1",
+    )
+    solve.add_argument(
+        "--mode",
+        choices=["exact", "priced", "auto"],
+        default="auto",
+        help="exact: every stock state; priced: lane prices and per-store values, with a "
+        "certified gap; auto (default): exact within the size limits, priced beyond",
     )
     solve.set_defaults(handler=_solve)
 
@@ -219,6 +229,11 @@ def _parser() -> argparse.ArgumentParser:
         default="discounted",
         type=_criteria,
         help="comma-separated: discounted, average (default: discounted)",
+    )
+    import_.add_argument(
+        "--mode",
+        choices=["exact", "priced", "auto"],
+        help="solving mode (default: the network's, auto for a new one)",
     )
     import_.add_argument(
         "--skip-unchanged",
@@ -453,6 +468,8 @@ def _solve(args: argparse.Namespace) -> int:
     stock = _stock_of(spec, args.stock)
     operations.load_settings().limit_blas_threads()
     try:
+        if resolve_method(spec, args.mode, SizeLimits()) == "priced":
+            return _solve_priced(args, spec)
         result = solve_network(
             spec, criterion=args.criterion, method=args.method, progress=ProgressLines()
         )
@@ -462,6 +479,18 @@ def _solve(args: argparse.Namespace) -> int:
         write_json_atomically(args.out, result_document(spec, result))
     sys.stdout.write(summary(spec, result, stock=stock))
     return 0 if result.converged else 1
+
+
+def _solve_priced(args: argparse.Namespace, spec: NetworkSpec) -> int:
+    try:
+        policy = solve_priced(spec, criterion=args.criterion, progress=priced.progress_printer())
+        document = None if args.out is None else priced.priced_result_document(spec, policy)
+    except (SolverError, ValueError) as exc:
+        raise UsageError(f"{args.network}: {exc}") from exc
+    if document is not None:
+        write_json_atomically(args.out, document)
+    sys.stdout.write(priced.priced_summary(spec, policy))
+    return 0 if policy.converged else 1
 
 
 _OPTIONS = {"warmup_days": "--warmup"}

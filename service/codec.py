@@ -8,6 +8,12 @@ decoded, so a corrupt policy is never served. Round trips are bit-exact.
 Per-state arrays have shape (phases, states); `meta` records `phases` (1 or 7). Policies stored
 before weekly networks existed have 1-D per-state arrays, no `allowed` array and no `phases`:
 they decode as one phase in which every flow of the table is allowed.
+
+A priced policy (solver.PricedPolicy: prices, per-store values, certificate) is stored the same
+way from its own `to_arrays()`; its meta says `"kind": "priced"` and holds the policy's own meta
+under `priced`, and each array's layout entry keeps the dtype it had (`was`), so that
+`PricedPolicy.from_arrays` gets back exactly what it gave. Meta without `kind` is an exact
+PolicyResult, as every policy stored before priced ones existed.
 """
 
 from __future__ import annotations
@@ -22,8 +28,17 @@ import numpy as np
 from numpy.typing import NDArray
 
 from solver import PolicyResult
+from solver.priced_result import PricedPolicy
 
-__all__ = ["CorruptPolicyError", "EncodedPolicy", "decode_policy", "encode_policy"]
+__all__ = [
+    "CorruptPolicyError",
+    "EncodedPolicy",
+    "StoredPolicy",
+    "decode_policy",
+    "encode_policy",
+]
+
+StoredPolicy = PolicyResult | PricedPolicy
 
 _ARRAYS = ("action", "flows", "values", "post_move_values", "lane_costs", "allowed")
 _PER_STATE = ("action", "values", "post_move_values")
@@ -41,19 +56,10 @@ class EncodedPolicy:
     meta: str
 
 
-def encode_policy(result: PolicyResult) -> EncodedPolicy:
-    parts: list[bytes] = []
-    layout: list[dict[str, Any]] = []
-    offset = 0
-    for name in _ARRAYS:
-        array = _narrow(getattr(result, name))
-        data = array.tobytes(order="C")
-        layout.append(
-            {"name": name, "dtype": array.dtype.str, "shape": list(array.shape), "offset": offset}
-        )
-        parts.append(data)
-        offset += len(data)
-    blob = zlib.compress(b"".join(parts), level=6)
+def encode_policy(result: StoredPolicy) -> EncodedPolicy:
+    if isinstance(result, PricedPolicy):
+        arrays, priced_meta = result.to_arrays()
+        return _encode(arrays, {"kind": "priced", "priced": priced_meta}, keep_dtype=True)
     meta = {
         "criterion": result.criterion,
         "method": result.method,
@@ -70,6 +76,30 @@ def encode_policy(result: PolicyResult) -> EncodedPolicy:
         "converged": result.converged,
         "seconds": dict(result.seconds),
     }
+    return _encode({name: getattr(result, name) for name in _ARRAYS}, meta, keep_dtype=False)
+
+
+def _encode(
+    arrays: dict[str, NDArray[Any]], meta: dict[str, Any], *, keep_dtype: bool
+) -> EncodedPolicy:
+    parts: list[bytes] = []
+    layout: list[dict[str, Any]] = []
+    offset = 0
+    for name, original in arrays.items():
+        array = _narrow(np.asarray(original))
+        data = array.tobytes(order="C")
+        entry = {
+            "name": name,
+            "dtype": array.dtype.str,
+            "shape": list(array.shape),
+            "offset": offset,
+        }
+        if keep_dtype:
+            entry["was"] = np.asarray(original).dtype.str
+        layout.append(entry)
+        parts.append(data)
+        offset += len(data)
+    blob = zlib.compress(b"".join(parts), level=6)
     return EncodedPolicy(
         arrays=blob,
         layout=json.dumps(layout, separators=(",", ":")),
@@ -78,18 +108,25 @@ def encode_policy(result: PolicyResult) -> EncodedPolicy:
     )
 
 
-def decode_policy(arrays: bytes, layout: str, checksum: str, meta: str) -> PolicyResult:
-    """Rebuild the PolicyResult; CorruptPolicyError when the blob does not match its checksum or
-    its layout."""
+def decode_policy(arrays: bytes, layout: str, checksum: str, meta: str) -> StoredPolicy:
+    """Rebuild the PolicyResult or PricedPolicy; CorruptPolicyError when the blob does not match
+    its checksum or its layout."""
     if hashlib.sha256(arrays).hexdigest() != checksum:
         raise CorruptPolicyError("stored policy does not match its checksum")
     try:
         raw = zlib.decompress(arrays)
+        entries = json.loads(layout)
         decoded = {
             entry["name"]: _read(raw, entry["dtype"], entry["shape"], entry["offset"])
-            for entry in json.loads(layout)
+            for entry in entries
         }
         info = json.loads(meta)
+        if info.get("kind") == "priced":
+            restored = {
+                entry["name"]: decoded[entry["name"]].astype(np.dtype(entry["was"]))
+                for entry in entries
+            }
+            return PricedPolicy.from_arrays(restored, info["priced"])
         phases = int(info.get("phases", 1))
         per_state = {name: decoded[name].reshape(phases, -1) for name in _PER_STATE}
         flows = decoded["flows"].astype(np.int64)
@@ -121,7 +158,7 @@ def decode_policy(arrays: bytes, layout: str, checksum: str, meta: str) -> Polic
             converged=info["converged"],
             seconds=info["seconds"],
         )
-    except (zlib.error, ValueError, KeyError, TypeError) as exc:
+    except (zlib.error, ValueError, KeyError, TypeError, IndexError) as exc:
         raise CorruptPolicyError(f"stored policy cannot be decoded: {exc}") from exc
 
 

@@ -6,7 +6,7 @@ processes, so there are two sources:
 
 * **From the database** (`DatabaseCollector`): solve times, job outcomes, the queue and policy
   ages are aggregated from `solve_jobs` (which also queues simulations and what-if comparisons,
-  told apart by `kind`) and `policies`, in four queries at every scrape. Every API process
+  told apart by `kind`) and `policies`, in five queries at every scrape. Every API process
   reports the same numbers, and no process shares memory with another.
 * **In process**: recommendation latency and policy cache lookups are counted by the process
   that answered. By default they are per API process: behind `stockrelay serve --processes N` a
@@ -26,7 +26,12 @@ Metrics (histograms in seconds):
 * stockrelay_database_up: gauge, 1 when this scrape's queries succeeded, else 0;
 * stockrelay_recommendation_seconds{endpoint}: histogram, latency of answered recommendation
   requests, endpoint "single" (one network) or "batch" (a whole batch);
-* stockrelay_policy_cache_lookups_total{result}: counter, policy cache hits and misses.
+* stockrelay_policy_cache_lookups_total{result}: counter, policy cache hits and misses;
+* stockrelay_priced_solve_iteration, stockrelay_priced_solve_upper_bound,
+  stockrelay_priced_solve_lower_bound, stockrelay_priced_solve_elapsed_seconds
+  {job_id, network_id, criterion, stage}: gauges, the latest progress of each running priced
+  solve (one series per running job, so at most one per worker; gone once it ends; the lower
+  bound only once certifying has found one).
 
 `kind` is the job's kind: "solve", "simulate" or "what_if".
 `states` is the size class of the network in stock states (the product over locations of
@@ -231,6 +236,7 @@ class DatabaseCollector(Collector):
                     *self._jobs(session),
                     self._solve_seconds(session),
                     self._policy_age(session),
+                    *self._priced_progress(session),
                 ]
         except SQLAlchemyError as exc:
             log.warning("metrics: database queries failed: %s", exc)
@@ -347,6 +353,7 @@ class DatabaseCollector(Collector):
                 and_(
                     Policy.tenant_id == Network.tenant_id,
                     Policy.spec_hash == NetworkVersion.spec_hash,
+                    Policy.method == NetworkVersion.method,
                 ),
             )
             .where(Network.archived.is_(False))
@@ -364,6 +371,50 @@ class DatabaseCollector(Collector):
                 [str(network_id), criterion], max(0.0, (now - solved_at).total_seconds())
             )
         return family
+
+    @staticmethod
+    def _priced_progress(session: Session) -> list[GaugeMetricFamily]:
+        rows = session.execute(
+            select(SolveJob.id, NetworkVersion.network_id, SolveJob.criterion, SolveJob.progress)
+            .join(NetworkVersion, NetworkVersion.id == SolveJob.version_id)
+            .where(
+                SolveJob.kind == JobKind.SOLVE.value,
+                SolveJob.state == JobState.RUNNING.value,
+                SolveJob.progress.is_not(None),
+            )
+            .order_by(SolveJob.id)
+        ).all()
+        labels = ["job_id", "network_id", "criterion", "stage"]
+        what = "of each running priced solve, by job (one series per running job)"
+        iteration = GaugeMetricFamily(
+            "stockrelay_priced_solve_iteration", f"Pricing iteration {what}.", labels=labels
+        )
+        upper = GaugeMetricFamily(
+            "stockrelay_priced_solve_upper_bound",
+            f"Best upper bound on the optimal value (currency) {what}.",
+            labels=labels,
+        )
+        lower = GaugeMetricFamily(
+            "stockrelay_priced_solve_lower_bound",
+            f"Best lower bound, the policy's simulated value (currency), {what}; absent "
+            "before certifying.",
+            labels=labels,
+        )
+        elapsed = GaugeMetricFamily(
+            "stockrelay_priced_solve_elapsed_seconds", f"Seconds running {what}.", labels=labels
+        )
+        for job_id, network_id, criterion, text in rows:
+            try:
+                report = json.loads(text or "")
+                values = [str(job_id), str(network_id), criterion, str(report["stage"])]
+                iteration.add_metric(values, float(report["iteration"]))
+                upper.add_metric(values, float(report["upper_bound"]))
+                if report.get("lower_bound") is not None:
+                    lower.add_metric(values, float(report["lower_bound"]))
+                elapsed.add_metric(values, float(report["elapsed"]))
+            except (ValueError, KeyError, TypeError):
+                log.warning("metrics: job %d has unreadable progress", job_id)
+        return [iteration, upper, lower, elapsed]
 
 
 def _multiprocess() -> bool:

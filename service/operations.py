@@ -21,11 +21,13 @@ from service.db import repository
 from service.db.migrate import DatabaseNotMigratedError, current_revision, require_migrated
 from service.db.migrate import upgrade as upgrade_schema
 from service.db.session import make_engine, make_session_factory
-from service.db.tables import JobKind, Network
+from service.db.tables import JobKind, Network, SolveMode
 from service.errors import UsageError
 from service.files import load_network, write_json_atomically
+from service.modes import resolve_method
 from service.settings import Settings
 from service.worker import Worker
+from solver import ModelTooLargeError
 
 __all__ = [
     "DEFAULT_TENANT",
@@ -199,12 +201,21 @@ def worker(args: argparse.Namespace) -> int:
 
 def import_network(args: argparse.Namespace) -> int:
     spec = load_network(args.network)
+    settings = load_settings()
 
     def work(session: Session) -> str:
         tenant = repository.get_or_create_tenant(session, args.tenant)
         network = repository.network_by_name(session, tenant.id, spec.name)
+        # An absent --mode keeps an existing network's mode; a new network defaults to auto.
+        mode = args.mode or (network.mode if network is not None else SolveMode.AUTO.value)
+        try:
+            method = resolve_method(spec, mode, settings.size_limits)
+        except ModelTooLargeError as exc:
+            raise UsageError(str(exc)) from exc
         if network is None:
-            network, version, jobs = repository.create_network(session, tenant, spec, args.criteria)
+            network, version, jobs = repository.create_network(
+                session, tenant, spec, args.criteria, mode=mode, method=method
+            )
         else:
             if network.archived:
                 raise UsageError(f"network {network.id} ({spec.name!r}) is archived")
@@ -213,9 +224,13 @@ def import_network(args: argparse.Namespace) -> int:
                 args.skip_unchanged
                 and current is not None
                 and current.spec_hash == repository.canonical_spec(spec)[1]
+                and current.method == method
             ):
                 return f"network {network.id} version {current.number} unchanged\n"
-            version, jobs = repository.add_version(session, network, spec, args.criteria)
+            network.mode = mode
+            version, jobs = repository.add_version(
+                session, network, spec, args.criteria, method=method
+            )
         queued = ", ".join(f"{job.id} ({job.criterion})" for job in jobs) or "none needed"
         return (
             f"network {network.id} version {version.number} "

@@ -7,6 +7,11 @@ another along y, every other location held at a fixed stock. Slicing (`choose_pl
 PNG bytes and knows nothing of policies, so another selector (a weekday, say) needs only another
 slicing function.
 
+A priced policy (solver.PricedPolicy) has no table over stock states: its slices are computed
+for the plane's stocks only, the moves from its nightly plan (plan_batch) and the "value" from
+its upper bound on the optimal value at each stock (the sum of the per-store values plus the
+price terms), which is what the value picture of a priced network shows.
+
 Rendering uses matplotlib's object-oriented API on a Figure of its own with the Agg canvas (no
 pyplot state), so requests may render concurrently in the thread pool. SVG output is
 reproducible byte for byte: element ids are hashed with a fixed salt and no date is written.
@@ -40,6 +45,7 @@ from matplotlib.ticker import MaxNLocator, MultipleLocator, ScalarFormatter
 from numpy.typing import NDArray
 
 from solver import PolicyResult
+from solver.priced_result import PricedPolicy
 
 __all__ = [
     "ANNOTATE_MAX_CELLS",
@@ -123,7 +129,7 @@ def parse_fixed_stock(text: str) -> dict[str, int]:
 
 
 def choose_plane(
-    result: PolicyResult, x: str | None, y: str | None, fixed: Mapping[str, int]
+    result: PolicyResult | PricedPolicy, x: str | None, y: str | None, fixed: Mapping[str, int]
 ) -> Plane:
     """The plane through `result`'s state space with `x` and `y` on the axes (default: the
     first locations, in network order, not already on the other axis) and the other locations
@@ -159,7 +165,9 @@ def choose_plane(
     return Plane(x_id=x_id, y_id=y_id, fixed=others)
 
 
-def net_inflow_grid(result: PolicyResult, plane: Plane, phase: int = 0) -> NDArray[np.int64]:
+def net_inflow_grid(
+    result: PolicyResult | PricedPolicy, plane: Plane, phase: int = 0
+) -> NDArray[np.int64]:
     """Net units the policy moves tonight into the y-axis location (units arriving there minus
     units leaving it, over all lanes) at every closing stock of `plane`, for closing counts in
     `phase` (the weekday, for a weekly policy; see PolicyResult.phase_of).
@@ -169,17 +177,47 @@ def net_inflow_grid(result: PolicyResult, plane: Plane, phase: int = 0) -> NDArr
     """
     y = result.location_ids.index(plane.y_id)
     into_y = np.array([int(b == y) - int(a == y) for a, b in result.lanes], dtype=np.int64)
+    if isinstance(result, PricedPolicy):
+        stocks = _plane_stocks(result, plane)
+        moved = np.asarray(result.plan_batch(stocks.reshape(-1, stocks.shape[-1]), phase=phase))
+        grid: NDArray[np.int64] = (moved @ into_y).astype(np.int64).reshape(stocks.shape[:2])
+        return grid
     per_flow = result.flows @ into_y
     return _plane_of(per_flow[result.action[phase]], result, plane)
 
 
-def value_grid(result: PolicyResult, plane: Plane, phase: int = 0) -> NDArray[np.float64]:
+def value_grid(
+    result: PolicyResult | PricedPolicy, plane: Plane, phase: int = 0
+) -> NDArray[np.float64]:
     """The policy's value (currency units: expected discounted profit, or the relative value
-    under the average criterion) at every closing stock of `plane`, in `phase`.
+    under the average criterion) at every closing stock of `plane`, in `phase`; for a priced
+    policy, the upper bound on the optimal value there.
 
     Returns shape (capacity_y + 1, capacity_x + 1), indexed [y stock, x stock].
     """
+    if isinstance(result, PricedPolicy):
+        stocks = _plane_stocks(result, plane)
+        bounds = [
+            result.upper_bound(stock, phase=phase)
+            for stock in stocks.reshape(-1, stocks.shape[-1]).tolist()
+        ]
+        return np.array(bounds, dtype=np.float64).reshape(stocks.shape[:2])
     return _plane_of(result.values[phase], result, plane)
+
+
+def _plane_stocks(result: PricedPolicy, plane: Plane) -> NDArray[np.int64]:
+    """The closing stocks of `plane`, shape (capacity_y + 1, capacity_x + 1, N), indexed
+    [y stock, x stock]."""
+    ids = result.location_ids
+    x, y = ids.index(plane.x_id), ids.index(plane.y_id)
+    rows, cols = result.capacities[y] + 1, result.capacities[x] + 1
+    stocks = np.zeros((rows, cols, len(ids)), dtype=np.int64)
+    for i, location in enumerate(ids):
+        if location not in (plane.x_id, plane.y_id):
+            stocks[..., i] = plane.fixed[location]
+    stocks[..., y] = np.arange(rows)[:, None]
+    stocks[..., x] = np.arange(cols)[None, :]
+    return stocks
 
 
 def _plane_of(per_state: NDArray[_Cell], result: PolicyResult, plane: Plane) -> NDArray[_Cell]:

@@ -1,8 +1,10 @@
 """The read path: the newest ready policy of a network, cached in memory, and recommendations.
 
 Policies are decoded once per process and kept in an LRU cache keyed by (version, criterion);
-a stored policy is checksummed on every load from the database, and one that fails is deleted
-and queued for a new solve, never served.
+each version is served by the policy of its own method (exact or priced, service.modes), and a
+version whose method changed serves the previous version's policy, marked stale, until its own
+solve is done. A stored policy is checksummed on every load from the database, and one that
+fails is deleted and queued for a new solve, never served.
 """
 
 from __future__ import annotations
@@ -20,11 +22,11 @@ from zoneinfo import ZoneInfo
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
-from service.codec import CorruptPolicyError, decode_policy
+from service.codec import CorruptPolicyError, StoredPolicy, decode_policy
 from service.db import repository
 from service.db.repository import VersionHead
 from service.db.tables import Network, NetworkVersion
-from solver import InvalidStockError, PolicyResult, Recommendation
+from solver import InvalidStockError, Recommendation
 from solver.spec import DEFAULT_TIMEZONE
 
 __all__ = [
@@ -79,7 +81,7 @@ class PolicyNotSolvedError(PolicyNotReadyError):
 
 @dataclass(frozen=True)
 class ServedPolicy:
-    result: PolicyResult
+    result: StoredPolicy
     criterion: str
     version_id: int
     version_number: int
@@ -91,7 +93,7 @@ class ServedPolicy:
 
 @dataclass(frozen=True)
 class _Entry:
-    result: PolicyResult
+    result: StoredPolicy
     solved_at: datetime
 
 
@@ -239,7 +241,9 @@ def _check_being_solved(
 def _load(
     session: Session, network: NetworkKey, version: VersionHead, criterion: str
 ) -> _Entry | None:
-    row = repository.policy_for(session, network.tenant_id, version.spec_hash, criterion)
+    row = repository.policy_for(
+        session, network.tenant_id, version.spec_hash, criterion, version.method
+    )
     if row is None:
         return None
     try:
@@ -263,7 +267,9 @@ def _not_ready(
 ) -> PolicyNotReadyError:
     """The current version's solve is live (checked by _check_being_solved) and no version has
     a policy yet: worth waiting for."""
-    job = repository.jobs_for(session, network.tenant_id, version.spec_hash, criterion)[0]
+    job = repository.jobs_for(
+        session, network.tenant_id, version.spec_hash, criterion, version.method
+    )[0]
     return PolicyNotReadyError(
         f"the {criterion} policy of version {version.number} of network {network.id} is not "
         f"ready (job {job.id} {job.state})",
@@ -280,7 +286,7 @@ class StockProblemsError(InvalidStockError):
         self.problems = problems
 
 
-def stock_vector(result: PolicyResult, stock: Mapping[str, int]) -> list[int]:
+def stock_vector(result: StoredPolicy, stock: Mapping[str, int]) -> list[int]:
     """Closing stock by location id, in network order; StockProblemsError naming every missing,
     unknown or out-of-range location."""
     ids = result.location_ids

@@ -32,6 +32,7 @@ __all__ = [
     "CalibrationOut",
     "CalibrationSettingsIn",
     "CalibrationSettingsOut",
+    "CertificateOut",
     "ClosingStockIn",
     "ClosingStockOut",
     "CorrectionOut",
@@ -44,6 +45,7 @@ __all__ = [
     "InstructionsOut",
     "IntervalOut",
     "JobOut",
+    "JobProgressOut",
     "LaneOverride",
     "LaneRef",
     "LocationCalibrationOut",
@@ -63,6 +65,7 @@ __all__ = [
     "SimulationJobOut",
     "SimulationReportOut",
     "SimulationRequest",
+    "SolveModeName",
     "SolveState",
     "TransferOut",
     "VersionOut",
@@ -81,6 +84,8 @@ CriterionName = Literal["discounted", "average"]
 DEFAULT_CRITERION_RULE = (
     "Absent: the first of discounted, average that the network's current version is solved for."
 )
+SolveModeName = Literal["exact", "priced", "auto"]
+MethodName = Literal["exact", "priced"]
 # Weekdays as the network specification names them (solver.spec.WEEKDAYS), Monday first.
 WeekdayName = Literal["mon", "tue", "wed", "thu", "fri", "sat", "sun"]
 
@@ -137,6 +142,13 @@ class NetworkCreate(NetworkSpec):
         "midnight on creation, unchanged on update. Not part of the specification: changing "
         "it queues no solve.",
     )
+    mode: SolveModeName | None = Field(
+        default=None,
+        description="How the network is solved: exact (every stock state), priced (lane "
+        "prices and per-store values, with a certified optimality gap), or auto: exact while "
+        "the network is within the exact size limits, priced beyond them. Not part of the "
+        "specification's hash. Default auto; on PUT, absent keeps the network's mode.",
+    )
 
     @field_validator("timezone")
     @classmethod
@@ -154,13 +166,14 @@ class NetworkCreate(NetworkSpec):
 
     def spec(self) -> NetworkSpec:
         return NetworkSpec.model_validate(
-            self.model_dump(by_alias=True, exclude={"criteria", "closing_cutoff"})
+            self.model_dump(by_alias=True, exclude={"criteria", "closing_cutoff", "mode"})
         )
 
 
 class NetworkUpdate(NetworkCreate):
     """The next version of a network's specification (send If-Match with the current version).
-    Without `criteria` the next version is solved for the criteria the current one is."""
+    Without `criteria` the next version is solved for the criteria the current one is. A
+    changed `mode` queues the solves of the new method."""
 
     criteria: Criteria | None = Field(  # type: ignore[assignment]
         default=None,
@@ -169,12 +182,29 @@ class NetworkUpdate(NetworkCreate):
     )
 
 
+class JobProgressOut(BaseModel):
+    """The latest progress a running priced solve reported."""
+
+    stage: Literal["pricing", "certifying"] = Field(
+        description="pricing: improving the lane prices; certifying: simulating the policy "
+        "for its lower bound."
+    )
+    iteration: int
+    upper_bound: float = Field(description="Best upper bound on the optimal value so far.")
+    lower_bound: float | None = Field(
+        description="Best lower bound so far (the policy's simulated value); null until certifying."
+    )
+    elapsed: float = Field(description="Seconds since the solve started.")
+    reported_at: Timestamp
+
+
 class JobOut(_Out):
     id: int
     network_id: int = Field(description="The network whose version is solved.")
     version_number: int = Field(description="The network version solved (as in If-Match).")
     version_id: int = Field(description="Internal id of that version's row; prefer the two above.")
     criterion: str
+    method: MethodName = "exact"
     state: Literal["queued", "running", "done", "failed"]
     attempts: int
     created_at: Timestamp
@@ -184,6 +214,15 @@ class JobOut(_Out):
     iterations: int | None
     residual: float | None
     error: str | None
+    progress: JobProgressOut | None = Field(
+        default=None,
+        description="Priced solves: the latest progress reported while running (kept once done).",
+    )
+
+    @field_validator("progress", mode="before")
+    @classmethod
+    def _progress_json(cls, value: Any) -> Any:
+        return json.loads(value) if isinstance(value, str) else value
 
 
 class SolveState(BaseModel):
@@ -206,6 +245,10 @@ class NetworkOut(_Out):
     closing_cutoff: str = Field(
         description="Local time (HH:MM) before which a closing count belongs to the previous "
         "business date; 00:00: midnight."
+    )
+    mode: SolveModeName = Field(description="The solving mode the network asks for.")
+    method: MethodName = Field(
+        description="The method that mode resolves to for the current version."
     )
     solves: list[SolveState]
 
@@ -264,6 +307,25 @@ class RelayOut(BaseModel):
     explanation: str = Field(description="Why units go through this location, in words.")
 
 
+class CertificateOut(BaseModel):
+    """How far a priced policy can be from optimal, certified at one reference stock."""
+
+    reference_stock: dict[str, int]
+    upper_bound: float = Field(
+        description="Lagrangian upper bound on the optimal value at the reference stock: no "
+        "policy can do better."
+    )
+    policy_value: float = Field(description="The priced policy's simulated value there.")
+    policy_value_interval: tuple[float, float] = Field(
+        description="Confidence interval of that value (common random numbers, control variate)."
+    )
+    certified_gap: float = Field(
+        description="(upper bound - low end of the interval) / upper bound, as a fraction: "
+        "0.012 is 1.2%."
+    )
+    replications: int
+
+
 class RecommendationOut(BaseModel):
     network_id: int
     criterion: str
@@ -278,7 +340,10 @@ class RecommendationOut(BaseModel):
         description="When that version's demand and replenishment were estimated from sales "
         "history; null when they were sent as they are."
     )
-    residual: float
+    residual: float | None = Field(
+        description="Bellman residual of the exact solve; null for a priced policy (see "
+        "certificate)."
+    )
     stock: dict[str, int]
     transfers: list[TransferOut] = Field(description="Tonight's moves; empty when none pays.")
     stock_after_transfers: dict[str, int]
@@ -295,7 +360,8 @@ class RecommendationOut(BaseModel):
     value_without_transfers: float
     gain_from_transfers: float
     profit_per_day: float | None = Field(
-        description="Long-run profit per day of the policy (average criterion only)."
+        description="Long-run profit per day of the policy (average criterion only; for a "
+        "priced policy, the upper bound on the optimal profit per day)."
     )
     business_date: date | None = Field(
         default=None,
@@ -304,6 +370,21 @@ class RecommendationOut(BaseModel):
     )
     night: WeekdayName | None = Field(
         default=None, description="Weekday of that business date: the night of the moves."
+    )
+    method: MethodName = Field(
+        default="exact",
+        description="exact: the optimal policy over every stock state; priced: the nightly plan "
+        "from lane prices and per-store values.",
+    )
+    upper_bound: float | None = Field(
+        default=None,
+        description="Priced policies: an upper bound on the optimal value at this stock "
+        "(discounted; under the average criterion, on the optimal profit per day). "
+        "expected_value and value_without_transfers are then on the relaxation's scale. Null "
+        "for exact policies.",
+    )
+    certificate: CertificateOut | None = Field(
+        default=None, description="Priced policies: the solve's certified optimality gap."
     )
 
 
@@ -670,9 +751,10 @@ class IntervalOut(BaseModel):
 
 
 class PolicySimulationOut(BaseModel):
-    name: Literal["optimal", "do_nothing", "balance_cover"] = Field(
-        description="optimal: the solved policy; do_nothing: never move; balance_cover: move "
-        "toward equal days of cover when the move pays for itself the next day."
+    name: Literal["optimal", "priced", "do_nothing", "balance_cover"] = Field(
+        description="optimal: the solved policy; priced: the priced policy's nightly plan (a "
+        "network solved by prices); do_nothing: never move; balance_cover: move toward equal "
+        "days of cover when the move pays for itself the next day."
     )
     profit_per_day: IntervalOut = Field(description="Currency per day, move costs deducted.")
     fill_rate: IntervalOut = Field(description="Units sold / units demanded.")
@@ -682,8 +764,8 @@ class PolicySimulationOut(BaseModel):
     units_moved_per_night: IntervalOut
     move_cost_per_day: IntervalOut
     difference_to_optimal: IntervalOut | None = Field(
-        description="Profit per day minus the optimal policy's on the same days; null for the "
-        "optimal policy itself."
+        description="Profit per day minus the network's policy's (optimal, or priced) on the "
+        "same days; null for that policy itself."
     )
 
 
@@ -790,16 +872,25 @@ class WhatIfRequest(BaseModel):
 
 class WhatIfSummaryOut(BaseModel):
     states: int
+    method: MethodName = "exact"
     profit_per_day: float | None = Field(description="Long-run profit per day (average only).")
     mean_value: float | None = Field(
         description="Expected discounted profit averaged over every stock (discounted only)."
     )
     reference_stock: dict[str, int]
     value_at_reference: float | None = Field(
-        description="Expected discounted profit from the reference stock (discounted only)."
+        description="Expected discounted profit from the reference stock (discounted only; "
+        "null for a priced network)."
     )
-    residual: float
-    error_bound: float
+    upper_bound_at_reference: float | None = Field(
+        default=None,
+        description="Priced networks: the upper bound on the optimal value at the reference stock.",
+    )
+    certified_gap: float | None = Field(
+        default=None, description="Priced networks: the solve's certified gap (a fraction)."
+    )
+    residual: float | None = Field(description="Null for a priced network.")
+    error_bound: float | None = Field(description="Null for a priced network.")
 
 
 class WhatIfChangeOut(BaseModel):
@@ -808,6 +899,7 @@ class WhatIfChangeOut(BaseModel):
     profit_per_day: float | None
     mean_value: float | None
     value_at_reference: float | None
+    upper_bound_at_reference: float | None = None
 
 
 class MoveChangesOut(BaseModel):

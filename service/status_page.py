@@ -132,6 +132,25 @@ class JobLine:
     finished_at: datetime | None
     solve_seconds: float | None
     error: str | None
+    method: str = "exact"
+    # A running priced solve's latest progress, as stored (JSON; see worker.progress_json).
+    progress: str | None = None
+
+    def progress_text(self) -> str:
+        """The progress in a few words ("" when there is none or it cannot be read)."""
+        if self.progress is None:
+            return ""
+        try:
+            report = json.loads(self.progress)
+            text = (
+                f"{report['stage']}, iteration {int(report['iteration'])}, "
+                f"bound {float(report['upper_bound']):,.2f}"
+            )
+            if report.get("lower_bound") is not None:
+                text += f", best lower {float(report['lower_bound']):,.2f}"
+            return text + f", {float(report['elapsed']):,.0f} s"
+        except (ValueError, KeyError, TypeError):
+            return ""
 
 
 @dataclass(frozen=True)
@@ -209,16 +228,21 @@ def _networks(session: Session, tenant_id: int) -> list[NetworkLine]:
             NetworkVersion.number,
             NetworkVersion.spec_hash,
             NetworkVersion.spec_json,
+            NetworkVersion.method,
         )
         .where(Network.tenant_id == tenant_id, Network.archived.is_(False))
         .order_by(Network.id)
     ).all()
     hashes = sorted({row.spec_hash for row in rows})
     policies = {
-        (p.spec_hash, p.criterion): p
+        (p.spec_hash, p.criterion, p.method): p
         for p in session.execute(
             select(
-                Policy.spec_hash, Policy.criterion, Policy.solved_at, Policy.solve_seconds
+                Policy.spec_hash,
+                Policy.criterion,
+                Policy.method,
+                Policy.solved_at,
+                Policy.solve_seconds,
             ).where(Policy.tenant_id == tenant_id, Policy.spec_hash.in_(hashes))
         ).all()
     }
@@ -229,10 +253,10 @@ def _networks(session: Session, tenant_id: int) -> list[NetworkLine]:
             SolveJob.spec_hash.in_(hashes),
             SolveJob.kind == JobKind.SOLVE.value,
         )
-        .group_by(SolveJob.spec_hash, SolveJob.criterion)
+        .group_by(SolveJob.spec_hash, SolveJob.criterion, SolveJob.method)
     )
     jobs = {
-        (job.spec_hash, job.criterion): job
+        (job.spec_hash, job.criterion, job.method): job
         for job in session.scalars(select(SolveJob).where(SolveJob.id.in_(newest_job)))
     }
     closing = _closing(session, [(row.id, row.spec_json) for row in rows])
@@ -241,8 +265,8 @@ def _networks(session: Session, tenant_id: int) -> list[NetworkLine]:
     for row in rows:
         cells = []
         for criterion in CRITERIA:
-            policy = policies.get((row.spec_hash, criterion))
-            job = jobs.get((row.spec_hash, criterion))
+            policy = policies.get((row.spec_hash, criterion, row.method))
+            job = jobs.get((row.spec_hash, criterion, row.method))
             if policy is not None:
                 cells.append(SolveCell(criterion, "ready", policy.solved_at, policy.solve_seconds))
             elif job is None:
@@ -357,6 +381,8 @@ def _jobs(
             finished_at=job.finished_at,
             solve_seconds=job.solve_seconds,
             error=job.error,
+            method=job.method,
+            progress=job.progress if job.state == JobState.RUNNING.value else None,
         )
         for job, number, network_id, name in session.execute(query).all()
     ]
@@ -430,8 +456,10 @@ def _seconds(value: float | None) -> str:
     return "" if value is None else f"{value:.3f} s"
 
 
-def _work(kind: str) -> str:
+def _work(kind: str, method: str = "exact") -> str:
     """What a job does, for people."""
+    if kind == JobKind.SOLVE and method != "exact":
+        return f"{method} solve"
     return {"solve": "solve", "simulate": "simulation", "what_if": "what-if"}.get(kind, kind)
 
 
@@ -481,12 +509,14 @@ def _queue_table(view: StatusView) -> str:
     for job in view.queue:
         if job.state == JobState.RUNNING.value:
             waiting = f"running for {_since(view.now, job.started_at)}"
+            if job.progress_text():
+                waiting += f" · {job.progress_text()}"
         else:
             waiting = f"waiting {_since(view.now, job.created_at)}"
         rows.append(
             f'<tr data-job="{job.id}"><td class="num">{job.id}</td>'
             f'<td>{_e(job.network_name)} <span class="detail">v{job.version}</span></td>'
-            f"<td>{_e(_work(job.kind))}</td><td>{_e(job.criterion)}</td>"
+            f"<td>{_e(_work(job.kind, job.method))}</td><td>{_e(job.criterion)}</td>"
             f"<td>{_badge(job.state)}</td>"
             f'<td class="num">{job.attempts}</td><td>{_e(waiting)}</td></tr>'
         )
@@ -509,7 +539,7 @@ def _recent_table(view: StatusView) -> str:
         rows.append(
             f'<tr data-job="{job.id}"><td class="num">{job.id}</td>'
             f'<td>{_e(job.network_name)} <span class="detail">v{job.version}</span></td>'
-            f"<td>{_e(_work(job.kind))}</td><td>{_e(job.criterion)}</td>"
+            f"<td>{_e(_work(job.kind, job.method))}</td><td>{_e(job.criterion)}</td>"
             f"<td>{_badge(job.state)}</td>"
             f'<td class="num">{job.attempts}</td>'
             f'<td class="num">{_e(_seconds(job.solve_seconds))}</td>'

@@ -9,6 +9,11 @@ only while the lease is still held.
 On SIGTERM or SIGINT the worker stops claiming, lets the current solve finish within a grace
 period, and otherwise gives the job back to the queue before exiting.
 
+A priced solve (the job's `method`, service.modes) runs solver.solve_priced, which reports its
+progress to the solve thread's slot; the worker thread writes the latest into the job, at most
+once per PROGRESS_SECONDS and in a short transaction of its own, for /v1/jobs, the status page
+and the metrics.
+
 Simulations and what-if comparisons come through the same queue (the job's `kind`) and run the
 same way, in a background thread under a renewed lease; their JSON report is stored, and the
 job marked done, in one statement while the lease is held. A simulation uses the network's
@@ -33,14 +38,17 @@ from pydantic import ValidationError
 from sqlalchemy.orm import Session, sessionmaker
 
 from service import analysis
-from service.codec import CorruptPolicyError, decode_policy, encode_policy
+from service.codec import CorruptPolicyError, StoredPolicy, decode_policy, encode_policy
 from service.db import repository
-from service.db.tables import JobKind, NetworkVersion
+from service.db.base import utcnow
+from service.db.tables import JobKind, NetworkVersion, SolveMethod
 from service.schemas import SimulationRequest, WhatIfRequest
 from service.settings import Settings
-from solver import NetworkSpec, PolicyResult, SolverError, solve_network
+from solver import Criterion, NetworkSpec, SolverError, solve_network
+from solver.priced import solve_priced
+from solver.priced_result import PricedProgress
 
-__all__ = ["Worker"]
+__all__ = ["PROGRESS_SECONDS", "Worker", "progress_json"]
 
 log = logging.getLogger(__name__)
 
@@ -48,6 +56,8 @@ log = logging.getLogger(__name__)
 _SHUTDOWN_GRACE_SECONDS = 10.0
 # How often a worker waiting on a solve looks at its stop flag.
 _WAIT_SLICE_SECONDS = 0.1
+# Least time between two progress writes of one running solve.
+PROGRESS_SECONDS = 1.0
 
 
 @dataclass(frozen=True)
@@ -61,24 +71,52 @@ class _Claimed:
     params: str | None
     tenant_id: int
     spec_hash: str
+    method: str
+    mode: str
+
+
+def progress_json(progress: PricedProgress) -> str:
+    """A priced solve's progress as stored in the job (see schemas.JobProgressOut)."""
+    return json.dumps(
+        {
+            "stage": progress.stage,
+            "iteration": progress.iteration,
+            "upper_bound": progress.upper_bound,
+            "lower_bound": progress.lower_bound,
+            "elapsed": progress.elapsed,
+            "reported_at": utcnow().isoformat(),
+        },
+        allow_nan=False,
+        separators=(",", ":"),
+    )
 
 
 class _Solve(threading.Thread):
     """Runs one solve; daemon, so a worker that gives up on it can still exit."""
 
-    def __init__(self, spec: NetworkSpec, criterion: str, settings: Settings) -> None:
+    def __init__(self, spec: NetworkSpec, criterion: str, method: str, settings: Settings) -> None:
         super().__init__(daemon=True, name="stockrelay-solve")
-        self.spec, self.criterion, self.settings = spec, criterion, settings
-        self.result: PolicyResult | None = None
+        self.spec, self.criterion, self.method, self.settings = spec, criterion, method, settings
+        self.result: StoredPolicy | None = None
         self.error: BaseException | None = None
+        # The latest progress of a priced solve, and how many reports have come (the worker
+        # thread compares the count with the last it wrote).
+        self.progress: PricedProgress | None = None
+        self.reports = 0
+
+    def _report(self, progress: PricedProgress) -> None:
+        self.progress = progress
+        self.reports += 1
 
     def run(self) -> None:
+        criterion: Criterion = "average" if self.criterion == "average" else "discounted"
         try:
-            self.result = solve_network(
-                self.spec,
-                criterion="average" if self.criterion == "average" else "discounted",
-                limits=self.settings.size_limits,
-            )
+            if self.method == SolveMethod.PRICED:
+                self.result = solve_priced(self.spec, criterion=criterion, progress=self._report)
+            else:
+                self.result = solve_network(
+                    self.spec, criterion=criterion, limits=self.settings.size_limits
+                )
         except BaseException as exc:  # handed to the worker thread, which decides
             self.error = exc
 
@@ -90,7 +128,7 @@ class _Analyse(threading.Thread):
         self,
         claimed: _Claimed,
         spec: NetworkSpec,
-        optimal: PolicyResult | None,
+        optimal: StoredPolicy | None,
         settings: Settings,
     ) -> None:
         super().__init__(daemon=True, name=f"stockrelay-{claimed.kind}")
@@ -120,11 +158,16 @@ class _Analyse(threading.Thread):
                 self.optimal,
                 limits=limits,
                 max_replication_days=self.settings.simulation_max_replication_days,
+                method=self.claimed.method,
             )
         if kind == JobKind.WHAT_IF:
             request = WhatIfRequest.model_validate_json(params)
             return analysis.run_what_if(
-                self.spec, request.overrides, criterion=request.criterion, limits=limits
+                self.spec,
+                request.overrides,
+                criterion=request.criterion,
+                limits=limits,
+                mode=self.claimed.mode,
             )
         raise ValueError(f"unknown job kind {kind!r}")
 
@@ -195,6 +238,8 @@ class Worker:
                 job.params,
                 job.tenant_id,
                 job.spec_hash,
+                version.method,
+                version.network.mode,
             )
 
     def _handle(self, claimed: _Claimed) -> None:
@@ -214,7 +259,7 @@ class Worker:
 
         solve: _Solve | _Analyse
         if claimed.kind == JobKind.SOLVE:
-            solve = _Solve(spec, claimed.criterion, self.settings)
+            solve = _Solve(spec, claimed.criterion, claimed.method, self.settings)
         else:
             solve = _Analyse(claimed, spec, self._stored_policy(claimed), self.settings)
         solve.start()
@@ -233,18 +278,21 @@ class Worker:
             return
         assert solve.result is not None
         if isinstance(solve, _Solve):
+            if solve.progress is not None:
+                # The last report, which the throttle may have held back.
+                self._write_progress(claimed, solve.progress)
             self._store(claimed, solve.result)
         else:
             self._store_report(claimed, solve.result, solve.seconds)
 
-    def _stored_policy(self, claimed: _Claimed) -> PolicyResult | None:
+    def _stored_policy(self, claimed: _Claimed) -> StoredPolicy | None:
         """The stored optimal policy a simulation compares against; None when there is none
         (or it is corrupt: the read path repairs it), and the simulation solves its own."""
         if claimed.kind != JobKind.SIMULATE:
             return None
         with self.sessions() as session:
             row = repository.policy_for(
-                session, claimed.tenant_id, claimed.spec_hash, claimed.criterion
+                session, claimed.tenant_id, claimed.spec_hash, claimed.criterion, claimed.method
             )
             if row is None:
                 return None
@@ -263,11 +311,21 @@ class Worker:
         grace = min(_SHUTDOWN_GRACE_SECONDS, self.settings.lease_seconds / 2)
         renewed_at = time.monotonic()
         stop_requested_at: float | None = None
+        written, written_at = 0, -PROGRESS_SECONDS
         while True:
             solve.join(timeout=min(_WAIT_SLICE_SECONDS, renew_every))
             if not solve.is_alive():
                 return True
             now = time.monotonic()
+            progress = solve.progress if isinstance(solve, _Solve) else None
+            if (
+                progress is not None
+                and isinstance(solve, _Solve)
+                and solve.reports > written
+                and now - written_at >= PROGRESS_SECONDS
+            ):
+                written, written_at = solve.reports, now
+                self._write_progress(claimed, progress)
             if self.stopping.is_set():
                 stop_requested_at = stop_requested_at or now
                 if now - stop_requested_at > grace:
@@ -288,12 +346,16 @@ class Worker:
                 log.warning("job %d: lease lost; leaving it to its new owner", claimed.job_id)
                 return False
 
+    def _write_progress(self, claimed: _Claimed, progress: PricedProgress) -> None:
+        with self.sessions.begin() as session:
+            repository.record_progress(session, claimed.job_id, self.owner, progress_json(progress))
+
     def _fail(self, claimed: _Claimed, error: str, *, retry: bool = False) -> None:
         with self.sessions.begin() as session:
             repository.finish_job(session, claimed.job_id, self.owner, error=error, retry=retry)
         log.warning("job %d: %s: %s", claimed.job_id, "will retry" if retry else "failed", error)
 
-    def _store(self, claimed: _Claimed, result: PolicyResult) -> None:
+    def _store(self, claimed: _Claimed, result: StoredPolicy) -> None:
         encoded = encode_policy(result)
         with self.sessions.begin() as session:
             job = repository.get_job(session, claimed.job_id)
@@ -302,11 +364,11 @@ class Worker:
             )
         if stored:
             log.info(
-                "job %d: done in %.3f s, %d iterations, residual %.3g",
+                "job %d: %s solve done in %.3f s, %d iterations",
                 claimed.job_id,
+                claimed.method,
                 result.seconds["total"],
                 result.iterations,
-                result.residual,
             )
         else:
             log.warning("job %d: lease lost before the policy was stored", claimed.job_id)

@@ -1,5 +1,6 @@
 """stockrelay's solver: optimal overnight transfer policies for retail networks, computed exactly
-as Markov decision processes. Pure numpy/scipy; no I/O."""
+as Markov decision processes, or for large networks by price decomposition with a certified gap
+(solver.priced). Pure numpy/scipy; no I/O."""
 
 from __future__ import annotations
 
@@ -17,6 +18,14 @@ from solver.errors import (
 )
 from solver.model import TransferModel
 from solver.policy_iteration import solve_modified_policy_iteration, solve_policy_iteration
+from solver.priced import (
+    PricedLimits,
+    check_priced_size,
+    evaluate_plan_average,
+    evaluate_plan_exactly,
+    solve_priced,
+)
+from solver.priced_result import Certificate, PricedOptions, PricedPolicy, PricedProgress
 from solver.result import (
     Alternative,
     Criterion,
@@ -29,6 +38,7 @@ from solver.spec import NetworkSpec
 
 __all__ = [
     "Alternative",
+    "Certificate",
     "Criterion",
     "InvalidModelError",
     "InvalidStockError",
@@ -36,6 +46,10 @@ __all__ = [
     "NetworkSpec",
     "NotUnichainError",
     "PolicyResult",
+    "PricedLimits",
+    "PricedOptions",
+    "PricedPolicy",
+    "PricedProgress",
     "Progress",
     "ProgressCallback",
     "Recommendation",
@@ -43,9 +57,13 @@ __all__ = [
     "SolverError",
     "TransferModel",
     "build_transfer_model",
+    "check_priced_size",
+    "evaluate_plan_average",
+    "evaluate_plan_exactly",
     "solve_modified_policy_iteration",
     "solve_network",
     "solve_policy_iteration",
+    "solve_priced",
 ]
 
 Method = Literal["howard", "modified", "value-iteration"]

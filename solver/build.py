@@ -135,7 +135,8 @@ def _layout(spec: NetworkSpec, limits: SizeLimits) -> _Layout:
     if n_states > limits.max_states:
         raise ModelTooLargeError(
             f"network has {sizes}, more than the limit of "
-            f"{limits.max_states:,} (capacities {', '.join(map(str, capacities))})",
+            f"{limits.max_states:,} (capacities {', '.join(map(str, capacities))}); "
+            "use mode 'priced' for networks this large",
             states=n_states,
             pairs=None,
         )
@@ -166,8 +167,8 @@ def _layout(spec: NetworkSpec, limits: SizeLimits) -> _Layout:
     if n_pairs > limits.max_pairs:
         raise ModelTooLargeError(
             f"network has {sizes} and {n_pairs:,} feasible state-transfer pairs, more than "
-            f"the limit of {limits.max_pairs:,} pairs; lower lane limits or capacities, or set "
-            "max_units_per_night",
+            f"the limit of {limits.max_pairs:,} pairs; lower lane limits or capacities, set "
+            "max_units_per_night, or use mode 'priced' for networks this large",
             states=n_states,
             pairs=n_pairs,
         )
@@ -249,7 +250,8 @@ def _enumerate_flows(
         if flows.shape[0] > limits.max_flows:
             raise ModelTooLargeError(
                 f"lanes allow more than {limits.max_flows:,} combinations of moves in one "
-                "night; lower lane limits or set max_units_per_night",
+                "night; lower lane limits, set max_units_per_night, or use mode 'priced' for "
+                "networks this large",
                 states=int(np.prod(capacities + 1)),
                 pairs=None,
             )

@@ -20,6 +20,7 @@ from service.analysis import apply_overrides, check_simulation, new_seed, run_wh
 from service.api.deps import JobId, NetworkId, Reader, SessionDep, SettingsDep, get_network
 from service.db import repository
 from service.db.tables import JobKind, Network, NetworkVersion, SolveJob
+from service.modes import resolve_method
 from service.problems import NotFound, RateLimited
 from service.schemas import (
     SimulationJobOut,
@@ -107,7 +108,8 @@ def start_simulation(
     response: Response,
 ) -> SimulationJobOut:
     """Queue a simulation of the current version: its optimal policy, moving nothing, and
-    balancing days of cover, on the same simulated days. The answer names the seed; the same
+    balancing days of cover, on the same simulated days (a priced network: its priced plan and
+    moving nothing). The answer names the seed; the same
     seed gives the same report. 422 when the start stock does not fit the network or the
     simulation is longer than the limit allows."""
     network = get_network(session, caller.tenant_id, network_id)
@@ -117,6 +119,7 @@ def start_simulation(
         body,
         limits=settings.size_limits,
         max_replication_days=settings.simulation_max_replication_days,
+        method=version.method,
     )
     _check_analysis_cap(session, caller.tenant_id, settings)
     params = body.model_copy(update={"seed": new_seed() if body.seed is None else body.seed})
@@ -170,16 +173,22 @@ def what_if(
     settings: SettingsDep,
 ) -> WhatIfOut | JSONResponse:
     """Solve the current version and the version the overrides would make, and compare their
-    optimal values and moves. Answered at once when both networks are small, else queued (202
-    with the job). 422 naming unknown locations and lanes, every problem of the changed
-    network, and the sizes of one over the solver's limits."""
+    optimal values and moves. Answered at once when both networks are small and exact, else
+    queued (202 with the job); priced networks compare upper bounds. 422 naming unknown
+    locations and lanes, every problem of the changed network, and the sizes of one over the
+    solver's limits."""
     network = get_network(session, caller.tenant_id, network_id)
     version, spec = _current(session, network)
     changed = apply_overrides(spec, body.overrides)
-    states = max(check_size(candidate, settings.size_limits)[0] for candidate in (spec, changed))
-    if states <= settings.what_if_sync_max_states:
+    limits = settings.size_limits
+    methods = {resolve_method(candidate, network.mode, limits) for candidate in (spec, changed)}
+    # Priced networks are large, or asked for: their comparisons always go to a worker.
+    if methods == {"exact"} and (
+        max(check_size(candidate, limits)[0] for candidate in (spec, changed))
+        <= settings.what_if_sync_max_states
+    ):
         result = run_what_if(
-            spec, body.overrides, criterion=body.criterion, limits=settings.size_limits
+            spec, body.overrides, criterion=body.criterion, limits=limits, mode=network.mode
         )
         return WhatIfOut(network_id=network.id, version=version.number, **result)
     _check_analysis_cap(session, caller.tenant_id, settings)

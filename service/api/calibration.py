@@ -31,6 +31,7 @@ from service.db import repository
 from service.db.base import utcnow
 from service.db.repository import SalesRow
 from service.db.tables import CalibrationSettings, Network, SolveJob
+from service.modes import resolve_method
 from service.problems import PROBLEM_RESPONSES, Conflict, InvalidInput, UnsupportedMedia
 from service.schemas import (
     MAX_HISTORY_ROWS,
@@ -52,7 +53,6 @@ from service.schemas import (
 )
 from service.settings import Settings
 from solver import ModelTooLargeError, NetworkSpec
-from solver.build import check_size
 from solver.calibration import CountEstimate, WeekdayEffect
 from solver.spec import WEEKDAYS
 
@@ -301,14 +301,14 @@ def _auto_apply(
             jobs=[],
         )
     try:
-        check_size(proposal.spec, settings.size_limits)
+        method = resolve_method(proposal.spec, network.mode, settings.size_limits)
     except ModelTooLargeError as exc:
         # The upload is kept; only the automatic version is not made (a weekly proposal has
         # seven times the states of the network it comes from).
         return AutoApplyOut(
             applied=False, reason=f"the proposed version is too large: {exc}", version=None, jobs=[]
         )
-    number, jobs = _apply(session, network, proposal)
+    number, jobs = _apply(session, network, proposal, method)
     return AutoApplyOut(
         applied=True,
         reason=f"largest change {moved:.1%} exceeds the threshold {threshold:.1%}",
@@ -455,11 +455,13 @@ def get_calibration(
     return _calibration_out(network, proposal)
 
 
-def _apply(session: Session, network: Network, proposal: Proposal) -> tuple[int, list[SolveJob]]:
+def _apply(
+    session: Session, network: Network, proposal: Proposal, method: str
+) -> tuple[int, list[SolveJob]]:
     criteria = repository.criteria_requested(
         session, network.tenant_id, proposal.based_on.spec_hash
     ) or ["discounted"]
-    version, jobs = apply_proposal(session, network, proposal, criteria, utcnow())
+    version, jobs = apply_proposal(session, network, proposal, criteria, utcnow(), method=method)
     return version.number, jobs
 
 
@@ -489,8 +491,8 @@ def apply_calibration(
         raise Conflict(f"no location of network {network.id} can be estimated ({reasons})")
     if repository.canonical_spec(proposal.spec)[1] == current.spec_hash:
         raise Conflict(f"the estimates equal version {current.number}'s parameters already")
-    check_size(proposal.spec, settings.size_limits)
-    number, jobs = _apply(session, network, proposal)
+    method = resolve_method(proposal.spec, network.mode, settings.size_limits)
+    number, jobs = _apply(session, network, proposal, method)
     response.headers["ETag"] = etag(number)
     response.headers["Location"] = f"/v1/networks/{network.id}"
     return network_out(session, network, jobs)

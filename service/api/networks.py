@@ -9,11 +9,11 @@ from fastapi import APIRouter, Header, Response, status
 from service.api.deps import NetworkId, Reader, SessionDep, SettingsDep, Writer, get_network
 from service.api.views import network_out
 from service.db import repository
-from service.db.tables import Tenant
+from service.db.tables import SolveMode, Tenant
+from service.modes import resolve_method
 from service.problems import Conflict, PreconditionFailed, PreconditionRequired
 from service.schemas import NetworkCreate, NetworkCreated, NetworkOut, NetworkUpdate, VersionOut
 from solver import NetworkSpec
-from solver.build import check_size
 
 router = APIRouter(prefix="/v1/networks", tags=["networks"])
 
@@ -48,15 +48,18 @@ def create_network(
     response: Response,
 ) -> NetworkOut:
     """Store a new network as version 1 and queue its solves; 422 with the sizes when it is
-    larger than the solver accepts."""
+    larger than its solving mode accepts."""
     spec = body.spec()
-    check_size(spec, settings.size_limits)
+    mode = body.mode or SolveMode.AUTO.value
+    method = resolve_method(spec, mode, settings.size_limits)
     if repository.network_by_name(session, caller.tenant_id, spec.name) is not None:
         raise Conflict(
             f"a network named {spec.name!r} exists already; PUT /v1/networks/{{id}} adds a version"
         )
     tenant = session.get_one(Tenant, caller.tenant_id)
-    network, version, jobs = repository.create_network(session, tenant, spec, body.criteria)
+    network, version, jobs = repository.create_network(
+        session, tenant, spec, body.criteria, mode=mode, method=method
+    )
     network.closing_cutoff = body.closing_cutoff
     response.headers["Location"] = f"/v1/networks/{network.id}"
     response.headers["ETag"] = etag(version.number)
@@ -95,13 +98,15 @@ def update_network(
     response: Response,
     if_match: IfMatch = None,
 ) -> NetworkOut:
-    """Add the next version; If-Match must name the current version."""
+    """Add the next version; If-Match must name the current version. An absent `mode` keeps the
+    network's; a mode that changes the method queues the new method's solves."""
     network = get_network(session, caller.tenant_id, network_id)
     current = repository.latest_version(session, network.id)
     assert current is not None
     check_if_match(network_id, current.number, if_match)
     spec: NetworkSpec = body.spec()
-    check_size(spec, settings.size_limits)
+    mode = body.mode or network.mode
+    method = resolve_method(spec, mode, settings.size_limits)
     if spec.name != network.name:
         other = repository.network_by_name(session, caller.tenant_id, spec.name)
         if other is not None and other.id != network.id:
@@ -114,7 +119,8 @@ def update_network(
         or repository.criteria_requested(session, network.tenant_id, current.spec_hash)
         or ["discounted"]
     )
-    version, jobs = repository.add_version(session, network, spec, criteria)
+    network.mode = mode
+    version, jobs = repository.add_version(session, network, spec, criteria, method=method)
     if body.closing_cutoff is not None:
         network.closing_cutoff = body.closing_cutoff
     if current.calibrated_at is not None and _same_laws(

@@ -13,6 +13,7 @@ from fastapi.responses import Response
 from sqlalchemy.orm import Session
 
 from service.api.deps import CacheDep, NetworkId, Reader, SessionDep, get_network
+from service.codec import StoredPolicy
 from service.db.tables import Network
 from service.pictures import (
     ANNOTATE_MAX_CELLS,
@@ -32,7 +33,7 @@ from service.policies import PolicyCache, ServedPolicy, business_date_of, load_p
 from service.problems import POLICY_NOT_READY, InvalidInput
 from service.schemas import DEFAULT_CRITERION_RULE, CriterionName
 from service.schemas import WeekdayName as Weekday
-from solver import PolicyResult
+from solver.priced_result import PricedPolicy
 from solver.spec import WEEKDAYS
 
 router = APIRouter(tags=["pictures"])
@@ -60,7 +61,7 @@ _MOVES = (
 _VALUES = (
     "A heatmap of the policy's value by closing stock of the x and y locations: expected "
     "discounted profit (discounted), or relative value, 0 when every location is empty "
-    "(average)."
+    "(average). For a priced network: the upper bound on the optimal value at each stock."
 )
 
 
@@ -111,7 +112,7 @@ async def plane_query(
 
 
 def _phase(
-    session: Session, network: Network, result: PolicyResult, query: PlaneQuery
+    session: Session, network: Network, result: StoredPolicy, query: PlaneQuery
 ) -> tuple[int, str]:
     """The phase to draw and the words for it in a title ("" for a stationary policy)."""
     if result.phases == 1:
@@ -233,6 +234,13 @@ def _values(
     network, served, plane = _served_plane(session, cache, tenant_id, network_id, criterion, query)
     phase, night = _phase(session, network, served.result, query)
     subject = f"version {served.version_number} · value of the {served.criterion} policy{night}"
+    label = value_label(served.criterion)
+    if isinstance(served.result, PricedPolicy):
+        subject = (
+            f"version {served.version_number} · upper bound, {served.criterion} priced "
+            f"policy{night}"
+        )
+        label = f"upper bound on the optimal value: {label}"
     if served.result.gain is not None:
         subject += f", profit per day {served.result.gain:,.2f}"
     body = render_values(
@@ -240,7 +248,7 @@ def _values(
         x_id=plane.x_id,
         y_id=plane.y_id,
         title=caption(network.name, subject, plane),
-        colour_label=value_label(served.criterion),
+        colour_label=label,
         image_format=image_format,
     )
     return _image(body, image_format, served)

@@ -3,7 +3,12 @@
 Every CSV row starts with the `version` and `criterion` of the policy served (so that a file
 saved on its own still says what it is; any CSV reader takes them as two more columns). A weekly
 network's policy has one table per weekday of the closing count: its rows go on with a
-`weekday` column (mon .. sun), Monday's rows first; a stationary policy has no such column."""
+`weekday` column (mon .. sun), Monday's rows first; a stationary policy has no such column.
+
+A priced policy has no stored table: its JSON export gives its lane prices, per-store values and
+certificate, and the rows (the plan and the upper bound at every stock, computed on the fly) only
+when its stock states fit the export limit (service.priced.FULL_TABLE_MAX_STATES); its CSV export
+is the table, and refused beyond that limit."""
 
 from __future__ import annotations
 
@@ -17,9 +22,12 @@ from fastapi import APIRouter, Query
 from fastapi.responses import StreamingResponse
 
 from service.api.deps import CacheDep, NetworkId, Reader, SessionDep, get_network
+from service.api.views import certificate_out
 from service.policies import ServedPolicy, load_policy
-from service.problems import POLICY_NOT_READY
+from service.priced import FULL_TABLE_MAX_STATES, all_stocks
+from service.problems import POLICY_NOT_READY, InvalidInput
 from service.schemas import DEFAULT_CRITERION_RULE, CriterionName
+from solver.priced_result import PricedPolicy
 from solver.spec import WEEKDAYS
 
 router = APIRouter(tags=["policies"])
@@ -34,7 +42,10 @@ _EXPORT_DOC: dict[int | str, dict[str, Any]] = {
         "location, the units on each lane (`from->to`), the value; for a network with weekly "
         "fields the stock is preceded by the `weekday` of the closing count (mon .. sun), one "
         "table per weekday. JSON: the same rows (without version and criterion) under `rows`, "
-        "with `columns`, `version`, `criterion` and `profit_per_day`.",
+        "with `columns`, `version`, `criterion` and `profit_per_day`. A priced network (`method` "
+        "priced) has the plan at each stock and its `upper_bound` in place of the value, "
+        "`prices`, `network_price`, `store_values` and its `certificate`; its `rows` only when "
+        f"it has at most {FULL_TABLE_MAX_STATES:,} stock states (CSV: refused beyond).",
         "content": {"text/csv": {"schema": {"type": "string"}}, "application/json": {}},
     },
 }
@@ -53,6 +64,15 @@ def export_policy(
 ) -> StreamingResponse:
     network = get_network(session, caller.tenant_id, network_id)
     served = load_policy(session, cache, network, criterion)
+    result = served.result
+    fits = result.n_states * result.phases <= FULL_TABLE_MAX_STATES
+    if isinstance(result, PricedPolicy) and format == "csv" and not fits:
+        raise InvalidInput(
+            f"network {network_id} is priced and has {result.n_states:,} stock states, more "
+            f"than the {FULL_TABLE_MAX_STATES:,} a table lists; format=json gives its prices "
+            "and per-store values",
+            [("query:/format", "csv lists every stock state; use json")],
+        )
     headers = {
         "X-Policy-Version": str(served.version_number),
         "Content-Disposition": f'attachment; filename="network-{network_id}-policy.{format}"',
@@ -69,7 +89,8 @@ def _columns(served: ServedPolicy) -> list[str]:
     ids = result.location_ids
     lanes = [f"{ids[a]}->{ids[b]}" for a, b in result.lanes]
     weekday = ["weekday"] if result.phases > 1 else []
-    return [*weekday, *ids, *lanes, "value"]
+    last = "upper_bound" if isinstance(result, PricedPolicy) else "value"
+    return [*weekday, *ids, *lanes, last]
 
 
 def _chunks(served: ServedPolicy) -> Iterator[tuple[list[str], np.ndarray, np.ndarray, np.ndarray]]:
@@ -78,7 +99,13 @@ def _chunks(served: ServedPolicy) -> Iterator[tuple[list[str], np.ndarray, np.nd
     for phase in range(result.phases):
         lead = [WEEKDAYS[phase]] if result.phases > 1 else []
         for start in range(0, result.n_states, _ROWS_PER_CHUNK):
-            index = np.arange(start, min(start + _ROWS_PER_CHUNK, result.n_states))
+            stop = min(start + _ROWS_PER_CHUNK, result.n_states)
+            if isinstance(result, PricedPolicy):
+                stock = all_stocks(result, start, stop)
+                bounds = [result.upper_bound(s, phase=phase) for s in stock.tolist()]
+                yield lead, stock, result.plan_batch(stock, phase=phase), np.array(bounds)
+                continue
+            index = np.arange(start, stop)
             stock = np.stack(np.unravel_index(index, result.shape), axis=1)
             flows = result.flows[result.action[phase, index]]
             yield lead, stock, flows, result.values[phase, index]
@@ -95,13 +122,19 @@ def _csv(served: ServedPolicy) -> Iterator[str]:
 
 
 def _json(served: ServedPolicy, network_id: NetworkId) -> Iterator[str]:
-    head = {
+    result = served.result
+    head: dict[str, Any] = {
         "network_id": network_id,
         "version": served.version_number,
         "criterion": served.criterion,
-        "profit_per_day": served.result.gain,
+        "profit_per_day": result.gain,
         "columns": _columns(served),
     }
+    if isinstance(result, PricedPolicy):
+        head |= _priced_head(result)
+        if result.n_states * result.phases > FULL_TABLE_MAX_STATES:
+            yield json.dumps(head)
+            return
     yield json.dumps(head)[:-1] + ', "rows": ['
     first = True
     for lead, stock, flows, values in _chunks(served):
@@ -113,3 +146,19 @@ def _json(served: ServedPolicy, network_id: NetworkId) -> Iterator[str]:
         yield text if first else "," + text
         first = False
     yield "]}"
+
+
+def _priced_head(result: PricedPolicy) -> dict[str, Any]:
+    """A priced policy's prices (per phase, per lane and for the network limit; currency per
+    unit), each store's values by stock (per phase; index = units on hand) and certificate."""
+    return {
+        "method": "priced",
+        "prices": np.asarray(result.prices).tolist(),
+        "network_price": np.asarray(result.network_price).tolist(),
+        "store_values": {
+            location: np.asarray(values).tolist()
+            for location, values in zip(result.location_ids, result.store_values, strict=True)
+        },
+        "certificate": certificate_out(result).model_dump(mode="json"),
+        "rows_omitted": result.n_states * result.phases > FULL_TABLE_MAX_STATES,
+    }

@@ -3,13 +3,17 @@
 from __future__ import annotations
 
 from datetime import date, time
+from typing import Any
 
+import numpy as np
 from sqlalchemy.orm import Session
 
+from service.codec import StoredPolicy
 from service.db import repository
 from service.db.tables import JobState, Network, SolveJob
 from service.policies import ServedPolicy
 from service.schemas import (
+    CertificateOut,
     JobOut,
     NetworkCreated,
     NetworkOut,
@@ -18,10 +22,11 @@ from service.schemas import (
     SolveState,
     TransferOut,
 )
-from solver import PolicyResult, Recommendation
+from solver import Recommendation
+from solver.priced_result import PricedPolicy
 from solver.spec import WEEKDAYS
 
-__all__ = ["network_out", "recommendation_out", "relays_of", "transfers_of"]
+__all__ = ["certificate_out", "network_out", "recommendation_out", "relays_of", "transfers_of"]
 
 CRITERIA = ("discounted", "average")
 
@@ -33,13 +38,17 @@ def network_out(
     assert version is not None, "a network always has a version"
     solves = []
     for criterion in CRITERIA:
-        policy = repository.policy_for(session, network.tenant_id, version.spec_hash, criterion)
+        policy = repository.policy_for(
+            session, network.tenant_id, version.spec_hash, criterion, version.method
+        )
         if policy is not None:
             solves.append(
                 SolveState(criterion=criterion, state="ready", solved_at=policy.solved_at)
             )
             continue
-        history = repository.jobs_for(session, network.tenant_id, version.spec_hash, criterion)
+        history = repository.jobs_for(
+            session, network.tenant_id, version.spec_hash, criterion, version.method
+        )
         if not history:
             solves.append(SolveState(criterion=criterion, state="not_requested"))
             continue
@@ -61,6 +70,8 @@ def network_out(
         "version": version.number,
         "spec_hash": version.spec_hash,
         "closing_cutoff": (network.closing_cutoff or time(0)).strftime("%H:%M"),
+        "mode": network.mode,
+        "method": version.method,
         "solves": solves,
     }
     if jobs is None:
@@ -68,7 +79,7 @@ def network_out(
     return NetworkCreated(**fields, jobs=[JobOut.model_validate(job) for job in jobs])
 
 
-def transfers_of(result: PolicyResult, flows: tuple[int, ...]) -> list[TransferOut]:
+def transfers_of(result: StoredPolicy, flows: tuple[int, ...]) -> list[TransferOut]:
     ids = result.location_ids
     return [
         TransferOut(from_=ids[a], to=ids[b], units=units, unit_cost=float(result.lane_costs[lane]))
@@ -77,13 +88,19 @@ def transfers_of(result: PolicyResult, flows: tuple[int, ...]) -> list[TransferO
     ]
 
 
-def relays_of(result: PolicyResult, transfers: list[TransferOut]) -> list[RelayOut]:
+def relays_of(result: StoredPolicy, transfers: list[TransferOut]) -> list[RelayOut]:
     """Every location that receives and sends tonight, in network order, with the reason units
     go through it rather than straight from each origin to each destination."""
+    # Most units a lane carries on any night: the largest flow of the exact policy's table, or
+    # the priced policy's lane limits.
+    if isinstance(result, PricedPolicy):
+        most = np.asarray(result.lane_limits).max(axis=0)
+    else:
+        most = result.flows.max(axis=0)
     lanes = {
         (result.location_ids[a], result.location_ids[b]): (
             float(result.lane_costs[lane]),
-            int(result.flows[:, lane].max()),
+            int(most[lane]),
         )
         for lane, (a, b) in enumerate(result.lanes)
     }
@@ -162,6 +179,16 @@ def recommendation_out(
     result = served.result
     ids = result.location_ids
     transfers = transfers_of(result, recommendation.flows)
+    priced: dict[str, Any] = {}
+    if isinstance(result, PricedPolicy):
+        phase = 0 if business_date is None else result.phase_of(business_date.weekday())
+        priced = {
+            "method": "priced",
+            "residual": None,
+            "upper_bound": result.upper_bound(recommendation.stock, phase=phase),
+            "certificate": certificate_out(result),
+        }
+    fields: dict[str, Any] = {"residual": getattr(result, "residual", None), **priced}
     return RecommendationOut(
         network_id=network_id,
         criterion=served.criterion,
@@ -169,7 +196,6 @@ def recommendation_out(
         stale=served.stale,
         solved_at=served.solved_at,
         parameters_calibrated_at=served.calibrated_at,
-        residual=result.residual,
         stock=dict(zip(ids, recommendation.stock, strict=True)),
         transfers=transfers,
         stock_after_transfers=dict(zip(ids, recommendation.post_move_stock, strict=True)),
@@ -181,4 +207,20 @@ def recommendation_out(
         profit_per_day=result.gain,
         business_date=business_date,
         night=None if business_date is None else WEEKDAYS[business_date.weekday()],
+        **fields,
+    )
+
+
+def certificate_out(result: PricedPolicy) -> CertificateOut:
+    certificate = result.certificate
+    low, high = certificate.policy_value_interval
+    return CertificateOut(
+        reference_stock=dict(
+            zip(result.location_ids, (int(u) for u in certificate.reference_stock), strict=True)
+        ),
+        upper_bound=certificate.upper_bound,
+        policy_value=certificate.policy_value,
+        policy_value_interval=(low, high),
+        certified_gap=certificate.certified_gap,
+        replications=certificate.replications,
     )

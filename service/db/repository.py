@@ -52,6 +52,7 @@ from service.db.tables import (
     Tenant,
 )
 from solver import NetworkSpec, PolicyResult
+from solver.priced_result import PricedPolicy
 
 __all__ = [
     "LocationHistory",
@@ -78,11 +79,13 @@ __all__ = [
     "live_versions_newest_first",
     "network_by_name",
     "policy_for",
+    "record_progress",
     "release_job",
     "renew_lease",
     "retry_job",
     "sales_history",
     "sales_history_summary",
+    "solve_accuracy",
     "store_analysis",
     "store_policy",
     "store_sales_history",
@@ -142,6 +145,7 @@ class VersionHead:
     number: int
     spec_hash: str
     calibrated_at: datetime | None
+    method: str
 
 
 # Built once: the read path runs it on every recommendation, and SQLAlchemy then reuses the
@@ -152,6 +156,7 @@ _LIVE_VERSIONS = (
         NetworkVersion.number,
         NetworkVersion.spec_hash,
         NetworkVersion.calibrated_at,
+        NetworkVersion.method,
     )
     .join(Network, Network.id == NetworkVersion.network_id)
     .where(
@@ -215,21 +220,33 @@ def current_spec(session: Session, network_id: int) -> NetworkSpec:
 
 
 def create_network(
-    session: Session, tenant: Tenant, spec: NetworkSpec, criteria: Iterable[str]
+    session: Session,
+    tenant: Tenant,
+    spec: NetworkSpec,
+    criteria: Iterable[str],
+    *,
+    mode: str = "auto",
+    method: str = "exact",
 ) -> tuple[Network, NetworkVersion, list[SolveJob]]:
-    """A new network with version 1 of `spec`, and the solve jobs it needs."""
-    network = Network(tenant_id=tenant.id, name=spec.name)
+    """A new network asking for solving `mode`, with version 1 of `spec` solved by `method`
+    (the mode resolved for it), and the solve jobs it needs."""
+    network = Network(tenant_id=tenant.id, name=spec.name, mode=mode)
     session.add(network)
     session.flush()
-    version, jobs = add_version(session, network, spec, criteria)
+    version, jobs = add_version(session, network, spec, criteria, method=method)
     return network, version, jobs
 
 
 def add_version(
-    session: Session, network: Network, spec: NetworkSpec, criteria: Iterable[str]
+    session: Session,
+    network: Network,
+    spec: NetworkSpec,
+    criteria: Iterable[str],
+    *,
+    method: str = "exact",
 ) -> tuple[NetworkVersion, list[SolveJob]]:
-    """The next version of `network`, and a job per criterion that has neither a policy nor a
-    live job for the same specification in this tenant."""
+    """The next version of `network`, solved by `method`, and a job per criterion that has
+    neither a policy nor a live job for the same specification and method in this tenant."""
     text, digest = canonical_spec(spec)
     previous = latest_version(session, network.id)
     version = NetworkVersion(
@@ -237,6 +254,7 @@ def add_version(
         number=1 if previous is None else previous.number + 1,
         spec_json=text,
         spec_hash=digest,
+        method=method,
     )
     session.add(version)
     session.flush()
@@ -248,13 +266,14 @@ def enqueue_solves(
 ) -> list[SolveJob]:
     jobs = []
     for criterion in dict.fromkeys(criteria):
-        if policy_for(session, tenant_id, version.spec_hash, criterion) is not None:
+        if policy_for(session, tenant_id, version.spec_hash, criterion, version.method):
             continue
         job = SolveJob(
             tenant_id=tenant_id,
             version_id=version.id,
             spec_hash=version.spec_hash,
             criterion=criterion,
+            method=version.method,
             state=JobState.QUEUED.value,
             attempts=0,
         )
@@ -378,7 +397,17 @@ def release_job(session: Session, job_id: int, owner: str, note: str | None = No
             lease_expires_at=None,
             started_at=None,
             error=note,
+            progress=None,
         )
+    )
+    return bool(getattr(result, "rowcount", 0))
+
+
+def record_progress(session: Session, job_id: int, owner: str, progress: str) -> bool:
+    """Keep a running solve's latest progress (JSON) while `owner` holds it; False when the job
+    is no longer theirs."""
+    result = session.execute(
+        update(SolveJob).where(_owned(job_id, owner)).values(progress=progress)
     )
     return bool(getattr(result, "rowcount", 0))
 
@@ -413,13 +442,18 @@ def store_policy(
     session: Session,
     job: SolveJob,
     owner: str,
-    result: PolicyResult,
+    result: PolicyResult | PricedPolicy,
     encoded: EncodedPolicy,
     now: datetime | None = None,
 ) -> bool:
     """Mark the job done and store its policy, in the caller's transaction. False (and nothing
-    written) when the lease was lost; the job then belongs to whoever holds it now."""
+    written) when the lease was lost; the job then belongs to whoever holds it now.
+
+    A priced policy has no Bellman residual: the job's residual is null, the policy row's 0, and
+    its error bound the certified distance to the optimum at the reference stock (upper bound
+    minus the low end of the policy value's interval)."""
     now = now or utcnow()
+    residual, error_bound = solve_accuracy(result)
     done = session.execute(
         update(SolveJob)
         .where(_owned(job.id, owner))
@@ -430,26 +464,27 @@ def store_policy(
             lease_expires_at=None,
             solve_seconds=result.seconds["total"],
             iterations=result.iterations,
-            residual=result.residual,
+            residual=residual,
             error=None,
         )
     )
     if not getattr(done, "rowcount", 0):
         return False
-    if policy_for(session, job.tenant_id, job.spec_hash, job.criterion) is None:
+    if policy_for(session, job.tenant_id, job.spec_hash, job.criterion, job.method) is None:
         session.add(
             Policy(
                 tenant_id=job.tenant_id,
                 spec_hash=job.spec_hash,
                 criterion=job.criterion,
+                method=job.method,
                 job_id=job.id,
                 arrays=encoded.arrays,
                 layout=encoded.layout,
                 checksum=encoded.checksum,
                 meta=encoded.meta,
                 gain=result.gain,
-                residual=result.residual,
-                error_bound=result.error_bound,
+                residual=residual or 0.0,
+                error_bound=error_bound,
                 iterations=result.iterations,
                 solve_seconds=result.seconds["total"],
                 solved_at=now,
@@ -457,6 +492,16 @@ def store_policy(
         )
         session.flush()
     return True
+
+
+def solve_accuracy(result: PolicyResult | PricedPolicy) -> tuple[float | None, float]:
+    """(Bellman residual, error bound) of a solve; a priced one has no residual, and its error
+    bound is upper bound minus the low end of the policy value's interval at the reference
+    stock (currency)."""
+    if isinstance(result, PricedPolicy):
+        certificate = result.certificate
+        return None, max(0.0, certificate.upper_bound - certificate.policy_value_interval[0])
+    return result.residual, result.error_bound
 
 
 def store_analysis(
@@ -551,15 +596,16 @@ def get_job(session: Session, job_id: int) -> SolveJob | None:
 
 
 def jobs_for(
-    session: Session, tenant_id: int, spec_hash: str, criterion: str
+    session: Session, tenant_id: int, spec_hash: str, criterion: str, method: str = "exact"
 ) -> Sequence[SolveJob]:
-    """Every solve job ever run for one specification and criterion, newest first."""
+    """Every solve job ever run for one specification, criterion and method, newest first."""
     return session.scalars(
         select(SolveJob)
         .where(
             SolveJob.tenant_id == tenant_id,
             SolveJob.spec_hash == spec_hash,
             SolveJob.criterion == criterion,
+            SolveJob.method == method,
             SolveJob.kind == JobKind.SOLVE.value,
         )
         .order_by(SolveJob.id.desc())
@@ -611,12 +657,15 @@ def retry_job(session: Session, job_id: int) -> SolveJob | None:
 # -- policies ----------------------------------------------------------------------------------
 
 
-def policy_for(session: Session, tenant_id: int, spec_hash: str, criterion: str) -> Policy | None:
+def policy_for(
+    session: Session, tenant_id: int, spec_hash: str, criterion: str, method: str = "exact"
+) -> Policy | None:
     return session.scalars(
         select(Policy).where(
             Policy.tenant_id == tenant_id,
             Policy.spec_hash == spec_hash,
             Policy.criterion == criterion,
+            Policy.method == method,
         )
     ).one_or_none()
 

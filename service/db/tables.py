@@ -46,6 +46,8 @@ __all__ = [
     "Policy",
     "SalesDay",
     "SolveJob",
+    "SolveMethod",
+    "SolveMode",
     "Tenant",
 ]
 
@@ -57,6 +59,21 @@ class JobState(StrEnum):
     RUNNING = "running"
     DONE = "done"
     FAILED = "failed"
+
+
+class SolveMode(StrEnum):
+    """What a network asks for."""
+
+    EXACT = "exact"
+    PRICED = "priced"
+    AUTO = "auto"
+
+
+class SolveMethod(StrEnum):
+    """What a version is solved by (its network's mode, resolved for its size)."""
+
+    EXACT = "exact"
+    PRICED = "priced"
 
 
 class JobKind(StrEnum):
@@ -87,6 +104,9 @@ class Network(Base):
     # specification: it changes no number of the model, so changing it must not change the
     # specification's hash and queue a new solve.
     closing_cutoff: Mapped[time | None] = mapped_column(Time)
+    mode: Mapped[str] = mapped_column(
+        String(8), default=SolveMode.AUTO.value, server_default=SolveMode.AUTO.value
+    )
 
     versions: Mapped[list[NetworkVersion]] = relationship(
         back_populates="network", order_by="NetworkVersion.number"
@@ -106,6 +126,10 @@ class NetworkVersion(Base):
     # When the demand and replenishment of this version were estimated from sales history;
     # None for a specification sent as it is.
     calibrated_at: Mapped[datetime | None] = mapped_column(DateTime)
+    # The network's mode resolved for this specification when the version was made.
+    method: Mapped[str] = mapped_column(
+        String(8), default=SolveMethod.EXACT.value, server_default=SolveMethod.EXACT.value
+    )
 
     network: Mapped[Network] = relationship(back_populates="versions")
 
@@ -118,6 +142,7 @@ class SolveJob(Base):
             "tenant_id",
             "spec_hash",
             "criterion",
+            "method",
             unique=True,
             sqlite_where=text("state IN ('queued', 'running') AND kind = 'solve'"),
             postgresql_where=text("state IN ('queued', 'running') AND kind = 'solve'"),
@@ -147,6 +172,11 @@ class SolveJob(Base):
     # Simulations and what-if comparisons: the request as JSON, and the report once done.
     params: Mapped[str | None] = mapped_column(Text)
     result: Mapped[str | None] = mapped_column(Text)
+    method: Mapped[str] = mapped_column(
+        String(8), default=SolveMethod.EXACT.value, server_default=SolveMethod.EXACT.value
+    )
+    # A running priced solve's latest progress as JSON (stage, iteration, bounds, elapsed).
+    progress: Mapped[str | None] = mapped_column(Text)
 
     version: Mapped[NetworkVersion] = relationship()
 
@@ -161,13 +191,16 @@ class SolveJob(Base):
 
 class Policy(Base):
     __tablename__ = "policies"
-    __table_args__ = (UniqueConstraint("tenant_id", "spec_hash", "criterion"),)
+    __table_args__ = (UniqueConstraint("tenant_id", "spec_hash", "criterion", "method"),)
 
     id: Mapped[int] = mapped_column(primary_key=True)
     tenant_id: Mapped[int] = mapped_column(ForeignKey("tenants.id"))
     spec_hash: Mapped[str] = mapped_column(_HASH)
     criterion: Mapped[str] = mapped_column(String(16))
     job_id: Mapped[int | None] = mapped_column(ForeignKey("solve_jobs.id"))
+    method: Mapped[str] = mapped_column(
+        String(8), default=SolveMethod.EXACT.value, server_default=SolveMethod.EXACT.value
+    )
     # Arrays (action, values, ...) as one zlib-compressed blob; `layout` (JSON) gives each
     # array's name, dtype, shape and offset, `checksum` the SHA-256 of the stored blob.
     arrays: Mapped[bytes] = mapped_column(LargeBinary)

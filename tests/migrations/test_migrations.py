@@ -3,7 +3,7 @@ start-up check, and the `stockrelay migrate` command; on SQLite and PostgreSQL."
 
 from __future__ import annotations
 
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 
 import pytest
 from alembic.autogenerate import compare_metadata
@@ -190,3 +190,65 @@ def test_cli_worker_refuses_an_unmigrated_database(
     assert captured.err.startswith("stockrelay: error: ")
     assert "run `stockrelay migrate`" in captured.err
     assert table_names(empty_engine) == set()
+
+
+def _insert_policy(connection: Connection, method: str | None = None) -> None:
+    columns = (
+        "tenant_id, spec_hash, criterion, arrays, layout, checksum, meta, residual, "
+        "error_bound, iterations, solve_seconds, solved_at"
+    )
+    values = "1, 'abc', 'average', :blob, '[]', 'x', '{}', 0, 0, 1, 0.5, CURRENT_TIMESTAMP"
+    if method is not None:
+        columns, values = columns + ", method", values + f", '{method}'"
+    connection.execute(
+        text(f"INSERT INTO policies ({columns}) VALUES ({values})"), {"blob": b"\x00"}
+    )
+
+
+def _insert_solve(connection: Connection, method: str) -> None:
+    connection.execute(
+        text(
+            "INSERT INTO solve_jobs (tenant_id, version_id, spec_hash, criterion, state, "
+            f"attempts, created_at, method) VALUES (1, 1, 'abc', 'average', 'queued', 0, "
+            f"CURRENT_TIMESTAMP, '{method}')"
+        )
+    )
+
+
+def _refused(engine: Engine, insert: Callable[[Connection], None]) -> bool:
+    try:
+        with engine.begin() as connection:
+            insert(connection)
+    except IntegrityError:
+        return True
+    return False
+
+
+def test_solving_modes_keep_exact_and_priced_policies_of_one_specification_apart(
+    empty_engine: Engine,
+) -> None:
+    upgrade(empty_engine, "0005")
+    with empty_engine.begin() as connection:
+        _seed(connection)
+        _insert_job(connection)
+        _insert_policy(connection)
+
+    upgrade(empty_engine, "0008")
+    with empty_engine.begin() as connection:
+        # Rows from before the revision: networks in auto mode, everything else exact.
+        assert connection.execute(text("SELECT mode FROM networks")).scalars().all() == ["auto"]
+        for table in ("network_versions", "solve_jobs", "policies"):
+            methods = connection.execute(text(f"SELECT method FROM {table}")).scalars().all()
+            assert methods == ["exact"], table
+        _insert_policy(connection, "priced")
+        _insert_solve(connection, "priced")  # a live priced solve beside the live exact one
+    assert _refused(empty_engine, lambda c: _insert_policy(c, "priced"))
+    assert _refused(empty_engine, lambda c: _insert_solve(c, "priced"))
+    assert _refused(empty_engine, lambda c: _insert_solve(c, "exact"))
+
+    downgrade(empty_engine, "0005")
+    with empty_engine.begin() as connection:
+        assert connection.execute(text("SELECT count(*) FROM policies")).scalar_one() == 1
+        assert connection.execute(text("SELECT count(*) FROM solve_jobs")).scalar_one() == 1
+    assert _refused(empty_engine, lambda c: _insert_policy(c))
+    assert _second_live_solve_refused(empty_engine)

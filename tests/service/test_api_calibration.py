@@ -406,7 +406,7 @@ def test_a_significant_weekday_effect_proposes_weekly_laws_and_only_then(
 def test_an_automatic_version_too_large_to_solve_keeps_the_upload(engine: Engine) -> None:
     # Room for the demo network (150 stock states) but not for its weekly proposal (x 7).
     with open_client(engine, max_states=500) as client:
-        network = create_network(client)
+        network = create_network(client, demo_document(mode="exact"))
         client.put(
             f"/v1/networks/{network['id']}/calibration/settings",
             json={"auto_apply_threshold": 0.1},

@@ -233,14 +233,16 @@ def test_each_recommendation_is_audited_without_the_key(
 def test_networks_beyond_the_solver_limits_are_refused_with_their_sizes(engine: Engine) -> None:
     # Capacity 8 at both stores: 404 state-transfer pairs with the demo lanes (limits 4 and 3),
     # 489 with both lanes at 8.
+    # Exact mode: beyond the exact limits is refused, and the refusal names the priced mode.
     with open_client(engine, max_states=100, max_pairs=450) as client:
-        large = client.post("/v1/networks", json=demo_document())
+        large = client.post("/v1/networks", json=demo_document(mode="exact"))
         problem = assert_problem(large, 422, "network-too-large")
         assert problem["states"] == 15 * 10 and problem["pairs"] is None
         assert "150 stock states" in problem["detail"] and "100" in problem["detail"]
+        assert "mode 'priced'" in problem["detail"]
         assert client.get("/v1/networks").json() == []
 
-        small = demo_document()
+        small = demo_document(mode="exact")
         for location in small["locations"]:
             location["capacity"] = 8
         created = create_network(client, small)  # 81 states: fits
@@ -248,6 +250,7 @@ def test_networks_beyond_the_solver_limits_are_refused_with_their_sizes(engine: 
         for lane in lanes:
             lane["max_units"] = 8
         busy = {**small, "lanes": lanes}
+        del busy["mode"]  # kept from the network
         update = client.put(f"/v1/networks/{created['id']}", json=busy, headers={"If-Match": '"1"'})
         problem = assert_problem(update, 422, "network-too-large")
         assert problem["pairs"] == 489 and "450 pairs" in problem["detail"]

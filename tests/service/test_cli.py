@@ -97,11 +97,11 @@ def test_weekly_network_reports_one_policy_per_weekday(
 
 
 def bad_input(
-    tmp_path: Path, capsys: pytest.CaptureFixture[str], network: Path
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], network: Path, *options: str
 ) -> tuple[str, Path]:
     out = tmp_path / "result.json"
     out.write_text("previous result")
-    code, stdout, stderr = run(["solve", str(network), "--out", str(out)], capsys)
+    code, stdout, stderr = run(["solve", str(network), "--out", str(out), *options], capsys)
     assert code == 2
     assert stdout == ""
     assert stderr.count("\n") == 1 and stderr.startswith("stockrelay: error: ")
@@ -140,8 +140,9 @@ def test_network_over_the_size_limit(tmp_path: Path, capsys: pytest.CaptureFixtu
         location["capacity"] = 2000
     network = tmp_path / "network.json"
     network.write_text(json.dumps(document))
-    stderr, _ = bad_input(tmp_path, capsys, network)
+    stderr, _ = bad_input(tmp_path, capsys, network, "--mode", "exact")
     assert "4,004,001 stock states" in stderr and "2,000,000" in stderr
+    assert "mode 'priced'" in stderr
 
 
 def test_console_script_runs_as_installed(tmp_path: Path) -> None:

@@ -91,6 +91,10 @@ def test_every_family_is_exposed_with_its_type_without_a_key(engine: Engine) -> 
         "stockrelay_queue_oldest_age_seconds": "gauge",
         "stockrelay_solve_seconds": "histogram",
         "stockrelay_policy_age_seconds": "gauge",
+        "stockrelay_priced_solve_iteration": "gauge",
+        "stockrelay_priced_solve_upper_bound": "gauge",
+        "stockrelay_priced_solve_lower_bound": "gauge",
+        "stockrelay_priced_solve_elapsed_seconds": "gauge",
     }
     assert value(samples, "stockrelay_database_up") == 1
     # Every kind of job and outcome has its series from the start, at 0.

@@ -1,0 +1,203 @@
+"""Benchmark of the price-decomposed solver (solver.priced) on large networks, and its bound
+slack and policy loss against exact dynamic programming on small ones.
+
+Usage: .venv/bin/python benchmarks/priced.py [--quick] [--out PATH]
+
+Large networks (benchmarks/networks.py, scenarios of our own): 12 garden centres of capacity 60
+with lanes between every pair (132 lanes), 24 of capacity 40 with lanes between every pair
+(552 lanes), 50 of capacity 30 with lanes to the 6 nearest branches both ways; lane limits of 3
+to 5 units, at most 2 units per branch a night in all, Poisson and negative binomial demand,
+discount 0.99. Each is solved with its certificate (default PricedOptions, seed 0); the table
+gives pricing iterations, seconds (pricing, the reference-stock pricing, certificate, total),
+the certified gap and the targets of the issue (12 stores: <= 60 s and gap <= 1.5%; 24 stores:
+<= 180 s and gap <= 1.0%; 50 stores: <= 600 s, gap reported).
+
+Small networks: the same generator at 2 to 5 stores, solved exactly (Howard's policy iteration)
+and by prices; bound slack = (bound - optimal value) / mean |optimal value| (median and largest
+over all stock states), policy loss = (optimal value - the plan's exact value) / mean |optimal
+value| (median and largest).
+
+A table goes to stdout and everything to JSON (default benchmarks/results/priced.json) through
+the shared writer of benchmarks/solve.py. BLAS runs single-threaded, as in benchmarks/solve.py;
+stores are solved in one process (on 2 shared cores a second process did not pay: the per-store
+solves take milliseconds and the certificate's simulation is one vectorised loop).
+"""
+
+import os
+
+# One core: must be set before numpy (and its BLAS) is first imported.
+os.environ["OPENBLAS_NUM_THREADS"] = "1"
+os.environ["OMP_NUM_THREADS"] = "1"
+os.environ["MKL_NUM_THREADS"] = "1"
+
+import argparse
+import sys
+import time
+from collections.abc import Sequence
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+
+import solve  # machine facts, revision and the shared JSON writer
+from networks import large_network
+
+from solver import solve_network
+from solver.priced import evaluate_plan_exactly, solve_priced
+
+DEFAULT_OUT = Path(__file__).resolve().parent / "results" / "priced.json"
+
+# (stores, capacity, neighbours (None: every pair), target seconds, target gap)
+LARGE = [
+    (12, 60, None, 60.0, 0.015),
+    (24, 40, None, 180.0, 0.010),
+    (50, 30, 6, 600.0, None),
+]
+# (stores, capacity, neighbours, seed)
+SMALL = [
+    (2, 60, None, 1),
+    (2, 120, None, 2),
+    (3, 20, None, 3),
+    (4, 10, None, 4),
+    (5, 7, 2, 5),
+]
+
+
+def run_large(
+    stores: int, capacity: int, neighbours: int | None, target_s: float, target_gap: float | None
+) -> dict[str, Any]:
+    spec = large_network(stores, capacity, 0, neighbours=neighbours)
+    started = time.perf_counter()
+    policy = solve_priced(spec)
+    seconds = time.perf_counter() - started
+    cert = policy.certificate
+    met = seconds <= target_s and (target_gap is None or cert.certified_gap <= target_gap)
+    return {
+        "name": f"{stores} stores x {capacity}",
+        "stores": stores,
+        "capacity": capacity,
+        "lanes": len(spec.lanes),
+        "stock_states": f"{float(policy.n_states):.2e}",
+        "iterations": policy.iterations,
+        "converged": policy.converged,
+        "seconds": seconds,
+        "seconds_by_stage": dict(policy.seconds),
+        "upper_bound": cert.upper_bound,
+        "policy_value": cert.policy_value,
+        "policy_value_interval": list(cert.policy_value_interval),
+        "certified_gap": cert.certified_gap,
+        "replications": cert.replications,
+        "reference_stock": list(cert.reference_stock),
+        "target_seconds": target_s,
+        "target_gap": target_gap,
+        "target_met": met,
+    }
+
+
+def run_small(stores: int, capacity: int, neighbours: int | None, seed: int) -> dict[str, Any]:
+    spec = large_network(stores, capacity, seed, neighbours=neighbours, discount=0.97)
+    spec = spec.model_copy(update={"max_units_per_night": None})
+    exact = solve_network(spec)
+    started = time.perf_counter()
+    policy = solve_priced(spec)
+    seconds = time.perf_counter() - started
+    optimum = exact.values[0]
+    stocks = np.indices(policy.shape).reshape(stores, -1).T
+    bounds = np.array([policy.upper_bound(tuple(int(u) for u in s)) for s in stocks])
+    values = evaluate_plan_exactly(spec, policy, "discounted")[0]
+    scale = float(np.abs(optimum).mean())
+    slack = (bounds - optimum) / scale
+    loss = (optimum - values) / scale
+    return {
+        "name": f"{stores} stores x {capacity}",
+        "stores": stores,
+        "capacity": capacity,
+        "lanes": len(spec.lanes),
+        "stock_states": int(optimum.size),
+        "exact_seconds": float(exact.seconds["total"]),
+        "priced_seconds": seconds,
+        "bound_slack_median": float(np.median(slack)),
+        "bound_slack_max": float(slack.max()),
+        "bound_below_optimum": bool(slack.min() < -1e-9),
+        "policy_loss_median": float(np.median(loss)),
+        "policy_loss_max": float(loss.max()),
+        "certified_gap": policy.certificate.certified_gap,
+    }
+
+
+def _print_large(row: dict[str, Any]) -> None:
+    stages = row["seconds_by_stage"]
+    target = f"<={row['target_seconds']:g}s" + (
+        f", <={row['target_gap']:.1%}" if row["target_gap"] is not None else ""
+    )
+    print(
+        f"{row['name']:<18} {row['lanes']:>5} {row['stock_states']:>9} {row['iterations']:>5} "
+        f"{'yes' if row['converged'] else 'no':>4} {stages['pricing']:>8.1f} "
+        f"{stages.get('reference_pricing', 0.0):>8.1f} {stages['certify']:>8.1f} "
+        f"{row['seconds']:>8.1f} {row['certified_gap']:>7.2%} {row['replications']:>5} "
+        f"{target:>16} {'pass' if row['target_met'] else 'FAIL':>5}",
+        flush=True,
+    )
+
+
+def _print_small(row: dict[str, Any]) -> None:
+    print(
+        f"{row['name']:<18} {row['lanes']:>5} {row['stock_states']:>9} "
+        f"{row['exact_seconds']:>8.2f} {row['priced_seconds']:>8.2f} "
+        f"{row['bound_slack_median']:>9.2%} {row['bound_slack_max']:>9.2%} "
+        f"{row['policy_loss_median']:>9.3%} {row['policy_loss_max']:>9.3%} "
+        f"{row['certified_gap']:>7.2%}",
+        flush=True,
+    )
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(description="Benchmark the priced solver.")
+    parser.add_argument("--quick", action="store_true", help="12 stores and the small table")
+    parser.add_argument("--out", type=Path, default=DEFAULT_OUT, help="JSON results file")
+    args = parser.parse_args(argv)
+    facts = solve.machine_facts()
+    print(
+        f"stockrelay priced benchmark: numpy {facts['numpy']}, scipy {facts['scipy']}, "
+        f"{facts['cpu_count']} CPUs; BLAS single-threaded"
+    )
+    print(
+        f"{'network':<18} {'lanes':>5} {'states':>9} {'iter':>5} {'conv':>4} {'price s':>8} "
+        f"{'ref s':>8} {'cert s':>8} {'total s':>8} {'gap':>7} {'reps':>5} {'target':>16} "
+        f"{'':>5}"
+    )
+    large = []
+    for stores, capacity, neighbours, target_s, target_gap in LARGE[:1] if args.quick else LARGE:
+        row = run_large(stores, capacity, neighbours, target_s, target_gap)
+        large.append(row)
+        _print_large(row)
+    print()
+    print(
+        f"{'network':<18} {'lanes':>5} {'states':>9} {'exact s':>8} {'priced s':>8} "
+        f"{'slack p50':>9} {'slack max':>9} {'loss p50':>9} {'loss max':>9} {'gap':>7}"
+    )
+    small = []
+    for stores, capacity, neighbours, seed in SMALL:
+        row = run_small(stores, capacity, neighbours, seed)
+        small.append(row)
+        _print_small(row)
+    print(
+        "gap: certified gap at the reference stock (95% interval); slack and loss relative to "
+        "the mean |optimal value| over all stock states."
+    )
+    report = {
+        "benchmark": "priced",
+        "quick": args.quick,
+        "machine": facts,
+        "revision": solve.solver_revision(),
+        "large": large,
+        "small": small,
+    }
+    solve.write_report(args.out, report)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,1022 @@
+"""Large networks by price decomposition: a Lagrangian relaxation of the transfer MDP, prices that
+minimise its bound, a nightly plan from the per-store values, and a certified gap.
+
+The transfer network (solver.model) is a weakly coupled MDP: given tonight's moves the stores
+evolve independently, and only the moves couple them (Hawkins, MIT PhD thesis, 2003; Adelman &
+Mersereau, "Relaxations of weakly coupled stochastic dynamic programs", Operations Research
+56(3), 2008; Kunnumkal & Topaloglu, "A duality-based relaxation and decomposition approach for
+inventory distribution systems", Naval Research Logistics 55, 2008; Brown & Zhang, "On the
+strength of relaxations of weakly coupled stochastic dynamic programs", Operations Research
+71(6), 2023; all from memory).
+
+Relaxation. Split each lane flow f_l (l = i -> j) into the sender's send_l and the receiver's
+take_l, both in 0..u_{d,l} (night d's lane limit). Price send_l = take_l with lambda_{d,l} (any
+sign) and the units-per-night limit sum_l send_l <= U_d with mu_d >= 0 (U_d = the network limit,
+at most the sum of the lane limits; mu = 0 without a limit). Store i's priced MDP has states
+s_i in 0..C_i and phases d; tonight it sends a <= s_i units and takes b, y = s_i - a + b in
+0..C_i, for the one-day reward
+
+    psi_{i,d}(s, y) + r_{i,d}(y),   psi = max_{a - b = s - y} g_{i,d}(a) - h_{i,d}(b),
+    g(a) = max { sum_{l out of i} (lambda_{d,l} - c_l - mu_d) send_l : sum send = a }
+           (greedy over the out-lanes by that margin: concave piecewise linear),
+    h(b) = min { sum_{l into i} lambda_{d,l} take_l : sum take = b }  (greedy: convex),
+
+and next stock from K_{i,d}[y, .] (solver.build), with a and b at most U_d (no feasible
+network flow sends or takes more at one store). Local restrictions of one store's moves (a
+minimum to keep, a most to send or take) would only narrow the (a, b) range of psi.
+
+Theorem (the bound). For any prices, with V_{i,d} the optimal discounted value of store i's
+priced MDP from phase d, V*_d(s) <= sum_i V_{i,d}(s_i) + M_d, M_d = sum_{k >= 0} beta^k
+mu_{d+k} U_{d+k} = (sum_{k < P} beta^k mu_{d+k} U_{d+k}) / (1 - beta^P) (phases mod P).
+Proof. Let pi be any policy of the network and f_t its moves. Setting send = take = f_t is
+feasible for every store's relaxed action, and the priced one-day reward summed over the stores
+is R(y_t) - c.f_t + sum_l lambda_l (send_l - take_l) - mu (sum_l f_{l,t}) = R(y_t) - c.f_t -
+mu sum f_t, so adding mu U_d back gives at least the true reward R(y_t) - c.f_t (the network
+limit holds). Hence V^pi_d(s) <= E sum_t beta^t [sum_i rho_i(t)] + M_d where rho_i is store i's
+priced reward under the joint (history-dependent) strategy induced by pi. Store i's marginal
+process is an MDP in its own state: its stock moves by K_i from its own post-move stock, so the
+joint strategy induces a (randomised, history-dependent) strategy of store i alone, whose value
+is at most V_{i,d}(s_i). Summing over i proves the claim; minimising over pi's proves it for V*.
+The average criterion follows the same way per day: g* <= sum_i g_i + (1/P) sum_d mu_d U_d, g_i
+the optimal gain of store i's priced MDP (averaged over the P phases). Each store is solved
+exactly (Howard's policy iteration on dense (P (C_i + 1))-state systems), and the bound uses
+V_i + max(T V_i - V_i)^+ / (1 - beta) and g_i <= max(T h_i - h_i) (Puterman 1994, Markov
+Decision Processes, sections 6.3 and 8.5), so solver round-off cannot break it.
+
+Prices. The bound is convex and piecewise linear in (lambda, mu). We minimise its average over
+a product distribution of closing stocks: for each store its do-nothing law at each phase
+(stationary for P = 1; for P > 1 stationary for the week's product kernel at phase 0 and then
+pushed forward one day per phase), each phase's bound counted 1 / P. A subgradient in
+lambda_{d,l} is the discounted occupation-weighted expected send_l of the sender minus take_l of
+the receiver under their optimal priced policies in phase d (one dense linear solve per store);
+in mu_d it is U_d / (P (1 - beta)) minus the expected sends (average criterion: stationary laws
+and U_d / P). The minimisation is a box-step cutting-plane method (Marsten, Hogan & Blankenship,
+"The boxstep method for large-scale optimization", Operations Research 23(3), 1975; from
+memory) with scipy.optimize.linprog (HiGHS): minimise the cutting-plane model within a box around
+the best point, move only on sufficient decrease, double the box on good steps and halve it
+when a trial point is worse. It stops when the model predicts a relative decrease below
+`tolerance` (converged), or at the iteration or time budget. The best bound found is kept, so
+the reported bounds never increase.
+
+Plan and certificate. Tonight's moves maximise sum_i W_{i,d}(y_i) - c.f (solver.transfer_plan,
+on the concave envelopes of W). The certificate simulates that plan from a reference stock (per
+store, the median of its phase-0 stock in the long run under its own priced policy) with common
+random numbers beside moving nothing, whose exact value is the sum of one-store values: the
+estimate is the exact do-nothing value plus the mean paired difference (a control variate with
+coefficient 1). Discounted: each replication sums T days; V^pi = E[sum_{t < T}] + beta^T
+E[V^pi(s_T)], and V^pi lies between r_min / (1 - beta) and r_max / (1 - beta) (r the expected
+one-day profit of any stock and move), so the interval is the Student t interval of the T-day
+sums widened by beta^T r_min / (1 - beta) below and beta^T r_max / (1 - beta) above; T makes
+that widening at most a quarter of the target half-width. Average: each replication's mean profit
+per day over `days` days after `warmup` days (statistical only: the warm-up bias is not
+bounded). certified_gap = (upper bound at the reference stock - low end of the interval) /
+|upper bound|, where the upper bound is the smaller of the bound from the averaged prices and
+the bound from prices minimised at the reference stock itself (both valid).
+"""
+
+from __future__ import annotations
+
+import functools
+import math
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, replace
+
+import numpy as np
+from numpy.typing import NDArray
+from scipy import stats
+from scipy.optimize import linprog
+
+from solver.build import SizeLimits, location_kernel, location_reward, n_phases
+from solver.errors import ModelTooLargeError
+from solver.evaluation import PolicyChain, choose_evaluation, evaluate_average, evaluate_discounted
+from solver.model import TransferModel
+from solver.priced_result import Certificate, PricedOptions, PricedPolicy, PricedProgress
+from solver.result import Criterion
+from solver.simulation import daily_laws, draw_counts
+from solver.spec import NetworkSpec
+
+__all__ = [
+    "PricedLimits",
+    "check_priced_size",
+    "evaluate_plan_average",
+    "evaluate_plan_exactly",
+    "solve_priced",
+]
+
+# Policy improvement switches only for a gain beyond this fraction of the store's value scale.
+_TIE_RTOL = 1e-10
+# Certificate: first batch of replications, and the longest discounted horizon (days).
+_FIRST_REPLICATIONS = 64
+_MAX_HORIZON = 20_000
+# Cutting planes kept in the model at most (oldest inactive ones are dropped first).
+_MAX_CUTS = 400
+# Rows planned at once by evaluate_plan_exactly.
+_PLAN_CHUNK = 50_000
+
+
+@dataclass(frozen=True)
+class PricedLimits:
+    """Largest networks the priced method accepts: the per-store subproblem grows with the cube
+    of the capacity, the price vector with lanes x phases."""
+
+    max_capacity: int = 300
+    max_weekly_capacity: int = 150
+    max_lanes: int = 3_000
+
+
+def check_priced_size(spec: NetworkSpec, limits: PricedLimits | None = None) -> None:
+    """Raise ModelTooLargeError when `spec` exceeds the priced method's own limits."""
+    limits = limits or PricedLimits()
+    # A weekly store's subproblem has 7 (C + 1) states, solved densely.
+    most = limits.max_weekly_capacity if spec.is_periodic else limits.max_capacity
+    big = [loc for loc in spec.locations if loc.capacity > most]
+    states = 1
+    for loc in spec.locations:
+        states *= loc.capacity + 1
+    if big:
+        names = ", ".join(f"{loc.id!r} ({loc.capacity})" for loc in big)
+        raise ModelTooLargeError(
+            f"the priced mode solves stores of capacity up to {most:,}"
+            f"{' in a network with weekly fields' if spec.is_periodic else ''}; "
+            f"{names} exceed it",
+            states=states * n_phases(spec),
+            pairs=None,
+        )
+    if len(spec.lanes) > limits.max_lanes:
+        raise ModelTooLargeError(
+            f"the priced mode prices up to {limits.max_lanes:,} lanes; the network has "
+            f"{len(spec.lanes):,}",
+            states=states * n_phases(spec),
+            pairs=None,
+        )
+
+
+# -- the network as per-store arrays ----------------------------------------------------------
+
+
+@dataclass(frozen=True, eq=False)
+class _Network:
+    """Per-store kernels and rewards, and the lanes. Phase d holds day d + 1's laws and night
+    d's lane limits (solver.model)."""
+
+    spec: NetworkSpec
+    phases: int
+    capacities: NDArray[np.int64]
+    kernels: tuple[NDArray[np.float64], ...]  # per store (P, C + 1, C + 1)
+    rewards: tuple[NDArray[np.float64], ...]  # per store (P, C + 1)
+    lane_from: NDArray[np.int64]
+    lane_to: NDArray[np.int64]
+    lane_costs: NDArray[np.float64]
+    lane_limits: NDArray[np.int64]  # (P, L), at most both ends' capacities and U
+    network_limit: NDArray[np.int64]  # (P,), -1 without a limit
+    discount: float
+
+    @property
+    def n_stores(self) -> int:
+        return int(self.capacities.size)
+
+    @property
+    def n_lanes(self) -> int:
+        return int(self.lane_from.size)
+
+    @property
+    def units(self) -> NDArray[np.float64]:
+        """U_d: units over all lanes on night d, at most the sum of the lane limits (0 without
+        a network limit: mu is then fixed at 0)."""
+        total = self.lane_limits.sum(axis=1)
+        limit = np.where(self.network_limit < 0, 0, np.minimum(self.network_limit, total))
+        return limit.astype(np.float64)
+
+
+def _network(spec: NetworkSpec) -> _Network:
+    phases = n_phases(spec)
+    days = [(d + 1) % phases for d in range(phases)] if phases > 1 else [0]
+    kernels, rewards = [], []
+    for loc in spec.locations:
+        if phases > 1:
+            kernels.append(np.stack([location_kernel(loc, weekday=day) for day in days]))
+            rewards.append(np.stack([location_reward(loc, weekday=day) for day in days]))
+        else:
+            kernels.append(location_kernel(loc)[None])
+            rewards.append(location_reward(loc)[None])
+    index = {loc.id: i for i, loc in enumerate(spec.locations)}
+    capacities = np.array([loc.capacity for loc in spec.locations], dtype=np.int64)
+    lane_from = np.array([index[lane.from_] for lane in spec.lanes], dtype=np.int64)
+    lane_to = np.array([index[lane.to] for lane in spec.lanes], dtype=np.int64)
+    limits = np.array(
+        [[lane.max_units_on(d) for lane in spec.lanes] for d in range(phases)], dtype=np.int64
+    )
+    limits = np.minimum(limits, np.minimum(capacities[lane_from], capacities[lane_to])[None, :])
+    per_night = spec.max_units_per_night
+    if per_night is not None:
+        limits = np.minimum(limits, per_night)
+    network_limit = np.full(phases, -1 if per_night is None else per_night, dtype=np.int64)
+    return _Network(
+        spec=spec,
+        phases=phases,
+        capacities=capacities,
+        kernels=tuple(kernels),
+        rewards=tuple(rewards),
+        lane_from=lane_from,
+        lane_to=lane_to,
+        lane_costs=np.array([lane.unit_cost for lane in spec.lanes], dtype=np.float64),
+        lane_limits=limits,
+        network_limit=network_limit,
+        discount=spec.discount,
+    )
+
+
+def _stationary(matrix: NDArray[np.float64]) -> NDArray[np.float64]:
+    """A stationary law of a stochastic matrix (least squares; the average of the laws of the
+    recurrent classes when there are several is not needed here: any law will do)."""
+    n = matrix.shape[0]
+    system = np.vstack([matrix.T - np.eye(n), np.ones((1, n))])
+    rhs = np.zeros(n + 1)
+    rhs[-1] = 1.0
+    law = np.linalg.lstsq(system, rhs, rcond=None)[0]
+    law = np.clip(law, 0.0, None)
+    result: NDArray[np.float64] = law / law.sum()
+    return result
+
+
+def _do_nothing_laws(net: _Network) -> list[NDArray[np.float64]]:
+    """Per store, its do-nothing closing-stock law at each phase, shape (P, C + 1)."""
+    laws = []
+    for kernels in net.kernels:
+        cycle = kernels[0]
+        for d in range(1, net.phases):
+            cycle = cycle @ kernels[d]
+        law = np.empty((net.phases, kernels.shape[1]))
+        law[0] = _stationary(cycle)
+        for d in range(1, net.phases):
+            law[d] = law[d - 1] @ kernels[d - 1]
+        laws.append(law)
+    return laws
+
+
+# -- one store's priced MDP -------------------------------------------------------------------
+
+
+@dataclass(frozen=True, eq=False)
+class _StoreSolution:
+    """values: (P, C + 1), rigorous upper values (discounted) or bias (average); post_move: W,
+    (P, C + 1); gain: the gain bound (average) else 0; policy: post-move stock per (d, s);
+    sends, takes: (P, L) expected units per lane under the occupation measure; objective: this
+    store's part of the pricing objective."""
+
+    values: NDArray[np.float64]
+    post_move: NDArray[np.float64]
+    gain: float
+    policy: NDArray[np.int64]
+    sends: NDArray[np.float64]
+    takes: NDArray[np.float64]
+    objective: float
+
+
+def _greedy_units(amount: NDArray[np.int64], caps: NDArray[np.int64]) -> NDArray[np.int64]:
+    """Units on each lane (in the given order, each up to caps[k]) when `amount` units are
+    spread greedily, shape (len(amount), len(caps))."""
+    before = np.concatenate([[0], np.cumsum(caps)[:-1]])
+    units: NDArray[np.int64] = np.clip(amount[:, None] - before[None, :], 0, caps[None, :])
+    return units
+
+
+class _Store:
+    """Store i's lanes and laws, and its priced subproblem."""
+
+    def __init__(self, net: _Network, i: int, law: NDArray[np.float64]) -> None:
+        self.i = i
+        self.capacity = int(net.capacities[i])
+        self.kernels = net.kernels[i]
+        self.rewards = net.rewards[i]
+        self.out_lanes = np.flatnonzero(net.lane_from == i)
+        self.in_lanes = np.flatnonzero(net.lane_to == i)
+        self.costs = net.lane_costs
+        self.limits = net.lane_limits
+        # Most units one store can send or take in a night: its capacity, its lanes' limits and
+        # the network limit (valid for every feasible network flow, so the bound stays valid).
+        self.most = np.where(net.network_limit < 0, self.capacity, net.network_limit)
+        self.most = np.minimum(self.most, self.capacity)
+        self.phases = net.phases
+        # Initial law of the occupation measure over (d, s), phase-major, summing to 1.
+        self.start = law.reshape(-1) / net.phases
+        self.policy: NDArray[np.int64] = np.tile(np.arange(self.capacity + 1), (self.phases, 1))
+        self.scale = max(1.0, float(np.abs(self.rewards).max()))
+
+    def _moves(
+        self, prices: NDArray[np.float64], network_price: NDArray[np.float64]
+    ) -> tuple[
+        NDArray[np.float64], NDArray[np.int64], list[tuple[NDArray[np.int64], NDArray[np.int64]]]
+    ]:
+        """psi (P, C + 1, C + 1) over (s, y), -inf where y cannot be reached; the best send a
+        per (d, s, y); per phase the out-lane and in-lane orders of the greedy split."""
+        c = self.capacity
+        size = c + 1
+        psi = np.full((self.phases, size, size), -np.inf)
+        best_a = np.zeros((self.phases, size, size), dtype=np.int64)
+        orders = []
+        s = np.arange(size)[:, None]
+        y = np.arange(size)[None, :]
+        for d in range(self.phases):
+            margin = prices[d, self.out_lanes] - self.costs[self.out_lanes] - network_price[d]
+            send_order = self.out_lanes[np.argsort(-margin, kind="stable")]
+            take_order = self.in_lanes[np.argsort(prices[d, self.in_lanes], kind="stable")]
+            orders.append((send_order, take_order))
+            send_caps = self.limits[d, send_order]
+            take_caps = self.limits[d, take_order]
+            top_a = int(min(self.most[d], send_caps.sum()))
+            top_b = int(min(self.most[d], take_caps.sum()))
+            g = np.concatenate(
+                [[0.0], np.cumsum(np.repeat(np.sort(margin)[::-1], send_caps))[:top_a]]
+            )
+            h = np.concatenate(
+                [[0.0], np.cumsum(np.repeat(prices[d, take_order], take_caps))[:top_b]]
+            )
+            psi_d, best_d = psi[d], best_a[d]
+            for a in range(top_a + 1):
+                b = y - s + a
+                valid = (a <= s) & (b >= 0) & (b <= top_b)
+                value = np.where(valid, g[a] - h[np.clip(b, 0, top_b)], -np.inf)
+                better = value > psi_d
+                psi_d[better] = value[better]
+                best_d[better] = a
+        return psi, best_a, orders
+
+    def _matrix(self, policy: NDArray[np.int64]) -> NDArray[np.float64]:
+        """Stacked transition matrix of a policy over (d, s), phase-major."""
+        size = self.capacity + 1
+        n = self.phases * size
+        matrix = np.zeros((n, n))
+        for d in range(self.phases):
+            nxt = (d + 1) % self.phases
+            matrix[d * size : (d + 1) * size, nxt * size : (nxt + 1) * size] = self.kernels[d][
+                policy[d]
+            ]
+        return matrix
+
+    def solve(
+        self,
+        prices: NDArray[np.float64],
+        network_price: NDArray[np.float64],
+        criterion: Criterion,
+        beta: float,
+        n_lanes: int,
+    ) -> _StoreSolution:
+        psi, best_a, orders = self._moves(prices, network_price)
+        size = self.capacity + 1
+        phases = self.phases
+        rows = np.arange(size)
+        policy = self.policy.copy()
+        tie = _TIE_RTOL * self.scale / (1.0 - beta if criterion == "discounted" else 1e-3)
+        discount = beta if criterion == "discounted" else 1.0
+        gain = 0.0
+        for _ in range(200):
+            reward = np.stack(
+                [psi[d, rows, policy[d]] + self.rewards[d, policy[d]] for d in range(phases)]
+            )
+            matrix = self._matrix(policy)
+            n = phases * size
+            if criterion == "discounted":
+                v = np.linalg.solve(np.eye(n) - discount * matrix, reward.reshape(-1))
+            else:
+                system = np.eye(n) - matrix
+                system[:, 0] = 1.0
+                try:
+                    solution = np.linalg.solve(system, reward.reshape(-1))
+                except np.linalg.LinAlgError:
+                    solution = np.linalg.lstsq(system, reward.reshape(-1), rcond=None)[0]
+                gain = float(solution[0])
+                v = solution.copy()
+                v[0] = 0.0
+            values = v.reshape(phases, size)
+            post = np.stack(
+                [
+                    self.rewards[d] + discount * self.kernels[d] @ values[(d + 1) % phases]
+                    for d in range(phases)
+                ]
+            )
+            q = psi + post[:, None, :]
+            best = q.argmax(axis=2)
+            best_q = np.take_along_axis(q, best[:, :, None], axis=2)[:, :, 0]
+            current = np.take_along_axis(q, policy[:, :, None], axis=2)[:, :, 0]
+            change = best_q > current + tie
+            if not change.any():
+                break
+            policy = np.where(change, best, policy)
+        self.policy = policy
+        # Rigorous bounds from the Bellman residual (module docstring).
+        slack = best_q - (values + (gain if criterion == "average" else 0.0))
+        if criterion == "discounted":
+            values = values + max(0.0, float(slack.max())) / (1.0 - beta)
+            post = np.stack(
+                [
+                    self.rewards[d] + beta * self.kernels[d] @ values[(d + 1) % phases]
+                    for d in range(phases)
+                ]
+            )
+            gain_bound = 0.0
+        else:
+            gain_bound = gain + float(slack.max())
+        # Occupation measure: discounted from the phase-averaged do-nothing law, or stationary.
+        matrix = self._matrix(policy)
+        n = phases * size
+        if criterion == "discounted":
+            start = self.start
+            occupation = np.linalg.solve((np.eye(n) - beta * matrix).T, start)
+            objective = float(start @ values.reshape(-1))
+        else:
+            occupation = _stationary(matrix)
+            objective = gain_bound
+        occupation = occupation.reshape(phases, size)
+        sends = np.zeros((phases, n_lanes))
+        takes = np.zeros((phases, n_lanes))
+        for d in range(phases):
+            a = best_a[d, rows, policy[d]]
+            b = a - rows + policy[d]
+            send_order, take_order = orders[d]
+            if send_order.size:
+                sends[d, send_order] = occupation[d] @ _greedy_units(a, self.limits[d, send_order])
+            if take_order.size:
+                takes[d, take_order] = occupation[d] @ _greedy_units(b, self.limits[d, take_order])
+        return _StoreSolution(values, post, gain_bound, policy, sends, takes, objective)
+
+
+# -- prices -----------------------------------------------------------------------------------
+
+
+@dataclass
+class _Point:
+    x: NDArray[np.float64]
+    value: float
+    gradient: NDArray[np.float64]
+    solutions: list[_StoreSolution]
+
+
+class _Oracle:
+    """The pricing objective and a subgradient at a price vector x = (lambda.flat, mu)."""
+
+    def __init__(
+        self,
+        net: _Network,
+        criterion: Criterion,
+        laws: list[NDArray[np.float64]],
+        at: NDArray[np.int64] | None = None,
+    ) -> None:
+        """laws: per store (P, C + 1), the stock distribution the bound is averaged over (each
+        phase weighted 1 / P); at: instead, one closing stock in phase 0 (discounted only)."""
+        self.net = net
+        self.criterion = criterion
+        self.stores = [_Store(net, i, laws[i]) for i in range(net.n_stores)]
+        self.has_limit = bool(np.any(net.network_limit >= 0))
+        self.size = net.phases * net.n_lanes + (net.phases if self.has_limit else 0)
+        beta = net.discount
+        phases = net.phases
+        # Weight of mu_d in the objective (module docstring).
+        if criterion == "average":
+            self.mu_weight = net.units / phases
+        elif at is None:
+            self.mu_weight = net.units / (phases * (1.0 - beta))
+        else:
+            # M_0 = sum_k beta^k mu_{k mod P} U_{k mod P}.
+            self.mu_weight = net.units * beta ** np.arange(phases) / (1.0 - beta**phases)
+            for store, units in zip(self.stores, at, strict=True):
+                store.start = np.zeros(phases * (store.capacity + 1))
+                store.start[int(units)] = 1.0
+
+    def split(self, x: NDArray[np.float64]) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+        p, n_lanes = self.net.phases, self.net.n_lanes
+        prices = x[: p * n_lanes].reshape(p, n_lanes)
+        mu = x[p * n_lanes :] if self.has_limit else np.zeros(p)
+        return prices, mu
+
+    def __call__(self, x: NDArray[np.float64]) -> _Point:
+        prices, mu = self.split(x)
+        net = self.net
+        solutions = [
+            store.solve(prices, mu, self.criterion, net.discount, net.n_lanes)
+            for store in self.stores
+        ]
+        value = sum(s.objective for s in solutions) + float(mu @ self.mu_weight)
+        sends = sum(s.sends for s in solutions)
+        takes = sum(s.takes for s in solutions)
+        gradient = [np.asarray(sends - takes).reshape(-1)]
+        if self.has_limit:
+            gradient.append(self.mu_weight - np.asarray(sends).sum(axis=1))
+        return _Point(x.copy(), value, np.concatenate(gradient), solutions)
+
+
+def _price_box(net: _Network, criterion: Criterion) -> float:
+    """Prices beyond +-this cannot matter much: about twice the most a unit can earn or save."""
+    spec = net.spec
+    unit = max(loc.unit_margin + loc.stockout_penalty + loc.holding_cost for loc in spec.locations)
+    return 2.0 * unit + float(net.lane_costs.max(initial=0.0)) + 1.0
+
+
+def _initial_prices(
+    net: _Network, laws: list[NDArray[np.float64]], oracle: _Oracle
+) -> NDArray[np.float64]:
+    """Each lane priced at the mean of its ends' expected marginal post-move values under moving
+    nothing."""
+    beta = net.discount if oracle.criterion == "discounted" else 0.0
+    marginal = np.zeros((net.phases, net.n_stores))
+    for i, (kernels, rewards) in enumerate(zip(net.kernels, net.rewards, strict=True)):
+        size = kernels.shape[1]
+        v = np.zeros((net.phases, size))
+        for _ in range(200 if beta else 1):
+            for d in range(net.phases - 1, -1, -1):
+                v[d] = rewards[d] + beta * kernels[d] @ v[(d + 1) % net.phases]
+        for d in range(net.phases):
+            w = rewards[d] + beta * kernels[d] @ v[(d + 1) % net.phases]
+            marginal[d, i] = float(laws[i][d][:-1] @ np.diff(w)) if size > 1 else 0.0
+    prices = 0.5 * (marginal[:, net.lane_from] + marginal[:, net.lane_to])
+    x = np.zeros(oracle.size)
+    x[: prices.size] = prices.reshape(-1)
+    return x
+
+
+@dataclass
+class _PricingResult:
+    point: _Point
+    iterations: int
+    converged: bool
+    history: list[float]
+
+
+def _price(
+    oracle: _Oracle,
+    x0: NDArray[np.float64],
+    box: float,
+    options: PricedOptions,
+    report: Callable[[int, float], None],
+    started: float,
+) -> _PricingResult:
+    """Box-step cutting planes (module docstring)."""
+    n = oracle.size
+    lower = np.full(n, -box)
+    upper = np.full(n, box)
+    if oracle.has_limit:
+        lower[oracle.net.phases * oracle.net.n_lanes :] = 0.0
+    x0 = np.clip(x0, lower, upper)
+    center = oracle(x0)
+    cuts: list[_Point] = [center]
+    idle = [0]
+    radius = box / 8.0
+    history = [center.value]
+    converged = False
+    iterations = 1
+    report(iterations, center.value)
+    while iterations < options.max_iterations:
+        if options.time_limit is not None and time.perf_counter() - started > options.time_limit:
+            break
+        gradients = np.array([c.gradient for c in cuts])
+        offsets = np.array([c.gradient @ c.x - c.value for c in cuts])
+        a_ub = np.hstack([gradients, -np.ones((len(cuts), 1))])
+        bounds = [
+            (max(lo, x - radius), min(hi, x + radius))
+            for lo, hi, x in zip(lower, upper, center.x, strict=True)
+        ]
+        bounds.append((None, None))
+        objective = np.zeros(n + 1)
+        objective[-1] = 1.0
+        lp = linprog(objective, A_ub=a_ub, b_ub=offsets, bounds=bounds, method="highs")
+        if lp.status != 0:
+            break
+        trial_x = np.asarray(lp.x[:n], dtype=np.float64)
+        predicted = center.value - float(lp.x[-1])
+        marginals = np.asarray(lp.ineqlin.marginals)
+        idle = [0 if abs(m) > 0 else k + 1 for k, m in zip(idle, marginals, strict=True)]
+        if predicted <= options.tolerance * max(1.0, abs(center.value)):
+            converged = True
+            break
+        trial = oracle(trial_x)
+        iterations += 1
+        cuts.append(trial)
+        idle.append(0)
+        if len(cuts) > _MAX_CUTS:
+            drop = int(np.argmax(idle[:-1]))
+            del cuts[drop], idle[drop]
+        decrease = center.value - trial.value
+        if decrease >= 0.1 * predicted:
+            at_edge = np.any(np.abs(trial_x - center.x) >= radius * (1 - 1e-9))
+            if decrease >= 0.5 * predicted and at_edge:
+                radius = min(2.0 * radius, 2.0 * box)
+            center = trial
+        elif decrease < 0:
+            radius = max(radius / 2.0, 1e-6 * box)
+        history.append(center.value)
+        report(iterations, center.value)
+    return _PricingResult(center, iterations, converged, history)
+
+
+def _reference_stock(oracle: _Oracle, solutions: list[_StoreSolution]) -> NDArray[np.int64]:
+    """The certificate's reference stock: per store, the median of its phase-0 stock in the long
+    run under its own priced policy (where the network sits when the plan runs)."""
+    stock = []
+    for store, solution in zip(oracle.stores, solutions, strict=True):
+        law = _stationary(store._matrix(solution.policy)).reshape(store.phases, -1)[0]
+        stock.append(int(np.searchsorted(np.cumsum(law / law.sum()), 0.5)))
+    return np.minimum(np.array(stock, dtype=np.int64), oracle.net.capacities)
+
+
+# -- certificate ------------------------------------------------------------------------------
+
+
+def _do_nothing_gain(net: _Network, laws: list[NDArray[np.float64]]) -> float:
+    """Exact long-run profit per day of moving nothing: per store, its do-nothing laws times its
+    rewards, averaged over the phases."""
+    gain = 0.0
+    for i, rewards in enumerate(net.rewards):
+        gain += float(np.mean([laws[i][d] @ rewards[d] for d in range(net.phases)]))
+    return gain
+
+
+def _truncated_do_nothing(net: _Network, stock: NDArray[np.int64], days: int) -> float:
+    """Exact E sum_{t < days} beta^t (one-day profit) from `stock` (phase 0) moving nothing."""
+    beta = net.discount
+    total = 0.0
+    for i, (kernels, rewards) in enumerate(zip(net.kernels, net.rewards, strict=True)):
+        law = np.zeros(kernels.shape[1])
+        law[stock[i]] = 1.0
+        weight = 1.0
+        for t in range(days):
+            d = t % net.phases
+            total += weight * float(law @ rewards[d])
+            law = law @ kernels[d]
+            weight *= beta
+    return total
+
+
+def _reward_range(net: _Network) -> tuple[float, float]:
+    """Least and most expected one-day profit of any stock and allowed move (currency)."""
+    low = sum(float(r.min()) for r in net.rewards)
+    high = sum(float(r.max()) for r in net.rewards)
+    costs = []
+    for d in range(net.phases):
+        most = float(net.lane_costs @ net.lane_limits[d])
+        if net.network_limit[d] >= 0:
+            most = min(most, float(net.lane_costs.max(initial=0.0)) * float(net.network_limit[d]))
+        costs.append(most)
+    return low - max(costs), high
+
+
+def _incidence(
+    lane_from: NDArray[np.int64], lane_to: NDArray[np.int64], n_stores: int
+) -> NDArray[np.int64]:
+    """(L, N): +1 at each lane's receiver, -1 at its sender; flows @ it is the stock change."""
+    incidence = np.zeros((lane_from.size, n_stores), dtype=np.int64)
+    lanes = np.arange(lane_from.size)
+    incidence[lanes, lane_from] -= 1
+    incidence[lanes, lane_to] += 1
+    return incidence
+
+
+def _simulate(
+    net: _Network,
+    policy: PricedPolicy,
+    stock: NDArray[np.int64],
+    replications: int,
+    days: int,
+    rng: np.random.Generator,
+    weights: NDArray[np.float64],
+    tick: Callable[[], None] = lambda: None,
+) -> NDArray[np.float64]:
+    """Per replication, sum_t weights[t] (profit of the plan - profit of moving nothing) on
+    common random numbers, shape (replications,). `tick` is called after every block of
+    days (for progress reports)."""
+    spec = net.spec
+    laws = daily_laws(spec)
+    margin = np.array([loc.unit_margin for loc in spec.locations])
+    holding = np.array([loc.holding_cost for loc in spec.locations])
+    penalty = np.array([loc.stockout_penalty for loc in spec.locations])
+    caps = net.capacities
+    incidence = _incidence(net.lane_from, net.lane_to, net.n_stores)
+    plan_stock = np.broadcast_to(stock, (replications, caps.size)).copy()
+    idle_stock = plan_stock.copy()
+    total = np.zeros(replications)
+    block = 256
+    done = 0
+    while done < days:
+        count = min(block, days - done)
+        demand, supply = draw_counts(laws, rng, count, replications, first_phase=done)
+        for k in range(count):
+            t = done + k
+            d = t % net.phases
+            flows = policy.plan_batch(plan_stock, phase=d)
+            post = plan_stock + flows @ incidence
+            profits = []
+            for posts in (post, idle_stock):
+                sold = np.minimum(posts, demand[k])
+                lost = demand[k] - sold
+                profits.append((sold * margin - posts * holding - lost * penalty).sum(axis=1))
+            plan_stock = np.minimum(post - np.minimum(post, demand[k]) + supply[k], caps)
+            idle_stock = np.minimum(
+                idle_stock - np.minimum(idle_stock, demand[k]) + supply[k], caps
+            )
+            total += weights[t] * (profits[0] - flows @ net.lane_costs - profits[1])
+        done += count
+        tick()
+    return total
+
+
+def _certify(
+    net: _Network,
+    policy: PricedPolicy,
+    criterion: Criterion,
+    reference: NDArray[np.int64],
+    laws: list[NDArray[np.float64]],
+    options: PricedOptions,
+    report: Callable[[int, float, float | None], None],
+    refined: float | None,
+) -> Certificate:
+    upper = policy.upper_bound(tuple(int(u) for u in reference), phase=0)
+    if refined is not None:
+        upper = min(upper, refined)
+    rng = np.random.default_rng(options.seed)
+    beta = net.discount
+    target = options.target_half_width * max(abs(upper), 1e-9)
+    if criterion == "discounted":
+        low_r, high_r = _reward_range(net)
+        spread = max(high_r - low_r, 1e-12) / (1.0 - beta)
+        wanted = 0.25 * target / spread
+        days = int(min(_MAX_HORIZON, max(1, math.ceil(math.log(wanted) / math.log(beta)))))
+        weights = np.power(beta, np.arange(days, dtype=np.float64))
+        base = _truncated_do_nothing(net, reference, days)
+        tail = (beta**days * low_r / (1.0 - beta), beta**days * high_r / (1.0 - beta))
+        warmup = 0
+    else:
+        days = options.average_days
+        warmup = options.average_warmup
+        weights = np.concatenate([np.zeros(warmup), np.full(days, 1.0 / days)])
+        base = _do_nothing_gain(net, laws)
+        tail = (0.0, 0.0)
+    samples = np.zeros(0)
+    batch = options.replications or _FIRST_REPLICATIONS
+    low: float | None = None
+    while True:
+        done = samples.size
+        part = _simulate(
+            net,
+            policy,
+            reference,
+            batch,
+            warmup + days,
+            rng,
+            weights,
+            functools.partial(report, done, upper, low),
+        )
+        samples = np.concatenate([samples, part])
+        n = samples.size
+        half = (
+            float(stats.t.ppf(0.5 + options.confidence / 2, n - 1))
+            * float(samples.std(ddof=1))
+            / math.sqrt(n)
+        )
+        mean = base + float(samples.mean())
+        low = mean - half + tail[0]
+        report(n, upper, low)
+        if options.replications is not None or half <= target or n >= options.max_replications:
+            break
+        batch = min(n, options.max_replications - n)
+    low = mean - half + tail[0]
+    high = mean + half + tail[1]
+    gap = (upper - low) / max(abs(upper), 1e-12)
+    return Certificate(
+        reference_stock=tuple(int(u) for u in reference),
+        upper_bound=upper,
+        policy_value=mean,
+        policy_value_interval=(low, high),
+        certified_gap=gap,
+        replications=int(n),
+    )
+
+
+# -- the solve --------------------------------------------------------------------------------
+
+
+def solve_priced(
+    spec: NetworkSpec,
+    *,
+    criterion: Criterion = "discounted",
+    options: PricedOptions | None = None,
+    progress: Callable[[PricedProgress], None] | None = None,
+) -> PricedPolicy:
+    """Prices, per-store values, the nightly plan and its certificate for `spec`.
+
+    Raises ModelTooLargeError beyond PricedLimits (check_priced_size)."""
+    options = options or PricedOptions()
+    check_priced_size(spec)
+    started = time.perf_counter()
+    seconds: dict[str, float] = {}
+    net = _network(spec)
+    laws = _do_nothing_laws(net)
+    oracle = _Oracle(net, criterion, laws)
+    seconds["build"] = time.perf_counter() - started
+
+    def pricing_report(iteration: int, bound: float) -> None:
+        if progress is not None:
+            progress(
+                PricedProgress("pricing", iteration, bound, None, time.perf_counter() - started)
+            )
+
+    t = time.perf_counter()
+    box = _price_box(net, criterion)
+    result = _price(
+        oracle, _initial_prices(net, laws, oracle), box, options, pricing_report, started
+    )
+    seconds["pricing"] = time.perf_counter() - t
+    point = result.point
+    prices, mu = oracle.split(point.x)
+    solutions = point.solutions
+    beta = net.discount
+    phases = net.phases
+    units = net.units
+    if criterion == "discounted":
+        constants = np.array(
+            [
+                sum(beta**k * mu[(d + k) % phases] * units[(d + k) % phases] for k in range(phases))
+                for d in range(phases)
+            ]
+        ) / (1.0 - beta**phases)
+        gain = None
+    else:
+        gain = sum(s.gain for s in solutions) + float(mu @ units) / phases
+        constants = np.full(phases, gain)
+    reference = _reference_stock(oracle, solutions)
+    refined = None
+    if criterion == "discounted":
+        # The bound at the reference stock itself, from prices minimised there (still valid).
+        t = time.perf_counter()
+        at_reference = _Oracle(net, criterion, laws, at=reference)
+        for store, solved in zip(at_reference.stores, solutions, strict=True):
+            store.policy = solved.policy.copy()
+        refinement = _price(
+            at_reference,
+            point.x,
+            box,
+            replace(options, max_iterations=max(1, options.max_iterations // 2)),
+            lambda i, b: pricing_report(result.iterations + i, b),
+            started,
+        )
+        refined = refinement.point.value
+        seconds["reference_pricing"] = time.perf_counter() - t
+    placeholder = Certificate(tuple(int(u) for u in reference), 0.0, 0.0, (0.0, 0.0), 0.0, 0)
+    policy = PricedPolicy(
+        criterion=criterion,
+        method="priced",
+        location_ids=tuple(spec.location_ids),
+        capacities=tuple(int(c) for c in net.capacities),
+        lanes=tuple((int(a), int(b)) for a, b in zip(net.lane_from, net.lane_to, strict=True)),
+        lane_costs=net.lane_costs,
+        lane_limits=net.lane_limits,
+        network_limit=net.network_limit,
+        discount=beta if criterion == "discounted" else None,
+        phases=phases,
+        prices=prices.copy(),
+        network_price=mu.copy(),
+        store_values=tuple(s.values for s in solutions),
+        store_post_move_values=tuple(s.post_move for s in solutions),
+        constants=constants,
+        gain=gain,
+        certificate=placeholder,
+        iterations=result.iterations,
+        converged=result.converged,
+        seconds={},
+    )
+
+    def certify_report(replications: int, bound: float, low: float | None) -> None:
+        if progress is not None:
+            progress(
+                PricedProgress(
+                    "certifying", replications, bound, low, time.perf_counter() - started
+                )
+            )
+
+    t = time.perf_counter()
+    certificate = _certify(
+        net, policy, criterion, reference, laws, options, certify_report, refined
+    )
+    seconds["certify"] = time.perf_counter() - t
+    seconds["total"] = time.perf_counter() - started
+    return replace(policy, certificate=certificate, seconds=seconds)
+
+
+def pricing_history(
+    spec: NetworkSpec, *, criterion: Criterion = "discounted", options: PricedOptions | None = None
+) -> list[float]:
+    """The pricing objective after each iteration (the best so far): for tests and
+    benchmarks."""
+    options = options or PricedOptions()
+    net = _network(spec)
+    laws = _do_nothing_laws(net)
+    oracle = _Oracle(net, criterion, laws)
+    result = _price(
+        oracle,
+        _initial_prices(net, laws, oracle),
+        _price_box(net, criterion),
+        options,
+        lambda _i, _b: None,
+        time.perf_counter(),
+    )
+    return result.history
+
+
+# -- exact evaluation of the plan -------------------------------------------------------------
+
+
+def _evaluation_model(spec: NetworkSpec, limits: SizeLimits | None) -> TransferModel:
+    """The network's kernels and rewards as a TransferModel whose flow table holds only 'move
+    nothing' (the plan supplies the moves)."""
+    limits = limits or SizeLimits()
+    net = _network(spec)
+    states = 1
+    for c in net.capacities:
+        states *= int(c) + 1
+    if states * net.phases > limits.max_states:
+        raise ModelTooLargeError(
+            f"exact evaluation covers up to {limits.max_states:,} states; the network has "
+            f"{states * net.phases:,}",
+            states=states * net.phases,
+            pairs=None,
+        )
+    shape = tuple(int(c) + 1 for c in net.capacities)
+    reward = np.zeros((net.phases, *shape))
+    for i, rewards in enumerate(net.rewards):
+        axis = [1] * len(shape)
+        axis[i] = -1
+        for d in range(net.phases):
+            reward[d] += rewards[d].reshape(axis)
+    return TransferModel(
+        location_ids=tuple(spec.location_ids),
+        capacities=net.capacities,
+        lane_from=net.lane_from,
+        lane_to=net.lane_to,
+        lane_costs=net.lane_costs,
+        flows=np.zeros((1, net.n_lanes), dtype=np.int64),
+        kernels=tuple(tuple(k[d] for k in net.kernels) for d in range(net.phases)),
+        reward=reward,
+        allowed=np.ones((net.phases, 1), dtype=np.bool_),
+        discount=spec.discount,
+    )
+
+
+def _plan_chain(model: TransferModel, policy: PricedPolicy) -> PolicyChain:
+    states = np.indices(model.shape).reshape(model.n_locations, -1).T.astype(np.int64)
+    incidence = _incidence(model.lane_from, model.lane_to, model.n_locations)
+    post = np.empty((model.n_phases, model.n_states), dtype=np.int64)
+    reward = np.empty((model.n_phases, model.n_states))
+    for d in range(model.n_phases):
+        for start in range(0, model.n_states, _PLAN_CHUNK):
+            chunk = states[start : start + _PLAN_CHUNK]
+            flows = policy.plan_batch(chunk, phase=d)
+            index = (chunk + flows @ incidence) @ model.strides
+            post[d, start : start + chunk.shape[0]] = index
+            reward[d, start : start + chunk.shape[0]] = (
+                model.reward[d].reshape(-1)[index] - flows @ model.lane_costs
+            )
+    return PolicyChain(model, post, reward.reshape(-1))
+
+
+def evaluate_plan_exactly(
+    spec: NetworkSpec,
+    policy: PricedPolicy,
+    criterion: Criterion,
+    *,
+    limits: SizeLimits | None = None,
+) -> NDArray[np.float64]:
+    """The exact value of the priced policy at every phase and closing stock, shape (P, S):
+    discounted values, or for the average criterion the bias (evaluate_plan_average gives the
+    gain too). Uses the exact evaluator (solver.evaluation) with the plan made at every state by
+    plan_batch. Raises ModelTooLargeError beyond the exact size limits."""
+    if criterion == "average":
+        return evaluate_plan_average(spec, policy, limits=limits)[1]
+    model = _evaluation_model(spec, limits)
+    chain = _plan_chain(model, policy)
+    beta = model.discount
+    scale = max(1.0, float(np.abs(chain.reward).max())) / (1.0 - beta)
+    values = evaluate_discounted(
+        chain,
+        beta,
+        v0=np.zeros(model.n_phases * model.n_states),
+        tolerance=1e-11 * scale,
+        method=choose_evaluation(beta),
+    )
+    result: NDArray[np.float64] = values.reshape(model.n_phases, model.n_states)
+    return result
+
+
+def evaluate_plan_average(
+    spec: NetworkSpec, policy: PricedPolicy, *, limits: SizeLimits | None = None
+) -> tuple[float, NDArray[np.float64]]:
+    """(gain, bias of shape (P, S)) of the priced policy under the average criterion, exactly
+    (the policy's chain is assumed unichain, as under any Poisson or negative binomial law)."""
+    model = _evaluation_model(spec, limits)
+    chain = _plan_chain(model, policy)
+    scale = max(1.0, float(np.abs(chain.reward).max()))
+    gain, bias = evaluate_average(
+        chain,
+        gain0=0.0,
+        bias0=np.zeros(model.n_phases * model.n_states),
+        tolerance=1e-10 * scale * math.sqrt(chain.reward.size),
+    )
+    return gain, bias.reshape(model.n_phases, model.n_states)

@@ -1,0 +1,319 @@
+"""Tonight's moves from per-store post-move values: a concave separable transportation problem,
+solved for a whole batch of closing stocks at once.
+
+Problem (symbols as in solver.model). Given closing stock s, per-store values W_i on post-move
+stock 0..C_i (concave; see `concave_envelope`), lane costs c_l and tonight's lane limits u_l and
+units-per-night limit U,
+
+    maximise  sum_i W_i(y_i) - sum_l c_l f_l
+    over integer f with 0 <= f_l <= u_l, out_i(f) <= s_i, y_i = s_i - out_i + in_i <= C_i,
+              sum_l f_l <= U.
+
+As a network: a node T; per store an "own stock" node O_i and a "post-move" node Y_i. Arcs
+T -> O_i carry exactly s_i; O_i -> Y_i ("stay", unbounded, cost 0); O_i -> Y_j for lane
+l = i -> j (capacity u_l, cost c_l); Y_i -> T carries y_i <= C_i with convex cost -W_i(y_i), one
+unit segment at a time. A plan is a circulation; out_i <= s_i holds because a store only sends
+units that reach O_i, i.e. its own closing stock (a unit received tonight is not sent on).
+
+Algorithm: start from moving nothing (every unit stays) and repeatedly push units around the
+most profitable cycle through T in the residual network: T -> Y_i (one unit less at i, losing
+W_i(y_i) - W_i(y_i - 1)), a shortest path to some Y_j over residual stay, lane and reversed arcs
+(Bellman-Ford from T), and Y_j -> T (one unit more at j, gaining W_j(y_j + 1) - W_j(y_j)), as
+many units as stay profitable and fit the path's residual capacities; stop when no cycle gains
+more than a tolerance. Invariant: the residual arcs not entering T have
+non-negative reduced cost under the Bellman-Ford distances (true at the start, where the only
+residual arcs are stays and lanes with c_l >= 0, and kept by augmenting along shortest paths,
+as in successive shortest paths; concavity of W keeps T's arcs in order). Every negative cycle
+then passes through T, so when the best one gains nothing the plan is optimal: the
+negative-cycle optimality condition of min-cost flow with separable convex arc costs
+(Ahuja, Magnanti & Orlin, Network Flows, 1993, sections 9.1 and 14.2; from memory). Without a
+binding units-per-night limit the plan is therefore exact for concave W.
+
+Units-per-night limit: each augmentation changes sum_l f_l by its number of forward lane arcs
+minus reversed ones (usually +1). Cycles are taken only while they fit the remaining allowance;
+when the best cycle does not fit, the best single-lane move that fits is taken instead, and the
+plan stops when neither gains. This is the usual budgeted greedy: exact when the limit does not
+bind or every useful cycle is a single move, otherwise a feasible plan that the tests compare
+with scipy.optimize.milp.
+
+Everything is vectorised over the batch (numpy, no flow vectors are enumerated); rows that have
+finished drop out of the loop. Each row's arithmetic is independent of the other rows, so a
+stock gets the same plan alone or in any batch. Opposite flows on a lane pair are netted at the
+end (same post-move stock, no higher cost), as the exact solver's flow table does.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import NDArray
+
+__all__ = ["PlanNetwork", "concave_envelope", "plan_flows"]
+
+_NONE = -1  # predecessor of a node reached straight from T
+
+
+def concave_envelope(values: NDArray[np.float64]) -> NDArray[np.float64]:
+    """The least concave majorant of `values` on 0..n-1, at the same points, shape (n,).
+
+    Equal to `values` where they are already concave (up to rounding)."""
+    n = values.size
+    hull: list[int] = []
+    for k in range(n):
+        while len(hull) >= 2:
+            a, b = hull[-2], hull[-1]
+            # b lies on or below the chord from a to k: drop it.
+            if (values[b] - values[a]) * (k - a) <= (values[k] - values[a]) * (b - a):
+                hull.pop()
+            else:
+                break
+        hull.append(k)
+    points = np.array(hull)
+    envelope: NDArray[np.float64] = np.interp(np.arange(n), points, values[points])
+    envelope[points] = values[points]
+    return envelope
+
+
+@dataclass(frozen=True, eq=False)
+class PlanNetwork:
+    """Fixed geometry of the nightly problem: N stores, L lanes (arcs of the residual network
+    in a fixed order: stays, un-stays, lanes, reversed lanes)."""
+
+    capacities: NDArray[np.int64]
+    lane_from: NDArray[np.int64]
+    lane_to: NDArray[np.int64]
+    lane_costs: NDArray[np.float64]
+
+    @property
+    def n_stores(self) -> int:
+        return int(self.capacities.size)
+
+    @property
+    def n_lanes(self) -> int:
+        return int(self.lane_from.size)
+
+    def arcs(self) -> tuple[NDArray[np.int64], NDArray[np.int64], NDArray[np.float64]]:
+        """(tail, head, cost) of the residual arcs; nodes O_i = i, Y_i = N + i."""
+        n = self.n_stores
+        stores = np.arange(n, dtype=np.int64)
+        tail = np.concatenate([stores, n + stores, self.lane_from, n + self.lane_to])
+        head = np.concatenate([n + stores, stores, n + self.lane_to, self.lane_from])
+        cost = np.concatenate([np.zeros(2 * n), self.lane_costs, -self.lane_costs]).astype(
+            np.float64
+        )
+        return tail, head, cost
+
+
+def plan_flows(
+    network: PlanNetwork,
+    stocks: NDArray[np.int64],
+    values: NDArray[np.float64],
+    lane_limits: NDArray[np.int64],
+    network_limit: int | None,
+    tolerance: float,
+) -> NDArray[np.int64]:
+    """Units per lane for every closing stock of the batch, shape (B, L).
+
+    stocks: shape (B, N), 0 <= s_i <= C_i.
+    values: shape (N, max C + 1), row i holding a concave W_i on 0..C_i (entries beyond C_i
+        are ignored).
+    lane_limits: shape (L,) or (B, L), units per lane tonight.
+    network_limit: units over all lanes tonight, None for no limit.
+    tolerance: a cycle must gain more than this (currency) to be taken.
+    """
+    n, n_lanes = network.n_stores, network.n_lanes
+    batch = stocks.shape[0]
+    caps = network.capacities
+    limits = np.broadcast_to(np.asarray(lane_limits, dtype=np.int64), (batch, n_lanes))
+    tail, _, _ = network.arcs()
+    n_nodes = 2 * n
+    # Arc ids by (sender a, receiver j): into Y_j from O_a (stay when a == j, else lane a -> j)
+    # and into O_a from Y_j (un-stay when a == j, else the reversed lane a -> j); -1: none.
+    lane_id = np.full((n, n), -1, dtype=np.int64)
+    lane_id[network.lane_from, network.lane_to] = np.arange(n_lanes)
+    has_lane = lane_id >= 0
+    into_y = np.where(has_lane, 2 * n + lane_id, _NONE)
+    into_o = np.where(has_lane, 2 * n + n_lanes + lane_id, _NONE)
+    diagonal = np.arange(n)
+    into_y[diagonal, diagonal] = diagonal
+    into_o[diagonal, diagonal] = n + diagonal
+    width_c = values.shape[1]
+    # Marginal values: up[i, y] = W_i(y + 1) - W_i(y) for y < C_i.
+    up = np.full((n, width_c + 1), -np.inf)
+    for i in range(n):
+        c = int(caps[i])
+        up[i, :c] = np.diff(values[i, : c + 1])
+    store_rows = np.arange(n)
+
+    flows = np.zeros((batch, n_lanes), dtype=np.int64)
+    stay = stocks.astype(np.int64).copy()
+    post = stocks.astype(np.int64).copy()
+    used = np.zeros(batch, dtype=np.int64)
+    budget = np.iinfo(np.int64).max if network_limit is None else int(network_limit)
+    active = np.arange(batch)
+    while active.size:
+        y, st, f, lim = post[active], stay[active], flows[active], limits[active]
+        b = active.size
+        rows = np.arange(b)[:, None]
+        gain = up[store_rows[None, :], y]  # (b, N): value of one more unit, -inf when full
+        loss = np.where(y > 0, up[store_rows[None, :], np.maximum(y - 1, 0)], np.inf)
+        # Residual arc costs as (b, sender, receiver) matrices, inf where unavailable.
+        forward = np.full((b, n, n), np.inf)
+        forward[:, network.lane_from, network.lane_to] = np.where(
+            f < lim, network.lane_costs[None, :], np.inf
+        )
+        forward[:, diagonal, diagonal] = 0.0
+        backward = np.full((b, n, n), np.inf)
+        backward[:, network.lane_from, network.lane_to] = np.where(
+            f > 0, -network.lane_costs[None, :], np.inf
+        )
+        backward[:, diagonal, diagonal] = np.where(st > 0, 0.0, np.inf)
+        dist_y = loss.copy()
+        dist_o = np.full((b, n), np.inf)
+        pred_y = np.full((b, n), _NONE, dtype=np.int64)
+        pred_o = np.full((b, n), _NONE, dtype=np.int64)
+        live = np.arange(b)
+        # Bellman-Ford in alternating half-steps (O from Y, then Y from O; the residual network
+        # is bipartite between the two), only on rows whose distances still change.
+        for _ in range(n_nodes):
+            changed = np.zeros(live.size, dtype=np.bool_)
+            candidate = dist_y[live][:, None, :] + backward[live]  # (l, a, j)
+            best = candidate.argmin(axis=2)
+            value = np.take_along_axis(candidate, best[:, :, None], axis=2)[:, :, 0]
+            better = value < _threshold(dist_o[live])
+            if better.any():
+                changed |= better.any(axis=1)
+                dist_o[live] = np.where(better, value, dist_o[live])
+                pred_o[live] = np.where(better, into_o[diagonal[None, :], best], pred_o[live])
+            candidate = dist_o[live][:, :, None] + forward[live]  # (l, a, j)
+            best = candidate.argmin(axis=1)
+            value = np.take_along_axis(candidate, best[:, None, :], axis=1)[:, 0, :]
+            better = value < _threshold(dist_y[live])
+            if better.any():
+                changed |= better.any(axis=1)
+                dist_y[live] = np.where(better, value, dist_y[live])
+                pred_y[live] = np.where(better, into_y[best, diagonal[None, :]], pred_y[live])
+            live = live[changed]
+            if not live.size:
+                break
+        dist = np.concatenate([dist_o, dist_y], axis=1)
+        pred = np.concatenate([pred_o, pred_y], axis=1)
+        cycle = dist[:, n:] - gain  # (b, N): cost of the best cycle ending at Y_j
+        j = cycle.argmin(axis=1)
+        profit = -cycle[rows[:, 0], j]
+        take = profit > tolerance
+        # Walk each path back to T: lane count, then apply (only rows that take it).
+        node = n + j
+        r = rows[:, 0]
+        delta_lanes = np.zeros(b, dtype=np.int64)
+        room = np.full(b, np.iinfo(np.int64).max // 4, dtype=np.int64)
+        path: list[NDArray[np.int64]] = []
+        for _ in range(n_nodes + 1):
+            arc = pred[r, node]
+            live = arc != _NONE
+            if not live.any():
+                break
+            safe = np.where(live, arc, 0)
+            kind_unstay = live & (safe >= n) & (safe < 2 * n)
+            kind_lane = live & (safe >= 2 * n) & (safe < 2 * n + n_lanes)
+            kind_back = live & (safe >= 2 * n + n_lanes)
+            delta_lanes += kind_lane.astype(np.int64) - kind_back.astype(np.int64)
+            lane = np.clip(safe - 2 * n, 0, n_lanes - 1)
+            back = np.clip(safe - 2 * n - n_lanes, 0, n_lanes - 1)
+            residual = np.where(kind_unstay, st[r, np.clip(safe - n, 0, n - 1)], room)
+            residual = np.where(kind_lane, lim[r, lane] - f[r, lane], residual)
+            residual = np.where(kind_back, f[r, back], residual)
+            room = np.minimum(room, residual)
+            path.append(np.where(live, arc, _NONE))
+            node = np.where(live, tail[safe], node)
+        start = node - n  # the store that gives up units (T -> Y_start)
+        # A path that does not lead back to T (only on rounding-level cycles) is not taken.
+        take &= (node >= n) & (pred[r, node] == _NONE) & (start != j)
+        start = np.clip(start, 0, n - 1)
+        # Units pushed around the same cycle: the internal path keeps its cost and every
+        # internal residual arc keeps a non-negative reduced cost (so the invariant holds for
+        # any amount); the k-th unit gains W_j(y_j + k) - W_j(y_j + k - 1) and loses
+        # W_i(y_i - k + 1) - W_i(y_i - k), which fall with k by concavity.
+        k = np.arange(1, width_c + 1)[None, :]
+        y_start, y_end = y[r, start], y[r, j]
+        internal = dist[r, n + j] - up[start, np.maximum(y_start - 1, 0)]
+        lose = np.where(
+            k <= y_start[:, None], up[start[:, None], np.maximum(y_start[:, None] - k, 0)], np.inf
+        )
+        win = up[j[:, None], np.minimum(y_end[:, None] + k - 1, width_c)]
+        worth = (win - lose - internal[:, None] > tolerance) & (k <= room[:, None])
+        units = worth.sum(axis=1)
+        if network_limit is not None:
+            spare = budget - used[active]
+            units = np.where(
+                delta_lanes > 0, np.minimum(units, spare // np.maximum(delta_lanes, 1)), units
+            )
+        fits = units >= 1
+        full_take = take & fits
+        units = np.where(full_take, units, 0)
+        # Rows whose best cycle does not fit: the best single-lane move that fits, if any.
+        fallback = take & ~fits & (used[active] < budget)
+        lane_take = np.zeros(b, dtype=np.bool_)
+        lane_choice = np.zeros(b, dtype=np.int64)
+        if fallback.any():
+            sender, receiver = network.lane_from, network.lane_to
+            direct = gain[:, receiver] - loss[:, sender] - network.lane_costs[None, :]
+            ok = (f < lim) & (st[:, sender] > 0) & (y[:, receiver] < caps[receiver])
+            direct = np.where(ok, direct, -np.inf)
+            lane_choice = direct.argmax(axis=1)
+            lane_take = fallback & (direct[rows[:, 0], lane_choice] > tolerance)
+        # Apply full cycles.
+        for arc in path:
+            on = full_take & (arc != _NONE)
+            if not on.any():
+                continue
+            idx = np.flatnonzero(on)
+            a = arc[idx]
+            stay_arc = a < n
+            unstay_arc = (a >= n) & (a < 2 * n)
+            lane_arc = (a >= 2 * n) & (a < 2 * n + n_lanes)
+            back_arc = a >= 2 * n + n_lanes
+            u = units[idx]
+            np.add.at(st, (idx[stay_arc], a[stay_arc]), u[stay_arc])
+            np.add.at(st, (idx[unstay_arc], a[unstay_arc] - n), -u[unstay_arc])
+            np.add.at(f, (idx[lane_arc], a[lane_arc] - 2 * n), u[lane_arc])
+            np.add.at(f, (idx[back_arc], a[back_arc] - 2 * n - n_lanes), -u[back_arc])
+        idx = np.flatnonzero(full_take)
+        np.add.at(y, (idx, start[idx]), -units[idx])
+        np.add.at(y, (idx, j[idx]), units[idx])
+        # Apply single-lane fallbacks.
+        idx = np.flatnonzero(lane_take)
+        lanes = lane_choice[idx]
+        np.add.at(f, (idx, lanes), 1)
+        np.add.at(st, (idx, network.lane_from[lanes]), -1)
+        np.add.at(y, (idx, network.lane_from[lanes]), -1)
+        np.add.at(y, (idx, network.lane_to[lanes]), 1)
+        post[active], stay[active], flows[active] = y, st, f
+        used[active] += units * delta_lanes + lane_take.astype(np.int64)
+        active = active[full_take | lane_take]
+    return _net_opposite(flows, network)
+
+
+def _threshold(dist: NDArray[np.float64]) -> NDArray[np.float64]:
+    """Distances a candidate must beat: strictly, beyond rounding, so that zero-cost cycles
+    never update anything."""
+    finite = np.isfinite(dist)
+    margin = 1e-12 * (1.0 + np.abs(np.where(finite, dist, 0.0)))
+    result: NDArray[np.float64] = np.where(finite, dist - margin, np.inf)
+    return result
+
+
+def _net_opposite(flows: NDArray[np.int64], network: PlanNetwork) -> NDArray[np.int64]:
+    """Cancel units sent both ways between two stores."""
+    index = {
+        (int(a), int(b)): k
+        for k, (a, b) in enumerate(zip(network.lane_from, network.lane_to, strict=True))
+    }
+    for (a, b), k in index.items():
+        other = index.get((b, a))
+        if other is not None and k < other:
+            both = np.minimum(flows[:, k], flows[:, other])
+            flows[:, k] -= both
+            flows[:, other] -= both
+    return flows
