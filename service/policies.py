@@ -211,7 +211,9 @@ def _check_being_solved(
 ) -> None:
     """PolicyNotSolvedError unless the current version's solve for `criterion` is queued or
     running (its policy is not stored yet)."""
-    jobs = repository.jobs_for(session, network.tenant_id, newest.spec_hash, criterion)
+    jobs = repository.jobs_for(
+        session, network.tenant_id, newest.spec_hash, criterion, newest.method
+    )
     if jobs and jobs[0].state in repository.LIVE_STATES:
         return
     requested = repository.criteria_requested(session, network.tenant_id, newest.spec_hash)

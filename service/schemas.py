@@ -189,13 +189,13 @@ class JobProgressOut(BaseModel):
         description="pricing: improving the lane prices; certifying: simulating the policy "
         "for its lower bound."
     )
-    iteration: int
+    iteration: int = Field(description="Pricing iteration, or batch of replications.")
     upper_bound: float = Field(description="Best upper bound on the optimal value so far.")
     lower_bound: float | None = Field(
         description="Best lower bound so far (the policy's simulated value); null until certifying."
     )
     elapsed: float = Field(description="Seconds since the solve started.")
-    reported_at: Timestamp
+    reported_at: Timestamp = Field(description="When the worker reported it (UTC).")
 
 
 class JobOut(_Out):
@@ -204,7 +204,7 @@ class JobOut(_Out):
     version_number: int = Field(description="The network version solved (as in If-Match).")
     version_id: int = Field(description="Internal id of that version's row; prefer the two above.")
     criterion: str
-    method: MethodName = "exact"
+    method: MethodName = Field(default="exact", description="exact or priced: how the job solves.")
     state: Literal["queued", "running", "done", "failed"]
     attempts: int
     created_at: Timestamp
@@ -310,7 +310,9 @@ class RelayOut(BaseModel):
 class CertificateOut(BaseModel):
     """How far a priced policy can be from optimal, certified at one reference stock."""
 
-    reference_stock: dict[str, int]
+    reference_stock: dict[str, int] = Field(
+        description="The closing stock, per location, at which the certificate is computed."
+    )
     upper_bound: float = Field(
         description="Lagrangian upper bound on the optimal value at the reference stock: no "
         "policy can do better."
@@ -323,7 +325,7 @@ class CertificateOut(BaseModel):
         description="(upper bound - low end of the interval) / upper bound, as a fraction: "
         "0.012 is 1.2%."
     )
-    replications: int
+    replications: int = Field(description="Simulated replications behind the interval.")
 
 
 class RecommendationOut(BaseModel):
@@ -872,7 +874,9 @@ class WhatIfRequest(BaseModel):
 
 class WhatIfSummaryOut(BaseModel):
     states: int
-    method: MethodName = "exact"
+    method: MethodName = Field(
+        default="exact", description="exact or priced: how both networks were solved."
+    )
     profit_per_day: float | None = Field(description="Long-run profit per day (average only).")
     mean_value: float | None = Field(
         description="Expected discounted profit averaged over every stock (discounted only)."
@@ -899,7 +903,11 @@ class WhatIfChangeOut(BaseModel):
     profit_per_day: float | None
     mean_value: float | None
     value_at_reference: float | None
-    upper_bound_at_reference: float | None = None
+    upper_bound_at_reference: float | None = Field(
+        default=None,
+        description="Priced networks: the upper bound at the certificate's reference stock; "
+        "null for exact ones.",
+    )
 
 
 class MoveChangesOut(BaseModel):

@@ -59,16 +59,23 @@ def upgrade() -> None:
 
 
 def downgrade() -> None:
-    with op.batch_alter_table("networks", schema=None) as batch_op:
-        batch_op.drop_column("closing_cutoff")
-
-    with op.batch_alter_table("instructions", schema=None) as batch_op:
-        batch_op.drop_column("revision")
-
-    with op.batch_alter_table("calibration_settings", schema=None) as batch_op:
-        batch_op.drop_column("receipts_sell_same_day")
+    for table, column in (
+        ("networks", "closing_cutoff"),
+        ("instructions", "revision"),
+        ("calibration_settings", "receipts_sell_same_day"),
+    ):
+        _drop_column(table, column)
 
     with op.batch_alter_table("closing_corrections", schema=None) as batch_op:
         batch_op.drop_index("ix_closing_corrections_network_day")
 
     op.drop_table("closing_corrections")
+
+
+def _drop_column(table: str, column: str) -> None:
+    """SQLite drops it in place (3.35 and later): a batch rebuild of a table that others
+    reference (networks) would fail their foreign keys, which are enforced."""
+    if op.get_bind().dialect.name == "sqlite":
+        op.execute(sa.text(f"ALTER TABLE {table} DROP COLUMN {column}"))
+    else:
+        op.drop_column(table, column)

@@ -345,7 +345,7 @@ def test_closing_instructions_of_a_priced_network_follow_its_plan(
 
 
 @sqlite_only
-def test_a_simulation_of_a_priced_network_runs_its_plan_beside_moving_nothing(
+def test_a_simulation_of_a_priced_network_runs_its_plan_beside_the_baselines(
     client: TestClient, engine: Engine
 ) -> None:
     network_id = priced_network(client, engine)
@@ -355,7 +355,7 @@ def test_a_simulation_of_a_priced_network_runs_its_plan_beside_moving_nothing(
     assert run_worker(engine) == 1
     report = client.get(started.headers["Location"]).json()["report"]
     assert report["optimal_source"] == "stored"
-    assert [p["name"] for p in report["policies"]] == ["priced", "do_nothing"]
+    assert [p["name"] for p in report["policies"]] == ["priced", "do_nothing", "balance_cover"]
     # Moving nothing on the same random days as solver.simulation's table simulation (common
     # random numbers: the same uniforms per day, replication and location).
     model = build_transfer_model(DEMO_SPEC)

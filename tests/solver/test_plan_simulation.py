@@ -83,7 +83,7 @@ def test_infeasible_plans_are_refused() -> None:
         flows[:, 0] = 1  # a unit along the first lane, whatever is on hand
         return flows
 
-    with pytest.raises(ValueError, match="not feasible"):
+    with pytest.raises(ValueError, match="more than is on hand"):
         simulate_plans(
             spec,
             {"greedy": greedy},
@@ -106,7 +106,17 @@ def test_weekly_lane_limits_bind_the_plan() -> None:
         flows[:, 0] = 1
         return flows
 
-    with pytest.raises(ValueError, match="lane's limit"):
+    with pytest.raises(ValueError, match="more units on a lane than its limit"):
         simulate_plans(
             closed, {"one": one_unit}, days=3, replications=2, rng=np.random.default_rng(0)
         )
+
+
+def test_a_plan_of_the_wrong_shape_is_refused() -> None:
+    spec = two_stores(capacities=(4, 4))
+
+    def short(stock: NDArray[np.int64], phase: int) -> NDArray[np.int64]:
+        return np.zeros((stock.shape[0], 1), dtype=np.int64)
+
+    with pytest.raises(ValueError, match="one row per stock and a column per lane"):
+        simulate_plans(spec, {"short": short}, days=1, replications=1, rng=np.random.default_rng(0))
