@@ -4,18 +4,18 @@ slack and policy loss against exact dynamic programming on small ones.
 Usage: .venv/bin/python benchmarks/priced.py [--quick] [--out PATH]
 
 Large networks (benchmarks/networks.py, scenarios of our own): 12 garden centres of capacity 60
-with lanes between every pair (132 lanes), 24 of capacity 40 with lanes between every pair
-(552 lanes), 50 of capacity 30 with lanes to the 6 nearest branches both ways; lane limits of 3
-to 5 units, at most 2 units per branch a night in all, Poisson and negative binomial demand,
-discount 0.99. Each is solved with its certificate (default PricedOptions, seed 0); the table
-gives pricing iterations, seconds (pricing, the reference-stock pricing, certificate, total),
-the certified gap and the targets of the issue (12 stores: <= 60 s and gap <= 1.5%; 24 stores:
-<= 180 s and gap <= 1.0%; 50 stores: <= 600 s, gap reported).
+with lanes between every pair (132 lanes), 24 of capacity 40 with lanes between every pair (552
+lanes), 50 of capacity 30 with lanes to the 6 nearest branches both ways (368 lanes); lane
+limits of 3 to 5 units, at most 2 units per branch a night in all, Poisson and negative binomial
+demand, discount 0.99. Each is solved with its certificate (default PricedOptions, seed 0); the
+table gives pricing iterations, seconds (pricing, the reference-stock pricing, certificate,
+total), the certified gap and the targets of the issue (12 stores: <= 60 s and gap <= 1.5%; 24
+stores: <= 180 s and gap <= 1.0%; 50 stores: <= 600 s, gap reported).
 
-Small networks: the same generator at 2 to 5 stores (discount 0.97), solved exactly (Howard's policy iteration)
-and by prices; bound slack = (bound - optimal value) / mean |optimal value| (median and largest
-over all stock states), policy loss = (optimal value - the plan's exact value) / mean |optimal
-value| (median and largest).
+Small networks: the same generator at 2 to 5 stores (discount 0.97), solved exactly (Howard's
+policy iteration) and by prices; bound slack = (bound - optimal value) / mean |optimal value|
+(median and largest over all stock states), policy loss = (optimal value - the plan's exact
+value) / mean |optimal value| (median and largest).
 
 A table goes to stdout and everything to JSON (default benchmarks/results/priced.json) through
 the shared writer of benchmarks/solve.py. BLAS runs single-threaded, as in benchmarks/solve.py;
