@@ -18,9 +18,10 @@ policy iteration) and by prices; bound slack = (bound - optimal value) / mean |o
 value) / mean |optimal value| (median and largest).
 
 A table goes to stdout and everything to JSON (default benchmarks/results/priced.json) through
-the shared writer of benchmarks/solve.py. BLAS runs single-threaded, as in benchmarks/solve.py;
-stores are solved in one process (on 2 shared cores a second process did not pay: the per-store
-solves take milliseconds and the certificate's simulation is one vectorised loop).
+the shared writer of benchmarks/solve.py. BLAS runs single-threaded, as in benchmarks/solve.py.
+Everything runs in one process: pricing takes a few seconds in all (each store's subproblem
+milliseconds), and the certificate's simulation is one loop vectorised over replications, so
+spreading stores over processes was not tried.
 """
 
 import os
