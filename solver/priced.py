@@ -506,8 +506,9 @@ class _Oracle:
         return _Point(x.copy(), value, np.concatenate(gradient), solutions)
 
 
-def _price_box(net: _Network, criterion: Criterion) -> float:
-    """Prices beyond +-this cannot matter much: about twice the most a unit can earn or save."""
+def _price_box(net: _Network) -> float:
+    """Prices are searched within +-this: twice the most a unit can earn or save in a day, plus
+    the dearest lane. The bound is valid at any prices; the box only limits the search."""
     spec = net.spec
     unit = max(loc.unit_margin + loc.stockout_penalty + loc.holding_cost for loc in spec.locations)
     return 2.0 * unit + float(net.lane_costs.max(initial=0.0)) + 1.0
@@ -820,7 +821,7 @@ def solve_priced(
             )
 
     t = time.perf_counter()
-    box = _price_box(net, criterion)
+    box = _price_box(net)
     result = _price(
         oracle, _initial_prices(net, laws, oracle), box, options, pricing_report, started
     )
@@ -913,7 +914,7 @@ def pricing_history(
     result = _price(
         oracle,
         _initial_prices(net, laws, oracle),
-        _price_box(net, criterion),
+        _price_box(net),
         options,
         lambda _i, _b: None,
         time.perf_counter(),

@@ -282,7 +282,8 @@ def test_an_always_full_depot_gives_a_zero_gap() -> None:
     # balance only on average, not on every day (pooling keeps a gap). What is exact: a depot
     # that is full every night and indifferent to sending at price c - h, so the shop's priced
     # problem is its true problem. Bound = optimum wherever the depot holds at least the lane
-    # limit (4 units), and the plan is optimal there.
+    # limit (4 units), and the plan is optimal there. Outside reference: exact policy
+    # iteration (solver.solve_network, checked against quantecon's DiscreteDP elsewhere).
     spec = _depot_network(1.5)
     exact = solve_network(spec)
     policy = solve_priced(spec, options=PricedOptions(replications=8, tolerance=1e-10))
@@ -297,6 +298,7 @@ def test_an_always_full_depot_gives_a_zero_gap() -> None:
 def test_uncoupled_stores_give_a_zero_gap() -> None:
     # Lanes so dear that no move ever pays: the stores are uncoupled, the bound is the sum of
     # the stores' own values, equal to the optimum, and the plan never moves anything.
+    # Outside reference: exact policy iteration, as above.
     spec = random_network(51, (10, 12, 9))
     spec = spec.model_copy(
         update={"lanes": [lane.model_copy(update={"unit_cost": 500.0}) for lane in spec.lanes]}
