@@ -256,7 +256,7 @@ def run_simulation(
 
 def _plan_of(policy: PricedPolicy) -> Plan:
     def plan(stocks: NDArray[np.int64], phase: int) -> NDArray[np.int64]:
-        return np.asarray(policy.plan_batch(stocks, phase=phase % policy.phases), dtype=np.int64)
+        return np.asarray(policy.plan_batch(stocks, phase=phase), dtype=np.int64)
 
     return plan
 

@@ -71,8 +71,9 @@ __all__ = [
 ]
 
 Plan = Callable[[NDArray[np.int64], int], NDArray[np.int64]]
-"""A policy as a function: closing stocks, shape (B, N), and the phase of their count -> the flows
-sent that night, shape (B, L), units per lane in the network's lane order."""
+"""A policy as a function: closing stocks, shape (B, N), and the phase of their count (0..P-1,
+P = 7 for a weekly network, else 1) -> the flows sent that night, shape (B, L), units per lane in
+the network's lane order."""
 
 # Level of every interval unless the caller asks for another.
 CONFIDENCE = 0.95
@@ -411,9 +412,15 @@ def simulate_plans(
     """simulate_policies for policies given as plans (see module docs): no model is built, so
     any network the specification allows can be simulated. Each night's flows are checked;
     ValueError names the plan, the stock and the limit broken."""
+    periods = 7 if spec.is_periodic else 1
+
+    def on_phase(plan: Plan) -> Plan:
+        # The simulation counts days; a plan is asked with the phase of the count.
+        return lambda stock, day: plan(stock, day % periods)
+
     return _compare(
         spec,
-        plans,
+        {name: on_phase(plan) for name, plan in plans.items()},
         checked=True,
         days=days,
         replications=replications,
@@ -623,7 +630,8 @@ class _Network:
 
 
 def _table_plan(model: TransferModel, table: NDArray[np.int64]) -> Plan:
-    """A checked policy table (shape (P, S)) as a plan."""
+    """A checked policy table (shape (P, S)) as a function of the stock and the day counted from
+    the first simulated one: row (start_phase + t) % P, as the module docs say."""
 
     def plan(stock: NDArray[np.int64], phase: int) -> NDArray[np.int64]:
         flows: NDArray[np.int64] = model.flows[table[phase % table.shape[0], stock @ model.strides]]
