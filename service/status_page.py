@@ -17,7 +17,7 @@ import statistics
 from collections import defaultdict
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
-from datetime import date, datetime
+from datetime import date, datetime, time
 
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session
@@ -39,8 +39,8 @@ from service.policies import (
     PolicyCache,
     PolicyNotReadyError,
     ServedPolicy,
+    business_date_now,
     load_policy,
-    today_in,
 )
 from solver import NetworkSpec
 
@@ -229,6 +229,7 @@ def _networks(session: Session, tenant_id: int) -> list[NetworkLine]:
             NetworkVersion.spec_hash,
             NetworkVersion.spec_json,
             NetworkVersion.method,
+            Network.closing_cutoff,
         )
         .where(Network.tenant_id == tenant_id, Network.archived.is_(False))
         .order_by(Network.id)
@@ -259,7 +260,7 @@ def _networks(session: Session, tenant_id: int) -> list[NetworkLine]:
         (job.spec_hash, job.criterion, job.method): job
         for job in session.scalars(select(SolveJob).where(SolveJob.id.in_(newest_job)))
     }
-    closing = _closing(session, [(row.id, row.spec_json) for row in rows])
+    closing = _closing(session, [(row.id, row.spec_json, row.closing_cutoff) for row in rows])
     times = _solve_times(session, tenant_id)
     lines = []
     for row in rows:
@@ -290,13 +291,17 @@ def _networks(session: Session, tenant_id: int) -> list[NetworkLine]:
     return lines
 
 
-def _closing(session: Session, networks: Sequence[tuple[int, str]]) -> dict[int, Closing]:
-    """Tonight's counts of each (network id, current specification JSON): one query."""
+def _closing(
+    session: Session, networks: Sequence[tuple[int, str, time | None]]
+) -> dict[int, Closing]:
+    """Tonight's counts of each (network id, current specification JSON, closing cut-off): one
+    query. Tonight is the night of the current business date (service.policies)."""
     tonight: dict[int, tuple[date, list[str]]] = {}
-    for network_id, spec_json in networks:
+    for network_id, spec_json, cutoff in networks:
         spec = json.loads(spec_json)
         zone = spec.get("timezone") or NetworkSpec.model_fields["timezone"].default
-        tonight[network_id] = (today_in(zone), [location["id"] for location in spec["locations"]])
+        ids = [location["id"] for location in spec["locations"]]
+        tonight[network_id] = (business_date_now(zone, cutoff), ids)
     reported: dict[int, set[str]] = defaultdict(set)
     if tonight:
         dates = {business_date for business_date, _ in tonight.values()}

@@ -6,7 +6,7 @@ from __future__ import annotations
 
 import base64
 import re
-from datetime import date, timedelta
+from datetime import UTC, date, datetime, timedelta
 from html.parser import HTMLParser
 from typing import Any
 
@@ -14,6 +14,7 @@ import pytest
 from fastapi.testclient import TestClient
 from sqlalchemy import Engine, select, update
 
+import service.policies
 from service.db.session import make_session_factory
 from service.db.tables import SolveJob
 from service.policies import today_in
@@ -252,6 +253,26 @@ def test_tonights_closing_counts_show_who_has_reported(engine: Engine) -> None:
         assert earlier.status_code == 200, earlier.text
         [row] = page(client, key).tables["closing"]
         assert row == [document["name"], tonight, "1 of 2", "hilltop", "riverside"]
+
+
+def test_before_the_closing_cutoff_tonight_is_still_the_previous_business_date(
+    engine: Engine, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    day = datetime.now(UTC).date()
+    yesterday = (day - timedelta(days=1)).isoformat()
+    # 02:30 UTC, before a 04:00 cut-off: the stores are still closing yesterday.
+    moment = datetime(day.year, day.month, day.day, 2, 30, tzinfo=UTC)
+    monkeypatch.setattr(service.policies, "utc_now", lambda: moment)
+    with open_client(engine) as client:
+        key = make_key(engine, scope="read")
+        document = demo_document(timezone="UTC", closing_cutoff="04:00")
+        network = create_network(client, document)["id"]
+        sent = client.put(
+            f"/v1/networks/{network}/locations/hilltop/closing-stock", json={"units": 4}
+        )
+        assert sent.json()["business_date"] == yesterday
+        [row] = page(client, key).tables["closing"]
+        assert row == [document["name"], yesterday, "1 of 2", "hilltop", "riverside"]
 
 
 def test_solve_times_are_drawn_per_network(engine: Engine) -> None:
