@@ -75,20 +75,28 @@ def post_move_values(
 class ActionTable:
     """Precomputed per-flow geometry used by every improvement step.
 
-    boxes: per flow, the slices of the states where it is feasible and of their post-move stocks.
+    boxes: per phase and flow (boxes[d][k]), the slices of the states where flow k is feasible
+        in phase d and of their post-move stocks (phases with the same floors share one tuple).
     shift: shape (A,), change of the flat stock index caused by each flow.
     costs: shape (A,), currency units.
     phase_flows: per phase, the indices of the flows allowed on that night, ascending.
     """
 
-    boxes: tuple[tuple[Box, Box], ...]
+    boxes: tuple[tuple[tuple[Box, Box], ...], ...]
     shift: NDArray[np.int64]
     costs: NDArray[np.float64]
     phase_flows: tuple[NDArray[np.int64], ...]
 
     @classmethod
     def of(cls, model: TransferModel) -> ActionTable:
-        return cls(tuple(model.boxes()), model.flat_shift(), model.flow_costs, model.phase_flows)
+        shared: dict[bytes, tuple[tuple[Box, Box], ...]] = {}
+        boxes = []
+        for d in range(model.n_phases):
+            key = model.floors[d].tobytes()
+            if key not in shared:
+                shared[key] = tuple(model.boxes(d))
+            boxes.append(shared[key])
+        return cls(tuple(boxes), model.flat_shift(), model.flow_costs, model.phase_flows)
 
     def post_move_index(self, actions: NDArray[np.int64]) -> NDArray[np.int64]:
         """Flat stock index of the post-move stock of every state under `actions`.
@@ -116,8 +124,9 @@ def greedy(
     action = np.zeros(u.shape, dtype=np.int64)
     for d in range(phases):
         u_d, best_d, action_d = u[d], best[d], action[d]
+        boxes = table.boxes[d]
         for k in table.phase_flows[d]:
-            states, posts = table.boxes[k]
+            states, posts = boxes[k]
             q = u_d[posts] - table.costs[k]
             incumbent = best_d[states]
             better = q > incumbent + tolerance

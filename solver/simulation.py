@@ -236,9 +236,9 @@ def balance_cover_policy(
     tolerance = 1e-9 * max(1.0, float(imbalance.max()))
     payback_tolerance = 1e-9 * max(1.0, float(np.abs(model.reward).max()))
 
-    boxes = model.boxes()
     table = np.zeros((model.n_phases, model.n_states), dtype=np.int64)
     for p in range(model.n_phases):
+        boxes = model.boxes(p)
         reward = model.reward[p]
         best = imbalance.copy()
         action = np.zeros(model.shape, dtype=np.int64)
