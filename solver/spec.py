@@ -50,8 +50,8 @@ __all__ = [
     "NightlyUnits",
     "PmfDemand",
     "PoissonDemand",
-    "WeeklyDistribution",
     "WeeklyCount",
+    "WeeklyDistribution",
     "WeeklyUnits",
 ]
 
