@@ -403,9 +403,13 @@ class TestDefaults:
         dumped = spec.model_dump(mode="json", by_alias=True)
         assert set(dumped) == {"name", "discount", "locations", "lanes", "max_units_per_night"}
         assert all(
-            set(loc) == set(given) for loc, given in zip(dumped["locations"], document["locations"])
+            set(loc) == set(given)
+            for loc, given in zip(dumped["locations"], document["locations"], strict=True)
         )
-        assert all(set(ln) == set(given) for ln, given in zip(dumped["lanes"], document["lanes"]))
+        assert all(
+            set(ln) == set(given)
+            for ln, given in zip(dumped["lanes"], document["lanes"], strict=True)
+        )
         text = json.dumps(dumped, sort_keys=True, separators=(",", ":"))
         # The demo's hash as stored before these fields existed (README, "Networks": 49bad527a6b4).
         assert hashlib.sha256(text.encode()).hexdigest().startswith("49bad527a6b4")
