@@ -44,6 +44,7 @@ dispatch cost of lane l (paid once on a night the lane is used).
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from functools import cached_property
 
 import numpy as np
 from numpy.typing import NDArray
@@ -126,16 +127,17 @@ class TransferModel:
     def n_flows(self) -> int:
         return int(self.flows.shape[0])
 
-    @property
+    # Cached: the evaluation asks for these on every one-day expectation.
+    @cached_property
     def shape(self) -> tuple[int, ...]:
         return tuple(int(c) + 1 for c in self.capacities)
 
-    @property
+    @cached_property
     def n_states(self) -> int:
         """Stock states S of one phase (the model has S x P states in all)."""
         return int(np.prod(self.shape))
 
-    @property
+    @cached_property
     def strides(self) -> NDArray[np.int64]:
         """Flat-index step of one unit at each location, shape (N,)."""
         shape = np.array(self.shape, dtype=np.int64)

@@ -157,9 +157,10 @@ def solve_policy_iteration(
         action = new_action
         tolerance = max(final, min(tolerance, _TIGHTENING * float(gap.max())))
 
-    # Settle ties from the final values toward fewer units, then lower cost.
+    # Settle ties from the final values toward fewer units, then lower cost: the last greedy
+    # step's choice from those values (the loop ends right after it, with `u` and `tie` unchanged).
     t = time.perf_counter()
-    canonical = greedy(table, u, tie)[0]
+    canonical = candidate
     if not np.array_equal(canonical, action):
         action = canonical
         chain = _chain(model, table, action)
