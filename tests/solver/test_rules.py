@@ -513,3 +513,8 @@ def test_relays_dearer_than_the_direct_lane_are_skipped() -> None:
     relay_ca[lanes.index(("c", "b"))] = relay_ca[lanes.index(("b", "a"))] = 1
     assert tuple(relay_ac) in skipped  # 2.0 > 1.5 direct
     assert tuple(relay_ca) not in skipped  # 2.0 < 2.5 direct: the relay is cheaper
+    # And scanning only the candidates chooses what scanning every flow chooses.
+    every = dataclasses.replace(table, candidates=table.phase_flows)
+    u = np.random.default_rng(7).normal(scale=4.0, size=(1, *model.shape))
+    fast, full = greedy(table, u, 0.0), greedy(every, u, 0.0)
+    assert np.array_equal(fast[0], full[0]) and np.array_equal(fast[1], full[1])
