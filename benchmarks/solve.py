@@ -11,6 +11,9 @@ Networks (scenarios of our own):
   * three stores, Quayside, Elmfield and Northgate, 30 units each, lanes both ways between every
     pair of at most 3 units a night.
 
+Every case runs twice: as above, and with a dispatch cost on every lane (a van paid per night it
+drives, DISPATCH_COSTS), named "+ dispatch".
+
 Per case it reports sizes, build and solve seconds (measured separately), the tracemalloc peak of
 the solve, the process's max RSS so far, iterations, matrix-vector products, residual, error
 bound and convergence, and checks the targets of the issue where one exists. A table goes to
@@ -74,6 +77,8 @@ MAX_ITER = 200
 TWO_STORE_CAPACITIES = (20, 50, 100, 200)
 QUICK_CAPACITIES = (20, 50)
 DISCOUNTS = (0.9, 0.99, 0.999)
+# Fixed cost per night a lane is used in the "+ dispatch" cases, currency: a van and a driver.
+DISPATCH_COSTS = {2: 9.0, 3: 6.5}
 # Discount stored in the specification of average-criterion cases; the criterion ignores it.
 UNUSED_DISCOUNT = 0.99
 
@@ -108,10 +113,13 @@ class _CaseTimeout(Exception):
 # -- networks ---------------------------------------------------------------------------------
 
 
-def two_store_network(capacity: int, discount: float, *, busier: bool = True) -> NetworkSpec:
+def two_store_network(
+    capacity: int, discount: float, *, busier: bool = True, dispatch: float = 0.0
+) -> NetworkSpec:
     """Quayside (busy) and Elmfield (quiet). With `busier`, demand and replenishment per day scale
     with the stockroom; without, they stay at the 20-unit store's, so a large stockroom holds
-    weeks of stock and the chain mixes slowly (the hard case for policy evaluation)."""
+    weeks of stock and the chain mixes slowly (the hard case for policy evaluation). `dispatch`:
+    the fixed cost of each lane per night it is used."""
     size = capacity / 20 if busier else 1.0
     return NetworkSpec.model_validate(
         {
@@ -142,15 +150,28 @@ def two_store_network(capacity: int, discount: float, *, busier: bool = True) ->
                 },
             ],
             "lanes": [
-                {"from": "quayside", "to": "elmfield", "unit_cost": 1.6, "max_units": 5},
-                {"from": "elmfield", "to": "quayside", "unit_cost": 1.35, "max_units": 5},
+                {
+                    "from": "quayside",
+                    "to": "elmfield",
+                    "unit_cost": 1.6,
+                    "dispatch_cost": dispatch,
+                    "max_units": 5,
+                },
+                {
+                    "from": "elmfield",
+                    "to": "quayside",
+                    "unit_cost": 1.35,
+                    "dispatch_cost": dispatch,
+                    "max_units": 5,
+                },
             ],
         }
     )
 
 
-def three_store_network(discount: float) -> NetworkSpec:
-    """Quayside, Elmfield and Northgate, 30 units each, lanes both ways between every pair."""
+def three_store_network(discount: float, *, dispatch: float = 0.0) -> NetworkSpec:
+    """Quayside, Elmfield and Northgate, 30 units each, lanes both ways between every pair;
+    `dispatch` as in two_store_network."""
     lane_costs = {
         ("quayside", "elmfield"): 1.6,
         ("elmfield", "quayside"): 1.35,
@@ -193,7 +214,7 @@ def three_store_network(discount: float) -> NetworkSpec:
                 },
             ],
             "lanes": [
-                {"from": a, "to": b, "unit_cost": cost, "max_units": 3}
+                {"from": a, "to": b, "unit_cost": cost, "dispatch_cost": dispatch, "max_units": 3}
                 for (a, b), cost in lane_costs.items()
             ],
         }
@@ -201,35 +222,55 @@ def three_store_network(discount: float) -> NetworkSpec:
 
 
 def benchmark_cases(quick: bool) -> list[Case]:
-    """The cases of the issue; `quick` keeps the two-store networks of capacity 20 and 50."""
+    """The cases of the issue, each without and with dispatch costs; `quick` keeps the
+    two-store networks of capacity 20 and 50."""
     cases: list[Case] = []
-    for busier, label in ((True, "2 stores"), (False, "2 slow stores")):
-        for capacity in QUICK_CAPACITIES if quick else TWO_STORE_CAPACITIES:
-            targets: dict[float | None, float] = (
-                {0.9: 0.1, 0.999: 0.3, None: 0.3} if capacity == 100 else {}
-            )
-            for discount in DISCOUNTS:
+    for extra in ("", " + dispatch"):
+        dispatch2 = DISPATCH_COSTS[2] if extra else 0.0
+        dispatch3 = DISPATCH_COSTS[3] if extra else 0.0
+        for busier, label in ((True, "2 stores"), (False, "2 slow stores")):
+            for capacity in QUICK_CAPACITIES if quick else TWO_STORE_CAPACITIES:
+                targets: dict[float | None, float] = (
+                    {0.9: 0.1, 0.999: 0.3, None: 0.3} if capacity == 100 else {}
+                )
+                for discount in DISCOUNTS:
+                    cases.append(
+                        Case(
+                            f"{label} c={capacity} d={discount}{extra}",
+                            two_store_network(
+                                capacity, discount, busier=busier, dispatch=dispatch2
+                            ),
+                            "discounted",
+                            targets.get(discount),
+                        )
+                    )
                 cases.append(
                     Case(
-                        f"{label} c={capacity} d={discount}",
-                        two_store_network(capacity, discount, busier=busier),
-                        "discounted",
-                        targets.get(discount),
+                        f"{label} c={capacity} average{extra}",
+                        two_store_network(
+                            capacity, UNUSED_DISCOUNT, busier=busier, dispatch=dispatch2
+                        ),
+                        "average",
+                        targets.get(None),
                     )
                 )
+        if not quick:
             cases.append(
                 Case(
-                    f"{label} c={capacity} average",
-                    two_store_network(capacity, UNUSED_DISCOUNT, busier=busier),
-                    "average",
-                    targets.get(None),
+                    f"3 stores c=30 d=0.99{extra}",
+                    three_store_network(0.99, dispatch=dispatch3),
+                    "discounted",
+                    0.5,
                 )
             )
-    if not quick:
-        cases.append(Case("3 stores c=30 d=0.99", three_store_network(0.99), "discounted", 0.5))
-        cases.append(
-            Case("3 stores c=30 average", three_store_network(UNUSED_DISCOUNT), "average", 0.5)
-        )
+            cases.append(
+                Case(
+                    f"3 stores c=30 average{extra}",
+                    three_store_network(UNUSED_DISCOUNT, dispatch=dispatch3),
+                    "average",
+                    0.5,
+                )
+            )
     return cases
 
 
@@ -399,7 +440,7 @@ def machine_facts() -> dict[str, Any]:
 
 
 _COLUMNS = (
-    ("case", 24),
+    ("case", 35),
     ("states", 7),
     ("flows", 5),
     ("pairs", 9),
