@@ -440,7 +440,7 @@ def machine_facts() -> dict[str, Any]:
 
 
 _COLUMNS = (
-    ("case", 35),
+    ("case", 38),
     ("states", 7),
     ("flows", 5),
     ("pairs", 9),

@@ -541,10 +541,12 @@ def _simulate(
 def _check_model(spec: NetworkSpec, model: TransferModel) -> None:
     ids = tuple(spec.location_ids)
     capacities = tuple(location.capacity for location in spec.locations)
-    lanes = tuple((lane.from_, lane.to, lane.unit_cost) for lane in spec.lanes)
+    lanes = tuple((lane.from_, lane.to, lane.unit_cost, lane.dispatch_cost) for lane in spec.lanes)
     model_lanes = tuple(
-        (model.location_ids[a], model.location_ids[b], float(c))
-        for a, b, c in zip(model.lane_from, model.lane_to, model.lane_costs, strict=True)
+        (model.location_ids[a], model.location_ids[b], float(c), float(f))
+        for a, b, c, f in zip(
+            model.lane_from, model.lane_to, model.lane_costs, model.dispatch_costs, strict=True
+        )
     )
     if (
         ids != model.location_ids
@@ -621,7 +623,7 @@ def _policy_table(model: TransferModel, name: str, policy: ArrayLike) -> NDArray
             raise ValueError(
                 f"policy {name!r}{where} chooses {_describe_flow(model, int(actions[state]))} "
                 f"at closing stock ({_describe_stock(model, states[state])}) on a night whose "
-                "lane limits do not allow it"
+                "lane or handling limits do not allow it"
             )
         outside = (actions < 0) | (actions >= model.n_flows)
         if outside.any():
@@ -632,13 +634,23 @@ def _policy_table(model: TransferModel, name: str, policy: ArrayLike) -> NDArray
                 f"0..{model.n_flows - 1}"
             )
         out, inn = model.flow_out[actions], model.flow_in[actions]
-        infeasible = np.any((out > states) | (states - out + inn > model.capacities), axis=1)
+        after = states - out + inn
+        # A row used on every night must keep the highest floor of any night.
+        floors = (
+            model.floors[row % model.n_phases]
+            if table.shape[0] == model.n_phases
+            else model.floors.max(axis=0)
+        )
+        infeasible = np.any(
+            (out > states) | (after > model.capacities) | ((out > 0) & (after < floors)), axis=1
+        )
         if infeasible.any():
             state = int(np.argmax(infeasible))
             raise ValueError(
                 f"policy {name!r}{where} chooses {_describe_flow(model, int(actions[state]))} "
                 f"at closing stock ({_describe_stock(model, states[state])}), where it is not "
-                "feasible: it sends more than is on hand or fills a location beyond capacity"
+                "feasible: it sends more than is on hand, fills a location beyond capacity or "
+                "leaves a sending location below its floor (keep_at_least)"
             )
     return table
 

@@ -47,6 +47,7 @@ __all__ = [
     "LocationSpec",
     "NegativeBinomialDemand",
     "NetworkSpec",
+    "NightCount",
     "NightlyUnits",
     "PmfDemand",
     "PoissonDemand",

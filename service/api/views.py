@@ -69,7 +69,13 @@ def network_out(
 def transfers_of(result: PolicyResult, flows: tuple[int, ...]) -> list[TransferOut]:
     ids = result.location_ids
     return [
-        TransferOut(from_=ids[a], to=ids[b], units=units, unit_cost=float(result.lane_costs[lane]))
+        TransferOut(
+            from_=ids[a],
+            to=ids[b],
+            units=units,
+            unit_cost=float(result.lane_costs[lane]),
+            dispatch_cost=float(result.dispatch_costs[lane]),
+        )
         for lane, ((a, b), units) in enumerate(zip(result.lanes, flows, strict=True))
         if units > 0
     ]
