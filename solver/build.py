@@ -47,8 +47,9 @@ solver recommends. Repeating the argument on g (units fall at each step) ends at
 that is in the table. The argument needs only that y depends on f through in - out, that costs
 are nondecreasing in each lane's units, and that every limit is monotone (a smaller flow stays
 within it); relays through a third store and several units on one lane are not cycles and are
-kept. tests/solver/test_build.py checks the pruned table against the full action set, by brute
-force, on small networks with every rule.
+kept. tests/solver/test_rules.py checks the pruned table against the full action set (the best
+value over every flow, for arbitrary post-move values), by brute force, on small networks with
+every rule.
 """
 
 from __future__ import annotations
