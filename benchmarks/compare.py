@@ -35,9 +35,9 @@ def child(checkout: Path, runs: int) -> None:
     """Time every case with the solver of `checkout`; JSON {case: least CPU seconds} to stdout."""
     sys.path.insert(0, str(checkout))
     sys.path.insert(1, str(HERE))
-    import solve  # noqa: PLC0415  (after the path is set: it imports that checkout's solver)
+    import solve  # after the path is set: it imports that checkout's solver
 
-    from solver import build_transfer_model, solve_policy_iteration  # noqa: PLC0415
+    from solver import build_transfer_model, solve_policy_iteration
 
     times = {}
     for case in solve.benchmark_cases(quick=False, dispatch=False):
@@ -89,7 +89,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     print("load average (1, 5, 15 min): {:.2f}, {:.2f}, {:.2f}".format(*load))
 
     sys.path.insert(0, str(HERE))
-    import solve  # noqa: PLC0415
+    import solve
 
     solve.write_report(
         args.out,

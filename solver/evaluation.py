@@ -242,7 +242,12 @@ def _bordered_solve(
 
     def matvec(x: NDArray[np.float64]) -> NDArray[np.float64]:
         c, w = unpack(x)
-        return c + w - beta * cycle.apply(w)
+        # In place on the fresh array `apply` returns: one pass fewer over the states per step.
+        out = cycle.apply(w)
+        out *= -beta
+        out += w
+        out += c
+        return out
 
     x0 = vector0.copy()
     x0[0] = scalar0
