@@ -242,12 +242,7 @@ def _bordered_solve(
 
     def matvec(x: NDArray[np.float64]) -> NDArray[np.float64]:
         c, w = unpack(x)
-        # In place on the fresh array `apply` returns: one pass fewer over the states per step.
-        out = cycle.apply(w)
-        out *= -beta
-        out += w
-        out += c
-        return out
+        return c + w - beta * cycle.apply(w)
 
     x0 = vector0.copy()
     x0[0] = scalar0
