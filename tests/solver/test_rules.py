@@ -23,6 +23,7 @@ from pydantic import ValidationError
 
 from solver import NetworkSpec, PolicyResult, build_transfer_model, solve_network
 from solver.bellman import ActionTable, greedy
+from solver.simulation import simulate_policies
 from tests.solver.networks import location, negative_binomial, pmf, poisson, weekly
 from tests.solver.reference import (
     GAIN_ATOL,
@@ -518,3 +519,22 @@ def test_relays_dearer_than_the_direct_lane_are_skipped() -> None:
     u = np.random.default_rng(7).normal(scale=4.0, size=(1, *model.shape))
     fast, full = greedy(table, u, 0.0), greedy(every, u, 0.0)
     assert np.array_equal(fast[0], full[0]) and np.array_equal(fast[1], full[1])
+
+
+def test_a_simulated_policy_that_breaks_a_floor_is_refused() -> None:
+    spec = scaffold_pair()  # inland keeps 2
+    model = build_transfer_model(spec)
+    # One unit inland -> dock (lane 1), chosen where inland holds 2: it would keep only 1.
+    flow = int(np.flatnonzero((model.flows[:, 0] == 0) & (model.flows[:, 1] == 1))[0])
+    policy = np.zeros(model.n_states, dtype=np.int64)
+    policy[np.ravel_multi_index((0, 2), model.shape)] = flow
+    with pytest.raises(ValueError, match="below its floor"):
+        simulate_policies(
+            spec, model, {"bad": policy}, days=1, replications=1, rng=np.random.default_rng(0)
+        )
+    # Where inland holds 3 the same move keeps 2 and is accepted.
+    policy[np.ravel_multi_index((0, 2), model.shape)] = 0
+    policy[np.ravel_multi_index((0, 3), model.shape)] = flow
+    simulate_policies(
+        spec, model, {"ok": policy}, days=1, replications=1, rng=np.random.default_rng(0)
+    )
