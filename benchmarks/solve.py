@@ -11,6 +11,9 @@ Networks (scenarios of our own):
   * three stores, Quayside, Elmfield and Northgate, 30 units each, lanes both ways between every
     pair of at most 3 units a night.
 
+Every case runs twice: as above, and with a dispatch cost on every lane (a van paid per night it
+drives, DISPATCH_COSTS), named "+ dispatch".
+
 Per case it reports sizes, build and solve seconds (measured separately), the tracemalloc peak of
 the solve, the process's max RSS so far, iterations, matrix-vector products, residual, error
 bound and convergence, and checks the project's speed targets where one is set. A table goes to
@@ -74,6 +77,8 @@ MAX_ITER = 200
 TWO_STORE_CAPACITIES = (20, 50, 100, 200)
 QUICK_CAPACITIES = (20, 50)
 DISCOUNTS = (0.9, 0.99, 0.999)
+# Fixed cost per night a lane is used in the "+ dispatch" cases, currency: a van and a driver.
+DISPATCH_COSTS = {2: 9.0, 3: 6.5}
 # Discount stored in the specification of average-criterion cases; the criterion ignores it.
 UNUSED_DISCOUNT = 0.99
 
@@ -94,11 +99,14 @@ class Case:
 
 @dataclass(frozen=True)
 class Timing:
-    """Solve seconds, how they were summarised ("median" or "best") and over how many runs."""
+    """Solve seconds, how they were summarised ("median" or "best") and over how many runs;
+    cpu_seconds: the least CPU time of the process over those runs (time.process_time), which
+    waiting for a core shared with other work does not inflate."""
 
     seconds: float
     statistic: str
     runs: int
+    cpu_seconds: float
 
 
 class _CaseTimeout(Exception):
@@ -108,10 +116,19 @@ class _CaseTimeout(Exception):
 # -- networks ---------------------------------------------------------------------------------
 
 
-def two_store_network(capacity: int, discount: float, *, busier: bool = True) -> NetworkSpec:
+def _dispatch(cost: float) -> dict[str, float]:
+    """A lane's dispatch cost field; absent at 0, so that the networks without dispatch costs
+    also load in a solver that predates the field (for before-and-after runs)."""
+    return {"dispatch_cost": cost} if cost else {}
+
+
+def two_store_network(
+    capacity: int, discount: float, *, busier: bool = True, dispatch: float = 0.0
+) -> NetworkSpec:
     """Quayside (busy) and Elmfield (quiet). With `busier`, demand and replenishment per day scale
     with the stockroom; without, they stay at the 20-unit store's, so a large stockroom holds
-    weeks of stock and the chain mixes slowly (the hard case for policy evaluation)."""
+    weeks of stock and the chain mixes slowly (the hard case for policy evaluation). `dispatch`:
+    the fixed cost of each lane per night it is used."""
     size = capacity / 20 if busier else 1.0
     return NetworkSpec.model_validate(
         {
@@ -142,15 +159,18 @@ def two_store_network(capacity: int, discount: float, *, busier: bool = True) ->
                 },
             ],
             "lanes": [
-                {"from": "quayside", "to": "elmfield", "unit_cost": 1.6, "max_units": 5},
-                {"from": "elmfield", "to": "quayside", "unit_cost": 1.35, "max_units": 5},
+                {"from": "quayside", "to": "elmfield", "unit_cost": 1.6, "max_units": 5}
+                | _dispatch(dispatch),
+                {"from": "elmfield", "to": "quayside", "unit_cost": 1.35, "max_units": 5}
+                | _dispatch(dispatch),
             ],
         }
     )
 
 
-def three_store_network(discount: float) -> NetworkSpec:
-    """Quayside, Elmfield and Northgate, 30 units each, lanes both ways between every pair."""
+def three_store_network(discount: float, *, dispatch: float = 0.0) -> NetworkSpec:
+    """Quayside, Elmfield and Northgate, 30 units each, lanes both ways between every pair;
+    `dispatch` as in two_store_network."""
     lane_costs = {
         ("quayside", "elmfield"): 1.6,
         ("elmfield", "quayside"): 1.35,
@@ -193,43 +213,63 @@ def three_store_network(discount: float) -> NetworkSpec:
                 },
             ],
             "lanes": [
-                {"from": a, "to": b, "unit_cost": cost, "max_units": 3}
+                {"from": a, "to": b, "unit_cost": cost, "max_units": 3} | _dispatch(dispatch)
                 for (a, b), cost in lane_costs.items()
             ],
         }
     )
 
 
-def benchmark_cases(quick: bool) -> list[Case]:
-    """The benchmark cases; `quick` keeps the two-store networks of capacity 20 and 50."""
+def benchmark_cases(quick: bool, dispatch: bool = True) -> list[Case]:
+    """The benchmark cases, each without and (unless not `dispatch`) with dispatch costs;
+    `quick` keeps the two-store networks of capacity 20 and 50."""
     cases: list[Case] = []
-    for busier, label in ((True, "2 stores"), (False, "2 slow stores")):
-        for capacity in QUICK_CAPACITIES if quick else TWO_STORE_CAPACITIES:
-            targets: dict[float | None, float] = (
-                {0.9: 0.1, 0.999: 0.3, None: 0.3} if capacity == 100 else {}
-            )
-            for discount in DISCOUNTS:
+    for extra in ("", " + dispatch") if dispatch else ("",):
+        dispatch2 = DISPATCH_COSTS[2] if extra else 0.0
+        dispatch3 = DISPATCH_COSTS[3] if extra else 0.0
+        for busier, label in ((True, "2 stores"), (False, "2 slow stores")):
+            for capacity in QUICK_CAPACITIES if quick else TWO_STORE_CAPACITIES:
+                targets: dict[float | None, float] = (
+                    {0.9: 0.1, 0.999: 0.3, None: 0.3} if capacity == 100 else {}
+                )
+                for discount in DISCOUNTS:
+                    cases.append(
+                        Case(
+                            f"{label} c={capacity} d={discount}{extra}",
+                            two_store_network(
+                                capacity, discount, busier=busier, dispatch=dispatch2
+                            ),
+                            "discounted",
+                            targets.get(discount),
+                        )
+                    )
                 cases.append(
                     Case(
-                        f"{label} c={capacity} d={discount}",
-                        two_store_network(capacity, discount, busier=busier),
-                        "discounted",
-                        targets.get(discount),
+                        f"{label} c={capacity} average{extra}",
+                        two_store_network(
+                            capacity, UNUSED_DISCOUNT, busier=busier, dispatch=dispatch2
+                        ),
+                        "average",
+                        targets.get(None),
                     )
                 )
+        if not quick:
             cases.append(
                 Case(
-                    f"{label} c={capacity} average",
-                    two_store_network(capacity, UNUSED_DISCOUNT, busier=busier),
-                    "average",
-                    targets.get(None),
+                    f"3 stores c=30 d=0.99{extra}",
+                    three_store_network(0.99, dispatch=dispatch3),
+                    "discounted",
+                    0.5,
                 )
             )
-    if not quick:
-        cases.append(Case("3 stores c=30 d=0.99", three_store_network(0.99), "discounted", 0.5))
-        cases.append(
-            Case("3 stores c=30 average", three_store_network(UNUSED_DISCOUNT), "average", 0.5)
-        )
+            cases.append(
+                Case(
+                    f"3 stores c=30 average{extra}",
+                    three_store_network(UNUSED_DISCOUNT, dispatch=dispatch3),
+                    "average",
+                    0.5,
+                )
+            )
     return cases
 
 
@@ -264,16 +304,26 @@ def time_build(spec: NetworkSpec) -> float:
     return statistics.median(_timed(lambda: build_transfer_model(spec)) for _ in range(BUILD_RUNS))
 
 
-def time_solve(solve: Callable[[], PolicyResult], first: float) -> Timing:
-    """Repeat a solve whose first run took `first` seconds (see SMALL_SECONDS)."""
-    if first < SMALL_SECONDS:
+def _cpu_timed(run: Callable[[], object]) -> tuple[float, float]:
+    """(wall seconds, CPU seconds of this process) of one run."""
+    gc.collect()
+    wall, cpu = time.perf_counter(), time.process_time()
+    run()
+    return time.perf_counter() - wall, time.process_time() - cpu
+
+
+def time_solve(solve: Callable[[], PolicyResult], first: tuple[float, float]) -> Timing:
+    """Repeat a solve whose first run took `first` (wall, CPU) seconds (see SMALL_SECONDS)."""
+    if first[0] < SMALL_SECONDS:
         # The first run is a warm-up; the median of the next ones is reported.
-        runs = [_timed(solve) for _ in range(SMALL_RUNS)]
-        return Timing(statistics.median(runs), "median", len(runs))
-    runs = [first]
-    while len(runs) < LARGE_RUNS and sum(runs) + first <= REPEAT_BUDGET:
-        runs.append(_timed(solve))
-    return Timing(min(runs), "best", len(runs))
+        pairs = [_cpu_timed(solve) for _ in range(SMALL_RUNS)]
+        runs = [wall for wall, _ in pairs]
+        cpu = min(c for _, c in pairs)
+        return Timing(statistics.median(runs), "median", len(runs), cpu)
+    pairs = [first]
+    while len(pairs) < LARGE_RUNS and sum(w for w, _ in pairs) + first[0] <= REPEAT_BUDGET:
+        pairs.append(_cpu_timed(solve))
+    return Timing(min(w for w, _ in pairs), "best", len(pairs), min(c for _, c in pairs))
 
 
 def traced_peak_mb(solve: Callable[[], PolicyResult]) -> float:
@@ -317,9 +367,9 @@ def run_case(case: Case, cap: float) -> dict[str, Any]:
     try:
         with _deadline(cap):
             gc.collect()
-            start = time.perf_counter()
+            start, cpu = time.perf_counter(), time.process_time()
             result = solve()
-            first = time.perf_counter() - start
+            first = (time.perf_counter() - start, time.process_time() - cpu)
     except _CaseTimeout:
         met = None if case.target_seconds is None else False
         row.update(capped=True, cap_seconds=cap, seconds=None, target_met=met)
@@ -330,6 +380,7 @@ def run_case(case: Case, cap: float) -> dict[str, Any]:
     row.update(
         capped=False,
         seconds=timing.seconds,
+        cpu_seconds=timing.cpu_seconds,
         statistic=timing.statistic,
         runs=timing.runs,
         target_met=None if case.target_seconds is None else timing.seconds < case.target_seconds,
@@ -399,12 +450,13 @@ def machine_facts() -> dict[str, Any]:
 
 
 _COLUMNS = (
-    ("case", 24),
+    ("case", 38),
     ("states", 7),
     ("flows", 5),
     ("pairs", 9),
     ("build s", 8),
     ("solve s", 8),
+    ("cpu s", 8),
     ("timing", 7),
     ("target", 12),
     ("peak MB", 8),
@@ -420,11 +472,12 @@ _COLUMNS = (
 def _cells(row: dict[str, Any]) -> list[str]:
     target = row["target_seconds"]
     if row["capped"]:
-        solve, timing = f">{row['cap_seconds']:g}", "capped"
+        solve, cpu, timing = f">{row['cap_seconds']:g}", "", "capped"
         verdict = f"<{target:g} fail" if target is not None else ""
         rest = ["", f"{row['max_rss_mb']:.0f}", "", "", "", "", "no"]
     else:
         solve, timing = f"{row['seconds']:.4f}", f"{row['statistic']}x{row['runs']}"
+        cpu = f"{row['cpu_seconds']:.4f}"
         verdict = ""
         if target is not None:
             verdict = f"<{target:g} {'pass' if row['target_met'] else 'FAIL'}"
@@ -444,6 +497,7 @@ def _cells(row: dict[str, Any]) -> list[str]:
         str(row["pairs"]),
         f"{row['build_seconds']:.4f}",
         solve,
+        cpu,
         timing,
         verdict,
     ]
@@ -474,7 +528,8 @@ def print_notes() -> None:
         f"< {SMALL_SECONDS:g} s, else best of up to {LARGE_RUNS} within {REPEAT_BUDGET:g} s."
     )
     print(
-        "peak MB: tracemalloc peak during one solve; RSS MB: process max RSS so far "
+        "cpu s: least CPU time of the process over those runs (not inflated by waiting for a "
+        "shared core); peak MB: tracemalloc peak during one solve; RSS MB: process max RSS so far "
         "(getrusage, cumulative); matvecs: result.evaluation_sweeps; target: the project's "
         "one-core target, pass when solve s is below it."
     )
@@ -494,6 +549,11 @@ def main(argv: Sequence[str] | None = None) -> int:
     )
     parser.add_argument("--out", type=Path, default=DEFAULT_OUT, help="JSON results file")
     parser.add_argument(
+        "--without-dispatch",
+        action="store_true",
+        help="leave out the cases with dispatch costs (e.g. to measure an older solver)",
+    )
+    parser.add_argument(
         "--cap",
         type=float,
         default=DEFAULT_CAP,
@@ -506,13 +566,16 @@ def main(argv: Sequence[str] | None = None) -> int:
     print_header(facts)
     started = time.perf_counter()
     rows = []
-    for case in benchmark_cases(args.quick):
+    for case in benchmark_cases(args.quick, dispatch=not args.without_dispatch):
         row = run_case(case, args.cap)
         rows.append(row)
         print(_line(_cells(row)), flush=True)
     total = time.perf_counter() - started
     print_notes()
     print(f"total wall time {total:.1f} s")
+    # The machine may be shared: wall times grow with its load, CPU seconds much less.
+    load = os.getloadavg()
+    print("load average (1, 5, 15 min): {:.2f}, {:.2f}, {:.2f}".format(*load))
 
     report = {
         "benchmark": "solve",
@@ -530,6 +593,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         "machine": facts,
         "revision": solver_revision(),
         "total_seconds": total,
+        "load_average": list(load),
         "cases": rows,
     }
     write_report(args.out, report)

@@ -6,7 +6,11 @@ A simulation runs the optimal policy of one criterion beside two rules a planner
 without it (never move; move toward equal days of cover when the move pays for itself the next
 day) on the same simulated days (solver.simulation, common random numbers), and reports each
 one's profit, fill rate, stock-out days and moves with intervals, and its paired difference to
-the optimal policy.
+the optimal policy. When the network has floors or handling limits, the optimal policy of the
+same network without them (dispatch costs kept) runs on the same days too, so that the report
+shows what the rules cost in profit per day and which fill rates they protect. Every policy is
+then simulated in the model without the rules: it holds every flow of the model with them
+(rules only remove flows and narrow where they are feasible), and the days are the same.
 
 A what-if comparison applies overrides to a specification, solves both networks for one
 criterion and reports how the optimal value changes and at how many stocks the recommended
@@ -28,7 +32,7 @@ from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
-from pydantic import ValidationError
+from pydantic import BaseModel, ValidationError
 
 from service.modes import resolve_method
 from service.priced import FULL_TABLE_MAX_STATES, plan_table
@@ -54,6 +58,7 @@ from solver.simulation import (
     Interval,
     Plan,
     PolicyOutcome,
+    SimulationReport,
     balance_cover_policy,
     do_nothing_policy,
     mean_demands,
@@ -77,6 +82,10 @@ __all__ = [
 MAX_REPLICATION_DAYS = 2_000_000
 REFERENCE = "optimal"
 PRICED_REFERENCE = "priced"
+# Location fields an override may set to null (no limit).
+_LIFTABLE = frozenset({"max_units_out", "max_units_in"})
+# The optimal policy of the network with its floors and handling limits removed.
+WITHOUT_RULES = "optimal_without_rules"
 
 
 class AnalysisInputError(ValueError):
@@ -221,6 +230,16 @@ def run_simulation(
         policies["balance_cover"] = balance_cover_policy(model, mean_demands(spec))
     except ValueError as exc:  # a location without demand has no days of cover
         notes.append(f"balance_cover left out: {exc}")
+    simulated_spec, simulated_model = spec, model
+    compare_rules = params.compare_without_rules and spec.has_rules
+    if compare_rules:
+        simulated_spec = spec.without_rules()
+        simulated_model = build_transfer_model(simulated_spec, limits)
+        rows = _rows_in(model, simulated_model)
+        policies = {name: rows[table] for name, table in policies.items()}
+        policies[WITHOUT_RULES] = solve_policy_iteration(
+            simulated_model, criterion=params.criterion
+        ).action
     seed = new_seed() if params.seed is None else params.seed
     start = (
         None
@@ -228,8 +247,8 @@ def run_simulation(
         else [params.start_stock[location] for location in spec.location_ids]
     )
     report = simulate_policies(
-        spec,
-        model,
+        simulated_spec,
+        simulated_model,
         policies,
         days=params.days,
         replications=params.replications,
@@ -249,6 +268,7 @@ def run_simulation(
         "start_stock": dict(zip(report.location_ids, report.start_stock, strict=True)),
         "optimal_source": source,
         "policies": [_outcome(outcome) for outcome in report.outcomes],
+        "rules": _rules_effect(report) if compare_rules else None,
         "notes": notes,
     }
     return _require_finite(document, "")
@@ -323,6 +343,32 @@ def _run_priced_simulation(
         "notes": notes,
     }
     return _require_finite(document, "")
+
+
+def _rows_in(model: TransferModel, larger: TransferModel) -> NDArray[np.int64]:
+    """Row in `larger`'s flow table of every flow of `model`'s, shape (A,); `larger` must hold
+    them all (as the model without rules holds those of the model with them)."""
+    rows = {tuple(flow): k for k, flow in enumerate(larger.flows.tolist())}
+    return np.array([rows[tuple(flow)] for flow in model.flows.tolist()], dtype=np.int64)
+
+
+def _rules_effect(report: SimulationReport) -> dict[str, Any]:
+    """What the floors and handling limits cost (profit per day) and protect (fill rate and
+    stock-out days per location): the optimal policies without and with them."""
+    ruled, free = report.outcome(REFERENCE), report.outcome(WITHOUT_RULES)
+    assert free.difference_to_reference is not None  # the report's reference is the optimal
+    return {
+        "profit_per_day_cost": _interval(free.difference_to_reference),
+        "by_location": {
+            location: {
+                "fill_rate_with_rules": _interval(ruled.fill_rate_by_location[location]),
+                "fill_rate_without_rules": _interval(free.fill_rate_by_location[location]),
+                "stockout_days_with_rules": _interval(ruled.stockout_days_by_location[location]),
+                "stockout_days_without_rules": _interval(free.stockout_days_by_location[location]),
+            }
+            for location in report.location_ids
+        },
+    }
 
 
 def _policy_on(
@@ -403,10 +449,21 @@ def apply_overrides(spec: NetworkSpec, overrides: Overrides) -> NetworkSpec:
             errors.append((pointer, f"unknown location {location_id!r} (the network has {known})"))
             continue
         entry = document["locations"][i]
-        for field in ("capacity", "unit_margin", "holding_cost", "stockout_penalty"):
+        for field in (
+            "capacity",
+            "unit_margin",
+            "holding_cost",
+            "stockout_penalty",
+            "keep_at_least",
+            "max_units_out",
+            "max_units_in",
+        ):
             value = getattr(change, field)
-            if value is not None:
-                entry[field] = value
+            # A handling limit given as null lifts it; any other null keeps the value.
+            if value is not None or field in change.model_fields_set & _LIFTABLE:
+                entry[field] = (
+                    value.model_dump(mode="json") if isinstance(value, BaseModel) else value
+                )
                 origin[("locations", i, field)] = f"{pointer}/{field}"
         if change.demand_mean is not None:
             origin[("locations", i, "demand")] = f"{pointer}/demand_mean"
@@ -429,6 +486,8 @@ def apply_overrides(spec: NetworkSpec, overrides: Overrides) -> NetworkSpec:
         lane_origin[j] = pointer
         if lane_change.unit_cost is not None:
             lanes[j]["unit_cost"] = lane_change.unit_cost
+        if lane_change.dispatch_cost is not None:
+            lanes[j]["dispatch_cost"] = lane_change.dispatch_cost
         if lane_change.max_units is not None:
             lanes[j]["max_units"] = lane_change.max_units
     removed: set[int] = set()
@@ -451,6 +510,10 @@ def apply_overrides(spec: NetworkSpec, overrides: Overrides) -> NetworkSpec:
     if "max_units_per_night" in overrides.model_fields_set:
         document["max_units_per_night"] = overrides.max_units_per_night
         origin[("max_units_per_night",)] = "/overrides/max_units_per_night"
+    if overrides.remove_rules:
+        for entry in document["locations"]:
+            for field in _LIFTABLE | {"keep_at_least"}:
+                entry.pop(field, None)
     if errors:
         raise AnalysisInputError(errors)
 
@@ -499,7 +562,7 @@ def _override_pointer(
         field = loc[2] if len(loc) > 2 else None
         if where.startswith("/overrides/new_lanes/") and field is not None:
             return f"{where}/{field}"
-        if field in ("unit_cost", "max_units"):
+        if field in ("unit_cost", "dispatch_cost", "max_units"):
             return f"{where}/{field}"
         return where
     if loc == ("lanes",) and removed_any:

@@ -542,6 +542,7 @@ def simulation_table(spec: NetworkSpec, report: dict[str, Any]) -> str:
     """The simulation report for a person: one row per policy."""
     source = {"stored": "the stored policy", "solved": "solved for this run"}
     start = ", ".join(f"{location} {units}" for location, units in report["start_stock"].items())
+    width = max(15, *(len(policy["name"]) + 2 for policy in report["policies"]))
     lines = [
         f"network      {spec.name}",
         f"criterion    {report['criterion']} (optimal policy {source[report['optimal_source']]})",
@@ -550,17 +551,32 @@ def simulation_table(spec: NetworkSpec, report: dict[str, Any]) -> str:
         f"seed {report['seed']}",
         f"start stock  {start}",
         "",
-        f"{'policy':<15}{'profit/day (95% interval)':<30}{'fill rate':>10}{'stock-out days':>16}"
-        f"{'units/night':>13}  {'vs optimal (95% interval)'}",
+        f"{'policy':<{width}}{'profit/day (95% interval)':<30}{'fill rate':>10}"
+        f"{'stock-out days':>16}{'units/night':>13}  {'vs optimal (95% interval)'}",
     ]
     for policy in report["policies"]:
         difference = policy["difference_to_optimal"]
         lines.append(
-            f"{policy['name']:<15}{_with_interval(policy['profit_per_day']):<30}"
+            f"{policy['name']:<{width}}{_with_interval(policy['profit_per_day']):<30}"
             f"{policy['fill_rate']['mean']:>10.1%}{policy['stockout_days']['mean']:>16.1%}"
             f"{policy['units_moved_per_night']['mean']:>13.2f}  "
             + ("-" if difference is None else _with_interval(difference))
         )
+    rules = report.get("rules")
+    if rules is not None:
+        lines += [
+            "",
+            "floors and handling limits give up "
+            f"{_with_interval(rules['profit_per_day_cost'])} a day (optimal_without_rules "
+            "minus optimal); per location, with / without them:",
+        ]
+        for location, effect in rules["by_location"].items():
+            lines.append(
+                f"  {location:<{width}}fill rate {effect['fill_rate_with_rules']['mean']:.1%} / "
+                f"{effect['fill_rate_without_rules']['mean']:.1%}, stock-out days "
+                f"{effect['stockout_days_with_rules']['mean']:.1%} / "
+                f"{effect['stockout_days_without_rules']['mean']:.1%}"
+            )
     lines += [f"note: {note}" for note in report["notes"]]
     lines += ["", CAUTION]
     return "\n".join(lines) + "\n"

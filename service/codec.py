@@ -7,7 +7,10 @@ decoded, so a corrupt policy is never served. Round trips are bit-exact.
 
 Per-state arrays have shape (phases, states); `meta` records `phases` (1 or 7). Policies stored
 before weekly networks existed have 1-D per-state arrays, no `allowed` array and no `phases`:
-they decode as one phase in which every flow of the table is allowed.
+they decode as one phase in which every flow of the table is allowed. Policies stored before
+dispatch costs and floors existed have no `dispatch_costs` (a lane's cost was its unit cost
+times the units) and no `floors` array: they decode with both at zero, which is what they were
+solved with.
 
 A priced policy (solver.PricedPolicy: prices, per-store values, certificate) is stored the same
 way from its own `to_arrays()`; its meta says `"kind": "priced"` and holds the policy's own meta
@@ -40,7 +43,16 @@ __all__ = [
 
 StoredPolicy = PolicyResult | PricedPolicy
 
-_ARRAYS = ("action", "flows", "values", "post_move_values", "lane_costs", "allowed")
+_ARRAYS = (
+    "action",
+    "flows",
+    "values",
+    "post_move_values",
+    "lane_costs",
+    "allowed",
+    "dispatch_costs",
+    "floors",
+)
 _PER_STATE = ("action", "values", "post_move_values")
 
 
@@ -136,16 +148,26 @@ def decode_policy(arrays: bytes, layout: str, checksum: str, meta: str) -> Store
             if allowed is None
             else allowed.astype(np.bool_).reshape(phases, flows.shape[0])
         )
+        lane_costs = decoded["lane_costs"]
+        dispatch_costs = decoded.get("dispatch_costs")
+        floors = decoded.get("floors")
+        n_locations = len(info["capacities"])
         return PolicyResult(
             criterion=info["criterion"],
             method=info["method"],
             location_ids=tuple(info["location_ids"]),
             capacities=tuple(info["capacities"]),
             lanes=tuple((int(a), int(b)) for a, b in info["lanes"]),
-            lane_costs=decoded["lane_costs"],
+            lane_costs=lane_costs,
+            dispatch_costs=np.zeros_like(lane_costs)
+            if dispatch_costs is None
+            else dispatch_costs.reshape(lane_costs.shape),
             flows=flows,
             phases=phases,
             allowed=allowed,
+            floors=np.zeros((phases, n_locations), dtype=np.int64)
+            if floors is None
+            else floors.astype(np.int64).reshape(phases, n_locations),
             action=per_state["action"].astype(np.int64),
             values=per_state["values"],
             post_move_values=per_state["post_move_values"],

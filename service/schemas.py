@@ -20,7 +20,7 @@ from pydantic import (
 )
 
 from solver import NetworkSpec
-from solver.spec import LaneSpec
+from solver.spec import LaneSpec, NightCount
 
 __all__ = [
     "DEFAULT_CRITERION_RULE",
@@ -51,6 +51,7 @@ __all__ = [
     "LocationCalibrationOut",
     "LocationHistoryOut",
     "LocationOverride",
+    "LocationRulesEffectOut",
     "MoveChangesOut",
     "NetworkCreate",
     "NetworkCreated",
@@ -62,6 +63,7 @@ __all__ = [
     "RecommendationOut",
     "RecommendationRequest",
     "RelayOut",
+    "RulesEffectOut",
     "SimulationJobOut",
     "SimulationReportOut",
     "SimulationRequest",
@@ -295,6 +297,9 @@ class TransferOut(BaseModel):
     to: str
     units: int
     unit_cost: float
+    dispatch_cost: float = Field(
+        description="The lane's fixed cost per night it is used, paid when units > 0."
+    )
 
 
 class RelayOut(BaseModel):
@@ -744,6 +749,12 @@ class SimulationRequest(BaseModel):
         description="Stock of every location before the first night (default: half of each "
         "capacity, rounded down).",
     )
+    compare_without_rules: bool = Field(
+        default=True,
+        description="When the network has floors (keep_at_least) or handling limits, also "
+        "simulate the optimal policy of the same network without them (dispatch costs kept), "
+        "to show what the rules cost and which fill rates they protect; ignored otherwise.",
+    )
 
 
 class IntervalOut(BaseModel):
@@ -753,10 +764,14 @@ class IntervalOut(BaseModel):
 
 
 class PolicySimulationOut(BaseModel):
-    name: Literal["optimal", "priced", "do_nothing", "balance_cover"] = Field(
-        description="optimal: the solved policy; priced: the priced policy's nightly plan (a "
-        "network solved by prices); do_nothing: never move; balance_cover: move toward equal "
-        "days of cover when the move pays for itself the next day."
+    name: Literal["optimal", "priced", "do_nothing", "balance_cover", "optimal_without_rules"] = (
+        Field(
+            description="optimal: the solved policy; priced: the priced policy's nightly plan (a "
+            "network solved by prices); do_nothing: never move; balance_cover: move toward equal "
+            "days of cover when the move pays for itself the next day (all of these keep the "
+            "network's floors and handling limits); optimal_without_rules: the optimal policy of "
+            "the network with its floors and handling limits removed."
+        )
     )
     profit_per_day: IntervalOut = Field(description="Currency per day, move costs deducted.")
     fill_rate: IntervalOut = Field(description="Units sold / units demanded.")
@@ -771,6 +786,24 @@ class PolicySimulationOut(BaseModel):
     )
 
 
+class LocationRulesEffectOut(BaseModel):
+    fill_rate_with_rules: IntervalOut
+    fill_rate_without_rules: IntervalOut
+    stockout_days_with_rules: IntervalOut = Field(description="Fraction of days with lost sales.")
+    stockout_days_without_rules: IntervalOut
+
+
+class RulesEffectOut(BaseModel):
+    """What the floors and handling limits cost and protect, from the optimal policies with and
+    without them on the same simulated days."""
+
+    profit_per_day_cost: IntervalOut = Field(
+        description="Profit per day given up by keeping the rules: the optimal policy without "
+        "them minus the optimal policy with them, paired by replication (>= 0 up to noise)."
+    )
+    by_location: dict[str, LocationRulesEffectOut]
+
+
 class SimulationReportOut(BaseModel):
     criterion: CriterionName
     days: int
@@ -783,6 +816,11 @@ class SimulationReportOut(BaseModel):
         description="stored: the network's cached policy; solved: solved for this simulation."
     )
     policies: list[PolicySimulationOut]
+    rules: RulesEffectOut | None = Field(
+        default=None,
+        description="The effect of the network's floors and handling limits; null when it has "
+        "none or the comparison was not asked for.",
+    )
     notes: list[str] = Field(description="Policies left out, and why.")
 
 
@@ -819,6 +857,17 @@ class LocationOverride(BaseModel):
         description="Mean daily demand; a Poisson law keeps its family, a negative binomial "
         "its variance-to-mean ratio; an explicit distribution cannot be rescaled.",
     )
+    keep_at_least: NightCount | None = Field(
+        default=None, description="New floor (one count, or one per night); 0 removes it."
+    )
+    max_units_out: NightCount | None = Field(
+        default=None,
+        description="New limit on units sent per night; null lifts it, absent keeps it.",
+    )
+    max_units_in: NightCount | None = Field(
+        default=None,
+        description="New limit on units received per night; null lifts it, absent keeps it.",
+    )
 
 
 class LaneRef(BaseModel):
@@ -832,6 +881,7 @@ class LaneOverride(LaneRef):
     """New values for an existing lane, named by its ends."""
 
     unit_cost: Annotated[float, Field(ge=0, allow_inf_nan=False)] | None = None
+    dispatch_cost: Annotated[float, Field(ge=0, allow_inf_nan=False)] | None = None
     max_units: Annotated[int, Field(ge=1, le=10_000)] | None = None
 
 
@@ -849,6 +899,11 @@ class Overrides(BaseModel):
     max_units_per_night: Annotated[int, Field(ge=1)] | None = Field(
         default=None,
         description="Most units moved in one night; null lifts the limit, absent keeps it.",
+    )
+    remove_rules: bool = Field(
+        default=False,
+        description="Drop every floor and handling limit (after the changes above; dispatch "
+        "costs stay): what the rules cost.",
     )
 
 

@@ -16,13 +16,40 @@ takes its kernels and rewards from the laws of business day (d + 1) mod 7, the d
 tonight's moves, and its allowed flows from the lane limits of night d (solver.model). A
 network without weekly fields has the single phase 0, built from its one set of laws.
 
+Rules (solver.spec): a lane's dispatch cost F_l enters the flow's cost (solver.model); a
+location's floor k_i^d enters the feasibility box of phase d; the handling limits (most units
+sent or received by location i on night d) go into `allowed[d]` with the lane limits.
+
 Flow table: every integer flow vector within the lane limits (on weekly lanes, the largest
-limit of any night) and the units-per-night limit, except flows that can never be the preferred
-optimal action:
-  * a flow that sends more than C_i out of, or into, location i is feasible nowhere;
-  * a flow with positive units around a directed cycle (e.g. both ways along a pair of lanes)
-    is dominated by the flow with one unit less on every lane of the cycle: same post-move
-    stock, no higher cost (costs are >= 0), fewer units, and feasible wherever the original is.
+limit of any night), the units-per-night limit and the handling limits (the largest of any
+night), except flows that can never be the preferred optimal action:
+  * a flow that sends more than C_i out of, or into, location i is feasible nowhere, and so is
+    one that is not allowed on any night or whose box is empty on every night it is allowed;
+  * a flow with positive units around a directed cycle (e.g. both ways along a pair of lanes).
+
+Why the second pruning stays exact with dispatch costs, floors and handling limits. Let f carry
+at least one unit on every lane of a simple directed cycle Z (distinct locations i_1 -> i_2 ->
+... -> i_1) and let g = f - 1_Z, one unit less on each lane of Z. Then, on every night d:
+  1. g moves the same post-move stock: each location of Z sends one unit less and receives one
+     unit less, so out_i - in_i, hence y_i = s_i - out_i + in_i, is unchanged for every i.
+  2. g costs no more: the unit costs fall by sum_{l in Z} c_l >= 0, and [g_l > 0] <= [f_l > 0]
+     on every lane, so no dispatch cost is added (F_l >= 0; the dispatch cost of a lane of Z
+     that carried one unit is saved). A fixed cost never makes the cycle cheaper, because
+     taking a unit off a lane can only remove a dispatch, never create one.
+  3. g is allowed whenever f is: g <= f lane by lane (lane limits), it moves fewer units (units
+     per night), and out_i(g) <= out_i(f), in_i(g) <= in_i(f) for every i (handling limits).
+  4. g is feasible wherever f is: out_i(g) <= out_i(f) <= s_i; y is the same, so y_i <= C_i;
+     and if out_i(g) > 0 then out_i(f) > 0, so the floor y_i >= k_i^d that f obeys is the one g
+     must obey, at the same y.
+Hence Q_d(s, g) >= Q_d(s, f) wherever f is feasible and allowed, and g moves fewer units, so it
+precedes f in the table's order (units, then cost) and wins every tie: f is never the flow the
+solver recommends. Repeating the argument on g (units fall at each step) ends at an acyclic flow
+that is in the table. The argument needs only that y depends on f through in - out, that costs
+are nondecreasing in each lane's units, and that every limit is monotone (a smaller flow stays
+within it); relays through a third store and several units on one lane are not cycles and are
+kept. tests/solver/test_rules.py checks the pruned table against the full action set (the best
+value over every flow, for arbitrary post-move values), by brute force, on small networks with
+every rule.
 """
 
 from __future__ import annotations
@@ -34,7 +61,7 @@ from numpy.typing import NDArray
 
 from solver.distributions import count_law
 from solver.errors import ModelTooLargeError
-from solver.model import TransferModel, feasible_counts, flow_endpoints
+from solver.model import TransferModel, feasible_counts, flow_costs, flow_endpoints
 from solver.spec import WEEKDAYS, LocationSpec, NetworkSpec
 
 __all__ = [
@@ -61,8 +88,10 @@ class _Layout:
     lane_from: NDArray[np.int64]
     lane_to: NDArray[np.int64]
     lane_costs: NDArray[np.float64]
+    dispatch_costs: NDArray[np.float64]
     flows: NDArray[np.int64]
     allowed: NDArray[np.bool_]
+    floors: NDArray[np.int64]
     n_states: int
     n_pairs: int
 
@@ -119,6 +148,8 @@ def build_transfer_model(spec: NetworkSpec, limits: SizeLimits | None = None) ->
         reward=reward,
         allowed=layout.allowed,
         discount=spec.discount,
+        dispatch_costs=layout.dispatch_costs,
+        floors=layout.floors,
     )
 
 
@@ -144,26 +175,44 @@ def _layout(spec: NetworkSpec, limits: SizeLimits) -> _Layout:
     lane_from = np.array([index[lane.from_] for lane in spec.lanes], dtype=np.int64)
     lane_to = np.array([index[lane.to] for lane in spec.lanes], dtype=np.int64)
     lane_costs = np.array([lane.unit_cost for lane in spec.lanes], dtype=np.float64)
+    dispatch_costs = np.array([lane.dispatch_cost for lane in spec.lanes], dtype=np.float64)
     # night_limits[d, l]: most units on lane l on the evening of business day d.
     night_limits = np.array(
         [[lane.max_units_on(day) for lane in spec.lanes] for day in range(phases)],
         dtype=np.int64,
     )
+    # Per night d and location i (shape (P, N)): floor, most units sent, most units received
+    # (a location without a handling limit can send or receive its capacity at most).
+    floors = np.array(
+        [[loc.keep_at_least_on(day) for loc in spec.locations] for day in range(phases)],
+        dtype=np.int64,
+    ).reshape(phases, len(index))
+    most_out = _handling_limits(spec, phases, capacities, "out")
+    most_in = _handling_limits(spec, phases, capacities, "in")
 
     flows = _enumerate_flows(
         lane_from,
         lane_to,
         lane_costs,
+        dispatch_costs,
         night_limits.max(axis=0),
         capacities,
         spec.max_units_per_night,
         limits,
+        most_out.max(axis=0),
+        most_in.max(axis=0),
     )
-    allowed = np.all(flows[None, :, :] <= night_limits[:, None, :], axis=2)
-    usable = allowed.any(axis=0)
-    flows, allowed = flows[usable], allowed[:, usable]
     out, inn = flow_endpoints(flows, lane_from, lane_to, len(index))
-    n_pairs = int((allowed @ feasible_counts(out, inn, capacities)).sum())
+    allowed = (
+        np.all(flows[None, :, :] <= night_limits[:, None, :], axis=2)
+        & np.all(out[None, :, :] <= most_out[:, None, :], axis=2)
+        & np.all(inn[None, :, :] <= most_in[:, None, :], axis=2)
+    )
+    counts = np.stack([feasible_counts(out, inn, capacities, floors[d]) for d in range(phases)])
+    allowed &= counts > 0
+    usable = allowed.any(axis=0)
+    flows, allowed, counts = flows[usable], allowed[:, usable], counts[:, usable]
+    n_pairs = int((allowed * counts).sum())
     if n_pairs > limits.max_pairs:
         raise ModelTooLargeError(
             f"network has {sizes} and {n_pairs:,} feasible state-transfer pairs, more than "
@@ -172,7 +221,31 @@ def _layout(spec: NetworkSpec, limits: SizeLimits) -> _Layout:
             states=n_states,
             pairs=n_pairs,
         )
-    return _Layout(capacities, lane_from, lane_to, lane_costs, flows, allowed, n_states, n_pairs)
+    return _Layout(
+        capacities,
+        lane_from,
+        lane_to,
+        lane_costs,
+        dispatch_costs,
+        flows,
+        allowed,
+        floors,
+        n_states,
+        n_pairs,
+    )
+
+
+def _handling_limits(
+    spec: NetworkSpec, phases: int, capacities: NDArray[np.int64], direction: str
+) -> NDArray[np.int64]:
+    """Most units each location sends ("out") or receives ("in") on each night, shape (P, N);
+    its capacity where it has no limit."""
+    limits = np.empty((phases, capacities.size), dtype=np.int64)
+    for i, loc in enumerate(spec.locations):
+        for d in range(phases):
+            units = loc.max_units_out_on(d) if direction == "out" else loc.max_units_in_on(d)
+            limits[d, i] = capacities[i] if units is None else min(units, int(capacities[i]))
+    return limits
 
 
 def location_kernel(location: LocationSpec, *, weekday: int = 0) -> NDArray[np.float64]:
@@ -218,12 +291,16 @@ def _enumerate_flows(
     lane_from: NDArray[np.int64],
     lane_to: NDArray[np.int64],
     lane_costs: NDArray[np.float64],
+    dispatch_costs: NDArray[np.float64],
     lane_limits: NDArray[np.int64],
     capacities: NDArray[np.int64],
     max_per_night: int | None,
     limits: SizeLimits,
+    most_out: NDArray[np.int64],
+    most_in: NDArray[np.int64],
 ) -> NDArray[np.int64]:
-    """Candidate flows, shape (A, L), ordered by (units, cost, lexicographic)."""
+    """Candidate flows, shape (A, L), ordered by (units, cost with dispatch costs,
+    lexicographic); most_out, most_in: shape (N,), the largest handling limits of any night."""
     n_locations, n_lanes = capacities.size, lane_from.size
     flows = np.zeros((1, 0), dtype=np.int64)
     out = np.zeros((1, n_locations), dtype=np.int64)
@@ -240,7 +317,7 @@ def _enumerate_flows(
         inn = np.repeat(inn, units.size, axis=0)
         out[:, a] += flows[:, -1]
         inn[:, b] += flows[:, -1]
-        keep = (out[:, a] <= capacities[a]) & (inn[:, b] <= capacities[b])
+        keep = (out[:, a] <= most_out[a]) & (inn[:, b] <= most_in[b])
         if max_per_night is not None:
             keep &= flows.sum(axis=1) <= max_per_night
         # A lane and its reverse both used: a two-lane cycle, dominated.
@@ -257,7 +334,7 @@ def _enumerate_flows(
             )
 
     flows = flows[~_has_cycle(flows, lane_from, lane_to, n_locations)]
-    costs = flows @ lane_costs
+    costs = flow_costs(flows, lane_costs, dispatch_costs)
     units = flows.sum(axis=1)
     # np.lexsort sorts by the last key first.
     order = np.lexsort((*flows.T[::-1], costs, units))

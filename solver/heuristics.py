@@ -5,8 +5,11 @@ one unit at a time, each time along the lane with the best score for that unit, 
 scores above zero (symbols as in solver.model):
 
     a unit may go along lane l = (i -> j) while f_l < u_l(night), sent_i < s_i (a location sends
-    only what it had at closing), y_j < C_j, the reverse lane (j -> i) carries nothing, and
-    sum f < the nightly limit; y = s - out(f) + in(f) is updated after every unit.
+    only what it had at closing), y_j < C_j, the reverse lane (j -> i) carries nothing,
+    sum f < the nightly limit, y_i > keep_at_least_i (the sender stays at or above its floor)
+    and the night's handling limits of i (units out) and j (units in) are not reached;
+    y = s - out(f) + in(f) is updated after every unit. The first unit on a lane also pays the
+    lane's dispatch cost, so a lane is opened only when one unit pays for the truck.
 
 The rules differ in the score of one more unit on lane l at the tentative post-move stock y:
 
@@ -40,7 +43,7 @@ from solver import solve_network
 from solver.build import location_reward
 from solver.result import Criterion
 from solver.simulation import Plan, mean_demands
-from solver.spec import LaneSpec, NetworkSpec
+from solver.spec import LaneSpec, LocationSpec, NetworkSpec
 
 __all__ = ["balance_cover_plan", "do_nothing_plan", "pairwise_index_plan"]
 
@@ -66,7 +69,22 @@ class _Lanes:
             [[lane.max_units_on(d) for lane in spec.lanes] for d in range(self.n_phases)],
             dtype=np.int64,
         )
+        self.dispatch = np.array([lane.dispatch_cost for lane in spec.lanes], dtype=np.float64)
         self.network_limit = spec.max_units_per_night
+        unlimited = int(self.capacities.sum())
+
+        def per_night(value: Callable[[LocationSpec, int], int | None]) -> NDArray[np.int64]:
+            return np.array(
+                [
+                    [unlimited if (v := value(loc, d)) is None else v for loc in spec.locations]
+                    for d in range(self.n_phases)
+                ],
+                dtype=np.int64,
+            )
+
+        self.floors = per_night(lambda loc, d: loc.keep_at_least_on(d))
+        self.most_out = per_night(lambda loc, d: loc.max_units_out_on(d))
+        self.most_in = per_night(lambda loc, d: loc.max_units_in_on(d))
         ends = [(int(a), int(b)) for a, b in zip(self.sender, self.receiver, strict=True)]
         lane_of = {pair: lane for lane, pair in enumerate(ends)}
         self.reverse = np.array(
@@ -81,7 +99,10 @@ class _Lanes:
         flows = np.zeros((batch, n_lanes), dtype=np.int64)
         post = stock.copy()
         sent = np.zeros_like(stock)
-        limits = self.limits[phase % self.n_phases]
+        night = phase % self.n_phases
+        limits = self.limits[night]
+        floors, most_out, most_in = self.floors[night], self.most_out[night], self.most_in[night]
+        received = np.zeros_like(stock)
         rows = np.arange(batch)
         has_reverse = self.reverse >= 0
         budget = int(limits.sum()) if self.network_limit is None else self.network_limit
@@ -90,13 +111,17 @@ class _Lanes:
             ok = (
                 (flows < limits)
                 & (sent[:, self.sender] < stock[:, self.sender])
+                & (sent[:, self.sender] < most_out[self.sender])
+                & (post[:, self.sender] > floors[self.sender])
                 & (post[:, self.receiver] < self.capacities[self.receiver])
+                & (received[:, self.receiver] < most_in[self.receiver])
             )
             ok[:, has_reverse] &= flows[:, self.reverse[has_reverse]] == 0
             ok &= active[:, None]
             if not ok.any():
                 break
-            values = np.where(ok, score(post, phase, ok), -np.inf)
+            # The first unit on a lane pays its dispatch cost.
+            values = np.where(ok, score(post, phase, ok) - self.dispatch * (flows == 0), -np.inf)
             best = np.argmax(values, axis=1)
             gain = values[rows, best]
             scale = np.abs(np.where(np.isfinite(values), values, 0.0)).max(axis=1)
@@ -108,6 +133,7 @@ class _Lanes:
             post[take, self.sender[lane]] -= 1
             post[take, self.receiver[lane]] += 1
             sent[take, self.sender[lane]] += 1
+            received[take, self.receiver[lane]] += 1
         return flows
 
 

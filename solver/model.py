@@ -24,22 +24,34 @@ P = 1, where phase 0 follows itself.
 Given y, the locations evolve independently, so the transition law from y is the product of the
 K_i^d; the solver never forms it.
 
-A flow f is feasible at s iff out_i(f) <= s_i and s_i - out_i(f) + in_i(f) <= C_i for every i,
-i.e. iff s lies in the box out_i <= s_i <= min(C_i, C_i - in_i + out_i). Network-wide limits
-(lane limits, units per night) are applied when the flow table is built; a flow is allowed on
-night d when it is within night d's lane limits (`allowed[d]`).
+    k_i^d     location i's floor on night d (keep_at_least): a location that sends anything
+              must keep at least k_i^d units after the night's moves
+
+A flow f is feasible at s in phase d iff, for every i, out_i(f) <= s_i, s_i - out_i(f) + in_i(f)
+<= C_i and, when out_i(f) > 0, s_i - out_i(f) + in_i(f) >= k_i^d; i.e. iff s lies in the box
+
+    lo_i <= s_i <= min(C_i, C_i - in_i + out_i),
+    lo_i = out_i if out_i = 0, else max(out_i, k_i^d + out_i - in_i),
+
+which may be empty. Network-wide limits (lane limits, units per night, each location's handling
+limits on units sent and received) do not depend on s: they are applied when the flow table is
+built, a flow being allowed on night d when it is within all of night d's limits (`allowed[d]`).
+
+The cost of a flow is sum_l c_l f_l + sum_l F_l [f_l > 0], c_l the unit cost and F_l the
+dispatch cost of lane l (paid once on a night the lane is used).
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from functools import cached_property
 
 import numpy as np
 from numpy.typing import NDArray
 
 from solver.errors import InvalidModelError
 
-__all__ = ["TransferModel"]
+__all__ = ["TransferModel", "feasible_bounds", "feasible_counts", "flow_costs", "flow_endpoints"]
 
 _PROBABILITY_TOLERANCE = 1e-9
 
@@ -54,6 +66,7 @@ class TransferModel:
     capacities: shape (N,), C_i.
     lane_from, lane_to: shape (L,), location indices of each lane's ends.
     lane_costs: shape (L,), currency per unit moved.
+    dispatch_costs: shape (L,), currency per night a lane moves one unit or more.
     flows: shape (A, L), the candidate flow vectors of every night, row 0 moving nothing, rows
         ordered by preference when values tie (fewer units, then lower cost).
     kernels: P tuples (one per phase) of N arrays of shape (C_i + 1, C_i + 1), rows summing
@@ -61,6 +74,7 @@ class TransferModel:
     reward: shape (P, C_1 + 1, ..., C_N + 1), R_d(y) in currency per day.
     allowed: shape (P, A), whether each flow may be sent on night d; row 0 always may.
     discount: per-day discount factor for the discounted criterion.
+    floors: shape (P, N), k_i^d in units (0 where a location has no floor).
     """
 
     location_ids: tuple[str, ...]
@@ -73,6 +87,8 @@ class TransferModel:
     reward: NDArray[np.float64]
     allowed: NDArray[np.bool_]
     discount: float
+    dispatch_costs: NDArray[np.float64]
+    floors: NDArray[np.int64]
     flow_out: NDArray[np.int64] = field(init=False, repr=False)
     flow_in: NDArray[np.int64] = field(init=False, repr=False)
     flow_costs: NDArray[np.float64] = field(init=False, repr=False)
@@ -84,7 +100,9 @@ class TransferModel:
         out, inn = flow_endpoints(self.flows, self.lane_from, self.lane_to, self.n_locations)
         object.__setattr__(self, "flow_out", out)
         object.__setattr__(self, "flow_in", inn)
-        object.__setattr__(self, "flow_costs", self.flows @ self.lane_costs)
+        object.__setattr__(
+            self, "flow_costs", flow_costs(self.flows, self.lane_costs, self.dispatch_costs)
+        )
         object.__setattr__(self, "flow_units", self.flows.sum(axis=1))
         # Indices of the flows allowed on each night, in preference order.
         phase_flows = tuple(np.flatnonzero(row).astype(np.int64) for row in self.allowed)
@@ -109,39 +127,45 @@ class TransferModel:
     def n_flows(self) -> int:
         return int(self.flows.shape[0])
 
-    @property
+    # Cached: the evaluation asks for these on every one-day expectation.
+    @cached_property
     def shape(self) -> tuple[int, ...]:
         return tuple(int(c) + 1 for c in self.capacities)
 
-    @property
+    @cached_property
     def n_states(self) -> int:
         """Stock states S of one phase (the model has S x P states in all)."""
         return int(np.prod(self.shape))
 
-    @property
+    @cached_property
     def strides(self) -> NDArray[np.int64]:
         """Flat-index step of one unit at each location, shape (N,)."""
         shape = np.array(self.shape, dtype=np.int64)
         return np.concatenate([np.cumprod(shape[::-1])[::-1][1:], [1]]).astype(np.int64)
 
-    def box_sizes(self) -> NDArray[np.int64]:
-        """Number of states at which each flow is feasible, shape (A,)."""
-        return feasible_counts(self.flow_out, self.flow_in, self.capacities)
+    def box_sizes(self, phase: int = 0) -> NDArray[np.int64]:
+        """Number of states at which each flow is feasible in `phase`, shape (A,)."""
+        return feasible_counts(self.flow_out, self.flow_in, self.capacities, self.floors[phase])
 
     @property
     def n_pairs(self) -> int:
         """Number of feasible (phase, state, flow) pairs."""
-        return int((self.allowed @ self.box_sizes()).sum())
+        return int(sum(self.allowed[d] @ self.box_sizes(d) for d in range(self.n_phases)))
 
     # -- feasibility -------------------------------------------------------------------------
 
-    def boxes(self) -> list[tuple[Box, Box]]:
-        """For each flow, the slices of the states where it is feasible and of their post-move
-        stocks (same extent), as index tuples into arrays of shape `self.shape`."""
-        out, inn, cap = self.flow_out, self.flow_in, self.capacities
-        lo = out
-        hi = np.minimum(cap, cap - inn + out)
-        y_lo = inn
+    def bounds(self, phase: int = 0) -> tuple[NDArray[np.int64], NDArray[np.int64]]:
+        """(lo, hi), shapes (A, N): flow k is feasible in `phase` exactly at the closing stocks
+        with lo[k] <= s <= hi[k] (empty when some lo exceeds hi)."""
+        return feasible_bounds(self.flow_out, self.flow_in, self.capacities, self.floors[phase])
+
+    def boxes(self, phase: int = 0) -> list[tuple[Box, Box]]:
+        """For each flow, the slices of the states where it is feasible in `phase` and of their
+        post-move stocks (same extent), as index tuples into arrays of shape `self.shape`; both
+        empty where the flow is feasible nowhere."""
+        lo, hi = self.bounds(phase)
+        y_lo = lo - self.flow_out + self.flow_in
+        empty = tuple(slice(0, 0) for _ in range(self.n_locations))
         return [
             (
                 tuple(slice(int(a), int(b) + 1) for a, b in zip(lo[k], hi[k], strict=True)),
@@ -150,6 +174,8 @@ class TransferModel:
                     for a, b, c in zip(y_lo[k], hi[k], lo[k], strict=True)
                 ),
             )
+            if np.all(lo[k] <= hi[k])
+            else (empty, empty)
             for k in range(self.n_flows)
         ]
 
@@ -163,7 +189,11 @@ class TransferModel:
         n, n_lanes = self.n_locations, self.lane_from.size
         if n < 1 or self.capacities.shape != (n,) or np.any(self.capacities < 1):
             raise InvalidModelError("capacities must be one integer >= 1 per location")
-        for name, arr in (("lane_to", self.lane_to), ("lane_costs", self.lane_costs)):
+        for name, arr in (
+            ("lane_to", self.lane_to),
+            ("lane_costs", self.lane_costs),
+            ("dispatch_costs", self.dispatch_costs),
+        ):
             if arr.shape != (n_lanes,):
                 raise InvalidModelError(f"{name} has shape {arr.shape}, expected ({n_lanes},)")
         ends = np.concatenate([self.lane_from, self.lane_to])
@@ -203,6 +233,14 @@ class TransferModel:
             )
         if not np.all(self.allowed[:, 0]):
             raise InvalidModelError("moving nothing must be allowed on every night")
+        if self.floors.shape != (phases, n) or np.any(self.floors < 0):
+            raise InvalidModelError(f"floors must be integers >= 0 of shape {(phases, n)}")
+        if np.any(self.floors > self.capacities):
+            d, i = np.argwhere(self.floors > self.capacities)[0]
+            raise InvalidModelError(
+                f"floor of location {self.location_ids[i]!r} exceeds its capacity"
+                + ("" if phases == 1 else f" in phase {d}")
+            )
         if not 0.0 < self.discount < 1.0:
             raise InvalidModelError(f"discount must lie in (0, 1), got {self.discount}")
 
@@ -242,11 +280,37 @@ def flow_endpoints(
     return out, inn
 
 
+def flow_costs(
+    flows: NDArray[np.int64], lane_costs: NDArray[np.float64], dispatch_costs: NDArray[np.float64]
+) -> NDArray[np.float64]:
+    """Cost of each flow, shape (A,): units times unit cost, plus the dispatch cost of every lane
+    used (currency)."""
+    costs: NDArray[np.float64] = flows @ lane_costs + (flows > 0) @ dispatch_costs
+    return costs
+
+
+def feasible_bounds(
+    out: NDArray[np.int64],
+    inn: NDArray[np.int64],
+    capacities: NDArray[np.int64],
+    floors: NDArray[np.int64] | None = None,
+) -> tuple[NDArray[np.int64], NDArray[np.int64]]:
+    """(lo, hi), shapes (A, N): the box of closing stocks where each flow is feasible (see the
+    module docstring); floors: shape (N,), units, default none."""
+    lo = out if floors is None else np.where(out > 0, np.maximum(out, floors + out - inn), 0)
+    hi = np.minimum(capacities, capacities - inn + out)
+    return lo, hi
+
+
 def feasible_counts(
-    out: NDArray[np.int64], inn: NDArray[np.int64], capacities: NDArray[np.int64]
+    out: NDArray[np.int64],
+    inn: NDArray[np.int64],
+    capacities: NDArray[np.int64],
+    floors: NDArray[np.int64] | None = None,
 ) -> NDArray[np.int64]:
     """Number of states at which each flow is feasible, shape (A,): the box volume
-    prod_i max(0, min(C_i - out_i, C_i - in_i) + 1)."""
-    per_location = np.maximum(0, np.minimum(capacities - out, capacities - inn) + 1)
+    prod_i max(0, hi_i - lo_i + 1) (see feasible_bounds)."""
+    lo, hi = feasible_bounds(out, inn, capacities, floors)
+    per_location = np.maximum(0, hi - lo + 1)
     counts: NDArray[np.int64] = np.prod(per_location, axis=1, dtype=np.int64)
     return counts

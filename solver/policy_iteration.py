@@ -173,9 +173,10 @@ def solve_policy_iteration(
         action = new_action
         tolerance = max(final, min(tolerance, _TIGHTENING * float(gap.max())))
 
-    # Settle ties from the final values toward fewer units, then lower cost.
+    # Settle ties from the final values toward fewer units, then lower cost: the last greedy
+    # step's choice from those values (the loop ends right after it, with `u` and `tie` unchanged).
     t = time.perf_counter()
-    canonical = greedy(table, u, tie)[0]
+    canonical = candidate
     if not np.array_equal(canonical, action):
         action = canonical
         chain = _chain(model, table, action)
@@ -346,9 +347,11 @@ def _result(
         capacities=tuple(int(c) for c in model.capacities),
         lanes=tuple((int(a), int(b)) for a, b in zip(model.lane_from, model.lane_to, strict=True)),
         lane_costs=model.lane_costs,
+        dispatch_costs=model.dispatch_costs,
         flows=model.flows,
         phases=model.n_phases,
         allowed=model.allowed,
+        floors=model.floors,
         action=action.reshape(shape),
         values=values.reshape(shape),
         post_move_values=post_move.reshape(shape),

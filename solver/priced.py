@@ -150,6 +150,15 @@ def check_priced_size(spec: NetworkSpec, limits: PricedLimits | None = None) -> 
             states=states * n_phases(spec),
             pairs=None,
         )
+    ruled = [loc.id for loc in spec.locations if loc.has_rules]
+    ruled += [f"{lane.from_}->{lane.to}" for lane in spec.lanes if lane.dispatch_cost > 0]
+    if ruled:
+        raise ModelTooLargeError(
+            "the priced mode does not take dispatch costs, floors or handling limits yet "
+            f"({', '.join(ruled)}): solve this network exactly, within the exact size limits",
+            states=states * n_phases(spec),
+            pairs=None,
+        )
 
 
 # -- the network as per-store arrays ----------------------------------------------------------
@@ -953,6 +962,8 @@ def _evaluation_model(spec: NetworkSpec, limits: SizeLimits | None) -> TransferM
         lane_from=net.lane_from,
         lane_to=net.lane_to,
         lane_costs=net.lane_costs,
+        dispatch_costs=np.zeros(net.n_lanes),
+        floors=np.zeros((net.phases, net.capacities.size), dtype=np.int64),
         flows=np.zeros((1, net.n_lanes), dtype=np.int64),
         kernels=tuple(tuple(k[d] for k in net.kernels) for d in range(net.phases)),
         reward=reward,

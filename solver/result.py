@@ -11,7 +11,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from solver.errors import InvalidStockError
-from solver.model import flow_endpoints
+from solver.model import flow_costs, flow_endpoints
 
 __all__ = [
     "Alternative",
@@ -84,7 +84,10 @@ class PolicyResult:
     solver.model). Arrays over states have shape (P, S): one row per phase, stock states flat in
     row-major order of closing stock (location 0 slowest).
     flows: shape (A, L), the candidate flow table; action: shape (P, S), index into it.
-    allowed: shape (P, A), whether each flow may be sent on the night of each phase.
+    lane_costs, dispatch_costs: shape (L,), currency per unit and per night a lane is used.
+    allowed: shape (P, A), whether each flow may be sent on the night of each phase (lane and
+        handling limits).
+    floors: shape (P, N), units a location that sends anything keeps after the night's moves.
     values: shape (P, S), discounted value, or for the average criterion the bias with
         values[0, 0] = 0 (currency units).
     post_move_values: shape (P, S), U_d(y) at post-move stock y in phase d (see solver.bellman).
@@ -102,9 +105,11 @@ class PolicyResult:
     capacities: tuple[int, ...]
     lanes: tuple[tuple[int, int], ...]
     lane_costs: NDArray[np.float64]
+    dispatch_costs: NDArray[np.float64]
     flows: NDArray[np.int64]
     phases: int
     allowed: NDArray[np.bool_]
+    floors: NDArray[np.int64]
     action: NDArray[np.int64]
     values: NDArray[np.float64]
     post_move_values: NDArray[np.float64]
@@ -166,11 +171,15 @@ class PolicyResult:
         index = self.state_index(stock)
         out, inn = self._endpoints
         capacities = np.array(self.capacities, dtype=np.int64)
-        fits = np.all((out <= s) & (s - out + inn <= capacities), axis=1)
+        after = s - out + inn
+        fits = np.all(
+            (out <= s) & (after <= capacities) & ((out == 0) | (after >= self.floors[phase])),
+            axis=1,
+        )
         feasible = np.flatnonzero(fits & self.allowed[phase])
-        posts = s - out[feasible] + inn[feasible]
+        posts = after[feasible]
         post_index = np.ravel_multi_index(tuple(posts.T), self.shape)
-        q = self.post_move_values[phase, post_index] - self.flows[feasible] @ self.lane_costs
+        q = self.post_move_values[phase, post_index] - self.flow_costs[feasible]
 
         # Under the average criterion Q(s, f) = h(s) + g at the best f: report on the bias scale.
         q -= self.gain or 0.0
@@ -190,12 +199,18 @@ class PolicyResult:
             stock=tuple(int(u) for u in s),
             flows=tuple(int(x) for x in self.flows[chosen]),
             post_move_stock=tuple(int(u) for u in posts[position[chosen]]),
-            transfer_cost=float(self.flows[chosen] @ self.lane_costs),
+            transfer_cost=float(self.flow_costs[chosen]),
             expected_value=expected,
             value_without_transfers=without,
             gain_from_transfers=expected - without,
             alternatives=alternatives,
         )
+
+    @cached_property
+    def flow_costs(self) -> NDArray[np.float64]:
+        """Cost of every flow of the table, shape (A,): unit costs plus the dispatch cost of
+        every lane it uses (currency)."""
+        return flow_costs(self.flows, self.lane_costs, self.dispatch_costs)
 
     @cached_property
     def _endpoints(self) -> tuple[NDArray[np.int64], NDArray[np.int64]]:

@@ -48,7 +48,7 @@ from scipy import stats
 
 from solver.distributions import count_law
 from solver.model import TransferModel
-from solver.spec import Distribution, NetworkSpec
+from solver.spec import Distribution, LocationSpec, NetworkSpec
 
 __all__ = [
     "CONFIDENCE",
@@ -249,9 +249,9 @@ def balance_cover_policy(
     tolerance = 1e-9 * max(1.0, float(imbalance.max()))
     payback_tolerance = 1e-9 * max(1.0, float(np.abs(model.reward).max()))
 
-    boxes = model.boxes()
     table = np.zeros((model.n_phases, model.n_states), dtype=np.int64)
     for p in range(model.n_phases):
+        boxes = model.boxes(p)
         reward = model.reward[p]
         best = imbalance.copy()
         action = np.zeros(model.shape, dtype=np.int64)
@@ -583,8 +583,11 @@ class _Network:
     """What a simulated day needs of a specification, as arrays.
 
     incidence: shape (L, N), +1 at a lane's receiver and -1 at its sender, so that the post-move
-    stock is s + f @ incidence. night_limits: shape (P, L), most units per lane on the night of
-    each phase; network_limit: most units over all lanes in a night (None: no limit).
+    stock is s + f @ incidence. unit_costs, dispatch_costs: shape (L,), currency per unit and per
+    night a lane is used. night_limits: shape (P, L), most units per lane on the night of each
+    phase; network_limit: most units over all lanes in a night (None: no limit). floors,
+    most_out, most_in: shape (P, N), per location and night, the floor (keep_at_least) and the
+    handling limits (a large number where there is none).
     """
 
     location_ids: tuple[str, ...]
@@ -595,8 +598,12 @@ class _Network:
     senders: NDArray[np.int64]
     incidence: NDArray[np.int64]
     unit_costs: NDArray[np.float64]
+    dispatch_costs: NDArray[np.float64]
     night_limits: NDArray[np.int64]
     network_limit: int | None
+    floors: NDArray[np.int64]
+    most_out: NDArray[np.int64]
+    most_in: NDArray[np.int64]
 
     @classmethod
     def of(cls, spec: NetworkSpec) -> _Network:
@@ -608,6 +615,17 @@ class _Network:
             senders[lane, index[spec_lane.from_]] = 1
             receivers[lane, index[spec_lane.to]] = 1
         phases = 7 if spec.is_periodic else 1
+        unlimited = sum(loc.capacity for loc in spec.locations)
+
+        def per_night(value: Callable[[LocationSpec, int], int | None]) -> NDArray[np.int64]:
+            return np.array(
+                [
+                    [unlimited if (v := value(loc, day)) is None else v for loc in spec.locations]
+                    for day in range(phases)
+                ],
+                dtype=np.int64,
+            )
+
         return cls(
             location_ids=tuple(spec.location_ids),
             capacities=np.array([loc.capacity for loc in spec.locations], dtype=np.int64),
@@ -617,11 +635,15 @@ class _Network:
             senders=senders,
             incidence=receivers - senders,
             unit_costs=np.array([lane.unit_cost for lane in spec.lanes], dtype=np.float64),
+            dispatch_costs=np.array([lane.dispatch_cost for lane in spec.lanes], dtype=np.float64),
             night_limits=np.array(
                 [[lane.max_units_on(day) for lane in spec.lanes] for day in range(phases)],
                 dtype=np.int64,
             ),
             network_limit=spec.max_units_per_night,
+            floors=per_night(lambda loc, day: loc.keep_at_least_on(day)),
+            most_out=per_night(lambda loc, day: loc.max_units_out_on(day)),
+            most_in=per_night(lambda loc, day: loc.max_units_in_on(day)),
         )
 
     @property
@@ -676,7 +698,7 @@ def _simulate(
             sold = np.minimum(post, demand)
             lost = demand - sold
             stock = np.minimum(post - sold + replenishment_block[b], network.capacities)
-            cost = flows @ network.unit_costs
+            cost = flows @ network.unit_costs + (flows > 0) @ network.dispatch_costs
             # Sums along the location axis treat every (policy, replication) row alike, so two
             # copies of one policy earn bit-identical profits.
             profit = (sold * network.margin - post * network.holding - lost * network.penalty).sum(
@@ -708,13 +730,28 @@ def _check_flows(
             f"{(stock.shape[0], network.incidence.shape[0])}, one row per stock and a column "
             "per lane"
         )
-    limits = network.night_limits[phase % network.night_limits.shape[0]]
+    night = phase % network.night_limits.shape[0]
     post = stock + flows @ network.incidence
+    sent = flows @ network.senders
+    received = sent + post - stock
+    below_floor = (sent > 0) & (post < network.floors[night])
     broken = [
         ("a negative number of units on a lane", np.any(flows < 0, axis=1)),
-        ("more units on a lane than its limit that night", np.any(flows > limits, axis=1)),
-        ("more than is on hand", np.any(flows @ network.senders > stock, axis=1)),
+        (
+            "more units on a lane than its limit that night",
+            np.any(flows > network.night_limits[night], axis=1),
+        ),
+        ("more than is on hand", np.any(sent > stock, axis=1)),
         ("a location beyond its capacity", np.any(post > network.capacities, axis=1)),
+        ("a sending location below its floor (keep_at_least)", np.any(below_floor, axis=1)),
+        (
+            "more units out of a location than it can send",
+            np.any(sent > network.most_out[night], axis=1),
+        ),
+        (
+            "more units into a location than it can take",
+            np.any(received > network.most_in[night], axis=1),
+        ),
     ]
     if network.network_limit is not None:
         broken.append(
@@ -736,10 +773,12 @@ def _check_flows(
 def _check_model(spec: NetworkSpec, model: TransferModel) -> None:
     ids = tuple(spec.location_ids)
     capacities = tuple(location.capacity for location in spec.locations)
-    lanes = tuple((lane.from_, lane.to, lane.unit_cost) for lane in spec.lanes)
+    lanes = tuple((lane.from_, lane.to, lane.unit_cost, lane.dispatch_cost) for lane in spec.lanes)
     model_lanes = tuple(
-        (model.location_ids[a], model.location_ids[b], float(c))
-        for a, b, c in zip(model.lane_from, model.lane_to, model.lane_costs, strict=True)
+        (model.location_ids[a], model.location_ids[b], float(c), float(f))
+        for a, b, c, f in zip(
+            model.lane_from, model.lane_to, model.lane_costs, model.dispatch_costs, strict=True
+        )
     )
     if (
         ids != model.location_ids
@@ -816,7 +855,7 @@ def _policy_table(model: TransferModel, name: str, policy: ArrayLike) -> NDArray
             raise ValueError(
                 f"policy {name!r}{where} chooses {_describe_flow(model, int(actions[state]))} "
                 f"at closing stock ({_describe_stock(model.location_ids, states[state])}) on a "
-                "night whose lane limits do not allow it"
+                "night whose lane or handling limits do not allow it"
             )
         outside = (actions < 0) | (actions >= model.n_flows)
         if outside.any():
@@ -827,14 +866,23 @@ def _policy_table(model: TransferModel, name: str, policy: ArrayLike) -> NDArray
                 f"0..{model.n_flows - 1}"
             )
         out, inn = model.flow_out[actions], model.flow_in[actions]
-        infeasible = np.any((out > states) | (states - out + inn > model.capacities), axis=1)
+        after = states - out + inn
+        # A row used on every night must keep the highest floor of any night.
+        floors = (
+            model.floors[row % model.n_phases]
+            if table.shape[0] == model.n_phases
+            else model.floors.max(axis=0)
+        )
+        infeasible = np.any(
+            (out > states) | (after > model.capacities) | ((out > 0) & (after < floors)), axis=1
+        )
         if infeasible.any():
             state = int(np.argmax(infeasible))
             raise ValueError(
                 f"policy {name!r}{where} chooses {_describe_flow(model, int(actions[state]))} "
                 f"at closing stock ({_describe_stock(model.location_ids, states[state])}), where "
-                "it is not feasible: it sends more than is on hand or fills a location beyond "
-                "capacity"
+                "it is not feasible: it sends more than is on hand, fills a location beyond "
+                "capacity or leaves a sending location below its floor (keep_at_least)"
             )
     return table
 

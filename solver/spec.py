@@ -12,6 +12,14 @@ evening of that business day (Sunday's limit to Sunday night). A network with an
 periodic: its optimal policy depends on the weekday (see solver.model for the phases). Its
 `timezone` (an IANA name such as "Europe/Berlin") tells the service which business date a
 closing count belongs to; here only its form is checked, since solver/ reads no tz database.
+
+Rules of the trade. A lane's `dispatch_cost` is paid once on a night the lane moves at least one
+unit, on top of `unit_cost` per unit (a truck, a driver). A location's `keep_at_least` is a floor:
+it never sends units that would leave it, after the night's moves, with fewer than that many (it
+may still receive, whatever its stock). `max_units_out` and `max_units_in` are handling limits:
+most units a location sends, or receives, in one night. All three location fields take a weekly
+form like a lane's `max_units`. Every new field is left out of the serialised form at its
+default, so a network that does not use it serialises (and hashes) exactly as before.
 """
 
 from __future__ import annotations
@@ -39,9 +47,11 @@ __all__ = [
     "LocationSpec",
     "NegativeBinomialDemand",
     "NetworkSpec",
+    "NightCount",
     "NightlyUnits",
     "PmfDemand",
     "PoissonDemand",
+    "WeeklyCount",
     "WeeklyDistribution",
     "WeeklyUnits",
 ]
@@ -179,6 +189,13 @@ class WeeklyUnits(_Strict):
         return self
 
 
+class WeeklyCount(_Strict):
+    """A per-night count of a location (floor or handling limit): `{"weekly": {"mon": 2, ...}}`;
+    0 is allowed on every night."""
+
+    weekly: NightlyUnits
+
+
 def _law_tag(value: Any) -> str | None:
     if isinstance(value, dict):
         return "weekly" if "weekly" in value else value.get("dist")
@@ -214,9 +231,19 @@ LaneLimit = Annotated[
 ]
 
 
+def _count_tag(value: Any) -> str:
+    return "weekly" if isinstance(value, dict | WeeklyCount) else "units"
+
+
+NightCount = Annotated[
+    Annotated[_NightUnits, Tag("units")] | Annotated[WeeklyCount, Tag("weekly")],
+    Discriminator(_count_tag),
+]
+
+
 def _on(value: Any, weekday: int) -> Any:
     """The value of a possibly weekly field on `weekday` (0 = Monday)."""
-    if isinstance(value, WeeklyDistribution | WeeklyUnits):
+    if isinstance(value, WeeklyDistribution | WeeklyUnits | WeeklyCount):
         return getattr(value.weekly, WEEKDAYS[weekday])
     return value
 
@@ -243,12 +270,69 @@ class LocationSpec(_Strict):
             "one per weekday."
         ),
     ]
+    # The rules below are left out of the serialised form at their defaults, so that a network
+    # saved before they existed serialises (and hashes) exactly as it did.
+    keep_at_least: Annotated[
+        NightCount,
+        Field(
+            description="Floor: never send units that would leave fewer than this many after "
+            "the night's moves (receiving is always allowed); one count, or one per night.",
+            exclude_if=lambda units: units == 0,
+        ),
+    ] = 0
+    max_units_out: Annotated[
+        NightCount | None,
+        Field(
+            description="Handling limit: most units sent in one night; one count, or one per "
+            "night; none when absent.",
+            exclude_if=lambda units: units is None,
+        ),
+    ] = None
+    max_units_in: Annotated[
+        NightCount | None,
+        Field(
+            description="Handling limit: most units received in one night; one count, or one "
+            "per night; none when absent.",
+            exclude_if=lambda units: units is None,
+        ),
+    ] = None
 
     @property
     def is_weekly(self) -> bool:
-        return isinstance(self.demand, WeeklyDistribution) or isinstance(
-            self.replenishment, WeeklyDistribution
+        return any(
+            isinstance(value, WeeklyDistribution | WeeklyCount)
+            for value in (
+                self.demand,
+                self.replenishment,
+                self.keep_at_least,
+                self.max_units_out,
+                self.max_units_in,
+            )
         )
+
+    @property
+    def has_rules(self) -> bool:
+        """Whether a floor or a handling limit applies on some night."""
+        return (
+            self.keep_at_least != 0
+            or self.max_units_out is not None
+            or self.max_units_in is not None
+        )
+
+    def keep_at_least_on(self, weekday: int) -> int:
+        """Floor on the evening of business day `weekday` (0 = Monday), units."""
+        units: int = _on(self.keep_at_least, weekday)
+        return units
+
+    def max_units_out_on(self, weekday: int) -> int | None:
+        """Most units sent on the evening of business day `weekday`; None without a limit."""
+        units: int | None = _on(self.max_units_out, weekday)
+        return units
+
+    def max_units_in_on(self, weekday: int) -> int | None:
+        """Most units received on the evening of business day `weekday`; None without a limit."""
+        units: int | None = _on(self.max_units_in, weekday)
+        return units
 
     def demand_on(self, weekday: int) -> Distribution:
         """The demand law of business day `weekday` (0 = Monday)."""
@@ -267,6 +351,15 @@ class LaneSpec(_Strict):
     from_: Annotated[_LocationId, Field(alias="from")]
     to: _LocationId
     unit_cost: Annotated[_Amount, Field(description="Cost of moving one unit along the lane.")]
+    dispatch_cost: Annotated[
+        _Amount,
+        Field(
+            description="Fixed cost paid once on a night the lane moves one unit or more, on "
+            "top of unit_cost (a truck and a driver).",
+            # Left out at its default: see LocationSpec.keep_at_least.
+            exclude_if=lambda cost: cost == 0,
+        ),
+    ] = 0.0
     max_units: Annotated[
         LaneLimit,
         Field(
@@ -340,6 +433,15 @@ class NetworkSpec(_Strict):
                 )
             else:
                 first_index[location.id] = i
+            floors = [location.keep_at_least_on(day) for day in range(len(WEEKDAYS))]
+            if max(floors) > location.capacity:
+                night = WEEKDAYS[floors.index(max(floors))]
+                which = "" if isinstance(location.keep_at_least, int) else f" on {night}"
+                problem(
+                    ("locations", i, "keep_at_least"),
+                    f"keep_at_least{which} ({max(floors)}) exceeds the capacity "
+                    f"({location.capacity}) of location {location.id!r}",
+                )
 
         seen_lanes: dict[tuple[str, str], int] = {}
         for j, lane in enumerate(self.lanes):
@@ -368,8 +470,22 @@ class NetworkSpec(_Strict):
 
     @property
     def is_periodic(self) -> bool:
-        """Whether some demand, replenishment or lane limit depends on the weekday, so that the
-        optimal policy does too (seven phases instead of one)."""
+        """Whether some demand, replenishment, lane limit, floor or handling limit depends on the
+        weekday, so that the optimal policy does too (seven phases instead of one)."""
         return any(loc.is_weekly for loc in self.locations) or any(
             lane.is_weekly for lane in self.lanes
         )
+
+    @property
+    def has_rules(self) -> bool:
+        """Whether some location has a floor or a handling limit."""
+        return any(loc.has_rules for loc in self.locations)
+
+    def without_rules(self) -> NetworkSpec:
+        """The same network with every floor and handling limit removed (dispatch costs kept):
+        what the rules cost is the difference between the two."""
+        document = self.model_dump(mode="json", by_alias=True)
+        for location in document["locations"]:
+            for name in ("keep_at_least", "max_units_out", "max_units_in"):
+                location.pop(name, None)
+        return NetworkSpec.model_validate(document)

@@ -82,7 +82,15 @@ def network_out(
 def transfers_of(result: StoredPolicy, flows: tuple[int, ...]) -> list[TransferOut]:
     ids = result.location_ids
     return [
-        TransferOut(from_=ids[a], to=ids[b], units=units, unit_cost=float(result.lane_costs[lane]))
+        TransferOut(
+            from_=ids[a],
+            to=ids[b],
+            units=units,
+            unit_cost=float(result.lane_costs[lane]),
+            dispatch_cost=0.0
+            if isinstance(result, PricedPolicy)
+            else float(result.dispatch_costs[lane]),
+        )
         for lane, ((a, b), units) in enumerate(zip(result.lanes, flows, strict=True))
         if units > 0
     ]

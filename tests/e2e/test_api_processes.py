@@ -36,7 +36,13 @@ def expected_body(spec: NetworkSpec, result: PolicyResult, stock: list[int]) -> 
     return {
         "stock": dict(zip(ids, stock, strict=True)),
         "transfers": [
-            {"from": lane.from_, "to": lane.to, "units": units, "unit_cost": lane.unit_cost}
+            {
+                "from": lane.from_,
+                "to": lane.to,
+                "units": units,
+                "unit_cost": lane.unit_cost,
+                "dispatch_cost": lane.dispatch_cost,
+            }
             for lane, units in zip(spec.lanes, recommendation.flows, strict=True)
             if units > 0
         ],

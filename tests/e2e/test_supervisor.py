@@ -136,7 +136,7 @@ def test_ctrl_c_stops_the_api_and_worker_after_the_printed_example_works(
     )
     assert response.status_code == 200, response.text
     assert response.json()["transfers"] == [
-        {"from": "riverside", "to": "hilltop", "units": 3, "unit_cost": 4.25}
+        {"from": "riverside", "to": "hilltop", "units": 3, "unit_cost": 4.25, "dispatch_cost": 0.0}
     ]
 
     os.killpg(run.process.pid, signal.SIGINT)  # what the terminal does on Ctrl-C

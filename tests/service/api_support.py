@@ -139,7 +139,13 @@ def expected_transfers(result: PolicyResult, recommendation: Recommendation) -> 
     """The transfers of an in-process recommendation, in the API's shape."""
     ids = result.location_ids
     return [
-        {"from": ids[a], "to": ids[b], "units": units, "unit_cost": float(result.lane_costs[lane])}
+        {
+            "from": ids[a],
+            "to": ids[b],
+            "units": units,
+            "unit_cost": float(result.lane_costs[lane]),
+            "dispatch_cost": float(result.dispatch_costs[lane]),
+        }
         for lane, ((a, b), units) in enumerate(zip(result.lanes, recommendation.flows, strict=True))
         if units > 0
     ]

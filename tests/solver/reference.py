@@ -8,8 +8,12 @@ solver/build.py and solver/model.py:
     y_i  = s_i - out_i(f) + in_i(f)            post-move stock, feasible iff 0 <= out_i <= s_i and
                                                y_i <= C_i for every i, and total units <= the
                                                network's units-per-night limit
+                                               rules (solver/spec.py's field descriptions):
+                                               out_i > 0 only if y_i >= keep_at_least_i;
+                                               out_i <= max_units_out_i, in_i <= max_units_in_i
     s'_i = min(y_i - min(D_i, y_i) + R_i, C_i) independent across locations
-    r    = sum_i [m_i E min(D_i, y_i) - h_i y_i - p_i E (D_i - y_i)^+] - sum_l c_l f_l
+    r    = sum_i [m_i E min(D_i, y_i) - h_i y_i - p_i E (D_i - y_i)^+]
+           - sum_l (c_l f_l + F_l [f_l > 0])     F_l the lane's dispatch cost
 
 The result is a state-action pair MDP in the form quantecon's DiscreteDP takes
 (R, Q, beta, s_indices, a_indices), with actions numbered by their row in the full flow table.
@@ -63,12 +67,14 @@ __all__ = [
     "count_atoms",
     "day_value",
     "location_rewards_by_summation",
+    "location_rules",
     "location_transition_by_enumeration",
     "make_network",
     "rounding_slack",
     "scipy_law",
     "solve_reference",
     "stationary_gain",
+    "weekdays_of",
 ]
 
 # Agreement with the reference, in currency units.
@@ -99,7 +105,17 @@ def day_value(value: Any, day: int) -> Any:
 
 def weekdays_of(spec: NetworkSpec) -> int:
     """7 when some field of `spec` is weekly, else 1."""
-    fields: list[Any] = [f for loc in spec.locations for f in (loc.demand, loc.replenishment)]
+    fields: list[Any] = [
+        f
+        for loc in spec.locations
+        for f in (
+            loc.demand,
+            loc.replenishment,
+            loc.keep_at_least,
+            loc.max_units_out,
+            loc.max_units_in,
+        )
+    ]
     fields += [lane.max_units for lane in spec.lanes]
     return 7 if any(hasattr(f, "weekly") for f in fields) else 1
 
@@ -171,7 +187,8 @@ class ReferenceMDP:
 
     states: shape (D * S, N), closing stocks in row-major order (location 0 slowest), repeated
         for each of the D weekdays of a weekly network (D = 1 otherwise).
-    flows: shape (A, L), every integer flow vector within the lane and units-per-night limits.
+    flows: shape (A, L), every integer flow vector within the lane and units-per-night limits
+        (handling limits and floors are applied per pair, not here).
     s_indices, a_indices: shape (P,), the feasible (state, flow row) pairs, sorted.
     rewards: shape (P,), expected one-day profit of each pair, currency units.
     transitions: shape (P, S), next-state probabilities of each pair.
@@ -263,7 +280,24 @@ def all_flows(
         incidence_out[lane_number, index[lane.from_]] = 1
         incidence_in[lane_number, index[lane.to]] = 1
     costs: NDArray[np.float64] = flows @ np.array([lane.unit_cost for lane in spec.lanes])
+    # A dispatch cost is paid once per lane used, whatever the units.
+    costs += (flows > 0) @ np.array([lane.dispatch_cost for lane in spec.lanes])
     return flows, flows @ incidence_out, flows @ incidence_in, costs
+
+
+def location_rules(spec: NetworkSpec, day: int) -> tuple[NDArray[np.int64], ...]:
+    """Floors, most units sent and most units received on night `day`, shapes (N,) each; a
+    missing handling limit is a bound no flow reaches."""
+    unlimited = 10**9
+
+    def limit(value: Any) -> int:
+        return unlimited if value is None else int(day_value(value, day))
+
+    return (
+        np.array([day_value(loc.keep_at_least, day) for loc in spec.locations], dtype=np.int64),
+        np.array([limit(loc.max_units_out) for loc in spec.locations], dtype=np.int64),
+        np.array([limit(loc.max_units_in) for loc in spec.locations], dtype=np.int64),
+    )
 
 
 def build_reference(spec: NetworkSpec) -> ReferenceMDP:
@@ -279,13 +313,19 @@ def build_reference(spec: NetworkSpec) -> ReferenceMDP:
     flows, sent, received, costs = all_flows(spec)
     limits = lane_limits(spec)
     post = stocks[:, None, :] - sent[None, :, :] + received[None, :, :]
-    fits = np.all((sent[None, :, :] <= stocks[:, None, :]) & (post <= capacities), axis=2)
+    within = (sent[None, :, :] <= stocks[:, None, :]) & (post <= capacities)
     laws: dict[str, NDArray[np.float64]] = {}
     parts: list[tuple[NDArray[np.int64], NDArray[np.int64], Any, NDArray[np.float64]]] = []
     for d in range(days):
         # Tonight is night d; tomorrow is weekday d + 1, and so is the next closing count.
         tomorrow = (d + 1) % days
-        allowed = np.all(flows <= limits[d], axis=1)
+        floors, most_out, most_in = location_rules(spec, d)
+        fits = np.all(within & ((sent[None, :, :] == 0) | (post >= floors)), axis=2)
+        allowed = (
+            np.all(flows <= limits[d], axis=1)
+            & np.all(sent <= most_out, axis=1)
+            & np.all(received <= most_in, axis=1)
+        )
         s_indices, a_indices = np.nonzero(fits & allowed)  # sorted by state then flow
         post_stock = post[s_indices, a_indices]
         post_flat = np.ravel_multi_index(tuple(post_stock.T), tuple(int(c) + 1 for c in capacities))

@@ -49,7 +49,7 @@ def test_witness_agrees_with_quantecon_recurrent_classes(
     rng = np.random.default_rng(seed)
     table = ActionTable.of(model)
     action = np.zeros(model.n_states, dtype=np.int64)
-    for k, (states, _) in enumerate(table.boxes):
+    for k, (states, _) in enumerate(table.boxes[0]):
         mask = np.zeros(model.shape, dtype=bool)
         mask[states] = True
         pick = mask.reshape(-1) & (rng.random(model.n_states) < 0.4)

@@ -64,15 +64,30 @@ def four_hire_depots() -> NetworkSpec:
     )
 
 
+def four_hire_depots_with_rules() -> NetworkSpec:
+    """The four depots with a floor at the quay, handling limits at the market and the works,
+    and a van that costs 3 a night on two lanes."""
+    document = four_hire_depots().model_dump(mode="json", by_alias=True)
+    document["locations"][0]["keep_at_least"] = 2
+    document["locations"][1]["max_units_in"] = 1
+    document["locations"][2]["max_units_out"] = 1
+    document["lanes"][0]["dispatch_cost"] = 3.0
+    document["lanes"][3]["dispatch_cost"] = 3.0
+    return NetworkSpec.model_validate(document)
+
+
 class TestFeasibility:
-    @pytest.mark.parametrize("network", [three_bike_shops, four_hire_depots])
+    @pytest.mark.parametrize(
+        "network", [three_bike_shops, four_hire_depots, four_hire_depots_with_rules]
+    )
     def test_every_rule_sends_a_feasible_flow_at_every_stock(self, network: object) -> None:
         spec = network()  # type: ignore[operator]
         reference = build_reference(spec)
         stocks = every_stock(spec)
         for plan in (do_nothing_plan(spec), balance_cover_plan(spec), pairwise_index_plan(spec)):
             # Reference: pair_indices asserts that each flow is one of the brute-force MDP's
-            # feasible flows at its stock (lane and nightly limits, stock on hand, capacity).
+            # feasible flows at its stock (lane, nightly and handling limits, stock on hand,
+            # capacity, floors).
             reference.pair_indices(plan(stocks, 0))
 
     def test_do_nothing_never_moves(self) -> None:

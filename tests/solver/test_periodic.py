@@ -524,7 +524,7 @@ class TestUnichain:
         for d in range(7):
             for k in table.phase_flows[d]:
                 mask = np.zeros(model.shape, dtype=bool)
-                mask[table.boxes[k][0]] = True
+                mask[table.boxes[d][k][0]] = True
                 action[d, mask.reshape(-1) & (rng.random(model.n_states) < 0.4)] = k
         post = table.post_move_index(action)
 

@@ -26,6 +26,14 @@ def table_plan(result: PolicyResult) -> PlanFunction:
     return plan
 
 
+def dispatched(spec: NetworkSpec, *, unit_cost: float, dispatch_cost: float) -> NetworkSpec:
+    """`spec` with every lane at these unit and dispatch costs."""
+    document = spec.model_dump(mode="json", by_alias=True)
+    for lane in document["lanes"]:
+        lane.update(unit_cost=unit_cost, dispatch_cost=dispatch_cost)
+    return NetworkSpec.model_validate(document)
+
+
 @pytest.mark.parametrize(
     "spec",
     [
@@ -46,8 +54,9 @@ def table_plan(result: PolicyResult) -> PlanFunction:
                 },
             ),
         ),
+        dispatched(two_stores(capacities=(9, 7)), unit_cost=0.5, dispatch_cost=2.0),
     ],
-    ids=["stationary", "weekly"],
+    ids=["stationary", "weekly", "dispatch-cost"],
 )
 def test_a_table_policy_as_a_plan_matches_the_table_simulation(spec: NetworkSpec) -> None:
     result = solve_network(spec)
@@ -68,11 +77,25 @@ def test_a_table_policy_as_a_plan_matches_the_table_simulation(spec: NetworkSpec
     )
     for name in ("optimal", "do_nothing"):
         table, plan = tables.outcome(name), plans.outcome(name)
-        for field in ("profit_per_day", "fill_rate", "stockout_days", "units_moved_per_night"):
+        fields = (
+            "profit_per_day",
+            "fill_rate",
+            "stockout_days",
+            "units_moved_per_night",
+            "move_cost_per_day",
+        )
+        for field in fields:
             expected, got = getattr(table, field), getattr(plan, field)
             assert got.mean == pytest.approx(expected.mean, rel=1e-12, abs=1e-12)
             assert got.low == pytest.approx(expected.low, rel=1e-9, abs=1e-9)
     assert plans.start_stock == tables.start_stock
+    moved = plans.outcome("optimal")
+    unit_costs = {lane.unit_cost for lane in spec.lanes}
+    if any(lane.dispatch_cost for lane in spec.lanes):
+        # Every night a lane is used costs its dispatch on top of the units.
+        [unit_cost] = unit_costs
+        assert moved.units_moved_per_night.mean > 0
+        assert moved.move_cost_per_day.mean > unit_cost * moved.units_moved_per_night.mean
 
 
 def test_infeasible_plans_are_refused() -> None:
