@@ -40,6 +40,7 @@ from service.schemas import MAX_SEED, Overrides, SimulationRequest
 from solver import (
     Criterion,
     InvalidModelError,
+    ModelTooLargeError,
     NetworkSpec,
     PolicyResult,
     ProgressCallback,
@@ -234,7 +235,14 @@ def run_simulation(
     compare_rules = params.compare_without_rules and spec.has_rules
     if compare_rules:
         simulated_spec = spec.without_rules()
-        simulated_model = build_transfer_model(simulated_spec, limits)
+        try:
+            simulated_model = build_transfer_model(simulated_spec, limits)
+        except ModelTooLargeError as exc:  # the rules kept the network within the limits
+            notes.append(
+                f"{WITHOUT_RULES} left out: without its rules the network is too large: {exc}"
+            )
+            simulated_spec, simulated_model, compare_rules = spec, model, False
+    if compare_rules:
         rows = _rows_in(model, simulated_model)
         policies = {name: rows[table] for name, table in policies.items()}
         policies[WITHOUT_RULES] = solve_policy_iteration(

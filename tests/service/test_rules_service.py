@@ -18,9 +18,11 @@ import pytest
 from fastapi.testclient import TestClient
 from sqlalchemy import Engine
 
+from service.analysis import run_simulation
 from service.codec import decode_policy, encode_policy
 from service.pictures import choose_plane, net_inflow_grid
-from solver import NetworkSpec, PolicyResult, solve_network
+from service.schemas import SimulationRequest
+from solver import NetworkSpec, PolicyResult, SizeLimits, solve_network
 from tests.service.api_support import (
     assert_problem,
     create_network,
@@ -286,3 +288,16 @@ def test_simulation_reports_what_the_floor_costs_and_protects(
     assert "optimal_without_rules" not in [
         p["name"] for p in plain_job.json()["report"]["policies"]
     ]
+
+
+def test_a_simulation_leaves_out_the_unruled_policy_when_the_rules_kept_it_small() -> None:
+    document = ruled_document()
+    for location in document["locations"]:
+        location["max_units_out"] = 0  # no moves at all: one transfer option per stock
+    spec = NetworkSpec.model_validate(document)
+    limits = SizeLimits(max_pairs=15 * 10)
+    request = SimulationRequest(criterion="discounted", days=20, replications=5, seed=1)
+    report = run_simulation(spec, request, limits=limits)
+    assert [p["name"] for p in report["policies"]] == ["optimal", "do_nothing", "balance_cover"]
+    assert report["rules"] is None
+    assert any("optimal_without_rules left out" in note for note in report["notes"])
