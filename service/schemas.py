@@ -787,10 +787,16 @@ class PolicySimulationOut(BaseModel):
 
 
 class LocationRulesEffectOut(BaseModel):
-    fill_rate_with_rules: IntervalOut
-    fill_rate_without_rules: IntervalOut
+    fill_rate_with_rules: IntervalOut = Field(
+        description="Units sold / units demanded at the location, keeping the rules."
+    )
+    fill_rate_without_rules: IntervalOut = Field(
+        description="The same with the network's floors and handling limits removed."
+    )
     stockout_days_with_rules: IntervalOut = Field(description="Fraction of days with lost sales.")
-    stockout_days_without_rules: IntervalOut
+    stockout_days_without_rules: IntervalOut = Field(
+        description="Fraction of days with lost sales, without the rules."
+    )
 
 
 class RulesEffectOut(BaseModel):
@@ -801,7 +807,9 @@ class RulesEffectOut(BaseModel):
         description="Profit per day given up by keeping the rules: the optimal policy without "
         "them minus the optimal policy with them, paired by replication (>= 0 up to noise)."
     )
-    by_location: dict[str, LocationRulesEffectOut]
+    by_location: dict[str, LocationRulesEffectOut] = Field(
+        description="Per location: fill rate and stock-out days with and without the rules."
+    )
 
 
 class SimulationReportOut(BaseModel):
@@ -881,7 +889,9 @@ class LaneOverride(LaneRef):
     """New values for an existing lane, named by its ends."""
 
     unit_cost: Annotated[float, Field(ge=0, allow_inf_nan=False)] | None = None
-    dispatch_cost: Annotated[float, Field(ge=0, allow_inf_nan=False)] | None = None
+    dispatch_cost: Annotated[float, Field(ge=0, allow_inf_nan=False)] | None = Field(
+        default=None, description="New cost per night the lane is used; absent: unchanged."
+    )
     max_units: Annotated[int, Field(ge=1, le=10_000)] | None = None
 
 
