@@ -28,6 +28,7 @@ from solver import (
     InvalidStockError,
     NetworkSpec,
     PolicyResult,
+    PricedPolicy,
     Progress,
     Recommendation,
     SizeLimits,
@@ -469,7 +470,7 @@ def _solve(args: argparse.Namespace) -> int:
     operations.load_settings().limit_blas_threads()
     try:
         if resolve_method(spec, args.mode, SizeLimits()) == "priced":
-            return _solve_priced(args, spec)
+            return _solve_priced(args, spec, stock)
         result = solve_network(
             spec, criterion=args.criterion, method=args.method, progress=ProgressLines()
         )
@@ -481,7 +482,9 @@ def _solve(args: argparse.Namespace) -> int:
     return 0 if result.converged else 1
 
 
-def _solve_priced(args: argparse.Namespace, spec: NetworkSpec) -> int:
+def _solve_priced(
+    args: argparse.Namespace, spec: NetworkSpec, stock: tuple[int, ...] | None
+) -> int:
     try:
         policy = solve_priced(spec, criterion=args.criterion, progress=priced.progress_printer())
         document = None if args.out is None else priced.priced_result_document(spec, policy)
@@ -489,7 +492,11 @@ def _solve_priced(args: argparse.Namespace, spec: NetworkSpec) -> int:
         raise UsageError(f"{args.network}: {exc}") from exc
     if document is not None:
         write_json_atomically(args.out, document)
-    sys.stdout.write(priced.priced_summary(spec, policy))
+    lines = _representative_moves(spec, policy)
+    if stock is not None:
+        lines.extend(_moves_from(spec, policy, stock))
+    lines += ["", CAUTION]
+    sys.stdout.write(priced.priced_summary(spec, policy) + "\n".join(lines) + "\n")
     return 0 if policy.converged else 1
 
 
@@ -655,7 +662,7 @@ def _describe_stock(spec: NetworkSpec, stock: Sequence[int]) -> str:
     return ", ".join(f"{loc} {units}" for loc, units in zip(spec.location_ids, stock, strict=True))
 
 
-def _representative_moves(spec: NetworkSpec, result: PolicyResult) -> list[str]:
+def _representative_moves(spec: NetworkSpec, result: PolicyResult | PricedPolicy) -> list[str]:
     """Tonight's moves when every location is half full, and when each one in turn is full
     while the others are empty (the first night of the week for a weekly network)."""
     capacities = result.capacities
@@ -670,7 +677,9 @@ def _representative_moves(spec: NetworkSpec, result: PolicyResult) -> list[str]:
     return lines
 
 
-def _moves_from(spec: NetworkSpec, result: PolicyResult, stock: tuple[int, ...]) -> list[str]:
+def _moves_from(
+    spec: NetworkSpec, result: PolicyResult | PricedPolicy, stock: tuple[int, ...]
+) -> list[str]:
     """Tonight's moves from `stock`, for each night of the week of a weekly network."""
     try:
         result.state_index(stock)

@@ -24,7 +24,7 @@ from sqlalchemy import Engine, select, update
 from sqlalchemy.orm import Session, sessionmaker
 
 from service import worker as worker_module
-from service.cli import main
+from service.cli import CAUTION, main
 from service.codec import decode_policy, encode_policy
 from service.db import repository
 from service.db.tables import Network, NetworkVersion, Policy, SolveJob
@@ -456,10 +456,17 @@ def test_cli_priced_solve_writes_plan_value_and_bound_at_every_state(
     network = tmp_path / "network.json"
     network.write_text(json.dumps(demo_document()))
     out = tmp_path / "result.json"
-    code = main(["solve", str(network), "--mode", "priced", "--out", str(out)])
+    code = main(
+        ["solve", str(network), "--mode", "priced", "--out", str(out)]
+        + ["--stock", "riverside=14,hilltop=0"]
+    )
     captured = capsys.readouterr()
     assert code == 0, captured.err
     assert "certified" in captured.out and "pricing: iteration" in captured.err
+    # Like an exact solve, the summary shows moves and ends with the caution.
+    assert "from closing stock riverside 14, hilltop 0:" in captured.out
+    assert "riverside -> hilltop" in captured.out
+    assert captured.out.rstrip().endswith(CAUTION)
     document = json.loads(out.read_text())
     contract = {"network", "criterion", "states", "lanes", "value", "policy", "gain"}
     assert contract | {"iterations", "residual", "seconds", "certificate"} <= set(document)
