@@ -22,6 +22,10 @@ policy iteration) and by prices; bound slack = (bound - optimal value) / mean |o
 (median and largest over all stock states), policy loss = (optimal value - the plan's exact
 value) / mean |optimal value| (median and largest).
 
+Recommendations through the API: the 12-store network posted in auto mode to the app on a
+scratch SQLite database (in process, FastAPI's TestClient), solved by the worker, then 300
+recommendations at random closing stocks; p50 and p95 latency (milliseconds).
+
 A table goes to stdout and everything to JSON (default benchmarks/results/priced.json) through
 the shared writer of benchmarks/solve.py. BLAS runs single-threaded, as in benchmarks/solve.py.
 Everything runs in one process: pricing takes a few seconds in all (each store's subproblem
@@ -37,7 +41,9 @@ os.environ["OMP_NUM_THREADS"] = "1"
 os.environ["MKL_NUM_THREADS"] = "1"
 
 import argparse
+import json
 import sys
+import tempfile
 import time
 from collections.abc import Sequence
 from pathlib import Path
@@ -48,8 +54,16 @@ import numpy as np
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
 import solve  # machine facts, revision and the shared JSON writer
+from fastapi.testclient import TestClient
 from networks import large_network
 
+from service.auth import create_key
+from service.db.migrate import upgrade
+from service.db.repository import get_or_create_tenant
+from service.db.session import make_engine, make_session_factory
+from service.main import create_app
+from service.settings import Settings
+from service.worker import Worker
 from solver import NetworkSpec, PricedPolicy, solve_network
 from solver.heuristics import balance_cover_plan, do_nothing_plan, pairwise_index_plan
 from solver.priced import evaluate_plan_exactly, solve_priced
@@ -151,6 +165,45 @@ def run_baselines(spec: NetworkSpec, policy: PricedPolicy) -> dict[str, Any]:
     }
 
 
+def run_api(spec: NetworkSpec, requests: int = 300) -> dict[str, Any]:
+    """Recommendation latency of a priced network through the API (module docs)."""
+    with tempfile.TemporaryDirectory() as folder:
+        url = f"sqlite:///{folder}/priced.db"
+        engine = make_engine(url)
+        upgrade(engine)
+        settings = Settings(database_url=url, poll_interval=0.01)
+        factory = make_session_factory(engine)
+        with factory.begin() as session:
+            key = create_key(session, get_or_create_tenant(session, "bench"), "write")[1]
+        with TestClient(create_app(settings)) as client:
+            client.headers["Authorization"] = f"Bearer {key}"
+            document = json.loads(spec.model_dump_json(by_alias=True)) | {"mode": "auto"}
+            created = client.post("/v1/networks", json=document)
+            assert created.status_code == 201, created.text
+            started = time.perf_counter()
+            Worker(settings, factory, "bench").run(until_idle=True)
+            solve_seconds = time.perf_counter() - started
+            path = f"/v1/networks/{created.json()['id']}/recommendation"
+            rng = np.random.default_rng(0)
+            seconds = []
+            for _ in range(requests):
+                stock = {loc.id: int(rng.integers(0, loc.capacity + 1)) for loc in spec.locations}
+                started = time.perf_counter()
+                answer = client.post(path, json={"stock": stock})
+                seconds.append(time.perf_counter() - started)
+                assert answer.status_code == 200 and answer.json()["method"] == "priced"
+        engine.dispose()
+    ms = np.array(seconds) * 1000.0
+    return {
+        "name": spec.name,
+        "requests": requests,
+        "solve_seconds": solve_seconds,
+        "p50_ms": float(np.percentile(ms, 50)),
+        "p95_ms": float(np.percentile(ms, 95)),
+        "target_p50_ms": 20.0,
+    }
+
+
 def run_small(stores: int, capacity: int, neighbours: int | None, seed: int) -> dict[str, Any]:
     spec = large_network(stores, capacity, seed, neighbours=neighbours, discount=0.97)
     exact = solve_network(spec)
@@ -246,6 +299,13 @@ def main(argv: Sequence[str] | None = None) -> int:
                 f"{outcome['fill_rate']:>7.2%} {outcome['units_moved_per_night']:>6.1f}",
                 flush=True,
             )
+    api = run_api(solved[0][1])
+    print()
+    print(
+        f"recommendations through the API ({api['name']}): p50 {api['p50_ms']:.1f} ms, "
+        f"p95 {api['p95_ms']:.1f} ms over {api['requests']} requests (target p50 <= 20 ms); "
+        f"worker solve {api['solve_seconds']:.1f} s"
+    )
     print()
     print(
         f"{'network':<18} {'lanes':>5} {'states':>9} {'exact s':>8} {'priced s':>8} "
@@ -267,6 +327,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         "revision": solve.solver_revision(),
         "large": large,
         "baselines": baselines,
+        "api": api,
         "small": small,
     }
     solve.write_report(args.out, report)
