@@ -248,12 +248,7 @@ def run_simulation(
         policies[WITHOUT_RULES] = solve_policy_iteration(
             simulated_model, criterion=params.criterion
         ).action
-    seed = new_seed() if params.seed is None else params.seed
-    start = (
-        None
-        if params.start_stock is None
-        else [params.start_stock[location] for location in spec.location_ids]
-    )
+    seed, start = _seed_and_start(spec, params)
     report = simulate_policies(
         simulated_spec,
         simulated_model,
@@ -266,20 +261,8 @@ def run_simulation(
         reference=REFERENCE,
         confidence=CONFIDENCE,
     )
-    document = {
-        "criterion": params.criterion,
-        "days": report.days,
-        "replications": report.replications,
-        "warmup_days": report.warmup_days,
-        "seed": seed,
-        "confidence": report.confidence,
-        "start_stock": dict(zip(report.location_ids, report.start_stock, strict=True)),
-        "optimal_source": source,
-        "policies": [_outcome(outcome) for outcome in report.outcomes],
-        "rules": _rules_effect(report) if compare_rules else None,
-        "notes": notes,
-    }
-    return _require_finite(document, "")
+    rules = _rules_effect(report) if compare_rules else None
+    return _report_document(params, report, seed, source, notes, REFERENCE, rules)
 
 
 def _plan_of(policy: PricedPolicy) -> Plan:
@@ -305,12 +288,7 @@ def _run_priced_simulation(
     ):
         policy = solve_priced(spec, criterion=params.criterion)
         source = "solved"
-    seed = new_seed() if params.seed is None else params.seed
-    start = (
-        None
-        if params.start_stock is None
-        else [params.start_stock[location] for location in spec.location_ids]
-    )
+    seed, start = _seed_and_start(spec, params)
     plans: dict[str, Plan] = {
         PRICED_REFERENCE: _plan_of(policy),
         "do_nothing": do_nothing_plan(spec),
@@ -338,6 +316,27 @@ def _run_priced_simulation(
         reference=PRICED_REFERENCE,
         confidence=CONFIDENCE,
     )
+    return _report_document(params, report, seed, source, notes, PRICED_REFERENCE)
+
+
+def _seed_and_start(spec: NetworkSpec, params: SimulationRequest) -> tuple[int, list[int] | None]:
+    """The run's seed (a new one unless given) and its start stock in network order."""
+    seed = new_seed() if params.seed is None else params.seed
+    if params.start_stock is None:
+        return seed, None
+    return seed, [params.start_stock[location] for location in spec.location_ids]
+
+
+def _report_document(
+    params: SimulationRequest,
+    report: SimulationReport,
+    seed: int,
+    source: str,
+    notes: list[str],
+    reference: str,
+    rules: dict[str, Any] | None = None,
+) -> dict[str, Any]:
+    """A simulation's report as stored with its job and answered over HTTP."""
     document = {
         "criterion": params.criterion,
         "days": report.days,
@@ -347,7 +346,8 @@ def _run_priced_simulation(
         "confidence": report.confidence,
         "start_stock": dict(zip(report.location_ids, report.start_stock, strict=True)),
         "optimal_source": source,
-        "policies": [_outcome(outcome, PRICED_REFERENCE) for outcome in report.outcomes],
+        "policies": [_outcome(outcome, reference) for outcome in report.outcomes],
+        "rules": rules,
         "notes": notes,
     }
     return _require_finite(document, "")
