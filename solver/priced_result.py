@@ -18,7 +18,13 @@ import numpy as np
 from numpy.typing import NDArray
 
 from solver.errors import InvalidStockError
-from solver.result import Alternative, Criterion, Recommendation
+from solver.result import (
+    Alternative,
+    Criterion,
+    Recommendation,
+    check_stock,
+    phase_of_weekday,
+)
 from solver.transfer_plan import PlanNetwork, concave_envelope, plan_flows
 
 __all__ = ["Certificate", "PricedOptions", "PricedPolicy", "PricedProgress"]
@@ -175,21 +181,10 @@ class PricedPolicy:
 
     def phase_of(self, weekday: int) -> int:
         """The phase of a closing count on this weekday (0 = Monday), as PolicyResult."""
-        if not 0 <= weekday <= 6:
-            raise ValueError(f"weekday must be 0 (Monday) to 6 (Sunday), got {weekday}")
-        return weekday % self.phases
+        return phase_of_weekday(weekday, self.phases)
 
     def _check_stock(self, stock: Sequence[int] | NDArray[np.int64]) -> NDArray[np.int64]:
-        if len(stock) != len(self.capacities):
-            raise InvalidStockError(
-                f"expected stock for {len(self.capacities)} locations, got {len(stock)}"
-            )
-        for location, units, capacity in zip(
-            self.location_ids, stock, self.capacities, strict=True
-        ):
-            if not 0 <= units <= capacity:
-                raise InvalidStockError(f"stock at {location!r} is {units}, outside 0..{capacity}")
-        return np.array([int(u) for u in stock], dtype=np.int64)
+        return check_stock(self.location_ids, self.capacities, [int(u) for u in stock])
 
     def state_index(self, stock: Sequence[int]) -> int:
         """Flat row-major index of a closing stock (a Python int); InvalidStockError when it does

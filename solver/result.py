@@ -43,6 +43,28 @@ class Progress:
 ProgressCallback = Callable[[Progress], None]
 
 
+def check_stock(
+    location_ids: Sequence[str], capacities: Sequence[int], stock: Sequence[int]
+) -> NDArray[np.int64]:
+    """`stock` (units per location, in network order) as an array; InvalidStockError when it
+    has the wrong length or a count outside 0..capacity."""
+    if len(stock) != len(capacities):
+        raise InvalidStockError(f"expected stock for {len(capacities)} locations, got {len(stock)}")
+    for location, units, capacity in zip(location_ids, stock, capacities, strict=True):
+        if not 0 <= units <= capacity:
+            raise InvalidStockError(f"stock at {location!r} is {units}, outside 0..{capacity}")
+    return np.array([int(u) for u in stock], dtype=np.int64)
+
+
+def phase_of_weekday(weekday: int, phases: int) -> int:
+    """The phase of a closing count whose business date has this weekday (0 = Monday .. 6 =
+    Sunday, as datetime.date.weekday()): the weekday itself for a weekly policy (7 phases), 0
+    for a stationary one."""
+    if not 0 <= weekday <= 6:
+        raise ValueError(f"weekday must be 0 (Monday) to 6 (Sunday), got {weekday}")
+    return weekday % phases
+
+
 @dataclass(frozen=True)
 class Alternative:
     """Another feasible set of moves tonight and its value (same units as the recommendation)."""
@@ -139,9 +161,7 @@ class PolicyResult:
         """The phase whose policy applies to a closing count of a business date with this
         weekday (0 = Monday .. 6 = Sunday, as datetime.date.weekday()): the weekday itself for a
         weekly policy, 0 for a stationary one."""
-        if not 0 <= weekday <= 6:
-            raise ValueError(f"weekday must be 0 (Monday) to 6 (Sunday), got {weekday}")
-        return weekday % self.phases
+        return phase_of_weekday(weekday, self.phases)
 
     def policy_flows(self) -> NDArray[np.int64]:
         """Units per lane in every phase and state, shape (P, S, L)."""
@@ -149,16 +169,8 @@ class PolicyResult:
 
     def state_index(self, stock: Sequence[int]) -> int:
         """Flat index of a closing stock; InvalidStockError when it does not fit the network."""
-        if len(stock) != len(self.capacities):
-            raise InvalidStockError(
-                f"expected stock for {len(self.capacities)} locations, got {len(stock)}"
-            )
-        for location, units, capacity in zip(
-            self.location_ids, stock, self.capacities, strict=True
-        ):
-            if not 0 <= units <= capacity:
-                raise InvalidStockError(f"stock at {location!r} is {units}, outside 0..{capacity}")
-        return int(np.ravel_multi_index(tuple(int(u) for u in stock), self.shape))
+        checked = check_stock(self.location_ids, self.capacities, stock)
+        return int(np.ravel_multi_index(tuple(int(u) for u in checked), self.shape))
 
     def recommend(
         self, stock: Sequence[int], *, phase: int = 0, n_alternatives: int = 3
