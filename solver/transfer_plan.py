@@ -366,7 +366,7 @@ def _plan(
     while active.size:
         y, st, f, lim = post[active], stay[active], flows[active], limits[active]
         lo, keep, most = floors[active], low_stay[active], most_in[active]
-        c = unit_costs[active]
+        lane_cost = unit_costs[active]
         inn = f @ into  # (b, N) units received so far
         b = active.size
         rows = np.arange(b)[:, None]
@@ -378,11 +378,11 @@ def _plan(
         open_in = inn < most
         forward = np.full((b, n, n), np.inf)
         forward[:, network.lane_from, network.lane_to] = np.where(
-            (f < lim) & open_in[:, network.lane_to], c, np.inf
+            (f < lim) & open_in[:, network.lane_to], lane_cost, np.inf
         )
         forward[:, diagonal, diagonal] = 0.0
         backward = np.full((b, n, n), np.inf)
-        backward[:, network.lane_from, network.lane_to] = np.where(f > 0, -c, np.inf)
+        backward[:, network.lane_from, network.lane_to] = np.where(f > 0, -lane_cost, np.inf)
         backward[:, diagonal, diagonal] = np.where(st > keep, 0.0, np.inf)
         dist_y = loss.copy()
         dist_o = np.full((b, n), np.inf)
@@ -481,7 +481,7 @@ def _plan(
         lane_choice = np.zeros(b, dtype=np.int64)
         if fallback.any():
             sender, receiver = network.lane_from, network.lane_to
-            direct = gain[:, receiver] - loss[:, sender] - c
+            direct = gain[:, receiver] - loss[:, sender] - lane_cost
             ok = (
                 (f < lim)
                 & (st[:, sender] > keep[:, sender])
