@@ -22,8 +22,24 @@ s_i in 0..C_i and phases d; tonight it sends a <= s_i units and takes b, y = s_i
     h(b) = min { sum_{l into i} lambda_{d,l} take_l : sum take = b }  (greedy: convex),
 
 and next stock from K_{i,d}[y, .] (solver.build), with a and b at most U_d (no feasible
-network flow sends or takes more at one store). Local restrictions of one store's moves (a
-minimum to keep, a most to send or take) would only narrow the (a, b) range of psi.
+network flow sends or takes more at one store).
+
+Rules (solver.spec). Store i's own rules on night d narrow its (a, b) range: a <= O_{i,d} and
+b <= I_{i,d} (its handling limits), and a > 0 only if y >= k_{i,d} (its floor); lane limits
+are first cut to min(u_l, O_{sender}, I_{receiver}). A lane's dispatch cost F_l is charged to
+the sender, once when send_l > 0, so g becomes a knapsack with fixed charges,
+
+    g(a) = max { sum_l [(lambda_l - c_l - mu) send_l - F_l [send_l > 0]] : sum send = a },
+
+exact by dynamic programming over the store's out-lanes (one max-plus step per lane over the
+amounts 0..a_max; solver.priced._best_split); g is no longer concave, which nothing here needs,
+since psi is maximised over every a. h keeps its greedy form (no charge on takes).
+
+The bound stays valid with the rules: for a flow f of the real network that is feasible on
+night d, send = take = f satisfies every store's narrowed range (the same floors, the same
+handling limits, which the real flow obeys at every store), and the priced one-day rewards
+summed over the stores are R(y) - c.f - sum_l F_l [f_l > 0] - mu sum f: the true reward with
+dispatch costs, less mu sum f as before. So the proof below applies word for word.
 
 Theorem (the bound). For any prices, with V_{i,d} the optimal discounted value of store i's
 priced MDP from phase d, V*_d(s) <= sum_i V_{i,d}(s_i) + M_d, M_d = sum_{k >= 0} beta^k
@@ -58,8 +74,11 @@ when a trial point is worse. It stops when the model predicts a relative decreas
 `tolerance` (converged), or at the iteration or time budget. The best bound found is kept, so
 the reported bounds never increase.
 
-Plan and certificate. Tonight's moves maximise sum_i W_{i,d}(y_i) - c.f (solver.transfer_plan,
-on the concave envelopes of W). The certificate simulates that plan from a reference stock (per
+Plan and certificate. Tonight's moves maximise sum_i W_{i,d}(y_i) - c.f - F.[f > 0] within the
+night's rules (solver.transfer_plan, on the concave envelopes of W; exact for concave W without
+dispatch costs, stores below their floors or binding limits on units received, a documented
+heuristic otherwise). The same plan is served, simulated (dispatch costs paid) and evaluated.
+The certificate simulates that plan from a reference stock (per
 store, the median of its phase-0 stock in the long run under its own priced policy) with common
 random numbers beside moving nothing, whose exact value is the sum of one-store values: the
 estimate is the exact do-nothing value plus the mean paired difference (a control variate with
@@ -577,10 +596,12 @@ class _Oracle:
 
 def _price_box(net: _Network) -> float:
     """Prices are searched within +-this: twice the most a unit can earn or save in a day, plus
-    the dearest lane. The bound is valid at any prices; the box only limits the search."""
+    the dearest lane (one unit and its dispatch cost). The bound is valid at any prices; the
+    box only limits the search."""
     spec = net.spec
     unit = max(loc.unit_margin + loc.stockout_penalty + loc.holding_cost for loc in spec.locations)
-    return 2.0 * unit + float(net.lane_costs.max(initial=0.0)) + 1.0
+    lane = float((net.lane_costs + net.dispatch_costs).max(initial=0.0))
+    return 2.0 * unit + lane + 1.0
 
 
 def _initial_prices(

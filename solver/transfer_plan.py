@@ -36,6 +36,27 @@ plan stops when neither gains. This is the usual budgeted greedy: exact when the
 bind or every useful cycle is a single move, otherwise a feasible plan that the tests compare
 with scipy.optimize.milp.
 
+Rules (solver.spec; `PlanRules`). With floors k_i, handling limits O_i (units sent) and I_i
+(units received) and dispatch costs F_l, the problem adds: out_i > 0 only if y_i >= k_i;
+out_i <= O_i; in_i <= I_i; and - sum_l F_l [f_l > 0] in the objective.
+* A store at or above its floor (s_i >= k_i) keeps y_i >= k_i (sending or not, since without
+  sending y_i >= s_i): a lower bound on the arc Y_i -> T. out_i = s_i - stay_i <= O_i is a lower
+  bound s_i - O_i on the stay arc. Both are arc bounds of the same network, so the optimality
+  argument above holds unchanged: exact for concave W.
+* A store below its floor (s_i < k_i) sends nothing in the plan. The rule would let it send
+  if it received enough to end at k_i (a relay through it); that disjunction is not convex and
+  the plan gives it up.
+* in_i <= I_i would need a node between the lanes and Y_i; instead a lane into a store that has
+  taken I_i units is closed and every augmentation's units are capped by I_j - in_j for a lane
+  arc entering Y_j. That keeps the limit (a path enters Y_j at most once) but can block a
+  swap of one sender for another: exact whenever the limit does not bind.
+* Dispatch costs make the problem non-convex (fixed charges). Heuristic: plan (a) without them
+  and (b) with F_l spread over a full lane (c_l + F_l / u_l per unit); from each, repeatedly
+  close the used, charged lane whose closing (and re-planning) gains most, while one gains;
+  beside these, the best move along one lane alone (all its unit counts tried); keep the best
+  of the three by the true objective, or nothing if that is better. Measured against
+  scipy.optimize.milp with 0/1 lane-use variables in tests/solver/test_transfer_plan.py.
+
 Everything is vectorised over the batch (numpy, no flow vectors are enumerated); rows that have
 finished drop out of the loop. Each row's arithmetic is independent of the other rows, so a
 stock gets the same plan alone or in any batch. Opposite flows on a lane pair are netted at the
