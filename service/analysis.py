@@ -52,7 +52,7 @@ from solver import (
 from solver.build import check_size
 from solver.heuristics import balance_cover_plan, do_nothing_plan
 from solver.priced import check_priced_size, solve_priced
-from solver.priced_result import PricedPolicy
+from solver.priced_result import PricedOptions, PricedPolicy
 from solver.simulation import (
     CONFIDENCE,
     Interval,
@@ -82,6 +82,9 @@ __all__ = [
 MAX_REPLICATION_DAYS = 2_000_000
 REFERENCE = "optimal"
 PRICED_REFERENCE = "priced"
+# The priced policy without the rules is only simulated here: its own certificate is not
+# reported, so a short one will do.
+_QUICK_CERTIFICATE = PricedOptions(replications=2)
 # Location fields an override may set to null (no limit).
 _LIFTABLE = frozenset({"max_units_out", "max_units_in"})
 # The optimal policy of the network with its floors and handling limits removed.
@@ -319,8 +322,16 @@ def _run_priced_simulation(
         )
     except ValueError as exc:
         notes.append(f"balance_cover left out: {exc}")
+    # As for exact networks: every plan runs in the network without the rules (which allows
+    # every move of the network with them), beside the priced policy solved without them.
+    compare_rules = params.compare_without_rules and spec.has_rules
+    simulated_spec = spec.without_rules() if compare_rules else spec
+    if compare_rules:
+        plans[WITHOUT_RULES] = _plan_of(
+            solve_priced(simulated_spec, criterion=params.criterion, options=_QUICK_CERTIFICATE)
+        )
     report = simulate_plans(
-        spec,
+        simulated_spec,
         plans,
         days=params.days,
         replications=params.replications,
@@ -340,6 +351,7 @@ def _run_priced_simulation(
         "start_stock": dict(zip(report.location_ids, report.start_stock, strict=True)),
         "optimal_source": source,
         "policies": [_outcome(outcome, PRICED_REFERENCE) for outcome in report.outcomes],
+        "rules": _rules_effect(report, PRICED_REFERENCE) if compare_rules else None,
         "notes": notes,
     }
     return _require_finite(document, "")
@@ -352,10 +364,10 @@ def _rows_in(model: TransferModel, larger: TransferModel) -> NDArray[np.int64]:
     return np.array([rows[tuple(flow)] for flow in model.flows.tolist()], dtype=np.int64)
 
 
-def _rules_effect(report: SimulationReport) -> dict[str, Any]:
+def _rules_effect(report: SimulationReport, reference: str = REFERENCE) -> dict[str, Any]:
     """What the floors and handling limits cost (profit per day) and protect (fill rate and
-    stock-out days per location): the optimal policies without and with them."""
-    ruled, free = report.outcome(REFERENCE), report.outcome(WITHOUT_RULES)
+    stock-out days per location): the optimal (or priced) policies without and with them."""
+    ruled, free = report.outcome(reference), report.outcome(WITHOUT_RULES)
     assert free.difference_to_reference is not None  # the report's reference is the optimal
     return {
         "profit_per_day_cost": _interval(free.difference_to_reference),

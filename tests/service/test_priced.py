@@ -590,8 +590,18 @@ def test_a_priced_network_with_rules_keeps_them_and_charges_the_dispatch(
     started = client.post(f"/v1/networks/{network_id}/simulations", json=params)
     assert started.status_code == 202, started.text
     assert run_worker(engine) == 1
-    report = client.get(started.headers["Location"]).json()
-    assert report["state"] == "done", report
+    done = client.get(started.headers["Location"]).json()
+    assert done["state"] == "done", done
+    report = done["report"]
+    names = [p["name"] for p in report["policies"]]
+    assert names[0] == "priced" and "optimal_without_rules" in names
+    # What the rules cost and protect, as for exact networks: the priced policy without them
+    # runs on the same days (simulation estimates; only their form is checked here).
+    rules = report["rules"]
+    assert set(rules["by_location"]) == set(RULED.location_ids)
+    riverside = rules["by_location"]["riverside"]
+    assert 0.0 <= riverside["fill_rate_with_rules"]["mean"] <= 1.0
+    assert 0.0 <= riverside["fill_rate_without_rules"]["mean"] <= 1.0
 
 
 def test_cli_priced_solve_of_a_network_with_rules(
