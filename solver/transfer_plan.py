@@ -181,37 +181,51 @@ def plan_flows(
         most_in = np.broadcast_to(rules.most_in, (batch, n))
         # out_i = s_i - stay_i <= most_out_i: a lower bound on the stay arc.
         low_stay = np.maximum(stocks - rules.most_out[None, :], 0)
-    flows = _plan(
-        network, stocks, values, limits, network_limit, tolerance, floors, low_stay, most_in
-    )
     if rules is None or not np.any(rules.dispatch_costs > 0):
-        return flows
-    bounds = (floors, low_stay, most_in)
+        return _plan(
+            network, stocks, values, limits, network_limit, tolerance, floors, low_stay, most_in
+        )
     # Two starts: the plan without dispatch costs, and the plan with each lane's dispatch cost
     # spread over a full lane (per unit); lanes that do not pay are closed from each, and the
-    # better result is kept (ties: the first).
+    # better result is kept (ties: the first). Both starts run as one batch of 2B rows (each
+    # row's arithmetic is its own).
     spread = network.lane_costs[None, :] + rules.dispatch_costs[None, :] / np.maximum(limits, 1)
-    starts = [
-        flows,
-        _plan(network, stocks, values, limits, network_limit, tolerance, *bounds, spread),
-    ]
-    best_flows = flows
-    best_value = np.full(batch, -np.inf)
+    costs = np.concatenate([np.broadcast_to(network.lane_costs, spread.shape), spread])
+
+    def twice(array: NDArray[np.int64]) -> NDArray[np.int64]:
+        return np.concatenate([array, array])
+
+    bounds = (twice(floors), twice(low_stay), twice(np.asarray(most_in)))
+    starts = _plan(
+        network,
+        twice(stocks),
+        values,
+        twice(limits),
+        network_limit,
+        tolerance,
+        *bounds,
+        costs,
+    )
+    closed = _close_unpaid_lanes(
+        network,
+        twice(stocks),
+        values,
+        twice(limits),
+        network_limit,
+        tolerance,
+        bounds,
+        rules.dispatch_costs,
+        starts,
+    )
     candidates = [
-        _close_unpaid_lanes(
-            network,
-            stocks,
-            values,
-            limits,
-            network_limit,
-            tolerance,
-            bounds,
-            rules.dispatch_costs,
-            start,
-        )
-        for start in starts
+        closed[:batch],
+        closed[batch:],
+        _best_single_lane(
+            network, stocks, values, limits, network_limit, (floors, low_stay, most_in)
+        ),
     ]
-    candidates.append(_best_single_lane(network, stocks, values, limits, network_limit, bounds))
+    best_flows = candidates[0]
+    best_value = np.full(batch, -np.inf)
     for closed in candidates:
         value = plan_objective(network, stocks, values, closed, rules.dispatch_costs)
         better = value > best_value + tolerance
