@@ -53,7 +53,7 @@ from solver import (
 from solver.build import check_size
 from solver.heuristics import balance_cover_plan, do_nothing_plan
 from solver.priced import check_priced_size, solve_priced
-from solver.priced_result import PricedPolicy
+from solver.priced_result import PricedOptions, PricedPolicy
 from solver.simulation import (
     CONFIDENCE,
     Interval,
@@ -83,6 +83,9 @@ __all__ = [
 MAX_REPLICATION_DAYS = 2_000_000
 REFERENCE = "optimal"
 PRICED_REFERENCE = "priced"
+# The priced policy without the rules is only simulated here: its own certificate is not
+# reported, so a short one will do.
+_QUICK_CERTIFICATE = PricedOptions(replications=2)
 # Location fields an override may set to null (no limit).
 _LIFTABLE = frozenset({"max_units_out", "max_units_in"})
 # The optimal policy of the network with its floors and handling limits removed.
@@ -305,8 +308,16 @@ def _run_priced_simulation(
         )
     except ValueError as exc:
         notes.append(f"balance_cover left out: {exc}")
+    # As for exact networks: every plan runs in the network without the rules (which allows
+    # every move of the network with them), beside the priced policy solved without them.
+    compare_rules = params.compare_without_rules and spec.has_rules
+    simulated_spec = spec.without_rules() if compare_rules else spec
+    if compare_rules:
+        plans[WITHOUT_RULES] = _plan_of(
+            solve_priced(simulated_spec, criterion=params.criterion, options=_QUICK_CERTIFICATE)
+        )
     report = simulate_plans(
-        spec,
+        simulated_spec,
         plans,
         days=params.days,
         replications=params.replications,
@@ -316,7 +327,8 @@ def _run_priced_simulation(
         reference=PRICED_REFERENCE,
         confidence=CONFIDENCE,
     )
-    return _report_document(params, report, seed, source, notes, PRICED_REFERENCE)
+    rules = _rules_effect(report, PRICED_REFERENCE) if compare_rules else None
+    return _report_document(params, report, seed, source, notes, PRICED_REFERENCE, rules)
 
 
 def _seed_and_start(spec: NetworkSpec, params: SimulationRequest) -> tuple[int, list[int] | None]:
@@ -360,10 +372,10 @@ def _rows_in(model: TransferModel, larger: TransferModel) -> NDArray[np.int64]:
     return np.array([rows[tuple(flow)] for flow in model.flows.tolist()], dtype=np.int64)
 
 
-def _rules_effect(report: SimulationReport) -> dict[str, Any]:
+def _rules_effect(report: SimulationReport, reference: str = REFERENCE) -> dict[str, Any]:
     """What the floors and handling limits cost (profit per day) and protect (fill rate and
-    stock-out days per location): the optimal policies without and with them."""
-    ruled, free = report.outcome(REFERENCE), report.outcome(WITHOUT_RULES)
+    stock-out days per location): the optimal (or priced) policies without and with them."""
+    ruled, free = report.outcome(reference), report.outcome(WITHOUT_RULES)
     assert free.difference_to_reference is not None  # the report's reference is the optimal
     return {
         "profit_per_day_cost": _interval(free.difference_to_reference),

@@ -22,8 +22,24 @@ s_i in 0..C_i and phases d; tonight it sends a <= s_i units and takes b, y = s_i
     h(b) = min { sum_{l into i} lambda_{d,l} take_l : sum take = b }  (greedy: convex),
 
 and next stock from K_{i,d}[y, .] (solver.build), with a and b at most U_d (no feasible
-network flow sends or takes more at one store). Local restrictions of one store's moves (a
-minimum to keep, a most to send or take) would only narrow the (a, b) range of psi.
+network flow sends or takes more at one store).
+
+Rules (solver.spec). Store i's own rules on night d narrow its (a, b) range: a <= O_{i,d} and
+b <= I_{i,d} (its handling limits), and a > 0 only if y >= k_{i,d} (its floor); lane limits
+are first cut to min(u_l, O_{sender}, I_{receiver}). A lane's dispatch cost F_l is charged to
+the sender, once when send_l > 0, so g becomes a knapsack with fixed charges,
+
+    g(a) = max { sum_l [(lambda_l - c_l - mu) send_l - F_l [send_l > 0]] : sum send = a },
+
+exact by dynamic programming over the store's out-lanes (one max-plus step per lane over the
+amounts 0..a_max; solver.priced._best_split); g is no longer concave, which nothing here needs,
+since psi is maximised over every a. h keeps its greedy form (no charge on takes).
+
+The bound stays valid with the rules: for a flow f of the real network that is feasible on
+night d, send = take = f satisfies every store's narrowed range (the same floors, the same
+handling limits, which the real flow obeys at every store), and the priced one-day rewards
+summed over the stores are R(y) - c.f - sum_l F_l [f_l > 0] - mu sum f: the true reward with
+dispatch costs, less mu sum f as before. So the proof below applies word for word.
 
 Theorem (the bound). For any prices, with V_{i,d} the optimal discounted value of store i's
 priced MDP from phase d, V*_d(s) <= sum_i V_{i,d}(s_i) + M_d, M_d = sum_{k >= 0} beta^k
@@ -58,8 +74,11 @@ when a trial point is worse. It stops when the model predicts a relative decreas
 `tolerance` (converged), or at the iteration or time budget. The best bound found is kept, so
 the reported bounds never increase.
 
-Plan and certificate. Tonight's moves maximise sum_i W_{i,d}(y_i) - c.f (solver.transfer_plan,
-on the concave envelopes of W). The certificate simulates that plan from a reference stock (per
+Plan and certificate. Tonight's moves maximise sum_i W_{i,d}(y_i) - c.f - F.[f > 0] within the
+night's rules (solver.transfer_plan, on the concave envelopes of W; exact for concave W without
+dispatch costs, stores below their floors or binding limits on units received, a documented
+heuristic otherwise). The same plan is served, simulated (dispatch costs paid) and evaluated.
+The certificate simulates that plan from a reference stock (per
 store, the median of its phase-0 stock in the long run under its own priced policy) with common
 random numbers beside moving nothing, whose exact value is the sum of one-store values: the
 estimate is the exact do-nothing value plus the mean paired difference (a control variate with
@@ -94,7 +113,7 @@ from solver.model import TransferModel
 from solver.priced_result import Certificate, PricedOptions, PricedPolicy, PricedProgress
 from solver.result import Criterion
 from solver.simulation import daily_laws, draw_counts
-from solver.spec import NetworkSpec
+from solver.spec import LocationSpec, NetworkSpec
 
 __all__ = [
     "PricedLimits",
@@ -150,15 +169,6 @@ def check_priced_size(spec: NetworkSpec, limits: PricedLimits | None = None) -> 
             states=states * n_phases(spec),
             pairs=None,
         )
-    ruled = [loc.id for loc in spec.locations if loc.has_rules]
-    ruled += [f"{lane.from_}->{lane.to}" for lane in spec.lanes if lane.dispatch_cost > 0]
-    if ruled:
-        raise ModelTooLargeError(
-            "the priced mode does not take dispatch costs, floors or handling limits yet "
-            f"({', '.join(ruled)}): solve this network exactly, within the exact size limits",
-            states=states * n_phases(spec),
-            pairs=None,
-        )
 
 
 # -- the network as per-store arrays ----------------------------------------------------------
@@ -177,9 +187,13 @@ class _Network:
     lane_from: NDArray[np.int64]
     lane_to: NDArray[np.int64]
     lane_costs: NDArray[np.float64]
-    lane_limits: NDArray[np.int64]  # (P, L), at most both ends' capacities and U
+    lane_limits: NDArray[np.int64]  # (P, L), at most both ends' capacities, handling limits, U
     network_limit: NDArray[np.int64]  # (P,), -1 without a limit
     discount: float
+    dispatch_costs: NDArray[np.float64]  # (L,)
+    floors: NDArray[np.int64]  # (P, N), keep_at_least on night d
+    most_out: NDArray[np.int64]  # (P, N), handling limits (the capacity where there is none)
+    most_in: NDArray[np.int64]
 
     @property
     def n_stores(self) -> int:
@@ -217,6 +231,23 @@ def _network(spec: NetworkSpec) -> _Network:
         [[lane.max_units_on(d) for lane in spec.lanes] for d in range(phases)], dtype=np.int64
     )
     limits = np.minimum(limits, np.minimum(capacities[lane_from], capacities[lane_to])[None, :])
+
+    def nightly(value: Callable[[LocationSpec, int], int | None]) -> NDArray[np.int64]:
+        return np.array(
+            [
+                [
+                    loc.capacity if (units := value(loc, d)) is None else min(units, loc.capacity)
+                    for loc in spec.locations
+                ]
+                for d in range(phases)
+            ],
+            dtype=np.int64,
+        )
+
+    most_out = nightly(lambda loc, d: loc.max_units_out_on(d))
+    most_in = nightly(lambda loc, d: loc.max_units_in_on(d))
+    # No feasible flow puts more on a lane than its sender may send or its receiver take.
+    limits = np.minimum(limits, np.minimum(most_out[:, lane_from], most_in[:, lane_to]))
     per_night = spec.max_units_per_night
     if per_night is not None:
         limits = np.minimum(limits, per_night)
@@ -233,6 +264,10 @@ def _network(spec: NetworkSpec) -> _Network:
         lane_limits=limits,
         network_limit=network_limit,
         discount=spec.discount,
+        dispatch_costs=np.array([lane.dispatch_cost for lane in spec.lanes], dtype=np.float64),
+        floors=nightly(lambda loc, d: loc.keep_at_least_on(d)),
+        most_out=most_out,
+        most_in=most_in,
     )
 
 
@@ -291,6 +326,46 @@ def _greedy_units(amount: NDArray[np.int64], caps: NDArray[np.int64]) -> NDArray
     return units
 
 
+def _best_split(
+    margin: NDArray[np.float64],
+    caps: NDArray[np.int64],
+    dispatch: NDArray[np.float64],
+    top: int,
+) -> tuple[NDArray[np.float64], NDArray[np.int64]]:
+    """g(a) = max sum_k (margin_k x_k - dispatch_k [x_k > 0]) over 0 <= x_k <= caps_k with
+    sum x = a, for a = 0..top, shape (top + 1,), and the maximising x per a, shape (top + 1,
+    K). Without dispatch costs the greedy split by margin (a concave g); with them a knapsack
+    with fixed charges, exact by dynamic programming over the lanes (one (cap + 1, top + 1)
+    array per lane)."""
+    k = margin.size
+    if not np.any(dispatch > 0):
+        order = np.argsort(-margin, kind="stable")
+        g = np.concatenate([[0.0], np.cumsum(np.repeat(margin[order], caps[order]))[:top]])
+        split = np.zeros((top + 1, k), dtype=np.int64)
+        split[:, order] = _greedy_units(np.arange(top + 1), caps[order])
+        return g, split
+    amounts = np.arange(top + 1)
+    g = np.full(top + 1, -np.inf)
+    g[0] = 0.0
+    choices = np.zeros((k, top + 1), dtype=np.int64)
+    for lane in range(k):
+        x = np.arange(int(min(caps[lane], top)) + 1)[:, None]  # (X, 1)
+        before = amounts[None, :] - x
+        value = np.where(
+            before >= 0,
+            g[np.clip(before, 0, top)] + margin[lane] * x - dispatch[lane] * (x > 0),
+            -np.inf,
+        )
+        choices[lane] = value.argmax(axis=0)
+        g = value.max(axis=0)
+    split = np.zeros((top + 1, k), dtype=np.int64)
+    rest = amounts.copy()
+    for lane in range(k - 1, -1, -1):
+        split[:, lane] = choices[lane, rest]
+        rest = rest - split[:, lane]
+    return g, split
+
+
 class _Store:
     """Store i's lanes and laws, and its priced subproblem."""
 
@@ -307,6 +382,10 @@ class _Store:
         # the network limit (valid for every feasible network flow, so the bound stays valid).
         self.most = np.where(net.network_limit < 0, self.capacity, net.network_limit)
         self.most = np.minimum(self.most, self.capacity)
+        self.most_out = np.minimum(self.most, net.most_out[:, i])
+        self.most_in = np.minimum(self.most, net.most_in[:, i])
+        self.floors = net.floors[:, i]
+        self.dispatch = net.dispatch_costs
         self.phases = net.phases
         # Initial law of the occupation measure over (d, s), phase-major, summing to 1.
         self.start = law.reshape(-1) / net.phases
@@ -319,7 +398,8 @@ class _Store:
         NDArray[np.float64], NDArray[np.int64], list[tuple[NDArray[np.int64], NDArray[np.int64]]]
     ]:
         """psi (P, C + 1, C + 1) over (s, y), -inf where y cannot be reached; the best send a
-        per (d, s, y); per phase the out-lane and in-lane orders of the greedy split."""
+        per (d, s, y); per phase the units on each out-lane for every total send a (shape
+        (top a + 1, out-lanes), the best split) and the in-lane order of the greedy split."""
         c = self.capacity
         size = c + 1
         psi = np.full((self.phases, size, size), -np.inf)
@@ -329,23 +409,22 @@ class _Store:
         y = np.arange(size)[None, :]
         for d in range(self.phases):
             margin = prices[d, self.out_lanes] - self.costs[self.out_lanes] - network_price[d]
-            send_order = self.out_lanes[np.argsort(-margin, kind="stable")]
             take_order = self.in_lanes[np.argsort(prices[d, self.in_lanes], kind="stable")]
-            orders.append((send_order, take_order))
-            send_caps = self.limits[d, send_order]
+            send_caps = self.limits[d, self.out_lanes]
             take_caps = self.limits[d, take_order]
-            top_a = int(min(self.most[d], send_caps.sum()))
-            top_b = int(min(self.most[d], take_caps.sum()))
-            g = np.concatenate(
-                [[0.0], np.cumsum(np.repeat(np.sort(margin)[::-1], send_caps))[:top_a]]
-            )
+            top_a = int(min(self.most_out[d], send_caps.sum()))
+            top_b = int(min(self.most_in[d], take_caps.sum()))
+            g, split = _best_split(margin, send_caps, self.dispatch[self.out_lanes], top_a)
+            orders.append((split, take_order))
             h = np.concatenate(
                 [[0.0], np.cumsum(np.repeat(prices[d, take_order], take_caps))[:top_b]]
             )
             psi_d, best_d = psi[d], best_a[d]
+            floor = int(self.floors[d])
             for a in range(top_a + 1):
                 b = y - s + a
-                valid = (a <= s) & (b >= 0) & (b <= top_b)
+                # A store that sends ends the night at its floor or above.
+                valid = (a <= s) & (b >= 0) & (b <= top_b) & ((a == 0) | (y >= floor))
                 value = np.where(valid, g[a] - h[np.clip(b, 0, top_b)], -np.inf)
                 better = value > psi_d
                 psi_d[better] = value[better]
@@ -443,9 +522,9 @@ class _Store:
         for d in range(phases):
             a = best_a[d, rows, policy[d]]
             b = a - rows + policy[d]
-            send_order, take_order = orders[d]
-            if send_order.size:
-                sends[d, send_order] = occupation[d] @ _greedy_units(a, self.limits[d, send_order])
+            split, take_order = orders[d]
+            if self.out_lanes.size:
+                sends[d, self.out_lanes] = occupation[d] @ split[a]
             if take_order.size:
                 takes[d, take_order] = occupation[d] @ _greedy_units(b, self.limits[d, take_order])
         return _StoreSolution(values, post, gain_bound, policy, sends, takes, objective)
@@ -517,10 +596,12 @@ class _Oracle:
 
 def _price_box(net: _Network) -> float:
     """Prices are searched within +-this: twice the most a unit can earn or save in a day, plus
-    the dearest lane. The bound is valid at any prices; the box only limits the search."""
+    the dearest lane (one unit and its dispatch cost). The bound is valid at any prices; the
+    box only limits the search."""
     spec = net.spec
     unit = max(loc.unit_margin + loc.stockout_penalty + loc.holding_cost for loc in spec.locations)
-    return 2.0 * unit + float(net.lane_costs.max(initial=0.0)) + 1.0
+    lane = float((net.lane_costs + net.dispatch_costs).max(initial=0.0))
+    return 2.0 * unit + lane + 1.0
 
 
 def _initial_prices(
@@ -666,7 +747,7 @@ def _reward_range(net: _Network) -> tuple[float, float]:
         most = float(net.lane_costs @ net.lane_limits[d])
         if net.network_limit[d] >= 0:
             most = min(most, float(net.lane_costs.max(initial=0.0)) * float(net.network_limit[d]))
-        costs.append(most)
+        costs.append(most + float(net.dispatch_costs @ (net.lane_limits[d] > 0)))
     return low - max(costs), high
 
 
@@ -723,7 +804,8 @@ def _simulate(
             idle_stock = np.minimum(
                 idle_stock - np.minimum(idle_stock, demand[k]) + supply[k], caps
             )
-            total += weights[t] * (profits[0] - flows @ net.lane_costs - profits[1])
+            cost = flows @ net.lane_costs + (flows > 0) @ net.dispatch_costs
+            total += weights[t] * (profits[0] - cost - profits[1])
         done += count
         tick()
     return total
@@ -880,6 +962,10 @@ def solve_priced(
         lane_costs=net.lane_costs,
         lane_limits=net.lane_limits,
         network_limit=net.network_limit,
+        dispatch_costs=net.dispatch_costs,
+        floors=net.floors,
+        most_out=net.most_out,
+        most_in=net.most_in,
         discount=beta if criterion == "discounted" else None,
         phases=phases,
         prices=prices.copy(),
@@ -984,7 +1070,9 @@ def _plan_chain(model: TransferModel, policy: PricedPolicy) -> PolicyChain:
             index = (chunk + flows @ incidence) @ model.strides
             post[d, start : start + chunk.shape[0]] = index
             reward[d, start : start + chunk.shape[0]] = (
-                model.reward[d].reshape(-1)[index] - flows @ model.lane_costs
+                model.reward[d].reshape(-1)[index]
+                - flows @ model.lane_costs
+                - (flows > 0) @ policy.dispatch_costs
             )
     return PolicyChain(model, post, reward.reshape(-1))
 

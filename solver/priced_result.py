@@ -25,7 +25,7 @@ from solver.result import (
     check_stock,
     phase_of_weekday,
 )
-from solver.transfer_plan import PlanNetwork, concave_envelope, plan_flows
+from solver.transfer_plan import PlanNetwork, PlanRules, concave_envelope, plan_flows
 
 __all__ = ["Certificate", "PricedOptions", "PricedPolicy", "PricedProgress"]
 
@@ -138,6 +138,10 @@ class PricedPolicy:
         M_d = sum_k beta^k mu_{d+k} U (see solver.priced); average, the gain bound's
         sum_i g_i + mean_d mu_d U in every entry.
     gain: the bound on the optimal profit per day (average criterion), else None.
+    dispatch_costs: (L,), currency per night a lane is used; floors, most_out, most_in:
+        (P, N), each store's keep_at_least and handling limits on the night of each phase (the
+        capacity where there is no limit). The plan keeps them and pays the dispatch costs
+        (solver.transfer_plan).
     """
 
     criterion: Criterion
@@ -148,6 +152,10 @@ class PricedPolicy:
     lane_costs: NDArray[np.float64]
     lane_limits: NDArray[np.int64]
     network_limit: NDArray[np.int64]
+    dispatch_costs: NDArray[np.float64]
+    floors: NDArray[np.int64]
+    most_out: NDArray[np.int64]
+    most_in: NDArray[np.int64]
     discount: float | None
     phases: int
     prices: NDArray[np.float64]
@@ -233,6 +241,28 @@ class PricedPolicy:
         )
 
     @cached_property
+    def _rules(self) -> tuple[PlanRules | None, ...]:
+        """Each night's rules for the plan, None on a night without any."""
+        caps = np.array(self.capacities, dtype=np.int64)
+        # Without a handling limit on units received the plan needs a bound it never reaches.
+        unlimited = int(caps.sum()) + 1
+        rules: list[PlanRules | None] = []
+        for d in range(self.phases):
+            most_in = np.where(self.most_in[d] >= caps, unlimited, self.most_in[d])
+            ruled = (
+                np.any(self.floors[d] > 0)
+                or np.any(self.most_out[d] < caps)
+                or np.any(most_in < unlimited)
+                or np.any(self.dispatch_costs > 0)
+            )
+            rules.append(
+                PlanRules(self.floors[d], self.most_out[d], most_in, self.dispatch_costs)
+                if ruled
+                else None
+            )
+        return tuple(rules)
+
+    @cached_property
     def _plan_tolerance(self) -> float:
         return PLAN_RTOL * max(1.0, float(np.max(np.abs(self.plan_values))))
 
@@ -270,6 +300,7 @@ class PricedPolicy:
             limits,
             None if network < 0 else network,
             self._plan_tolerance,
+            self._rules[phase],
         )
 
     def plan(self, stock: Sequence[int], *, phase: int = 0) -> NDArray[np.int64]:
@@ -297,7 +328,7 @@ class PricedPolicy:
         scale, sum_i W_{i,d}(y_i) - cost - gain bound."""
         s = self._check_stock(stock)
         posts = self._posts(s, flows)
-        total = -(flows @ self.lane_costs)
+        total = -(flows @ self.lane_costs) - (flows > 0) @ self.dispatch_costs
         for i, w in enumerate(self.store_post_move_values):
             total = total + w[phase, posts[:, i]]
         if self.criterion == "average":
@@ -343,7 +374,7 @@ class PricedPolicy:
             stock=tuple(int(u) for u in s),
             flows=tuple(int(x) for x in flows),
             post_move_stock=tuple(int(u) for u in self._posts(s, flows[None, :])[0]),
-            transfer_cost=float(flows @ self.lane_costs),
+            transfer_cost=float(flows @ self.lane_costs + (flows > 0) @ self.dispatch_costs),
             expected_value=expected,
             value_without_transfers=without,
             gain_from_transfers=expected - without,
@@ -359,6 +390,10 @@ class PricedPolicy:
             "lane_costs": np.asarray(self.lane_costs, dtype=np.float64),
             "lane_limits": np.asarray(self.lane_limits, dtype=np.int64),
             "network_limit": np.asarray(self.network_limit, dtype=np.int64),
+            "dispatch_costs": np.asarray(self.dispatch_costs, dtype=np.float64),
+            "floors": np.asarray(self.floors, dtype=np.int64),
+            "most_out": np.asarray(self.most_out, dtype=np.int64),
+            "most_in": np.asarray(self.most_in, dtype=np.int64),
             "prices": np.asarray(self.prices, dtype=np.float64),
             "network_price": np.asarray(self.network_price, dtype=np.float64),
             "constants": np.asarray(self.constants, dtype=np.float64),
@@ -426,6 +461,13 @@ class PricedPolicy:
         )
         lanes = np.asarray(arrays["lanes"], dtype=np.int64).reshape(-1, 2)
         gain = meta["gain"]
+        # Policies stored before the rules existed were solved without them: no dispatch
+        # costs, no floors, handling limits at the capacities.
+        caps = np.broadcast_to(np.array(capacities, dtype=np.int64), (phases, len(capacities)))
+
+        def rule(name: str, default: NDArray[Any], dtype: type) -> NDArray[Any]:
+            return np.array(arrays.get(name, default), dtype=dtype)
+
         discount = meta["discount"]
         return cls(
             criterion=meta["criterion"],
@@ -436,6 +478,10 @@ class PricedPolicy:
             lane_costs=np.array(arrays["lane_costs"], dtype=np.float64),
             lane_limits=np.array(arrays["lane_limits"], dtype=np.int64),
             network_limit=np.array(arrays["network_limit"], dtype=np.int64),
+            dispatch_costs=rule("dispatch_costs", np.zeros(lanes.shape[0]), np.float64),
+            floors=rule("floors", np.zeros_like(caps), np.int64),
+            most_out=rule("most_out", caps, np.int64),
+            most_in=rule("most_in", caps, np.int64),
             discount=None if discount is None else float(discount),
             phases=phases,
             prices=np.array(arrays["prices"], dtype=np.float64),

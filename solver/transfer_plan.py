@@ -36,6 +36,30 @@ plan stops when neither gains. This is the usual budgeted greedy: exact when the
 bind or every useful cycle is a single move, otherwise a feasible plan that the tests compare
 with scipy.optimize.milp.
 
+Rules (solver.spec; `PlanRules`). With floors k_i, handling limits O_i (units sent) and I_i
+(units received) and dispatch costs F_l, the problem adds: out_i > 0 only if y_i >= k_i;
+out_i <= O_i; in_i <= I_i; and - sum_l F_l [f_l > 0] in the objective.
+* A store at or above its floor (s_i >= k_i) keeps y_i >= k_i (sending or not, since without
+  sending y_i >= s_i): a lower bound on the arc Y_i -> T. out_i = s_i - stay_i <= O_i is a lower
+  bound s_i - O_i on the stay arc. Both are arc bounds of the same network, so the optimality
+  argument above holds unchanged: exact for concave W.
+* A store below its floor (s_i < k_i) sends nothing in the plan. The rule would let it send
+  if it received enough to end at k_i (a relay through it); that disjunction is not convex and
+  the plan gives it up.
+* in_i <= I_i would need a node between the lanes and Y_i; instead a lane into a store that has
+  taken I_i units is closed and every augmentation's units are capped by I_j - in_j for a lane
+  arc entering Y_j. That keeps the limit (a path enters Y_j at most once) but can block a
+  swap of one sender for another: exact whenever the limit does not bind.
+* Dispatch costs make the problem non-convex (fixed charges). Heuristic: plan (a) without them
+  and (b) with F_l spread over a full lane (c_l + F_l / u_l per unit); from each, repeatedly
+  close the used, charged lane whose closing (and re-planning) gains most, while one gains,
+  trying per round the CLOSE_TRIALS lanes whose units earn least beside their dispatch cost
+  (their flow taken off, the rest kept: a screen; trying every used lane found nothing better
+  on the tests' instances and on a 12-store network, at twice the time);
+  beside these, the best move along one lane alone (all its unit counts tried); keep the best
+  of the three by the true objective, or nothing if that is better. Measured against
+  scipy.optimize.milp with 0/1 lane-use variables in tests/solver/test_transfer_plan.py.
+
 Everything is vectorised over the batch (numpy, no flow vectors are enumerated); rows that have
 finished drop out of the loop. Each row's arithmetic is independent of the other rows, so a
 stock gets the same plan alone or in any batch. Opposite flows on a lane pair are netted at the
@@ -49,9 +73,11 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
-__all__ = ["PlanNetwork", "concave_envelope", "plan_flows"]
+__all__ = ["PlanNetwork", "PlanRules", "concave_envelope", "plan_flows", "plan_objective"]
 
 _NONE = -1  # predecessor of a node reached straight from T
+# Dispatch costs: lanes tried for closing per row and round (module docstring).
+CLOSE_TRIALS = 2
 
 
 def concave_envelope(values: NDArray[np.float64]) -> NDArray[np.float64]:
@@ -105,6 +131,17 @@ class PlanNetwork:
         return tail, head, cost
 
 
+@dataclass(frozen=True, eq=False)
+class PlanRules:
+    """Tonight's rules, shape (N,) each: floors k_i (keep_at_least), most units sent and
+    received (the capacity where there is no limit); dispatch_costs: (L,), F_l."""
+
+    floors: NDArray[np.int64]
+    most_out: NDArray[np.int64]
+    most_in: NDArray[np.int64]
+    dispatch_costs: NDArray[np.float64]
+
+
 def plan_flows(
     network: PlanNetwork,
     stocks: NDArray[np.int64],
@@ -112,6 +149,7 @@ def plan_flows(
     lane_limits: NDArray[np.int64],
     network_limit: int | None,
     tolerance: float,
+    rules: PlanRules | None = None,
 ) -> NDArray[np.int64]:
     """Units per lane for every closing stock of the batch, shape (B, L).
 
@@ -121,11 +159,258 @@ def plan_flows(
     lane_limits: shape (L,) or (B, L), units per lane tonight.
     network_limit: units over all lanes tonight, None for no limit.
     tolerance: a cycle must gain more than this (currency) to be taken.
+    rules: tonight's floors and handling limits and the lanes' dispatch costs (module
+        docstring, "Rules"); None for none.
     """
+    stocks = np.asarray(stocks, dtype=np.int64)
+    batch, n = stocks.shape[0], network.n_stores
+    limits = np.broadcast_to(
+        np.asarray(lane_limits, dtype=np.int64), (batch, network.n_lanes)
+    ).copy()
+    if rules is None:
+        floors = np.zeros((batch, n), dtype=np.int64)
+        # No handling limit: more than a store can ever take.
+        most_in = np.full((batch, n), int(network.capacities.sum()) + 1, dtype=np.int64)
+        low_stay = np.zeros((batch, n), dtype=np.int64)
+    else:
+        # A store below its floor sends nothing (the relay it could make by receiving up to its
+        # floor is given up); at or above it, it ends at its floor or higher.
+        below = stocks < rules.floors[None, :]
+        limits[below[:, network.lane_from]] = 0
+        floors = np.minimum(stocks, rules.floors[None, :])
+        most_in = np.broadcast_to(rules.most_in, (batch, n))
+        # out_i = s_i - stay_i <= most_out_i: a lower bound on the stay arc.
+        low_stay = np.maximum(stocks - rules.most_out[None, :], 0)
+    if rules is None or not np.any(rules.dispatch_costs > 0):
+        return _plan(
+            network, stocks, values, limits, network_limit, tolerance, floors, low_stay, most_in
+        )
+    # Two starts: the plan without dispatch costs, and the plan with each lane's dispatch cost
+    # spread over a full lane (per unit); lanes that do not pay are closed from each, and the
+    # better result is kept (ties: the first). Both starts run as one batch of 2B rows (each
+    # row's arithmetic is its own).
+    spread = network.lane_costs[None, :] + rules.dispatch_costs[None, :] / np.maximum(limits, 1)
+    costs = np.concatenate([np.broadcast_to(network.lane_costs, spread.shape), spread])
+
+    def twice(array: NDArray[np.int64]) -> NDArray[np.int64]:
+        return np.concatenate([array, array])
+
+    bounds = (twice(floors), twice(low_stay), twice(np.asarray(most_in)))
+    starts = _plan(
+        network,
+        twice(stocks),
+        values,
+        twice(limits),
+        network_limit,
+        tolerance,
+        *bounds,
+        costs,
+    )
+    closed = _close_unpaid_lanes(
+        network,
+        twice(stocks),
+        values,
+        twice(limits),
+        network_limit,
+        tolerance,
+        bounds,
+        rules.dispatch_costs,
+        starts,
+    )
+    candidates = [
+        closed[:batch],
+        closed[batch:],
+        _best_single_lane(
+            network, stocks, values, limits, network_limit, (floors, low_stay, most_in)
+        ),
+    ]
+    best_flows = candidates[0]
+    best_value = np.full(batch, -np.inf)
+    for closed in candidates:
+        value = plan_objective(network, stocks, values, closed, rules.dispatch_costs)
+        better = value > best_value + tolerance
+        best_flows = np.where(better[:, None], closed, best_flows)
+        best_value = np.where(better, value, best_value)
+    return best_flows
+
+
+def plan_objective(
+    network: PlanNetwork,
+    stocks: NDArray[np.int64],
+    values: NDArray[np.float64],
+    flows: NDArray[np.int64],
+    dispatch_costs: NDArray[np.float64] | None = None,
+) -> NDArray[np.float64]:
+    """sum_i W_i(y_i) - c.f - F.[f > 0] of each row, shape (B,) (values as in plan_flows)."""
+    post = stocks + flows @ _incidence(network)
+    total: NDArray[np.float64] = values[np.arange(network.n_stores)[None, :], post].sum(axis=1)
+    total = total - flows @ network.lane_costs
+    if dispatch_costs is not None:
+        total = total - (flows > 0) @ dispatch_costs
+    return total
+
+
+def _best_single_lane(
+    network: PlanNetwork,
+    stocks: NDArray[np.int64],
+    values: NDArray[np.float64],
+    limits: NDArray[np.int64],
+    network_limit: int | None,
+    bounds: tuple[NDArray[np.int64], NDArray[np.int64], NDArray[np.int64]],
+) -> NDArray[np.int64]:
+    """Per row, the best move along one lane alone (any number of units within the rules,
+    dispatch cost not counted: every candidate pays exactly one), shape (B, L)."""
+    floors, low_stay, most_in = bounds
+    batch, n_lanes = stocks.shape[0], network.n_lanes
+    sender, receiver = network.lane_from, network.lane_to
+    caps = network.capacities
+    top = int(limits.max(initial=0))
+    if network_limit is not None:
+        top = min(top, network_limit)
+    units = np.arange(1, top + 1)[None, None, :]  # (1, 1, U)
+    s_from, s_to = stocks[:, sender][:, :, None], stocks[:, receiver][:, :, None]
+    most = np.minimum(
+        limits,
+        np.minimum(
+            s_from[:, :, 0] - np.maximum(floors[:, sender], low_stay[:, sender]),
+            np.minimum(caps[receiver] - s_to[:, :, 0], most_in[:, receiver]),
+        ),
+    )
+    fits = units <= most[:, :, None]
+    y_from = np.clip(s_from - units, 0, caps[sender][None, :, None])
+    y_to = np.clip(s_to + units, 0, caps[receiver][None, :, None])
+    gain = (
+        values[sender[None, :, None], y_from]
+        - values[sender[None, :, None], s_from]
+        + values[receiver[None, :, None], y_to]
+        - values[receiver[None, :, None], s_to]
+        - network.lane_costs[None, :, None] * units
+    )
+    gain = np.where(fits, gain, -np.inf).reshape(batch, -1)
+    flows = np.zeros((batch, n_lanes), dtype=np.int64)
+    if gain.shape[1] == 0:
+        return flows
+    best = gain.argmax(axis=1)
+    ok = np.isfinite(gain[np.arange(batch), best])
+    rows = np.flatnonzero(ok)
+    flows[rows, best[rows] // top] = best[rows] % top + 1
+    return flows
+
+
+def _closing_candidates(
+    network: PlanNetwork,
+    stocks: NDArray[np.int64],
+    values: NDArray[np.float64],
+    flows: NDArray[np.int64],
+    charged: NDArray[np.bool_],
+) -> tuple[NDArray[np.int64], NDArray[np.int64]]:
+    """(row, lane) pairs to try closing: per row, the CLOSE_TRIALS used, charged lanes whose
+    units earn least beside their dispatch cost (their flow removed, the rest kept: a screen
+    only, which may not be feasible), in row order."""
+    used = (flows > 0) & charged[None, :]
+    sender, receiver = network.lane_from, network.lane_to
+    post = stocks + flows @ _incidence(network)
+    units = flows
+    earn = (
+        values[receiver[None, :], post[:, receiver]]
+        - values[receiver[None, :], np.maximum(post[:, receiver] - units, 0)]
+        - values[sender[None, :], np.minimum(post[:, sender] + units, network.capacities[sender])]
+        + values[sender[None, :], post[:, sender]]
+        - network.lane_costs[None, :] * units
+    )
+    earn = np.where(used, earn, np.inf)
+    keep = np.argsort(earn, axis=1, kind="stable")[:, :CLOSE_TRIALS]
+    rows = np.repeat(np.arange(flows.shape[0]), keep.shape[1])
+    lanes = keep.reshape(-1)
+    ok = used[rows, lanes]
+    return rows[ok], lanes[ok]
+
+
+def _incidence(network: PlanNetwork) -> NDArray[np.int64]:
+    """(L, N): -1 at each lane's sender, +1 at its receiver."""
+    incidence = np.zeros((network.n_lanes, network.n_stores), dtype=np.int64)
+    lanes = np.arange(network.n_lanes)
+    incidence[lanes, network.lane_from] -= 1
+    incidence[lanes, network.lane_to] += 1
+    return incidence
+
+
+def _close_unpaid_lanes(
+    network: PlanNetwork,
+    stocks: NDArray[np.int64],
+    values: NDArray[np.float64],
+    limits: NDArray[np.int64],
+    network_limit: int | None,
+    tolerance: float,
+    bounds: tuple[NDArray[np.int64], NDArray[np.int64], NDArray[np.int64]],
+    dispatch_costs: NDArray[np.float64],
+    flows: NDArray[np.int64],
+) -> NDArray[np.int64]:
+    """Dispatch costs (module docstring): close, one at a time, the used lane whose closing
+    (and re-planning) gains most, while one gains more than `tolerance`; then keep moving
+    nothing if that is better still."""
+    floors, low_stay, most_in = bounds
+    flows = flows.copy()
+    limits = limits.copy()
+    best = plan_objective(network, stocks, values, flows, dispatch_costs)
+    charged = dispatch_costs > 0
+    active = np.flatnonzero(np.any((flows > 0) & charged[None, :], axis=1))
+    while active.size:
+        rows, lanes = _closing_candidates(network, stocks[active], values, flows[active], charged)
+        rows = active[rows]
+        trial_limits = limits[rows].copy()
+        trial_limits[np.arange(rows.size), lanes] = 0
+        trial = _plan(
+            network,
+            stocks[rows],
+            values,
+            trial_limits,
+            network_limit,
+            tolerance,
+            floors[rows],
+            low_stay[rows],
+            most_in[rows],
+        )
+        worth = plan_objective(network, stocks[rows], values, trial, dispatch_costs)
+        # The best closing of each row (rows come sorted, candidates in lane order).
+        order = np.lexsort((-worth, rows))
+        first = order[np.r_[True, rows[order][1:] != rows[order][:-1]]]
+        row = rows[first]
+        better = worth[first] > best[row] + tolerance
+        row, pick = row[better], first[better]
+        flows[row] = trial[pick]
+        limits[row] = trial_limits[pick]
+        best[row] = worth[pick]
+        active = row[np.any((flows[row] > 0) & charged[None, :], axis=1)]
+    nothing = plan_objective(network, stocks, values, np.zeros_like(flows), dispatch_costs)
+    flows[nothing > best + tolerance] = 0
+    return flows
+
+
+def _plan(
+    network: PlanNetwork,
+    stocks: NDArray[np.int64],
+    values: NDArray[np.float64],
+    limits: NDArray[np.int64],
+    network_limit: int | None,
+    tolerance: float,
+    floors: NDArray[np.int64],
+    low_stay: NDArray[np.int64],
+    most_in: NDArray[np.int64],
+    lane_costs: NDArray[np.float64] | None = None,
+) -> NDArray[np.int64]:
+    """The augmenting-cycle plan (module docstring) without dispatch costs; floors: (B, N)
+    least post-move stock; low_stay: (B, N) least units kept back (handling limit out);
+    most_in: (B, N) handling limit in; lane_costs: (B, L) unit costs per row (default the
+    network's)."""
     n, n_lanes = network.n_stores, network.n_lanes
     batch = stocks.shape[0]
     caps = network.capacities
-    limits = np.broadcast_to(np.asarray(lane_limits, dtype=np.int64), (batch, n_lanes))
+    into = np.zeros((n_lanes, n), dtype=np.int64)
+    into[np.arange(n_lanes), network.lane_to] = 1
+    unit_costs = np.broadcast_to(
+        network.lane_costs if lane_costs is None else lane_costs, (batch, n_lanes)
+    )
     tail, _, _ = network.arcs()
     n_nodes = 2 * n
     # Arc ids by (sender a, receiver j): into Y_j from O_a (stay when a == j, else lane a -> j)
@@ -154,21 +439,25 @@ def plan_flows(
     active = np.arange(batch)
     while active.size:
         y, st, f, lim = post[active], stay[active], flows[active], limits[active]
+        lo, keep, most = floors[active], low_stay[active], most_in[active]
+        lane_cost = unit_costs[active]
+        inn = f @ into  # (b, N) units received so far
         b = active.size
         rows = np.arange(b)[:, None]
         gain = up[store_rows[None, :], y]  # (b, N): value of one more unit, -inf when full
-        loss = np.where(y > 0, up[store_rows[None, :], np.maximum(y - 1, 0)], np.inf)
-        # Residual arc costs as (b, sender, receiver) matrices, inf where unavailable.
+        loss = np.where(y > lo, up[store_rows[None, :], np.maximum(y - 1, 0)], np.inf)
+        # Residual arc costs as (b, sender, receiver) matrices, inf where unavailable. A lane
+        # into a store that has taken its most tonight is closed (conservative: module
+        # docstring, "Rules").
+        open_in = inn < most
         forward = np.full((b, n, n), np.inf)
         forward[:, network.lane_from, network.lane_to] = np.where(
-            f < lim, network.lane_costs[None, :], np.inf
+            (f < lim) & open_in[:, network.lane_to], lane_cost, np.inf
         )
         forward[:, diagonal, diagonal] = 0.0
         backward = np.full((b, n, n), np.inf)
-        backward[:, network.lane_from, network.lane_to] = np.where(
-            f > 0, -network.lane_costs[None, :], np.inf
-        )
-        backward[:, diagonal, diagonal] = np.where(st > 0, 0.0, np.inf)
+        backward[:, network.lane_from, network.lane_to] = np.where(f > 0, -lane_cost, np.inf)
+        backward[:, diagonal, diagonal] = np.where(st > keep, 0.0, np.inf)
         dist_y = loss.copy()
         dist_o = np.full((b, n), np.inf)
         pred_y = np.full((b, n), _NONE, dtype=np.int64)
@@ -221,8 +510,14 @@ def plan_flows(
             delta_lanes += kind_lane.astype(np.int64) - kind_back.astype(np.int64)
             lane = np.clip(safe - 2 * n, 0, n_lanes - 1)
             back = np.clip(safe - 2 * n - n_lanes, 0, n_lanes - 1)
-            residual = np.where(kind_unstay, st[r, np.clip(safe - n, 0, n - 1)], room)
-            residual = np.where(kind_lane, lim[r, lane] - f[r, lane], residual)
+            store = np.clip(safe - n, 0, n - 1)
+            residual = np.where(kind_unstay, st[r, store] - keep[r, store], room)
+            receiver = network.lane_to[lane]
+            residual = np.where(
+                kind_lane,
+                np.minimum(lim[r, lane] - f[r, lane], most[r, receiver] - inn[r, receiver]),
+                residual,
+            )
             residual = np.where(kind_back, f[r, back], residual)
             room = np.minimum(room, residual)
             path.append(np.where(live, arc, _NONE))
@@ -239,7 +534,9 @@ def plan_flows(
         y_start, y_end = y[r, start], y[r, j]
         internal = dist[r, n + j] - up[start, np.maximum(y_start - 1, 0)]
         lose = np.where(
-            k <= y_start[:, None], up[start[:, None], np.maximum(y_start[:, None] - k, 0)], np.inf
+            k <= (y_start - lo[r, start])[:, None],
+            up[start[:, None], np.maximum(y_start[:, None] - k, 0)],
+            np.inf,
         )
         win = up[j[:, None], np.minimum(y_end[:, None] + k - 1, width_c)]
         worth = (win - lose - internal[:, None] > tolerance) & (k <= room[:, None])
@@ -258,8 +555,14 @@ def plan_flows(
         lane_choice = np.zeros(b, dtype=np.int64)
         if fallback.any():
             sender, receiver = network.lane_from, network.lane_to
-            direct = gain[:, receiver] - loss[:, sender] - network.lane_costs[None, :]
-            ok = (f < lim) & (st[:, sender] > 0) & (y[:, receiver] < caps[receiver])
+            direct = gain[:, receiver] - loss[:, sender] - lane_cost
+            ok = (
+                (f < lim)
+                & (st[:, sender] > keep[:, sender])
+                & (y[:, sender] > lo[:, sender])
+                & (y[:, receiver] < caps[receiver])
+                & open_in[:, receiver]
+            )
             direct = np.where(ok, direct, -np.inf)
             lane_choice = direct.argmax(axis=1)
             lane_take = fallback & (direct[rows[:, 0], lane_choice] > tolerance)

@@ -87,9 +87,7 @@ def transfers_of(result: StoredPolicy, flows: tuple[int, ...]) -> list[TransferO
             to=ids[b],
             units=units,
             unit_cost=float(result.lane_costs[lane]),
-            dispatch_cost=0.0
-            if isinstance(result, PricedPolicy)
-            else float(result.dispatch_costs[lane]),
+            dispatch_cost=float(result.dispatch_costs[lane]),
         )
         for lane, ((a, b), units) in enumerate(zip(result.lanes, flows, strict=True))
         if units > 0

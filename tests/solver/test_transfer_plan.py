@@ -7,7 +7,13 @@ import numpy as np
 from numpy.typing import NDArray
 from scipy.optimize import Bounds, LinearConstraint, milp
 
-from solver.transfer_plan import PlanNetwork, concave_envelope, plan_flows
+from solver.transfer_plan import (
+    PlanNetwork,
+    PlanRules,
+    concave_envelope,
+    plan_flows,
+    plan_objective,
+)
 
 
 def milp_optimum(
@@ -153,3 +159,161 @@ def test_concave_envelope_is_the_least_concave_majorant() -> None:
         assert np.isclose(envelope[0], values[0]) and np.isclose(envelope[-1], values[-1])
         concave = np.concatenate([[0.0], np.cumsum(np.sort(rng.normal(size=10))[::-1])])
         np.testing.assert_allclose(concave_envelope(concave), concave, rtol=0, atol=1e-12)
+
+
+# -- rules: floors, handling limits, dispatch costs ------------------------------------------
+
+
+def milp_with_rules(
+    network: PlanNetwork,
+    values: NDArray[np.float64],
+    stock: NDArray[np.int64],
+    limits: NDArray[np.int64],
+    rules: PlanRules,
+) -> float:
+    """The exact nightly optimum under the rules as a MILP: milp_optimum's variables, plus per
+    store a 0/1 "sends tonight" z_i (out_i <= s_i z_i, y_i >= k_i z_i: the floor binds only a
+    sender, as solver/spec.py states it) and per lane a 0/1 "dispatched" u_l (f_l <= u_l u_max,
+    dispatch cost F_l u_l)."""
+    caps = network.capacities
+    n, n_lanes = caps.size, network.n_lanes
+    steps = int(caps.sum())
+    offsets = np.concatenate([[0], np.cumsum(caps)])
+    marginal = np.concatenate([np.diff(values[i, : caps[i] + 1]) for i in range(n)])
+    width = n_lanes + steps + n + n_lanes
+    z0, u0 = n_lanes + steps, n_lanes + steps + n
+    cost = np.concatenate([network.lane_costs, -marginal, np.zeros(n), rules.dispatch_costs])
+    rows, low, high = [], [], []
+
+    def row() -> NDArray[np.float64]:
+        return np.zeros(width)
+
+    for i in range(n):
+        sends = (network.lane_from == i).astype(float)
+        takes = (network.lane_to == i).astype(float)
+        balance = row()
+        balance[n_lanes + offsets[i] : n_lanes + offsets[i + 1]] = 1.0
+        balance[:n_lanes] += sends - takes
+        rows.append(balance)  # y_i = s_i - out_i + in_i
+        low.append(stock[i])
+        high.append(stock[i])
+        sent = row()
+        sent[:n_lanes] = sends
+        sent[z0 + i] = -float(stock[i])
+        rows.append(sent)  # out_i <= s_i z_i
+        low.append(-np.inf)
+        high.append(0)
+        floor = row()
+        floor[n_lanes + offsets[i] : n_lanes + offsets[i + 1]] = 1.0
+        floor[z0 + i] = -float(rules.floors[i])
+        rows.append(floor)  # y_i >= k_i z_i
+        low.append(0)
+        high.append(np.inf)
+        out_limit, in_limit = row(), row()
+        out_limit[:n_lanes], in_limit[:n_lanes] = sends, takes
+        rows += [out_limit, in_limit]
+        low += [0, 0]
+        high += [rules.most_out[i], rules.most_in[i]]
+    for lane in range(n_lanes):
+        used = row()
+        used[lane] = 1.0
+        used[u0 + lane] = -float(limits[lane])
+        rows.append(used)  # f_l <= u_l limit_l
+        low.append(-np.inf)
+        high.append(0)
+    upper = np.concatenate([limits, np.ones(steps + n + n_lanes)])
+    result = milp(
+        cost,
+        constraints=LinearConstraint(np.array(rows), low, high),
+        integrality=np.ones(width),
+        bounds=Bounds(np.zeros(width), upper),
+    )
+    assert result.success
+    return float(-result.fun + values[:, 0].sum())
+
+
+def random_rules(rng: np.random.Generator, network: PlanNetwork, dispatch: bool) -> PlanRules:
+    caps = network.capacities
+    n = caps.size
+    floors = np.where(rng.random(n) < 0.6, rng.integers(0, caps + 1), 0).astype(np.int64)
+    big = int(caps.sum()) + 1
+    most_out = np.where(rng.random(n) < 0.5, rng.integers(0, 4, size=n), big).astype(np.int64)
+    most_in = np.where(rng.random(n) < 0.5, rng.integers(0, 4, size=n), big).astype(np.int64)
+    costs = rng.uniform(0, 6, size=network.n_lanes).round(2) if dispatch else None
+    return PlanRules(
+        floors, most_out, most_in, np.zeros(network.n_lanes) if costs is None else costs
+    )
+
+
+def _check_rules(
+    network: PlanNetwork, stock: NDArray[np.int64], flows: NDArray[np.int64], rules: PlanRules
+) -> None:
+    n = network.capacities.size
+    out = np.bincount(network.lane_from, weights=flows, minlength=n).astype(np.int64)
+    inn = np.bincount(network.lane_to, weights=flows, minlength=n).astype(np.int64)
+    post = stock - out + inn
+    assert np.all((out == 0) | (post >= rules.floors)), (stock, flows)
+    assert np.all(out <= rules.most_out) and np.all(inn <= rules.most_in), (stock, flows)
+
+
+def _compare_with_milp(seed: int, dispatch: bool, count: int) -> tuple[int, int, float]:
+    """(plans equal to the MILP optimum, plans, worst share of the optimum's gain over moving
+    nothing that the plan gets)."""
+    rng = np.random.default_rng(seed)
+    equal = total = 0
+    worst = 1.0
+    for _ in range(count):
+        network, values, limits = random_instance(rng)
+        rules = random_rules(rng, network, dispatch)
+        stocks = np.array([rng.integers(0, c + 1, size=4) for c in network.capacities]).T
+        flows = plan_flows(network, stocks, values, limits, None, 1e-9, rules)
+        objective = plan_objective(network, stocks, values, flows, rules.dispatch_costs)
+        for stock, plan, ours in zip(stocks, flows, objective, strict=True):
+            _check_feasible(network, stock, plan, limits, None)
+            _check_rules(network, stock, plan, rules)
+            best = milp_with_rules(network, values, stock, limits, rules)
+            idle = values[np.arange(stock.size), stock].sum()
+            assert ours <= best + 1e-7  # the plan is feasible, so never above the optimum
+            if best - idle > 1e-7:
+                worst = min(worst, (ours - idle) / (best - idle))
+            equal += abs(ours - best) <= 1e-7
+            total += 1
+    return equal, total, worst
+
+
+def test_plan_with_floors_and_handling_limits_is_feasible_and_matches_milp() -> None:
+    # Outside reference: scipy.optimize.milp (HiGHS) with a 0/1 "sends tonight" per store. The
+    # plan keeps every floor and handling limit at every stock (_check_rules), never beats the
+    # optimum, and equals it in nearly every instance: floors at or below the stock and the
+    # limit on units sent are bounds on arcs (exact); the limit on units received is kept
+    # conservatively and a store below its floor relays nothing (solver.transfer_plan). Seen
+    # here: 320 of 320 equal (and 1,433 of 1,440 over seeds 30 to 35).
+    equal, total, worst = _compare_with_milp(21, dispatch=False, count=80)
+    assert equal >= 0.97 * total
+    assert worst >= 0.5
+
+
+def test_plan_with_dispatch_costs_is_feasible_and_nearly_optimal() -> None:
+    # Outside reference: scipy.optimize.milp with a 0/1 "dispatched" per lane. Dispatch costs
+    # make the problem non-convex; the plan is the documented heuristic (close lanes that do
+    # not pay, from two starts, beside the best single-lane move). Seen here: 632 of 640
+    # equal; the misses are mostly a store below its floor that the optimum uses as a relay.
+    equal = total = 0
+    for seed in (22, 23):
+        e, t, _ = _compare_with_milp(seed, dispatch=True, count=80)
+        equal, total = equal + e, total + t
+    assert equal >= 0.95 * total
+
+
+def test_with_rules_a_stock_gets_the_same_plan_alone_and_in_a_batch() -> None:
+    # The served plan (one stock) and the simulated and evaluated plans (batches) must be one
+    # function of the stock.
+    rng = np.random.default_rng(11)
+    for _ in range(5):
+        network, values, limits = random_instance(rng)
+        rules = random_rules(rng, network, dispatch=True)
+        stocks = np.array([rng.integers(0, c + 1, size=30) for c in network.capacities]).T
+        together = plan_flows(network, stocks, values, limits, 3, 1e-9, rules)
+        for stock, plan in zip(stocks, together, strict=True):
+            alone = plan_flows(network, stock[None, :], values, limits, 3, 1e-9, rules)[0]
+            assert np.array_equal(alone, plan)
