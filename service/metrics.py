@@ -79,9 +79,9 @@ from sqlalchemy.orm import Session, sessionmaker
 
 from service.db import reporting
 from service.db.base import utcnow
-from service.db.reporting import SolveStatus
-from service.db.tables import JobKind, JobState, NetworkVersion, SolveJob
+from service.db.tables import NetworkVersion, SolveJob
 from service.policies import PolicyCache
+from service.vocabulary import JobKind, JobState, SolveStatus
 
 if TYPE_CHECKING:
     from service.policies import _Entry as CacheEntry

@@ -27,8 +27,6 @@ from service.db.base import utcnow
 from service.db.reporting import CriterionSolve
 from service.db.tables import (
     ClosingCount,
-    JobKind,
-    JobState,
     Network,
     NetworkVersion,
     SolveJob,
@@ -42,7 +40,8 @@ from service.policies import (
     business_date_now,
     load_policy,
 )
-from solver import NetworkSpec
+from service.vocabulary import JobKind, JobState, SolveStatus
+from solver import CRITERIA, NetworkSpec
 
 __all__ = [
     "CAUTION",
@@ -64,7 +63,6 @@ __all__ = [
 
 log = logging.getLogger(__name__)
 
-CRITERIA = ("discounted", "average")
 RECENT_JOBS = 20
 # Live jobs listed at most; the heading gives the full count.
 QUEUE_ROWS = 100
@@ -405,7 +403,12 @@ def _work(kind: str, method: str = "exact") -> str:
     """What a job does, for people."""
     if kind == JobKind.SOLVE and method != "exact":
         return f"{method} solve"
-    return {"solve": "solve", "simulate": "simulation", "what_if": "what-if"}.get(kind, kind)
+    words: dict[str, str] = {
+        JobKind.SOLVE: "solve",
+        JobKind.SIMULATE: "simulation",
+        JobKind.WHAT_IF: "what-if",
+    }
+    return words.get(kind, kind)
 
 
 def _badge(state: str) -> str:
@@ -415,7 +418,7 @@ def _badge(state: str) -> str:
 
 def _solve_cell(cell: SolveCell, now: datetime) -> str:
     parts = [_badge(cell.state)]
-    if cell.state == "ready" and cell.solved_at is not None:
+    if cell.state == SolveStatus.READY and cell.solved_at is not None:
         parts.append(
             f'<span class="detail">solved {_e(_since(now, cell.solved_at))} ago'
             f" in {_e(_seconds(cell.solve_seconds))}</span>"
@@ -581,7 +584,7 @@ def _heatmap_section(view: StatusView) -> str:
 
 
 def _tiles(view: StatusView) -> str:
-    ready = sum(cell.state == "ready" for n in view.networks for cell in n.solves)
+    ready = sum(cell.state == SolveStatus.READY for n in view.networks for cell in n.solves)
     failed = sum(job.state == JobState.FAILED.value for job in view.recent)
     tiles: Iterable[tuple[str, int]] = (
         ("networks", len(view.networks)),

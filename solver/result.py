@@ -24,7 +24,9 @@ __all__ = [
 ]
 
 Criterion = Literal["discounted", "average"]
-# Every criterion, in the order a request without one tries them (the default first).
+# Every criterion, in the order a request that names none tries them (the first the network's
+# current version is solved or being solved for: the same rule for recommendations, closing
+# instructions, exports and pictures).
 CRITERIA: tuple[Criterion, ...] = get_args(Criterion)
 
 

@@ -18,27 +18,17 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from datetime import datetime
-from enum import StrEnum
 from typing import Any
 
 from sqlalchemy import ColumnElement, Select, and_, func, select
 from sqlalchemy.orm import Session, defer
 
 from service.db.repository import with_current_version
-from service.db.tables import JobKind, JobState, Network, NetworkVersion, Policy, SolveJob
+from service.db.tables import Network, NetworkVersion, Policy, SolveJob
+from service.vocabulary import JobKind, JobState, SolveStatus
 from solver.result import CRITERIA
 
-__all__ = ["CriterionSolve", "NetworkSolves", "SolveStatus", "solve_states"]
-
-
-class SolveStatus(StrEnum):
-    """Where one criterion of a network's current version stands."""
-
-    READY = "ready"
-    QUEUED = "queued"
-    RUNNING = "running"
-    FAILED = "failed"
-    NOT_REQUESTED = "not_requested"
+__all__ = ["CriterionSolve", "NetworkSolves", "solve_states"]
 
 
 @dataclass(frozen=True)
