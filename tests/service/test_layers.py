@@ -10,6 +10,7 @@ only shrink: a new module breaking the rule fails here.
 from __future__ import annotations
 
 import ast
+import re
 from pathlib import Path
 
 import service
@@ -212,3 +213,24 @@ ROUTERS_ON_STORAGE = {
 def test_routers_reach_storage_only_the_listed_ones() -> None:
     users = {path for path in _importers(("service.db",)) if path.startswith("service/api/")}
     assert users <= ROUTERS_ON_STORAGE
+
+
+def test_the_feature_table_names_files_that_exist() -> None:
+    """Every file named in DEVELOPERS.md's "Where each feature lives" exists (under service/,
+    tests/service/ or the repository's root)."""
+    guide = (ROOT / "DEVELOPERS.md").read_text(encoding="utf-8")
+    section = guide.split("## Where each feature lives", 1)[1].split("\n## ", 1)[0]
+    rows = [line for line in section.splitlines() if line.startswith("| ") and ".py" in line]
+    named = {
+        word.strip("`")
+        for row in rows
+        for word in re.findall(r"`[^`]+`", row)
+        if word.strip("`").endswith((".py", "/"))
+    }
+    assert len(rows) >= 10 and len(named) >= 30
+    missing = sorted(
+        name
+        for name in named
+        if not any((base / name).exists() for base in (ROOT, SERVICE, ROOT / "tests" / "service"))
+    )
+    assert missing == []
