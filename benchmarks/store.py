@@ -39,8 +39,9 @@ import api  # noqa: E402  (scratch PostgreSQL databases, shared with benchmarks/
 from service.db import repository  # noqa: E402
 from service.db.migrate import upgrade  # noqa: E402
 from service.db.session import make_engine, make_session_factory  # noqa: E402
-from service.db.tables import JobState, Network, NetworkVersion, Policy, SolveJob  # noqa: E402
+from service.db.tables import Network, NetworkVersion, Policy, SolveJob  # noqa: E402
 from service.policies import PolicyCache, load_policy  # noqa: E402
+from service.vocabulary import JobState  # noqa: E402
 from solver import NetworkSpec  # noqa: E402
 
 DEMO = ROOT / "service" / "data" / "demo_network.json"

@@ -34,9 +34,11 @@ import numpy as np
 from numpy.typing import NDArray
 from pydantic import BaseModel, ValidationError
 
+from service.json_pointer import json_pointer
 from service.modes import resolve_method
 from service.priced import FULL_TABLE_MAX_STATES, plan_table
 from service.schemas import MAX_SEED, Overrides, SimulationRequest
+from service.settings import SIMULATION_MAX_REPLICATION_DAYS
 from solver import (
     Criterion,
     InvalidModelError,
@@ -68,7 +70,6 @@ from solver.simulation import (
 )
 
 __all__ = [
-    "MAX_REPLICATION_DAYS",
     "AnalysisInputError",
     "apply_overrides",
     "check_simulation",
@@ -77,10 +78,6 @@ __all__ = [
     "run_what_if",
 ]
 
-# Default bound on (days + warmup days) x replications. Each simulated day costs the same
-# whatever the number of stock states (a table look-up per policy and replication), so the
-# simulation's time is bounded by this and the network's size by the solver's limits.
-MAX_REPLICATION_DAYS = 2_000_000
 REFERENCE = "optimal"
 PRICED_REFERENCE = "priced"
 # The priced policy without the rules is only simulated here: its own certificate is not
@@ -99,11 +96,6 @@ class AnalysisInputError(ValueError):
     def __init__(self, errors: Sequence[tuple[str, str]]) -> None:
         super().__init__("; ".join(f"{pointer}: {detail}" for pointer, detail in errors))
         self.errors = list(errors)
-
-
-def _escape(token: str) -> str:
-    """A JSON pointer reference token (RFC 6901)."""
-    return token.replace("~", "~0").replace("/", "~1")
 
 
 def _non_finite(document: Any, path: str = "") -> str | None:
@@ -154,7 +146,7 @@ def check_simulation(
     params: SimulationRequest,
     *,
     limits: SizeLimits | None = None,
-    max_replication_days: int = MAX_REPLICATION_DAYS,
+    max_replication_days: int = SIMULATION_MAX_REPLICATION_DAYS,
     method: str = "exact",
 ) -> None:
     """Refuse, before any work, a simulation that does not fit `spec` or is too long:
@@ -183,12 +175,12 @@ def check_simulation(
 def _start_stock_problems(spec: NetworkSpec, stock: Mapping[str, int]) -> list[tuple[str, str]]:
     capacities = {location.id: location.capacity for location in spec.locations}
     problems = [
-        (f"/start_stock/{_escape(location)}", "missing")
+        (json_pointer("start_stock", location), "missing")
         for location in capacities
         if location not in stock
     ]
     for location, units in stock.items():
-        pointer = f"/start_stock/{_escape(location)}"
+        pointer = json_pointer("start_stock", location)
         if location not in capacities:
             problems.append((pointer, f"unknown location {location!r}"))
         elif not 0 <= units <= capacities[location]:
@@ -202,7 +194,7 @@ def run_simulation(
     optimal: PolicyResult | PricedPolicy | None = None,
     *,
     limits: SizeLimits | None = None,
-    max_replication_days: int = MAX_REPLICATION_DAYS,
+    max_replication_days: int = SIMULATION_MAX_REPLICATION_DAYS,
     progress: ProgressCallback | None = None,
     method: str = "exact",
 ) -> dict[str, Any]:
@@ -462,7 +454,7 @@ def apply_overrides(spec: NetworkSpec, overrides: Overrides) -> NetworkSpec:
 
     index = {location["id"]: i for i, location in enumerate(document["locations"])}
     for location_id, change in overrides.locations.items():
-        pointer = f"/overrides/locations/{_escape(location_id)}"
+        pointer = json_pointer("overrides", "locations", location_id)
         i = index.get(location_id)
         if i is None:
             known = ", ".join(repr(known_id) for known_id in index)

@@ -18,13 +18,14 @@ from pydantic import ValidationError
 
 from service import operations, priced
 from service.analysis import AnalysisInputError, run_simulation
-from service.db.tables import JobKind
 from service.errors import UsageError
 from service.files import load_network, write_json_atomically
 from service.logs import logging_from_environment
 from service.modes import resolve_method
 from service.schemas import SimulationRequest
+from service.vocabulary import JobKind, JobState
 from solver import (
+    CRITERIA,
     InvalidStockError,
     NetworkSpec,
     PolicyResult,
@@ -89,7 +90,7 @@ def _parser() -> argparse.ArgumentParser:
     solve.add_argument("network", type=Path, metavar="NETWORK.json", help=_NETWORK_HELP)
     solve.add_argument(
         "--criterion",
-        choices=["discounted", "average"],
+        choices=CRITERIA,
         default="discounted",
         help="discounted profit, or long-run profit per day (default: discounted)",
     )
@@ -125,7 +126,7 @@ def _parser() -> argparse.ArgumentParser:
     simulate.add_argument("network", type=Path, metavar="NETWORK.json", help=_NETWORK_HELP)
     simulate.add_argument(
         "--criterion",
-        choices=["discounted", "average"],
+        choices=CRITERIA,
         default="average",
         help="the criterion the optimal policy is solved for (default: average)",
     )
@@ -308,7 +309,7 @@ def _parser() -> argparse.ArgumentParser:
         "number, attempts, seconds, error.",
     )
     list_jobs.add_argument(
-        "--state", choices=["queued", "running", "done", "failed"], help="only jobs in this state"
+        "--state", choices=[state.value for state in JobState], help="only jobs in this state"
     )
     list_jobs.add_argument(
         "--kind",
@@ -435,10 +436,10 @@ def _label(text: str) -> str:
 
 def _criteria(text: str) -> list[str]:
     criteria = [part.strip() for part in text.split(",") if part.strip()]
-    unknown = [c for c in criteria if c not in ("discounted", "average")]
+    unknown = [c for c in criteria if c not in CRITERIA]
     if unknown or not criteria:
         raise argparse.ArgumentTypeError(
-            f"criteria must be discounted and/or average, got {text!r}"
+            f"criteria must be {' and/or '.join(CRITERIA)}, got {text!r}"
         )
     return criteria
 

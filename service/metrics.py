@@ -77,10 +77,11 @@ from sqlalchemy import and_, case, func, select
 from sqlalchemy.exc import SQLAlchemyError
 from sqlalchemy.orm import Session, sessionmaker
 
-from service.db import repository
+from service.db import reporting
 from service.db.base import utcnow
-from service.db.tables import JobKind, JobState, Network, NetworkVersion, Policy, SolveJob
+from service.db.tables import NetworkVersion, SolveJob
 from service.policies import PolicyCache
+from service.vocabulary import JobKind, JobState, SolveStatus
 
 if TYPE_CHECKING:
     from service.policies import _Entry as CacheEntry
@@ -346,19 +347,12 @@ class DatabaseCollector(Collector):
 
     @staticmethod
     def _policy_age(session: Session) -> GaugeMetricFamily:
-        rows = session.execute(
-            repository.with_current_version(Network.id, Policy.criterion, Policy.solved_at)
-            .join(
-                Policy,
-                and_(
-                    Policy.tenant_id == Network.tenant_id,
-                    Policy.spec_hash == NetworkVersion.spec_hash,
-                    Policy.method == NetworkVersion.method,
-                ),
-            )
-            .where(Network.archived.is_(False))
-            .order_by(Network.id, Policy.criterion)
-        ).all()
+        ready = sorted(
+            (row.network.id, solve.criterion, solve.solved_at)
+            for row in reporting.solve_states(session, tenant_id=None)
+            for solve in row.solves
+            if solve.state == SolveStatus.READY and solve.solved_at is not None
+        )
         now = utcnow()
         family = GaugeMetricFamily(
             "stockrelay_policy_age_seconds",
@@ -366,7 +360,7 @@ class DatabaseCollector(Collector):
             "network and criterion; no series while the current version awaits its solve.",
             labels=["network_id", "criterion"],
         )
-        for network_id, criterion, solved_at in rows:
+        for network_id, criterion, solved_at in ready:
             family.add_metric(
                 [str(network_id), criterion], max(0.0, (now - solved_at).total_seconds())
             )

@@ -26,11 +26,10 @@ from service.codec import CorruptPolicyError, StoredPolicy, decode_policy
 from service.db import repository
 from service.db.repository import VersionHead
 from service.db.tables import Network, NetworkVersion
-from solver import InvalidStockError, Recommendation
+from solver import CRITERIA, InvalidStockError, Recommendation
 from solver.spec import DEFAULT_TIMEZONE
 
 __all__ = [
-    "CRITERIA_ORDER",
     "NetworkKey",
     "NetworkRef",
     "PolicyCache",
@@ -49,11 +48,6 @@ __all__ = [
 ]
 
 log = logging.getLogger(__name__)
-
-# A request that names no criterion gets the first of these the network's current version is
-# solved for (or being solved for): the same rule for recommendations, closing instructions,
-# exports and pictures.
-CRITERIA_ORDER = ("discounted", "average")
 
 
 class UnknownNetworkError(LookupError):
@@ -152,7 +146,7 @@ def load_policy(
     session: Session, cache: PolicyCache, network: NetworkKey, criterion: str | None
 ) -> ServedPolicy:
     """The policy of the newest version of `network` that has one for `criterion` (None: the
-    first of CRITERIA_ORDER the current version is solved for). An older version answers, with
+    first of solver.CRITERIA the current version is solved for). An older version answers, with
     `stale` set, only while the current one's solve is queued or running: `stale` never lasts
     when nothing is being solved. UnknownNetworkError when the network is missing, another
     tenant's or archived; PolicyNotReadyError while the current version's solve is under way
@@ -197,13 +191,13 @@ def _default_criterion(
     session: Session, cache: PolicyCache, network: NetworkKey, newest: VersionHead
 ) -> str:
     # The common case costs nothing: the current version's first criterion is cached.
-    if (newest.id, CRITERIA_ORDER[0]) in cache:
-        return CRITERIA_ORDER[0]
+    if (newest.id, CRITERIA[0]) in cache:
+        return CRITERIA[0]
     requested = repository.criteria_requested(session, network.tenant_id, newest.spec_hash)
-    for criterion in CRITERIA_ORDER:
+    for criterion in CRITERIA:
         if criterion in requested:
             return criterion
-    return CRITERIA_ORDER[0]
+    return CRITERIA[0]
 
 
 def _check_being_solved(
@@ -217,7 +211,7 @@ def _check_being_solved(
     if jobs and jobs[0].state in repository.LIVE_STATES:
         return
     requested = repository.criteria_requested(session, network.tenant_id, newest.spec_hash)
-    solved_for = [c for c in CRITERIA_ORDER if c in requested and c != criterion]
+    solved_for: list[str] = [c for c in CRITERIA if c in requested and c != criterion]
     others = (
         f"it is solved (or being solved) for {', '.join(solved_for)}; ask for that criterion"
         if solved_for

@@ -24,6 +24,7 @@ from sqlalchemy.exc import OperationalError
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
 from service.analysis import AnalysisInputError
+from service.json_pointer import json_pointer
 from service.logs import REQUEST_ID
 from service.policies import (
     PolicyNotReadyError,
@@ -274,7 +275,7 @@ def problem_for(exc: Exception) -> tuple[int, str, str, str, dict[str, Any]] | N
         return exc.status, exc.slug, exc.title, exc.detail, exc.extensions
     if isinstance(exc, StockProblemsError):
         errors = [
-            {"pointer": "/stock/" + _escape(location), "detail": what}
+            {"pointer": json_pointer("stock", location), "detail": what}
             for location, what in exc.problems
         ]
         return 422, "invalid-stock", "Invalid stock", str(exc), {"errors": errors}
@@ -324,11 +325,6 @@ DOMAIN_ERRORS: tuple[type[Exception], ...] = (
 )
 
 
-def _escape(token: str) -> str:
-    """A JSON pointer reference token (RFC 6901)."""
-    return token.replace("~", "~0").replace("/", "~1")
-
-
 def _body_parts(parts: list[int | str], document: Any, missing: bool) -> list[int | str]:
     """`parts` without the tags pydantic adds to `loc` for a discriminated union: a tag names
     the union member chosen (e.g. "pmf", or "weekly" before the days of a weekly value), not a
@@ -354,7 +350,7 @@ def _pointer(loc: Sequence[int | str], body: Any = None, missing: bool = False) 
     where = loc[0] if loc and loc[0] in ("query", "path", "header") else None
     if where is None:
         parts = _body_parts(parts, body, missing)
-    pointer = "".join("/" + _escape(str(p)) for p in parts)
+    pointer = json_pointer(*parts)
     return f"{where}:{pointer}" if where else pointer
 
 

@@ -19,8 +19,9 @@ from pydantic import (
     field_validator,
 )
 
-from solver import NetworkSpec
-from solver.spec import LaneSpec, NightCount
+from service.vocabulary import JobStateName, SolveStatusName
+from solver import CRITERIA, Criterion, NetworkSpec
+from solver.spec import LaneSpec, NightCount, Weekday
 
 __all__ = [
     "DEFAULT_CRITERION_RULE",
@@ -36,7 +37,6 @@ __all__ = [
     "ClosingStockIn",
     "ClosingStockOut",
     "CorrectionOut",
-    "CriterionName",
     "EstimateOut",
     "HistoryOut",
     "HistoryRowIn",
@@ -71,7 +71,6 @@ __all__ = [
     "SolveState",
     "TransferOut",
     "VersionOut",
-    "WeekdayName",
     "WeekdayTestOut",
     "WhatIfChangeOut",
     "WhatIfJobOut",
@@ -82,14 +81,11 @@ __all__ = [
     "known_timezone",
 ]
 
-CriterionName = Literal["discounted", "average"]
 DEFAULT_CRITERION_RULE = (
-    "Absent: the first of discounted, average that the network's current version is solved for."
+    f"Absent: the first of {', '.join(CRITERIA)} that the network's current version is solved for."
 )
 SolveModeName = Literal["exact", "priced", "auto"]
 MethodName = Literal["exact", "priced"]
-# Weekdays as the network specification names them (solver.spec.WEEKDAYS), Monday first.
-WeekdayName = Literal["mon", "tue", "wed", "thu", "fri", "sat", "sun"]
 
 
 def _as_utc(moment: datetime) -> datetime:
@@ -110,7 +106,7 @@ Stock = Annotated[
     Field(description="Closing stock by location id; every location of the network, once."),
 ]
 Criteria = Annotated[
-    list[CriterionName],
+    list[Criterion],
     Field(min_length=1, max_length=2, description="Criteria to solve for (default discounted)."),
 ]
 
@@ -207,7 +203,7 @@ class JobOut(_Out):
     version_id: int = Field(description="Internal id of that version's row; prefer the two above.")
     criterion: str
     method: MethodName = Field(default="exact", description="exact or priced: how the job solves.")
-    state: Literal["queued", "running", "done", "failed"]
+    state: JobStateName
     attempts: int
     created_at: Timestamp
     started_at: Timestamp | None
@@ -231,7 +227,7 @@ class SolveState(BaseModel):
     """Where the policy of the current version stands for one criterion."""
 
     criterion: str
-    state: Literal["ready", "queued", "running", "failed", "not_requested"]
+    state: SolveStatusName
     job_id: int | None = None
     solved_at: Timestamp | None = None
     error: str | None = None
@@ -286,7 +282,7 @@ class RecommendationRequest(BaseModel):
     )
 
     stock: Stock
-    criterion: CriterionName | None = Field(default=None, description=DEFAULT_CRITERION_RULE)
+    criterion: Criterion | None = Field(default=None, description=DEFAULT_CRITERION_RULE)
     business_date: BusinessDate = None
 
 
@@ -375,7 +371,7 @@ class RecommendationOut(BaseModel):
         description="The business date whose night the answer is for (as sent, or today in the "
         "network's time zone for a weekly network); null for a stationary network sent none.",
     )
-    night: WeekdayName | None = Field(
+    night: Weekday | None = Field(
         default=None, description="Weekday of that business date: the night of the moves."
     )
     method: MethodName = Field(
@@ -400,7 +396,7 @@ class BatchItem(BaseModel):
 
     network_id: Annotated[int, Field(ge=1, le=2_147_483_647)]
     stock: Stock
-    criterion: CriterionName | None = Field(default=None, description=DEFAULT_CRITERION_RULE)
+    criterion: Criterion | None = Field(default=None, description=DEFAULT_CRITERION_RULE)
     business_date: BusinessDate = None
 
 
@@ -731,7 +727,7 @@ class SimulationRequest(BaseModel):
         },
     )
 
-    criterion: CriterionName = Field(
+    criterion: Criterion = Field(
         default="average", description="Whose optimal policy is simulated."
     )
     days: Annotated[int, Field(ge=1, le=3650, description="Days measured per replication.")] = 365
@@ -813,7 +809,7 @@ class RulesEffectOut(BaseModel):
 
 
 class SimulationReportOut(BaseModel):
-    criterion: CriterionName
+    criterion: Criterion
     days: int
     replications: int
     warmup_days: int
@@ -836,8 +832,8 @@ class _AnalysisJobOut(BaseModel):
     id: int
     network_id: int
     version: int = Field(description="The network version analysed.")
-    state: Literal["queued", "running", "done", "failed"]
-    criterion: CriterionName
+    state: JobStateName
+    criterion: Criterion
     attempts: int
     created_at: Timestamp
     started_at: Timestamp | None
@@ -933,7 +929,7 @@ class WhatIfRequest(BaseModel):
         },
     )
 
-    criterion: CriterionName = "discounted"
+    criterion: Criterion = "discounted"
     overrides: Overrides
 
 
@@ -986,7 +982,7 @@ class MoveChangesOut(BaseModel):
 
 
 class WhatIfResultOut(BaseModel):
-    criterion: CriterionName
+    criterion: Criterion
     base: WhatIfSummaryOut
     changed: WhatIfSummaryOut
     change: WhatIfChangeOut

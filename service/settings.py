@@ -12,6 +12,11 @@ from threadpoolctl import threadpool_limits
 
 from solver import SizeLimits
 
+# Default bound on (days + warmup days) x replications of a simulation. Each simulated day costs
+# the same whatever the number of stock states (a table look-up per policy and replication), so
+# the simulation's time is bounded by this and the network's size by the solver's limits.
+SIMULATION_MAX_REPLICATION_DAYS = 2_000_000
+
 __all__ = ["Settings"]
 
 
@@ -48,7 +53,7 @@ class Settings(BaseSettings):
             ge=1,
             description="Largest simulation accepted: (days + warmup days) x replications.",
         ),
-    ] = 2_000_000
+    ] = SIMULATION_MAX_REPLICATION_DAYS
     what_if_sync_max_states: Annotated[
         int,
         Field(

@@ -22,15 +22,13 @@ from datetime import date, datetime, time
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
-from service.db import repository
+from service.db import reporting
 from service.db.base import utcnow
+from service.db.reporting import CriterionSolve
 from service.db.tables import (
     ClosingCount,
-    JobKind,
-    JobState,
     Network,
     NetworkVersion,
-    Policy,
     SolveJob,
 )
 from service.pictures import caption, choose_plane, net_inflow_grid, render_moves
@@ -42,7 +40,8 @@ from service.policies import (
     business_date_now,
     load_policy,
 )
-from solver import NetworkSpec
+from service.vocabulary import JobKind, JobState, SolveStatus
+from solver import CRITERIA, NetworkSpec
 
 __all__ = [
     "CAUTION",
@@ -64,7 +63,6 @@ __all__ = [
 
 log = logging.getLogger(__name__)
 
-CRITERIA = ("discounted", "average")
 RECENT_JOBS = 20
 # Live jobs listed at most; the heading gives the full count.
 QUEUE_ROWS = 100
@@ -83,17 +81,8 @@ class UnknownNetworkChoice(LookupError):
     """`?network=` names no network of the tenant (or an archived one)."""
 
 
-@dataclass(frozen=True)
-class SolveCell:
-    """One criterion of a network's current version: "ready" (with when and how long the solve
-    took), "queued", "running", "failed" (with the error) or "not requested"."""
-
-    criterion: str
-    state: str
-    solved_at: datetime | None = None
-    solve_seconds: float | None = None
-    job_id: int | None = None
-    error: str | None = None
+# One criterion of a network's current version (service.db.reporting).
+SolveCell = CriterionSolve
 
 
 @dataclass(frozen=True)
@@ -221,74 +210,23 @@ def gather(
 
 
 def _networks(session: Session, tenant_id: int) -> list[NetworkLine]:
-    rows = session.execute(
-        repository.with_current_version(
-            Network.id,
-            Network.name,
-            NetworkVersion.number,
-            NetworkVersion.spec_hash,
-            NetworkVersion.spec_json,
-            NetworkVersion.method,
-            Network.closing_cutoff,
-        )
-        .where(Network.tenant_id == tenant_id, Network.archived.is_(False))
-        .order_by(Network.id)
-    ).all()
-    hashes = sorted({row.spec_hash for row in rows})
-    policies = {
-        (p.spec_hash, p.criterion, p.method): p
-        for p in session.execute(
-            select(
-                Policy.spec_hash,
-                Policy.criterion,
-                Policy.method,
-                Policy.solved_at,
-                Policy.solve_seconds,
-            ).where(Policy.tenant_id == tenant_id, Policy.spec_hash.in_(hashes))
-        ).all()
-    }
-    newest_job = (
-        select(func.max(SolveJob.id))
-        .where(
-            SolveJob.tenant_id == tenant_id,
-            SolveJob.spec_hash.in_(hashes),
-            SolveJob.kind == JobKind.SOLVE.value,
-        )
-        .group_by(SolveJob.spec_hash, SolveJob.criterion, SolveJob.method)
+    states = reporting.solve_states(session, tenant_id=tenant_id, with_spec=True)
+    closing = _closing(
+        session,
+        [(row.network.id, row.version.spec_json, row.network.closing_cutoff) for row in states],
     )
-    jobs = {
-        (job.spec_hash, job.criterion, job.method): job
-        for job in session.scalars(select(SolveJob).where(SolveJob.id.in_(newest_job)))
-    }
-    closing = _closing(session, [(row.id, row.spec_json, row.closing_cutoff) for row in rows])
     times = _solve_times(session, tenant_id)
-    lines = []
-    for row in rows:
-        cells = []
-        for criterion in CRITERIA:
-            policy = policies.get((row.spec_hash, criterion, row.method))
-            job = jobs.get((row.spec_hash, criterion, row.method))
-            if policy is not None:
-                cells.append(SolveCell(criterion, "ready", policy.solved_at, policy.solve_seconds))
-            elif job is None:
-                cells.append(SolveCell(criterion, "not requested"))
-            else:
-                # A done job without its policy: the policy was found corrupt and is being
-                # solved again (the same reading as GET /v1/networks/{id}).
-                state = JobState.QUEUED.value if job.state == JobState.DONE else job.state
-                error = job.error if job.state == JobState.FAILED else None
-                cells.append(SolveCell(criterion, state, job_id=job.id, error=error))
-        lines.append(
-            NetworkLine(
-                row.id,
-                row.name,
-                row.number,
-                tuple(cells),
-                closing.get(row.id),
-                tuple(times.get(row.id, ())),
-            )
+    return [
+        NetworkLine(
+            row.network.id,
+            row.network.name,
+            row.version.number,
+            row.solves,
+            closing.get(row.network.id),
+            tuple(times.get(row.network.id, ())),
         )
-    return lines
+        for row in states
+    ]
 
 
 def _closing(
@@ -465,16 +403,22 @@ def _work(kind: str, method: str = "exact") -> str:
     """What a job does, for people."""
     if kind == JobKind.SOLVE and method != "exact":
         return f"{method} solve"
-    return {"solve": "solve", "simulate": "simulation", "what_if": "what-if"}.get(kind, kind)
+    words: dict[str, str] = {
+        JobKind.SOLVE: "solve",
+        JobKind.SIMULATE: "simulation",
+        JobKind.WHAT_IF: "what-if",
+    }
+    return words.get(kind, kind)
 
 
 def _badge(state: str) -> str:
-    return f'<span class="state state-{_e(state.replace(" ", "-"))}">{_e(state)}</span>'
+    words = state.replace("_", " ")  # "not_requested" reads "not requested"
+    return f'<span class="state state-{_e(words.replace(" ", "-"))}">{_e(words)}</span>'
 
 
 def _solve_cell(cell: SolveCell, now: datetime) -> str:
     parts = [_badge(cell.state)]
-    if cell.state == "ready" and cell.solved_at is not None:
+    if cell.state == SolveStatus.READY and cell.solved_at is not None:
         parts.append(
             f'<span class="detail">solved {_e(_since(now, cell.solved_at))} ago'
             f" in {_e(_seconds(cell.solve_seconds))}</span>"
@@ -640,7 +584,7 @@ def _heatmap_section(view: StatusView) -> str:
 
 
 def _tiles(view: StatusView) -> str:
-    ready = sum(cell.state == "ready" for n in view.networks for cell in n.solves)
+    ready = sum(cell.state == SolveStatus.READY for n in view.networks for cell in n.solves)
     failed = sum(job.state == JobState.FAILED.value for job in view.recent)
     tiles: Iterable[tuple[str, int]] = (
         ("networks", len(view.networks)),

@@ -34,6 +34,7 @@ from typing import Any
 
 from service.api.health import RUN_HEADER
 from service.schemas import DEMO_NETWORK, DEMO_STOCK
+from service.vocabulary import SolveStatus
 
 __all__ = ["port_problem", "ready_answer", "supervise"]
 
@@ -227,7 +228,11 @@ def _announce(
             def settled() -> bool:
                 nonlocal state
                 state = _discounted_state(base, network_id, key)
-                return state in ("ready", "failed", "not_requested")
+                return state in (
+                    SolveStatus.READY,
+                    SolveStatus.FAILED,
+                    SolveStatus.NOT_REQUESTED,
+                )
 
             _wait(settled, stop, children, SOLVE_DEADLINE_SECONDS)
         if stop.is_set():
@@ -239,7 +244,7 @@ def _announce(
             f"  curl -s -X POST {base}/v1/networks/{network_id}/recommendation "
             f"{auth_header} -H 'content-type: application/json' -d '{body}'",
         ]
-        if state != "ready":
+        if state != SolveStatus.READY:
             lines += ["", f"(its policy is not ready yet: {state}; until then the answer is 503)"]
     lines += ["", "Ctrl-C stops the API and the workers."]
     sys.stdout.write("\n" + "\n".join(lines) + "\n\n")

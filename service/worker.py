@@ -41,9 +41,10 @@ from service import analysis
 from service.codec import CorruptPolicyError, StoredPolicy, decode_policy, encode_policy
 from service.db import repository
 from service.db.base import utcnow
-from service.db.tables import JobKind, NetworkVersion, SolveMethod
+from service.db.tables import NetworkVersion, SolveMethod
 from service.schemas import SimulationRequest, WhatIfRequest
 from service.settings import Settings
+from service.vocabulary import JobKind
 from solver import Criterion, NetworkSpec, SolverError, solve_network
 from solver.priced import solve_priced
 from solver.priced_result import PricedProgress

@@ -27,6 +27,7 @@ from solver.priced import (
 )
 from solver.priced_result import Certificate, PricedOptions, PricedPolicy, PricedProgress
 from solver.result import (
+    CRITERIA,
     Alternative,
     Criterion,
     PolicyResult,
@@ -37,6 +38,7 @@ from solver.result import (
 from solver.spec import NetworkSpec
 
 __all__ = [
+    "CRITERIA",
     "Alternative",
     "Certificate",
     "Criterion",

@@ -65,12 +65,11 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 from scipy import optimize, special, stats
 
-from solver.spec import NegativeBinomialDemand, PoissonDemand
+from solver.spec import WEEKDAY_NAMES, NegativeBinomialDemand, PoissonDemand
 
 __all__ = [
     "MAX_DAILY_UNITS",
     "SHORT_HISTORY_DAYS",
-    "WEEKDAYS",
     "CalibrationError",
     "CountEstimate",
     "Family",
@@ -84,8 +83,6 @@ __all__ = [
 ]
 
 Family = Literal["poisson", "negative_binomial"]
-
-WEEKDAYS = ("Monday", "Tuesday", "Wednesday", "Thursday", "Friday", "Saturday", "Sunday")
 
 # Project choice: four weeks of history, so that every weekday is seen at least four times.
 SHORT_HISTORY_DAYS = 28
@@ -943,7 +940,7 @@ def weekday_effect(
     pooled_counts = _demand_counts(s, stock, w)
     pooled, pooled_mu = _estimate(pooled_counts, confidence=confidence, alpha=alpha)
     groups = [
-        _demand_counts(s[days == day], stock[days == day], w[days == day], WEEKDAYS[day])
+        _demand_counts(s[days == day], stock[days == day], w[days == day], WEEKDAY_NAMES[day])
         for day in range(7)
     ]
     fitted = [

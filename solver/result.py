@@ -5,7 +5,7 @@ from __future__ import annotations
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from functools import cached_property
-from typing import Literal
+from typing import Literal, get_args
 
 import numpy as np
 from numpy.typing import NDArray
@@ -14,6 +14,7 @@ from solver.errors import InvalidStockError
 from solver.model import flow_costs, flow_endpoints
 
 __all__ = [
+    "CRITERIA",
     "Alternative",
     "Criterion",
     "PolicyResult",
@@ -23,6 +24,10 @@ __all__ = [
 ]
 
 Criterion = Literal["discounted", "average"]
+# Every criterion, in the order a request that names none tries them (the first the network's
+# current version is solved or being solved for: the same rule for recommendations, closing
+# instructions, exports and pictures).
+CRITERIA: tuple[Criterion, ...] = get_args(Criterion)
 
 
 @dataclass(frozen=True)

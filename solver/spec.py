@@ -25,7 +25,7 @@ default, so a network that does not use it serialises (and hashes) exactly as be
 from __future__ import annotations
 
 import math
-from typing import Annotated, Any, Generic, Literal, TypeVar
+from typing import Annotated, Any, Generic, Literal, TypeVar, get_args
 
 from pydantic import (
     BaseModel,
@@ -41,6 +41,7 @@ from pydantic_core import InitErrorDetails, PydanticCustomError
 
 __all__ = [
     "WEEKDAYS",
+    "WEEKDAY_NAMES",
     "DailyDistributions",
     "Distribution",
     "LaneSpec",
@@ -51,6 +52,7 @@ __all__ = [
     "NightlyUnits",
     "PmfDemand",
     "PoissonDemand",
+    "Weekday",
     "WeeklyCount",
     "WeeklyDistribution",
     "WeeklyUnits",
@@ -59,7 +61,10 @@ __all__ = [
 PMF_SUM_TOLERANCE = 1e-9
 # Keys of a weekly field, Monday first: day d of a week is WEEKDAYS[d] (0 = Monday, as in
 # datetime.date.weekday()).
-WEEKDAYS = ("mon", "tue", "wed", "thu", "fri", "sat", "sun")
+Weekday = Literal["mon", "tue", "wed", "thu", "fri", "sat", "sun"]
+WEEKDAYS: tuple[Weekday, ...] = get_args(Weekday)
+# The same days for people (messages), in the same order.
+WEEKDAY_NAMES = ("Monday", "Tuesday", "Wednesday", "Thursday", "Friday", "Saturday", "Sunday")
 DEFAULT_TIMEZONE = "UTC"
 
 _Amount = Annotated[float, Field(ge=0, allow_inf_nan=False)]

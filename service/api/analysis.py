@@ -19,7 +19,7 @@ from sqlalchemy.orm import Session
 from service.analysis import apply_overrides, check_simulation, new_seed, run_what_if
 from service.api.deps import JobId, NetworkId, Reader, SessionDep, SettingsDep, get_network
 from service.db import repository
-from service.db.tables import JobKind, Network, NetworkVersion, SolveJob
+from service.db.tables import Network, NetworkVersion, SolveJob
 from service.modes import resolve_method
 from service.problems import NotFound, RateLimited
 from service.schemas import (
@@ -32,6 +32,7 @@ from service.schemas import (
     WhatIfResultOut,
 )
 from service.settings import Settings
+from service.vocabulary import JobKind
 from solver import NetworkSpec
 from solver.build import check_size
 

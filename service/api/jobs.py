@@ -3,15 +3,16 @@ network (/v1/networks/{id}/simulations/{job_id}, /v1/networks/{id}/what-if/{job_
 
 from __future__ import annotations
 
-from typing import Annotated, Literal
+from typing import Annotated
 
 from fastapi import APIRouter, Query
 
 from service.api.deps import JobId, Reader, SessionDep
 from service.db import repository
-from service.db.tables import JobKind, NetworkVersion
+from service.db.tables import NetworkVersion
 from service.problems import NotFound
 from service.schemas import JobOut
+from service.vocabulary import JobKind, JobStateName
 
 router = APIRouter(prefix="/v1/jobs", tags=["jobs"])
 
@@ -34,7 +35,7 @@ def get_job(job_id: JobId, session: SessionDep, caller: Reader) -> JobOut:
 def list_jobs(
     session: SessionDep,
     caller: Reader,
-    state: Literal["queued", "running", "done", "failed"] | None = None,
+    state: JobStateName | None = None,
     limit: Annotated[int, Query(ge=1, le=1000)] = 100,
 ) -> list[JobOut]:
     """Newest first."""

@@ -31,10 +31,10 @@ from service.pictures import (
 )
 from service.policies import PolicyCache, ServedPolicy, business_date_of, load_policy
 from service.problems import POLICY_NOT_READY, InvalidInput
-from service.schemas import DEFAULT_CRITERION_RULE, CriterionName
-from service.schemas import WeekdayName as Weekday
+from service.schemas import DEFAULT_CRITERION_RULE
+from solver import Criterion
 from solver.priced_result import PricedPolicy
-from solver.spec import WEEKDAYS
+from solver.spec import WEEKDAYS, Weekday
 
 router = APIRouter(tags=["pictures"])
 
@@ -122,7 +122,7 @@ def _phase(
 
 
 PlaneDep = Annotated[PlaneQuery, Depends(plane_query)]
-CriterionQuery = Annotated[CriterionName | None, Query(description=DEFAULT_CRITERION_RULE)]
+CriterionQuery = Annotated[Criterion | None, Query(description=DEFAULT_CRITERION_RULE)]
 Annotate = Annotated[
     bool,
     Query(

@@ -26,7 +26,8 @@ from service.api.views import certificate_out
 from service.policies import ServedPolicy, load_policy
 from service.priced import FULL_TABLE_MAX_STATES, all_stocks
 from service.problems import POLICY_NOT_READY, InvalidInput
-from service.schemas import DEFAULT_CRITERION_RULE, CriterionName
+from service.schemas import DEFAULT_CRITERION_RULE
+from solver import Criterion
 from solver.priced_result import PricedPolicy
 from solver.spec import WEEKDAYS
 
@@ -60,7 +61,7 @@ def export_policy(
     cache: CacheDep,
     caller: Reader,
     format: Annotated[Literal["json", "csv"], Query()] = "json",
-    criterion: Annotated[CriterionName | None, Query(description=DEFAULT_CRITERION_RULE)] = None,
+    criterion: Annotated[Criterion | None, Query(description=DEFAULT_CRITERION_RULE)] = None,
 ) -> StreamingResponse:
     network = get_network(session, caller.tenant_id, network_id)
     served = load_policy(session, cache, network, criterion)
@@ -97,7 +98,7 @@ def _chunks(served: ServedPolicy) -> Iterator[tuple[list[str], np.ndarray, np.nd
     """Rows in blocks: (leading weekday cells, stock, units per lane, value)."""
     result = served.result
     for phase in range(result.phases):
-        lead = [WEEKDAYS[phase]] if result.phases > 1 else []
+        lead: list[str] = [WEEKDAYS[phase]] if result.phases > 1 else []
         for start in range(0, result.n_states, _ROWS_PER_CHUNK):
             stop = min(start + _ROWS_PER_CHUNK, result.n_states)
             if isinstance(result, PricedPolicy):

@@ -20,6 +20,7 @@ from starlette.concurrency import run_in_threadpool
 from service.api.deps import CacheDep, NetworkId, Reader, sessions_of
 from service.api.views import recommendation_out
 from service.auth import Identity
+from service.json_pointer import json_pointer
 from service.metrics import observe_recommendation
 from service.policies import NetworkRef, PolicyCache, recommend
 from service.problems import POLICY_NOT_READY, problem_body, problem_for
@@ -146,7 +147,7 @@ def _one(
     except ValidationError as exc:
         errors = [
             {
-                "pointer": f"/items/{index}" + "".join(f"/{part}" for part in error["loc"]),
+                "pointer": json_pointer("items", index, *error["loc"]),
                 "detail": error["msg"],
             }
             for error in exc.errors(include_url=False)

@@ -9,8 +9,8 @@ import numpy as np
 from sqlalchemy.orm import Session
 
 from service.codec import StoredPolicy
-from service.db import repository
-from service.db.tables import JobState, Network, SolveJob
+from service.db import reporting
+from service.db.tables import Network, SolveJob
 from service.policies import ServedPolicy
 from service.schemas import (
     CertificateOut,
@@ -26,42 +26,30 @@ from solver import Recommendation
 from solver.priced_result import PricedPolicy
 from solver.spec import WEEKDAYS
 
-__all__ = ["certificate_out", "network_out", "recommendation_out", "relays_of", "transfers_of"]
-
-CRITERIA = ("discounted", "average")
+__all__ = [
+    "certificate_out",
+    "network_out",
+    "network_solves_out",
+    "recommendation_out",
+    "relays_of",
+    "transfers_of",
+]
 
 
 def network_out(
     session: Session, network: Network, jobs: list[SolveJob] | None = None
 ) -> NetworkOut | NetworkCreated:
-    version = repository.latest_version(session, network.id)
-    assert version is not None, "a network always has a version"
-    solves = []
-    for criterion in CRITERIA:
-        policy = repository.policy_for(
-            session, network.tenant_id, version.spec_hash, criterion, version.method
-        )
-        if policy is not None:
-            solves.append(
-                SolveState(criterion=criterion, state="ready", solved_at=policy.solved_at)
-            )
-            continue
-        history = repository.jobs_for(
-            session, network.tenant_id, version.spec_hash, criterion, version.method
-        )
-        if not history:
-            solves.append(SolveState(criterion=criterion, state="not_requested"))
-            continue
-        job = history[0]
-        state = "queued" if job.state == JobState.DONE else job.state
-        solves.append(
-            SolveState(
-                criterion=criterion,
-                state=state,
-                job_id=job.id,
-                error=job.error if job.state == JobState.FAILED else None,
-            )
-        )
+    """One network's state (with `jobs`, the answer to the write that queued them)."""
+    [solves] = reporting.solve_states(
+        session, tenant_id=network.tenant_id, network_id=network.id, include_archived=True
+    )
+    return network_solves_out(solves, jobs)
+
+
+def network_solves_out(
+    solves: reporting.NetworkSolves, jobs: list[SolveJob] | None = None
+) -> NetworkOut | NetworkCreated:
+    network, version = solves.network, solves.version
     fields = {
         "id": network.id,
         "name": network.name,
@@ -72,7 +60,16 @@ def network_out(
         "closing_cutoff": (network.closing_cutoff or time(0)).strftime("%H:%M"),
         "mode": network.mode,
         "method": version.method,
-        "solves": solves,
+        "solves": [
+            SolveState(
+                criterion=solve.criterion,
+                state=solve.state.value,
+                job_id=solve.job_id,
+                solved_at=solve.solved_at,
+                error=solve.error,
+            )
+            for solve in solves.solves
+        ],
     }
     if jobs is None:
         return NetworkOut(**fields)

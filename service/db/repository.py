@@ -42,8 +42,6 @@ from sqlalchemy.orm import Session, selectinload
 from service.codec import EncodedPolicy
 from service.db.base import utcnow
 from service.db.tables import (
-    JobKind,
-    JobState,
     Network,
     NetworkVersion,
     Policy,
@@ -51,6 +49,7 @@ from service.db.tables import (
     SolveJob,
     Tenant,
 )
+from service.vocabulary import JobKind, JobState
 from solver import NetworkSpec, PolicyResult
 from solver.priced_result import PricedPolicy
 

@@ -31,6 +31,7 @@ from sqlalchemy import (
 from sqlalchemy.orm import Mapped, mapped_column, relationship
 
 from service.db.base import Base, utcnow
+from service.vocabulary import JobKind, JobState
 
 __all__ = [
     "ApiKey",
@@ -39,8 +40,6 @@ __all__ = [
     "ClosingCount",
     "IdempotencyRecord",
     "Instruction",
-    "JobKind",
-    "JobState",
     "Network",
     "NetworkVersion",
     "Policy",
@@ -52,13 +51,6 @@ __all__ = [
 ]
 
 _HASH = String(64)
-
-
-class JobState(StrEnum):
-    QUEUED = "queued"
-    RUNNING = "running"
-    DONE = "done"
-    FAILED = "failed"
 
 
 class SolveMode(StrEnum):
@@ -74,12 +66,6 @@ class SolveMethod(StrEnum):
 
     EXACT = "exact"
     PRICED = "priced"
-
-
-class JobKind(StrEnum):
-    SOLVE = "solve"
-    SIMULATE = "simulate"
-    WHAT_IF = "what_if"
 
 
 class Tenant(Base):

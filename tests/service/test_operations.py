@@ -19,7 +19,8 @@ from service import auth, supervisor
 from service.cli import main
 from service.db import repository
 from service.db.session import make_engine, make_session_factory
-from service.db.tables import JobKind, Network, NetworkVersion, Policy, SolveJob, Tenant
+from service.db.tables import Network, NetworkVersion, Policy, SolveJob, Tenant
+from service.vocabulary import JobKind
 from solver import NetworkSpec
 from tests.e2e.live import free_port
 

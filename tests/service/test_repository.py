@@ -14,7 +14,8 @@ from sqlalchemy.orm import Session, sessionmaker
 from service.codec import encode_policy
 from service.db import repository
 from service.db.base import utcnow
-from service.db.tables import JobState, Policy, SolveJob
+from service.db.tables import Policy, SolveJob
+from service.vocabulary import JobState
 from solver import NetworkSpec, solve_network
 
 DEMO = Path(__file__).resolve().parents[2] / "service" / "data" / "demo_network.json"

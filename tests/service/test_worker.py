@@ -19,9 +19,10 @@ from service import analysis
 from service import worker as worker_module
 from service.codec import decode_policy
 from service.db import repository
-from service.db.tables import JobKind, NetworkVersion, Policy, SolveJob
+from service.db.tables import NetworkVersion, Policy, SolveJob
 from service.schemas import Overrides, SimulationRequest
 from service.settings import Settings
+from service.vocabulary import JobKind
 from service.worker import Worker
 from solver import PolicyResult, solve_network
 from tests.service.test_repository import demo

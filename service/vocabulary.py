@@ -1,0 +1,49 @@
+"""Words shared by storage, the worker, the CLI and the HTTP contract, each defined once.
+
+The criterion is `solver.CRITERIA` (type `solver.Criterion`) and a weekday's name
+`solver.spec.WEEKDAYS`; this module holds what only the service names:
+
+* `JobKind`: what a job of the queue does;
+* `JobState`: where a job stands;
+* `SolveStatus`: where the policy of a network's current version stands for one criterion
+  (`service.db.reporting.solve_states`): ready, or the state of its newest solve job, or
+  not_requested.
+
+The HTTP models need a `Literal` of the same values so that the OpenAPI document lists them
+inline (an enum would become a component of its own): `JobStateName` and `SolveStatusName`,
+which `tests/service/test_vocabulary.py` holds equal to the enums.
+"""
+
+from __future__ import annotations
+
+from enum import StrEnum
+from typing import Literal
+
+__all__ = ["JobKind", "JobState", "JobStateName", "SolveStatus", "SolveStatusName"]
+
+
+class JobKind(StrEnum):
+    SOLVE = "solve"
+    SIMULATE = "simulate"
+    WHAT_IF = "what_if"
+
+
+class JobState(StrEnum):
+    QUEUED = "queued"
+    RUNNING = "running"
+    DONE = "done"
+    FAILED = "failed"
+
+
+class SolveStatus(StrEnum):
+    """Where one criterion of a network's current version stands."""
+
+    READY = "ready"
+    QUEUED = "queued"
+    RUNNING = "running"
+    FAILED = "failed"
+    NOT_REQUESTED = "not_requested"
+
+
+JobStateName = Literal["queued", "running", "done", "failed"]
+SolveStatusName = Literal["ready", "queued", "running", "failed", "not_requested"]

@@ -1,0 +1,236 @@
+"""service/ keeps its layers: what each part may import, read from the source (as
+tests/solver/test_imports.py does for solver/).
+
+The rules that hold today are asserted outright. Where the code does not yet keep a rule of the
+intended design (routers that reach the tables, SQL built outside service/db, HTTP models used
+below the API), the test lists the modules that still break it, with why, so that the list can
+only shrink: a new module breaking the rule fails here.
+"""
+
+from __future__ import annotations
+
+import ast
+import re
+from pathlib import Path
+
+import service
+
+SERVICE = Path(service.__file__).parent
+ROOT = SERVICE.parent
+
+# Names of sqlalchemy that build SQL statements or parts of them.
+SQL_BUILDERS = {
+    "and_",
+    "bindparam",
+    "case",
+    "delete",
+    "exists",
+    "func",
+    "insert",
+    "literal",
+    "or_",
+    "select",
+    "text",
+    "union",
+    "update",
+}
+
+
+def _imports(source: Path) -> set[tuple[str, str]]:
+    """(module, name) of each import in `source`; name "" for `import module`."""
+    found: set[tuple[str, str]] = set()
+    for node in ast.walk(ast.parse(source.read_text(encoding="utf-8"))):
+        if isinstance(node, ast.Import):
+            found |= {(alias.name, "") for alias in node.names}
+        elif isinstance(node, ast.ImportFrom) and node.module and node.level == 0:
+            found |= {(node.module, alias.name) for alias in node.names}
+    return found
+
+
+def _sources() -> dict[str, set[tuple[str, str]]]:
+    """Each module of service/ (as "service/db/tables.py") and what it imports, with
+    `from service import x` read as an import of service.x."""
+    sources = {}
+    for source in sorted(SERVICE.rglob("*.py")):
+        imports = set()
+        for module, name in _imports(source):
+            if module == "service" and name:
+                imports.add((f"service.{name}", ""))
+            else:
+                imports.add((module, name))
+        sources[str(source.relative_to(ROOT))] = imports
+    return sources
+
+
+def _importers(prefixes: tuple[str, ...]) -> dict[str, set[str]]:
+    """Modules of service/ importing any module that is or lies under one of `prefixes`."""
+    found: dict[str, set[str]] = {}
+    for path, imports in _sources().items():
+        hits = {
+            module
+            for module, _ in imports
+            if any(module == p or module.startswith(p + ".") for p in prefixes)
+        }
+        if hits:
+            found[path] = hits
+    return found
+
+
+def test_storage_imports_nothing_above_it() -> None:
+    """service/db knows tables, the policy codec and the shared vocabulary: never the API, its
+    HTTP models, the read path or the worker."""
+    allowed = ("service.db", "service.codec", "service.vocabulary")
+    above = {
+        path: sorted(m for m, _ in imports if m.startswith("service") and not m.startswith(allowed))
+        for path, imports in _sources().items()
+        if path.startswith("service/db/")
+    }
+    assert {path: found for path, found in above.items() if found} == {}
+
+
+def test_leaf_modules_import_nothing_of_the_service() -> None:
+    """The vocabulary, the JSON pointer, the codec, the solving modes, the pictures, the priced
+    exports, the rate limiter and the CLI errors stand on the solver and libraries alone."""
+    leaves = [
+        "service/vocabulary.py",
+        "service/json_pointer.py",
+        "service/codec.py",
+        "service/modes.py",
+        "service/pictures.py",
+        "service/priced.py",
+        "service/ratelimit.py",
+        "service/errors.py",
+    ]
+    sources = _sources()
+    assert {
+        leaf: sorted(m for m, _ in sources[leaf] if m.startswith("service")) for leaf in leaves
+    } == {leaf: [] for leaf in leaves}
+
+
+def test_the_http_models_stand_on_the_solver_and_the_vocabulary() -> None:
+    """service/schemas.py imports no database code and no other service module but the
+    vocabulary: the contract does not move when storage does."""
+    imports = _sources()["service/schemas.py"]
+    assert {m for m, _ in imports if m.startswith(("service", "sqlalchemy"))} == {
+        "service.vocabulary"
+    }
+
+
+def test_only_the_app_wires_the_routers() -> None:
+    """service/api is imported by service/main.py alone (and by itself), apart from the
+    supervisor, which reads the header by which the API it started answers /readyz."""
+    outside = {
+        path: found
+        for path, found in _importers(("service.api",)).items()
+        if not path.startswith("service/api/") and path != "service/main.py"
+    }
+    assert outside == {"service/supervisor.py": {"service.api.health"}}
+
+
+# Modules below the API that still use the HTTP models (issue: use cases should take and return
+# domain types). The list may shrink, never grow.
+SCHEMAS_BELOW_THE_API = {
+    # the simulation and what-if parameters and overrides are HTTP models reused as job input
+    "service/analysis.py",
+    "service/worker.py",
+    # the CLI reads the same documents as the API (network, simulation parameters)
+    "service/cli.py",
+    "service/files.py",
+    # the demo network and stock shown by `stockrelay run`
+    "service/supervisor.py",
+}
+
+
+def test_http_models_are_used_below_the_api_only_by_the_listed_modules() -> None:
+    users = {
+        path for path in _importers(("service.schemas",)) if not path.startswith("service/api/")
+    }
+    assert users <= SCHEMAS_BELOW_THE_API
+
+
+# Modules outside service/db that still build SQL (issue: every query in service/db). The list
+# may shrink, never grow.
+SQL_OUTSIDE_STORAGE = {
+    "service/api/closing.py",  # closing counts and instructions
+    "service/auth.py",  # API keys
+    "service/metrics.py",  # queue and solve-time aggregates
+    "service/middleware.py",  # idempotency records
+    "service/policies.py",  # the read path's policy rows
+    "service/status_page.py",  # queue, recent jobs, closing counts, solve times
+}
+
+
+def test_sql_is_built_outside_storage_only_by_the_listed_modules() -> None:
+    builders = {
+        path
+        for path, imports in _sources().items()
+        if not path.startswith("service/db/")
+        and any(
+            module.startswith("sqlalchemy") and name in SQL_BUILDERS for module, name in imports
+        )
+    }
+    assert builders <= SQL_OUTSIDE_STORAGE
+
+
+def test_routers_use_sqlalchemy_only_for_sessions_and_errors() -> None:
+    """A router names a Session (the request's, from service.api.deps) and catches database
+    errors; it builds no SQL, apart from the listed closing routes, and the readiness probe
+    holds the Engine it checks."""
+    found = {
+        path: sorted(f"{module}.{name}" for module, name in imports if module == "sqlalchemy")
+        for path, imports in _sources().items()
+        if path.startswith("service/api/")
+    }
+    assert {path: names for path, names in found.items() if names} == {
+        "service/api/closing.py": ["sqlalchemy.select"],
+        "service/api/health.py": ["sqlalchemy.Engine"],
+    }
+    other = {
+        module
+        for path, imports in _sources().items()
+        if path.startswith("service/api/")
+        for module, _ in imports
+        if module.startswith("sqlalchemy.")
+    }
+    assert other <= {"sqlalchemy.orm", "sqlalchemy.exc"}
+
+
+# Routers that still reach storage (repository, tables, reporting) rather than use cases of a
+# service layer (issue). The list may shrink, never grow.
+ROUTERS_ON_STORAGE = {
+    "service/api/analysis.py",
+    "service/api/calibration.py",
+    "service/api/closing.py",
+    "service/api/deps.py",  # the session per request, the tenant of a key
+    "service/api/health.py",  # the migration check of /readyz
+    "service/api/jobs.py",
+    "service/api/networks.py",
+    "service/api/pictures.py",
+    "service/api/views.py",
+}
+
+
+def test_routers_reach_storage_only_the_listed_ones() -> None:
+    users = {path for path in _importers(("service.db",)) if path.startswith("service/api/")}
+    assert users <= ROUTERS_ON_STORAGE
+
+
+def test_the_feature_table_names_files_that_exist() -> None:
+    """Every file named in DEVELOPERS.md's "Where each feature lives" exists (under service/,
+    tests/service/ or the repository's root)."""
+    guide = (ROOT / "DEVELOPERS.md").read_text(encoding="utf-8")
+    section = guide.split("## Where each feature lives", 1)[1].split("\n## ", 1)[0]
+    rows = [line for line in section.splitlines() if line.startswith("| ") and ".py" in line]
+    named = {
+        word.strip("`")
+        for row in rows
+        for word in re.findall(r"`[^`]+`", row)
+        if word.strip("`").endswith((".py", "/"))
+    }
+    assert len(rows) >= 10 and len(named) >= 30
+    missing = sorted(
+        name
+        for name in named
+        if not any((base / name).exists() for base in (ROOT, SERVICE, ROOT / "tests" / "service"))
+    )
+    assert missing == []
