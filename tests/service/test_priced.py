@@ -459,8 +459,16 @@ def test_cli_priced_solve_writes_plan_value_and_bound_at_every_state(
     network.write_text(json.dumps(demo_document()))
     out = tmp_path / "result.json"
     code = main(
-        ["solve", str(network), "--mode", "priced", "--out", str(out)]
-        + ["--stock", "riverside=14,hilltop=0"]
+        [
+            "solve",
+            str(network),
+            "--mode",
+            "priced",
+            "--out",
+            str(out),
+            "--stock",
+            "riverside=14,hilltop=0",
+        ]
     )
     captured = capsys.readouterr()
     assert code == 0, captured.err
