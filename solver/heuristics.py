@@ -40,7 +40,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from solver import solve_network
-from solver.build import location_reward
+from solver.build import location_reward, n_phases
 from solver.result import Criterion
 from solver.simulation import Plan, mean_demands
 from solver.spec import LaneSpec, LocationSpec, NetworkSpec
@@ -60,7 +60,7 @@ class _Lanes:
 
     def __init__(self, spec: NetworkSpec) -> None:
         index = {location_id: i for i, location_id in enumerate(spec.location_ids)}
-        self.n_phases = 7 if spec.is_periodic else 1
+        self.n_phases = n_phases(spec)
         self.capacities = np.array([loc.capacity for loc in spec.locations], dtype=np.int64)
         self.sender = np.array([index[lane.from_] for lane in spec.lanes], dtype=np.int64)
         self.receiver = np.array([index[lane.to] for lane in spec.lanes], dtype=np.int64)

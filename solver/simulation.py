@@ -46,6 +46,7 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 from scipy import stats
 
+from solver.build import n_phases
 from solver.distributions import count_law
 from solver.model import TransferModel
 from solver.spec import Distribution, LocationSpec, NetworkSpec
@@ -150,7 +151,7 @@ class DailyLaws:
 
 def daily_laws(spec: NetworkSpec) -> DailyLaws:
     """The demand and replenishment tables of every location of `spec`, per phase."""
-    days = [(p + 1) % 7 for p in range(7 if spec.is_periodic else 1)]
+    days = [(p + 1) % 7 for p in range(n_phases(spec))]
     return DailyLaws(
         demand=tuple(
             tuple(count_table(location.demand_on(d)) for location in spec.locations) for d in days
@@ -412,7 +413,7 @@ def simulate_plans(
     """simulate_policies for policies given as plans (see module docs): no model is built, so
     any network the specification allows can be simulated. Each night's flows are checked;
     ValueError names the plan, the stock and the limit broken."""
-    periods = 7 if spec.is_periodic else 1
+    periods = n_phases(spec)
 
     def on_phase(plan: Plan) -> Plan:
         # The simulation counts days; a plan is asked with the phase of the count.
@@ -614,7 +615,7 @@ class _Network:
         for lane, spec_lane in enumerate(spec.lanes):
             senders[lane, index[spec_lane.from_]] = 1
             receivers[lane, index[spec_lane.to]] = 1
-        phases = 7 if spec.is_periodic else 1
+        phases = n_phases(spec)
         unlimited = sum(loc.capacity for loc in spec.locations)
 
         def per_night(value: Callable[[LocationSpec, int], int | None]) -> NDArray[np.int64]:
