@@ -76,6 +76,16 @@ def four_hire_depots_with_rules() -> NetworkSpec:
     return NetworkSpec.model_validate(document)
 
 
+def beside_the_rules(spec: NetworkSpec, name: str, plan: Plan) -> dict[str, Plan]:
+    """`plan` under `name`, then every baseline rule of solver.heuristics."""
+    return {
+        name: plan,
+        "nothing": do_nothing_plan(spec),
+        "balance": balance_cover_plan(spec),
+        "pairwise": pairwise_index_plan(spec),
+    }
+
+
 class TestFeasibility:
     @pytest.mark.parametrize(
         "network", [three_bike_shops, four_hire_depots, four_hire_depots_with_rules]
@@ -150,12 +160,9 @@ class TestAgainstTheOptimum:
         spec = four_hire_depots()
         model = build_transfer_model(spec)
         table = solve_network(spec).action[0]
-        plans: dict[str, Plan] = {
-            "optimal": lambda stock, phase: model.flows[table[stock @ model.strides]],
-            "nothing": do_nothing_plan(spec),
-            "balance": balance_cover_plan(spec),
-            "pairwise": pairwise_index_plan(spec),
-        }
+        plans = beside_the_rules(
+            spec, "optimal", lambda stock, phase: model.flows[table[stock @ model.strides]]
+        )
         report = simulate_plans(
             spec,
             plans,
@@ -184,12 +191,9 @@ class TestAgainstThePricedPolicy:
         # where the pairwise index is sometimes ahead by a fraction of a per cent.
         spec = large_network(6, 12, 3)
         policy = solve_priced(spec)
-        plans: dict[str, Plan] = {
-            "priced": lambda stock, phase: policy.plan_batch(stock, phase=phase),
-            "nothing": do_nothing_plan(spec),
-            "balance": balance_cover_plan(spec),
-            "pairwise": pairwise_index_plan(spec),
-        }
+        plans = beside_the_rules(
+            spec, "priced", lambda stock, phase: policy.plan_batch(stock, phase=phase)
+        )
         report = simulate_plans(
             spec,
             plans,
