@@ -12,6 +12,7 @@ from sqlalchemy.exc import OperationalError
 
 from service.api import (
     analysis,
+    assortments,
     calibration,
     closing,
     health,
@@ -108,6 +109,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         pictures,
         calibration,
         analysis,
+        assortments,
         jobs,
         health,
         ops,
@@ -129,6 +131,10 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.add_middleware(
         Idempotency, sessions=lambda: app.state.sessions, ttl_seconds=settings.idempotency_seconds
     )
-    app.add_middleware(BodySizeLimit, max_bytes=settings.max_body_bytes)
+    app.add_middleware(
+        BodySizeLimit,
+        max_bytes=settings.max_body_bytes,
+        max_upload_bytes=settings.max_upload_bytes,
+    )
     app.add_middleware(RequestId)
     return app

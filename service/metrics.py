@@ -349,7 +349,7 @@ class DatabaseCollector(Collector):
     def _policy_age(session: Session) -> GaugeMetricFamily:
         ready = sorted(
             (row.network.id, solve.criterion, solve.solved_at)
-            for row in reporting.solve_states(session, tenant_id=None)
+            for row in reporting.solve_states(session, tenant_id=None, include_items=False)
             for solve in row.solves
             if solve.state == SolveStatus.READY and solve.solved_at is not None
         )

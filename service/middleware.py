@@ -20,6 +20,7 @@ from __future__ import annotations
 import hashlib
 import json
 import logging
+import re
 from collections.abc import Awaitable, Callable, MutableMapping
 from datetime import timedelta
 from typing import Any
@@ -138,16 +139,32 @@ def _replaying(body: bytes, receive: Receive) -> Receive:
     return replay
 
 
+# Bulk uploads of an assortment (items, history, closing reports): streamed to the route,
+# which reads them as they arrive and enforces the larger upload limit itself.
+UPLOAD_PATH = re.compile(r"^/v1/assortments/\d+/(items|history|locations/[^/]+/closing-report)$")
+
+
 class BodySizeLimit:
-    def __init__(self, app: ASGIApp, max_bytes: int) -> None:
+    def __init__(self, app: ASGIApp, max_bytes: int, max_upload_bytes: int | None = None) -> None:
         self.app = app
         self.max_bytes = max_bytes
+        self.max_upload_bytes = max_upload_bytes or max_bytes
 
     async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
         if scope["type"] != "http":
             await self.app(scope, receive, send)
             return
         declared = _header(scope, b"content-length")
+        if UPLOAD_PATH.match(str(scope.get("path", ""))):
+            if (
+                declared is not None
+                and declared.isdigit()
+                and int(declared) > self.max_upload_bytes
+            ):
+                await self._refuse(scope, send, self.max_upload_bytes)
+                return
+            await self.app(scope, receive, send)
+            return
         if declared is not None and declared.isdigit() and int(declared) > self.max_bytes:
             await self._refuse(scope, send)
             return
@@ -158,15 +175,16 @@ class BodySizeLimit:
             return
         await self.app(scope, _replaying(body, receive), send)
 
-    async def _refuse(self, scope: Scope, send: Send) -> None:
+    async def _refuse(self, scope: Scope, send: Send, limit: int | None = None) -> None:
+        limit = limit or self.max_bytes
         await send_problem(
             send,
             scope,
             413,
             "body-too-large",
             "Request body too large",
-            f"request bodies are limited to {self.max_bytes:,} bytes",
-            limit=self.max_bytes,
+            f"request bodies are limited to {limit:,} bytes",
+            limit=limit,
         )
 
 

@@ -79,6 +79,14 @@ class Settings(BaseSettings):
         int, Field(ge=1, description="Requests per API key allowed at once above the rate.")
     ] = 400
     max_body_bytes: Annotated[int, Field(ge=1024, description="Largest request body.")] = 4_194_304
+    max_upload_bytes: Annotated[
+        int,
+        Field(
+            ge=1024,
+            description="Largest bulk upload (an assortment's items, history or closing "
+            "report), read as it arrives.",
+        ),
+    ] = 67_108_864
     idempotency_seconds: Annotated[
         float, Field(gt=0, description="How long an Idempotency-Key's response is kept.")
     ] = 86_400.0

@@ -210,7 +210,9 @@ def gather(
 
 
 def _networks(session: Session, tenant_id: int) -> list[NetworkLine]:
-    states = reporting.solve_states(session, tenant_id=tenant_id, with_spec=True)
+    states = reporting.solve_states(
+        session, tenant_id=tenant_id, with_spec=True, include_items=False
+    )
     closing = _closing(
         session,
         [(row.network.id, row.version.spec_json, row.network.closing_cutoff) for row in states],

@@ -74,7 +74,10 @@ def list_networks(
     return [
         network_solves_out(solves)
         for solves in reporting.solve_states(
-            session, tenant_id=caller.tenant_id, include_archived=include_archived
+            session,
+            tenant_id=caller.tenant_id,
+            include_archived=include_archived,
+            include_items=False,
         )
     ]
 
@@ -103,6 +106,12 @@ def update_network(
     """Add the next version; If-Match must name the current version. An absent `mode` keeps the
     network's; a mode that changes the method queues the new method's solves."""
     network = get_network(session, caller.tenant_id, network_id)
+    if network.assortment_id is not None:
+        raise Conflict(
+            f"network {network_id} is item {network.item_code!r} of assortment "
+            f"{network.assortment_id}: change it with POST /v1/assortments/"
+            f"{network.assortment_id}/items"
+        )
     current = repository.latest_version(session, network.id)
     assert current is not None
     check_if_match(network_id, current.number, if_match)

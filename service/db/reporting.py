@@ -61,10 +61,14 @@ def solve_states(
     network_id: int | None = None,
     include_archived: bool = False,
     with_spec: bool = False,
+    assortment_id: int | None = None,
+    include_items: bool = True,
 ) -> list[NetworkSolves]:
     """The solve state of every network of `tenant_id` (None: every tenant), or of the one
-    network `network_id`, by network id. Archived networks only with `include_archived`. The
-    versions' specification JSON is loaded only `with_spec` (it can be large)."""
+    network `network_id`, or of the items of assortment `assortment_id`, by network id.
+    Archived networks only with `include_archived`, items of assortments only with
+    `include_items`. The versions' specification JSON is loaded only `with_spec` (it can be
+    large)."""
     conditions: list[ColumnElement[bool]] = []
     if tenant_id is not None:
         conditions.append(Network.tenant_id == tenant_id)
@@ -72,6 +76,10 @@ def solve_states(
         conditions.append(Network.id == network_id)
     if not include_archived:
         conditions.append(Network.archived.is_(False))
+    if assortment_id is not None:
+        conditions.append(Network.assortment_id == assortment_id)
+    elif not include_items:
+        conditions.append(Network.assortment_id.is_(None))
 
     def current(*columns: Any) -> Select[Any]:
         return with_current_version(*columns).where(*conditions)

@@ -35,6 +35,7 @@ from service.vocabulary import JobKind, JobState
 
 __all__ = [
     "ApiKey",
+    "Assortment",
     "CalibrationSettings",
     "ClosingCorrection",
     "ClosingCount",
@@ -42,6 +43,7 @@ __all__ = [
     "Instruction",
     "Network",
     "NetworkVersion",
+    "PickList",
     "Policy",
     "SalesDay",
     "SolveJob",
@@ -93,10 +95,53 @@ class Network(Base):
     mode: Mapped[str] = mapped_column(
         String(8), default=SolveMode.AUTO.value, server_default=SolveMode.AUTO.value
     )
+    # An item of an assortment is a network on the assortment's layout (service.assortment_spec):
+    # its specification is composed from the layout and the item, and it changes only through
+    # the assortment. None for a network of its own.
+    assortment_id: Mapped[int | None] = mapped_column(ForeignKey("assortments.id"), index=True)
+    item_code: Mapped[str | None] = mapped_column(String(100))
 
     versions: Mapped[list[NetworkVersion]] = relationship(
         back_populates="network", order_by="NetworkVersion.number"
     )
+
+
+class Assortment(Base):
+    """A store layout shared by many items (service.assortment_spec.Layout as JSON); each item is
+    a network of its own (Network.assortment_id). `layout_version` counts the layout's changes."""
+
+    __tablename__ = "assortments"
+    __table_args__ = (UniqueConstraint("tenant_id", "name"),)
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    tenant_id: Mapped[int] = mapped_column(ForeignKey("tenants.id"), index=True)
+    name: Mapped[str] = mapped_column(String(200))
+    layout_json: Mapped[str] = mapped_column(Text)
+    layout_version: Mapped[int] = mapped_column(Integer, default=1)
+    # The criteria every item is solved for (JSON list), its solving mode and closing cut-off,
+    # as for a single network.
+    criteria: Mapped[str] = mapped_column(Text)
+    mode: Mapped[str] = mapped_column(String(8), default=SolveMode.AUTO.value)
+    closing_cutoff: Mapped[time | None] = mapped_column(Time)
+    archived: Mapped[bool] = mapped_column(Boolean, default=False)
+    created_at: Mapped[datetime] = mapped_column(DateTime, default=utcnow)
+
+
+class PickList(Base):
+    """Every item's moves of one business date, computed once from all locations' closing
+    reports and kept; a correction of a count issues the next revision. `body` is the lines as
+    zlib-compressed JSON, `summary` (JSON) the totals and the shared-capacity figures."""
+
+    __tablename__ = "pick_lists"
+    __table_args__ = (UniqueConstraint("assortment_id", "business_date", "revision"),)
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    assortment_id: Mapped[int] = mapped_column(ForeignKey("assortments.id"))
+    business_date: Mapped[date] = mapped_column(Date)
+    revision: Mapped[int] = mapped_column(Integer, default=1)
+    computed_at: Mapped[datetime] = mapped_column(DateTime, default=utcnow)
+    body: Mapped[bytes] = mapped_column(LargeBinary)
+    summary: Mapped[str] = mapped_column(Text)
 
 
 class NetworkVersion(Base):

@@ -37,6 +37,8 @@ TABLES = {
     "closing_corrections",
     "api_keys",
     "idempotency_records",
+    "assortments",
+    "pick_lists",
 }
 
 

@@ -1,0 +1,194 @@
+"""Use cases of assortments: create one from its layout, store an upload of items.
+
+Items are networks composed from the layout (service.assortment_spec); uploads are parsed by
+service.item_upload and stored by service.db.assortments, all or nothing.
+"""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Sequence
+from dataclasses import dataclass
+from datetime import time
+
+from sqlalchemy.orm import Session
+
+from service.assortment_spec import Layout
+from service.db import assortments as store
+from service.db import reporting
+from service.db.repository import canonical_spec
+from service.db.tables import Assortment
+from service.item_upload import ParsedItem, UploadProblems
+from service.modes import resolve_method
+from service.vocabulary import SolveStatus
+from solver import ModelTooLargeError, SizeLimits
+
+__all__ = [
+    "Assortment",
+    "AssortmentExistsError",
+    "ItemSolve",
+    "ItemsStored",
+    "create_assortment",
+    "criteria_of",
+    "find_assortment",
+    "item_solves",
+    "layout_of",
+    "list_assortments",
+    "store_items",
+]
+
+
+class AssortmentExistsError(Exception):
+    """An assortment of that name exists already for the tenant."""
+
+
+def find_assortment(session: Session, tenant_id: int, assortment_id: int) -> Assortment | None:
+    """The tenant's live assortment; None when missing, archived or another tenant's."""
+    assortment = store.get_assortment(session, tenant_id, assortment_id)
+    return None if assortment is None or assortment.archived else assortment
+
+
+def list_assortments(session: Session, tenant_id: int) -> Sequence[Assortment]:
+    return store.list_assortments(session, tenant_id)
+
+
+@dataclass(frozen=True)
+class ItemSolve:
+    """An item, its network and current version, and where its solves stand: `ready` (every
+    criterion of the assortment solved), `failed` (a solve failed: `error`), `waiting` (one
+    queued or running) or `not_requested`."""
+
+    item: str
+    network_id: int
+    version: int
+    spec_hash: str
+    method: str
+    state: str
+    error: str | None
+
+
+def item_solves(session: Session, assortment: Assortment) -> list[ItemSolve]:
+    """Every item of the assortment in code order (three statements in all)."""
+    criteria = criteria_of(assortment)
+    out = []
+    for solves in reporting.solve_states(
+        session, tenant_id=assortment.tenant_id, assortment_id=assortment.id
+    ):
+        mine = [s for s in solves.solves if s.criterion in criteria]
+        failed = next((s for s in mine if s.state == SolveStatus.FAILED), None)
+        if failed is not None:
+            state, error = "failed", failed.error
+        elif all(s.state == SolveStatus.READY for s in mine):
+            state, error = "ready", None
+        elif any(s.state in (SolveStatus.QUEUED, SolveStatus.RUNNING) for s in mine):
+            state, error = "waiting", None
+        else:
+            state, error = "not_requested", None
+        out.append(
+            ItemSolve(
+                item=solves.network.item_code or "",
+                network_id=solves.network.id,
+                version=solves.version.number,
+                spec_hash=solves.version.spec_hash,
+                method=solves.version.method,
+                state=state,
+                error=error,
+            )
+        )
+    return sorted(out, key=lambda item: item.item)
+
+
+def layout_of(assortment: Assortment) -> Layout:
+    return Layout.model_validate_json(assortment.layout_json)
+
+
+def criteria_of(assortment: Assortment) -> list[str]:
+    criteria: list[str] = json.loads(assortment.criteria)
+    return criteria
+
+
+def create_assortment(
+    session: Session,
+    tenant_id: int,
+    layout: Layout,
+    criteria: Sequence[str],
+    *,
+    mode: str,
+    closing_cutoff: time | None,
+) -> Assortment:
+    if store.assortment_by_name(session, tenant_id, layout.name) is not None:
+        raise AssortmentExistsError(f"an assortment named {layout.name!r} exists already")
+    return store.create_assortment(
+        session,
+        tenant_id,
+        layout.name,
+        layout.model_dump_json(by_alias=True),
+        criteria,
+        mode=mode,
+        closing_cutoff=closing_cutoff,
+    )
+
+
+@dataclass(frozen=True)
+class ItemsStored:
+    """What an upload did: items created, given a new version, left as they were; distinct
+    specifications among the uploaded items; solve jobs queued."""
+
+    received: int
+    created: int
+    updated: int
+    unchanged: int
+    specifications: int
+    jobs: list[int]
+
+
+def store_items(
+    session: Session,
+    assortment: Assortment,
+    items: Sequence[ParsedItem],
+    limits: SizeLimits,
+) -> ItemsStored:
+    """Store every item of a parsed upload, or none: an item too large for the assortment's
+    solving mode refuses the upload (UploadProblems, naming the item's line)."""
+    methods: dict[str, str] = {}
+    rows: list[store.ItemRow] = []
+    problems: list[tuple[str, str]] = []
+    for item in items:
+        text, digest = canonical_spec(item.network)
+        if digest not in methods:
+            try:
+                methods[digest] = resolve_method(item.network, assortment.mode, limits)
+            except ModelTooLargeError as exc:
+                problems.append((item.where, f"item {item.spec.item!r}: {exc}"))
+                methods[digest] = ""
+                continue
+        if not methods[digest]:
+            problems.append((item.where, f"item {item.spec.item!r} is too large as well"))
+            continue
+        rows.append(
+            store.ItemRow(
+                item_code=item.spec.item,
+                network_name=f"{assortment.name}/{item.spec.item}",
+                spec_json=text,
+                spec_hash=digest,
+                method=methods[digest],
+            )
+        )
+    if problems:
+        raise UploadProblems(problems)
+    stored = store.store_items(
+        session,
+        assortment.tenant_id,
+        assortment.id,
+        assortment.mode,
+        rows,
+        criteria_of(assortment),
+    )
+    return ItemsStored(
+        received=len(items),
+        created=stored.created,
+        updated=stored.updated,
+        unchanged=stored.unchanged,
+        specifications=len(methods),
+        jobs=stored.jobs,
+    )
