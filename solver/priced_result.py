@@ -327,7 +327,14 @@ class PricedPolicy:
         an upper bound on that value in the true network (solver.priced); average, on the bias
         scale, sum_i W_{i,d}(y_i) - cost - gain bound."""
         s = self._check_stock(stock)
-        posts = self._posts(s, flows)
+        return self.move_values(np.broadcast_to(s, (flows.shape[0], s.size)), flows, phase=phase)
+
+    def move_values(
+        self, stocks: NDArray[np.int64], flows: NDArray[np.int64], *, phase: int = 0
+    ) -> NDArray[np.float64]:
+        """plan_value for a batch: row k moves flows[k] (shape (K, L)) from stocks[k] (shape
+        (K, N), already checked), shape (K,)."""
+        posts = stocks + self._posts(np.zeros(len(self.capacities), dtype=np.int64), flows)
         total = -(flows @ self.lane_costs) - (flows > 0) @ self.dispatch_costs
         for i, w in enumerate(self.store_post_move_values):
             total = total + w[phase, posts[:, i]]

@@ -1,0 +1,458 @@
+"""Tonight's moves for a whole assortment: many items over one layout, from cached policies.
+
+Every item m of an assortment is its own network over the same locations and lanes (same N
+locations, same L lanes in the same order); its solved policy pi_m is a PolicyResult (exact) or
+a PricedPolicy, and items with identical parameters share one policy object. With symbols as in
+solver.model, item m closes with stock s_m (N units) in phase d_m = weekday mod P_m (the
+business date's weekday for a weekly policy, 0 for a stationary one).
+
+Uncoupled moves (no shared truck). For an exact policy, tonight's flow is the policy's action
+
+    f_m = flows[action[d, idx(s_m)]],   idx the row-major index of the stock (ravel_multi_index),
+
+its value the post-move value less the move's cost, and its value without moves the value of
+moving nothing:
+
+    value_m   = U_d(y_m) - cost(f_m) [- g],     y_m = s_m - out(f_m) + in(f_m),
+    without_m = U_d(s_m) [- g],
+
+U_d = post_move_values[d] (solver.bellman), g the gain under the average criterion (values on
+the bias scale, as PolicyResult.recommend reports them). Because idx is linear in the stock,
+idx(y) = idx(s) + shift(f) with shift(f) = (in(f) - out(f)) . strides, so the items of one policy
+need one ravel_multi_index and fancy indexes into `action` and `post_move_values`: no Python
+object per item. For a priced policy the flow is the nightly plan (PricedPolicy.plan_batch, one
+call for all the policy's items) and the values are the relaxation's (PricedPolicy.move_values),
+as PricedPolicy.recommend reports them. Either way each item's answer is bit for bit the one the
+policy's single-stock recommendation gives.
+
+Shared truck capacity. A lane l may carry at most cap_l a night over all items, counted in units
+(every unit weighs 1) or in volume (a unit of item m weighs w_m). Item m's candidates tonight
+are flows k with a value q_k on the scale above, and solver.sharing.allocate_shared_capacity
+picks one per item within the capacities (Lagrangian prices on the lanes, a feasible
+allocation and a bound on the best one; see that module). The candidates:
+
+* exact policy: every flow of the table allowed on night d and feasible at s_m (no location
+  sends more than it holds or ends below its floor after sending, none ends above capacity:
+  the boxes of solver.model.feasible_bounds), q_k = U_d(y_k) - cost(f_k) [- g]. Those worth no
+  more than moving nothing are dropped: moving nothing uses no capacity, so such a candidate is
+  never needed, neither in the best allocation nor in the bound D(pi) at any prices pi >= 0.
+* priced policy: the plan, moving nothing, and for every lane the plan uses, the plan re-made
+  with that lane closed tonight and with one unit less allowed on it (plan_batch with tighter
+  lane limits; all of an item's variants in the same batch call). This is not every flow, so
+  the allocation and bound are over these candidates only.
+
+The policy's own move is the item's first candidate, and no other candidate of the item is
+valued above it (q_k is capped at q_{f_m}). The policy is greedy in its values up to the
+solver's tolerance, so the cap changes values by at most that tolerance; it makes the
+allocation, when no capacity binds, exactly the uncoupled moves (the first of tied candidates
+is taken). The values reported per item are the uncapped q.
+
+`sharing` of the result then holds the allocation: its value and bound (bound - value bounds
+what the allocation may miss) and its sharing_cost (the uncoupled total less the allocation's,
+what the shared truck costs tonight).
+"""
+
+from __future__ import annotations
+
+import itertools
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import ArrayLike, NDArray
+
+from solver.errors import InvalidStockError
+from solver.model import feasible_bounds, flow_costs, flow_endpoints
+from solver.priced_result import PricedPolicy
+from solver.result import PolicyResult, phase_of_weekday
+from solver.sharing import ItemChoices, SharedAllocation, allocate_shared_capacity
+
+__all__ = ["AssortmentMoves", "ItemPolicy", "assortment_moves"]
+
+ItemPolicy = PolicyResult | PricedPolicy
+
+# Feasibility of every allowed flow at every stock of a chunk of items is computed as a
+# (items, flows, locations) array; chunks keep it near this many elements.
+_CHUNK_ELEMENTS = 4_000_000
+
+
+@dataclass(frozen=True, eq=False)
+class AssortmentMoves:
+    """Tonight's moves of M items over N locations and L lanes.
+
+    flows: shape (M, L), units per lane, in the layout's lane order.
+    post_move_stock: shape (M, N), units per location after the moves.
+    value: shape (M,), each item's value with its moves (post-move value less move costs);
+        value_without_moves: shape (M,), the same moving nothing. Currency, on the scale of
+        each item's single-stock recommendation (expected_value, value_without_transfers).
+    transfer_cost: shape (M,), unit and dispatch costs of each item's moves (currency).
+    sharing: the allocation of shared truck capacity (None when no capacity was given).
+    """
+
+    flows: NDArray[np.int64]
+    post_move_stock: NDArray[np.int64]
+    value: NDArray[np.float64]
+    value_without_moves: NDArray[np.float64]
+    transfer_cost: NDArray[np.float64]
+    sharing: SharedAllocation | None
+
+    @property
+    def gain(self) -> NDArray[np.float64]:
+        """value - value_without_moves, shape (M,)."""
+        gain: NDArray[np.float64] = self.value - self.value_without_moves
+        return gain
+
+
+@dataclass(frozen=True)
+class _Layout:
+    """What every item's policy shares."""
+
+    location_ids: tuple[str, ...]
+    lanes: tuple[tuple[int, int], ...]
+    lane_from: NDArray[np.int64]
+    lane_to: NDArray[np.int64]
+    incidence: NDArray[np.int64]  # (L, N): -1 at a lane's sender, +1 at its receiver
+
+    @property
+    def n_locations(self) -> int:
+        return len(self.location_ids)
+
+
+@dataclass
+class _Candidates:
+    """One group's candidates, in the order the allocation prefers them within an item."""
+
+    item: NDArray[np.int64]
+    rank: NDArray[np.int64]
+    flows: NDArray[np.int64]
+    value: NDArray[np.float64]  # uncapped q
+    capped: NDArray[np.float64]
+    cost: NDArray[np.float64]
+
+
+def assortment_moves(
+    policies: Sequence[ItemPolicy],
+    policy_of: ArrayLike,
+    stocks: ArrayLike,
+    *,
+    weekday: int = 0,
+    truck_capacity: ArrayLike | None = None,
+    unit_volume: ArrayLike | None = None,
+    item_ids: Sequence[str] | None = None,
+) -> AssortmentMoves:
+    """Tonight's moves of every item from its closing stock (module docs).
+
+    policies: the distinct policies (each item's network solved), all over one layout.
+    policy_of: shape (M,), index into `policies` of each item's policy.
+    stocks: shape (M, N), integer closing stock of each item at each location.
+    weekday: weekday of the business date of the closing counts (0 = Monday .. 6 = Sunday);
+        each policy's phase is policy.phase_of(weekday), i.e. 0 for a stationary policy.
+    truck_capacity: shape (L,), what each lane carries a night over all items (inf: not
+        shared); None: no shared capacity, each item takes its own policy's move.
+    unit_volume: shape (M,), capacity one unit of each item uses (> 0); None counts units.
+    item_ids: optional names of the items, used in error messages.
+    Raises InvalidStockError for a stock of the wrong shape or type, negative or above the
+    item's capacity (naming the first such item and location), ValueError for policies that do
+    not share one layout, a bad policy index, weekday, capacity or volume.
+    """
+    if not policies:
+        raise ValueError("at least one policy is needed")
+    layout = _layout(policies)
+    index = np.asarray(policy_of)
+    if index.ndim != 1 or not (index.size == 0 or np.issubdtype(index.dtype, np.integer)):
+        raise ValueError("policy_of must be a 1-D integer array, one policy index per item")
+    if index.size and (index.min() < 0 or index.max() >= len(policies)):
+        bad = int(np.argmax((index < 0) | (index >= len(policies))))
+        raise ValueError(
+            f"item {_name(bad, item_ids)} refers to policy {int(index[bad])}, but there are "
+            f"{len(policies)}"
+        )
+    index = index.astype(np.int64)
+    if item_ids is not None and len(item_ids) != index.size:
+        raise ValueError(f"item_ids must name {index.size} items, got {len(item_ids)}")
+    if not 0 <= weekday <= 6:
+        raise ValueError(f"weekday must be 0 (Monday) to 6 (Sunday), got {weekday}")
+    s = _check_stocks(policies, layout, index, stocks, item_ids)
+
+    m, n_lanes = index.size, len(layout.lanes)
+    flows = np.zeros((m, n_lanes), dtype=np.int64)
+    value = np.zeros(m)
+    without = np.zeros(m)
+    cost = np.zeros(m)
+    groups = _groups(index)
+    parts: list[_Candidates] = []
+    for p, items in groups:
+        policy = policies[p]
+        phase = phase_of_weekday(weekday, policy.phases)
+        sg = s[items]
+        if isinstance(policy, PolicyResult):
+            tables = _exact_tables(policy, layout)
+            f, v, v0, c, action, idx = _exact_moves(policy, tables, sg, phase)
+            if truck_capacity is not None:
+                parts.append(_exact_candidates(policy, tables, items, sg, phase, action, idx, v0))
+        else:
+            f, v, v0, c = _priced_moves(policy, sg, phase)
+            if truck_capacity is not None:
+                parts.append(_priced_candidates(policy, items, sg, phase, f, v, v0, c))
+        flows[items], value[items], without[items], cost[items] = f, v, v0, c
+
+    sharing = None
+    if truck_capacity is not None and m:
+        volume = np.ones(m) if unit_volume is None else np.asarray(unit_volume, dtype=np.float64)
+        choices, real, costs = _choices(parts, n_lanes)
+        sharing = allocate_shared_capacity(choices, volume, truck_capacity)
+        flows, value, cost = sharing.flows, real[sharing.chosen], costs[sharing.chosen]
+    elif truck_capacity is not None:
+        raise ValueError("shared truck capacity needs at least one item")
+    return AssortmentMoves(
+        flows=flows,
+        post_move_stock=s + flows @ layout.incidence,
+        value=value,
+        value_without_moves=without,
+        transfer_cost=cost,
+        sharing=sharing,
+    )
+
+
+# -- checks ----------------------------------------------------------------------------------
+
+
+def _name(item: int, item_ids: Sequence[str] | None) -> str:
+    return repr(item_ids[item]) if item_ids is not None else str(item)
+
+
+def _layout(policies: Sequence[ItemPolicy]) -> _Layout:
+    first = policies[0]
+    for k, policy in enumerate(policies):
+        if policy.location_ids != first.location_ids or policy.lanes != first.lanes:
+            raise ValueError(
+                f"policy {k} is over other locations or lanes than policy 0: the items of an "
+                "assortment share one layout"
+            )
+    n = len(first.location_ids)
+    lanes = np.array(first.lanes, dtype=np.int64).reshape(-1, 2)
+    incidence = np.zeros((lanes.shape[0], n), dtype=np.int64)
+    rows = np.arange(lanes.shape[0])
+    np.add.at(incidence, (rows, lanes[:, 0]), -1)
+    np.add.at(incidence, (rows, lanes[:, 1]), 1)
+    return _Layout(first.location_ids, first.lanes, lanes[:, 0], lanes[:, 1], incidence)
+
+
+def _check_stocks(
+    policies: Sequence[ItemPolicy],
+    layout: _Layout,
+    index: NDArray[np.int64],
+    stocks: ArrayLike,
+    item_ids: Sequence[str] | None,
+) -> NDArray[np.int64]:
+    s = np.asarray(stocks)
+    n = layout.n_locations
+    if s.shape != (index.size, n):
+        raise InvalidStockError(
+            f"expected closing stocks of shape ({index.size}, {n}) (items, locations), got "
+            f"{s.shape}"
+        )
+    if s.size and not np.issubdtype(s.dtype, np.integer):
+        raise InvalidStockError(f"closing stocks must be whole units, got {s.dtype} numbers")
+    s = s.astype(np.int64)
+    capacities = np.array([policy.capacities for policy in policies], dtype=np.int64)[index]
+    bad = (s < 0) | (s > capacities)
+    if bad.any():
+        item = int(np.argmax(bad.any(axis=1)))
+        location = int(np.argmax(bad[item]))
+        raise InvalidStockError(
+            f"stock of item {_name(item, item_ids)} at {layout.location_ids[location]!r} is "
+            f"{int(s[item, location])}, outside 0..{int(capacities[item, location])}"
+        )
+    return s
+
+
+def _groups(index: NDArray[np.int64]) -> list[tuple[int, NDArray[np.int64]]]:
+    """(policy, its items in increasing order) for every policy used."""
+    order = np.argsort(index, kind="stable")
+    ordered = index[order]
+    starts = np.flatnonzero(np.r_[True, ordered[1:] != ordered[:-1]]) if order.size else ()
+    bounds = [int(b) for b in starts] + [order.size]
+    return [(int(ordered[a]), order[a:b]) for a, b in itertools.pairwise(bounds)]
+
+
+# -- exact policies --------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class _Tables:
+    """Per flow of an exact policy's table: out, inn (A, N); shift (A,), the change of the flat
+    stock index; cost (A,)."""
+
+    out: NDArray[np.int64]
+    inn: NDArray[np.int64]
+    shift: NDArray[np.int64]
+    cost: NDArray[np.float64]
+
+
+def _exact_tables(policy: PolicyResult, layout: _Layout) -> _Tables:
+    out, inn = flow_endpoints(policy.flows, layout.lane_from, layout.lane_to, layout.n_locations)
+    strides = np.cumprod((1, *policy.shape[:0:-1]))[::-1].astype(np.int64)
+    shift = (inn - out) @ strides
+    cost = flow_costs(policy.flows, policy.lane_costs, policy.dispatch_costs)
+    return _Tables(out, inn, shift, cost)
+
+
+def _exact_moves(
+    policy: PolicyResult, tables: _Tables, stocks: NDArray[np.int64], phase: int
+) -> tuple[
+    NDArray[np.int64],
+    NDArray[np.float64],
+    NDArray[np.float64],
+    NDArray[np.float64],
+    NDArray[np.int64],
+    NDArray[np.int64],
+]:
+    """flows (G, L), value, value without moves, cost (G,), action and state index (G,)."""
+    idx = np.ravel_multi_index(tuple(stocks.T), policy.shape).astype(np.int64)
+    action = policy.action[phase, idx]
+    u = policy.post_move_values[phase]
+    cost = tables.cost[action]
+    # The same operations in the same order as PolicyResult.recommend: equal bit for bit.
+    value = u[idx + tables.shift[action]] - cost
+    without = u[idx] - tables.cost[0]
+    value -= policy.gain or 0.0
+    without -= policy.gain or 0.0
+    return policy.flows[action], value, without, cost, action, idx
+
+
+def _exact_candidates(
+    policy: PolicyResult,
+    tables: _Tables,
+    items: NDArray[np.int64],
+    stocks: NDArray[np.int64],
+    phase: int,
+    action: NDArray[np.int64],
+    idx: NDArray[np.int64],
+    without: NDArray[np.float64],
+) -> _Candidates:
+    """The policy's action (rank 0), moving nothing (rank 1) and every other allowed flow
+    feasible at the item's stock and worth more than moving nothing (rank 2, table order)."""
+    rows = np.flatnonzero(policy.allowed[phase])
+    rows = rows[rows != 0]
+    capacities = np.array(policy.capacities, dtype=np.int64)
+    lo, hi = feasible_bounds(tables.out[rows], tables.inn[rows], capacities, policy.floors[phase])
+    u = policy.post_move_values[phase]
+    gain = policy.gain or 0.0
+    chosen_value = u[idx + tables.shift[action]] - tables.cost[action] - gain
+
+    pick_item: list[NDArray[np.int64]] = []
+    pick_row: list[NDArray[np.int64]] = []
+    pick_value: list[NDArray[np.float64]] = []
+    chunk = max(1, _CHUNK_ELEMENTS // max(1, rows.size * stocks.shape[1]))
+    for start in range(0, stocks.shape[0], chunk):
+        part = slice(start, start + chunk)
+        s = stocks[part][:, None, :]
+        fits = np.all((s >= lo) & (s <= hi), axis=2)
+        post = np.where(fits, idx[part][:, None] + tables.shift[rows], 0)
+        q = u[post] - tables.cost[rows]
+        q -= gain
+        keep = fits & (q > without[part][:, None]) & (rows != action[part][:, None])
+        g, k = np.nonzero(keep)
+        pick_item.append(g + start)
+        pick_row.append(rows[k])
+        pick_value.append(q[g, k])
+
+    g = np.concatenate(pick_item)
+    row = np.concatenate(pick_row)
+    q = np.concatenate(pick_value)
+    idle = np.flatnonzero(action != 0)
+    local = np.concatenate([np.arange(items.size), idle, g])
+    table_rows = np.concatenate([action, np.zeros(idle.size, dtype=np.int64), row])
+    value = np.concatenate([chosen_value, without[idle], q])
+    return _Candidates(
+        item=items[local],
+        rank=np.concatenate(
+            [np.zeros(items.size, np.int64), np.ones(idle.size, np.int64), np.full(g.size, 2)]
+        ),
+        flows=policy.flows[table_rows],
+        value=value,
+        capped=np.minimum(value, chosen_value[local]),
+        cost=tables.cost[table_rows],
+    )
+
+
+# -- priced policies -------------------------------------------------------------------------
+
+
+def _priced_moves(
+    policy: PricedPolicy, stocks: NDArray[np.int64], phase: int
+) -> tuple[NDArray[np.int64], NDArray[np.float64], NDArray[np.float64], NDArray[np.float64]]:
+    """flows (G, L), value, value without moves, cost (G,)."""
+    flows = policy.plan_batch(stocks, phase=phase)
+    value = policy.move_values(stocks, flows, phase=phase)
+    without = policy.move_values(stocks, np.zeros_like(flows), phase=phase)
+    cost = flows @ policy.lane_costs + (flows > 0) @ policy.dispatch_costs
+    return flows, value, without, cost
+
+
+def _priced_candidates(
+    policy: PricedPolicy,
+    items: NDArray[np.int64],
+    stocks: NDArray[np.int64],
+    phase: int,
+    plan: NDArray[np.int64],
+    plan_value: NDArray[np.float64],
+    without: NDArray[np.float64],
+    plan_cost: NDArray[np.float64],
+) -> _Candidates:
+    """The plan (rank 0), moving nothing (rank 1), and the plan re-made with each used lane
+    closed or allowed one unit less (rank 2), when worth more than moving nothing."""
+    used_item, used_lane = np.nonzero(plan)
+    units = plan[used_item, used_lane]
+    fewer = units >= 2
+    g = np.concatenate([used_item, used_item[fewer]])
+    lane = np.concatenate([used_lane, used_lane[fewer]])
+    cut = np.concatenate([np.zeros(units.size, np.int64), units[fewer] - 1])
+    limits = np.repeat(policy.lane_limits[phase][None, :], g.size, axis=0)
+    limits[np.arange(g.size), lane] = cut
+    if g.size:
+        variants = policy.plan_batch(stocks[g], phase=phase, lane_limits=limits)
+        q = policy.move_values(stocks[g], variants, phase=phase)
+    else:
+        variants, q = np.zeros((0, plan.shape[1]), np.int64), np.zeros(0)
+    keep = (q > without[g]) & np.any(variants != plan[g], axis=1)
+    g, variants, q = g[keep], variants[keep], q[keep]
+    moving = np.flatnonzero(plan.any(axis=1))
+    local = np.concatenate([np.arange(items.size), moving, g])
+    flows = np.concatenate([plan, np.zeros((moving.size, plan.shape[1]), np.int64), variants])
+    value = np.concatenate([plan_value, without[moving], q])
+    return _Candidates(
+        item=items[local],
+        rank=np.concatenate(
+            [np.zeros(items.size, np.int64), np.ones(moving.size, np.int64), np.full(g.size, 2)]
+        ),
+        flows=flows,
+        value=value,
+        capped=np.minimum(value, plan_value[local]),
+        cost=np.concatenate(
+            [
+                plan_cost,
+                np.zeros(moving.size),
+                variants @ policy.lane_costs + (variants > 0) @ policy.dispatch_costs,
+            ]
+        ),
+    )
+
+
+# -- sharing ---------------------------------------------------------------------------------
+
+
+def _choices(
+    parts: list[_Candidates], n_lanes: int
+) -> tuple[ItemChoices, NDArray[np.float64], NDArray[np.float64]]:
+    """Every group's candidates grouped by item (the order within an item kept), as the
+    allocation takes them; with the uncapped values and the costs in the same order."""
+    item = np.concatenate([part.item for part in parts])
+    rank = np.concatenate([part.rank for part in parts])
+    order = np.lexsort((rank, item))  # stable: table order kept within a rank
+    flows = np.concatenate([part.flows for part in parts]).reshape(-1, n_lanes)[order]
+    real = np.concatenate([part.value for part in parts])[order]
+    capped = np.concatenate([part.capped for part in parts])[order]
+    cost = np.concatenate([part.cost for part in parts])[order]
+    return ItemChoices(item[order], flows, capped), real, cost
