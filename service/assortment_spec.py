@@ -189,35 +189,33 @@ class ItemSpec(_Strict):
     ] = 1.0
     locations: Annotated[dict[str, ItemLocation], Field(min_length=2, max_length=64)]
     lane_limits: Annotated[
-        dict[str, Annotated[int, Field(ge=0, le=10_000)]],
+        dict[str, Annotated[int, Field(ge=1, le=10_000)]],
         Field(
-            description='Lower limits of some lanes for this item, by lane ("north>south"); '
-            "0 closes the lane to it."
+            description='Lower limits of some lanes for this item, by lane ("north>south"), '
+            "at least 1: every item keeps every lane of its layout, so that items can share "
+            "the lanes' trucks."
         ),
     ] = {}
 
 
-def _lane_for(lane: LayoutLane, override: int | None) -> LaneSpec | None:
+def _lane_for(lane: LayoutLane, override: int | None) -> LaneSpec:
     document = lane.model_dump(mode="json", by_alias=True, exclude={"truck_capacity"})
     if override is not None:
-        if override == 0:
-            return None
         limit = document["max_units"]
         if isinstance(limit, dict):
             document["max_units"] = {
                 "weekly": {day: min(units, override) for day, units in limit["weekly"].items()}
             }
-            if not any(document["max_units"]["weekly"].values()):
-                return None
         else:
             document["max_units"] = min(limit, override)
     return LaneSpec.model_validate(document)
 
 
 def compose_spec(layout: Layout, item: ItemSpec) -> NetworkSpec:
-    """The item's network on the layout. Raises ValueError naming what does not fit (a
-    location missing from the item or unknown to the layout, an override of an unknown
-    lane, every lane closed) and pydantic's ValidationError for numbers the network refuses."""
+    """The item's network on the layout, with the layout's lanes in the layout's order. Raises
+    ValueError naming what does not fit (a location missing from the item or unknown to the
+    layout, an override of an unknown lane) and pydantic's ValidationError for numbers the
+    network refuses."""
     ids = layout.location_ids
     missing = [i for i in ids if i not in item.locations]
     unknown = [i for i in item.locations if i not in ids]
@@ -233,17 +231,9 @@ def compose_spec(layout: Layout, item: ItemSpec) -> NetworkSpec:
             '(write them as "from>to")'
         )
     lanes = [
-        lane
-        for layout_lane in layout.lanes
-        if (
-            lane := _lane_for(
-                layout_lane, item.lane_limits.get(lane_key(layout_lane.from_, layout_lane.to))
-            )
-        )
-        is not None
+        _lane_for(lane, item.lane_limits.get(lane_key(lane.from_, lane.to)))
+        for lane in layout.lanes
     ]
-    if not lanes:
-        raise ValueError(f"item {item.item!r}: lane_limits close every lane")
     document = {
         "name": layout.name,
         "discount": layout.discount,

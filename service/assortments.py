@@ -172,6 +172,7 @@ def store_items(
                 spec_json=text,
                 spec_hash=digest,
                 method=methods[digest],
+                unit_volume=item.spec.unit_volume,
             )
         )
     if problems:

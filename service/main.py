@@ -12,6 +12,7 @@ from sqlalchemy.exc import OperationalError
 
 from service.api import (
     analysis,
+    assortment_closing,
     assortments,
     calibration,
     closing,
@@ -31,6 +32,7 @@ from service.db.session import make_engine, make_session_factory
 from service.logs import configure_server_logging
 from service.metrics import MeteredPolicyCache
 from service.middleware import BodySizeLimit, Idempotency, RepeatAllowed
+from service.policies import PolicyCache
 from service.problems import RequestId, install_problem_handlers
 from service.ratelimit import RateLimiter
 from service.settings import Settings
@@ -76,6 +78,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
             app.state.engine = engine
             app.state.sessions = make_session_factory(engine)
             app.state.policy_cache = MeteredPolicyCache(settings.policy_cache_size)
+            app.state.item_policy_cache = PolicyCache(settings.item_policy_cache_size)
             app.state.key_cache = KeyCache(settings.key_cache_seconds)
             app.state.rate_limiter = RateLimiter(
                 settings.rate_limit_per_second, settings.rate_limit_burst
@@ -110,6 +113,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         calibration,
         analysis,
         assortments,
+        assortment_closing,
         jobs,
         health,
         ops,

@@ -30,6 +30,7 @@ from solver import CRITERIA, InvalidStockError, Recommendation
 from solver.spec import DEFAULT_TIMEZONE
 
 __all__ = [
+    "CachedPolicy",
     "NetworkKey",
     "NetworkRef",
     "PolicyCache",
@@ -89,6 +90,10 @@ class ServedPolicy:
 class _Entry:
     result: StoredPolicy
     solved_at: datetime
+
+
+# A cache entry: a decoded policy and when it was solved.
+CachedPolicy = _Entry
 
 
 class PolicyCache:

@@ -47,6 +47,14 @@ class Settings(BaseSettings):
     policy_cache_size: Annotated[
         int, Field(ge=0, description="Decoded policies kept in memory per process.")
     ] = 64
+    item_policy_cache_size: Annotated[
+        int,
+        Field(
+            ge=0,
+            description="Decoded policies of assortment items kept in memory per process "
+            "(items with identical numbers share one).",
+        ),
+    ] = 10_000
     simulation_max_replication_days: Annotated[
         int,
         Field(

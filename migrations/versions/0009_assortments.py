@@ -62,6 +62,7 @@ def upgrade() -> None:
     with op.batch_alter_table("networks", schema=None) as batch_op:
         batch_op.add_column(sa.Column("assortment_id", sa.Integer(), nullable=True))
         batch_op.add_column(sa.Column("item_code", sa.String(length=100), nullable=True))
+        batch_op.add_column(sa.Column("unit_volume", sa.Float(), nullable=True))
         batch_op.create_index(
             batch_op.f("ix_networks_assortment_id"), ["assortment_id"], unique=False
         )
@@ -79,6 +80,7 @@ def downgrade() -> None:
             batch_op.f("fk_networks_assortment_id_assortments"), type_="foreignkey"
         )
         batch_op.drop_index(batch_op.f("ix_networks_assortment_id"))
+        batch_op.drop_column("unit_volume")
         batch_op.drop_column("item_code")
         batch_op.drop_column("assortment_id")
     op.drop_table("pick_lists")

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from datetime import time
+from datetime import date, time
 from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator
@@ -13,10 +13,14 @@ from service.schemas import Criteria, SolveModeName, Timestamp, known_timezone
 __all__ = [
     "AssortmentCreate",
     "AssortmentOut",
+    "ClosingReportOut",
+    "ClosingStateOut",
     "ItemOut",
     "ItemPage",
     "ItemStates",
     "ItemsStoredOut",
+    "LocationReportOut",
+    "PickListOut",
 ]
 
 DEMO_LAYOUT: dict[str, Any] = {
@@ -147,3 +151,114 @@ class ItemPage(BaseModel):
     next_after: str | None = Field(
         description="Pass as `after` for the next page; null on the last page."
     )
+
+
+class ClosingReportOut(BaseModel):
+    """What a location's closing report did."""
+
+    assortment_id: int = Field(description="The assortment.")
+    location: str = Field(description="The reporting location.")
+    business_date: date = Field(description="The business date the counts belong to.")
+    items: int = Field(description="Items counted.")
+    missing_locations: list[str] = Field(description="Locations still to report this night.")
+    pick_list_revision: int | None = Field(
+        description="The revision of the night's pick lists once issued (this report may have "
+        "issued it); null while locations are missing."
+    )
+    corrected: int = Field(description="Counts this correction changed (0 for a first report).")
+
+
+class LocationReportOut(BaseModel):
+    location: str = Field(description="A location that reported.")
+    items: int = Field(description="Items it counted.")
+    reported_at: Timestamp = Field(description="When its latest report arrived (UTC).")
+
+
+class SharingOut(BaseModel):
+    """How the lanes' shared trucks were shared out tonight (currency)."""
+
+    value: float = Field(description="Value of the moves as allocated.")
+    bound: float = Field(
+        description="No allocation within the trucks' capacity is worth more than this."
+    )
+    unconstrained_value: float = Field(description="Value with every item's own best moves.")
+    sharing_cost: float = Field(description="What the shared trucks cost tonight.")
+    gap: float = Field(description="bound - value: how far from the best allocation at most.")
+    lane_load: list[float] = Field(description="Capacity used per lane, in the layout's order.")
+
+
+class PickSummaryOut(BaseModel):
+    """The night's totals over every item."""
+
+    criterion: str = Field(description="The criterion whose policies planned the night.")
+    items: int = Field(description="Items of the assortment.")
+    planned: int = Field(description="Items planned from their policies.")
+    not_solved: int = Field(
+        description="Items without a policy yet (no moves for them; see their solve state)."
+    )
+    units_moved: int = Field(description="Units moved over all items and lanes.")
+    gain: float = Field(description="Value of all moves over moving nothing (currency).")
+    transfer_cost: float = Field(description="Unit and dispatch costs of all moves.")
+    sharing: SharingOut | None = Field(description="Shared trucks; null when none is shared.")
+    seconds: float = Field(description="Seconds the planning took.")
+
+
+class PickSendOut(BaseModel):
+    to: str = Field(description="The receiving location.")
+    units: int = Field(description="Units to pack.")
+    unit_cost: float = Field(description="Lane cost per unit.")
+
+
+class PickReceiveOut(BaseModel):
+    model_config = ConfigDict(populate_by_name=True)
+
+    from_: str = Field(alias="from", description="The sending location.")
+    units: int = Field(description="Units to expect.")
+    unit_cost: float = Field(description="Lane cost per unit.")
+
+
+class PickLineOut(BaseModel):
+    item: str = Field(description="The item's code.")
+    network_id: int = Field(description="The item's network.")
+    version: int = Field(description="The item's version that planned it.")
+    closing_stock: int = Field(description="The location's closing count of the item.")
+    sends: list[PickSendOut] = Field(description="Units this location sends, by receiver.")
+    receives: list[PickReceiveOut] = Field(description="Units it receives, by sender.")
+    gain: float = Field(
+        description="What the item's moves tonight (at every location) are worth over moving "
+        "nothing, on its policy's value scale."
+    )
+    item_transfer_cost: float = Field(description="The item's move costs tonight, all lanes.")
+
+
+class ItemCorrectionOut(BaseModel):
+    item: str = Field(description="The corrected item.")
+    location: str = Field(description="Where its count was corrected.")
+    old_units: int = Field(description="The count before.")
+    new_units: int = Field(description="The count after.")
+    revision: int = Field(description="The pick lists' revision the correction issued.")
+    key_prefix: str = Field(description="The public prefix of the API key that corrected it.")
+    corrected_at: Timestamp = Field(description="When (UTC).")
+
+
+class PickListOut(BaseModel):
+    """One location's pick list of a business date: only items it moves."""
+
+    assortment_id: int = Field(description="The assortment.")
+    location: str = Field(description="The location.")
+    business_date: date = Field(description="The business date of the closing counts.")
+    revision: int = Field(description="1 when first issued; each correction adds one.")
+    computed_at: Timestamp = Field(description="When this revision was made (UTC).")
+    lines: list[PickLineOut] = Field(description="Items this location sends or receives.")
+    summary: PickSummaryOut = Field(description="The night over every item and location.")
+    corrections: list[ItemCorrectionOut] = Field(
+        description="Every count corrected this night, at any location."
+    )
+
+
+class ClosingStateOut(BaseModel):
+    business_date: date = Field(description="The business date.")
+    reported: list[LocationReportOut] = Field(description="Locations that reported.")
+    missing_locations: list[str] = Field(description="Locations still to report.")
+    pick_list_revision: int | None = Field(description="The pick lists' revision once issued.")
+    summary: PickSummaryOut | None = Field(description="The night's totals once issued.")

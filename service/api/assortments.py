@@ -72,7 +72,8 @@ class UploadTooLarge(ApiProblem):
     status, slug, title = 413, "body-too-large", "Request body too large"
 
 
-def _get(session: Session, tenant_id: int, assortment_id: int) -> Assortment:
+def find_or_404(session: Session, tenant_id: int, assortment_id: int) -> Assortment:
+    """The tenant's live assortment, or 404 (another tenant's looks exactly like a missing one)."""
     assortment = assortments.find_assortment(session, tenant_id, assortment_id)
     if assortment is None:
         raise NotFound(f"no assortment {assortment_id}")
@@ -140,7 +141,7 @@ def get_assortment(
     assortment_id: AssortmentId, session: SessionDep, caller: Reader
 ) -> AssortmentOut:
     """The layout and where its items' solves stand."""
-    return _out(session, _get(session, caller.tenant_id, assortment_id))
+    return _out(session, find_or_404(session, caller.tenant_id, assortment_id))
 
 
 @router.get("/{assortment_id}/items", response_model=ItemPage)
@@ -155,7 +156,7 @@ def list_items(
     ] = None,
 ) -> ItemPage:
     """Items in code order with their networks, versions and solve states."""
-    items = _items(session, _get(session, caller.tenant_id, assortment_id))
+    items = _items(session, find_or_404(session, caller.tenant_id, assortment_id))
     chosen = [
         item
         for item in items
@@ -165,7 +166,7 @@ def list_items(
     return ItemPage(items=page, next_after=page[-1].item if len(chosen) > limit else None)
 
 
-async def _lines(request: Request, limit: int) -> list[str]:
+async def read_lines(request: Request, limit: int) -> list[str]:
     """The body's text lines, decoded as they arrive; 413 past `limit` bytes."""
     decoder = codecs.getincrementaldecoder("utf-8-sig")()
     lines: list[str] = []
@@ -226,10 +227,10 @@ async def upload_items(
         raise UnsupportedMedia(
             f"send text/csv, application/x-ndjson or application/json, not {media}"
         )
-    lines = await _lines(request, settings.max_upload_bytes)
+    lines = await read_lines(request, settings.max_upload_bytes)
 
     def work() -> ItemsStoredOut:
-        assortment = _get(session, caller.tenant_id, assortment_id)
+        assortment = find_or_404(session, caller.tenant_id, assortment_id)
         layout = assortments.layout_of(assortment)
         try:
             parsed = parsers[media](lines, layout)

@@ -25,6 +25,7 @@ from service.settings import Settings
 __all__ = [
     "Admin",
     "CacheDep",
+    "ItemCacheDep",
     "JobId",
     "NetworkId",
     "Reader",
@@ -59,6 +60,11 @@ async def get_cache(request: Request) -> PolicyCache:
     return cache
 
 
+async def get_item_cache(request: Request) -> PolicyCache:
+    cache: PolicyCache = request.app.state.item_policy_cache
+    return cache
+
+
 # Ids are 32-bit in the database; larger ones can only be absent (and must not overflow a driver).
 MAX_ID = 2_147_483_647
 NetworkId = Annotated[int, Path(ge=1, le=MAX_ID, description="A network's id.")]
@@ -69,6 +75,8 @@ SettingsDep = Annotated[Settings, Depends(get_settings)]
 # acts on a 201 at once finds what it created, and a failed commit is the client's answer too.
 SessionDep = Annotated[Session, Depends(get_session, scope="function")]
 CacheDep = Annotated[PolicyCache, Depends(get_cache)]
+# Decoded policies of assortment items, keyed by (policy id, criterion).
+ItemCacheDep = Annotated[PolicyCache, Depends(get_item_cache)]
 
 
 class KeyCache:

@@ -15,7 +15,7 @@ from dataclasses import dataclass
 from datetime import time
 from typing import Any
 
-from sqlalchemy import insert, select
+from sqlalchemy import insert, select, update
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
@@ -32,6 +32,7 @@ __all__ = [
     "current_items",
     "get_assortment",
     "list_assortments",
+    "spec_texts",
     "store_items",
 ]
 
@@ -97,6 +98,7 @@ class CurrentItem:
     version_id: int
     spec_hash: str
     method: str
+    unit_volume: float | None
 
 
 def current_items(session: Session, assortment_id: int) -> dict[str, CurrentItem]:
@@ -109,9 +111,25 @@ def current_items(session: Session, assortment_id: int) -> dict[str, CurrentItem
             NetworkVersion.id,
             NetworkVersion.spec_hash,
             NetworkVersion.method,
+            Network.unit_volume,
         ).where(Network.assortment_id == assortment_id)
     )
     return {row[1]: CurrentItem(*row) for row in rows}
+
+
+def spec_texts(session: Session, version_ids: Sequence[int]) -> dict[int, str]:
+    """The specification JSON of versions, by id (in chunks of `_CHUNK`)."""
+    found: dict[int, str] = {}
+    for start in range(0, len(version_ids), _CHUNK):
+        chunk = version_ids[start : start + _CHUNK]
+        found.update(
+            session.execute(
+                select(NetworkVersion.id, NetworkVersion.spec_json).where(
+                    NetworkVersion.id.in_(chunk)
+                )
+            ).all()
+        )
+    return found
 
 
 @dataclass(frozen=True)
@@ -123,6 +141,7 @@ class ItemRow:
     spec_json: str
     spec_hash: str
     method: str
+    unit_volume: float
 
 
 @dataclass(frozen=True)
@@ -155,6 +174,14 @@ def store_items(
             or current[item.item_code].method != item.method
         )
     ]
+    # A new volume alone changes no model: the network takes it, without a version.
+    volumes = [
+        {"id": current[item.item_code].network_id, "unit_volume": item.unit_volume}
+        for item in items
+        if item.item_code in current and current[item.item_code].unit_volume != item.unit_volume
+    ]
+    if volumes:
+        session.execute(update(Network), volumes)
     network_ids = {code: entry.network_id for code, entry in current.items()}
     if new:
         created = session.execute(
@@ -166,6 +193,7 @@ def store_items(
                     "mode": mode,
                     "assortment_id": assortment_id,
                     "item_code": item.item_code,
+                    "unit_volume": item.unit_volume,
                 }
                 for item in new
             ],

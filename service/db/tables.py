@@ -100,6 +100,9 @@ class Network(Base):
     # the assortment. None for a network of its own.
     assortment_id: Mapped[int | None] = mapped_column(ForeignKey("assortments.id"), index=True)
     item_code: Mapped[str | None] = mapped_column(String(100))
+    # Room one unit of the item takes on a lane's shared truck (the layout's unit); not part of
+    # the item's own model, so not of its specification either.
+    unit_volume: Mapped[float | None] = mapped_column(Float)
 
     versions: Mapped[list[NetworkVersion]] = relationship(
         back_populates="network", order_by="NetworkVersion.number"

@@ -178,7 +178,7 @@ def test_json_lines_and_json_documents(client: TestClient, engine: Engine) -> No
         json.dumps(doc)
         for doc in (
             item("DRL-18V", 30.0, unit_volume=0.3),
-            item("GRD-125", 20.0, lane_limits={"old-town>ring-road": 0, "harbour>old-town": 1}),
+            item("GRD-125", 20.0, lane_limits={"harbour>old-town": 1}),
         )
     )
     response = client.post(
@@ -191,10 +191,11 @@ def test_json_lines_and_json_documents(client: TestClient, engine: Engine) -> No
     grinder = next(i for i in items if i["item"] == "GRD-125")
     spec = client.get(f"/v1/networks/{grinder['network_id']}/versions").json()[0]["spec"]
     lanes = {(lane["from"], lane["to"]): lane["max_units"] for lane in spec["lanes"]}
-    # The item's own limits: one lane closed to it, one lowered, the others the layout's.
+    # The item's own limit on one lane, the layout's on the others.
     assert lanes == {
         ("harbour", "old-town"): 1,
         ("old-town", "harbour"): 3,
+        ("old-town", "ring-road"): 2,
         ("ring-road", "old-town"): 2,
     }
 
@@ -255,3 +256,213 @@ def test_uploads_beyond_the_request_limit_are_streamed(engine: Engine) -> None:
         assert _upload_csv(client, assortment, lines).json()["created"] == 40
         many = [row for k in range(1500) for row in _csv_rows(f"BIG-{k:04d}", 10.0 + k)]
         assert_problem(_upload_csv(client, assortment, many), 413)
+
+
+# -- closing reports and pick lists ----------------------------------------------------------
+
+DAY = "2026-11-30"  # a Monday
+
+
+def _assortment_with_items(
+    client: TestClient, engine: Engine, n_items: int, **layout: Any
+) -> tuple[int, list[str]]:
+    assortment = _create(client, **layout)
+    codes = [f"TOOL-{k:03d}" for k in range(n_items)]
+    lines = [row for k, code in enumerate(codes) for row in _csv_rows(code, 10.0 + k % 7)]
+    assert _upload_csv(client, assortment, lines).status_code == 200
+    run_worker(engine)
+    return assortment, codes
+
+
+def _stocks(codes: list[str], seed: int = 7) -> dict[str, dict[str, int]]:
+    import numpy as np
+
+    rng = np.random.default_rng(seed)
+    locations = ("harbour", "old-town", "ring-road")
+    return {loc: {code: int(rng.integers(0, 6)) for code in codes} for loc in locations}
+
+
+def _report(
+    client: TestClient, assortment: int, location: str, counts: dict[str, int], **params: Any
+) -> Any:
+    return client.put(
+        f"/v1/assortments/{assortment}/locations/{location}/closing-report",
+        params={"business_date": DAY, **params},
+        json={"counts": counts},
+    )
+
+
+def _moves(pick: dict[str, Any]) -> set[tuple[str, str, str, int]]:
+    """(item, from, to, units) of a location's pick list."""
+    here = pick["location"]
+    found = set()
+    for line in pick["lines"]:
+        found |= {(line["item"], here, s["to"], s["units"]) for s in line["sends"]}
+        found |= {(line["item"], r["from"], here, r["units"]) for r in line["receives"]}
+    return found
+
+
+def test_pick_lists_equal_each_items_own_recommendation(client: TestClient, engine: Engine) -> None:
+    assortment, codes = _assortment_with_items(client, engine, 12)
+    stocks = _stocks(codes)
+    # The CSV form for one location, JSON for the others.
+    csv_body = "item,units\n" + "\n".join(f"{c},{u}" for c, u in stocks["harbour"].items())
+    first = client.put(
+        f"/v1/assortments/{assortment}/locations/harbour/closing-report",
+        params={"business_date": DAY},
+        content=csv_body,
+        headers={"content-type": "text/csv"},
+    )
+    assert first.status_code == 200, first.text
+    assert first.json()["missing_locations"] == ["old-town", "ring-road"]
+    assert first.json()["pick_list_revision"] is None
+    early = client.get(
+        f"/v1/assortments/{assortment}/locations/harbour/pick-list", params={"business_date": DAY}
+    )
+    assert_problem(early, 409)
+    assert early.json()["missing_locations"] == ["old-town", "ring-road"]
+    assert _report(client, assortment, "old-town", stocks["old-town"]).status_code == 200
+    last = _report(client, assortment, "ring-road", stocks["ring-road"])
+    assert last.json()["pick_list_revision"] == 1
+
+    picked: set[tuple[str, str, str, int]] = set()
+    for location in ("harbour", "old-town", "ring-road"):
+        pick = client.get(
+            f"/v1/assortments/{assortment}/locations/{location}/pick-list",
+            params={"business_date": DAY},
+        )
+        assert pick.status_code == 200
+        picked |= _moves(pick.json())
+    items = client.get(f"/v1/assortments/{assortment}/items").json()["items"]
+    expected: set[tuple[str, str, str, int]] = set()
+    for item in items:
+        stock = {loc: stocks[loc][item["item"]] for loc in stocks}
+        single = client.post(
+            f"/v1/networks/{item['network_id']}/recommendation", json={"stock": stock}
+        ).json()
+        expected |= {(item["item"], t["from"], t["to"], t["units"]) for t in single["transfers"]}
+    assert picked == expected
+    assert expected, "the scenario should move something"
+
+    csv_text = client.get(
+        f"/v1/assortments/{assortment}/locations/harbour/pick-list",
+        params={"business_date": DAY, "format": "csv"},
+    ).text
+    rows = csv_text.strip().splitlines()
+    assert rows[0].split(",") == [
+        "business_date",
+        "revision",
+        "item",
+        "move",
+        "counterpart",
+        "units",
+        "unit_cost",
+        "item_gain",
+    ]
+    assert len(rows) - 1 == sum(1 for m in picked if "harbour" in (m[1], m[2]))
+
+
+def test_corrections_issue_the_next_revision(client: TestClient, engine: Engine) -> None:
+    assortment, codes = _assortment_with_items(client, engine, 4)
+    stocks = _stocks(codes, seed=3)
+    for location, counts in stocks.items():
+        assert _report(client, assortment, location, counts).status_code == 200
+    url = f"/v1/assortments/{assortment}/locations/harbour/pick-list"
+    first = client.get(url, params={"business_date": DAY})
+    etag = first.headers["etag"]
+    assert (
+        client.get(url, params={"business_date": DAY}, headers={"if-none-match": etag}).status_code
+        == 304
+    )
+    changed = {**stocks["harbour"], codes[0]: 5 - stocks["harbour"][codes[0]]}
+    refused = _report(client, assortment, "harbour", changed)
+    assert_problem(refused, 409)
+    corrected = _report(client, assortment, "harbour", changed, correction="true")
+    assert corrected.json()["pick_list_revision"] == 2
+    assert corrected.json()["corrected"] == 1
+    second = client.get(url, params={"business_date": DAY}).json()
+    assert second["revision"] == 2
+    [note] = second["corrections"]
+    assert (note["item"], note["old_units"], note["new_units"]) == (
+        codes[0],
+        stocks["harbour"][codes[0]],
+        changed[codes[0]],
+    )
+    assert (
+        client.get(url, params={"business_date": DAY}, headers={"if-none-match": etag}).status_code
+        == 200
+    )
+
+
+@sqlite_only
+def test_closing_reports_are_checked_whole(client: TestClient, engine: Engine) -> None:
+    assortment, codes = _assortment_with_items(client, engine, 3)
+    counts = {code: 2 for code in codes}
+    missing = _report(client, assortment, "harbour", {codes[0]: 1})
+    assert_problem(missing, 422)
+    assert "not counted" in missing.json()["errors"][0]["detail"]
+    over = _report(client, assortment, "harbour", {**counts, codes[1]: 6, "NOPE": 1})
+    assert_problem(over, 422)
+    assert set(pointers(over.json())) == {f"/counts/{codes[1]}", "/counts/NOPE"}
+    bad_csv = client.put(
+        f"/v1/assortments/{assortment}/locations/harbour/closing-report",
+        params={"business_date": DAY},
+        content="item,units\nTOOL-000,2\nTOOL-001,two\nTOOL-000,1\n",
+        headers={"content-type": "text/csv"},
+    )
+    assert_problem(bad_csv, 422)
+    assert pointers(bad_csv.json()) == ["/line/3/units", "/line/4/item"]
+    assert_problem(_report(client, assortment, "attic", counts), 404)
+    state = client.get(f"/v1/assortments/{assortment}/closing", params={"business_date": DAY})
+    assert state.json()["reported"] == []
+
+
+def test_shared_trucks_are_never_overloaded(client: TestClient, engine: Engine) -> None:
+    # The layout's two busiest lanes carry 3 units a night for all items together.
+    lanes = [dict(lane) for lane in LAYOUT["lanes"]]
+    for lane in lanes[:2]:
+        lane["truck_capacity"] = 3
+    assortment, codes = _assortment_with_items(client, engine, 10, lanes=lanes)
+    stocks = _stocks(codes, seed=11)
+    for location, counts in stocks.items():
+        assert _report(client, assortment, location, counts).status_code == 200
+    moves: set[tuple[str, str, str, int]] = set()
+    for location in stocks:
+        pick = client.get(
+            f"/v1/assortments/{assortment}/locations/{location}/pick-list",
+            params={"business_date": DAY},
+        ).json()
+        moves |= _moves(pick)
+    summary = pick["summary"]
+    for lane in lanes[:2]:
+        carried = sum(u for _, a, b, u in moves if (a, b) == (lane["from"], lane["to"]))
+        assert carried <= 3
+    sharing = summary["sharing"]
+    assert sharing["value"] <= sharing["bound"] + 1e-6
+    # The trucks bind in this scenario: sharing them costs something.
+    assert sharing["sharing_cost"] > 0
+    assert max(sharing["lane_load"][:2]) <= 3
+
+
+def test_trucks_that_do_not_bind_change_nothing(client: TestClient, engine: Engine) -> None:
+    lanes = [{**lane, "truck_capacity": 1000} for lane in LAYOUT["lanes"]]
+    plain, codes = _assortment_with_items(client, engine, 8)
+    trucked, _ = _assortment_with_items(client, engine, 8, name="tools-west", lanes=lanes)
+    stocks = _stocks(codes, seed=5)
+    found = []
+    for assortment in (plain, trucked):
+        for location, counts in stocks.items():
+            assert _report(client, assortment, location, counts).status_code == 200
+        found.append(
+            {
+                location: _moves(
+                    client.get(
+                        f"/v1/assortments/{assortment}/locations/{location}/pick-list",
+                        params={"business_date": DAY},
+                    ).json()
+                )
+                for location in stocks
+            }
+        )
+    assert found[0] == found[1]
+    assert any(found[0].values())
