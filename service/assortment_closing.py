@@ -25,6 +25,7 @@ from datetime import date, datetime
 from typing import Any
 
 import numpy as np
+from numpy.typing import NDArray
 from sqlalchemy.orm import Session
 
 from service.assortment_spec import Layout
@@ -40,11 +41,14 @@ from solver.assortment import ItemPolicy, assortment_moves
 __all__ = [
     "AlreadyIssuedError",
     "ClosingCountsError",
+    "NightPlan",
     "PickListNotReadyError",
     "ReportStored",
     "business_date_of",
     "closing_state",
     "location_pick_list",
+    "plan_items",
+    "recommend_items",
     "report_counts",
 ]
 
@@ -167,8 +171,12 @@ def report_counts(
         if not changes:
             return ReportStored(len(counts), issued.revision, [], 0)
     store.store_counts(session, assortment.id, location, business_date, by_network, now)
+    # A location is done once it has counted every current item (items uploaded after its
+    # report need its count too).
     reported = {
-        report.location for report in store.reports_of(session, assortment.id, business_date)
+        report.location
+        for report in store.reports_of(session, assortment.id, business_date)
+        if report.items >= len(items)
     }
     still = [loc for loc in layout.location_ids if loc not in reported]
     if still:
@@ -223,34 +231,37 @@ def _policies(
     return found
 
 
-def _issue(
+@dataclass(frozen=True)
+class NightPlan:
+    """Every item's moves from its closing stock: `lines` (one per item, in code order, with
+    moves as [from index, to index, units] over `locations`) and the night's `summary`."""
+
+    locations: list[str]
+    lines: list[dict[str, Any]]
+    summary: dict[str, Any]
+
+
+def plan_items(
     session: Session,
     cache: PolicyCache,
     assortment: Assortment,
-    layout: Layout,
     items: Mapping[str, CurrentItem],
+    codes: list[str],
+    stocks: NDArray[np.int64],
     business_date: date,
-    revision: int,
-) -> PickList:
+) -> NightPlan:
+    """The moves of the items `codes` (stocks: (len(codes), N) in the layout's location order)
+    from their current policies, with the layout's shared trucks; items without a policy yet
+    get none. Raises InvalidStockError for a stock outside an item's capacity."""
     started = clock.perf_counter()
+    layout = layout_of(assortment)
     criterion = criteria_of(assortment)[0]
-    codes = sorted(items)
-    policies = _policies(
-        session,
-        cache,
-        assortment.tenant_id,
-        {(items[c].spec_hash, items[c].method) for c in codes},
-        criterion,
-    )
-    counts = store.counts_of(session, assortment.id, business_date)
-    locations = layout.location_ids
-    stocks = np.array(
-        [[counts[loc][items[c].network_id] for loc in locations] for c in codes], dtype=np.int64
-    ).reshape(len(codes), len(locations))
-    solved = [c for c in codes if (items[c].spec_hash, items[c].method) in policies]
+    keys = [(items[c].spec_hash, items[c].method) for c in codes]
+    policies = _policies(session, cache, assortment.tenant_id, set(keys), criterion)
     order = {key: k for k, key in enumerate(policies)}
+    rows = np.array([k for k, key in enumerate(keys) if key in order], dtype=np.int64)
+    solved = [codes[k] for k in rows]
     plan = None
-    rows = np.array([codes.index(c) for c in solved], dtype=np.int64) if solved else None
     if solved:
         trucks = (
             np.array(
@@ -269,27 +280,34 @@ def _issue(
         )
         plan = assortment_moves(
             list(policies.values()),
-            np.array([order[(items[c].spec_hash, items[c].method)] for c in solved]),
+            np.array([order[keys[k]] for k in rows], dtype=np.int64),
             stocks[rows],
             weekday=business_date.weekday(),
             truck_capacity=trucks,
             unit_volume=volume,
             item_ids=solved,
         )
-    lines: list[dict[str, Any]] = []
-    position = {c: k for k, c in enumerate(solved)}
+    locations = layout.location_ids
     lanes = [(locations.index(lane.from_), locations.index(lane.to)) for lane in layout.lanes]
+    position = {int(k): p for p, k in enumerate(rows)}
+    lines: list[dict[str, Any]] = []
     for k, code in enumerate(codes):
         item = items[code]
         line: dict[str, Any] = {
             "item": code,
             "network_id": item.network_id,
             "version": item.version,
-            "stock": [int(u) for u in stocks[k]],
+            "stock": stocks[k].tolist(),
         }
-        p = position.get(code)
+        p = position.get(k)
         if p is None or plan is None:
-            line.update(state="not_solved", moves=[], value=None, value_without_moves=None)
+            line.update(
+                state="not_solved",
+                moves=[],
+                value=None,
+                value_without_moves=None,
+                transfer_cost=0.0,
+            )
         else:
             flows = plan.flows[p]
             line.update(
@@ -324,14 +342,70 @@ def _issue(
         },
         "seconds": clock.perf_counter() - started,
     }
+    return NightPlan(locations, lines, summary)
+
+
+def _issue(
+    session: Session,
+    cache: PolicyCache,
+    assortment: Assortment,
+    layout: Layout,
+    items: Mapping[str, CurrentItem],
+    business_date: date,
+    revision: int,
+) -> PickList:
+    codes = sorted(items)
+    counts = store.counts_of(session, assortment.id, business_date)
+    stocks = np.array(
+        [[counts[loc][items[c].network_id] for loc in layout.location_ids] for c in codes],
+        dtype=np.int64,
+    ).reshape(len(codes), len(layout.location_ids))
+    plan = plan_items(session, cache, assortment, items, codes, stocks, business_date)
     return store.add_pick_list(
         session,
         assortment.id,
         business_date,
         revision,
-        json.dumps({"locations": locations, "lines": lines}, separators=(",", ":")),
-        json.dumps(summary),
+        json.dumps({"locations": plan.locations, "lines": plan.lines}, separators=(",", ":")),
+        json.dumps(plan.summary),
     )
+
+
+def recommend_items(
+    session: Session,
+    cache: PolicyCache,
+    assortment: Assortment,
+    stocks: Mapping[str, Mapping[str, int]],
+    business_date: date,
+) -> NightPlan:
+    """Moves for the items of `stocks` (item code -> location -> units), nothing stored.
+    ClosingCountsError names unknown items and missing or unknown locations."""
+    layout = layout_of(assortment)
+    locations = layout.location_ids
+    items = current_items(session, assortment.id)
+    problems: list[tuple[str, str]] = []
+    for code, stock in stocks.items():
+        if code not in items:
+            problems.append(
+                (f"/stocks/{code}", f"no item {code!r} in assortment {assortment.name!r}")
+            )
+            continue
+        wrong = sorted(set(stock) ^ set(locations))
+        if wrong:
+            problems.append(
+                (
+                    f"/stocks/{code}",
+                    f"give the stock at every location ({', '.join(locations)}) "
+                    f"and no other; wrong: {', '.join(wrong)}",
+                )
+            )
+    if problems:
+        raise ClosingCountsError(problems[:100])
+    codes = list(stocks)
+    array = np.array(
+        [[stocks[c][loc] for loc in locations] for c in codes], dtype=np.int64
+    ).reshape(len(codes), len(locations))
+    return plan_items(session, cache, assortment, items, codes, array, business_date)
 
 
 @dataclass(frozen=True)

@@ -17,6 +17,8 @@ from service import assortment_closing as closing
 from service.api.assortment_schemas import (
     ClosingReportOut,
     ClosingStateOut,
+    ItemRecommendationsOut,
+    ItemStocksIn,
     LocationReportOut,
     PickListOut,
 )
@@ -24,6 +26,7 @@ from service.api.assortments import AssortmentId, find_or_404, read_lines
 from service.api.deps import ItemCacheDep, Reader, SessionDep, SettingsDep, Writer
 from service.assortments import Assortment, layout_of
 from service.problems import PROBLEM_RESPONSES, Conflict, InvalidInput, NotFound, UnsupportedMedia
+from solver import InvalidStockError
 
 router = APIRouter(prefix="/v1/assortments/{assortment_id}", tags=["assortments"])
 
@@ -296,3 +299,43 @@ def pick_list(
     return Response(
         body.model_dump_json(by_alias=True), media_type="application/json", headers=headers
     )
+
+
+@router.post("/recommendations", response_model=ItemRecommendationsOut)
+def recommend_items(
+    assortment_id: AssortmentId,
+    body: ItemStocksIn,
+    session: SessionDep,
+    caller: Reader,
+    cache: ItemCacheDep,
+) -> Response:
+    """Tonight's moves of many items at once from their closing stocks, with the layout's
+    shared trucks; nothing is stored (closing reports issue the kept pick lists)."""
+    assortment = find_or_404(session, caller.tenant_id, assortment_id)
+    day = body.business_date or closing.business_date_of(assortment)
+    try:
+        plan = closing.recommend_items(session, cache, assortment, body.stocks, day)
+    except closing.ClosingCountsError as exc:
+        raise InvalidInput(_refused(exc.problems), exc.problems) from exc
+    except InvalidStockError as exc:
+        raise InvalidInput(str(exc), [("/stocks", str(exc))]) from exc
+    names = plan.locations
+    items = [
+        {
+            "item": line["item"],
+            "network_id": line["network_id"],
+            "version": line["version"],
+            "state": line["state"],
+            "transfers": [
+                {"from": names[a], "to": names[b], "units": units} for a, b, units in line["moves"]
+            ],
+            "expected_value": line["value"],
+            "value_without_transfers": line["value_without_moves"],
+            "transfer_cost": line["transfer_cost"],
+        }
+        for line in plan.lines
+    ]
+    # Built as plain JSON: validating tens of thousands of lines through the response model
+    # would cost more than planning them.
+    document = {"business_date": day.isoformat(), "items": items, "summary": plan.summary}
+    return Response(json.dumps(document, separators=(",", ":")), media_type="application/json")

@@ -5,7 +5,7 @@ from __future__ import annotations
 from datetime import date, time
 from typing import Any, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, field_validator
+from pydantic import BaseModel, ConfigDict, Field, StrictInt, field_validator
 
 from service.assortment_spec import Layout
 from service.schemas import Criteria, SolveModeName, Timestamp, known_timezone
@@ -17,7 +17,9 @@ __all__ = [
     "ClosingStateOut",
     "ItemOut",
     "ItemPage",
+    "ItemRecommendationsOut",
     "ItemStates",
+    "ItemStocksIn",
     "ItemsStoredOut",
     "LocationReportOut",
     "PickListOut",
@@ -262,3 +264,49 @@ class ClosingStateOut(BaseModel):
     missing_locations: list[str] = Field(description="Locations still to report.")
     pick_list_revision: int | None = Field(description="The pick lists' revision once issued.")
     summary: PickSummaryOut | None = Field(description="The night's totals once issued.")
+
+
+class ItemStocksIn(BaseModel):
+    """Closing stocks of many items, for their moves without a closing report."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    stocks: dict[str, dict[str, StrictInt]] = Field(
+        min_length=1,
+        max_length=50_000,
+        description="Item code -> location -> units on hand, every location of the layout.",
+    )
+    business_date: date | None = Field(
+        default=None,
+        description="Picks the weekday for items with weekly numbers; absent: the assortment's "
+        "current business date.",
+    )
+
+
+class ItemMoveOut(BaseModel):
+    model_config = ConfigDict(populate_by_name=True)
+
+    from_: str = Field(alias="from", description="The sending location.")
+    to: str = Field(description="The receiving location.")
+    units: int = Field(description="Units moved.")
+
+
+class ItemRecommendationOut(BaseModel):
+    item: str = Field(description="The item's code.")
+    network_id: int = Field(description="The item's network.")
+    version: int = Field(description="The item's version whose policy answered.")
+    state: Literal["planned", "not_solved"] = Field(
+        description="planned, or not_solved when the item has no policy yet (no moves)."
+    )
+    transfers: list[ItemMoveOut] = Field(description="Tonight's moves of the item.")
+    expected_value: float | None = Field(
+        description="The item's value with the moves, as its single recommendation says."
+    )
+    value_without_transfers: float | None = Field(description="The same moving nothing.")
+    transfer_cost: float = Field(description="The item's move costs.")
+
+
+class ItemRecommendationsOut(BaseModel):
+    business_date: date = Field(description="The business date the moves are for.")
+    items: list[ItemRecommendationOut] = Field(description="One answer per item, in order.")
+    summary: PickSummaryOut = Field(description="Totals over the items.")

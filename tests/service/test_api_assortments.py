@@ -8,6 +8,7 @@ from __future__ import annotations
 import json
 from typing import Any
 
+import pytest
 from fastapi.testclient import TestClient
 from sqlalchemy import Engine, func, select
 
@@ -466,3 +467,40 @@ def test_trucks_that_do_not_bind_change_nothing(client: TestClient, engine: Engi
         )
     assert found[0] == found[1]
     assert any(found[0].values())
+
+
+def test_bulk_recommendations_answer_like_single_items(client: TestClient, engine: Engine) -> None:
+    assortment, codes = _assortment_with_items(client, engine, 9)
+    stocks = _stocks(codes, seed=23)
+    by_item = {code: {loc: stocks[loc][code] for loc in stocks} for code in codes}
+    response = client.post(
+        f"/v1/assortments/{assortment}/recommendations",
+        json={"stocks": by_item, "business_date": DAY},
+    )
+    assert response.status_code == 200, response.text
+    answers = response.json()["items"]
+    assert [a["item"] for a in answers] == codes
+    for answer in answers:
+        single = client.post(
+            f"/v1/networks/{answer['network_id']}/recommendation",
+            json={"stock": by_item[answer["item"]]},
+        ).json()
+        assert answer["transfers"] == [
+            {"from": t["from"], "to": t["to"], "units": t["units"]} for t in single["transfers"]
+        ]
+        assert answer["expected_value"] == pytest.approx(single["expected_value"], abs=0.01)
+        assert answer["value_without_transfers"] == pytest.approx(
+            single["value_without_transfers"], abs=0.01
+        )
+    over = client.post(
+        f"/v1/assortments/{assortment}/recommendations",
+        json={"stocks": {codes[0]: {"harbour": 9, "old-town": 0, "ring-road": 0}}},
+    )
+    assert_problem(over, 422)
+    assert "outside 0..5" in over.json()["detail"]
+    unknown = client.post(
+        f"/v1/assortments/{assortment}/recommendations",
+        json={"stocks": {"NOPE": {"harbour": 1}, codes[1]: {"harbour": 1}}},
+    )
+    assert_problem(unknown, 422)
+    assert pointers(unknown.json()) == ["/stocks/NOPE", f"/stocks/{codes[1]}"]
