@@ -241,6 +241,11 @@ class NightPlan:
     summary: dict[str, Any]
 
 
+def _money(amount: float) -> float:
+    """Currency as answers give it: cents."""
+    return round(float(amount), 2)
+
+
 def plan_items(
     session: Session,
     cache: PolicyCache,
@@ -316,9 +321,9 @@ def plan_items(
                     [lanes[lane][0], lanes[lane][1], int(flows[lane])]
                     for lane in np.flatnonzero(flows)
                 ],
-                value=float(plan.value[p]),
-                value_without_moves=float(plan.value_without_moves[p]),
-                transfer_cost=float(plan.transfer_cost[p]),
+                value=_money(plan.value[p]),
+                value_without_moves=_money(plan.value_without_moves[p]),
+                transfer_cost=_money(plan.transfer_cost[p]),
             )
         lines.append(line)
     sharing = plan.sharing if plan is not None else None
@@ -328,19 +333,19 @@ def plan_items(
         "planned": len(solved),
         "not_solved": len(codes) - len(solved),
         "units_moved": int(plan.flows.sum()) if plan is not None else 0,
-        "gain": float(plan.gain.sum()) if plan is not None else 0.0,
-        "transfer_cost": float(plan.transfer_cost.sum()) if plan is not None else 0.0,
+        "gain": _money(plan.gain.sum()) if plan is not None else 0.0,
+        "transfer_cost": _money(plan.transfer_cost.sum()) if plan is not None else 0.0,
         "sharing": None
         if sharing is None
         else {
-            "value": float(sharing.value),
-            "bound": float(sharing.bound),
-            "unconstrained_value": float(sharing.unconstrained_value),
-            "sharing_cost": float(sharing.sharing_cost),
-            "gap": float(sharing.gap),
-            "lane_load": [float(x) for x in sharing.load],
+            "value": _money(sharing.value),
+            "bound": _money(sharing.bound),
+            "unconstrained_value": _money(sharing.unconstrained_value),
+            "sharing_cost": _money(sharing.sharing_cost),
+            "gap": _money(sharing.gap),
+            "lane_load": [round(float(x), 6) for x in sharing.load],
         },
-        "seconds": clock.perf_counter() - started,
+        "seconds": round(clock.perf_counter() - started, 6),
     }
     return NightPlan(locations, lines, summary)
 
@@ -489,7 +494,7 @@ def location_pick_list(
                 "closing_stock": line["stock"][here],
                 "sends": sends,
                 "receives": receives,
-                "gain": line["value"] - line["value_without_moves"],
+                "gain": _money(line["value"] - line["value_without_moves"]),
                 "item_transfer_cost": line["transfer_cost"],
             }
         )

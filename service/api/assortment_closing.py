@@ -246,7 +246,7 @@ def _csv(pick_list: closing.LocationPickList) -> str:
                         entry[other],
                         entry["units"],
                         f"{entry['unit_cost']:.2f}",
-                        f"{line['gain']:.4f}",
+                        f"{line['gain']:.2f}",
                     )
                 )
     return out.getvalue()
