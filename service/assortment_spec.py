@@ -17,12 +17,12 @@ shared out at closing time (solver.assortment).
 
 from __future__ import annotations
 
-from typing import Annotated, Literal
+from typing import Annotated, Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, model_validator
 
 from solver import NetworkSpec
-from solver.spec import DailyLaw, LaneLimit, LaneSpec, NightCount
+from solver.spec import DailyLaw, LaneLimit, NightCount
 
 __all__ = [
     "ITEM_CODE_PATTERN",
@@ -198,7 +198,8 @@ class ItemSpec(_Strict):
     ] = {}
 
 
-def _lane_for(lane: LayoutLane, override: int | None) -> LaneSpec:
+def _lane_for(lane: LayoutLane, override: int | None) -> dict[str, Any]:
+    """The lane as the item's network has it (a document: the network validates it)."""
     document = lane.model_dump(mode="json", by_alias=True, exclude={"truck_capacity"})
     if override is not None:
         limit = document["max_units"]
@@ -208,7 +209,7 @@ def _lane_for(lane: LayoutLane, override: int | None) -> LaneSpec:
             }
         else:
             document["max_units"] = min(limit, override)
-    return LaneSpec.model_validate(document)
+    return document
 
 
 def compose_spec(layout: Layout, item: ItemSpec) -> NetworkSpec:
@@ -243,6 +244,6 @@ def compose_spec(layout: Layout, item: ItemSpec) -> NetworkSpec:
             {"id": i, **item.locations[i].model_dump(mode="json", exclude_defaults=True)}
             for i in ids
         ],
-        "lanes": [lane.model_dump(mode="json", by_alias=True) for lane in lanes],
+        "lanes": lanes,
     }
     return NetworkSpec.model_validate(document)

@@ -202,12 +202,16 @@ class WeeklyCount(_Strict):
 
 
 def _law_tag(value: Any) -> str | None:
+    if type(value) is dict:
+        return "weekly" if "weekly" in value else value.get("dist")
+    # A validated law names its own `dist`; only a weekly one has none (checking `dist` first
+    # spares an isinstance against a model class, which is slow).
+    tag: str | None = getattr(value, "dist", None)
+    if tag is not None:
+        return tag
     if isinstance(value, dict):
         return "weekly" if "weekly" in value else value.get("dist")
-    if isinstance(value, WeeklyDistribution):
-        return "weekly"
-    tag: str | None = getattr(value, "dist", None)
-    return tag
+    return "weekly" if isinstance(value, WeeklyDistribution) else None
 
 
 DailyLaw = Annotated[
@@ -227,6 +231,10 @@ _LaneUnits = Annotated[int, Field(ge=1, le=10_000, description="Most units moved
 
 
 def _units_tag(value: Any) -> str:
+    # A plain number first: isinstance against a model class is slow, and this runs for every
+    # lane of every network validated.
+    if type(value) is int:
+        return "units"
     return "weekly" if isinstance(value, dict | WeeklyUnits) else "units"
 
 
@@ -237,6 +245,8 @@ LaneLimit = Annotated[
 
 
 def _count_tag(value: Any) -> str:
+    if type(value) is int:
+        return "units"
     return "weekly" if isinstance(value, dict | WeeklyCount) else "units"
 
 
