@@ -18,11 +18,11 @@ from sqlalchemy.orm import Session, sessionmaker
 
 from service import auth
 from service.db import repository
-from service.db.migrate import DatabaseNotMigratedError, current_revision, require_migrated
+from service.db.migrate import current_revision, require_migrated
 from service.db.migrate import upgrade as upgrade_schema
 from service.db.session import make_engine, make_session_factory
 from service.db.tables import Network, SolveMode
-from service.errors import UsageError
+from service.errors import DatabaseNotMigratedError, UsageError
 from service.files import load_network, write_json_atomically
 from service.modes import resolve_method
 from service.settings import Settings

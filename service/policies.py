@@ -22,22 +22,25 @@ from zoneinfo import ZoneInfo
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
-from service.codec import CorruptPolicyError, StoredPolicy, decode_policy
+from service.codec import StoredPolicy, decode_policy
 from service.db import repository
 from service.db.repository import VersionHead
 from service.db.tables import Network, NetworkVersion
-from solver import CRITERIA, InvalidStockError, Recommendation
+from service.errors import (
+    CorruptPolicyError,
+    PolicyNotReadyError,
+    PolicyNotSolvedError,
+    StockProblemsError,
+    UnknownNetworkError,
+)
+from solver import CRITERIA, Recommendation
 from solver.spec import DEFAULT_TIMEZONE
 
 __all__ = [
     "NetworkKey",
     "NetworkRef",
     "PolicyCache",
-    "PolicyNotReadyError",
-    "PolicyNotSolvedError",
     "ServedPolicy",
-    "StockProblemsError",
-    "UnknownNetworkError",
     "business_date_now",
     "business_date_of",
     "load_policy",
@@ -48,29 +51,6 @@ __all__ = [
 ]
 
 log = logging.getLogger(__name__)
-
-
-class UnknownNetworkError(LookupError):
-    """The network is missing, archived, or another tenant's (which looks exactly the same)."""
-
-
-class PolicyNotReadyError(Exception):
-    """No version of the network has a ready policy for the criterion yet."""
-
-    def __init__(self, message: str, *, job_state: str | None) -> None:
-        super().__init__(message)
-        self.job_state = job_state
-
-
-class PolicyNotSolvedError(PolicyNotReadyError):
-    """No job will produce the asked policy: the current version is not solved for the
-    criterion (not requested, or its solve failed). `criteria` are those it is solved or being
-    solved for. (A kind of PolicyNotReadyError, so that whoever only skips unready policies
-    skips these too.)"""
-
-    def __init__(self, message: str, *, criteria: list[str], job_state: str | None) -> None:
-        super().__init__(message, job_state=job_state)
-        self.criteria = criteria
 
 
 @dataclass(frozen=True)
@@ -271,15 +251,6 @@ def _not_ready(
         f"ready (job {job.id} {job.state})",
         job_state=job.state,
     )
-
-
-class StockProblemsError(InvalidStockError):
-    """Closing stock that does not fit the network; `problems` pairs each offending location
-    with what is wrong there."""
-
-    def __init__(self, problems: list[tuple[str, str]]) -> None:
-        super().__init__("; ".join(f"{location}: {what}" for location, what in problems))
-        self.problems = problems
 
 
 def stock_vector(result: StoredPolicy, stock: Mapping[str, int]) -> list[int]:

@@ -31,15 +31,9 @@ from service.db.tables import (
     NetworkVersion,
     SolveJob,
 )
+from service.errors import PolicyNotReadyError, UnknownNetworkChoice
 from service.pictures import caption, choose_plane, net_inflow_grid, render_moves
-from service.policies import (
-    NetworkRef,
-    PolicyCache,
-    PolicyNotReadyError,
-    ServedPolicy,
-    business_date_now,
-    load_policy,
-)
+from service.policies import NetworkRef, PolicyCache, ServedPolicy, business_date_now, load_policy
 from service.vocabulary import JobKind, JobState, SolveStatus
 from solver import CRITERIA, NetworkSpec
 
@@ -54,7 +48,6 @@ __all__ = [
     "NetworkLine",
     "SolveCell",
     "StatusView",
-    "UnknownNetworkChoice",
     "age",
     "gather",
     "render",
@@ -75,10 +68,6 @@ CAUTION = (
     "Moves follow the model and its parameters: a person reviews them before acting, above all "
     "after an automatic calibration, and local rules on labour, transport and safety come first."
 )
-
-
-class UnknownNetworkChoice(LookupError):
-    """`?network=` names no network of the tenant (or an archived one)."""
 
 
 # One criterion of a network's current version (service.db.reporting).

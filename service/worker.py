@@ -38,10 +38,11 @@ from pydantic import ValidationError
 from sqlalchemy.orm import Session, sessionmaker
 
 from service import analysis
-from service.codec import CorruptPolicyError, StoredPolicy, decode_policy, encode_policy
+from service.codec import StoredPolicy, decode_policy, encode_policy
 from service.db import repository
 from service.db.base import utcnow
 from service.db.tables import NetworkVersion, SolveMethod
+from service.errors import CorruptPolicyError
 from service.schemas import SimulationRequest, WhatIfRequest
 from service.settings import Settings
 from service.vocabulary import JobKind

@@ -27,13 +27,8 @@ from service.calibration import law_moments
 from service.db import repository
 from service.db.base import utcnow
 from service.db.tables import ClosingCorrection, ClosingCount, Instruction, Network, NetworkVersion
-from service.policies import (
-    PolicyNotReadyError,
-    ServedPolicy,
-    StockProblemsError,
-    business_date_of,
-    recommend,
-)
+from service.errors import PolicyNotReadyError, StockProblemsError
+from service.policies import ServedPolicy, business_date_of, recommend
 from service.problems import POLICY_NOT_READY, PROBLEM_RESPONSES, Conflict, InvalidInput, NotFound
 from service.schemas import (
     ClosingStockIn,

@@ -77,9 +77,9 @@ def _importers(prefixes: tuple[str, ...]) -> dict[str, set[str]]:
 
 
 def test_storage_imports_nothing_above_it() -> None:
-    """service/db knows tables, the policy codec and the shared vocabulary: never the API, its
-    HTTP models, the read path or the worker."""
-    allowed = ("service.db", "service.codec", "service.vocabulary")
+    """service/db knows tables, the policy codec, the shared vocabulary and the service's errors:
+    never the API, its HTTP models, the read path or the worker."""
+    allowed = ("service.db", "service.codec", "service.vocabulary", "service.errors")
     above = {
         path: sorted(m for m, _ in imports if m.startswith("service") and not m.startswith(allowed))
         for path, imports in _sources().items()
@@ -90,7 +90,8 @@ def test_storage_imports_nothing_above_it() -> None:
 
 def test_leaf_modules_import_nothing_of_the_service() -> None:
     """The vocabulary, the JSON pointer, the codec, the solving modes, the pictures, the priced
-    exports, the rate limiter and the CLI errors stand on the solver and libraries alone."""
+    exports, the rate limiter and the service's errors stand on the solver, libraries and (but
+    the errors themselves) service.errors alone."""
     leaves = [
         "service/vocabulary.py",
         "service/json_pointer.py",
@@ -103,8 +104,12 @@ def test_leaf_modules_import_nothing_of_the_service() -> None:
     ]
     sources = _sources()
     assert {
-        leaf: sorted(m for m, _ in sources[leaf] if m.startswith("service")) for leaf in leaves
+        leaf: sorted(
+            m for m, _ in sources[leaf] if m.startswith("service") and m != "service.errors"
+        )
+        for leaf in leaves
     } == {leaf: [] for leaf in leaves}
+    assert not any(m.startswith("service") for m, _ in sources["service/errors.py"])
 
 
 def test_the_http_models_stand_on_the_solver_and_the_vocabulary() -> None:
@@ -234,3 +239,25 @@ def test_the_feature_table_names_files_that_exist() -> None:
         if not any((base / name).exists() for base in (ROOT, SERVICE, ROOT / "tests" / "service"))
     )
     assert missing == []
+
+
+def test_exceptions_are_defined_in_the_errors_module() -> None:
+    """Domain errors live in service/errors.py (one hierarchy); elsewhere only the HTTP problems
+    of the API layer and the middleware's private signals define exception classes."""
+    defined = {
+        path: sorted(
+            node.name
+            for node in ast.walk(ast.parse((ROOT / path).read_text(encoding="utf-8")))
+            if isinstance(node, ast.ClassDef)
+            and any(
+                isinstance(base, ast.Name) and base.id.endswith(("Error", "Exception"))
+                for base in node.bases
+            )
+        )
+        for path in _sources()
+        if path != "service/errors.py"
+    }
+    assert {path: names for path, names in defined.items() if names} == {
+        "service/middleware.py": ["RepeatAllowed", "_TooLarge"],
+        "service/problems.py": ["ApiProblem"],
+    }

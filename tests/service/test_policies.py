@@ -8,7 +8,8 @@ from sqlalchemy.orm import Session, sessionmaker
 
 from service.db import repository
 from service.db.tables import Network, Policy, SolveJob
-from service.policies import PolicyCache, PolicyNotReadyError, PolicyNotSolvedError, recommend
+from service.errors import PolicyNotReadyError, PolicyNotSolvedError
+from service.policies import PolicyCache, recommend
 from solver import InvalidStockError, solve_network
 from tests.service.test_repository import demo
 from tests.service.test_worker import make_worker
