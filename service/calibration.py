@@ -23,7 +23,8 @@ import numpy as np
 from numpy.typing import NDArray
 from sqlalchemy.orm import Session
 
-from service.db import repository
+from service.db.history import sales_history
+from service.db.networks import add_version, latest_version
 from service.db.tables import CalibrationSettings, Network, NetworkVersion, SolveJob
 from solver import NetworkSpec
 from solver.calibration import (
@@ -206,10 +207,10 @@ def _proposed_law(pooled: CountEstimate, weekly: WeekdayEffect | None) -> DailyL
 
 def propose(session: Session, network: Network, options: CalibrationOptions) -> Proposal:
     """Estimates for every location of the current version from the stored history."""
-    version = repository.latest_version(session, network.id)
+    version = latest_version(session, network.id)
     assert version is not None, "a network always has a version"
     spec = NetworkSpec.model_validate_json(version.spec_json)
-    history = repository.sales_history(session, network.id, window_days=options.window_days)
+    history = sales_history(session, network.id, window_days=options.window_days)
     document = spec.model_dump(mode="json", by_alias=True, exclude_defaults=True)
     proposals = []
     for index, location in enumerate(spec.locations):
@@ -290,6 +291,6 @@ def apply_proposal(
 ) -> tuple[NetworkVersion, list[SolveJob]]:
     """The proposal as the network's next version, solved by `method` (the network's mode
     resolved for it, service.modes), with its solves queued."""
-    version, jobs = repository.add_version(session, network, proposal.spec, criteria, method=method)
+    version, jobs = add_version(session, network, proposal.spec, criteria, method=method)
     version.calibrated_at = calibrated_at
     return version, jobs

@@ -27,9 +27,10 @@ from service.calibration import (
     options_for,
     propose,
 )
-from service.db import repository
 from service.db.base import utcnow
-from service.db.repository import SalesRow
+from service.db.history import SalesRow, sales_history_summary, store_sales_history
+from service.db.jobs import criteria_requested
+from service.db.networks import canonical_spec, current_spec, latest_version
 from service.db.tables import CalibrationSettings, Network, SolveJob
 from service.modes import resolve_method
 from service.problems import PROBLEM_RESPONSES, Conflict, InvalidInput, UnsupportedMedia
@@ -203,7 +204,7 @@ def _locations(session: Session, network_id: int) -> list[LocationHistoryOut]:
         LocationHistoryOut(
             location=location, days=days, sold_out_days=out, first_date=first, last_date=last
         )
-        for location, days, out, first, last in repository.sales_history_summary(
+        for location, days, out, first, last in sales_history_summary(
             session, network_id, receipts_sell_same_day=same_day
         )
     ]
@@ -248,13 +249,13 @@ def _store_history(
     options = options_for(session, network.id)
     _check_rows(
         rows,
-        repository.current_spec(session, network.id),
+        current_spec(session, network.id),
         csv_upload,
         options.receipts_sell_same_day,
     )
     try:
         with session.begin_nested():
-            inserted, replaced = repository.store_sales_history(
+            inserted, replaced = store_sales_history(
                 session,
                 network.id,
                 [
@@ -356,7 +357,7 @@ def _weekday(effect: WeekdayEffect | None) -> WeekdayTestOut | None:
 
 
 def _calibration_out(network: Network, proposal: Proposal) -> CalibrationOut:
-    digest = repository.canonical_spec(proposal.spec)[1]
+    digest = canonical_spec(proposal.spec)[1]
     locations = []
     for item in proposal.locations:
         calibration = item.calibration
@@ -458,9 +459,9 @@ def get_calibration(
 def _apply(
     session: Session, network: Network, proposal: Proposal, method: str
 ) -> tuple[int, list[SolveJob]]:
-    criteria = repository.criteria_requested(
-        session, network.tenant_id, proposal.based_on.spec_hash
-    ) or ["discounted"]
+    criteria = criteria_requested(session, network.tenant_id, proposal.based_on.spec_hash) or [
+        "discounted"
+    ]
     version, jobs = apply_proposal(session, network, proposal, criteria, utcnow(), method=method)
     return version.number, jobs
 
@@ -482,14 +483,14 @@ def apply_calibration(
     """Make the estimates the next version (If-Match: the current version) and queue its
     solves for the criteria the current version was solved for."""
     network = get_network(session, caller.tenant_id, network_id)
-    current = repository.latest_version(session, network.id)
+    current = latest_version(session, network.id)
     assert current is not None
     check_if_match(network.id, current.number, if_match)
     proposal = propose(session, network, query.over(options_for(session, network.id)))
     if not proposal.calibrated:
         reasons = "; ".join(f"{p.location}: {p.error}" for p in proposal.locations)
         raise Conflict(f"no location of network {network.id} can be estimated ({reasons})")
-    if repository.canonical_spec(proposal.spec)[1] == current.spec_hash:
+    if canonical_spec(proposal.spec)[1] == current.spec_hash:
         raise Conflict(f"the estimates equal version {current.number}'s parameters already")
     method = resolve_method(proposal.spec, network.mode, settings.size_limits)
     number, jobs = _apply(session, network, proposal, method)

@@ -8,7 +8,15 @@ from fastapi import APIRouter, Header, Response, status
 
 from service.api.deps import NetworkId, Reader, SessionDep, SettingsDep, Writer, get_network
 from service.api.views import network_out, network_solves_out
-from service.db import reporting, repository
+from service.db import networks as db_networks
+from service.db import reporting
+from service.db.jobs import criteria_requested
+from service.db.networks import (
+    add_version,
+    latest_version,
+    network_by_name,
+    versions_newest_first,
+)
 from service.db.tables import SolveMode, Tenant
 from service.modes import resolve_method
 from service.problems import Conflict, PreconditionFailed, PreconditionRequired
@@ -52,12 +60,12 @@ def create_network(
     spec = body.spec()
     mode = body.mode or SolveMode.AUTO.value
     method = resolve_method(spec, mode, settings.size_limits)
-    if repository.network_by_name(session, caller.tenant_id, spec.name) is not None:
+    if network_by_name(session, caller.tenant_id, spec.name) is not None:
         raise Conflict(
             f"a network named {spec.name!r} exists already; PUT /v1/networks/{{id}} adds a version"
         )
     tenant = session.get_one(Tenant, caller.tenant_id)
-    network, version, jobs = repository.create_network(
+    network, version, jobs = db_networks.create_network(
         session, tenant, spec, body.criteria, mode=mode, method=method
     )
     network.closing_cutoff = body.closing_cutoff
@@ -103,14 +111,14 @@ def update_network(
     """Add the next version; If-Match must name the current version. An absent `mode` keeps the
     network's; a mode that changes the method queues the new method's solves."""
     network = get_network(session, caller.tenant_id, network_id)
-    current = repository.latest_version(session, network.id)
+    current = latest_version(session, network.id)
     assert current is not None
     check_if_match(network_id, current.number, if_match)
     spec: NetworkSpec = body.spec()
     mode = body.mode or network.mode
     method = resolve_method(spec, mode, settings.size_limits)
     if spec.name != network.name:
-        other = repository.network_by_name(session, caller.tenant_id, spec.name)
+        other = network_by_name(session, caller.tenant_id, spec.name)
         if other is not None and other.id != network.id:
             raise Conflict(f"another network is named {spec.name!r}")
         network.name = spec.name
@@ -118,11 +126,11 @@ def update_network(
     # back as the next version keeps every criterion it was solved for.
     criteria = (
         body.criteria
-        or repository.criteria_requested(session, network.tenant_id, current.spec_hash)
+        or criteria_requested(session, network.tenant_id, current.spec_hash)
         or ["discounted"]
     )
     network.mode = mode
-    version, jobs = repository.add_version(session, network, spec, criteria, method=method)
+    version, jobs = add_version(session, network, spec, criteria, method=method)
     if body.closing_cutoff is not None:
         network.closing_cutoff = body.closing_cutoff
     if current.calibrated_at is not None and _same_laws(
@@ -159,5 +167,5 @@ def list_versions(network_id: NetworkId, session: SessionDep, caller: Reader) ->
             created_at=version.created_at,
             spec=NetworkSpec.model_validate_json(version.spec_json),
         )
-        for version in repository.versions_newest_first(session, network.id)
+        for version in versions_newest_first(session, network.id)
     ]

@@ -11,7 +11,7 @@ from typing import Any
 from fastapi.testclient import TestClient
 from sqlalchemy import Engine
 
-from service.db.repository import canonical_spec
+from service.db.networks import canonical_spec
 from solver import NetworkSpec
 from tests.service.api_support import (
     assert_problem,

@@ -2,9 +2,9 @@
 tests/solver/test_imports.py does for solver/).
 
 The rules that hold today are asserted outright. Where the code does not yet keep a rule of the
-intended design (routers that reach the tables, SQL built outside service/db, HTTP models used
-below the API), the test lists the modules that still break it, with why, so that the list can
-only shrink: a new module breaking the rule fails here.
+intended design (routers that reach storage, HTTP models used below the API), the test lists the
+modules that still break it, with why, so that the list can only shrink: a new module breaking
+the rule fails here.
 """
 
 from __future__ import annotations
@@ -153,19 +153,8 @@ def test_http_models_are_used_below_the_api_only_by_the_listed_modules() -> None
     assert users <= SCHEMAS_BELOW_THE_API
 
 
-# Modules outside service/db that still build SQL (issue: every query in service/db). The list
-# may shrink, never grow.
-SQL_OUTSIDE_STORAGE = {
-    "service/api/closing.py",  # closing counts and instructions
-    "service/auth.py",  # API keys
-    "service/metrics.py",  # queue and solve-time aggregates
-    "service/middleware.py",  # idempotency records
-    "service/policies.py",  # the read path's policy rows
-    "service/status_page.py",  # queue, recent jobs, closing counts, solve times
-}
-
-
-def test_sql_is_built_outside_storage_only_by_the_listed_modules() -> None:
+def test_sql_is_built_in_storage_only() -> None:
+    """Every SQL statement is built in service/db."""
     builders = {
         path
         for path, imports in _sources().items()
@@ -174,20 +163,18 @@ def test_sql_is_built_outside_storage_only_by_the_listed_modules() -> None:
             module.startswith("sqlalchemy") and name in SQL_BUILDERS for module, name in imports
         )
     }
-    assert builders <= SQL_OUTSIDE_STORAGE
+    assert builders == set()
 
 
 def test_routers_use_sqlalchemy_only_for_sessions_and_errors() -> None:
     """A router names a Session (the request's, from service.api.deps) and catches database
-    errors; it builds no SQL, apart from the listed closing routes, and the readiness probe
-    holds the Engine it checks."""
+    errors; it builds no SQL, and the readiness probe holds the Engine it checks."""
     found = {
         path: sorted(f"{module}.{name}" for module, name in imports if module == "sqlalchemy")
         for path, imports in _sources().items()
         if path.startswith("service/api/")
     }
     assert {path: names for path, names in found.items() if names} == {
-        "service/api/closing.py": ["sqlalchemy.select"],
         "service/api/health.py": ["sqlalchemy.Engine"],
     }
     other = {

@@ -17,7 +17,7 @@ from sqlalchemy.orm import Session, sessionmaker
 
 from service import auth, supervisor
 from service.cli import main
-from service.db import repository
+from service.db.jobs import enqueue_analysis
 from service.db.session import make_engine, make_session_factory
 from service.db.tables import Network, NetworkVersion, Policy, SolveJob, Tenant
 from service.vocabulary import JobKind
@@ -355,7 +355,7 @@ def test_jobs_list_shows_network_version_number_and_every_kind(
     with sessions.begin() as session:
         version = session.scalars(select(NetworkVersion).where(NetworkVersion.number == 2)).one()
         tenant_id = session.scalars(select(Tenant.id)).one()
-        simulation = repository.enqueue_analysis(
+        simulation = enqueue_analysis(
             session, tenant_id, version, JobKind.SIMULATE, "average", "{}"
         ).id
 
