@@ -9,11 +9,16 @@ PROBLEM_OF), the CLI prints the message of a UsageError (or an InputError) as on
     ├── InputError (ValueError)  a request that does not fit the network; `errors` pairs
     │   │                        where (a JSON pointer or a query parameter) with what is wrong
     │   ├── AnalysisInputError   simulation / what-if parameters (pointers into the body)
-    │   └── PlaneError           the axes and fixed stock of a picture (query parameters)
+    │   ├── PlaneError           the axes and fixed stock of a picture (query parameters)
+    │   └── HistoryInputError    sales history rows (pointers into the JSON or CSV upload)
     ├── StockProblemsError       closing stock that does not fit the network (also the
     │                            solver's InvalidStockError); `problems` by location
     ├── UnknownNetworkError      missing, archived or another tenant's network (LookupError)
     ├── UnknownNetworkChoice     the status page's ?network= names no network (LookupError)
+    ├── NetworkNameTakenError    another of the tenant's networks has the name
+    ├── NetworkArchivedError     a write to an archived network (the CLI's import)
+    ├── NothingToApplyError      calibration apply with no estimate, or none that changes
+    ├── ConcurrentUploadError    another upload stored the same days at the same moment
     ├── PolicyNotReadyError      no ready policy yet; `job_state` of the solve
     │   └── PolicyNotSolvedError no solve will produce it; `criteria` in use
     ├── CorruptPolicyError       a stored policy failed its checksum or decoding
@@ -28,9 +33,14 @@ from solver import InvalidStockError
 
 __all__ = [
     "AnalysisInputError",
+    "ConcurrentUploadError",
     "CorruptPolicyError",
     "DatabaseNotMigratedError",
+    "HistoryInputError",
     "InputError",
+    "NetworkArchivedError",
+    "NetworkNameTakenError",
+    "NothingToApplyError",
     "PlaneError",
     "PolicyNotReadyError",
     "PolicyNotSolvedError",
@@ -69,6 +79,26 @@ class PlaneError(InputError):
     each query parameter ("x", "y" or "at") with what is wrong with it."""
 
 
+class HistoryInputError(InputError):
+    """Sales history that cannot be stored; `errors` pairs a pointer into the upload (e.g.
+    "/rows/3/date", or "/line/7/units_sold" in a CSV) with what is wrong there. The message
+    names the first 20 and says that nothing of the upload was stored."""
+
+    SHOWN = 20
+
+    def __init__(self, errors: Sequence[tuple[str, str]]) -> None:
+        shown = list(errors)[: self.SHOWN]
+        super().__init__(shown)
+        more = f" (and {len(errors) - self.SHOWN} more)" if len(errors) > self.SHOWN else ""
+        # Nothing of a refused upload is stored: the client still holds every row, and sends
+        # the whole upload again once the rows named are fixed.
+        self.args = (
+            "; ".join(f"{pointer}: {text}" for pointer, text in shown)
+            + more
+            + "; nothing of this upload was stored",
+        )
+
+
 class StockProblemsError(ServiceError, InvalidStockError):
     """Closing stock that does not fit the network; `problems` pairs each offending location
     with what is wrong there."""
@@ -84,6 +114,23 @@ class UnknownNetworkError(ServiceError, LookupError):
 
 class UnknownNetworkChoice(ServiceError, LookupError):
     """The status page's `?network=` names no network of the tenant (or an archived one)."""
+
+
+class NetworkNameTakenError(ServiceError):
+    """Another network of the tenant has the name asked for."""
+
+
+class NetworkArchivedError(ServiceError):
+    """The network is archived: it is kept, but accepts nothing more."""
+
+
+class NothingToApplyError(ServiceError):
+    """Calibration apply finds no location to estimate, or estimates equal to the current
+    version's parameters."""
+
+
+class ConcurrentUploadError(ServiceError):
+    """Another upload stored some of the same days at the same moment; send this one again."""
 
 
 class PolicyNotReadyError(ServiceError):

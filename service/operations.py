@@ -16,7 +16,7 @@ from sqlalchemy.engine import make_url
 from sqlalchemy.exc import OperationalError
 from sqlalchemy.orm import Session, sessionmaker
 
-from service import auth
+from service import auth, networks
 from service.db import jobs as db_jobs
 from service.db import networks as db_networks
 from service.db.jobs import get_job
@@ -24,18 +24,13 @@ from service.db.keys import get_or_create_tenant
 from service.db.migrate import current_revision, require_migrated
 from service.db.migrate import upgrade as upgrade_schema
 from service.db.networks import (
-    add_version,
-    canonical_spec,
-    create_network,
     latest_version,
-    network_by_name,
     versions_newest_first,
 )
 from service.db.session import make_engine, make_session_factory
-from service.db.tables import Network, SolveMode
-from service.errors import DatabaseNotMigratedError, UsageError
+from service.db.tables import Network
+from service.errors import DatabaseNotMigratedError, NetworkArchivedError, UsageError
 from service.files import load_network, write_json_atomically
-from service.modes import resolve_method
 from service.settings import Settings
 from service.vocabulary import JobKind
 from service.worker import Worker
@@ -216,32 +211,22 @@ def import_network(args: argparse.Namespace) -> int:
     settings = load_settings()
 
     def work(session: Session) -> str:
-        tenant = get_or_create_tenant(session, args.tenant)
-        network = network_by_name(session, tenant.id, spec.name)
-        # An absent --mode keeps an existing network's mode; a new network defaults to auto.
-        mode = args.mode or (network.mode if network is not None else SolveMode.AUTO.value)
         try:
-            method = resolve_method(spec, mode, settings.size_limits)
-        except ModelTooLargeError as exc:
-            raise UsageError(str(exc)) from exc
-        if network is None:
-            network, version, jobs = create_network(
-                session, tenant, spec, args.criteria, mode=mode, method=method
+            written = networks.import_network(
+                session,
+                args.tenant,
+                spec,
+                args.criteria,
+                mode=args.mode,
+                limits=settings.size_limits,
+                skip_unchanged=args.skip_unchanged,
             )
-        else:
-            if network.archived:
-                raise UsageError(f"network {network.id} ({spec.name!r}) is archived")
-            current = latest_version(session, network.id)
-            if (
-                args.skip_unchanged
-                and current is not None
-                and current.spec_hash == canonical_spec(spec)[1]
-                and current.method == method
-            ):
-                return f"network {network.id} version {current.number} unchanged\n"
-            network.mode = mode
-            version, jobs = add_version(session, network, spec, args.criteria, method=method)
-        queued = ", ".join(f"{job.id} ({job.criterion})" for job in jobs) or "none needed"
+        except (ModelTooLargeError, NetworkArchivedError) as exc:
+            raise UsageError(str(exc)) from exc
+        network, version = written.network, written.version
+        if written.unchanged:
+            return f"network {network.id} version {version.number} unchanged\n"
+        queued = ", ".join(f"{job.id} ({job.criterion})" for job in written.jobs) or "none needed"
         return (
             f"network {network.id} version {version.number} "
             f"(sha256 {version.spec_hash[:12]}); jobs queued: {queued}\n"

@@ -25,7 +25,11 @@ from starlette.exceptions import HTTPException as StarletteHTTPException
 
 from service.errors import (
     AnalysisInputError,
+    ConcurrentUploadError,
+    HistoryInputError,
     InputError,
+    NetworkNameTakenError,
+    NothingToApplyError,
     PlaneError,
     PolicyNotReadyError,
     PolicyNotSolvedError,
@@ -319,6 +323,10 @@ PROBLEM_OF: dict[type[Exception], tuple[int, str, Callable[[Exception], dict[str
     AnalysisInputError: (422, "invalid-input", _input_errors),
     PlaneError: (422, "invalid-input", _query_errors),
     UnknownNetworkError: (404, "not-found", _nothing),
+    NetworkNameTakenError: (409, "conflict", _nothing),
+    NothingToApplyError: (409, "conflict", _nothing),
+    ConcurrentUploadError: (409, "conflict", _nothing),
+    HistoryInputError: (422, "invalid-input", _input_errors),
     # 409, never 503 + Retry-After: no job will produce this policy by waiting.
     PolicyNotSolvedError: (409, "policy-not-solved", _not_solved),
     PolicyNotReadyError: (503, "policy-not-ready", _not_ready),

@@ -1,5 +1,6 @@
-"""Sales history: daily rows per location, stored (replacing a day reported again), read back as
-arrays per location, and summarised.
+"""Sales history and calibration settings: daily rows per location, stored (replacing a day
+reported again), read back as arrays per location, and summarised; how a network's estimates
+are made.
 
 Every function takes the caller's Session and leaves committing to it.
 """
@@ -8,7 +9,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass
-from datetime import date, timedelta
+from datetime import date, datetime, timedelta
 
 import numpy as np
 from numpy.typing import NDArray
@@ -24,14 +25,17 @@ from sqlalchemy.orm import Session
 
 from service.db.base import utcnow
 from service.db.tables import (
+    CalibrationSettings,
     SalesDay,
 )
 
 __all__ = [
     "LocationHistory",
     "SalesRow",
+    "calibration_settings",
     "sales_history",
     "sales_history_summary",
+    "save_calibration_settings",
     "store_sales_history",
 ]
 
@@ -176,3 +180,33 @@ def sales_history_summary(
         (location, int(days), int(out or 0), first, last)
         for location, days, out, first, last in rows
     ]
+
+
+def calibration_settings(session: Session, network_id: int) -> CalibrationSettings | None:
+    """The network's stored calibration settings; None when it has none (the defaults)."""
+    return session.get(CalibrationSettings, network_id)
+
+
+def save_calibration_settings(
+    session: Session,
+    network_id: int,
+    *,
+    window_days: int | None,
+    half_life_days: float | None,
+    confidence: float,
+    auto_apply_threshold: float | None,
+    receipts_sell_same_day: bool,
+    updated_at: datetime,
+) -> CalibrationSettings:
+    """Store (or replace) the network's calibration settings."""
+    row = session.get(CalibrationSettings, network_id)
+    if row is None:
+        row = CalibrationSettings(network_id=network_id)
+        session.add(row)
+    row.window_days = window_days
+    row.half_life_days = half_life_days
+    row.confidence = confidence
+    row.auto_apply_threshold = auto_apply_threshold
+    row.receipts_sell_same_day = receipts_sell_same_day
+    row.updated_at = updated_at
+    return row

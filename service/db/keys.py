@@ -12,7 +12,14 @@ from sqlalchemy.orm import Session
 
 from service.db.tables import ApiKey, Tenant
 
-__all__ = ["add_key", "get_or_create_tenant", "key_by_prefix", "keys_with_tenants", "tenant_name"]
+__all__ = [
+    "add_key",
+    "get_or_create_tenant",
+    "get_tenant",
+    "key_by_prefix",
+    "keys_with_tenants",
+    "tenant_name",
+]
 
 
 def get_or_create_tenant(session: Session, name: str) -> Tenant:
@@ -22,6 +29,10 @@ def get_or_create_tenant(session: Session, name: str) -> Tenant:
         session.add(tenant)
         session.flush()
     return tenant
+
+
+def get_tenant(session: Session, tenant_id: int) -> Tenant:
+    return session.get_one(Tenant, tenant_id)
 
 
 def tenant_name(session: Session, tenant_id: int) -> str:

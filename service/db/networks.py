@@ -184,11 +184,14 @@ def add_version(
     criteria: Iterable[str],
     *,
     method: str = "exact",
+    previous: NetworkVersion | None = None,
 ) -> tuple[NetworkVersion, list[SolveJob]]:
     """The next version of `network`, solved by `method`, and a job per criterion that has
-    neither a policy nor a live job for the same specification and method in this tenant."""
+    neither a policy nor a live job for the same specification and method in this tenant.
+    `previous`: the current version when the caller has read it already."""
     text, digest = canonical_spec(spec)
-    previous = latest_version(session, network.id)
+    if previous is None:
+        previous = latest_version(session, network.id)
     version = NetworkVersion(
         network_id=network.id,
         number=1 if previous is None else previous.number + 1,
