@@ -52,8 +52,8 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
 from service.auth import create_key  # noqa: E402
+from service.db.keys import get_or_create_tenant  # noqa: E402
 from service.db.migrate import upgrade  # noqa: E402
-from service.db.repository import get_or_create_tenant  # noqa: E402
 from service.db.session import make_engine, make_session_factory  # noqa: E402
 
 ADMIN_URL = "postgresql+psycopg://postgres@127.0.0.1:5432/test"

@@ -41,8 +41,8 @@ import numpy as np
 from fastapi.testclient import TestClient
 
 from service.auth import create_key
+from service.db.keys import get_or_create_tenant
 from service.db.migrate import upgrade
-from service.db.repository import get_or_create_tenant
 from service.db.session import make_engine, make_session_factory
 from service.main import create_app
 from service.settings import Settings

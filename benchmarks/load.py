@@ -35,8 +35,8 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 import api
 
 from service.auth import create_key
+from service.db.keys import get_or_create_tenant
 from service.db.migrate import upgrade
-from service.db.repository import get_or_create_tenant
 from service.db.session import make_engine, make_session_factory
 from service.db.tables import SolveJob
 

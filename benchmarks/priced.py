@@ -58,8 +58,8 @@ from fastapi.testclient import TestClient
 from networks import large_network
 
 from service.auth import create_key
+from service.db.keys import get_or_create_tenant
 from service.db.migrate import upgrade
-from service.db.repository import get_or_create_tenant
 from service.db.session import make_engine, make_session_factory
 from service.main import create_app
 from service.settings import Settings

@@ -36,8 +36,9 @@ sys.path.insert(0, str(ROOT / "benchmarks"))
 
 import api  # noqa: E402  (scratch PostgreSQL databases, shared with benchmarks/api.py)
 
-from service.db import repository  # noqa: E402
+from service.db.keys import get_or_create_tenant  # noqa: E402
 from service.db.migrate import upgrade  # noqa: E402
+from service.db.networks import create_network  # noqa: E402
 from service.db.session import make_engine, make_session_factory  # noqa: E402
 from service.db.tables import Network, NetworkVersion, Policy, SolveJob  # noqa: E402
 from service.policies import PolicyCache, load_policy  # noqa: E402
@@ -93,9 +94,9 @@ def workers(url: str, count: int, logs: Path) -> Iterator[None]:
 
 def queue(sessions: sessionmaker[Session], capacity: int, count: int, offset: int) -> None:
     with sessions.begin() as session:
-        tenant = repository.get_or_create_tenant(session, "bench")
+        tenant = get_or_create_tenant(session, "bench")
         for variant in range(offset, offset + count):
-            repository.create_network(session, tenant, network(capacity, variant), ["discounted"])
+            create_network(session, tenant, network(capacity, variant), ["discounted"])
 
 
 def wait_done(sessions: sessionmaker[Session], deadline: float) -> None:

@@ -34,6 +34,7 @@ import numpy as np
 from numpy.typing import NDArray
 from pydantic import BaseModel, ValidationError
 
+from service.errors import AnalysisInputError
 from service.json_pointer import json_pointer
 from service.modes import resolve_method
 from service.priced import FULL_TABLE_MAX_STATES, plan_table
@@ -70,7 +71,6 @@ from solver.simulation import (
 )
 
 __all__ = [
-    "AnalysisInputError",
     "apply_overrides",
     "check_simulation",
     "new_seed",
@@ -87,15 +87,6 @@ _QUICK_CERTIFICATE = PricedOptions(replications=2)
 _LIFTABLE = frozenset({"max_units_out", "max_units_in"})
 # The optimal policy of the network with its floors and handling limits removed.
 WITHOUT_RULES = "optimal_without_rules"
-
-
-class AnalysisInputError(ValueError):
-    """A request that does not fit the network; `errors` pairs a JSON pointer into the request
-    body with what is wrong there."""
-
-    def __init__(self, errors: Sequence[tuple[str, str]]) -> None:
-        super().__init__("; ".join(f"{pointer}: {detail}" for pointer, detail in errors))
-        self.errors = list(errors)
 
 
 def _non_finite(document: Any, path: str = "") -> str | None:

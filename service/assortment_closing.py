@@ -30,19 +30,22 @@ from sqlalchemy.orm import Session
 
 from service.assortment_spec import Layout
 from service.assortments import criteria_of, layout_of
-from service.codec import CorruptPolicyError, decode_policy
+from service.codec import decode_policy
 from service.db import assortment_closing as store
 from service.db.assortments import CurrentItem, current_items, spec_texts
 from service.db.base import utcnow
 from service.db.tables import Assortment, PickList
+from service.errors import (
+    ClosingCountsError,
+    CorruptPolicyError,
+    PickListIssuedError,
+    PickListNotReadyError,
+)
 from service.policies import CachedPolicy, PolicyCache, business_date_now
 from solver.assortment import ItemPolicy, assortment_moves
 
 __all__ = [
-    "AlreadyIssuedError",
-    "ClosingCountsError",
     "NightPlan",
-    "PickListNotReadyError",
     "ReportStored",
     "business_date_of",
     "closing_state",
@@ -57,26 +60,6 @@ audit = logging.getLogger("stockrelay.audit")
 
 # Items named in a problem at most.
 _NAMED = 20
-
-
-class ClosingCountsError(ValueError):
-    """A report's counts are refused: `problems` lists (pointer, message)."""
-
-    def __init__(self, problems: list[tuple[str, str]]) -> None:
-        self.problems = problems
-        super().__init__(problems[0][1] if problems else "invalid counts")
-
-
-class AlreadyIssuedError(Exception):
-    """The night's pick lists are issued; only a correction changes a count now."""
-
-
-class PickListNotReadyError(Exception):
-    """Not every location has reported: `missing` names those that have not."""
-
-    def __init__(self, message: str, missing: list[str]) -> None:
-        super().__init__(message)
-        self.missing = missing
 
 
 def business_date_of(assortment: Assortment) -> date:
@@ -154,7 +137,7 @@ def report_counts(
 
     issued = store.latest_pick_list(session, assortment.id, business_date)
     if issued is not None and not correction:
-        raise AlreadyIssuedError(
+        raise PickListIssuedError(
             f"the pick lists of {business_date} are issued (revision {issued.revision}); send "
             "the report with correction=true to change counts, which issues the next revision"
         )

@@ -16,16 +16,16 @@ from sqlalchemy.orm import Session
 from service.assortment_spec import Layout
 from service.db import assortments as store
 from service.db import reporting
-from service.db.repository import canonical_spec
+from service.db.networks import canonical_spec
 from service.db.tables import Assortment
-from service.item_upload import ParsedItem, UploadProblems
+from service.errors import AssortmentExistsError, ItemUploadError
+from service.item_upload import ParsedItem
 from service.modes import resolve_method
 from service.vocabulary import SolveStatus
 from solver import ModelTooLargeError, SizeLimits
 
 __all__ = [
     "Assortment",
-    "AssortmentExistsError",
     "ItemSolve",
     "ItemsStored",
     "create_assortment",
@@ -36,10 +36,6 @@ __all__ = [
     "list_assortments",
     "store_items",
 ]
-
-
-class AssortmentExistsError(Exception):
-    """An assortment of that name exists already for the tenant."""
 
 
 def find_assortment(session: Session, tenant_id: int, assortment_id: int) -> Assortment | None:
@@ -149,7 +145,7 @@ def store_items(
     limits: SizeLimits,
 ) -> ItemsStored:
     """Store every item of a parsed upload, or none: an item too large for the assortment's
-    solving mode refuses the upload (UploadProblems, naming the item's line)."""
+    solving mode refuses the upload (ItemUploadError, naming the item's line)."""
     methods: dict[str, str] = {}
     rows: list[store.ItemRow] = []
     problems: list[tuple[str, str]] = []
@@ -176,7 +172,7 @@ def store_items(
             )
         )
     if problems:
-        raise UploadProblems(problems)
+        raise ItemUploadError(problems)
     stored = store.store_items(
         session,
         assortment.tenant_id,

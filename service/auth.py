@@ -15,10 +15,10 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Literal
 
-from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from service.db.base import utcnow
+from service.db.keys import add_key, key_by_prefix, keys_with_tenants, tenant_name
 from service.db.tables import ApiKey, Tenant
 
 __all__ = [
@@ -64,12 +64,7 @@ def create_key(
     """A new key for `tenant`; returns the row and the key itself (shown once, never stored)."""
     prefix = secrets.token_hex(5)
     key = f"{_PREFIX}{prefix}_{secrets.token_urlsafe(32)}"
-    row = ApiKey(
-        tenant_id=tenant.id, prefix=prefix, key_hash=_digest(key), scope=scope, label=label
-    )
-    session.add(row)
-    session.flush()
-    return row, key
+    return add_key(session, tenant.id, prefix, _digest(key), scope, label), key
 
 
 def authenticate(session: Session, key: str) -> Identity | None:
@@ -77,21 +72,18 @@ def authenticate(session: Session, key: str) -> Identity | None:
     if not key.startswith(_PREFIX) or key.count("_") < 2:
         return None
     prefix = key[len(_PREFIX) :].split("_", 1)[0]
-    row = session.scalars(select(ApiKey).where(ApiKey.prefix == prefix)).one_or_none()
+    row = key_by_prefix(session, prefix)
     if row is None or row.revoked_at is not None:
         return None
     if not hmac.compare_digest(row.key_hash, _digest(key)):
         return None
-    tenant = session.get_one(Tenant, row.tenant_id)
-    return Identity(row.id, row.tenant_id, tenant.name, row.prefix, row.scope)  # type: ignore[arg-type]
+    name = tenant_name(session, row.tenant_id)
+    return Identity(row.id, row.tenant_id, name, row.prefix, row.scope)  # type: ignore[arg-type]
 
 
 def list_keys(session: Session) -> Sequence[tuple[ApiKey, str]]:
     """Every key with its tenant's name, oldest first."""
-    rows = session.execute(
-        select(ApiKey, Tenant.name).join(Tenant, Tenant.id == ApiKey.tenant_id).order_by(ApiKey.id)
-    ).all()
-    return [(key, name) for key, name in rows]
+    return keys_with_tenants(session)
 
 
 def revoke_key(session: Session, prefix: str) -> bool:
@@ -99,7 +91,7 @@ def revoke_key(session: Session, prefix: str) -> bool:
     revoked already."""
     if prefix.startswith(_PREFIX):
         prefix = prefix[len(_PREFIX) :].split("_", 1)[0]
-    row = session.scalars(select(ApiKey).where(ApiKey.prefix == prefix)).one_or_none()
+    row = key_by_prefix(session, prefix)
     if row is None or row.revoked_at is not None:
         return False
     row.revoked_at = utcnow()

@@ -15,17 +15,21 @@ each law, so that a move from 0.0 to 0.01 units a day does not count as infinite
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Callable
 from dataclasses import dataclass
-from datetime import date, datetime
+from datetime import date
 
 import numpy as np
 from numpy.typing import NDArray
 from sqlalchemy.orm import Session
 
-from service.db import repository
-from service.db.tables import CalibrationSettings, Network, NetworkVersion, SolveJob
-from solver import NetworkSpec
+from service.db.base import utcnow
+from service.db.history import calibration_settings, sales_history, save_calibration_settings
+from service.db.networks import canonical_spec, latest_version
+from service.db.tables import Network, NetworkVersion
+from service.errors import NothingToApplyError
+from service.networks import Written, add_network_version
+from solver import ModelTooLargeError, NetworkSpec, SizeLimits
 from solver.calibration import (
     CalibrationError,
     CountEstimate,
@@ -47,13 +51,16 @@ from solver.spec import (
 __all__ = [
     "CHANGE_FLOOR",
     "DEFAULT_CONFIDENCE",
+    "AutoApplied",
     "CalibrationOptions",
     "LocationProposal",
     "Proposal",
-    "apply_proposal",
+    "apply_estimates",
+    "auto_apply",
     "law_moments",
     "options_for",
     "propose",
+    "save_options",
 ]
 
 CHANGE_FLOOR = 0.05
@@ -110,6 +117,11 @@ class Proposal:
     spec: NetworkSpec
 
     @property
+    def spec_hash(self) -> str:
+        """The SHA-256 of the proposed specification (the version it would make)."""
+        return canonical_spec(self.spec)[1]
+
+    @property
     def calibrated(self) -> tuple[LocationProposal, ...]:
         return tuple(p for p in self.locations if p.calibration is not None)
 
@@ -119,7 +131,8 @@ class Proposal:
 
 
 def options_for(session: Session, network_id: int) -> CalibrationOptions:
-    row = session.get(CalibrationSettings, network_id)
+    """The network's stored settings (the defaults when it has none)."""
+    row = calibration_settings(session, network_id)
     if row is None:
         return CalibrationOptions()
     return CalibrationOptions(
@@ -204,12 +217,19 @@ def _proposed_law(pooled: CountEstimate, weekly: WeekdayEffect | None) -> DailyL
     return WeeklyDistribution.model_validate({"weekly": days})
 
 
-def propose(session: Session, network: Network, options: CalibrationOptions) -> Proposal:
-    """Estimates for every location of the current version from the stored history."""
-    version = repository.latest_version(session, network.id)
+def propose(
+    session: Session,
+    network: Network,
+    options: CalibrationOptions,
+    version: NetworkVersion | None = None,
+) -> Proposal:
+    """Estimates for every location of the current version (`version`, when the caller has
+    read it already) from the stored history."""
+    if version is None:
+        version = latest_version(session, network.id)
     assert version is not None, "a network always has a version"
     spec = NetworkSpec.model_validate_json(version.spec_json)
-    history = repository.sales_history(session, network.id, window_days=options.window_days)
+    history = sales_history(session, network.id, window_days=options.window_days)
     document = spec.model_dump(mode="json", by_alias=True, exclude_defaults=True)
     proposals = []
     for index, location in enumerate(spec.locations):
@@ -279,17 +299,85 @@ def propose(session: Session, network: Network, options: CalibrationOptions) -> 
     )
 
 
-def apply_proposal(
+def save_options(session: Session, network: Network, options: CalibrationOptions) -> None:
+    """Keep `options` as the network's settings."""
+    save_calibration_settings(
+        session,
+        network.id,
+        window_days=options.window_days,
+        half_life_days=options.half_life_days,
+        confidence=options.confidence,
+        auto_apply_threshold=options.auto_apply_threshold,
+        receipts_sell_same_day=options.receipts_sell_same_day,
+        updated_at=utcnow(),
+    )
+
+
+def apply_estimates(
     session: Session,
     network: Network,
-    proposal: Proposal,
-    criteria: Sequence[str],
-    calibrated_at: datetime,
+    options: CalibrationOptions,
     *,
-    method: str,
-) -> tuple[NetworkVersion, list[SolveJob]]:
-    """The proposal as the network's next version, solved by `method` (the network's mode
-    resolved for it, service.modes), with its solves queued."""
-    version, jobs = repository.add_version(session, network, proposal.spec, criteria, method=method)
-    version.calibrated_at = calibrated_at
-    return version, jobs
+    limits: SizeLimits,
+    check_current: Callable[[NetworkVersion], None] | None = None,
+) -> Written:
+    """The estimates from the stored history as the network's next version, solved for the
+    criteria the current version is; `check_current` sees the current version first (e.g. an
+    If-Match check).
+
+    Raises NothingToApplyError when no location can be estimated or the estimates equal the
+    current parameters, ModelTooLargeError when the proposed version is beyond the limits of
+    the network's mode."""
+    current = latest_version(session, network.id)
+    assert current is not None, "a network always has a version"
+    if check_current is not None:
+        check_current(current)
+    proposal = propose(session, network, options, current)
+    if not proposal.calibrated:
+        reasons = "; ".join(f"{p.location}: {p.error}" for p in proposal.locations)
+        raise NothingToApplyError(
+            f"no location of network {network.id} can be estimated ({reasons})"
+        )
+    if proposal.spec_hash == current.spec_hash:
+        raise NothingToApplyError(
+            f"the estimates equal version {current.number}'s parameters already"
+        )
+    return add_network_version(
+        session, network, proposal.spec, limits=limits, current=current, calibrated_at=utcnow()
+    )
+
+
+@dataclass(frozen=True)
+class AutoApplied:
+    """What became of the automatic apply after an upload: `written` when a version was made,
+    else why not."""
+
+    reason: str
+    written: Written | None = None
+
+
+def auto_apply(
+    session: Session, network: Network, options: CalibrationOptions, *, limits: SizeLimits
+) -> AutoApplied | None:
+    """Make the estimates the next version when they move a parameter by more than the
+    network's threshold; None when the network has no threshold."""
+    threshold = options.auto_apply_threshold
+    if threshold is None:
+        return None
+    current = latest_version(session, network.id)
+    assert current is not None, "a network always has a version"
+    proposal = propose(session, network, options, current)
+    moved = proposal.largest_change
+    if not proposal.calibrated:
+        return AutoApplied("no location has history to estimate from")
+    if moved <= threshold:
+        return AutoApplied(f"largest change {moved:.1%} is within the threshold {threshold:.1%}")
+    try:
+        written = add_network_version(
+            session, network, proposal.spec, limits=limits, current=current, calibrated_at=utcnow()
+        )
+    except ModelTooLargeError as exc:
+        # The upload is kept; only the automatic version is not made (a weekly proposal has
+        # seven times the states of the network it comes from).
+        return AutoApplied(f"the proposed version is too large: {exc}")
+    return AutoApplied(f"largest change {moved:.1%} exceeds the threshold {threshold:.1%}", written)

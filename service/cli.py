@@ -17,8 +17,8 @@ import numpy as np
 from pydantic import ValidationError
 
 from service import operations, priced
-from service.analysis import AnalysisInputError, run_simulation
-from service.errors import UsageError
+from service.analysis import run_simulation
+from service.errors import AnalysisInputError, UsageError
 from service.files import load_network, write_json_atomically
 from service.logs import logging_from_environment
 from service.modes import resolve_method

@@ -30,11 +30,11 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
+from service.errors import CorruptPolicyError
 from solver import PolicyResult
 from solver.priced_result import PricedPolicy
 
 __all__ = [
-    "CorruptPolicyError",
     "EncodedPolicy",
     "StoredPolicy",
     "decode_policy",
@@ -54,10 +54,6 @@ _ARRAYS = (
     "floors",
 )
 _PER_STATE = ("action", "values", "post_move_values")
-
-
-class CorruptPolicyError(Exception):
-    """A stored policy failed its checksum or could not be decoded."""
 
 
 @dataclass(frozen=True)

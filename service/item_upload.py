@@ -26,6 +26,7 @@ from typing import Any
 from pydantic import ValidationError
 
 from service.assortment_spec import ItemSpec, Layout, compose_spec
+from service.errors import ItemUploadError
 from service.json_pointer import json_pointer
 from solver import NetworkSpec
 
@@ -34,7 +35,6 @@ __all__ = [
     "MAX_ITEMS",
     "MAX_PROBLEMS",
     "ParsedItem",
-    "UploadProblems",
     "parse_csv",
     "parse_json_document",
     "parse_json_lines",
@@ -76,16 +76,6 @@ class ParsedItem:
     network: NetworkSpec
 
 
-class UploadProblems(Exception):
-    """The upload is refused: `problems` lists (JSON pointer, message), in upload order."""
-
-    def __init__(self, problems: list[tuple[str, str]]) -> None:
-        self.problems = problems
-        shown = problems[0][1] if problems else "no items"
-        more = f" (and {len(problems) - 1} more problems)" if len(problems) > 1 else ""
-        super().__init__(f"{problems[0][0] if problems else ''}: {shown}{more}")
-
-
 @dataclass
 class _Collector:
     layout: Layout
@@ -96,7 +86,7 @@ class _Collector:
     def problem(self, where: str, message: str) -> None:
         self.problems.append((where, message))
         if len(self.problems) >= MAX_PROBLEMS:
-            raise UploadProblems([*self.problems, ("", f"stopped after {MAX_PROBLEMS} problems")])
+            raise ItemUploadError([*self.problems, ("", f"stopped after {MAX_PROBLEMS} problems")])
 
     def validation(self, where: str, exc: ValidationError) -> None:
         for error in exc.errors(include_url=False):
@@ -105,7 +95,7 @@ class _Collector:
 
     def add(self, where: str, document: Any) -> None:
         if len(self.items) >= MAX_ITEMS:
-            raise UploadProblems([(where, f"more than {MAX_ITEMS:,} items in one upload")])
+            raise ItemUploadError([(where, f"more than {MAX_ITEMS:,} items in one upload")])
         try:
             spec = ItemSpec.model_validate(document)
         except ValidationError as exc:
@@ -129,9 +119,9 @@ class _Collector:
 
     def result(self) -> list[ParsedItem]:
         if self.problems:
-            raise UploadProblems(self.problems)
+            raise ItemUploadError(self.problems)
         if not self.items:
-            raise UploadProblems([("", "the upload holds no items")])
+            raise ItemUploadError([("", "the upload holds no items")])
         return self.items
 
 
@@ -144,11 +134,11 @@ def parse_json_document(raw: bytes, layout: Layout) -> list[ParsedItem]:
     try:
         document = json.loads(raw)
     except (UnicodeDecodeError, json.JSONDecodeError) as exc:
-        raise UploadProblems([("", f"the body is not JSON: {exc}")]) from exc
+        raise ItemUploadError([("", f"the body is not JSON: {exc}")]) from exc
     if not isinstance(document, dict) or not isinstance(document.get("items"), list):
-        raise UploadProblems([("", 'expected {"items": [...]}')])
+        raise ItemUploadError([("", 'expected {"items": [...]}')])
     if set(document) != {"items"}:
-        raise UploadProblems([("", 'expected {"items": [...]} and nothing else')])
+        raise ItemUploadError([("", 'expected {"items": [...]} and nothing else')])
     collector = _Collector(layout)
     for k, item in enumerate(document["items"]):
         collector.add(f"/items/{k}", item)
@@ -217,7 +207,7 @@ def parse_csv(lines: Iterable[str], layout: Layout) -> list[ParsedItem]:
     try:
         _, header = next(records)
     except StopIteration:
-        raise UploadProblems([("/line/1", "the CSV is empty")]) from None
+        raise ItemUploadError([("/line/1", "the CSV is empty")]) from None
     header = [name.strip().lstrip("\ufeff") for name in header]
     missing = [name for name in _REQUIRED if name not in header]
     unknown = [name for name in header if name not in CSV_COLUMNS]
@@ -226,7 +216,7 @@ def parse_csv(lines: Iterable[str], layout: Layout) -> list[ParsedItem]:
         problems = [("/line/1", f"missing column {name!r}") for name in missing]
         problems += [("/line/1", f"unknown column {name!r}") for name in unknown]
         problems += [("/line/1", f"column {name!r} given twice") for name in doubled]
-        raise UploadProblems(problems)
+        raise ItemUploadError(problems)
     items: dict[str, _CsvItem] = {}
     for number, record in records:
         if not any(value.strip() for value in record):
@@ -317,7 +307,7 @@ def _add_csv_item(
 ) -> None:
     """Validate one item assembled from CSV rows; problems point at the row and column."""
     sub = _Collector(collector.layout, seen=collector.seen)
-    with contextlib.suppress(UploadProblems):
+    with contextlib.suppress(ItemUploadError):
         sub.add(f"/line/{first}", document)
     for where, message in sub.problems:
         collector.problem(_csv_pointer(where, first, lines_of), message)

@@ -73,13 +73,17 @@ from prometheus_client.core import (
 )
 from prometheus_client.multiprocess import MultiProcessCollector
 from prometheus_client.registry import Collector
-from sqlalchemy import and_, case, func, select
 from sqlalchemy.exc import SQLAlchemyError
 from sqlalchemy.orm import Session, sessionmaker
 
 from service.db import reporting
 from service.db.base import utcnow
-from service.db.tables import NetworkVersion, SolveJob
+from service.db.monitoring import (
+    first_spec_of_hashes,
+    jobs_by_kind_and_state,
+    running_progress,
+    solve_seconds_buckets,
+)
 from service.policies import PolicyCache
 from service.vocabulary import JobKind, JobState, SolveStatus
 
@@ -176,16 +180,7 @@ class _SizeClasses:
             missing = sorted(wanted - self._known.keys())
         for start in range(0, len(missing), 500):
             chunk = missing[start : start + 500]
-            first = (
-                select(func.min(NetworkVersion.id))
-                .where(NetworkVersion.spec_hash.in_(chunk))
-                .group_by(NetworkVersion.spec_hash)
-            )
-            rows = session.execute(
-                select(NetworkVersion.spec_hash, NetworkVersion.spec_json).where(
-                    NetworkVersion.id.in_(first)
-                )
-            ).all()
+            rows = first_spec_of_hashes(session, chunk)
             learnt = {spec_hash: _size_class_of(spec_hash, text) for spec_hash, text in rows}
             with self._lock:
                 self._known.update(learnt)
@@ -250,21 +245,11 @@ class DatabaseCollector(Collector):
 
     @staticmethod
     def _jobs(session: Session) -> list[Metric]:
-        rows = session.execute(
-            select(
-                SolveJob.kind,
-                SolveJob.state,
-                func.count(),
-                func.min(SolveJob.created_at),
-                func.coalesce(
-                    func.sum(case((SolveJob.attempts > 1, SolveJob.attempts - 1), else_=0)), 0
-                ),
-            ).group_by(SolveJob.kind, SolveJob.state)
-        ).all()
-        count = {(kind, state): int(n) for kind, state, n, _, _ in rows}
+        rows = jobs_by_kind_and_state(session)
+        count = {(kind, state): n for kind, state, n, _, _ in rows}
         retried: dict[str, int] = {}
         for kind, _, _, _, extra in rows:
-            retried[kind] = retried.get(kind, 0) + int(extra)
+            retried[kind] = retried.get(kind, 0) + extra
         queued_since = [
             first for _, state, _, first, _ in rows if state == JobState.QUEUED and first
         ]
@@ -305,36 +290,16 @@ class DatabaseCollector(Collector):
 
     @staticmethod
     def _solve_seconds(session: Session) -> HistogramMetricFamily:
-        done = and_(
-            SolveJob.kind == JobKind.SOLVE.value,
-            SolveJob.state == JobState.DONE.value,
-            SolveJob.solve_seconds.is_not(None),
-        )
         # One row per specification and criterion (the size class is a property of the
         # specification), with the cumulative bucket counts computed by the database.
-        rows = session.execute(
-            select(
-                SolveJob.spec_hash,
-                SolveJob.criterion,
-                func.count(),
-                func.sum(SolveJob.solve_seconds),
-                *(
-                    func.sum(case((SolveJob.solve_seconds <= bound, 1), else_=0))
-                    for bound in SOLVE_BUCKETS
-                ),
-            )
-            .where(done)
-            .group_by(SolveJob.spec_hash, SolveJob.criterion)
-        ).all()
+        rows = solve_seconds_buckets(session, SOLVE_BUCKETS)
         sizes = _SIZES.of(session, (row[0] for row in rows))
         histograms: dict[tuple[str, str], _Histogram] = {}
-        for spec_hash, criterion, n, total, *buckets in rows:
+        for spec_hash, criterion, n, total, buckets in rows:
             size = sizes.get(spec_hash)
             if size is None:  # a job without a stored version: cannot happen (foreign key)
                 continue
-            histograms.setdefault((size, criterion), _Histogram()).add(
-                int(n), float(total or 0.0), [int(b) for b in buckets]
-            )
+            histograms.setdefault((size, criterion), _Histogram()).add(n, total, buckets)
         family = HistogramMetricFamily(
             "stockrelay_solve_seconds",
             "Solve time of done jobs (seconds), by network size in stock states "
@@ -368,16 +333,7 @@ class DatabaseCollector(Collector):
 
     @staticmethod
     def _priced_progress(session: Session) -> list[GaugeMetricFamily]:
-        rows = session.execute(
-            select(SolveJob.id, NetworkVersion.network_id, SolveJob.criterion, SolveJob.progress)
-            .join(NetworkVersion, NetworkVersion.id == SolveJob.version_id)
-            .where(
-                SolveJob.kind == JobKind.SOLVE.value,
-                SolveJob.state == JobState.RUNNING.value,
-                SolveJob.progress.is_not(None),
-            )
-            .order_by(SolveJob.id)
-        ).all()
+        rows = running_progress(session)
         labels = ["job_id", "network_id", "criterion", "stage"]
         what = "of each running priced solve, by job (one series per running job)"
         iteration = GaugeMetricFamily(

@@ -25,13 +25,13 @@ from collections.abc import Awaitable, Callable, MutableMapping
 from datetime import timedelta
 from typing import Any
 
-from sqlalchemy import delete, select
-from sqlalchemy.exc import IntegrityError, SQLAlchemyError
+from sqlalchemy.exc import SQLAlchemyError
 from sqlalchemy.orm import Session, sessionmaker
 from starlette.concurrency import run_in_threadpool
 
 from service import auth
 from service.db.base import utcnow
+from service.db.idempotency import claim_record, settle_record
 from service.db.tables import IdempotencyRecord
 from service.problems import PROBLEM_JSON, problem_body
 
@@ -275,37 +275,18 @@ class Idempotency:
         self, key_id: int, key: str, method: str, path: str, digest: str, request_id: str
     ) -> int | IdempotencyRecord:
         """The id of a fresh claim, or the record that holds the key already."""
-        now = utcnow()
         with self.sessions().begin() as session:
-            session.execute(delete(IdempotencyRecord).where(IdempotencyRecord.expires_at < now))
-            record = IdempotencyRecord(
-                api_key_id=key_id,
-                request_id=request_id[:100],
+            return claim_record(
+                session,
+                key_id=key_id,
                 key=key,
                 method=method,
                 path=path,
                 body_hash=digest,
-                status=0,
-                headers="[]",
-                body=b"",
-                created_at=now,
-                expires_at=now + self.ttl,
+                request_id=request_id,
+                now=utcnow(),
+                ttl=self.ttl,
             )
-            try:
-                with session.begin_nested():
-                    session.add(record)
-                return record.id
-            except IntegrityError:
-                existing = session.scalars(
-                    select(IdempotencyRecord).where(
-                        IdempotencyRecord.api_key_id == key_id,
-                        IdempotencyRecord.key == key,
-                        IdempotencyRecord.method == method,
-                        IdempotencyRecord.path == path,
-                    )
-                ).one()
-                session.expunge(existing)
-                return existing
 
     async def _answer_repeat(
         self, scope: Scope, send: Send, record: IdempotencyRecord, digest: str
@@ -341,19 +322,20 @@ class Idempotency:
     def _settle(
         self, record_id: int, status: int, headers: list[tuple[bytes, bytes]], body: bytes
     ) -> None:
+        kept = json.dumps(
+            [
+                [k.decode("latin-1"), v.decode("latin-1")]
+                for k, v in headers
+                if k.lower() != b"x-request-id"
+            ]
+        )
         with self.sessions().begin() as session:
-            record = session.get(IdempotencyRecord, record_id)
-            if record is None:
-                return
-            if status in _NOT_KEPT or status >= 500:
-                session.delete(record)  # the route did not run, or may answer otherwise now
-                return
-            record.status = status
-            record.headers = json.dumps(
-                [
-                    [k.decode("latin-1"), v.decode("latin-1")]
-                    for k, v in headers
-                    if k.lower() != b"x-request-id"
-                ]
+            # Not kept: the route did not run, or may answer otherwise now.
+            settle_record(
+                session,
+                record_id,
+                keep=not (status in _NOT_KEPT or status >= 500),
+                status=status,
+                headers=kept,
+                body=body,
             )
-            record.body = body

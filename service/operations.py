@@ -16,15 +16,21 @@ from sqlalchemy.engine import make_url
 from sqlalchemy.exc import OperationalError
 from sqlalchemy.orm import Session, sessionmaker
 
-from service import auth
-from service.db import repository
-from service.db.migrate import DatabaseNotMigratedError, current_revision, require_migrated
+from service import auth, networks
+from service.db import jobs as db_jobs
+from service.db import networks as db_networks
+from service.db.jobs import get_job
+from service.db.keys import get_or_create_tenant
+from service.db.migrate import current_revision, require_migrated
 from service.db.migrate import upgrade as upgrade_schema
+from service.db.networks import (
+    latest_version,
+    versions_newest_first,
+)
 from service.db.session import make_engine, make_session_factory
-from service.db.tables import Network, SolveMode
-from service.errors import UsageError
+from service.db.tables import Network
+from service.errors import DatabaseNotMigratedError, NetworkArchivedError, UsageError
 from service.files import load_network, write_json_atomically
-from service.modes import resolve_method
 from service.settings import Settings
 from service.vocabulary import JobKind
 from service.worker import Worker
@@ -154,7 +160,7 @@ def run(args: argparse.Namespace) -> int:
         for key, _tenant in auth.list_keys(session):
             if key.label == DEMO_KEY_LABEL and key.revoked_at is None:
                 auth.revoke_key(session, key.prefix)
-        tenant = repository.get_or_create_tenant(session, DEFAULT_TENANT)
+        tenant = get_or_create_tenant(session, DEFAULT_TENANT)
         row, secret = auth.create_key(session, tenant, "write", DEMO_KEY_LABEL)
         return row.prefix, secret
 
@@ -205,34 +211,22 @@ def import_network(args: argparse.Namespace) -> int:
     settings = load_settings()
 
     def work(session: Session) -> str:
-        tenant = repository.get_or_create_tenant(session, args.tenant)
-        network = repository.network_by_name(session, tenant.id, spec.name)
-        # An absent --mode keeps an existing network's mode; a new network defaults to auto.
-        mode = args.mode or (network.mode if network is not None else SolveMode.AUTO.value)
         try:
-            method = resolve_method(spec, mode, settings.size_limits)
-        except ModelTooLargeError as exc:
+            written = networks.import_network(
+                session,
+                args.tenant,
+                spec,
+                args.criteria,
+                mode=args.mode,
+                limits=settings.size_limits,
+                skip_unchanged=args.skip_unchanged,
+            )
+        except (ModelTooLargeError, NetworkArchivedError) as exc:
             raise UsageError(str(exc)) from exc
-        if network is None:
-            network, version, jobs = repository.create_network(
-                session, tenant, spec, args.criteria, mode=mode, method=method
-            )
-        else:
-            if network.archived:
-                raise UsageError(f"network {network.id} ({spec.name!r}) is archived")
-            current = repository.latest_version(session, network.id)
-            if (
-                args.skip_unchanged
-                and current is not None
-                and current.spec_hash == repository.canonical_spec(spec)[1]
-                and current.method == method
-            ):
-                return f"network {network.id} version {current.number} unchanged\n"
-            network.mode = mode
-            version, jobs = repository.add_version(
-                session, network, spec, args.criteria, method=method
-            )
-        queued = ", ".join(f"{job.id} ({job.criterion})" for job in jobs) or "none needed"
+        network, version = written.network, written.version
+        if written.unchanged:
+            return f"network {network.id} version {version.number} unchanged\n"
+        queued = ", ".join(f"{job.id} ({job.criterion})" for job in written.jobs) or "none needed"
         return (
             f"network {network.id} version {version.number} "
             f"(sha256 {version.spec_hash[:12]}); jobs queued: {queued}\n"
@@ -248,7 +242,7 @@ def export_network(args: argparse.Namespace) -> int:
         network = session.get(Network, args.id)
         if network is None:
             raise UsageError(f"no network {args.id}")
-        versions = repository.versions_newest_first(session, network.id)
+        versions = versions_newest_first(session, network.id)
         chosen = [v for v in versions if args.version in (None, v.number)]
         if not chosen:
             raise UsageError(f"network {args.id} has no version {args.version}")
@@ -266,8 +260,8 @@ def export_network(args: argparse.Namespace) -> int:
 def list_networks(_args: argparse.Namespace) -> int:
     def work(session: Session) -> list[str]:
         lines = []
-        for network in repository.list_networks(session):
-            latest = repository.latest_version(session, network.id)
+        for network in db_networks.list_networks(session):
+            latest = latest_version(session, network.id)
             lines.append(
                 f"{network.id:>5}  {network.name}  version {latest.number if latest else '-'}"
                 + ("  (archived)" if network.archived else "")
@@ -289,7 +283,7 @@ def list_jobs(args: argparse.Namespace) -> int:
             f"attempts {job.attempts}"
             + (f"  {job.solve_seconds:.3f} s" if job.solve_seconds is not None else "")
             + (f"  error: {job.error}" if job.error else "")
-            for job in repository.list_jobs(session, args.state, args.limit, kind=kind)
+            for job in db_jobs.list_jobs(session, args.state, args.limit, kind=kind)
         ]
 
     with _database() as (_settings, engine):
@@ -299,7 +293,7 @@ def list_jobs(args: argparse.Namespace) -> int:
 
 def create_key(args: argparse.Namespace) -> int:
     def work(session: Session) -> tuple[str, str]:
-        tenant = repository.get_or_create_tenant(session, args.tenant)
+        tenant = get_or_create_tenant(session, args.tenant)
         row, key = auth.create_key(session, tenant, args.scope, args.label)
         return row.prefix, key
 
@@ -340,9 +334,9 @@ def revoke_key(args: argparse.Namespace) -> int:
 
 def retry_job(args: argparse.Namespace) -> int:
     def work(session: Session) -> None:
-        if repository.get_job(session, args.id) is None:
+        if get_job(session, args.id) is None:
             raise UsageError(f"no job {args.id}")
-        if repository.retry_job(session, args.id) is None:
+        if db_jobs.retry_job(session, args.id) is None:
             raise UsageError(
                 f"job {args.id} is not a failed job, or another solve of it is already queued"
             )

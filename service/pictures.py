@@ -44,6 +44,7 @@ from matplotlib.image import AxesImage
 from matplotlib.ticker import MaxNLocator, MultipleLocator, ScalarFormatter
 from numpy.typing import NDArray
 
+from service.errors import PlaneError
 from solver import PolicyResult
 from solver.priced_result import PricedPolicy
 
@@ -51,7 +52,6 @@ __all__ = [
     "ANNOTATE_MAX_CELLS",
     "ImageFormat",
     "Plane",
-    "PlaneError",
     "caption",
     "choose_plane",
     "net_inflow_grid",
@@ -90,15 +90,6 @@ _MINUS = "\N{MINUS SIGN}"
 _Cell = TypeVar("_Cell", bound=np.generic)
 
 _FIXED_ITEM = re.compile(r"^([A-Za-z0-9][A-Za-z0-9._-]*):(-?[0-9]{1,9})$")
-
-
-class PlaneError(ValueError):
-    """Axis or fixed-stock choices that do not fit the network; `problems` pairs each query
-    parameter ("x", "y" or "at") with what is wrong with it."""
-
-    def __init__(self, problems: list[tuple[str, str]]) -> None:
-        super().__init__("; ".join(f"{parameter}: {what}" for parameter, what in problems))
-        self.problems = problems
 
 
 @dataclass(frozen=True)

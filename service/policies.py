@@ -19,14 +19,25 @@ from datetime import UTC, date, datetime, time, timedelta
 from typing import Protocol
 from zoneinfo import ZoneInfo
 
-from sqlalchemy import select
 from sqlalchemy.orm import Session
 
-from service.codec import CorruptPolicyError, StoredPolicy, decode_policy
-from service.db import repository
-from service.db.repository import VersionHead
+from service.codec import StoredPolicy, decode_policy
+from service.db.jobs import LIVE_STATES, criteria_requested, enqueue_solves, jobs_for
+from service.db.networks import (
+    VersionHead,
+    current_spec_json_and_cutoff,
+    live_versions_newest_first,
+)
+from service.db.policies import delete_policy, policy_for
 from service.db.tables import Network, NetworkVersion
-from solver import CRITERIA, InvalidStockError, Recommendation
+from service.errors import (
+    CorruptPolicyError,
+    PolicyNotReadyError,
+    PolicyNotSolvedError,
+    StockProblemsError,
+    UnknownNetworkError,
+)
+from solver import CRITERIA, Recommendation
 from solver.spec import DEFAULT_TIMEZONE
 
 __all__ = [
@@ -34,11 +45,7 @@ __all__ = [
     "NetworkKey",
     "NetworkRef",
     "PolicyCache",
-    "PolicyNotReadyError",
-    "PolicyNotSolvedError",
     "ServedPolicy",
-    "StockProblemsError",
-    "UnknownNetworkError",
     "business_date_now",
     "business_date_of",
     "load_policy",
@@ -49,29 +56,6 @@ __all__ = [
 ]
 
 log = logging.getLogger(__name__)
-
-
-class UnknownNetworkError(LookupError):
-    """The network is missing, archived, or another tenant's (which looks exactly the same)."""
-
-
-class PolicyNotReadyError(Exception):
-    """No version of the network has a ready policy for the criterion yet."""
-
-    def __init__(self, message: str, *, job_state: str | None) -> None:
-        super().__init__(message)
-        self.job_state = job_state
-
-
-class PolicyNotSolvedError(PolicyNotReadyError):
-    """No job will produce the asked policy: the current version is not solved for the
-    criterion (not requested, or its solve failed). `criteria` are those it is solved or being
-    solved for. (A kind of PolicyNotReadyError, so that whoever only skips unready policies
-    skips these too.)"""
-
-    def __init__(self, message: str, *, criteria: list[str], job_state: str | None) -> None:
-        super().__init__(message, job_state=job_state)
-        self.criteria = criteria
 
 
 @dataclass(frozen=True)
@@ -156,7 +140,7 @@ def load_policy(
     when nothing is being solved. UnknownNetworkError when the network is missing, another
     tenant's or archived; PolicyNotReadyError while the current version's solve is under way
     and no older version has a policy; PolicyNotSolvedError when no job will produce it."""
-    versions = repository.live_versions_newest_first(session, network.tenant_id, network.id)
+    versions = live_versions_newest_first(session, network.tenant_id, network.id)
     if not versions:
         raise UnknownNetworkError(_unknown(session, network))
     newest = versions[0]
@@ -198,7 +182,7 @@ def _default_criterion(
     # The common case costs nothing: the current version's first criterion is cached.
     if (newest.id, CRITERIA[0]) in cache:
         return CRITERIA[0]
-    requested = repository.criteria_requested(session, network.tenant_id, newest.spec_hash)
+    requested = criteria_requested(session, network.tenant_id, newest.spec_hash)
     for criterion in CRITERIA:
         if criterion in requested:
             return criterion
@@ -210,12 +194,10 @@ def _check_being_solved(
 ) -> None:
     """PolicyNotSolvedError unless the current version's solve for `criterion` is queued or
     running (its policy is not stored yet)."""
-    jobs = repository.jobs_for(
-        session, network.tenant_id, newest.spec_hash, criterion, newest.method
-    )
-    if jobs and jobs[0].state in repository.LIVE_STATES:
+    jobs = jobs_for(session, network.tenant_id, newest.spec_hash, criterion, newest.method)
+    if jobs and jobs[0].state in LIVE_STATES:
         return
-    requested = repository.criteria_requested(session, network.tenant_id, newest.spec_hash)
+    requested = criteria_requested(session, network.tenant_id, newest.spec_hash)
     solved_for: list[str] = [c for c in CRITERIA if c in requested and c != criterion]
     others = (
         f"it is solved (or being solved) for {', '.join(solved_for)}; ask for that criterion"
@@ -242,9 +224,7 @@ def _check_being_solved(
 def _load(
     session: Session, network: NetworkKey, version: VersionHead, criterion: str
 ) -> _Entry | None:
-    row = repository.policy_for(
-        session, network.tenant_id, version.spec_hash, criterion, version.method
-    )
+    row = policy_for(session, network.tenant_id, version.spec_hash, criterion, version.method)
     if row is None:
         return None
     try:
@@ -254,8 +234,8 @@ def _load(
         # Repair in a transaction of its own, so that it is kept whatever becomes of the
         # caller's (which usually ends in a rollback: this request cannot be served from it).
         with Session(session.get_bind()) as repair, repair.begin():
-            repository.delete_policy(repair, row.id)
-            repository.enqueue_solves(
+            delete_policy(repair, row.id)
+            enqueue_solves(
                 repair, network.tenant_id, repair.get_one(NetworkVersion, version.id), [criterion]
             )
         session.expire_all()
@@ -268,23 +248,12 @@ def _not_ready(
 ) -> PolicyNotReadyError:
     """The current version's solve is live (checked by _check_being_solved) and no version has
     a policy yet: worth waiting for."""
-    job = repository.jobs_for(
-        session, network.tenant_id, version.spec_hash, criterion, version.method
-    )[0]
+    job = jobs_for(session, network.tenant_id, version.spec_hash, criterion, version.method)[0]
     return PolicyNotReadyError(
         f"the {criterion} policy of version {version.number} of network {network.id} is not "
         f"ready (job {job.id} {job.state})",
         job_state=job.state,
     )
-
-
-class StockProblemsError(InvalidStockError):
-    """Closing stock that does not fit the network; `problems` pairs each offending location
-    with what is wrong there."""
-
-    def __init__(self, problems: list[tuple[str, str]]) -> None:
-        super().__init__("; ".join(f"{location}: {what}" for location, what in problems))
-        self.problems = problems
 
 
 def stock_vector(result: StoredPolicy, stock: Mapping[str, int]) -> list[int]:
@@ -355,12 +324,6 @@ def business_date_of(session: Session, network_id: int) -> date:
 
 
 def _clock_of(session: Session, network_id: int) -> tuple[str, time | None]:
-    row = session.execute(
-        select(NetworkVersion.spec_json, Network.closing_cutoff)
-        .join(Network, Network.id == NetworkVersion.network_id)
-        .where(NetworkVersion.network_id == network_id)
-        .order_by(NetworkVersion.number.desc())
-        .limit(1)
-    ).one()
-    zone: str = json.loads(row[0]).get("timezone", DEFAULT_TIMEZONE)
-    return zone, row[1]
+    spec_json, cutoff = current_spec_json_and_cutoff(session, network_id)
+    zone: str = json.loads(spec_json).get("timezone", DEFAULT_TIMEZONE)
+    return zone, cutoff

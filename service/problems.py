@@ -13,7 +13,7 @@ from __future__ import annotations
 
 import logging
 import uuid
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from typing import Any
 
 from fastapi import FastAPI, Request
@@ -23,15 +23,26 @@ from fastapi.responses import JSONResponse
 from sqlalchemy.exc import OperationalError
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
-from service.analysis import AnalysisInputError
-from service.json_pointer import json_pointer
-from service.logs import REQUEST_ID
-from service.policies import (
+from service.errors import (
+    AnalysisInputError,
+    AssortmentExistsError,
+    ClosingCountsError,
+    ConcurrentUploadError,
+    HistoryInputError,
+    InputError,
+    ItemUploadError,
+    NetworkNameTakenError,
+    NothingToApplyError,
+    PickListIssuedError,
+    PickListNotReadyError,
+    PlaneError,
     PolicyNotReadyError,
     PolicyNotSolvedError,
     StockProblemsError,
     UnknownNetworkError,
 )
+from service.json_pointer import json_pointer
+from service.logs import REQUEST_ID
 from solver import InvalidStockError, ModelTooLargeError, NotUnichainError
 
 __all__ = [
@@ -268,61 +279,90 @@ def _respond(
     )
 
 
+def _pointed(errors: Sequence[tuple[str, str]]) -> dict[str, Any]:
+    return {"errors": [{"pointer": pointer, "detail": what} for pointer, what in errors]}
+
+
+def _stock_problems(exc: Exception) -> dict[str, Any]:
+    assert isinstance(exc, StockProblemsError)
+    return _pointed([(json_pointer("stock", location), what) for location, what in exc.problems])
+
+
+def _input_errors(exc: Exception) -> dict[str, Any]:
+    assert isinstance(exc, InputError)
+    return _pointed(exc.errors)
+
+
+def _query_errors(exc: Exception) -> dict[str, Any]:
+    # Pointers in the form the validation handler uses for query parameters ("query:/x").
+    assert isinstance(exc, PlaneError)
+    return _pointed([(f"query:/{parameter}", what) for parameter, what in exc.errors])
+
+
+def _not_solved(exc: Exception) -> dict[str, Any]:
+    assert isinstance(exc, PolicyNotSolvedError)
+    return {"criteria": exc.criteria, "job_state": exc.job_state}
+
+
+def _not_ready(exc: Exception) -> dict[str, Any]:
+    assert isinstance(exc, PolicyNotReadyError)
+    return {"job_state": exc.job_state}
+
+
+def _too_large(exc: Exception) -> dict[str, Any]:
+    assert isinstance(exc, ModelTooLargeError)
+    return {"states": exc.states, "pairs": exc.pairs}
+
+
+def _nothing(exc: Exception) -> dict[str, Any]:
+    return {}
+
+
+def _missing_locations(exc: Exception) -> dict[str, Any]:
+    assert isinstance(exc, PickListNotReadyError)
+    return {"missing_locations": exc.missing}
+
+
+# Domain error (service.errors, solver.errors) -> (status, problem type slug, the extensions
+# of its body). The most specific class of an error's MRO that is listed decides, so a
+# PolicyNotSolvedError is not read as the PolicyNotReadyError it also is. Titles are those of
+# PROBLEM_TYPES.
+PROBLEM_OF: dict[type[Exception], tuple[int, str, Callable[[Exception], dict[str, Any]]]] = {
+    StockProblemsError: (422, "invalid-stock", _stock_problems),
+    InvalidStockError: (422, "invalid-stock", _nothing),
+    AnalysisInputError: (422, "invalid-input", _input_errors),
+    PlaneError: (422, "invalid-input", _query_errors),
+    UnknownNetworkError: (404, "not-found", _nothing),
+    NetworkNameTakenError: (409, "conflict", _nothing),
+    NothingToApplyError: (409, "conflict", _nothing),
+    ConcurrentUploadError: (409, "conflict", _nothing),
+    HistoryInputError: (422, "invalid-input", _input_errors),
+    ItemUploadError: (422, "invalid-input", _input_errors),
+    ClosingCountsError: (422, "invalid-input", _input_errors),
+    AssortmentExistsError: (409, "conflict", _nothing),
+    PickListIssuedError: (409, "conflict", _nothing),
+    PickListNotReadyError: (409, "conflict", _missing_locations),
+    # 409, never 503 + Retry-After: no job will produce this policy by waiting.
+    PolicyNotSolvedError: (409, "policy-not-solved", _not_solved),
+    PolicyNotReadyError: (503, "policy-not-ready", _not_ready),
+    ModelTooLargeError: (422, "network-too-large", _too_large),
+    NotUnichainError: (422, "not-unichain", _nothing),
+}
+
+
 def problem_for(exc: Exception) -> tuple[int, str, str, str, dict[str, Any]] | None:
     """(status, slug, title, detail, extensions) for a domain error, None for anything else.
     Shared by the handlers and by batch requests, whose items fail one by one."""
     if isinstance(exc, ApiProblem):
         return exc.status, exc.slug, exc.title, exc.detail, exc.extensions
-    if isinstance(exc, StockProblemsError):
-        errors = [
-            {"pointer": json_pointer("stock", location), "detail": what}
-            for location, what in exc.problems
-        ]
-        return 422, "invalid-stock", "Invalid stock", str(exc), {"errors": errors}
-    if isinstance(exc, InvalidStockError):
-        return 422, "invalid-stock", "Invalid stock", str(exc), {}
-    if isinstance(exc, AnalysisInputError):
-        errors = [{"pointer": pointer, "detail": what} for pointer, what in exc.errors]
-        return 422, InvalidInput.slug, InvalidInput.title, str(exc), {"errors": errors}
-    if isinstance(exc, UnknownNetworkError):
-        return 404, NotFound.slug, NotFound.title, str(exc), {}
-    if isinstance(exc, PolicyNotSolvedError):
-        # 409, never 503 + Retry-After: no job will produce this policy by waiting.
-        return (
-            409,
-            "policy-not-solved",
-            "Not solved for this criterion",
-            str(exc),
-            {"criteria": exc.criteria, "job_state": exc.job_state},
-        )
-    if isinstance(exc, PolicyNotReadyError):
-        return 503, "policy-not-ready", "Policy not ready", str(exc), {"job_state": exc.job_state}
-    if isinstance(exc, ModelTooLargeError):
-        return (
-            422,
-            "network-too-large",
-            "Network too large",
-            str(exc),
-            {
-                "states": exc.states,
-                "pairs": exc.pairs,
-            },
-        )
-    if isinstance(exc, NotUnichainError):
-        return 422, "not-unichain", "Average criterion undefined", str(exc), {}
+    for kind in type(exc).__mro__:
+        if kind in PROBLEM_OF:
+            status, slug, extensions = PROBLEM_OF[kind]
+            return status, slug, PROBLEM_TYPES[slug][0], str(exc), extensions(exc)
     return None
 
 
-DOMAIN_ERRORS: tuple[type[Exception], ...] = (
-    ApiProblem,
-    AnalysisInputError,
-    InvalidStockError,
-    PolicyNotReadyError,
-    PolicyNotSolvedError,
-    UnknownNetworkError,
-    ModelTooLargeError,
-    NotUnichainError,
-)
+DOMAIN_ERRORS: tuple[type[Exception], ...] = (ApiProblem, *PROBLEM_OF)
 
 
 def _body_parts(parts: list[int | str], document: Any, missing: bool) -> list[int | str]:

@@ -163,8 +163,12 @@ class NetworkCreate(NetworkSpec):
         return cutoff
 
     def spec(self) -> NetworkSpec:
-        return NetworkSpec.model_validate(
-            self.model_dump(by_alias=True, exclude={"criteria", "closing_cutoff", "mode"})
+        """The specification alone. The request was validated as a NetworkSpec (this model is
+        one), so its fields are taken as they are, not validated a second time."""
+        fields = NetworkSpec.model_fields
+        return NetworkSpec.model_construct(
+            self.model_fields_set & fields.keys(),
+            **{name: getattr(self, name) for name in fields},
         )
 
 

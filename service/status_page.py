@@ -14,32 +14,24 @@ import html
 import json
 import logging
 import statistics
-from collections import defaultdict
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 from datetime import date, datetime, time
 
-from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
 from service.db import reporting
 from service.db.base import utcnow
+from service.db.monitoring import (
+    job_lines,
+    live_job_counts,
+    recent_solve_seconds,
+    reported_locations,
+)
 from service.db.reporting import CriterionSolve
-from service.db.tables import (
-    ClosingCount,
-    Network,
-    NetworkVersion,
-    SolveJob,
-)
+from service.errors import PolicyNotReadyError, UnknownNetworkChoice
 from service.pictures import caption, choose_plane, net_inflow_grid, render_moves
-from service.policies import (
-    NetworkRef,
-    PolicyCache,
-    PolicyNotReadyError,
-    ServedPolicy,
-    business_date_now,
-    load_policy,
-)
+from service.policies import NetworkRef, PolicyCache, ServedPolicy, business_date_now, load_policy
 from service.vocabulary import JobKind, JobState, SolveStatus
 from solver import CRITERIA, NetworkSpec
 
@@ -54,7 +46,6 @@ __all__ = [
     "NetworkLine",
     "SolveCell",
     "StatusView",
-    "UnknownNetworkChoice",
     "age",
     "gather",
     "render",
@@ -75,10 +66,6 @@ CAUTION = (
     "Moves follow the model and its parameters: a person reviews them before acting, above all "
     "after an automatic calibration, and local rules on labour, transport and safety come first."
 )
-
-
-class UnknownNetworkChoice(LookupError):
-    """`?network=` names no network of the tenant (or an archived one)."""
 
 
 # One criterion of a network's current version (service.db.reporting).
@@ -187,14 +174,7 @@ def gather(
         if chosen is None:
             raise UnknownNetworkChoice(f"no network {network_id}")
     live = (JobState.QUEUED.value, JobState.RUNNING.value)
-    live_counts: dict[str, int] = {
-        state: int(count)
-        for state, count in session.execute(
-            select(SolveJob.state, func.count())
-            .where(SolveJob.tenant_id == tenant_id, SolveJob.state.in_(live))
-            .group_by(SolveJob.state)
-        ).all()
-    }
+    live_counts = live_job_counts(session, tenant_id)
     queue = _jobs(session, tenant_id, states=live, oldest_first=True, limit=QUEUE_ROWS)
     recent = _jobs(session, tenant_id, states=None, oldest_first=False, limit=RECENT_JOBS)
     return StatusView(
@@ -217,7 +197,7 @@ def _networks(session: Session, tenant_id: int) -> list[NetworkLine]:
         session,
         [(row.network.id, row.version.spec_json, row.network.closing_cutoff) for row in states],
     )
-    times = _solve_times(session, tenant_id)
+    times = recent_solve_seconds(session, tenant_id, SOLVE_HISTORY)
     return [
         NetworkLine(
             row.network.id,
@@ -242,16 +222,9 @@ def _closing(
         zone = spec.get("timezone") or NetworkSpec.model_fields["timezone"].default
         ids = [location["id"] for location in spec["locations"]]
         tonight[network_id] = (business_date_now(zone, cutoff), ids)
-    reported: dict[int, set[str]] = defaultdict(set)
-    if tonight:
-        dates = {business_date for business_date, _ in tonight.values()}
-        for network_id, location_id, business_date in session.execute(
-            select(
-                ClosingCount.network_id, ClosingCount.location_id, ClosingCount.business_date
-            ).where(ClosingCount.network_id.in_(tonight), ClosingCount.business_date.in_(dates))
-        ).all():
-            if tonight[network_id][0] == business_date:
-                reported[network_id].add(location_id)
+    reported = reported_locations(
+        session, {network_id: day for network_id, (day, _) in tonight.items()}
+    )
     return {
         network_id: Closing(
             business_date,
@@ -262,37 +235,6 @@ def _closing(
     }
 
 
-def _solve_times(session: Session, tenant_id: int) -> dict[int, list[float]]:
-    """Solve seconds of the last SOLVE_HISTORY finished solves of each network, oldest first."""
-    ranked = (
-        select(
-            Network.id.label("network_id"),
-            SolveJob.solve_seconds,
-            SolveJob.id.label("job_id"),
-            func.row_number()
-            .over(partition_by=Network.id, order_by=SolveJob.id.desc())
-            .label("rank"),
-        )
-        .join(NetworkVersion, NetworkVersion.id == SolveJob.version_id)
-        .join(Network, Network.id == NetworkVersion.network_id)
-        .where(
-            SolveJob.tenant_id == tenant_id,
-            SolveJob.kind == JobKind.SOLVE.value,
-            SolveJob.state == JobState.DONE.value,
-            SolveJob.solve_seconds.is_not(None),
-        )
-        .subquery()
-    )
-    times: dict[int, list[float]] = defaultdict(list)
-    for network_id, seconds in session.execute(
-        select(ranked.c.network_id, ranked.c.solve_seconds)
-        .where(ranked.c.rank <= SOLVE_HISTORY)
-        .order_by(ranked.c.network_id, ranked.c.job_id)
-    ).all():
-        times[network_id].append(float(seconds))
-    return times
-
-
 def _jobs(
     session: Session,
     tenant_id: int,
@@ -301,16 +243,7 @@ def _jobs(
     oldest_first: bool,
     limit: int,
 ) -> list[JobLine]:
-    query = (
-        select(SolveJob, NetworkVersion.number, Network.id, Network.name)
-        .join(NetworkVersion, NetworkVersion.id == SolveJob.version_id)
-        .join(Network, Network.id == NetworkVersion.network_id)
-        .where(SolveJob.tenant_id == tenant_id)
-        .order_by(SolveJob.id if oldest_first else SolveJob.id.desc())
-        .limit(limit)
-    )
-    if states is not None:
-        query = query.where(SolveJob.state.in_(states))
+    rows = job_lines(session, tenant_id, states=states, oldest_first=oldest_first, limit=limit)
     return [
         JobLine(
             id=job.id,
@@ -329,7 +262,7 @@ def _jobs(
             method=job.method,
             progress=job.progress if job.state == JobState.RUNNING.value else None,
         )
-        for job, number, network_id, name in session.execute(query).all()
+        for job, number, network_id, name in rows
     ]
 
 

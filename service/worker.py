@@ -38,10 +38,22 @@ from pydantic import ValidationError
 from sqlalchemy.orm import Session, sessionmaker
 
 from service import analysis
-from service.codec import CorruptPolicyError, StoredPolicy, decode_policy, encode_policy
-from service.db import repository
+from service.codec import StoredPolicy, decode_policy, encode_policy
 from service.db.base import utcnow
+from service.db.jobs import (
+    claim_job,
+    fail_exhausted_jobs,
+    finish_job,
+    get_job,
+    record_progress,
+    release_job,
+    renew_lease,
+    store_analysis,
+    store_policy,
+)
+from service.db.policies import policy_for
 from service.db.tables import NetworkVersion, SolveMethod
+from service.errors import CorruptPolicyError
 from service.schemas import SimulationRequest, WhatIfRequest
 from service.settings import Settings
 from service.vocabulary import JobKind
@@ -220,10 +232,10 @@ class Worker:
 
     def _claim(self) -> _Claimed | None:
         with self.sessions.begin() as session:
-            failed = repository.fail_exhausted_jobs(session, self.settings.max_attempts)
+            failed = fail_exhausted_jobs(session, self.settings.max_attempts)
             if failed:
                 log.warning("failed %d jobs whose workers stopped on their last attempt", failed)
-            job = repository.claim_job(
+            job = claim_job(
                 session, self.owner, self.settings.lease_seconds, self.settings.max_attempts
             )
             if job is None:
@@ -292,7 +304,7 @@ class Worker:
         if claimed.kind != JobKind.SIMULATE:
             return None
         with self.sessions() as session:
-            row = repository.policy_for(
+            row = policy_for(
                 session, claimed.tenant_id, claimed.spec_hash, claimed.criterion, claimed.method
             )
             if row is None:
@@ -331,17 +343,13 @@ class Worker:
                 stop_requested_at = stop_requested_at or now
                 if now - stop_requested_at > grace:
                     with self.sessions.begin() as session:
-                        repository.release_job(
-                            session, claimed.job_id, self.owner, "handed back at shutdown"
-                        )
+                        release_job(session, claimed.job_id, self.owner, "handed back at shutdown")
                     log.info("job %d: handed back to the queue at shutdown", claimed.job_id)
                     return False
             if now - renewed_at < renew_every:
                 continue
             with self.sessions.begin() as session:
-                held = repository.renew_lease(
-                    session, claimed.job_id, self.owner, self.settings.lease_seconds
-                )
+                held = renew_lease(session, claimed.job_id, self.owner, self.settings.lease_seconds)
             renewed_at = now
             if not held:
                 log.warning("job %d: lease lost; leaving it to its new owner", claimed.job_id)
@@ -349,20 +357,18 @@ class Worker:
 
     def _write_progress(self, claimed: _Claimed, progress: PricedProgress) -> None:
         with self.sessions.begin() as session:
-            repository.record_progress(session, claimed.job_id, self.owner, progress_json(progress))
+            record_progress(session, claimed.job_id, self.owner, progress_json(progress))
 
     def _fail(self, claimed: _Claimed, error: str, *, retry: bool = False) -> None:
         with self.sessions.begin() as session:
-            repository.finish_job(session, claimed.job_id, self.owner, error=error, retry=retry)
+            finish_job(session, claimed.job_id, self.owner, error=error, retry=retry)
         log.warning("job %d: %s: %s", claimed.job_id, "will retry" if retry else "failed", error)
 
     def _store(self, claimed: _Claimed, result: StoredPolicy) -> None:
         encoded = encode_policy(result)
         with self.sessions.begin() as session:
-            job = repository.get_job(session, claimed.job_id)
-            stored = job is not None and repository.store_policy(
-                session, job, self.owner, result, encoded
-            )
+            job = get_job(session, claimed.job_id)
+            stored = job is not None and store_policy(session, job, self.owner, result, encoded)
         if stored:
             log.info(
                 "job %d: %s solve done in %.3f s, %d iterations",
@@ -377,7 +383,7 @@ class Worker:
     def _store_report(self, claimed: _Claimed, report: dict[str, Any], seconds: float) -> None:
         text = json.dumps(report, allow_nan=False, separators=(",", ":"))
         with self.sessions.begin() as session:
-            stored = repository.store_analysis(session, claimed.job_id, self.owner, text, seconds)
+            stored = store_analysis(session, claimed.job_id, self.owner, text, seconds)
         if stored:
             log.info("job %d: %s done in %.3f s", claimed.job_id, claimed.kind, seconds)
         else:

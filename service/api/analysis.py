@@ -18,7 +18,8 @@ from sqlalchemy.orm import Session
 
 from service.analysis import apply_overrides, check_simulation, new_seed, run_what_if
 from service.api.deps import JobId, NetworkId, Reader, SessionDep, SettingsDep, get_network
-from service.db import repository
+from service.db.jobs import analysis_job, enqueue_analysis, live_analysis_jobs
+from service.db.networks import latest_version
 from service.db.tables import Network, NetworkVersion, SolveJob
 from service.modes import resolve_method
 from service.problems import NotFound, RateLimited
@@ -40,7 +41,7 @@ router = APIRouter(prefix="/v1/networks/{network_id}", tags=["analysis"])
 
 
 def _current(session: Session, network: Network) -> tuple[NetworkVersion, NetworkSpec]:
-    version = repository.latest_version(session, network.id)
+    version = latest_version(session, network.id)
     assert version is not None, "a network always has a version"
     return version, NetworkSpec.model_validate_json(version.spec_json)
 
@@ -67,7 +68,7 @@ _ANALYSIS_RETRY_SECONDS = "10"
 
 
 def _check_analysis_cap(session: Session, tenant_id: int, settings: Settings) -> None:
-    live = repository.live_analysis_jobs(session, tenant_id)
+    live = live_analysis_jobs(session, tenant_id)
     if live >= settings.analysis_max_live_jobs:
         raise RateLimited(
             f"{live} simulations or what-if comparisons of this tenant are queued or running "
@@ -80,7 +81,7 @@ def _find(
     session: Session, tenant_id: int, network_id: int, kind: JobKind, job_id: int
 ) -> tuple[SolveJob, NetworkVersion]:
     network = get_network(session, tenant_id, network_id, archived_ok=True)
-    found = repository.analysis_job(session, tenant_id, network.id, kind, job_id)
+    found = analysis_job(session, tenant_id, network.id, kind, job_id)
     if found is None:
         what = "simulation" if kind is JobKind.SIMULATE else "what-if comparison"
         raise NotFound(f"no {what} {job_id} of network {network_id}")
@@ -124,7 +125,7 @@ def start_simulation(
     )
     _check_analysis_cap(session, caller.tenant_id, settings)
     params = body.model_copy(update={"seed": new_seed() if body.seed is None else body.seed})
-    job = repository.enqueue_analysis(
+    job = enqueue_analysis(
         session,
         caller.tenant_id,
         version,
@@ -194,7 +195,7 @@ def what_if(
         return WhatIfOut(network_id=network.id, version=version.number, **result)
     _check_analysis_cap(session, caller.tenant_id, settings)
     # exclude_unset: an absent max_units_per_night keeps the limit, a null one lifts it.
-    job = repository.enqueue_analysis(
+    job = enqueue_analysis(
         session,
         caller.tenant_id,
         version,

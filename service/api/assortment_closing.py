@@ -25,6 +25,7 @@ from service.api.assortment_schemas import (
 from service.api.assortments import AssortmentId, find_or_404, read_lines
 from service.api.deps import ItemCacheDep, Reader, SessionDep, SettingsDep, Writer
 from service.assortments import Assortment, layout_of
+from service.errors import ClosingCountsError
 from service.problems import PROBLEM_RESPONSES, Conflict, InvalidInput, NotFound, UnsupportedMedia
 from solver import InvalidStockError
 
@@ -171,10 +172,8 @@ async def report_closing(
                     correction=correction,
                     key_prefix=caller.key_prefix,
                 )
-        except closing.ClosingCountsError as exc:
-            raise InvalidInput(_refused(exc.problems), exc.problems) from exc
-        except closing.AlreadyIssuedError as exc:
-            raise Conflict(str(exc)) from exc
+        except ClosingCountsError as exc:
+            raise InvalidInput(_refused(exc.errors), exc.errors) from exc
         except IntegrityError as exc:
             raise Conflict(
                 "another report for this location and night arrived at the same moment; send "
@@ -276,10 +275,7 @@ def pick_list(
     assortment = find_or_404(session, caller.tenant_id, assortment_id)
     _location(assortment, location)
     day = business_date or closing.business_date_of(assortment)
-    try:
-        found = closing.location_pick_list(session, assortment, location, day)
-    except closing.PickListNotReadyError as exc:
-        raise Conflict(str(exc), missing_locations=exc.missing) from exc
+    found = closing.location_pick_list(session, assortment, location, day)
     etag = f'"{day.isoformat()}-r{found.revision}"'
     headers = {"ETag": etag}
     if if_none_match is not None and etag in {tag.strip() for tag in if_none_match.split(",")}:
@@ -315,8 +311,8 @@ def recommend_items(
     day = body.business_date or closing.business_date_of(assortment)
     try:
         plan = closing.recommend_items(session, cache, assortment, body.stocks, day)
-    except closing.ClosingCountsError as exc:
-        raise InvalidInput(_refused(exc.problems), exc.problems) from exc
+    except ClosingCountsError as exc:
+        raise InvalidInput(_refused(exc.errors), exc.errors) from exc
     except InvalidStockError as exc:
         raise InvalidInput(str(exc), [("/stocks", str(exc))]) from exc
     names = plan.locations

@@ -23,9 +23,9 @@ from service.api.assortment_schemas import (
 from service.api.deps import Reader, SessionDep, SettingsDep, Writer
 from service.assortment_spec import Layout
 from service.assortments import Assortment
+from service.errors import ItemUploadError
 from service.item_upload import (
     ParsedItem,
-    UploadProblems,
     parse_csv,
     parse_json_document,
     parse_json_lines,
@@ -116,17 +116,14 @@ def create_assortment(
     body: AssortmentCreate, session: SessionDep, caller: Writer, response: Response
 ) -> AssortmentOut:
     """Store a layout of stores and lanes for many items; items follow with POST .../items."""
-    try:
-        assortment = assortments.create_assortment(
-            session,
-            caller.tenant_id,
-            body.layout(),
-            body.criteria,
-            mode=body.mode,
-            closing_cutoff=body.closing_cutoff,
-        )
-    except assortments.AssortmentExistsError as exc:
-        raise Conflict(str(exc)) from exc
+    assortment = assortments.create_assortment(
+        session,
+        caller.tenant_id,
+        body.layout(),
+        body.criteria,
+        mode=body.mode,
+        closing_cutoff=body.closing_cutoff,
+    )
     response.headers["Location"] = f"/v1/assortments/{assortment.id}"
     return _out(session, assortment)
 
@@ -189,12 +186,12 @@ async def read_lines(request: Request, limit: int) -> list[str]:
     return lines
 
 
-def _problems(exc: UploadProblems) -> InvalidInput:
-    first = exc.problems[0]
+def _problems(exc: ItemUploadError) -> InvalidInput:
+    first = exc.errors[0]
     return InvalidInput(
-        f"the upload was refused and nothing of it stored: {len(exc.problems)} problem(s), "
+        f"the upload was refused and nothing of it stored: {len(exc.errors)} problem(s), "
         f"the first at {first[0] or 'the top'}: {first[1]}",
-        exc.problems,
+        exc.errors,
     )
 
 
@@ -236,7 +233,7 @@ async def upload_items(
             parsed = parsers[media](lines, layout)
             with session.begin_nested():
                 stored = assortments.store_items(session, assortment, parsed, settings.size_limits)
-        except UploadProblems as exc:
+        except ItemUploadError as exc:
             raise _problems(exc) from exc
         except IntegrityError as exc:
             raise Conflict(

@@ -8,31 +8,38 @@ import csv
 import io
 import json
 from dataclasses import dataclass
-from datetime import date, timedelta
 from typing import Annotated, Any
 
 from fastapi import APIRouter, Depends, Query, Request, Response, status
 from pydantic import ValidationError
-from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 from starlette.concurrency import run_in_threadpool
 
-from service.api.deps import NetworkId, Reader, SessionDep, SettingsDep, Writer, get_network
-from service.api.networks import IfMatch, check_if_match, etag
+from service import history
+from service.api.deps import (
+    IfMatch,
+    NetworkId,
+    Reader,
+    SessionDep,
+    SettingsDep,
+    Writer,
+    check_if_match,
+    etag,
+    get_network,
+)
 from service.api.views import network_out
 from service.calibration import (
+    AutoApplied,
     CalibrationOptions,
     Proposal,
-    apply_proposal,
+    apply_estimates,
     options_for,
     propose,
+    save_options,
 )
-from service.db import repository
-from service.db.base import utcnow
-from service.db.repository import SalesRow
-from service.db.tables import CalibrationSettings, Network, SolveJob
-from service.modes import resolve_method
-from service.problems import PROBLEM_RESPONSES, Conflict, InvalidInput, UnsupportedMedia
+from service.errors import HistoryInputError
+from service.history import SalesRow
+from service.problems import PROBLEM_RESPONSES, InvalidInput, UnsupportedMedia
 from service.schemas import (
     MAX_HISTORY_ROWS,
     AutoApplyOut,
@@ -52,16 +59,12 @@ from service.schemas import (
     WeekdayTestOut,
 )
 from service.settings import Settings
-from solver import ModelTooLargeError, NetworkSpec
 from solver.calibration import CountEstimate, WeekdayEffect
 from solver.spec import WEEKDAYS
 
 router = APIRouter(prefix="/v1/networks/{network_id}", tags=["calibration"])
 
 CSV_COLUMNS = ("date", "location", "units_sold", "stock_at_open", "units_received")
-# History is local business days; a day ahead of the server's UTC date allows for time zones.
-_DATE_SLACK = timedelta(days=1)
-_OLDEST = date(1990, 1, 1)
 
 _UPLOAD_DOC: dict[str, Any] = {
     "requestBody": {
@@ -138,74 +141,20 @@ def _parse_csv(raw: bytes) -> list[HistoryRowIn]:
     return rows
 
 
-def _invalid(errors: list[tuple[str, str]]) -> InvalidInput:
-    shown = errors[:20]
-    more = f" (and {len(errors) - 20} more)" if len(errors) > 20 else ""
-    # Nothing of a refused upload is stored: the client still holds every row, and sends the
-    # whole upload again once the rows named are fixed.
-    detail = (
-        "; ".join(f"{pointer}: {text}" for pointer, text in shown)
-        + more
-        + "; nothing of this upload was stored"
-    )
-    return InvalidInput(detail, shown)
-
-
-def _check_rows(
-    rows: list[HistoryRowIn], spec: NetworkSpec, csv_upload: bool, same_day: bool
-) -> None:
-    """Every problem the rows have against the network, each with its pointer; `same_day`: the
-    network's receipts sell on the day they arrive."""
-    known = set(spec.location_ids)
-    latest = utcnow().date() + _DATE_SLACK
-    first_seen: dict[tuple[str, date], int] = {}
-    errors: list[tuple[str, str]] = []
-    for index, row in enumerate(rows):
-        where = f"/line/{index + 2}" if csv_upload else f"/rows/{index}"
-        if row.location not in known:
-            errors.append((f"{where}/location", f"unknown location {row.location!r}"))
-        if not _OLDEST <= row.date <= latest:
-            errors.append((f"{where}/date", f"{row.date} is outside {_OLDEST}..{latest}"))
-        if same_day and row.units_sold > row.stock_at_open + row.units_received:
-            errors.append(
-                (
-                    f"{where}/units_sold",
-                    f"{row.units_sold} units sold but only {row.stock_at_open} on hand at "
-                    f"opening and {row.units_received} received",
-                )
-            )
-        elif not same_day and row.units_sold > row.stock_at_open:
-            errors.append(
-                (
-                    f"{where}/units_sold",
-                    f"{row.units_sold} units sold but only {row.stock_at_open} on hand at "
-                    "opening (receipts are on sale from the next day; if this network's stores "
-                    "sell morning deliveries the same day, PUT calibration/settings with "
-                    '"receipts_sell_same_day": true)',
-                )
-            )
-        key = (row.location, row.date)
-        if key in first_seen:
-            earlier = first_seen[key]
-            earlier_where = f"line {earlier + 2}" if csv_upload else f"row {earlier}"
-            errors.append(
-                (where, f"{row.location} on {row.date} is given twice (also {earlier_where})")
-            )
-        else:
-            first_seen[key] = index
-    if errors:
-        raise _invalid(errors)
+def _invalid(errors: list[tuple[str, str]]) -> HistoryInputError:
+    return HistoryInputError(errors)
 
 
 def _locations(session: Session, network_id: int) -> list[LocationHistoryOut]:
-    same_day = options_for(session, network_id).receipts_sell_same_day
     return [
         LocationHistoryOut(
-            location=location, days=days, sold_out_days=out, first_date=first, last_date=last
+            location=item.location,
+            days=item.days,
+            sold_out_days=item.sold_out_days,
+            first_date=item.first_date,
+            last_date=item.last_date,
         )
-        for location, days, out, first, last in repository.sales_history_summary(
-            session, network_id, receipts_sell_same_day=same_day
-        )
+        for item in history.summary(session, network_id)
     ]
 
 
@@ -245,75 +194,33 @@ def _store_history(
 ) -> HistoryStored:
     rows = _parse_csv(raw) if csv_upload else _parse_json(raw)
     network = get_network(session, tenant_id, network_id)
-    options = options_for(session, network.id)
-    _check_rows(
-        rows,
-        repository.current_spec(session, network.id),
-        csv_upload,
-        options.receipts_sell_same_day,
+    stored = history.store_history(
+        session,
+        network,
+        [
+            SalesRow(r.location, r.date, r.units_sold, r.stock_at_open, r.units_received)
+            for r in rows
+        ],
+        csv_upload=csv_upload,
+        limits=settings.size_limits,
     )
-    try:
-        with session.begin_nested():
-            inserted, replaced = repository.store_sales_history(
-                session,
-                network.id,
-                [
-                    SalesRow(r.location, r.date, r.units_sold, r.stock_at_open, r.units_received)
-                    for r in rows
-                ],
-            )
-    except IntegrityError as exc:
-        raise Conflict(
-            "another upload stored some of these days at the same moment; send this one again "
-            "(a repeat replaces them)"
-        ) from exc
-    auto = None
-    if options.auto_apply_threshold is not None:
-        auto = _auto_apply(session, network, options, options.auto_apply_threshold, settings)
     return HistoryStored(
         network_id=network.id,
-        received=len(rows),
-        inserted=inserted,
-        replaced=replaced,
+        received=stored.received,
+        inserted=stored.inserted,
+        replaced=stored.replaced,
         locations=_locations(session, network.id),
-        auto_apply=auto,
+        auto_apply=None if stored.auto_apply is None else _auto_apply_out(stored.auto_apply),
     )
 
 
-def _auto_apply(
-    session: Session,
-    network: Network,
-    options: CalibrationOptions,
-    threshold: float,
-    settings: Settings,
-) -> AutoApplyOut:
-    proposal = propose(session, network, options)
-    moved = proposal.largest_change
-    if not proposal.calibrated:
-        return AutoApplyOut(
-            applied=False, reason="no location has history to estimate from", version=None, jobs=[]
-        )
-    if moved <= threshold:
-        return AutoApplyOut(
-            applied=False,
-            reason=f"largest change {moved:.1%} is within the threshold {threshold:.1%}",
-            version=None,
-            jobs=[],
-        )
-    try:
-        method = resolve_method(proposal.spec, network.mode, settings.size_limits)
-    except ModelTooLargeError as exc:
-        # The upload is kept; only the automatic version is not made (a weekly proposal has
-        # seven times the states of the network it comes from).
-        return AutoApplyOut(
-            applied=False, reason=f"the proposed version is too large: {exc}", version=None, jobs=[]
-        )
-    number, jobs = _apply(session, network, proposal, method)
+def _auto_apply_out(applied: AutoApplied) -> AutoApplyOut:
+    written = applied.written
     return AutoApplyOut(
-        applied=True,
-        reason=f"largest change {moved:.1%} exceeds the threshold {threshold:.1%}",
-        version=number,
-        jobs=[JobOut.model_validate(job) for job in jobs],
+        applied=written is not None,
+        reason=applied.reason,
+        version=None if written is None else written.version.number,
+        jobs=[] if written is None else [JobOut.model_validate(job) for job in written.jobs],
     )
 
 
@@ -355,8 +262,7 @@ def _weekday(effect: WeekdayEffect | None) -> WeekdayTestOut | None:
     )
 
 
-def _calibration_out(network: Network, proposal: Proposal) -> CalibrationOut:
-    digest = repository.canonical_spec(proposal.spec)[1]
+def _calibration_out(network_id: int, proposal: Proposal) -> CalibrationOut:
     locations = []
     for item in proposal.locations:
         calibration = item.calibration
@@ -381,7 +287,7 @@ def _calibration_out(network: Network, proposal: Proposal) -> CalibrationOut:
         )
     options = proposal.options
     return CalibrationOut(
-        network_id=network.id,
+        network_id=network_id,
         based_on_version=proposal.based_on.number,
         would_create_version=proposal.based_on.number + 1,
         calibrated_locations=len(proposal.calibrated),
@@ -395,7 +301,7 @@ def _calibration_out(network: Network, proposal: Proposal) -> CalibrationOut:
         ),
         locations=locations,
         spec=proposal.spec,
-        spec_hash=digest,
+        spec_hash=proposal.spec_hash,
     )
 
 
@@ -452,17 +358,7 @@ def get_calibration(
     network = get_network(session, caller.tenant_id, network_id)
     proposal = propose(session, network, query.over(options_for(session, network.id)))
     response.headers["ETag"] = etag(proposal.based_on.number)
-    return _calibration_out(network, proposal)
-
-
-def _apply(
-    session: Session, network: Network, proposal: Proposal, method: str
-) -> tuple[int, list[SolveJob]]:
-    criteria = repository.criteria_requested(
-        session, network.tenant_id, proposal.based_on.spec_hash
-    ) or ["discounted"]
-    version, jobs = apply_proposal(session, network, proposal, criteria, utcnow(), method=method)
-    return version.number, jobs
+    return _calibration_out(network.id, proposal)
 
 
 @router.post(
@@ -482,17 +378,14 @@ def apply_calibration(
     """Make the estimates the next version (If-Match: the current version) and queue its
     solves for the criteria the current version was solved for."""
     network = get_network(session, caller.tenant_id, network_id)
-    current = repository.latest_version(session, network.id)
-    assert current is not None
-    check_if_match(network.id, current.number, if_match)
-    proposal = propose(session, network, query.over(options_for(session, network.id)))
-    if not proposal.calibrated:
-        reasons = "; ".join(f"{p.location}: {p.error}" for p in proposal.locations)
-        raise Conflict(f"no location of network {network.id} can be estimated ({reasons})")
-    if repository.canonical_spec(proposal.spec)[1] == current.spec_hash:
-        raise Conflict(f"the estimates equal version {current.number}'s parameters already")
-    method = resolve_method(proposal.spec, network.mode, settings.size_limits)
-    number, jobs = _apply(session, network, proposal, method)
+    written = apply_estimates(
+        session,
+        network,
+        query.over(options_for(session, network.id)),
+        limits=settings.size_limits,
+        check_current=lambda current: check_if_match(network.id, current.number, if_match),
+    )
+    number, jobs = written.version.number, written.jobs
     response.headers["ETag"] = etag(number)
     response.headers["Location"] = f"/v1/networks/{network.id}"
     return network_out(session, network, jobs)
@@ -520,14 +413,15 @@ def put_calibration_settings(
 ) -> CalibrationSettingsOut:
     """How estimates are made, and the threshold for applying them automatically."""
     network = get_network(session, caller.tenant_id, network_id)
-    row = session.get(CalibrationSettings, network.id)
-    if row is None:
-        row = CalibrationSettings(network_id=network.id)
-        session.add(row)
-    row.window_days = body.window_days
-    row.half_life_days = body.half_life_days
-    row.confidence = body.confidence
-    row.auto_apply_threshold = body.auto_apply_threshold
-    row.receipts_sell_same_day = body.receipts_sell_same_day
-    row.updated_at = utcnow()
+    save_options(
+        session,
+        network,
+        CalibrationOptions(
+            window_days=body.window_days,
+            half_life_days=body.half_life_days,
+            confidence=body.confidence,
+            auto_apply_threshold=body.auto_apply_threshold,
+            receipts_sell_same_day=body.receipts_sell_same_day,
+        ),
+    )
     return CalibrationSettingsOut(network_id=network.id, **body.model_dump())

@@ -16,24 +16,25 @@ from datetime import date, timedelta
 from typing import Annotated, Any
 
 from fastapi import APIRouter, Header, Query, Response, status
-from sqlalchemy import select
-from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
 from service.api.deps import CacheDep, NetworkId, Reader, SessionDep, Writer, get_network
 from service.api.views import relays_of, transfers_of
 from service.auth import Identity
 from service.calibration import law_moments
-from service.db import repository
 from service.db.base import utcnow
-from service.db.tables import ClosingCorrection, ClosingCount, Instruction, Network, NetworkVersion
-from service.policies import (
-    PolicyNotReadyError,
-    ServedPolicy,
-    StockProblemsError,
-    business_date_of,
-    recommend,
+from service.db.closing import (
+    add_correction,
+    add_instruction,
+    closing_counts,
+    corrections_of,
+    instruction_for,
+    set_closing_count,
 )
+from service.db.networks import current_spec, latest_version
+from service.db.tables import ClosingCorrection, Instruction, Network, NetworkVersion
+from service.errors import PolicyNotReadyError, StockProblemsError
+from service.policies import ServedPolicy, business_date_of, recommend
 from service.problems import POLICY_NOT_READY, PROBLEM_RESPONSES, Conflict, InvalidInput, NotFound
 from service.schemas import (
     ClosingStockIn,
@@ -52,7 +53,7 @@ _DATE_SLACK = timedelta(days=1)
 
 
 def _current_number(session: Session, network: Network) -> int:
-    version = repository.latest_version(session, network.id)
+    version = latest_version(session, network.id)
     assert version is not None
     return version.number
 
@@ -98,28 +99,6 @@ def _missing(spec: NetworkSpec, counts: dict[str, int]) -> list[str]:
     return [location.id for location in spec.locations if location.id not in counts]
 
 
-def _counts(session: Session, network_id: int, business_date: date) -> dict[str, int]:
-    rows = session.scalars(
-        select(ClosingCount).where(
-            ClosingCount.network_id == network_id, ClosingCount.business_date == business_date
-        )
-    )
-    return {row.location_id: row.units for row in rows}
-
-
-def _instruction(
-    session: Session, network_id: NetworkId, business_date: date, *, for_update: bool = False
-) -> Instruction | None:
-    query = select(Instruction).where(
-        Instruction.network_id == network_id, Instruction.business_date == business_date
-    )
-    if for_update:
-        # Two corrections at once must not both make the same revision (PostgreSQL; SQLite
-        # has one writer anyway).
-        query = query.with_for_update()
-    return session.scalars(query).one_or_none()
-
-
 @router.put("/closing-stock", response_model=ClosingStockOut)
 def report_closing_stock(
     network_id: NetworkId,
@@ -133,12 +112,12 @@ def report_closing_stock(
     the night's instructions are issued, only a correction (`"correction": true`) changes a
     count: the instructions are then issued again as the next revision."""
     network = get_network(session, caller.tenant_id, network_id)
-    spec = repository.current_spec(session, network.id)
+    spec = current_spec(session, network.id)
     capacity = _check_location(spec, network_id, location)
     business_date = body.business_date or business_date_of(session, network.id)
     _check_date(network, business_date, "/business_date")
     _check_units(network_id, location, body.units, capacity)
-    issued = _instruction(session, network_id, business_date, for_update=body.correction)
+    issued = instruction_for(session, network_id, business_date, for_update=body.correction)
     if issued is not None and not body.correction:
         raise Conflict(
             f"instructions for {business_date} were issued at {issued.computed_at:%H:%M:%S} "
@@ -147,21 +126,10 @@ def report_closing_stock(
             f"instructions are issued again as revision {issued.revision + 1}, and every "
             "location sees the change"
         )
-    row = session.scalars(
-        select(ClosingCount).where(
-            ClosingCount.network_id == network_id,
-            ClosingCount.location_id == location,
-            ClosingCount.business_date == business_date,
-        )
-    ).one_or_none()
-    if row is None:
-        row = ClosingCount(network_id=network_id, location_id=location, business_date=business_date)
-        session.add(row)
-    old_units = row.units
-    row.units = body.units
-    row.reported_at = utcnow()
-    session.flush()
-    counts = _counts(session, network_id, business_date)
+    row, old_units = set_closing_count(
+        session, network_id, location, business_date, body.units, utcnow()
+    )
+    counts = closing_counts(session, network_id, business_date)
     if issued is not None and old_units != body.units:
         _correct(session, cache, network, issued, counts, location, old_units, body.units, caller)
     return ClosingStockOut(
@@ -211,8 +179,7 @@ def _correct(
         key_prefix=caller.key_prefix,
         corrected_at=issued.computed_at,
     )
-    session.add(correction)
-    session.flush()
+    add_correction(session, correction)
     audit.info(
         json.dumps(
             {
@@ -273,14 +240,14 @@ def location_instructions(
     """What this location sends and receives tonight; 409 until every location has reported.
     The ETag names the revision: it changes when a corrected count changes the plan."""
     network = get_network(session, caller.tenant_id, network_id)
-    spec = repository.current_spec(session, network.id)
+    spec = current_spec(session, network.id)
     _check_location(spec, network_id, location)
     if business_date is None:
         business_date = business_date_of(session, network.id)
     _check_date(network, business_date, "query:/business_date")
-    issued = _instruction(session, network_id, business_date)
+    issued = instruction_for(session, network_id, business_date)
     if issued is None:
-        counts = _counts(session, network_id, business_date)
+        counts = closing_counts(session, network_id, business_date)
         missing = _missing(spec, counts)
         if missing:
             raise Conflict(
@@ -386,15 +353,7 @@ def _issue(
         computed_at=utcnow(),
         revision=1,
     )
-    try:
-        with session.begin_nested():
-            session.add(instruction)
-    except IntegrityError:
-        # Another location's request issued them first: everyone reads that one.
-        existing = _instruction(session, network.id, business_date)
-        assert existing is not None
-        return existing
-    return instruction
+    return add_instruction(session, instruction)
 
 
 def _for_location(
@@ -405,14 +364,7 @@ def _for_location(
     relay = next((r for r in plan.get("relays", []) if r["location"] == location), None)
     received = sum(t["units"] for t in plan["transfers"] if t["to"] == location)
     sent = sum(t["units"] for t in plan["transfers"] if t["from"] == location)
-    corrections = session.scalars(
-        select(ClosingCorrection)
-        .where(
-            ClosingCorrection.network_id == network_id,
-            ClosingCorrection.business_date == instruction.business_date,
-        )
-        .order_by(ClosingCorrection.id)
-    )
+    corrections = corrections_of(session, network_id, instruction.business_date)
     return InstructionsOut(
         network_id=network_id,
         location=location,

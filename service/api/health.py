@@ -7,7 +7,8 @@ from fastapi.responses import JSONResponse
 from sqlalchemy import Engine
 from sqlalchemy.exc import SQLAlchemyError
 
-from service.db.migrate import DatabaseNotMigratedError, require_migrated
+from service.db.migrate import require_migrated
+from service.errors import DatabaseNotMigratedError
 from service.problems import PROBLEM_JSON, problem_body
 
 router = APIRouter(tags=["health"])

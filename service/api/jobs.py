@@ -8,7 +8,7 @@ from typing import Annotated
 from fastapi import APIRouter, Query
 
 from service.api.deps import JobId, Reader, SessionDep
-from service.db import repository
+from service.db import jobs as db_jobs
 from service.db.tables import NetworkVersion
 from service.problems import NotFound
 from service.schemas import JobOut
@@ -19,7 +19,7 @@ router = APIRouter(prefix="/v1/jobs", tags=["jobs"])
 
 @router.get("/{job_id}", response_model=JobOut)
 def get_job(job_id: JobId, session: SessionDep, caller: Reader) -> JobOut:
-    job = repository.get_job(session, job_id)
+    job = db_jobs.get_job(session, job_id)
     if job is None or job.tenant_id != caller.tenant_id:
         raise NotFound(f"no job {job_id}")
     if job.kind != JobKind.SOLVE:
@@ -41,5 +41,5 @@ def list_jobs(
     """Newest first."""
     return [
         JobOut.model_validate(job)
-        for job in repository.list_jobs(session, state, limit, tenant_id=caller.tenant_id)
+        for job in db_jobs.list_jobs(session, state, limit, tenant_id=caller.tenant_id)
     ]

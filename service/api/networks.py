@@ -2,41 +2,26 @@
 
 from __future__ import annotations
 
-from typing import Annotated
+from fastapi import APIRouter, Response, status
 
-from fastapi import APIRouter, Header, Response, status
-
-from service.api.deps import NetworkId, Reader, SessionDep, SettingsDep, Writer, get_network
+from service import networks
+from service.api.deps import (
+    IfMatch,
+    NetworkId,
+    Reader,
+    SessionDep,
+    SettingsDep,
+    Writer,
+    check_if_match,
+    etag,
+    get_network,
+)
 from service.api.views import network_out, network_solves_out
-from service.db import reporting, repository
-from service.db.tables import SolveMode, Tenant
-from service.modes import resolve_method
-from service.problems import Conflict, PreconditionFailed, PreconditionRequired
+from service.problems import Conflict
 from service.schemas import NetworkCreate, NetworkCreated, NetworkOut, NetworkUpdate, VersionOut
 from solver import NetworkSpec
 
 router = APIRouter(prefix="/v1/networks", tags=["networks"])
-
-
-IfMatch = Annotated[str | None, Header(description="The current version number, as given in ETag.")]
-
-
-def etag(version: int) -> str:
-    return f'"{version}"'
-
-
-def check_if_match(network_id: int, current: int, if_match: str | None) -> None:
-    """428 without If-Match, 412 when it does not name the current version (or *)."""
-    if if_match is None:
-        raise PreconditionRequired(
-            f"send If-Match: {etag(current)} (the current version) to change network {network_id}"
-        )
-    wanted = {tag.strip().removeprefix("W/").strip('"') for tag in if_match.split(",")}
-    if str(current) not in wanted and "*" not in wanted:
-        raise PreconditionFailed(
-            f"network {network_id} is at version {current}, not {if_match}",
-            current_version=current,
-        )
 
 
 @router.post("", status_code=status.HTTP_201_CREATED, response_model=NetworkCreated)
@@ -49,21 +34,18 @@ def create_network(
 ) -> NetworkOut:
     """Store a new network as version 1 and queue its solves; 422 with the sizes when it is
     larger than its solving mode accepts."""
-    spec = body.spec()
-    mode = body.mode or SolveMode.AUTO.value
-    method = resolve_method(spec, mode, settings.size_limits)
-    if repository.network_by_name(session, caller.tenant_id, spec.name) is not None:
-        raise Conflict(
-            f"a network named {spec.name!r} exists already; PUT /v1/networks/{{id}} adds a version"
-        )
-    tenant = session.get_one(Tenant, caller.tenant_id)
-    network, version, jobs = repository.create_network(
-        session, tenant, spec, body.criteria, mode=mode, method=method
+    written = networks.create_network(
+        session,
+        caller.tenant_id,
+        body.spec(),
+        body.criteria,
+        mode=body.mode,
+        limits=settings.size_limits,
+        closing_cutoff=body.closing_cutoff,
     )
-    network.closing_cutoff = body.closing_cutoff
-    response.headers["Location"] = f"/v1/networks/{network.id}"
-    response.headers["ETag"] = etag(version.number)
-    return network_out(session, network, jobs)
+    response.headers["Location"] = f"/v1/networks/{written.network.id}"
+    response.headers["ETag"] = etag(written.version.number)
+    return network_out(session, written.network, written.jobs)
 
 
 @router.get("", response_model=list[NetworkOut])
@@ -73,11 +55,8 @@ def list_networks(
     # Three statements whatever the number of networks (service.db.reporting).
     return [
         network_solves_out(solves)
-        for solves in reporting.solve_states(
-            session,
-            tenant_id=caller.tenant_id,
-            include_archived=include_archived,
-            include_items=False,
+        for solves in networks.network_states(
+            session, caller.tenant_id, include_archived=include_archived
         )
     ]
 
@@ -112,49 +91,24 @@ def update_network(
             f"{network.assortment_id}: change it with POST /v1/assortments/"
             f"{network.assortment_id}/items"
         )
-    current = repository.latest_version(session, network.id)
-    assert current is not None
-    check_if_match(network_id, current.number, if_match)
-    spec: NetworkSpec = body.spec()
-    mode = body.mode or network.mode
-    method = resolve_method(spec, mode, settings.size_limits)
-    if spec.name != network.name:
-        other = repository.network_by_name(session, caller.tenant_id, spec.name)
-        if other is not None and other.id != network.id:
-            raise Conflict(f"another network is named {spec.name!r}")
-        network.name = spec.name
-    # Absent criteria carry over, as calibration apply does: an exported specification sent
-    # back as the next version keeps every criterion it was solved for.
-    criteria = (
-        body.criteria
-        or repository.criteria_requested(session, network.tenant_id, current.spec_hash)
-        or ["discounted"]
+    written = networks.add_network_version(
+        session,
+        network,
+        body.spec(),
+        limits=settings.size_limits,
+        criteria=body.criteria,
+        mode=body.mode,
+        closing_cutoff=body.closing_cutoff,
+        check_current=lambda current: check_if_match(network_id, current.number, if_match),
     )
-    network.mode = mode
-    version, jobs = repository.add_version(session, network, spec, criteria, method=method)
-    if body.closing_cutoff is not None:
-        network.closing_cutoff = body.closing_cutoff
-    if current.calibrated_at is not None and _same_laws(
-        NetworkSpec.model_validate_json(current.spec_json), spec
-    ):
-        # The estimated numbers were sent back unchanged (e.g. only a capacity changed): they
-        # are still the estimates of that calibration.
-        version.calibrated_at = current.calibrated_at
-    response.headers["ETag"] = etag(version.number)
-    return network_out(session, network, jobs)
-
-
-def _same_laws(before: NetworkSpec, after: NetworkSpec) -> bool:
-    """Whether every location of `after` has the demand and replenishment it had in `before`."""
-    laws = {loc.id: (loc.demand, loc.replenishment) for loc in before.locations}
-    return all(laws.get(loc.id) == (loc.demand, loc.replenishment) for loc in after.locations)
+    response.headers["ETag"] = etag(written.version.number)
+    return network_out(session, network, written.jobs)
 
 
 @router.delete("/{network_id}", status_code=status.HTTP_204_NO_CONTENT)
 def archive_network(network_id: NetworkId, session: SessionDep, caller: Writer) -> Response:
     """Archive the network: it is kept, but serves no more recommendations."""
-    network = get_network(session, caller.tenant_id, network_id)
-    network.archived = True
+    networks.archive_network(get_network(session, caller.tenant_id, network_id))
     return Response(status_code=status.HTTP_204_NO_CONTENT)
 
 
@@ -168,5 +122,5 @@ def list_versions(network_id: NetworkId, session: SessionDep, caller: Reader) ->
             created_at=version.created_at,
             spec=NetworkSpec.model_validate_json(version.spec_json),
         )
-        for version in repository.versions_newest_first(session, network.id)
+        for version in networks.versions_of(session, network)
     ]

@@ -18,9 +18,10 @@ from starlette.datastructures import Headers
 from service import auth
 from service.api.deps import MAX_ID, CacheDep, SessionDep, get_identity, sessions_of
 from service.auth import Identity
+from service.errors import UnknownNetworkChoice
 from service.metrics import render_metrics
 from service.problems import PROBLEM_RESPONSES, Forbidden, NotFound, Unauthorized
-from service.status_page import UnknownNetworkChoice, gather, render
+from service.status_page import gather, render
 
 __all__ = ["router"]
 

@@ -19,7 +19,6 @@ from service.pictures import (
     ANNOTATE_MAX_CELLS,
     ImageFormat,
     Plane,
-    PlaneError,
     caption,
     choose_plane,
     net_inflow_grid,
@@ -30,7 +29,7 @@ from service.pictures import (
     value_label,
 )
 from service.policies import PolicyCache, ServedPolicy, business_date_of, load_policy
-from service.problems import POLICY_NOT_READY, InvalidInput
+from service.problems import POLICY_NOT_READY
 from service.schemas import DEFAULT_CRITERION_RULE
 from solver import Criterion
 from solver.priced_result import PricedPolicy
@@ -265,20 +264,10 @@ def _served_plane(
     """The network (404), the served policy (503 before its solve) and the plane to draw (422
     naming each bad parameter). A malformed `at` is refused before the policy is loaded."""
     network = get_network(session, tenant_id, network_id)
-    try:
-        fixed = parse_fixed_stock(query.at) if query.at is not None else {}
-        served = load_policy(session, cache, network, criterion)
-        plane = choose_plane(served.result, query.x, query.y, fixed)
-    except PlaneError as exc:
-        raise _invalid(exc) from exc
+    fixed = parse_fixed_stock(query.at) if query.at is not None else {}
+    served = load_policy(session, cache, network, criterion)
+    plane = choose_plane(served.result, query.x, query.y, fixed)
     return network, served, plane
-
-
-def _invalid(exc: PlaneError) -> InvalidInput:
-    # Pointers in the form the validation handler uses for query parameters ("query:/x").
-    return InvalidInput(
-        str(exc), [(f"query:/{parameter}", what) for parameter, what in exc.problems]
-    )
 
 
 def _image(body: bytes, image_format: ImageFormat, served: ServedPolicy) -> Response:

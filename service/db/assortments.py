@@ -19,7 +19,8 @@ from sqlalchemy import insert, select, update
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
-from service.db.repository import enqueue_solves, with_current_version
+from service.db.jobs import enqueue_solves
+from service.db.networks import with_current_version
 from service.db.tables import Assortment, Network, NetworkVersion, Policy, SolveJob
 from service.vocabulary import JobKind, JobState
 
@@ -294,7 +295,7 @@ def _queue_solves(
             )
     except IntegrityError:
         # Another upload queued some of these specifications at the same moment: queue one at
-        # a time, leaving those to the other's jobs (repository.enqueue_solves).
+        # a time, leaving those to the other's jobs (service.db.jobs.enqueue_solves).
         queued: list[int] = []
         for (_digest, _method), version_id in versions.items():
             version = session.get_one(NetworkVersion, version_id)

@@ -10,8 +10,9 @@ from alembic.runtime.migration import MigrationContext
 from alembic.script import ScriptDirectory
 from sqlalchemy import Engine
 
+from service.errors import DatabaseNotMigratedError
+
 __all__ = [
-    "DatabaseNotMigratedError",
     "alembic_config",
     "current_revision",
     "downgrade",
@@ -21,10 +22,6 @@ __all__ = [
 ]
 
 MIGRATIONS = Path(__file__).resolve().parents[2] / "migrations"
-
-
-class DatabaseNotMigratedError(RuntimeError):
-    """The database schema is not the one this code expects."""
 
 
 def alembic_config(engine: Engine) -> Config:

@@ -23,7 +23,7 @@ from typing import Any
 from sqlalchemy import ColumnElement, Select, and_, func, select
 from sqlalchemy.orm import Session, defer
 
-from service.db.repository import with_current_version
+from service.db.networks import with_current_version
 from service.db.tables import Network, NetworkVersion, Policy, SolveJob
 from service.vocabulary import JobKind, JobState, SolveStatus
 from solver.result import CRITERIA

@@ -23,8 +23,8 @@ import httpx
 import pytest
 
 from service.auth import create_key
+from service.db.keys import get_or_create_tenant
 from service.db.migrate import upgrade
-from service.db.repository import get_or_create_tenant
 from service.db.session import make_engine, make_session_factory
 
 ROOT = Path(__file__).resolve().parents[2]

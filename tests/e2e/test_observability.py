@@ -12,7 +12,8 @@ from typing import Any
 import httpx
 from prometheus_client.parser import text_string_to_metric_families
 
-from service.db import repository
+from service.db.keys import get_or_create_tenant
+from service.db.networks import create_network
 from service.db.session import make_engine, make_session_factory
 from service.settings import Settings
 from service.worker import Worker
@@ -40,11 +41,9 @@ def solved_demo(url: str) -> int:
     try:
         sessions = make_session_factory(engine)
         with sessions.begin() as session:
-            tenant = repository.get_or_create_tenant(session, "default")
+            tenant = get_or_create_tenant(session, "default")
             spec = NetworkSpec.model_validate(demo_document())
-            network, _version, _jobs = repository.create_network(
-                session, tenant, spec, ["discounted"]
-            )
+            network, _version, _jobs = create_network(session, tenant, spec, ["discounted"])
             network_id = network.id
         Worker(Settings(database_url=url), sessions, "e2e").run(until_idle=True)
         return network_id

@@ -24,8 +24,9 @@ from sqlalchemy import Engine, select, text
 from sqlalchemy.orm import Session, sessionmaker
 
 from service.codec import decode_policy
-from service.db import repository
+from service.db.keys import get_or_create_tenant
 from service.db.migrate import upgrade
+from service.db.networks import canonical_spec, create_network
 from service.db.session import make_engine, make_session_factory
 from service.db.tables import NetworkVersion, Policy, SolveJob
 from solver import Criterion, NetworkSpec, solve_network
@@ -103,9 +104,9 @@ class Store:
 
     def import_networks(self, specs: list[NetworkSpec], criteria: list[str]) -> None:
         with self.sessions.begin() as session:
-            tenant = repository.get_or_create_tenant(session, "garden-and-hardware")
+            tenant = get_or_create_tenant(session, "garden-and-hardware")
             for spec in specs:
-                repository.create_network(session, tenant, spec, criteria)
+                create_network(session, tenant, spec, criteria)
 
     def jobs(self) -> list[SolveJob]:
         with self.sessions() as session:
@@ -279,7 +280,7 @@ def test_four_workers_share_sixty_jobs_without_duplicates(
         pool=workers,
     )
     specs = [small_variant(i) for i in range(30)]
-    assert len({repository.canonical_spec(spec)[1] for spec in specs}) == 30
+    assert len({canonical_spec(spec)[1] for spec in specs}) == 30
     pg_store.import_networks(specs, ["discounted", "average"])
 
     owners_seen: set[str] = set()

@@ -14,15 +14,9 @@ from sqlalchemy.exc import IntegrityError
 from service.cli import main
 from service.db import tables  # noqa: F401  (registers the tables on Base.metadata)
 from service.db.base import Base
-from service.db.migrate import (
-    DatabaseNotMigratedError,
-    current_revision,
-    downgrade,
-    head_revision,
-    require_migrated,
-    upgrade,
-)
+from service.db.migrate import current_revision, downgrade, head_revision, require_migrated, upgrade
 from service.db.session import make_engine
+from service.errors import DatabaseNotMigratedError
 
 TABLES = {
     "tenants",

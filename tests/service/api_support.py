@@ -16,7 +16,7 @@ from fastapi.testclient import TestClient
 from sqlalchemy import Engine
 
 from service.auth import Scope, create_key
-from service.db.repository import get_or_create_tenant
+from service.db.keys import get_or_create_tenant
 from service.db.session import make_session_factory
 from service.main import create_app
 from service.problems import PROBLEM_TYPES

@@ -8,20 +8,23 @@ from collections.abc import Callable
 from datetime import UTC, datetime
 from typing import Any
 
+import pytest
 from fastapi.testclient import TestClient
 from sqlalchemy import Engine
 
-from service.db.repository import canonical_spec
+from service.db.networks import canonical_spec
 from solver import NetworkSpec
 from tests.service.api_support import (
     assert_problem,
     create_network,
     demo_document,
+    open_client,
     pointers,
     run_worker,
     sqlite_only,
     weekly_document,
 )
+from tests.service.test_reporting import statements
 
 
 def spec_hash_of(document: dict[str, Any]) -> str:
@@ -494,3 +497,38 @@ def test_missing_network_is_a_404_on_every_route(client: TestClient) -> None:
     for method, url, kwargs in requests:
         problem = assert_problem(client.request(method, url, **kwargs), 404, "not-found")
         assert "4242" in problem["detail"], (method, url, problem)
+
+
+def test_a_put_reads_the_current_version_once_and_validates_the_specification_once(
+    engine: Engine, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """The new version's write reads the network's current version in one statement (the
+    answer's solve states read it once more, in service.db.reporting), and the specification is
+    validated only as the request body, never again as a NetworkSpec."""
+    with open_client(engine) as client:
+        created = create_network(client)
+        validations: list[object] = []
+        real = NetworkSpec.model_validate.__func__  # type: ignore[attr-defined]
+
+        def counted(cls: type[NetworkSpec], *args: Any, **kwargs: Any) -> NetworkSpec:
+            validations.append(args[0])
+            return real(cls, *args, **kwargs)  # type: ignore[no-any-return]
+
+        monkeypatch.setattr(NetworkSpec, "model_validate", classmethod(counted))
+        engine_of_app: Engine = client.app.state.engine  # type: ignore[attr-defined]
+        with statements(engine_of_app) as sent:
+            response = client.put(
+                f"/v1/networks/{created['id']}",
+                json=demo_document(discount=0.9),
+                headers={"If-Match": '"1"'},
+            )
+        assert response.status_code == 200, response.text
+        assert response.json()["version"] == 2
+    newest_first = [
+        statement
+        for statement in sent
+        if "FROM network_versions" in statement
+        and "ORDER BY network_versions.number DESC" in statement
+    ]
+    assert len(newest_first) == 1
+    assert validations == []

@@ -18,7 +18,8 @@ from sqlalchemy import Engine
 from threadpoolctl import threadpool_limits
 
 from service.api.health import RUN_HEADER
-from service.db.migrate import DatabaseNotMigratedError, downgrade
+from service.db.migrate import downgrade
+from service.errors import DatabaseNotMigratedError
 from service.main import create_app
 from service.settings import Settings
 from solver import NetworkSpec, PolicyResult, solve_network

@@ -9,7 +9,8 @@ import zlib
 import numpy as np
 import pytest
 
-from service.codec import CorruptPolicyError, decode_policy, encode_policy
+from service.codec import decode_policy, encode_policy
+from service.errors import CorruptPolicyError
 from solver import NetworkSpec, PolicyResult, solve_network
 from tests.service.api_support import weekly_document
 from tests.solver.networks import two_stores

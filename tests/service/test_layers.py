@@ -2,9 +2,9 @@
 tests/solver/test_imports.py does for solver/).
 
 The rules that hold today are asserted outright. Where the code does not yet keep a rule of the
-intended design (routers that reach the tables, SQL built outside service/db, HTTP models used
-below the API), the test lists the modules that still break it, with why, so that the list can
-only shrink: a new module breaking the rule fails here.
+intended design (routers that reach storage, HTTP models used below the API), the test lists the
+modules that still break it, with why, so that the list can only shrink: a new module breaking
+the rule fails here.
 """
 
 from __future__ import annotations
@@ -77,9 +77,9 @@ def _importers(prefixes: tuple[str, ...]) -> dict[str, set[str]]:
 
 
 def test_storage_imports_nothing_above_it() -> None:
-    """service/db knows tables, the policy codec and the shared vocabulary: never the API, its
-    HTTP models, the read path or the worker."""
-    allowed = ("service.db", "service.codec", "service.vocabulary")
+    """service/db knows tables, the policy codec, the shared vocabulary and the service's errors:
+    never the API, its HTTP models, the read path or the worker."""
+    allowed = ("service.db", "service.codec", "service.vocabulary", "service.errors")
     above = {
         path: sorted(m for m, _ in imports if m.startswith("service") and not m.startswith(allowed))
         for path, imports in _sources().items()
@@ -90,7 +90,8 @@ def test_storage_imports_nothing_above_it() -> None:
 
 def test_leaf_modules_import_nothing_of_the_service() -> None:
     """The vocabulary, the JSON pointer, the codec, the solving modes, the pictures, the priced
-    exports, the rate limiter and the CLI errors stand on the solver and libraries alone."""
+    exports, the rate limiter and the service's errors stand on the solver, libraries and (but
+    the errors themselves) service.errors alone."""
     leaves = [
         "service/vocabulary.py",
         "service/json_pointer.py",
@@ -103,8 +104,12 @@ def test_leaf_modules_import_nothing_of_the_service() -> None:
     ]
     sources = _sources()
     assert {
-        leaf: sorted(m for m, _ in sources[leaf] if m.startswith("service")) for leaf in leaves
+        leaf: sorted(
+            m for m, _ in sources[leaf] if m.startswith("service") and m != "service.errors"
+        )
+        for leaf in leaves
     } == {leaf: [] for leaf in leaves}
+    assert not any(m.startswith("service") for m, _ in sources["service/errors.py"])
 
 
 def test_the_http_models_stand_on_the_solver_and_the_vocabulary() -> None:
@@ -148,19 +153,8 @@ def test_http_models_are_used_below_the_api_only_by_the_listed_modules() -> None
     assert users <= SCHEMAS_BELOW_THE_API
 
 
-# Modules outside service/db that still build SQL (issue: every query in service/db). The list
-# may shrink, never grow.
-SQL_OUTSIDE_STORAGE = {
-    "service/api/closing.py",  # closing counts and instructions
-    "service/auth.py",  # API keys
-    "service/metrics.py",  # queue and solve-time aggregates
-    "service/middleware.py",  # idempotency records
-    "service/policies.py",  # the read path's policy rows
-    "service/status_page.py",  # queue, recent jobs, closing counts, solve times
-}
-
-
-def test_sql_is_built_outside_storage_only_by_the_listed_modules() -> None:
+def test_sql_is_built_in_storage_only() -> None:
+    """Every SQL statement is built in service/db."""
     builders = {
         path
         for path, imports in _sources().items()
@@ -169,20 +163,18 @@ def test_sql_is_built_outside_storage_only_by_the_listed_modules() -> None:
             module.startswith("sqlalchemy") and name in SQL_BUILDERS for module, name in imports
         )
     }
-    assert builders <= SQL_OUTSIDE_STORAGE
+    assert builders == set()
 
 
 def test_routers_use_sqlalchemy_only_for_sessions_and_errors() -> None:
     """A router names a Session (the request's, from service.api.deps) and catches database
-    errors; it builds no SQL, apart from the listed closing routes, and the readiness probe
-    holds the Engine it checks."""
+    errors; it builds no SQL, and the readiness probe holds the Engine it checks."""
     found = {
         path: sorted(f"{module}.{name}" for module, name in imports if module == "sqlalchemy")
         for path, imports in _sources().items()
         if path.startswith("service/api/")
     }
     assert {path: names for path, names in found.items() if names} == {
-        "service/api/closing.py": ["sqlalchemy.select"],
         "service/api/health.py": ["sqlalchemy.Engine"],
     }
     other = {
@@ -199,12 +191,10 @@ def test_routers_use_sqlalchemy_only_for_sessions_and_errors() -> None:
 # service layer (issue). The list may shrink, never grow.
 ROUTERS_ON_STORAGE = {
     "service/api/analysis.py",
-    "service/api/calibration.py",
     "service/api/closing.py",
     "service/api/deps.py",  # the session per request, the tenant of a key
     "service/api/health.py",  # the migration check of /readyz
     "service/api/jobs.py",
-    "service/api/networks.py",
     "service/api/pictures.py",
     "service/api/views.py",
 }
@@ -234,3 +224,25 @@ def test_the_feature_table_names_files_that_exist() -> None:
         if not any((base / name).exists() for base in (ROOT, SERVICE, ROOT / "tests" / "service"))
     )
     assert missing == []
+
+
+def test_exceptions_are_defined_in_the_errors_module() -> None:
+    """Domain errors live in service/errors.py (one hierarchy); elsewhere only the HTTP problems
+    of the API layer and the middleware's private signals define exception classes."""
+    defined = {
+        path: sorted(
+            node.name
+            for node in ast.walk(ast.parse((ROOT / path).read_text(encoding="utf-8")))
+            if isinstance(node, ast.ClassDef)
+            and any(
+                isinstance(base, ast.Name) and base.id.endswith(("Error", "Exception"))
+                for base in node.bases
+            )
+        )
+        for path in _sources()
+        if path != "service/errors.py"
+    }
+    assert {path: names for path, names in defined.items() if names} == {
+        "service/middleware.py": ["RepeatAllowed", "_TooLarge"],
+        "service/problems.py": ["ApiProblem"],
+    }

@@ -17,7 +17,7 @@ from sqlalchemy.orm import Session, sessionmaker
 
 from service import auth, supervisor
 from service.cli import main
-from service.db import repository
+from service.db.jobs import enqueue_analysis
 from service.db.session import make_engine, make_session_factory
 from service.db.tables import Network, NetworkVersion, Policy, SolveJob, Tenant
 from service.vocabulary import JobKind
@@ -143,6 +143,30 @@ def test_import_versions_and_queues_only_what_is_needed(
         assert versions[0].spec_hash == versions[1].spec_hash != versions[2].spec_hash
         assert [j.version_id for j in jobs(sessions)] == [versions[0].id] * 2 + [versions[2].id]
     assert rows(sessions, Network) == rows(sessions, Tenant) == 1
+
+
+def test_import_refuses_a_network_beyond_the_size_limits_in_one_line(
+    run: Run, sessions: sessionmaker[Session], tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """The import goes through the same size check as POST and PUT /v1/networks: the demo
+    network's 15 x 10 = 150 stock states are refused in exact mode under a limit of 10, as a
+    new network and as a new version, and nothing is written."""
+    monkeypatch.setenv("STOCKRELAY_MAX_STATES", "10")
+    code, out, err = run("networks", "import", str(DEMO), "--mode", "exact")
+    assert_one_line_error(code, out, err)
+    assert "150 stock states" in err
+    assert (
+        rows(sessions, Network) == rows(sessions, NetworkVersion) == rows(sessions, SolveJob) == 0
+    )
+
+    monkeypatch.delenv("STOCKRELAY_MAX_STATES")
+    assert run("networks", "import", str(DEMO), "--mode", "exact")[0] == 0
+    monkeypatch.setenv("STOCKRELAY_MAX_STATES", "10")
+    changed = write(tmp_path / "changed.json", with_capacity(demo_document(), 1, 11))
+    code, out, err = run("networks", "import", str(changed))
+    assert_one_line_error(code, out, err)
+    assert "stock states" in err
+    assert rows(sessions, NetworkVersion) == rows(sessions, SolveJob) == 1
 
 
 def test_identical_import_after_solving_reuses_the_stored_policy(
@@ -355,7 +379,7 @@ def test_jobs_list_shows_network_version_number_and_every_kind(
     with sessions.begin() as session:
         version = session.scalars(select(NetworkVersion).where(NetworkVersion.number == 2)).one()
         tenant_id = session.scalars(select(Tenant.id)).one()
-        simulation = repository.enqueue_analysis(
+        simulation = enqueue_analysis(
             session, tenant_id, version, JobKind.SIMULATE, "average", "{}"
         ).id
 

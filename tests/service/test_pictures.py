@@ -18,10 +18,10 @@ from matplotlib.image import imread
 from numpy.testing import assert_allclose, assert_array_equal
 from sqlalchemy import Engine
 
+from service.errors import PlaneError
 from service.pictures import (
     ANNOTATE_MAX_CELLS,
     Plane,
-    PlaneError,
     choose_plane,
     net_inflow_grid,
     parse_fixed_stock,

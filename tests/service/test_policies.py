@@ -6,9 +6,11 @@ import pytest
 from sqlalchemy import Engine, select
 from sqlalchemy.orm import Session, sessionmaker
 
-from service.db import repository
+from service.db.keys import get_or_create_tenant
+from service.db.networks import add_version, create_network
 from service.db.tables import Network, Policy, SolveJob
-from service.policies import PolicyCache, PolicyNotReadyError, PolicyNotSolvedError, recommend
+from service.errors import PolicyNotReadyError, PolicyNotSolvedError
+from service.policies import PolicyCache, recommend
 from solver import InvalidStockError, solve_network
 from tests.service.test_repository import demo
 from tests.service.test_worker import make_worker
@@ -16,8 +18,8 @@ from tests.service.test_worker import make_worker
 
 def new_network(sessions: sessionmaker[Session]) -> int:
     with sessions.begin() as session:
-        tenant = repository.get_or_create_tenant(session, "hardware")
-        network, _, _ = repository.create_network(session, tenant, demo(), ["discounted"])
+        tenant = get_or_create_tenant(session, "hardware")
+        network, _, _ = create_network(session, tenant, demo(), ["discounted"])
         return network.id
 
 
@@ -55,7 +57,7 @@ def test_an_older_version_is_not_served_as_stale_when_nothing_solves_the_newest(
     worker.run(until_idle=True)
     with sessions.begin() as session:
         network = session.get_one(Network, network_id)
-        _, jobs = repository.add_version(session, network, demo(discount=0.98), ["discounted"])
+        _, jobs = add_version(session, network, demo(discount=0.98), ["discounted"])
         # The newest version's only solve fails for good.
         jobs[0].state = "failed"
         jobs[0].error = "gave up"
@@ -65,7 +67,7 @@ def test_an_older_version_is_not_served_as_stale_when_nothing_solves_the_newest(
     with sessions.begin() as session:
         network = session.get_one(Network, network_id)
         # A version solved for another criterion only: discounted is no longer in use.
-        repository.add_version(session, network, demo(discount=0.97), ["average"])
+        add_version(session, network, demo(discount=0.97), ["average"])
     with pytest.raises(PolicyNotSolvedError, match="not solved for discounted"):
         serve(sessions, PolicyCache(4), network_id, {"riverside": 5, "hilltop": 5})
     worker.run(until_idle=True)
@@ -99,7 +101,7 @@ def test_a_newer_version_being_solved_is_reported_stale(
     worker.run(until_idle=True)
     with sessions.begin() as session:
         network = session.get_one(Network, network_id)
-        repository.add_version(session, network, demo(discount=0.99), ["discounted"])
+        add_version(session, network, demo(discount=0.99), ["discounted"])
     cache = PolicyCache(4)
     served, _ = serve(sessions, cache, network_id, {"riverside": 5, "hilltop": 5})
     assert served.stale and served.version_number == 1

@@ -27,7 +27,9 @@ from sqlalchemy.orm import Session, sessionmaker
 from service import worker as worker_module
 from service.cli import CAUTION, main
 from service.codec import decode_policy, encode_policy
-from service.db import repository
+from service.db import networks as db_networks
+from service.db.keys import get_or_create_tenant
+from service.db.networks import canonical_spec
 from service.db.tables import Network, NetworkVersion, Policy, SolveJob
 from service.pictures import choose_plane, net_inflow_grid, value_grid
 from service.priced import all_stocks
@@ -94,7 +96,7 @@ def test_mode_round_trips_is_kept_on_put_and_a_change_queues_the_new_method(
         ("discounted", "priced")
     ]
     # The mode is not part of the specification's hash.
-    assert created["spec_hash"] == repository.canonical_spec(DEMO_SPEC)[1]
+    assert created["spec_hash"] == canonical_spec(DEMO_SPEC)[1]
     path = f"/v1/networks/{created['id']}"
 
     kept = client.put(path, json=demo_document(discount=0.9), headers={"If-Match": '"1"'})
@@ -237,8 +239,8 @@ def test_a_running_priced_solve_reports_its_progress_into_the_job(
     engine: Engine, sessions: sessionmaker[Session], monkeypatch: pytest.MonkeyPatch
 ) -> None:
     with sessions.begin() as session:
-        tenant = repository.get_or_create_tenant(session, "hardware")
-        repository.create_network(
+        tenant = get_or_create_tenant(session, "hardware")
+        db_networks.create_network(
             session, tenant, demo(), ["discounted"], mode="priced", method="priced"
         )
     seen: list[str] = []

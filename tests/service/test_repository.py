@@ -12,8 +12,20 @@ from sqlalchemy import func, select
 from sqlalchemy.orm import Session, sessionmaker
 
 from service.codec import encode_policy
-from service.db import repository
 from service.db.base import utcnow
+from service.db.jobs import (
+    claim_job,
+    fail_exhausted_jobs,
+    finish_job,
+    list_jobs,
+    release_job,
+    renew_lease,
+    retry_job,
+    store_policy,
+)
+from service.db.keys import get_or_create_tenant
+from service.db.networks import add_version, canonical_spec, create_network, list_networks
+from service.db.policies import policy_for
 from service.db.tables import Policy, SolveJob
 from service.vocabulary import JobState
 from solver import NetworkSpec, solve_network
@@ -33,18 +45,18 @@ def count(session: Session, table: type[SolveJob] | type[Policy]) -> int:
 
 def test_spec_hash_is_sha256_of_canonical_json(sessions: sessionmaker[Session]) -> None:
     spec = demo()
-    text, digest = repository.canonical_spec(spec)
+    text, digest = canonical_spec(spec)
     assert digest == hashlib.sha256(text.encode()).hexdigest()
     assert json.loads(text) == spec.model_dump(mode="json", by_alias=True)
     # Key order in the input does not change the hash.
     reordered = NetworkSpec.model_validate(dict(reversed(list(json.loads(text).items()))))
-    assert repository.canonical_spec(reordered)[1] == digest
+    assert canonical_spec(reordered)[1] == digest
 
 
 def test_new_network_queues_one_job_per_criterion(sessions: sessionmaker[Session]) -> None:
     with sessions.begin() as session:
-        tenant = repository.get_or_create_tenant(session, "hardware")
-        _, version, jobs = repository.create_network(
+        tenant = get_or_create_tenant(session, "hardware")
+        _, version, jobs = create_network(
             session, tenant, demo(), ["discounted", "average", "discounted"]
         )
         assert version.number == 1
@@ -54,29 +66,29 @@ def test_new_network_queues_one_job_per_criterion(sessions: sessionmaker[Session
 
 def test_identical_specifications_share_one_solve(sessions: sessionmaker[Session]) -> None:
     with sessions.begin() as session:
-        tenant = repository.get_or_create_tenant(session, "hardware")
-        network, _, _ = repository.create_network(session, tenant, demo(), ["discounted"])
-        version, jobs = repository.add_version(session, network, demo(), ["discounted"])
+        tenant = get_or_create_tenant(session, "hardware")
+        network, _, _ = create_network(session, tenant, demo(), ["discounted"])
+        version, jobs = add_version(session, network, demo(), ["discounted"])
         assert (version.number, jobs) == (2, [])
         # Another network of the same tenant with the same parameters shares the solve too...
-        _, _, jobs = repository.create_network(session, tenant, demo(name="copy"), ["discounted"])
+        _, _, jobs = create_network(session, tenant, demo(name="copy"), ["discounted"])
         assert len(jobs) == 1  # the name is part of the specification, so this is a new hash
         # ...but another tenant never shares.
-        other = repository.get_or_create_tenant(session, "sporting goods")
-        _, _, jobs = repository.create_network(session, other, demo(), ["discounted"])
+        other = get_or_create_tenant(session, "sporting goods")
+        _, _, jobs = create_network(session, other, demo(), ["discounted"])
         assert len(jobs) == 1
-        changed, jobs = repository.add_version(session, network, demo(discount=0.99), ["average"])
+        changed, jobs = add_version(session, network, demo(discount=0.99), ["average"])
         assert changed.number == 3 and [job.criterion for job in jobs] == ["average"]
 
 
 def claim(session: Session, owner: str, *, at: timedelta = timedelta(0), attempts: int = 3):  # type: ignore[no-untyped-def]
-    return repository.claim_job(session, owner, 30.0, attempts, now=utcnow() + at)
+    return claim_job(session, owner, 30.0, attempts, now=utcnow() + at)
 
 
 def queue_two(sessions: sessionmaker[Session]) -> None:
     with sessions.begin() as session:
-        tenant = repository.get_or_create_tenant(session, "hardware")
-        repository.create_network(session, tenant, demo(), ["discounted", "average"])
+        tenant = get_or_create_tenant(session, "hardware")
+        create_network(session, tenant, demo(), ["discounted", "average"])
 
 
 def test_claims_take_the_oldest_job_and_lease_it(sessions: sessionmaker[Session]) -> None:
@@ -102,8 +114,8 @@ def test_an_expired_lease_is_claimed_again(sessions: sessionmaker[Session]) -> N
         assert again is not None and again.id == job.id
         assert (again.lease_owner, again.attempts) == ("worker-b", 2)
         # The first worker lost it: it can neither renew nor finish.
-        assert not repository.renew_lease(session, job.id, "worker-a", 30.0)
-        assert repository.renew_lease(session, job.id, "worker-b", 30.0)
+        assert not renew_lease(session, job.id, "worker-a", 30.0)
+        assert renew_lease(session, job.id, "worker-b", 30.0)
 
 
 def test_jobs_out_of_attempts_are_failed_with_the_reason(sessions: sessionmaker[Session]) -> None:
@@ -113,7 +125,7 @@ def test_jobs_out_of_attempts_are_failed_with_the_reason(sessions: sessionmaker[
         assert job is not None
         later = utcnow() + timedelta(seconds=31)
         assert claim(session, "worker-b", at=timedelta(seconds=31), attempts=1) is not None
-        assert repository.fail_exhausted_jobs(session, 1, now=later) == 1
+        assert fail_exhausted_jobs(session, 1, now=later) == 1
         session.refresh(job)
         assert job.state == JobState.FAILED
         assert job.error is not None and "stopped before finishing" in job.error
@@ -126,8 +138,8 @@ def test_released_job_returns_to_the_queue_uncounted(sessions: sessionmaker[Sess
     with sessions.begin() as session:
         job = claim(session, "worker-a")
         assert job is not None
-        assert not repository.release_job(session, job.id, "worker-b")
-        assert repository.release_job(session, job.id, "worker-a", "handed back")
+        assert not release_job(session, job.id, "worker-b")
+        assert release_job(session, job.id, "worker-a", "handed back")
         session.refresh(job)
         assert (job.state, job.attempts, job.lease_owner) == ("queued", 0, None)
 
@@ -142,18 +154,18 @@ def test_policy_is_stored_once_and_only_by_the_lease_holder(
     with sessions.begin() as session:
         job = claim(session, "worker-a")
         assert job is not None and job.criterion == "discounted"
-        assert not repository.store_policy(session, job, "worker-b", result, encoded)
+        assert not store_policy(session, job, "worker-b", result, encoded)
         assert count(session, Policy) == 0
-        assert repository.store_policy(session, job, "worker-a", result, encoded)
+        assert store_policy(session, job, "worker-a", result, encoded)
         session.refresh(job)
         assert job.state == JobState.DONE and job.iterations == result.iterations
-        assert not repository.store_policy(session, job, "worker-a", result, encoded)
+        assert not store_policy(session, job, "worker-a", result, encoded)
         assert count(session, Policy) == 1
-        policy = repository.policy_for(session, job.tenant_id, job.spec_hash, "discounted")
+        policy = policy_for(session, job.tenant_id, job.spec_hash, "discounted")
         assert policy is not None and policy.job_id == job.id
         # A new version with the same specification needs no job now.
-        network = repository.list_networks(session)[0]
-        _, jobs = repository.add_version(session, network, spec, ["discounted"])
+        network = list_networks(session)[0]
+        _, jobs = add_version(session, network, spec, ["discounted"])
         assert jobs == []
 
 
@@ -162,11 +174,11 @@ def test_only_failed_jobs_are_retried(sessions: sessionmaker[Session]) -> None:
     with sessions.begin() as session:
         job = claim(session, "worker-a")
         assert job is not None
-        assert repository.retry_job(session, job.id) is None
-        assert repository.finish_job(session, job.id, "worker-a", error="too large")
+        assert retry_job(session, job.id) is None
+        assert finish_job(session, job.id, "worker-a", error="too large")
         session.refresh(job)
         assert (job.state, job.error) == ("failed", "too large")
-        retried = repository.retry_job(session, job.id)
+        retried = retry_job(session, job.id)
         assert retried is not None
         assert (retried.state, retried.attempts, retried.error) == ("queued", 0, None)
 
@@ -178,10 +190,10 @@ def test_jobs_are_listed_newest_first_by_state(sessions: sessionmaker[Session], 
         job = claim(session, "worker-a")
         assert job is not None
         result = solve_network(demo())
-        repository.store_policy(session, job, "worker-a", result, encode_policy(result))
-        listed = repository.list_jobs(session, state)
+        store_policy(session, job, "worker-a", result, encode_policy(result))
+        listed = list_jobs(session, state)
         assert [j.state for j in listed] == [state]
-        everything = repository.list_jobs(session)
+        everything = list_jobs(session)
         assert [j.id for j in everything] == sorted((j.id for j in everything), reverse=True)
 
 

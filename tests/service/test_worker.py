@@ -18,7 +18,16 @@ from threadpoolctl import threadpool_limits
 from service import analysis
 from service import worker as worker_module
 from service.codec import decode_policy
-from service.db import repository
+from service.db.jobs import (
+    claim_job,
+    criteria_requested,
+    enqueue_analysis,
+    enqueue_solves,
+    jobs_for,
+    store_analysis,
+)
+from service.db.keys import get_or_create_tenant
+from service.db.networks import create_network
 from service.db.tables import NetworkVersion, Policy, SolveJob
 from service.schemas import Overrides, SimulationRequest
 from service.settings import Settings
@@ -35,8 +44,8 @@ def make_worker(engine: Engine, sessions: sessionmaker[Session], **settings: Any
 
 def queue(sessions: sessionmaker[Session], criteria: list[str]) -> None:
     with sessions.begin() as session:
-        tenant = repository.get_or_create_tenant(session, "hardware")
-        repository.create_network(session, tenant, demo(), criteria)
+        tenant = get_or_create_tenant(session, "hardware")
+        create_network(session, tenant, demo(), criteria)
 
 
 def jobs(sessions: sessionmaker[Session]) -> list[SolveJob]:
@@ -111,7 +120,7 @@ def assert_lease_renewed_until(
     try:
         threading.Event().wait(0.9)
         with sessions.begin() as session:
-            assert repository.claim_job(session, "intruder", 0.3, 3) is None
+            assert claim_job(session, "intruder", 0.3, 3) is None
     finally:
         release.set()
         runner.join(timeout=10)
@@ -177,11 +186,9 @@ def queue_analysis(
 ) -> None:
     """The demo network (solves queued for `criteria`, none by default) and one job of `kind`."""
     with sessions.begin() as session:
-        tenant = repository.get_or_create_tenant(session, "hardware")
-        _network, version, _jobs = repository.create_network(
-            session, tenant, demo(), criteria or []
-        )
-        repository.enqueue_analysis(
+        tenant = get_or_create_tenant(session, "hardware")
+        _network, version, _jobs = create_network(session, tenant, demo(), criteria or [])
+        enqueue_analysis(
             session,
             tenant.id,
             version,
@@ -306,13 +313,13 @@ def test_lease_is_renewed_while_a_long_simulation_runs(
 def test_a_report_is_stored_only_under_the_lease(sessions: sessionmaker[Session]) -> None:
     queue_analysis(sessions, JobKind.SIMULATE, SHORT_SIMULATION)
     with sessions.begin() as session:
-        job = repository.claim_job(session, "first", 60, 3)
+        job = claim_job(session, "first", 60, 3)
         assert job is not None
-        assert not repository.store_analysis(session, job.id, "second", "{}", 0.1)
+        assert not store_analysis(session, job.id, "second", "{}", 0.1)
     [job] = jobs(sessions)
     assert (job.state, job.result, job.lease_owner) == ("running", None, "first")
     with sessions.begin() as session:
-        assert repository.store_analysis(session, job.id, "first", '{"ok": true}', 0.1)
+        assert store_analysis(session, job.id, "first", '{"ok": true}', 0.1)
     [job] = jobs(sessions)
     assert (job.state, job.result, job.solve_seconds) == ("done", '{"ok": true}', 0.1)
 
@@ -323,16 +330,15 @@ def test_solves_deduplicate_beside_live_simulations(sessions: sessionmaker[Sessi
         version = session.scalars(select(NetworkVersion)).one()
         tenant_id = version.network.tenant_id
         for _ in range(2):  # more simulations of the same specification and criterion
-            repository.enqueue_analysis(
+            enqueue_analysis(
                 session, tenant_id, version, JobKind.SIMULATE, "average", json.dumps({})
             )
         assert [
-            job.criterion
-            for job in repository.enqueue_solves(session, tenant_id, version, ["average"])
+            job.criterion for job in enqueue_solves(session, tenant_id, version, ["average"])
         ] == ["average"]
-        assert repository.enqueue_solves(session, tenant_id, version, ["average"]) == []
-        assert repository.criteria_requested(session, tenant_id, version.spec_hash) == ["average"]
-        [solve] = repository.jobs_for(session, tenant_id, version.spec_hash, "average")
+        assert enqueue_solves(session, tenant_id, version, ["average"]) == []
+        assert criteria_requested(session, tenant_id, version.spec_hash) == ["average"]
+        [solve] = jobs_for(session, tenant_id, version.spec_hash, "average")
         assert solve.kind == "solve"
 
 
