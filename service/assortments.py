@@ -10,10 +10,11 @@ import json
 from collections.abc import Sequence
 from dataclasses import dataclass
 from datetime import time
+from typing import Any
 
 from sqlalchemy.orm import Session
 
-from service.assortment_spec import Layout
+from service.assortment_spec import ItemSpec, Layout, compose_spec, lane_key
 from service.db import assortments as store
 from service.db import reporting
 from service.db.networks import canonical_spec
@@ -35,6 +36,7 @@ __all__ = [
     "layout_of",
     "list_assortments",
     "store_items",
+    "update_layout",
 ]
 
 
@@ -189,3 +191,60 @@ def store_items(
         specifications=len(methods),
         jobs=stored.jobs,
     )
+
+
+def _item_of(code: str, spec: dict[str, Any], old: Layout, unit_volume: float | None) -> ItemSpec:
+    """The item's own numbers back from its composed specification: its locations, and the lane
+    limits it set below the old layout's."""
+    layout_limits = {lane_key(lane.from_, lane.to): lane.max_units for lane in old.lanes}
+    lane_limits = {}
+    for lane in spec["lanes"]:
+        key = lane_key(lane["from"], lane["to"])
+        if isinstance(lane["max_units"], int) and lane["max_units"] != layout_limits.get(key):
+            lane_limits[key] = lane["max_units"]
+    return ItemSpec.model_validate(
+        {
+            "item": code,
+            "unit_volume": unit_volume or 1.0,
+            "locations": {
+                location["id"]: {k: v for k, v in location.items() if k != "id"}
+                for location in spec["locations"]
+            },
+            "lane_limits": lane_limits,
+        }
+    )
+
+
+def update_layout(
+    session: Session, assortment: Assortment, layout: Layout, limits: SizeLimits
+) -> ItemsStored:
+    """The assortment's next layout, and every item composed on it (a new version where its
+    specification changes; ItemUploadError naming the items that no longer fit). The stores
+    and the name stay: items hold their numbers per store, and the name is part of every
+    item's specification."""
+    old = layout_of(assortment)
+    if layout.name != old.name:
+        raise ItemUploadError([("/name", f"the name stays {old.name!r}; create a new assortment")])
+    if sorted(layout.location_ids) != sorted(old.location_ids):
+        raise ItemUploadError(
+            [("/locations", f"the stores stay {', '.join(old.location_ids)} (in any order)")]
+        )
+    keys = set(layout.lane_keys)
+    items = store.current_items(session, assortment.id)
+    texts = store.spec_texts(session, [item.version_id for item in items.values()])
+    parsed: list[ParsedItem] = []
+    problems: list[tuple[str, str]] = []
+    for code, current in sorted(items.items()):
+        spec = json.loads(texts[current.version_id])
+        own = _item_of(code, spec, old, current.unit_volume)
+        kept = {key: units for key, units in own.lane_limits.items() if key in keys}
+        own = own.model_copy(update={"lane_limits": kept})
+        try:
+            parsed.append(ParsedItem(f"/items/{code}", own, compose_spec(layout, own)))
+        except ValueError as exc:
+            problems.append((f"/items/{code}", str(exc)))
+    if problems:
+        raise ItemUploadError(problems[:100])
+    assortment.layout_json = layout.model_dump_json(by_alias=True)
+    assortment.layout_version += 1
+    return store_items(session, assortment, parsed, limits)

@@ -20,6 +20,7 @@ __all__ = [
     "ItemRecommendationsOut",
     "ItemStates",
     "ItemStocksIn",
+    "LayoutUpdate",
     "ItemsStoredOut",
     "LocationReportOut",
     "PickListOut",
@@ -86,6 +87,19 @@ class AssortmentCreate(Layout):
         return Layout.model_validate(
             self.model_dump(by_alias=True, exclude={"criteria", "mode", "closing_cutoff"})
         )
+
+
+class LayoutUpdate(Layout):
+    """The next layout of an assortment: the same name and stores; lanes, costs, limits,
+    trucks, time zone and discount may change."""
+
+    @field_validator("timezone")
+    @classmethod
+    def _known_timezone(cls, zone: str) -> str:
+        return known_timezone(zone)
+
+    def layout(self) -> Layout:
+        return Layout.model_validate(self.model_dump(by_alias=True))
 
 
 class ItemStates(BaseModel):

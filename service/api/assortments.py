@@ -19,8 +19,17 @@ from service.api.assortment_schemas import (
     ItemPage,
     ItemsStoredOut,
     ItemStates,
+    LayoutUpdate,
 )
-from service.api.deps import Reader, SessionDep, SettingsDep, Writer
+from service.api.deps import (
+    IfMatch,
+    Reader,
+    SessionDep,
+    SettingsDep,
+    Writer,
+    check_if_match,
+    etag,
+)
 from service.assortment_spec import Layout
 from service.assortments import Assortment
 from service.errors import ItemUploadError
@@ -135,10 +144,46 @@ def list_assortments(session: SessionDep, caller: Reader) -> list[AssortmentOut]
 
 @router.get("/{assortment_id}", response_model=AssortmentOut)
 def get_assortment(
-    assortment_id: AssortmentId, session: SessionDep, caller: Reader
+    assortment_id: AssortmentId, session: SessionDep, caller: Reader, response: Response
 ) -> AssortmentOut:
-    """The layout and where its items' solves stand."""
-    return _out(session, find_or_404(session, caller.tenant_id, assortment_id))
+    """The layout and where its items' solves stand; ETag: the layout's version."""
+    assortment = find_or_404(session, caller.tenant_id, assortment_id)
+    response.headers["ETag"] = etag(assortment.layout_version)
+    return _out(session, assortment)
+
+
+@router.put("/{assortment_id}", response_model=ItemsStoredOut)
+def update_layout(
+    assortment_id: AssortmentId,
+    body: LayoutUpdate,
+    session: SessionDep,
+    caller: Writer,
+    settings: SettingsDep,
+    response: Response,
+    if_match: IfMatch = None,
+) -> ItemsStoredOut:
+    """The next layout (If-Match: the current `layout_version`): lanes, costs, limits, trucks,
+    time zone, discount; the stores and the name stay. Every item is composed on it at once,
+    a new version (and its solves) where its specification changes."""
+    assortment = find_or_404(session, caller.tenant_id, assortment_id)
+    check_if_match(assortment.id, assortment.layout_version, if_match, what="assortment")
+    try:
+        with session.begin_nested():
+            stored = assortments.update_layout(
+                session, assortment, body.layout(), settings.size_limits
+            )
+    except ItemUploadError as exc:
+        raise _problems(exc) from exc
+    response.headers["ETag"] = etag(assortment.layout_version)
+    return ItemsStoredOut(
+        assortment_id=assortment.id,
+        received=stored.received,
+        created=stored.created,
+        updated=stored.updated,
+        unchanged=stored.unchanged,
+        specifications=stored.specifications,
+        jobs_queued=len(stored.jobs),
+    )
 
 
 @router.get("/{assortment_id}/items", response_model=ItemPage)

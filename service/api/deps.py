@@ -195,15 +195,18 @@ def etag(version: int) -> str:
     return f'"{version}"'
 
 
-def check_if_match(network_id: int, current: int, if_match: str | None) -> None:
-    """428 without If-Match, 412 when it does not name the current version (or *)."""
+def check_if_match(
+    network_id: int, current: int, if_match: str | None, *, what: str = "network"
+) -> None:
+    """428 without If-Match, 412 when it does not name the current version (or *); `what` is
+    the kind of thing being changed, for the messages."""
     if if_match is None:
         raise PreconditionRequired(
-            f"send If-Match: {etag(current)} (the current version) to change network {network_id}"
+            f"send If-Match: {etag(current)} (the current version) to change {what} {network_id}"
         )
     wanted = {tag.strip().removeprefix("W/").strip('"') for tag in if_match.split(",")}
     if str(current) not in wanted and "*" not in wanted:
         raise PreconditionFailed(
-            f"network {network_id} is at version {current}, not {if_match}",
+            f"{what} {network_id} is at version {current}, not {if_match}",
             current_version=current,
         )

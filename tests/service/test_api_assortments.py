@@ -504,3 +504,56 @@ def test_bulk_recommendations_answer_like_single_items(client: TestClient, engin
     )
     assert_problem(unknown, 422)
     assert pointers(unknown.json()) == ["/stocks/NOPE", f"/stocks/{codes[1]}"]
+
+
+def test_a_new_layout_composes_every_item_again(client: TestClient, engine: Engine) -> None:
+    assortment = _create(client)
+    # The drill keeps the layout's lane limits; the grinder lowers one for itself.
+    lines = _csv_rows("DRL-18V", 30.0) + [
+        row + ",harbour>old-town:1" for row in _csv_rows("GRD-125", 22.5)
+    ]
+    header = HEADER + ",lane_limits"
+    drill = [row + "," for row in lines[:3]]
+    upload = client.post(
+        f"/v1/assortments/{assortment}/items",
+        content="\n".join([header, *drill, *lines[3:]]) + "\n",
+        headers={"content-type": "text/csv"},
+    )
+    assert upload.status_code == 200, upload.text
+    etag = client.get(f"/v1/assortments/{assortment}").headers["etag"]
+    assert etag == '"1"'
+    dearer = {
+        **LAYOUT,
+        "lanes": [{**lane, "unit_cost": lane["unit_cost"] + 0.5} for lane in LAYOUT["lanes"]],
+    }
+    assert_problem(client.put(f"/v1/assortments/{assortment}", json=dearer), 428)
+    assert_problem(
+        client.put(f"/v1/assortments/{assortment}", json=dearer, headers={"if-match": '"7"'}),
+        412,
+    )
+    renamed = {**dearer, "name": "tools-north"}
+    assert_problem(
+        client.put(f"/v1/assortments/{assortment}", json=renamed, headers={"if-match": etag}),
+        422,
+    )
+    response = client.put(f"/v1/assortments/{assortment}", json=dearer, headers={"if-match": etag})
+    assert response.status_code == 200, response.text
+    assert response.headers["etag"] == '"2"'
+    assert (response.json()["updated"], response.json()["unchanged"]) == (2, 0)
+    items = client.get(f"/v1/assortments/{assortment}/items").json()["items"]
+    for item in items:
+        assert item["version"] == 2
+        spec = client.get(f"/v1/networks/{item['network_id']}/versions").json()[0]["spec"]
+        assert [lane["unit_cost"] for lane in spec["lanes"]] == [1.7, 1.7, 1.4, 1.4]
+        limits = [lane["max_units"] for lane in spec["lanes"]]
+        assert limits == ([1, 3, 2, 2] if item["item"] == "GRD-125" else [3, 3, 2, 2])
+        # The item's own numbers are kept.
+        assert spec["locations"][0]["demand"] == {
+            "dist": "negative_binomial",
+            "mean": 1.2,
+            "variance": 2.0,
+        }
+    again = client.put(
+        f"/v1/assortments/{assortment}", json=dearer, headers={"if-match": '"2"'}
+    ).json()
+    assert (again["updated"], again["unchanged"], again["jobs_queued"]) == (0, 2, 0)
