@@ -19,7 +19,12 @@ from pydantic import (
     field_validator,
 )
 
-from service.vocabulary import JobStateName, SolveStatusName
+from service.vocabulary import (
+    JobStateName,
+    SolveMethodName,
+    SolveModeName,
+    SolveStatusName,
+)
 from solver import CRITERIA, Criterion, NetworkSpec
 from solver.spec import LaneSpec, NightCount, Weekday
 
@@ -67,7 +72,6 @@ __all__ = [
     "SimulationJobOut",
     "SimulationReportOut",
     "SimulationRequest",
-    "SolveModeName",
     "SolveState",
     "TransferOut",
     "VersionOut",
@@ -84,8 +88,6 @@ __all__ = [
 DEFAULT_CRITERION_RULE = (
     f"Absent: the first of {', '.join(CRITERIA)} that the network's current version is solved for."
 )
-SolveModeName = Literal["exact", "priced", "auto"]
-MethodName = Literal["exact", "priced"]
 
 
 def _as_utc(moment: datetime) -> datetime:
@@ -206,7 +208,9 @@ class JobOut(_Out):
     version_number: int = Field(description="The network version solved (as in If-Match).")
     version_id: int = Field(description="Internal id of that version's row; prefer the two above.")
     criterion: str
-    method: MethodName = Field(default="exact", description="exact or priced: how the job solves.")
+    method: SolveMethodName = Field(
+        default="exact", description="exact or priced: how the job solves."
+    )
     state: JobStateName
     attempts: int
     created_at: Timestamp
@@ -249,7 +253,7 @@ class NetworkOut(_Out):
         "business date; 00:00: midnight."
     )
     mode: SolveModeName = Field(description="The solving mode the network asks for.")
-    method: MethodName = Field(
+    method: SolveMethodName = Field(
         description="The method that mode resolves to for the current version."
     )
     solves: list[SolveState]
@@ -378,7 +382,7 @@ class RecommendationOut(BaseModel):
     night: Weekday | None = Field(
         default=None, description="Weekday of that business date: the night of the moves."
     )
-    method: MethodName = Field(
+    method: SolveMethodName = Field(
         default="exact",
         description="exact: the optimal policy over every stock state; priced: the nightly plan "
         "from lane prices and per-store values.",
@@ -939,7 +943,7 @@ class WhatIfRequest(BaseModel):
 
 class WhatIfSummaryOut(BaseModel):
     states: int
-    method: MethodName = Field(
+    method: SolveMethodName = Field(
         default="exact", description="exact or priced: how both networks were solved."
     )
     profit_per_day: float | None = Field(description="Long-run profit per day (average only).")

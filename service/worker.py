@@ -52,11 +52,11 @@ from service.db.jobs import (
     store_policy,
 )
 from service.db.policies import policy_for
-from service.db.tables import NetworkVersion, SolveMethod
+from service.db.tables import NetworkVersion
 from service.errors import CorruptPolicyError
 from service.schemas import SimulationRequest, WhatIfRequest
 from service.settings import Settings
-from service.vocabulary import JobKind
+from service.vocabulary import JobKind, SolveMethod
 from solver import Criterion, NetworkSpec, SolverError, solve_network
 from solver.priced import solve_priced
 from solver.priced_result import PricedProgress
