@@ -34,11 +34,11 @@ import numpy as np
 from numpy.typing import NDArray
 from pydantic import BaseModel, ValidationError
 
+from service.analysis_requests import MAX_SEED, Overrides, SimulationRequest
 from service.errors import AnalysisInputError
 from service.json_pointer import json_pointer
 from service.modes import resolve_method
 from service.priced import FULL_TABLE_MAX_STATES, plan_table
-from service.schemas import MAX_SEED, Overrides, SimulationRequest
 from service.settings import SIMULATION_MAX_REPLICATION_DAYS
 from solver import (
     Criterion,

@@ -18,11 +18,11 @@ from pydantic import ValidationError
 
 from service import operations, priced
 from service.analysis import run_simulation
+from service.analysis_requests import SimulationRequest
 from service.errors import AnalysisInputError, UsageError
 from service.files import load_network, write_json_atomically
 from service.logs import logging_from_environment
 from service.modes import resolve_method
-from service.schemas import SimulationRequest
 from service.vocabulary import JobKind, JobState, SolveMode
 from solver import (
     CRITERIA,

@@ -25,6 +25,8 @@ from starlette.exceptions import HTTPException as StarletteHTTPException
 
 from service.errors import (
     AnalysisInputError,
+    ClosingConflictError,
+    ClosingInputError,
     ConcurrentUploadError,
     HistoryInputError,
     InputError,
@@ -34,6 +36,7 @@ from service.errors import (
     PolicyNotReadyError,
     PolicyNotSolvedError,
     StockProblemsError,
+    UnknownLocationError,
     UnknownNetworkError,
 )
 from service.json_pointer import json_pointer
@@ -309,6 +312,11 @@ def _too_large(exc: Exception) -> dict[str, Any]:
     return {"states": exc.states, "pairs": exc.pairs}
 
 
+def _missing(exc: Exception) -> dict[str, Any]:
+    assert isinstance(exc, ClosingConflictError)
+    return {} if exc.missing is None else {"missing": exc.missing}
+
+
 def _nothing(exc: Exception) -> dict[str, Any]:
     return {}
 
@@ -327,6 +335,9 @@ PROBLEM_OF: dict[type[Exception], tuple[int, str, Callable[[Exception], dict[str
     NothingToApplyError: (409, "conflict", _nothing),
     ConcurrentUploadError: (409, "conflict", _nothing),
     HistoryInputError: (422, "invalid-input", _input_errors),
+    ClosingInputError: (422, "invalid-input", _input_errors),
+    UnknownLocationError: (404, "not-found", _nothing),
+    ClosingConflictError: (409, "conflict", _missing),
     # 409, never 503 + Retry-After: no job will produce this policy by waiting.
     PolicyNotSolvedError: (409, "policy-not-solved", _not_solved),
     PolicyNotReadyError: (503, "policy-not-ready", _not_ready),

@@ -5,9 +5,7 @@ from __future__ import annotations
 
 import json
 from datetime import UTC, date, datetime, time
-from pathlib import Path
 from typing import Annotated, Any, Literal
-from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 from pydantic import (
     AfterValidator,
@@ -19,6 +17,17 @@ from pydantic import (
     field_validator,
 )
 
+from service.analysis_requests import (
+    MAX_SEED,
+    LaneOverride,
+    LaneRef,
+    LocationOverride,
+    Overrides,
+    SimulationRequest,
+    WhatIfRequest,
+)
+from service.demo import DEMO_NETWORK, DEMO_STOCK
+from service.timezones import known_timezone
 from service.vocabulary import (
     JobStateName,
     SolveMethodName,
@@ -26,10 +35,11 @@ from service.vocabulary import (
     SolveStatusName,
 )
 from solver import CRITERIA, Criterion, NetworkSpec
-from solver.spec import LaneSpec, NightCount, Weekday
+from solver.spec import Weekday
 
 __all__ = [
     "DEFAULT_CRITERION_RULE",
+    "MAX_SEED",
     "AutoApplyOut",
     "BatchItem",
     "BatchOutcome",
@@ -98,9 +108,6 @@ def _as_utc(moment: datetime) -> datetime:
 Timestamp = Annotated[datetime, AfterValidator(_as_utc)]
 MAX_BATCH_ITEMS = 1000
 
-_DEMO = Path(__file__).parent / "data" / "demo_network.json"
-DEMO_NETWORK: dict[str, Any] = json.loads(_DEMO.read_text(encoding="utf-8"))
-DEMO_STOCK: dict[str, Any] = {"riverside": 13, "hilltop": 1}
 
 _Units = Annotated[StrictInt, Field(description="Units on hand at closing time.")]
 Stock = Annotated[
@@ -115,18 +122,6 @@ Criteria = Annotated[
 
 class _Out(BaseModel):
     model_config = ConfigDict(from_attributes=True, populate_by_name=True)
-
-
-def known_timezone(zone: str) -> str:
-    """`zone` when the tz database knows it; ValueError naming it otherwise. (The solver's
-    specification checks only the form: it reads no files.)"""
-    try:
-        ZoneInfo(zone)
-    except (ZoneInfoNotFoundError, ValueError) as exc:
-        raise ValueError(
-            f"unknown time zone {zone!r}; use an IANA name such as Europe/Berlin or UTC"
-        ) from exc
-    return zone
 
 
 class NetworkCreate(NetworkSpec):
@@ -718,48 +713,6 @@ class CalibrationOut(BaseModel):
 
 # -- simulations and what-if comparisons --------------------------------------------------------
 
-MAX_SEED = 2**63 - 1
-
-_StartUnits = Annotated[StrictInt, Field(description="Units on hand before the first night.")]
-
-
-class SimulationRequest(BaseModel):
-    """Simulate the optimal policy beside two simple rules on the same random days."""
-
-    model_config = ConfigDict(
-        extra="forbid",
-        json_schema_extra={
-            "examples": [
-                {"criterion": "average", "days": 365, "replications": 200, "seed": 20261201}
-            ]
-        },
-    )
-
-    criterion: Criterion = Field(
-        default="average", description="Whose optimal policy is simulated."
-    )
-    days: Annotated[int, Field(ge=1, le=3650, description="Days measured per replication.")] = 365
-    replications: Annotated[
-        int, Field(ge=1, le=2000, description="Independent runs; intervals are across them.")
-    ] = 200
-    warmup_days: Annotated[
-        int, Field(ge=0, le=365, description="Days simulated first and not measured.")
-    ] = 30
-    seed: Annotated[int, Field(ge=0, le=MAX_SEED)] | None = Field(
-        default=None, description="Seed of the random days; chosen at random when absent."
-    )
-    start_stock: dict[str, _StartUnits] | None = Field(
-        default=None,
-        description="Stock of every location before the first night (default: half of each "
-        "capacity, rounded down).",
-    )
-    compare_without_rules: bool = Field(
-        default=True,
-        description="When the network has floors (keep_at_least) or handling limits, also "
-        "simulate the optimal policy of the same network without them (dispatch costs kept), "
-        "to show what the rules cost and which fill rates they protect; ignored otherwise.",
-    )
-
 
 class IntervalOut(BaseModel):
     mean: float
@@ -853,92 +806,6 @@ class _AnalysisJobOut(BaseModel):
 class SimulationJobOut(_AnalysisJobOut):
     request: SimulationRequest = Field(description="What is simulated, the seed included.")
     report: SimulationReportOut | None = Field(description="Once the job is done.")
-
-
-class LocationOverride(BaseModel):
-    """New values for one location; absent fields keep theirs."""
-
-    model_config = ConfigDict(extra="forbid")
-
-    capacity: Annotated[int, Field(ge=1, le=100_000)] | None = None
-    unit_margin: Annotated[float, Field(ge=0, allow_inf_nan=False)] | None = None
-    holding_cost: Annotated[float, Field(ge=0, allow_inf_nan=False)] | None = None
-    stockout_penalty: Annotated[float, Field(ge=0, allow_inf_nan=False)] | None = None
-    demand_mean: Annotated[float, Field(ge=0, allow_inf_nan=False)] | None = Field(
-        default=None,
-        description="Mean daily demand; a Poisson law keeps its family, a negative binomial "
-        "its variance-to-mean ratio; an explicit distribution cannot be rescaled.",
-    )
-    keep_at_least: NightCount | None = Field(
-        default=None, description="New floor (one count, or one per night); 0 removes it."
-    )
-    max_units_out: NightCount | None = Field(
-        default=None,
-        description="New limit on units sent per night; null lifts it, absent keeps it.",
-    )
-    max_units_in: NightCount | None = Field(
-        default=None,
-        description="New limit on units received per night; null lifts it, absent keeps it.",
-    )
-
-
-class LaneRef(BaseModel):
-    model_config = ConfigDict(extra="forbid", populate_by_name=True)
-
-    from_: Annotated[str, Field(alias="from", min_length=1, max_length=64)]
-    to: Annotated[str, Field(min_length=1, max_length=64)]
-
-
-class LaneOverride(LaneRef):
-    """New values for an existing lane, named by its ends."""
-
-    unit_cost: Annotated[float, Field(ge=0, allow_inf_nan=False)] | None = None
-    dispatch_cost: Annotated[float, Field(ge=0, allow_inf_nan=False)] | None = Field(
-        default=None, description="New cost per night the lane is used; absent: unchanged."
-    )
-    max_units: Annotated[int, Field(ge=1, le=10_000)] | None = None
-
-
-class Overrides(BaseModel):
-    """Changes to the current version; everything not named stays as it is."""
-
-    model_config = ConfigDict(extra="forbid")
-
-    locations: dict[str, LocationOverride] = Field(
-        default_factory=dict, description="By location id."
-    )
-    lanes: Annotated[list[LaneOverride], Field(max_length=1_000)] = Field(default_factory=list)
-    new_lanes: Annotated[list[LaneSpec], Field(max_length=1_000)] = Field(default_factory=list)
-    remove_lanes: Annotated[list[LaneRef], Field(max_length=1_000)] = Field(default_factory=list)
-    max_units_per_night: Annotated[int, Field(ge=1)] | None = Field(
-        default=None,
-        description="Most units moved in one night; null lifts the limit, absent keeps it.",
-    )
-    remove_rules: bool = Field(
-        default=False,
-        description="Drop every floor and handling limit (after the changes above; dispatch "
-        "costs stay): what the rules cost.",
-    )
-
-
-class WhatIfRequest(BaseModel):
-    model_config = ConfigDict(
-        extra="forbid",
-        json_schema_extra={
-            "examples": [
-                {
-                    "criterion": "discounted",
-                    "overrides": {
-                        "locations": {"hilltop": {"capacity": 12}},
-                        "lanes": [{"from": "riverside", "to": "hilltop", "unit_cost": 3.0}],
-                    },
-                }
-            ]
-        },
-    )
-
-    criterion: Criterion = "discounted"
-    overrides: Overrides
 
 
 class WhatIfSummaryOut(BaseModel):

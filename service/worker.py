@@ -38,6 +38,7 @@ from pydantic import ValidationError
 from sqlalchemy.orm import Session, sessionmaker
 
 from service import analysis
+from service.analysis_requests import SimulationRequest, WhatIfRequest
 from service.codec import StoredPolicy, decode_policy, encode_policy
 from service.db.base import utcnow
 from service.db.jobs import (
@@ -54,7 +55,6 @@ from service.db.jobs import (
 from service.db.policies import policy_for
 from service.db.tables import NetworkVersion
 from service.errors import CorruptPolicyError
-from service.schemas import SimulationRequest, WhatIfRequest
 from service.settings import Settings
 from service.vocabulary import JobKind, SolveMethod
 from solver import Criterion, NetworkSpec, SolverError, solve_network

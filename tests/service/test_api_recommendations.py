@@ -18,7 +18,7 @@ from sqlalchemy import Engine
 
 import service.policies
 from service.api import recommendations as recommendations_module
-from service.api.views import relays_of, transfers_of
+from service.moves import relays_of, transfers_of
 from solver import NetworkSpec, PolicyResult, solve_network
 from solver.spec import WEEKDAYS as WEEK
 from tests.service.api_support import (
