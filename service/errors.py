@@ -13,6 +13,8 @@ PROBLEM_OF), the CLI prints the message of a UsageError (or an InputError) as on
     │   ├── HistoryInputError    sales history rows (pointers into the JSON or CSV upload)
     │   └── ClosingInputError    a closing count's date or units (pointers as the API's)
     ├── UnknownLocationError     the network has no such location (LookupError)
+    ├── UnknownJobError          no such job of the tenant, or not of the kind asked for
+    ├── AnalysisCapError         too many simulations and comparisons live; `retry_after`
     ├── ClosingConflictError     a count after the instructions were issued, or instructions
     │                            asked for before every count is in (`missing`)
     ├── StockProblemsError       closing stock that does not fit the network (also the
@@ -36,6 +38,7 @@ from collections.abc import Sequence
 from solver import InvalidStockError
 
 __all__ = [
+    "AnalysisCapError",
     "AnalysisInputError",
     "ClosingConflictError",
     "ClosingInputError",
@@ -52,6 +55,7 @@ __all__ = [
     "PolicyNotSolvedError",
     "ServiceError",
     "StockProblemsError",
+    "UnknownJobError",
     "UnknownLocationError",
     "UnknownNetworkChoice",
     "UnknownNetworkError",
@@ -117,6 +121,19 @@ class ClosingInputError(InputError):
 
 class UnknownLocationError(ServiceError, LookupError):
     """The network has no location of that id."""
+
+
+class UnknownJobError(ServiceError, LookupError):
+    """No job of that id for the tenant (or of the network), or one of another kind."""
+
+
+class AnalysisCapError(ServiceError):
+    """The tenant has as many simulations and what-if comparisons queued or running as it may;
+    `retry_after`: seconds worth waiting (text, as in the Retry-After header)."""
+
+    def __init__(self, message: str, *, retry_after: str) -> None:
+        super().__init__(message)
+        self.retry_after = retry_after
 
 
 class ClosingConflictError(ServiceError):

@@ -24,6 +24,7 @@ from sqlalchemy.exc import OperationalError
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
 from service.errors import (
+    AnalysisCapError,
     AnalysisInputError,
     ClosingConflictError,
     ClosingInputError,
@@ -36,6 +37,7 @@ from service.errors import (
     PolicyNotReadyError,
     PolicyNotSolvedError,
     StockProblemsError,
+    UnknownJobError,
     UnknownLocationError,
     UnknownNetworkError,
 )
@@ -338,6 +340,8 @@ PROBLEM_OF: dict[type[Exception], tuple[int, str, Callable[[Exception], dict[str
     ClosingInputError: (422, "invalid-input", _input_errors),
     UnknownLocationError: (404, "not-found", _nothing),
     ClosingConflictError: (409, "conflict", _missing),
+    UnknownJobError: (404, "not-found", _nothing),
+    AnalysisCapError: (429, "rate-limited", _nothing),
     # 409, never 503 + Retry-After: no job will produce this policy by waiting.
     PolicyNotSolvedError: (409, "policy-not-solved", _not_solved),
     PolicyNotReadyError: (503, "policy-not-ready", _not_ready),
@@ -438,6 +442,8 @@ def install_problem_handlers(app: FastAPI) -> None:
         headers = {"Retry-After": str(RETRY_AFTER_SECONDS)} if status == 503 else None
         if isinstance(exc, ApiProblem) and exc.headers:
             headers = exc.headers
+        if isinstance(exc, AnalysisCapError):
+            headers = {"Retry-After": exc.retry_after}
         return _respond(request, status, slug, title, detail, headers, **extensions)
 
     for domain_error in DOMAIN_ERRORS:
