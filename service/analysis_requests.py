@@ -1,6 +1,6 @@
 """The parameters of simulations and what-if comparisons: the input of a job of the queue
 (stored as JSON on the job, read back by the worker), of the CLI's `simulate`, and the body of
-the HTTP requests that start them (service.schemas reuses these models as they are).
+the HTTP requests that start them (service.api.schemas reuses these models as they are).
 
 Bounds here are the contract's; service.analysis checks the parameters against the network
 (start stock, overrides naming its locations and lanes, the replication bound of the settings).

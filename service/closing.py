@@ -19,7 +19,6 @@ from typing import Any
 from sqlalchemy.orm import Session
 
 from service.auth import Identity
-from service.calibration import law_moments
 from service.db.base import utcnow
 from service.db.closing import (
     add_correction,
@@ -38,8 +37,9 @@ from service.errors import (
     StockProblemsError,
     UnknownLocationError,
 )
+from service.estimates import law_moments
 from service.moves import relays_of, transfers_of
-from service.policies import PolicyCache, ServedPolicy, business_date_of, recommend
+from service.serving import PolicyCache, ServedPolicy, business_date_of, recommend
 from solver import NetworkSpec, Recommendation
 
 __all__ = ["CountReported", "LocationInstructions", "instructions_for", "report_count"]

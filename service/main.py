@@ -19,7 +19,7 @@ from service.api import (
     networks,
     ops,
     pictures,
-    policies,
+    policy_export,
     problem_types,
     recommendations,
 )
@@ -104,7 +104,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         networks,
         recommendations,
         closing,
-        policies,
+        policy_export,
         pictures,
         calibration,
         analysis,

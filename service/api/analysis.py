@@ -17,17 +17,16 @@ from fastapi.responses import JSONResponse
 from sqlalchemy.orm import Session
 
 from service import jobs
+from service.analysis_requests import SimulationRequest, WhatIfRequest
 from service.api.deps import JobId, NetworkId, Reader, SessionDep, SettingsDep, get_network
-from service.db.tables import NetworkVersion, SolveJob
-from service.schemas import (
+from service.api.schemas.analysis import (
     SimulationJobOut,
     SimulationReportOut,
-    SimulationRequest,
     WhatIfJobOut,
     WhatIfOut,
-    WhatIfRequest,
     WhatIfResultOut,
 )
+from service.db.tables import NetworkVersion, SolveJob
 from service.vocabulary import JobKind
 
 router = APIRouter(prefix="/v1/networks/{network_id}", tags=["analysis"])

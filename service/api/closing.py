@@ -14,14 +14,14 @@ from fastapi import APIRouter, Header, Query, Response, status
 
 from service import closing
 from service.api.deps import CacheDep, NetworkId, Reader, SessionDep, Writer, get_network
-from service.problems import POLICY_NOT_READY, PROBLEM_RESPONSES
-from service.schemas import (
+from service.api.schemas.closing import (
     ClosingStockIn,
     ClosingStockOut,
     CorrectionOut,
     InstructionsOut,
     Movement,
 )
+from service.problems import POLICY_NOT_READY, PROBLEM_RESPONSES
 
 router = APIRouter(prefix="/v1/networks/{network_id}/locations/{location}", tags=["closing"])
 

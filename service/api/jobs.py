@@ -9,7 +9,7 @@ from fastapi import APIRouter, Query
 
 from service import jobs
 from service.api.deps import JobId, Reader, SessionDep
-from service.schemas import JobOut
+from service.api.schemas.jobs import JobOut
 from service.vocabulary import JobStateName
 
 router = APIRouter(prefix="/v1/jobs", tags=["jobs"])

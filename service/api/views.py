@@ -7,20 +7,18 @@ from typing import Any
 
 from sqlalchemy.orm import Session
 
+from service.api.schemas.jobs import JobOut
+from service.api.schemas.networks import NetworkCreated, NetworkOut, SolveState
+from service.api.schemas.recommendations import (
+    CertificateOut,
+    RecommendationOut,
+    RelayOut,
+    TransferOut,
+)
 from service.db import reporting
 from service.db.tables import Network, SolveJob
 from service.moves import Relay, Transfer, relays_of, transfers_of
-from service.policies import ServedPolicy
-from service.schemas import (
-    CertificateOut,
-    JobOut,
-    NetworkCreated,
-    NetworkOut,
-    RecommendationOut,
-    RelayOut,
-    SolveState,
-    TransferOut,
-)
+from service.serving import ServedPolicy
 from solver import Recommendation
 from solver.priced_result import PricedPolicy
 from solver.spec import WEEKDAYS

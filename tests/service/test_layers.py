@@ -116,10 +116,10 @@ def test_leaf_modules_import_nothing_of_the_service() -> None:
 
 
 def test_the_http_models_stand_on_the_solver_and_the_domain_definitions() -> None:
-    """service/schemas.py imports no database code and, of the service, only modules that
-    define words and inputs (the vocabulary, the analysis parameters, time zones, the demo
-    scenario), themselves free of the rest of the service: the contract does not move when
-    storage does."""
+    """The HTTP models (service/api/schemas/) import no database code and, of the service, only
+    each other and modules that define words and inputs (the vocabulary, the analysis
+    parameters, time zones, the demo scenario), themselves free of the rest of the service: the
+    contract does not move when storage does."""
     sources = _sources()
     definitions = {
         "service.vocabulary",
@@ -127,8 +127,16 @@ def test_the_http_models_stand_on_the_solver_and_the_domain_definitions() -> Non
         "service.timezones",
         "service.demo",
     }
-    imports = sources["service/schemas.py"]
-    assert {m for m, _ in imports if m.startswith(("service", "sqlalchemy"))} <= definitions
+    imports = {
+        module
+        for path, found in sources.items()
+        if path.startswith("service/api/schemas/")
+        for module, _ in found
+        if module.startswith(("service", "sqlalchemy"))
+    }
+    assert imports - definitions <= {
+        f"service.api.schemas.{path.stem}" for path in (SERVICE / "api" / "schemas").glob("*.py")
+    }
     for module in definitions:
         path = module.replace(".", "/") + ".py"
         assert not {m for m, _ in sources[path] if m.startswith(("service", "sqlalchemy"))}
@@ -149,7 +157,7 @@ def test_nothing_below_the_api_uses_the_http_models() -> None:
     """Use cases take and return domain types: the job parameters of service.analysis_requests,
     which the HTTP models reuse, not the other way round."""
     users = {
-        path for path in _importers(("service.schemas",)) if not path.startswith("service/api/")
+        path for path in _importers(("service.api.schemas",)) if not path.startswith("service/api/")
     }
     assert users == set()
 
