@@ -51,7 +51,7 @@ import numpy as np
 import scipy
 from numpy.typing import NDArray
 
-from solver.calibration import (
+from solver.estimation import (
     LocationCalibration,
     WeekdayEffect,
     calibrate_location,

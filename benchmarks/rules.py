@@ -32,7 +32,7 @@ from typing import Any
 import solve  # benchmarks/solve.py: the shared JSON writer
 
 from service.analysis import run_simulation
-from service.schemas import SimulationRequest
+from service.analysis_requests import SimulationRequest
 from solver import NetworkSpec, solve_network
 
 ROOT = Path(__file__).resolve().parent.parent

@@ -41,7 +41,7 @@ from service.db.migrate import upgrade  # noqa: E402
 from service.db.networks import create_network  # noqa: E402
 from service.db.session import make_engine, make_session_factory  # noqa: E402
 from service.db.tables import Network, NetworkVersion, Policy, SolveJob  # noqa: E402
-from service.policies import PolicyCache, load_policy  # noqa: E402
+from service.serving import PolicyCache, load_policy  # noqa: E402
 from service.vocabulary import JobState  # noqa: E402
 from solver import NetworkSpec  # noqa: E402
 

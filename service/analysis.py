@@ -34,11 +34,11 @@ import numpy as np
 from numpy.typing import NDArray
 from pydantic import BaseModel, ValidationError
 
+from service.analysis_requests import MAX_SEED, Overrides, SimulationRequest
 from service.errors import AnalysisInputError
 from service.json_pointer import json_pointer
 from service.modes import resolve_method
 from service.priced import FULL_TABLE_MAX_STATES, plan_table
-from service.schemas import MAX_SEED, Overrides, SimulationRequest
 from service.settings import SIMULATION_MAX_REPLICATION_DAYS
 from solver import (
     Criterion,
@@ -57,6 +57,7 @@ from solver.build import check_size
 from solver.heuristics import balance_cover_plan, do_nothing_plan
 from solver.priced import check_priced_size, solve_priced
 from solver.priced_result import PricedOptions, PricedPolicy
+from solver.result import stock_problems
 from solver.simulation import (
     CONFIDENCE,
     Interval,
@@ -164,19 +165,12 @@ def check_simulation(
 
 
 def _start_stock_problems(spec: NetworkSpec, stock: Mapping[str, int]) -> list[tuple[str, str]]:
-    capacities = {location.id: location.capacity for location in spec.locations}
-    problems = [
-        (json_pointer("start_stock", location), "missing")
-        for location in capacities
-        if location not in stock
+    return [
+        (json_pointer("start_stock", location), what)
+        for location, what in stock_problems(
+            spec.location_ids, [location.capacity for location in spec.locations], stock
+        )
     ]
-    for location, units in stock.items():
-        pointer = json_pointer("start_stock", location)
-        if location not in capacities:
-            problems.append((pointer, f"unknown location {location!r}"))
-        elif not 0 <= units <= capacities[location]:
-            problems.append((pointer, f"{units} units is outside 0..{capacities[location]}"))
-    return problems
 
 
 def run_simulation(

@@ -41,7 +41,7 @@ from service.errors import (
     PickListIssuedError,
     PickListNotReadyError,
 )
-from service.policies import CachedPolicy, PolicyCache, business_date_now
+from service.serving import CachedPolicy, PolicyCache, business_date_now
 from solver.assortment import ItemPolicy, assortment_moves
 
 __all__ = [

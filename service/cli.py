@@ -18,12 +18,12 @@ from pydantic import ValidationError
 
 from service import operations, priced
 from service.analysis import run_simulation
+from service.analysis_requests import SimulationRequest
 from service.errors import AnalysisInputError, UsageError
 from service.files import load_network, write_json_atomically
 from service.logs import logging_from_environment
 from service.modes import resolve_method
-from service.schemas import SimulationRequest
-from service.vocabulary import JobKind, JobState
+from service.vocabulary import JobKind, JobState, SolveMode
 from solver import (
     CRITERIA,
     InvalidStockError,
@@ -109,7 +109,7 @@ def _parser() -> argparse.ArgumentParser:
     )
     solve.add_argument(
         "--mode",
-        choices=["exact", "priced", "auto"],
+        choices=[mode.value for mode in SolveMode],
         default="auto",
         help="exact: every stock state; priced: lane prices and per-store values, with a "
         "certified gap; auto (default): exact within the size limits, priced beyond",
@@ -234,7 +234,7 @@ def _parser() -> argparse.ArgumentParser:
     )
     import_.add_argument(
         "--mode",
-        choices=["exact", "priced", "auto"],
+        choices=[mode.value for mode in SolveMode],
         help="solving mode (default: the network's, auto for a new one)",
     )
     import_.add_argument(

@@ -11,8 +11,14 @@ PROBLEM_OF), the CLI prints the message of a UsageError (or an InputError) as on
     │   ├── AnalysisInputError   simulation / what-if parameters (pointers into the body)
     │   ├── PlaneError           the axes and fixed stock of a picture (query parameters)
     │   ├── HistoryInputError    sales history rows (pointers into the JSON or CSV upload)
+    │   ├── ClosingInputError    a closing count's date or units (pointers as the API's)
     │   ├── ItemUploadError      an assortment's item upload (pointers to lines and columns)
     │   └── ClosingCountsError   an assortment's closing report or bulk stocks
+    ├── UnknownLocationError     the network has no such location (LookupError)
+    ├── UnknownJobError          no such job of the tenant, or not of the kind asked for
+    ├── AnalysisCapError         too many simulations and comparisons live; `retry_after`
+    ├── ClosingConflictError     a count after the instructions were issued, or instructions
+    │                            asked for before every count is in (`missing`)
     ├── StockProblemsError       closing stock that does not fit the network (also the
     │                            solver's InvalidStockError); `problems` by location
     ├── UnknownNetworkError      missing, archived or another tenant's network (LookupError)
@@ -37,9 +43,12 @@ from collections.abc import Sequence
 from solver import InvalidStockError
 
 __all__ = [
+    "AnalysisCapError",
     "AnalysisInputError",
     "AssortmentExistsError",
+    "ClosingConflictError",
     "ClosingCountsError",
+    "ClosingInputError",
     "ConcurrentUploadError",
     "CorruptPolicyError",
     "DatabaseNotMigratedError",
@@ -56,6 +65,8 @@ __all__ = [
     "PolicyNotSolvedError",
     "ServiceError",
     "StockProblemsError",
+    "UnknownJobError",
+    "UnknownLocationError",
     "UnknownNetworkChoice",
     "UnknownNetworkError",
     "UsageError",
@@ -72,10 +83,11 @@ class UsageError(ServiceError):
 
 class InputError(ServiceError, ValueError):
     """Input that does not fit the network; `errors` pairs where it is wrong (a JSON pointer
-    into a request body, or a query parameter) with what is wrong there."""
+    into a request body, or a query parameter) with what is wrong there; the message joins
+    them unless given."""
 
-    def __init__(self, errors: Sequence[tuple[str, str]]) -> None:
-        super().__init__("; ".join(f"{where}: {what}" for where, what in errors))
+    def __init__(self, errors: Sequence[tuple[str, str]], message: str | None = None) -> None:
+        super().__init__(message or "; ".join(f"{where}: {what}" for where, what in errors))
         self.errors = list(errors)
 
 
@@ -107,6 +119,40 @@ class HistoryInputError(InputError):
             + more
             + "; nothing of this upload was stored",
         )
+
+
+class ClosingInputError(InputError):
+    """A closing count's business date or units that do not fit the network; `errors` pairs a
+    pointer (into the body, or "query:/business_date") with what is wrong there."""
+
+    def __init__(self, message: str, errors: Sequence[tuple[str, str]]) -> None:
+        super().__init__(errors, message)
+
+
+class UnknownLocationError(ServiceError, LookupError):
+    """The network has no location of that id."""
+
+
+class UnknownJobError(ServiceError, LookupError):
+    """No job of that id for the tenant (or of the network), or one of another kind."""
+
+
+class AnalysisCapError(ServiceError):
+    """The tenant has as many simulations and what-if comparisons queued or running as it may;
+    `retry_after`: seconds worth waiting (text, as in the Retry-After header)."""
+
+    def __init__(self, message: str, *, retry_after: str) -> None:
+        super().__init__(message)
+        self.retry_after = retry_after
+
+
+class ClosingConflictError(ServiceError):
+    """A count sent after the night's instructions were issued (not as a correction), or the
+    instructions asked for before every location has reported (`missing` names those)."""
+
+    def __init__(self, message: str, *, missing: list[str] | None = None) -> None:
+        super().__init__(message)
+        self.missing = missing
 
 
 class StockProblemsError(ServiceError, InvalidStockError):

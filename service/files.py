@@ -11,7 +11,7 @@ from typing import Any
 from pydantic import ValidationError
 
 from service.errors import UsageError
-from service.schemas import known_timezone
+from service.timezones import known_timezone
 from solver import NetworkSpec
 
 __all__ = ["describe_validation_error", "load_network", "write_json_atomically"]

@@ -1,6 +1,6 @@
 """Use cases of sales history: check daily rows against the network, store them (a day reported
 again replaces the stored one), apply the estimates automatically when the network asks for it
-(service.calibration.auto_apply), and summarise what is stored.
+(service.estimates.auto_apply), and summarise what is stored.
 
 A refused upload changes nothing: every row is checked before any is stored, and
 HistoryInputError names each problem with a pointer into the upload.
@@ -15,12 +15,12 @@ from datetime import date, timedelta
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
-from service.calibration import AutoApplied, auto_apply, options_for
 from service.db.base import utcnow
 from service.db.history import SalesRow, sales_history_summary, store_sales_history
 from service.db.networks import current_spec
 from service.db.tables import Network
 from service.errors import ConcurrentUploadError, HistoryInputError
+from service.estimates import AutoApplied, auto_apply, options_for
 from solver import NetworkSpec, SizeLimits
 
 __all__ = [

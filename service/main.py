@@ -21,7 +21,7 @@ from service.api import (
     networks,
     ops,
     pictures,
-    policies,
+    policy_export,
     problem_types,
     recommendations,
 )
@@ -32,9 +32,9 @@ from service.db.session import make_engine, make_session_factory
 from service.logs import configure_server_logging
 from service.metrics import MeteredPolicyCache
 from service.middleware import BodySizeLimit, Idempotency, RepeatAllowed
-from service.policies import PolicyCache
 from service.problems import RequestId, install_problem_handlers
 from service.ratelimit import RateLimiter
+from service.serving import PolicyCache
 from service.settings import Settings
 
 __all__ = ["create_app"]
@@ -108,7 +108,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         networks,
         recommendations,
         closing,
-        policies,
+        policy_export,
         pictures,
         calibration,
         analysis,

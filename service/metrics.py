@@ -84,11 +84,11 @@ from service.db.monitoring import (
     running_progress,
     solve_seconds_buckets,
 )
-from service.policies import PolicyCache
+from service.serving import PolicyCache
 from service.vocabulary import JobKind, JobState, SolveStatus
 
 if TYPE_CHECKING:
-    from service.policies import _Entry as CacheEntry
+    from service.serving import _Entry as CacheEntry
 
 __all__ = [
     "CACHE_LOOKUPS",

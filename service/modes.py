@@ -9,19 +9,15 @@ the method its network's mode resolved to (service.db.tables).
 
 from __future__ import annotations
 
-from typing import Literal
-
+from service.vocabulary import SolveMethodName
 from solver import ModelTooLargeError, NetworkSpec, SizeLimits
 from solver.build import check_size
 from solver.priced import check_priced_size
 
-__all__ = ["Method", "Mode", "resolve_method"]
-
-Mode = Literal["exact", "priced", "auto"]
-Method = Literal["exact", "priced"]
+__all__ = ["resolve_method"]
 
 
-def resolve_method(spec: NetworkSpec, mode: str, limits: SizeLimits) -> Method:
+def resolve_method(spec: NetworkSpec, mode: str, limits: SizeLimits) -> SolveMethodName:
     """The method that solves `spec` in `mode`.
 
     Raises ModelTooLargeError when the network is too large for that mode: in exact mode beyond

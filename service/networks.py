@@ -29,9 +29,10 @@ from service.db.networks import (
     versions_newest_first,
 )
 from service.db.networks import create_network as store_network
-from service.db.tables import Network, NetworkVersion, SolveJob, SolveMode
+from service.db.tables import Network, NetworkVersion, SolveJob
 from service.errors import NetworkArchivedError, NetworkNameTakenError
 from service.modes import resolve_method
+from service.vocabulary import SolveMode
 from solver import NetworkSpec, SizeLimits
 from solver.result import CRITERIA
 

@@ -24,9 +24,12 @@ from sqlalchemy.exc import OperationalError
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
 from service.errors import (
+    AnalysisCapError,
     AnalysisInputError,
     AssortmentExistsError,
+    ClosingConflictError,
     ClosingCountsError,
+    ClosingInputError,
     ConcurrentUploadError,
     HistoryInputError,
     InputError,
@@ -39,6 +42,8 @@ from service.errors import (
     PolicyNotReadyError,
     PolicyNotSolvedError,
     StockProblemsError,
+    UnknownJobError,
+    UnknownLocationError,
     UnknownNetworkError,
 )
 from service.json_pointer import json_pointer
@@ -314,6 +319,11 @@ def _too_large(exc: Exception) -> dict[str, Any]:
     return {"states": exc.states, "pairs": exc.pairs}
 
 
+def _missing(exc: Exception) -> dict[str, Any]:
+    assert isinstance(exc, ClosingConflictError)
+    return {} if exc.missing is None else {"missing": exc.missing}
+
+
 def _nothing(exc: Exception) -> dict[str, Any]:
     return {}
 
@@ -337,6 +347,11 @@ PROBLEM_OF: dict[type[Exception], tuple[int, str, Callable[[Exception], dict[str
     NothingToApplyError: (409, "conflict", _nothing),
     ConcurrentUploadError: (409, "conflict", _nothing),
     HistoryInputError: (422, "invalid-input", _input_errors),
+    ClosingInputError: (422, "invalid-input", _input_errors),
+    UnknownLocationError: (404, "not-found", _nothing),
+    ClosingConflictError: (409, "conflict", _missing),
+    UnknownJobError: (404, "not-found", _nothing),
+    AnalysisCapError: (429, "rate-limited", _nothing),
     ItemUploadError: (422, "invalid-input", _input_errors),
     ClosingCountsError: (422, "invalid-input", _input_errors),
     AssortmentExistsError: (409, "conflict", _nothing),
@@ -442,6 +457,8 @@ def install_problem_handlers(app: FastAPI) -> None:
         headers = {"Retry-After": str(RETRY_AFTER_SECONDS)} if status == 503 else None
         if isinstance(exc, ApiProblem) and exc.headers:
             headers = exc.headers
+        if isinstance(exc, AnalysisCapError):
+            headers = {"Retry-After": exc.retry_after}
         return _respond(request, status, slug, title, detail, headers, **extensions)
 
     for domain_error in DOMAIN_ERRORS:

@@ -31,7 +31,7 @@ from service.db.monitoring import (
 from service.db.reporting import CriterionSolve
 from service.errors import PolicyNotReadyError, UnknownNetworkChoice
 from service.pictures import caption, choose_plane, net_inflow_grid, render_moves
-from service.policies import NetworkRef, PolicyCache, ServedPolicy, business_date_now, load_policy
+from service.serving import NetworkRef, PolicyCache, ServedPolicy, business_date_now, load_policy
 from service.vocabulary import JobKind, JobState, SolveStatus
 from solver import CRITERIA, NetworkSpec
 
@@ -215,7 +215,7 @@ def _closing(
     session: Session, networks: Sequence[tuple[int, str, time | None]]
 ) -> dict[int, Closing]:
     """Tonight's counts of each (network id, current specification JSON, closing cut-off): one
-    query. Tonight is the night of the current business date (service.policies)."""
+    query. Tonight is the night of the current business date (service.serving)."""
     tonight: dict[int, tuple[date, list[str]]] = {}
     for network_id, spec_json, cutoff in networks:
         spec = json.loads(spec_json)

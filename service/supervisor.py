@@ -33,7 +33,7 @@ from types import FrameType
 from typing import Any
 
 from service.api.health import RUN_HEADER
-from service.schemas import DEMO_NETWORK, DEMO_STOCK
+from service.demo import DEMO_NETWORK, DEMO_STOCK
 from service.vocabulary import SolveStatus
 
 __all__ = ["port_problem", "ready_answer", "supervise"]

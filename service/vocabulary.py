@@ -5,13 +5,16 @@ The criterion is `solver.CRITERIA` (type `solver.Criterion`) and a weekday's nam
 
 * `JobKind`: what a job of the queue does;
 * `JobState`: where a job stands;
+* `SolveMode`: how a network asks to be solved (exact, priced, or auto: by its size), and
+  `SolveMethod`: how a version is solved (its network's mode resolved, service.modes);
 * `SolveStatus`: where the policy of a network's current version stands for one criterion
   (`service.db.reporting.solve_states`): ready, or the state of its newest solve job, or
   not_requested.
 
 The HTTP models need a `Literal` of the same values so that the OpenAPI document lists them
-inline (an enum would become a component of its own): `JobStateName` and `SolveStatusName`,
-which `tests/service/test_vocabulary.py` holds equal to the enums.
+inline (an enum would become a component of its own): `JobStateName`, `SolveStatusName`,
+`SolveModeName` and `SolveMethodName`, which `tests/service/test_vocabulary.py` holds equal to
+the enums.
 """
 
 from __future__ import annotations
@@ -19,7 +22,17 @@ from __future__ import annotations
 from enum import StrEnum
 from typing import Literal
 
-__all__ = ["JobKind", "JobState", "JobStateName", "SolveStatus", "SolveStatusName"]
+__all__ = [
+    "JobKind",
+    "JobState",
+    "JobStateName",
+    "SolveMethod",
+    "SolveMethodName",
+    "SolveMode",
+    "SolveModeName",
+    "SolveStatus",
+    "SolveStatusName",
+]
 
 
 class JobKind(StrEnum):
@@ -35,6 +48,21 @@ class JobState(StrEnum):
     FAILED = "failed"
 
 
+class SolveMode(StrEnum):
+    """What a network asks for."""
+
+    EXACT = "exact"
+    PRICED = "priced"
+    AUTO = "auto"
+
+
+class SolveMethod(StrEnum):
+    """What a version is solved by (its network's mode, resolved for its size)."""
+
+    EXACT = "exact"
+    PRICED = "priced"
+
+
 class SolveStatus(StrEnum):
     """Where one criterion of a network's current version stands."""
 
@@ -47,3 +75,5 @@ class SolveStatus(StrEnum):
 
 JobStateName = Literal["queued", "running", "done", "failed"]
 SolveStatusName = Literal["ready", "queued", "running", "failed", "not_requested"]
+SolveModeName = Literal["exact", "priced", "auto"]
+SolveMethodName = Literal["exact", "priced"]

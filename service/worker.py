@@ -38,6 +38,7 @@ from pydantic import ValidationError
 from sqlalchemy.orm import Session, sessionmaker
 
 from service import analysis
+from service.analysis_requests import SimulationRequest, WhatIfRequest
 from service.codec import StoredPolicy, decode_policy, encode_policy
 from service.db.base import utcnow
 from service.db.jobs import (
@@ -52,11 +53,10 @@ from service.db.jobs import (
     store_policy,
 )
 from service.db.policies import policy_for
-from service.db.tables import NetworkVersion, SolveMethod
+from service.db.tables import NetworkVersion
 from service.errors import CorruptPolicyError
-from service.schemas import SimulationRequest, WhatIfRequest
 from service.settings import Settings
-from service.vocabulary import JobKind
+from service.vocabulary import JobKind, SolveMethod
 from solver import Criterion, NetworkSpec, SolverError, solve_network
 from solver.priced import solve_priced
 from solver.priced_result import PricedProgress

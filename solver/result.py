@@ -61,6 +61,23 @@ def check_stock(
     return np.array([int(u) for u in stock], dtype=np.int64)
 
 
+def stock_problems(
+    location_ids: Sequence[str], capacities: Sequence[int], stock: Mapping[str, int]
+) -> list[tuple[str, str]]:
+    """What is wrong with closing stock given by location id, as (location, what) pairs:
+    locations missing (in network order), unknown ones (in the order given), then counts
+    outside 0..capacity (in network order). Empty when the stock fits the network."""
+    problems = [(location, "missing") for location in location_ids if location not in stock]
+    problems += [
+        (location, "unknown location") for location in stock if location not in location_ids
+    ]
+    for location, capacity in zip(location_ids, capacities, strict=True):
+        units = stock.get(location)
+        if units is not None and not 0 <= units <= capacity:
+            problems.append((location, f"{units} units is outside 0..{capacity}"))
+    return problems
+
+
 def phase_of_weekday(weekday: int, phases: int) -> int:
     """The phase of a closing count whose business date has this weekday (0 = Monday .. 6 =
     Sunday, as datetime.date.weekday()): the weekday itself for a weekly policy (7 phases), 0

@@ -16,34 +16,20 @@ from fastapi.encoders import jsonable_encoder
 from fastapi.responses import JSONResponse
 from sqlalchemy.orm import Session
 
-from service.analysis import apply_overrides, check_simulation, new_seed, run_what_if
+from service import jobs
+from service.analysis_requests import SimulationRequest, WhatIfRequest
 from service.api.deps import JobId, NetworkId, Reader, SessionDep, SettingsDep, get_network
-from service.db.jobs import analysis_job, enqueue_analysis, live_analysis_jobs
-from service.db.networks import latest_version
-from service.db.tables import Network, NetworkVersion, SolveJob
-from service.modes import resolve_method
-from service.problems import NotFound, RateLimited
-from service.schemas import (
+from service.api.schemas.analysis import (
     SimulationJobOut,
     SimulationReportOut,
-    SimulationRequest,
     WhatIfJobOut,
     WhatIfOut,
-    WhatIfRequest,
     WhatIfResultOut,
 )
-from service.settings import Settings
+from service.db.tables import NetworkVersion, SolveJob
 from service.vocabulary import JobKind
-from solver import NetworkSpec
-from solver.build import check_size
 
 router = APIRouter(prefix="/v1/networks/{network_id}", tags=["analysis"])
-
-
-def _current(session: Session, network: Network) -> tuple[NetworkVersion, NetworkSpec]:
-    version = latest_version(session, network.id)
-    assert version is not None, "a network always has a version"
-    return version, NetworkSpec.model_validate_json(version.spec_json)
 
 
 def _job_fields(network_id: int, version: NetworkVersion, job: SolveJob) -> dict[str, Any]:
@@ -62,30 +48,11 @@ def _job_fields(network_id: int, version: NetworkVersion, job: SolveJob) -> dict
     }
 
 
-# A simulation or a queued comparison takes seconds to minutes: a client refused for the cap
-# should not come back at once.
-_ANALYSIS_RETRY_SECONDS = "10"
-
-
-def _check_analysis_cap(session: Session, tenant_id: int, settings: Settings) -> None:
-    live = live_analysis_jobs(session, tenant_id)
-    if live >= settings.analysis_max_live_jobs:
-        raise RateLimited(
-            f"{live} simulations or what-if comparisons of this tenant are queued or running "
-            f"(at most {settings.analysis_max_live_jobs}); start another when one has finished",
-            retry_after=_ANALYSIS_RETRY_SECONDS,
-        )
-
-
 def _find(
     session: Session, tenant_id: int, network_id: int, kind: JobKind, job_id: int
 ) -> tuple[SolveJob, NetworkVersion]:
     network = get_network(session, tenant_id, network_id, archived_ok=True)
-    found = analysis_job(session, tenant_id, network.id, kind, job_id)
-    if found is None:
-        what = "simulation" if kind is JobKind.SIMULATE else "what-if comparison"
-        raise NotFound(f"no {what} {job_id} of network {network_id}")
-    return found
+    return jobs.find_analysis(session, tenant_id, network, kind, job_id)
 
 
 # -- simulations -------------------------------------------------------------------------------
@@ -115,24 +82,7 @@ def start_simulation(
     seed gives the same report. 422 when the start stock does not fit the network or the
     simulation is longer than the limit allows."""
     network = get_network(session, caller.tenant_id, network_id)
-    version, spec = _current(session, network)
-    check_simulation(
-        spec,
-        body,
-        limits=settings.size_limits,
-        max_replication_days=settings.simulation_max_replication_days,
-        method=version.method,
-    )
-    _check_analysis_cap(session, caller.tenant_id, settings)
-    params = body.model_copy(update={"seed": new_seed() if body.seed is None else body.seed})
-    job = enqueue_analysis(
-        session,
-        caller.tenant_id,
-        version,
-        JobKind.SIMULATE,
-        body.criterion,
-        params.model_dump_json(by_alias=True),
-    )
+    version, job = jobs.start_simulation(session, network, body, settings)
     response.headers["Location"] = f"/v1/networks/{network.id}/simulations/{job.id}"
     return _simulation_out(network.id, version, job)
 
@@ -180,29 +130,11 @@ def what_if(
     locations and lanes, every problem of the changed network, and the sizes of one over the
     solver's limits."""
     network = get_network(session, caller.tenant_id, network_id)
-    version, spec = _current(session, network)
-    changed = apply_overrides(spec, body.overrides)
-    limits = settings.size_limits
-    methods = {resolve_method(candidate, network.mode, limits) for candidate in (spec, changed)}
-    # Priced networks are large, or asked for: their comparisons always go to a worker.
-    if methods == {"exact"} and (
-        max(check_size(candidate, limits)[0] for candidate in (spec, changed))
-        <= settings.what_if_sync_max_states
-    ):
-        result = run_what_if(
-            spec, body.overrides, criterion=body.criterion, limits=limits, mode=network.mode
-        )
-        return WhatIfOut(network_id=network.id, version=version.number, **result)
-    _check_analysis_cap(session, caller.tenant_id, settings)
-    # exclude_unset: an absent max_units_per_night keeps the limit, a null one lifts it.
-    job = enqueue_analysis(
-        session,
-        caller.tenant_id,
-        version,
-        JobKind.WHAT_IF,
-        body.criterion,
-        body.model_dump_json(by_alias=True, exclude_unset=True),
-    )
+    answer = jobs.start_what_if(session, network, body, settings)
+    version, job = answer.version, answer.job
+    if job is None:
+        assert answer.result is not None
+        return WhatIfOut(network_id=network.id, version=version.number, **answer.result)
     return JSONResponse(
         jsonable_encoder(_what_if_out(network.id, version, job)),
         status_code=status.HTTP_202_ACCEPTED,

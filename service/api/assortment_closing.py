@@ -14,7 +14,9 @@ from fastapi.concurrency import run_in_threadpool
 from sqlalchemy.exc import IntegrityError
 
 from service import assortment_closing as closing
-from service.api.assortment_schemas import (
+from service.api.assortments import AssortmentId, find_or_404, read_lines
+from service.api.deps import ItemCacheDep, Reader, SessionDep, SettingsDep, Writer
+from service.api.schemas.assortments import (
     ClosingReportOut,
     ClosingStateOut,
     ItemRecommendationsOut,
@@ -22,8 +24,6 @@ from service.api.assortment_schemas import (
     LocationReportOut,
     PickListOut,
 )
-from service.api.assortments import AssortmentId, find_or_404, read_lines
-from service.api.deps import ItemCacheDep, Reader, SessionDep, SettingsDep, Writer
 from service.assortments import Assortment, layout_of
 from service.errors import ClosingCountsError
 from service.problems import PROBLEM_RESPONSES, Conflict, InvalidInput, NotFound, UnsupportedMedia

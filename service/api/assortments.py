@@ -12,7 +12,8 @@ from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
 from service import assortments
-from service.api.assortment_schemas import (
+from service.api.deps import Reader, SessionDep, SettingsDep, Writer
+from service.api.schemas.assortments import (
     AssortmentCreate,
     AssortmentOut,
     ItemOut,
@@ -21,15 +22,7 @@ from service.api.assortment_schemas import (
     ItemStates,
     LayoutUpdate,
 )
-from service.api.deps import (
-    IfMatch,
-    Reader,
-    SessionDep,
-    SettingsDep,
-    Writer,
-    check_if_match,
-    etag,
-)
+from service.api.versions import IfMatch, check_if_match, etag
 from service.assortment_spec import Layout
 from service.assortments import Assortment
 from service.errors import ItemUploadError

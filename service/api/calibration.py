@@ -16,31 +16,8 @@ from sqlalchemy.orm import Session
 from starlette.concurrency import run_in_threadpool
 
 from service import history
-from service.api.deps import (
-    IfMatch,
-    NetworkId,
-    Reader,
-    SessionDep,
-    SettingsDep,
-    Writer,
-    check_if_match,
-    etag,
-    get_network,
-)
-from service.api.views import network_out
-from service.calibration import (
-    AutoApplied,
-    CalibrationOptions,
-    Proposal,
-    apply_estimates,
-    options_for,
-    propose,
-    save_options,
-)
-from service.errors import HistoryInputError
-from service.history import SalesRow
-from service.problems import PROBLEM_RESPONSES, InvalidInput, UnsupportedMedia
-from service.schemas import (
+from service.api.deps import NetworkId, Reader, SessionDep, SettingsDep, Writer, get_network
+from service.api.schemas.calibration import (
     MAX_HISTORY_ROWS,
     AutoApplyOut,
     CalibrationOut,
@@ -51,15 +28,28 @@ from service.schemas import (
     HistoryRowIn,
     HistoryStored,
     HistoryUpload,
-    JobOut,
     LocationCalibrationOut,
     LocationHistoryOut,
-    NetworkCreated,
-    NetworkOut,
     WeekdayTestOut,
 )
+from service.api.schemas.jobs import JobOut
+from service.api.schemas.networks import NetworkCreated, NetworkOut
+from service.api.versions import IfMatch, check_if_match, etag
+from service.api.views import network_out
+from service.errors import HistoryInputError
+from service.estimates import (
+    AutoApplied,
+    CalibrationOptions,
+    Proposal,
+    apply_estimates,
+    options_for,
+    propose,
+    save_options,
+)
+from service.history import SalesRow
+from service.problems import PROBLEM_RESPONSES, InvalidInput, UnsupportedMedia
 from service.settings import Settings
-from solver.calibration import CountEstimate, WeekdayEffect
+from solver.estimation import CountEstimate, WeekdayEffect
 from solver.spec import WEEKDAYS
 
 router = APIRouter(prefix="/v1/networks/{network_id}", tags=["calibration"])

@@ -1,102 +1,29 @@
-"""Closing reports: each location reports its own closing stock; once all have, every location
-reads the same instructions for the night, computed once from the full stock and kept.
+"""Closing reports and the night's instructions over HTTP (the use cases: service.closing).
 
-Corrections. A count sent after the instructions were issued is refused unless it says
-`"correction": true`; then the instructions are computed again from the corrected counts as the
-next revision, and the correction (key prefix, time, old and new count, revision) is kept in
-`closing_corrections`, logged on the audit logger and listed in every location's instructions.
-Each location's instructions say in which revision its own moves last changed, and the ETag
-names the revision, so a location can tell that what it acted on has changed."""
+Each location reports its own closing stock; once all have, every location reads the same
+instructions for the night, computed once from the full stock and kept. A count sent after the
+instructions were issued is refused unless it says `"correction": true`; the ETag of the
+instructions names their revision, so a location can tell that what it acted on has changed."""
 
 from __future__ import annotations
 
-import json
-import logging
-from datetime import date, timedelta
-from typing import Annotated, Any
+from datetime import date
+from typing import Annotated
 
 from fastapi import APIRouter, Header, Query, Response, status
-from sqlalchemy.orm import Session
 
+from service import closing
 from service.api.deps import CacheDep, NetworkId, Reader, SessionDep, Writer, get_network
-from service.api.views import relays_of, transfers_of
-from service.auth import Identity
-from service.calibration import law_moments
-from service.db.base import utcnow
-from service.db.closing import (
-    add_correction,
-    add_instruction,
-    closing_counts,
-    corrections_of,
-    instruction_for,
-    set_closing_count,
-)
-from service.db.networks import current_spec, latest_version
-from service.db.tables import ClosingCorrection, Instruction, Network, NetworkVersion
-from service.errors import PolicyNotReadyError, StockProblemsError
-from service.policies import ServedPolicy, business_date_of, recommend
-from service.problems import POLICY_NOT_READY, PROBLEM_RESPONSES, Conflict, InvalidInput, NotFound
-from service.schemas import (
+from service.api.schemas.closing import (
     ClosingStockIn,
     ClosingStockOut,
     CorrectionOut,
     InstructionsOut,
     Movement,
 )
-from solver import NetworkSpec, Recommendation
+from service.problems import POLICY_NOT_READY, PROBLEM_RESPONSES
 
 router = APIRouter(prefix="/v1/networks/{network_id}/locations/{location}", tags=["closing"])
-audit = logging.getLogger("stockrelay.audit")
-
-# Business dates are local to the stores; allow a day either side of the server's UTC date.
-_DATE_SLACK = timedelta(days=1)
-
-
-def _current_number(session: Session, network: Network) -> int:
-    version = latest_version(session, network.id)
-    assert version is not None
-    return version.number
-
-
-def _check_location(spec: NetworkSpec, network_id: int, location: str) -> int:
-    """The location's capacity; 404 when the network has no such location."""
-    for candidate in spec.locations:
-        if candidate.id == location:
-            return candidate.capacity
-    raise NotFound(f"network {network_id} has no location {location!r}")
-
-
-def _check_date(network: Network, business_date: date, pointer: str) -> None:
-    earliest = network.created_at.date() - _DATE_SLACK
-    latest = utcnow().date() + _DATE_SLACK
-    if not earliest <= business_date <= latest:
-        raise InvalidInput(
-            f"business date {business_date} is outside {earliest}..{latest} (from the day before "
-            "the network was created to tomorrow)",
-            [(pointer, f"must lie between {earliest} and {latest}")],
-        )
-
-
-def _check_units(network_id: int, location: str, units: int, capacity: int) -> None:
-    if units < 0:
-        raise InvalidInput(
-            f"{units} units at {location!r} is below 0", [("/units", "must be 0 or more")]
-        )
-    if units > capacity:
-        # The network says the location holds at most `capacity`: the count cannot be
-        # answered until the network is changed.
-        raise InvalidInput(
-            f"{units} units at {location!r} is above its capacity of {capacity}. If it really "
-            f"holds {units}, change the network: PUT /v1/networks/{network_id} a new version "
-            f"with a capacity of at least {units} for {location!r} (If-Match: the current "
-            "version), let it solve, then send the count again",
-            [("/units", f"must lie between 0 and {capacity}")],
-        )
-
-
-def _missing(spec: NetworkSpec, counts: dict[str, int]) -> list[str]:
-    """Locations of the current version that have not reported, in network order."""
-    return [location.id for location in spec.locations if location.id not in counts]
 
 
 @router.put("/closing-stock", response_model=ClosingStockOut)
@@ -112,101 +39,25 @@ def report_closing_stock(
     the night's instructions are issued, only a correction (`"correction": true`) changes a
     count: the instructions are then issued again as the next revision."""
     network = get_network(session, caller.tenant_id, network_id)
-    spec = current_spec(session, network.id)
-    capacity = _check_location(spec, network_id, location)
-    business_date = body.business_date or business_date_of(session, network.id)
-    _check_date(network, business_date, "/business_date")
-    _check_units(network_id, location, body.units, capacity)
-    issued = instruction_for(session, network_id, business_date, for_update=body.correction)
-    if issued is not None and not body.correction:
-        raise Conflict(
-            f"instructions for {business_date} were issued at {issued.computed_at:%H:%M:%S} "
-            "UTC from the counts then reported; they are kept so every location acts on the "
-            'same plan. To correct a count, send it again with "correction": true: the '
-            f"instructions are issued again as revision {issued.revision + 1}, and every "
-            "location sees the change"
-        )
-    row, old_units = set_closing_count(
-        session, network_id, location, business_date, body.units, utcnow()
+    reported = closing.report_count(
+        session,
+        cache,
+        network,
+        location,
+        body.units,
+        business_date=body.business_date,
+        correction=body.correction,
+        caller=caller,
     )
-    counts = closing_counts(session, network_id, business_date)
-    if issued is not None and old_units != body.units:
-        _correct(session, cache, network, issued, counts, location, old_units, body.units, caller)
     return ClosingStockOut(
         network_id=network_id,
         location=location,
-        business_date=business_date,
-        units=body.units,
-        reported_at=row.reported_at,
-        missing=_missing(spec, counts),
-        revision=None if issued is None else issued.revision,
+        business_date=reported.business_date,
+        units=reported.units,
+        reported_at=reported.reported_at,
+        missing=reported.missing,
+        revision=reported.revision,
     )
-
-
-def _correct(
-    session: Session,
-    cache: CacheDep,
-    network: Network,
-    issued: Instruction,
-    counts: dict[str, int],
-    location: str,
-    old_units: int,
-    new_units: int,
-    caller: Identity,
-) -> None:
-    """Issue the night's instructions again from the corrected counts, as the next revision,
-    and keep the correction."""
-    previous = json.loads(issued.plan)
-    served, plan = _plan(session, cache, network, issued.business_date, counts)
-    revision = issued.revision + 1
-    changed_at = dict(previous.get("moves_changed_in", {}))
-    for each in counts:
-        if _moves_of(previous, each) != _moves_of(plan, each):
-            changed_at[each] = revision
-    plan["moves_changed_in"] = changed_at
-    issued.plan = json.dumps(plan, sort_keys=True)
-    issued.version_id = served.version_id
-    issued.criterion = served.criterion
-    issued.revision = revision
-    issued.computed_at = utcnow()
-    correction = ClosingCorrection(
-        network_id=network.id,
-        location_id=location,
-        business_date=issued.business_date,
-        old_units=old_units,
-        new_units=new_units,
-        revision=revision,
-        key_prefix=caller.key_prefix,
-        corrected_at=issued.computed_at,
-    )
-    add_correction(session, correction)
-    audit.info(
-        json.dumps(
-            {
-                "event": "closing_correction",
-                "tenant": caller.tenant,
-                "key_prefix": caller.key_prefix,
-                "network_id": network.id,
-                "location": location,
-                "business_date": issued.business_date.isoformat(),
-                "old_units": old_units,
-                "new_units": new_units,
-                "revision": revision,
-            }
-        )
-    )
-
-
-def _moves_of(plan: dict[str, Any], location: str) -> list[tuple[str, str, int]]:
-    return sorted(
-        (t["from"], t["to"], t["units"])
-        for t in plan["transfers"]
-        if location in (t["from"], t["to"])
-    )
-
-
-def _etag(instruction: Instruction) -> str:
-    return f'"{instruction.business_date.isoformat()}.r{instruction.revision}"'
 
 
 @router.get(
@@ -240,140 +91,20 @@ def location_instructions(
     """What this location sends and receives tonight; 409 until every location has reported.
     The ETag names the revision: it changes when a corrected count changes the plan."""
     network = get_network(session, caller.tenant_id, network_id)
-    spec = current_spec(session, network.id)
-    _check_location(spec, network_id, location)
-    if business_date is None:
-        business_date = business_date_of(session, network.id)
-    _check_date(network, business_date, "query:/business_date")
-    issued = instruction_for(session, network_id, business_date)
-    if issued is None:
-        counts = closing_counts(session, network_id, business_date)
-        missing = _missing(spec, counts)
-        if missing:
-            raise Conflict(
-                f"waiting for the closing stock of {', '.join(missing)} for {business_date}",
-                missing=missing,
-            )
-        issued = _issue(session, cache, network, business_date, counts)
-    tag = _etag(issued)
+    found = closing.instructions_for(session, cache, network, location, business_date)
+    tag = found.etag
     if if_none_match is not None and tag in {t.strip() for t in if_none_match.split(",")}:
         return Response(status_code=status.HTTP_304_NOT_MODIFIED, headers={"ETag": tag})
     response.headers["ETag"] = tag
-    return _for_location(session, issued, network_id, location)
-
-
-def _plan(
-    session: Session,
-    cache: CacheDep,
-    network: Network,
-    business_date: date,
-    counts: dict[str, int],
-) -> tuple[ServedPolicy, dict[str, Any]]:
-    """The night's moves from the full closing stock, as stored in an instruction's plan."""
-    try:
-        served, recommendation, _ = recommend(
-            session, cache, network, counts, None, business_date=business_date
-        )
-    except StockProblemsError as exc:
-        # The counts fit the current version (they were checked on arrival); only an older
-        # policy, served while the current one is solved, can refuse them: wait for it.
-        raise PolicyNotReadyError(
-            f"the closing stock fits version {_current_number(session, network)} of network "
-            f"{network.id}, whose policy is not ready yet ({exc})",
-            job_state=None,
-        ) from exc
-    transfers = transfers_of(served.result, recommendation.flows)
-    plan = {
-        "stock": counts,
-        "transfers": [t.model_dump(by_alias=True) for t in transfers],
-        "relays": [relay.model_dump() for relay in relays_of(served.result, transfers)],
-        "notes": _notes(session, network, served, recommendation, business_date),
-    }
-    return served, plan
-
-
-def _notes(
-    session: Session,
-    network: Network,
-    served: ServedPolicy,
-    recommendation: Recommendation,
-    business_date: date,
-) -> list[str]:
-    """Cautions for the people who act on the plan: the moves follow the model and its
-    parameters, so say when those deserve a look."""
-    notes = []
-    if served.stale:
-        notes.append(
-            f"planned with version {served.version_number}'s policy while version "
-            f"{_current_number(session, network)} is being solved: the newer network's changes "
-            "are not in it"
-        )
-    if served.calibrated_at is None:
-        notes.append(
-            f"version {served.version_number}'s demand and replenishment were entered as they "
-            "are, not estimated from sales history: check them before relying on the moves"
-        )
-    version = session.get_one(NetworkVersion, served.version_id)
-    spec = NetworkSpec.model_validate_json(version.spec_json)
-    tomorrow = (business_date + timedelta(days=1)).weekday()
-    result = served.result
-    for index, location in enumerate(spec.locations):
-        sent = sum(
-            units
-            for (a, _), units in zip(result.lanes, recommendation.flows, strict=True)
-            if a == index
-        )
-        if sent == 0:
-            continue
-        expected = law_moments(location.demand_on(tomorrow))[0]
-        keeps = recommendation.post_move_stock[index]
-        if keeps < expected:
-            notes.append(
-                f"{location.id} sends {sent} and keeps {keeps}, below its expected demand of "
-                f"{expected:.2f} tomorrow: worth a look if its demand is uncertain"
-            )
-    return notes
-
-
-def _issue(
-    session: Session,
-    cache: CacheDep,
-    network: Network,
-    business_date: date,
-    counts: dict[str, int],
-) -> Instruction:
-    served, plan = _plan(session, cache, network, business_date, counts)
-    plan["moves_changed_in"] = dict.fromkeys(counts, 1)
-    instruction = Instruction(
-        network_id=network.id,
-        business_date=business_date,
-        version_id=served.version_id,
-        criterion=served.criterion,
-        plan=json.dumps(plan, sort_keys=True),
-        computed_at=utcnow(),
-        revision=1,
-    )
-    return add_instruction(session, instruction)
-
-
-def _for_location(
-    session: Session, instruction: Instruction, network_id: int, location: str
-) -> InstructionsOut:
-    plan = json.loads(instruction.plan)
-    version = session.get_one(NetworkVersion, instruction.version_id)
-    relay = next((r for r in plan.get("relays", []) if r["location"] == location), None)
-    received = sum(t["units"] for t in plan["transfers"] if t["to"] == location)
-    sent = sum(t["units"] for t in plan["transfers"] if t["from"] == location)
-    corrections = corrections_of(session, network_id, instruction.business_date)
     return InstructionsOut(
-        network_id=network_id,
-        location=location,
-        business_date=instruction.business_date,
-        version=version.number,
-        criterion=instruction.criterion,
-        computed_at=instruction.computed_at,
-        revision=instruction.revision,
-        moves_changed_in_revision=plan.get("moves_changed_in", {}).get(location, 1),
+        network_id=found.network_id,
+        location=found.location,
+        business_date=found.business_date,
+        version=found.version,
+        criterion=found.criterion,
+        computed_at=found.computed_at,
+        revision=found.revision,
+        moves_changed_in_revision=found.moves_changed_in_revision,
         corrections=[
             CorrectionOut(
                 location=c.location_id,
@@ -383,21 +114,13 @@ def _for_location(
                 key_prefix=c.key_prefix,
                 corrected_at=c.corrected_at,
             )
-            for c in corrections
+            for c in found.corrections
         ],
-        notes=plan.get("notes", []),
-        send=[
-            Movement(location=t["to"], units=t["units"])
-            for t in plan["transfers"]
-            if t["from"] == location
-        ],
-        receive=[
-            Movement(location=t["from"], units=t["units"])
-            for t in plan["transfers"]
-            if t["to"] == location
-        ],
-        net_change=received - sent,
-        relay=received > 0 and sent > 0,
-        relay_explanation=None if relay is None else relay["explanation"],
-        stock=plan["stock"],
+        notes=found.notes,
+        send=[Movement(location=other, units=units) for other, units in found.send],
+        receive=[Movement(location=other, units=units) for other, units in found.receive],
+        net_change=found.net_change,
+        relay=found.relay,
+        relay_explanation=found.relay_explanation,
+        stock=found.stock,
     )

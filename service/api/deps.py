@@ -9,7 +9,7 @@ import time
 from collections.abc import Iterator
 from typing import Annotated
 
-from fastapi import Depends, Header, Path, Request
+from fastapi import Depends, Path, Request
 from sqlalchemy.orm import Session, sessionmaker
 from starlette.concurrency import run_in_threadpool
 
@@ -17,22 +17,19 @@ from service import auth
 from service.auth import Identity, Scope
 from service.db.tables import Network
 from service.middleware import repeat_allowed
-from service.policies import PolicyCache
 from service.problems import (
     Forbidden,
     NotFound,
-    PreconditionFailed,
-    PreconditionRequired,
     RateLimited,
     Unauthorized,
 )
 from service.ratelimit import RateLimiter
+from service.serving import PolicyCache
 from service.settings import Settings
 
 __all__ = [
     "Admin",
     "CacheDep",
-    "IfMatch",
     "ItemCacheDep",
     "JobId",
     "NetworkId",
@@ -41,8 +38,6 @@ __all__ = [
     "SessionDep",
     "SettingsDep",
     "Writer",
-    "check_if_match",
-    "etag",
     "get_network",
     "sessions_of",
 ]
@@ -186,27 +181,3 @@ def get_network(
             "serves and accepts nothing more"
         )
     return network
-
-
-IfMatch = Annotated[str | None, Header(description="The current version number, as given in ETag.")]
-
-
-def etag(version: int) -> str:
-    return f'"{version}"'
-
-
-def check_if_match(
-    network_id: int, current: int, if_match: str | None, *, what: str = "network"
-) -> None:
-    """428 without If-Match, 412 when it does not name the current version (or *); `what` is
-    the kind of thing being changed, for the messages."""
-    if if_match is None:
-        raise PreconditionRequired(
-            f"send If-Match: {etag(current)} (the current version) to change {what} {network_id}"
-        )
-    wanted = {tag.strip().removeprefix("W/").strip('"') for tag in if_match.split(",")}
-    if str(current) not in wanted and "*" not in wanted:
-        raise PreconditionFailed(
-            f"{what} {network_id} is at version {current}, not {if_match}",
-            current_version=current,
-        )

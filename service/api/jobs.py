@@ -7,28 +7,17 @@ from typing import Annotated
 
 from fastapi import APIRouter, Query
 
+from service import jobs
 from service.api.deps import JobId, Reader, SessionDep
-from service.db import jobs as db_jobs
-from service.db.tables import NetworkVersion
-from service.problems import NotFound
-from service.schemas import JobOut
-from service.vocabulary import JobKind, JobStateName
+from service.api.schemas.jobs import JobOut
+from service.vocabulary import JobStateName
 
 router = APIRouter(prefix="/v1/jobs", tags=["jobs"])
 
 
 @router.get("/{job_id}", response_model=JobOut)
 def get_job(job_id: JobId, session: SessionDep, caller: Reader) -> JobOut:
-    job = db_jobs.get_job(session, job_id)
-    if job is None or job.tenant_id != caller.tenant_id:
-        raise NotFound(f"no job {job_id}")
-    if job.kind != JobKind.SOLVE:
-        network_id = session.get_one(NetworkVersion, job.version_id).network_id
-        path = "simulations" if job.kind == JobKind.SIMULATE else "what-if"
-        raise NotFound(
-            f"job {job_id} is not a solve; read it at /v1/networks/{network_id}/{path}/{job_id}"
-        )
-    return JobOut.model_validate(job)
+    return JobOut.model_validate(jobs.solve_job(session, caller.tenant_id, job_id))
 
 
 @router.get("", response_model=list[JobOut])
@@ -41,5 +30,5 @@ def list_jobs(
     """Newest first."""
     return [
         JobOut.model_validate(job)
-        for job in db_jobs.list_jobs(session, state, limit, tenant_id=caller.tenant_id)
+        for job in jobs.solve_jobs(session, caller.tenant_id, state, limit)
     ]

@@ -5,20 +5,17 @@ from __future__ import annotations
 from fastapi import APIRouter, Response, status
 
 from service import networks
-from service.api.deps import (
-    IfMatch,
-    NetworkId,
-    Reader,
-    SessionDep,
-    SettingsDep,
-    Writer,
-    check_if_match,
-    etag,
-    get_network,
+from service.api.deps import NetworkId, Reader, SessionDep, SettingsDep, Writer, get_network
+from service.api.schemas.networks import (
+    NetworkCreate,
+    NetworkCreated,
+    NetworkOut,
+    NetworkUpdate,
+    VersionOut,
 )
+from service.api.versions import IfMatch, check_if_match, etag
 from service.api.views import network_out, network_solves_out
 from service.problems import Conflict
-from service.schemas import NetworkCreate, NetworkCreated, NetworkOut, NetworkUpdate, VersionOut
 from solver import NetworkSpec
 
 router = APIRouter(prefix="/v1/networks", tags=["networks"])

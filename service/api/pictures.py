@@ -13,6 +13,7 @@ from fastapi.responses import Response
 from sqlalchemy.orm import Session
 
 from service.api.deps import CacheDep, NetworkId, Reader, SessionDep, get_network
+from service.api.schemas.common import DEFAULT_CRITERION_RULE
 from service.codec import StoredPolicy
 from service.db.tables import Network
 from service.pictures import (
@@ -28,9 +29,8 @@ from service.pictures import (
     value_grid,
     value_label,
 )
-from service.policies import PolicyCache, ServedPolicy, business_date_of, load_policy
 from service.problems import POLICY_NOT_READY
-from service.schemas import DEFAULT_CRITERION_RULE
+from service.serving import PolicyCache, ServedPolicy, business_date_of, load_policy
 from solver import Criterion
 from solver.priced_result import PricedPolicy
 from solver.spec import WEEKDAYS, Weekday

@@ -6,8 +6,8 @@ from typing import Annotated
 
 from fastapi import APIRouter, Path
 
+from service.api.schemas.problem_types import ProblemTypeOut
 from service.problems import PROBLEM_RESPONSES, PROBLEM_TYPES, TYPE_BASE, NotFound
-from service.schemas import ProblemTypeOut
 
 __all__ = ["router"]
 

@@ -18,21 +18,21 @@ from sqlalchemy.orm import Session
 from starlette.concurrency import run_in_threadpool
 
 from service.api.deps import CacheDep, NetworkId, Reader, sessions_of
-from service.api.views import recommendation_out
-from service.auth import Identity
-from service.json_pointer import json_pointer
-from service.metrics import observe_recommendation
-from service.policies import NetworkRef, PolicyCache, recommend
-from service.problems import POLICY_NOT_READY, problem_body, problem_for
-from service.schemas import (
+from service.api.schemas.problem_types import Problem
+from service.api.schemas.recommendations import (
     BatchItem,
     BatchOutcome,
     BatchRequest,
     BatchResponse,
-    Problem,
     RecommendationOut,
     RecommendationRequest,
 )
+from service.api.views import recommendation_out
+from service.auth import Identity
+from service.json_pointer import json_pointer
+from service.metrics import observe_recommendation
+from service.problems import POLICY_NOT_READY, problem_body, problem_for
+from service.serving import NetworkRef, PolicyCache, recommend
 
 router = APIRouter(tags=["recommendations"])
 log = logging.getLogger(__name__)

@@ -5,23 +5,20 @@ from __future__ import annotations
 from datetime import date, time
 from typing import Any
 
-import numpy as np
 from sqlalchemy.orm import Session
 
-from service.codec import StoredPolicy
-from service.db import reporting
-from service.db.tables import Network, SolveJob
-from service.policies import ServedPolicy
-from service.schemas import (
+from service.api.schemas.jobs import JobOut
+from service.api.schemas.networks import NetworkCreated, NetworkOut, SolveState
+from service.api.schemas.recommendations import (
     CertificateOut,
-    JobOut,
-    NetworkCreated,
-    NetworkOut,
     RecommendationOut,
     RelayOut,
-    SolveState,
     TransferOut,
 )
+from service.db import reporting
+from service.db.tables import Network, SolveJob
+from service.moves import Relay, Transfer, relays_of, transfers_of
+from service.serving import ServedPolicy
 from solver import Recommendation
 from solver.priced_result import PricedPolicy
 from solver.spec import WEEKDAYS
@@ -31,8 +28,8 @@ __all__ = [
     "network_out",
     "network_solves_out",
     "recommendation_out",
-    "relays_of",
-    "transfers_of",
+    "relays_out",
+    "transfers_out",
 ]
 
 
@@ -76,101 +73,30 @@ def network_solves_out(
     return NetworkCreated(**fields, jobs=[JobOut.model_validate(job) for job in jobs])
 
 
-def transfers_of(result: StoredPolicy, flows: tuple[int, ...]) -> list[TransferOut]:
-    ids = result.location_ids
+def transfers_out(transfers: list[Transfer]) -> list[TransferOut]:
     return [
         TransferOut(
-            from_=ids[a],
-            to=ids[b],
-            units=units,
-            unit_cost=float(result.lane_costs[lane]),
-            dispatch_cost=float(result.dispatch_costs[lane]),
+            from_=t.from_,
+            to=t.to,
+            units=t.units,
+            unit_cost=t.unit_cost,
+            dispatch_cost=t.dispatch_cost,
         )
-        for lane, ((a, b), units) in enumerate(zip(result.lanes, flows, strict=True))
-        if units > 0
+        for t in transfers
     ]
 
 
-def relays_of(result: StoredPolicy, transfers: list[TransferOut]) -> list[RelayOut]:
-    """Every location that receives and sends tonight, in network order, with the reason units
-    go through it rather than straight from each origin to each destination."""
-    # Most units a lane carries on any night: the largest flow of the exact policy's table, or
-    # the priced policy's lane limits.
-    if isinstance(result, PricedPolicy):
-        most = np.asarray(result.lane_limits).max(axis=0)
-    else:
-        most = result.flows.max(axis=0)
-    lanes = {
-        (result.location_ids[a], result.location_ids[b]): (
-            float(result.lane_costs[lane]),
-            int(most[lane]),
+def relays_out(relays: list[Relay]) -> list[RelayOut]:
+    return [
+        RelayOut(
+            location=r.location,
+            receives=r.receives,
+            sends=r.sends,
+            net_change=r.net_change,
+            explanation=r.explanation,
         )
-        for lane, (a, b) in enumerate(result.lanes)
-    }
-    moved = {(t.from_, t.to): t for t in transfers}
-    relays = []
-    for location in result.location_ids:
-        inbound = [t for t in transfers if t.to == location]
-        outbound = [t for t in transfers if t.from_ == location]
-        if not inbound or not outbound:
-            continue
-        receives = sum(t.units for t in inbound)
-        sends = sum(t.units for t in outbound)
-        reasons = []
-        for origin in inbound:
-            for onward in outbound:
-                reasons.append(
-                    _why_through(
-                        location,
-                        origin,
-                        onward,
-                        lanes.get((origin.from_, onward.to)),
-                        moved.get((origin.from_, onward.to)),
-                    )
-                )
-        relays.append(
-            RelayOut(
-                location=location,
-                receives=receives,
-                sends=sends,
-                net_change=receives - sends,
-                explanation=(
-                    f"{location} receives {receives} and sends {sends} tonight, net "
-                    f"{receives - sends:+d} unit{'s' if abs(receives - sends) != 1 else ''} on "
-                    f"its shelf: " + "; ".join(reasons) + "."
-                ),
-            )
-        )
-    return relays
-
-
-def _why_through(
-    location: str,
-    origin: TransferOut,
-    onward: TransferOut,
-    direct: tuple[float, int] | None,
-    direct_moved: TransferOut | None,
-) -> str:
-    """Why units from origin.from_ reach onward.to through `location` (one origin-destination
-    pair of a relay)."""
-    start, end = origin.from_, onward.to
-    if start == end:
-        return f"{start} sends to {location} and takes units back from it"
-    via = origin.unit_cost + onward.unit_cost
-    if direct is None:
-        return f"there is no lane from {start} to {end}, so units reach {end} through {location}"
-    cost, limit = direct
-    if direct_moved is not None and direct_moved.units >= limit:
-        return f"the direct lane {start} -> {end} is full tonight (at most {limit})"
-    if cost > via:
-        return (
-            f"the direct lane {start} -> {end} costs {cost:g} a unit, more than {via:g} "
-            f"through {location}"
-        )
-    return (
-        f"{location}'s own units are worth more at {end}, and {start}'s refill {location} "
-        "for tomorrow"
-    )
+        for r in relays
+    ]
 
 
 def recommendation_out(
@@ -200,9 +126,9 @@ def recommendation_out(
         solved_at=served.solved_at,
         parameters_calibrated_at=served.calibrated_at,
         stock=dict(zip(ids, recommendation.stock, strict=True)),
-        transfers=transfers,
+        transfers=transfers_out(transfers),
         stock_after_transfers=dict(zip(ids, recommendation.post_move_stock, strict=True)),
-        relays=relays_of(result, transfers),
+        relays=relays_out(relays_of(result, transfers)),
         transfer_cost=recommendation.transfer_cost,
         expected_value=recommendation.expected_value,
         value_without_transfers=recommendation.value_without_transfers,

@@ -11,7 +11,6 @@ one specification.
 from __future__ import annotations
 
 from datetime import date, datetime, time
-from enum import StrEnum
 
 from sqlalchemy import (
     Boolean,
@@ -31,7 +30,7 @@ from sqlalchemy import (
 from sqlalchemy.orm import Mapped, mapped_column, relationship
 
 from service.db.base import Base, utcnow
-from service.vocabulary import JobKind, JobState
+from service.vocabulary import JobKind, JobState, SolveMethod, SolveMode
 
 __all__ = [
     "ApiKey",
@@ -47,27 +46,10 @@ __all__ = [
     "Policy",
     "SalesDay",
     "SolveJob",
-    "SolveMethod",
-    "SolveMode",
     "Tenant",
 ]
 
 _HASH = String(64)
-
-
-class SolveMode(StrEnum):
-    """What a network asks for."""
-
-    EXACT = "exact"
-    PRICED = "priced"
-    AUTO = "auto"
-
-
-class SolveMethod(StrEnum):
-    """What a version is solved by (its network's mode, resolved for its size)."""
-
-    EXACT = "exact"
-    PRICED = "priced"
 
 
 class Tenant(Base):

@@ -29,7 +29,7 @@ from service.db.migrate import upgrade
 from service.db.networks import canonical_spec, create_network
 from service.db.session import make_engine, make_session_factory
 from service.db.tables import NetworkVersion, Policy, SolveJob
-from solver import Criterion, NetworkSpec, solve_network
+from solver import Criterion, NetworkSpec, PolicyResult, solve_network
 
 ROOT = Path(__file__).resolve().parents[2]
 DEMO = ROOT / "service" / "data" / "demo_network.json"
@@ -310,6 +310,7 @@ def test_four_workers_share_sixty_jobs_without_duplicates(
         }
     for policy in policies:
         stored = decode_policy(policy.arrays, policy.layout, policy.checksum, policy.meta)
+        assert isinstance(stored, PolicyResult)
         criterion = cast(Criterion, policy.criterion)
         expected = solve_network(spec_of[policy.spec_hash], criterion=criterion)
         assert stored.criterion == policy.criterion

@@ -18,9 +18,9 @@ from sqlalchemy import Engine
 from service.auth import Scope, create_key
 from service.db.keys import get_or_create_tenant
 from service.db.session import make_session_factory
+from service.demo import DEMO_NETWORK
 from service.main import create_app
 from service.problems import PROBLEM_TYPES
-from service.schemas import DEMO_NETWORK
 from service.settings import Settings
 from service.worker import Worker
 from solver import NetworkSpec, PolicyResult, Recommendation

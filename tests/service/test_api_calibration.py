@@ -12,7 +12,7 @@ import pytest
 from fastapi.testclient import TestClient
 from sqlalchemy import Engine
 
-from solver.calibration import calibrate_location
+from solver.estimation import calibrate_location
 from tests.service.api_support import (
     assert_problem,
     create_network,

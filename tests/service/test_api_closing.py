@@ -11,8 +11,8 @@ from typing import Any
 from fastapi.testclient import TestClient
 from sqlalchemy import Engine
 
-import service.policies
-from service.calibration import law_moments
+import service.serving
+from service.estimates import law_moments
 from solver import NetworkSpec, solve_network
 from solver.spec import WEEKDAYS as WEEK
 from tests.service.api_support import (
@@ -442,7 +442,7 @@ def test_counts_before_the_closing_cutoff_belong_to_the_previous_business_date(
 
     def at(hour: int, minute: int) -> None:
         moment = datetime(day.year, day.month, day.day, hour, minute, tzinfo=UTC)
-        monkeypatch.setattr(service.policies, "utc_now", lambda: moment)
+        monkeypatch.setattr(service.serving, "utc_now", lambda: moment)
 
     at(2, 30)  # after midnight, before the cut-off: still yesterday's close
     reported = client.put(

@@ -9,6 +9,7 @@ import json
 import re
 from collections.abc import Callable
 from datetime import datetime
+from typing import Any
 
 import numpy as np
 import pytest
@@ -324,7 +325,7 @@ def test_app_refuses_to_start_on_an_unmigrated_database(database_url: str) -> No
 def test_the_api_process_uses_the_configured_blas_threads(
     database_url: str,
     engine: Engine,
-    threads: dict[str, int],
+    threads: dict[str, Any],
     expected: int,
     blas_threads: Callable[[], set[int]],
 ) -> None:

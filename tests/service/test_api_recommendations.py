@@ -16,9 +16,9 @@ from fastapi.testclient import TestClient
 from numpy.testing import assert_allclose
 from sqlalchemy import Engine
 
-import service.policies
+import service.serving
 from service.api import recommendations as recommendations_module
-from service.api.views import relays_of, transfers_of
+from service.moves import relays_of, transfers_of
 from solver import NetworkSpec, PolicyResult, solve_network
 from solver.spec import WEEKDAYS as WEEK
 from tests.service.api_support import (
@@ -451,7 +451,7 @@ def test_batch_item_that_fails_unexpectedly_is_a_500_problem_of_its_own(
     caplog: pytest.LogCaptureFixture,
 ) -> None:
     network_id = solved_demo(client, engine)
-    real = service.policies.recommend
+    real = service.serving.recommend
 
     def fails_for_empty_hilltop(
         session: Any, cache: Any, network: Any, stock: Any, *rest: Any, **named: Any

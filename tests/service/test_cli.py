@@ -19,8 +19,8 @@ from threadpoolctl import threadpool_limits
 
 from service import cli
 from service.analysis import run_simulation
+from service.analysis_requests import SimulationRequest
 from service.cli import main
-from service.schemas import SimulationRequest
 from solver import NetworkSpec, solve_network
 from tests.service.api_support import weekly_document
 

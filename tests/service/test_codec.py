@@ -24,6 +24,7 @@ def result(request: pytest.FixtureRequest) -> PolicyResult:
 def test_round_trip_is_bit_exact(result: PolicyResult) -> None:
     encoded = encode_policy(result)
     decoded = decode_policy(encoded.arrays, encoded.layout, encoded.checksum, encoded.meta)
+    assert isinstance(decoded, PolicyResult)
     for name in ("action", "flows", "values", "post_move_values", "lane_costs"):
         original, restored = getattr(result, name), getattr(decoded, name)
         assert restored.shape == original.shape
@@ -63,6 +64,7 @@ def test_weekly_policy_round_trips_with_its_phases() -> None:
     encoded = encode_policy(result)
     assert json.loads(encoded.meta)["phases"] == 7
     decoded = decode_policy(encoded.arrays, encoded.layout, encoded.checksum, encoded.meta)
+    assert isinstance(decoded, PolicyResult)
     assert decoded.phases == 7
     for name in ("action", "values", "post_move_values", "allowed"):
         restored, original = getattr(decoded, name), getattr(result, name)
@@ -97,6 +99,7 @@ def test_policy_stored_before_weekly_networks_decodes_as_one_phase(result: Polic
     decoded = decode_policy(
         blob, json.dumps(layout), hashlib.sha256(blob).hexdigest(), json.dumps(meta)
     )
+    assert isinstance(decoded, PolicyResult)
     assert decoded.phases == 1
     assert decoded.action.shape == decoded.values.shape == (1, result.n_states)
     assert decoded.allowed.shape == (1, result.n_flows) and decoded.allowed.all()

@@ -8,6 +8,7 @@ import shutil
 import tempfile
 from collections.abc import Iterator
 from pathlib import Path
+from typing import Any
 
 import pytest
 import schemathesis
@@ -61,7 +62,7 @@ def running_app() -> Iterator[None]:
     suppress_health_check=list(HealthCheck),
     derandomize=True,
 )
-def test_generated_requests_get_documented_answers(case: schemathesis.Case) -> None:
+def test_generated_requests_get_documented_answers(case: schemathesis.Case[Any]) -> None:
     case.call_and_validate(
         headers=AUTH,
         checks=[

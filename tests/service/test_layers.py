@@ -90,8 +90,9 @@ def test_storage_imports_nothing_above_it() -> None:
 
 def test_leaf_modules_import_nothing_of_the_service() -> None:
     """The vocabulary, the JSON pointer, the codec, the solving modes, the pictures, the priced
-    exports, the rate limiter and the service's errors stand on the solver, libraries and (but
-    the errors themselves) service.errors alone."""
+    exports, the rate limiter and the service's errors stand on the solver, libraries and the
+    service's words (service.vocabulary, service.errors) alone; the errors on nothing else of
+    the service."""
     leaves = [
         "service/vocabulary.py",
         "service/json_pointer.py",
@@ -105,20 +106,41 @@ def test_leaf_modules_import_nothing_of_the_service() -> None:
     sources = _sources()
     assert {
         leaf: sorted(
-            m for m, _ in sources[leaf] if m.startswith("service") and m != "service.errors"
+            m
+            for m, _ in sources[leaf]
+            if m.startswith("service") and m not in ("service.errors", "service.vocabulary")
         )
         for leaf in leaves
     } == {leaf: [] for leaf in leaves}
     assert not any(m.startswith("service") for m, _ in sources["service/errors.py"])
 
 
-def test_the_http_models_stand_on_the_solver_and_the_vocabulary() -> None:
-    """service/schemas.py imports no database code and no other service module but the
-    vocabulary: the contract does not move when storage does."""
-    imports = _sources()["service/schemas.py"]
-    assert {m for m, _ in imports if m.startswith(("service", "sqlalchemy"))} == {
-        "service.vocabulary"
+def test_the_http_models_stand_on_the_solver_and_the_domain_definitions() -> None:
+    """The HTTP models (service/api/schemas/) import no database code and, of the service, only
+    each other and modules that define words and inputs (the vocabulary, the analysis
+    parameters, time zones, the demo scenario, an assortment's layout and items), themselves
+    free of the rest of the service: the contract does not move when storage does."""
+    sources = _sources()
+    definitions = {
+        "service.vocabulary",
+        "service.analysis_requests",
+        "service.timezones",
+        "service.demo",
+        "service.assortment_spec",
     }
+    imports = {
+        module
+        for path, found in sources.items()
+        if path.startswith("service/api/schemas/")
+        for module, _ in found
+        if module.startswith(("service", "sqlalchemy"))
+    }
+    assert imports - definitions <= {
+        f"service.api.schemas.{path.stem}" for path in (SERVICE / "api" / "schemas").glob("*.py")
+    }
+    for module in definitions:
+        path = module.replace(".", "/") + ".py"
+        assert not {m for m, _ in sources[path] if m.startswith(("service", "sqlalchemy"))}
 
 
 def test_only_the_app_wires_the_routers() -> None:
@@ -132,25 +154,13 @@ def test_only_the_app_wires_the_routers() -> None:
     assert outside == {"service/supervisor.py": {"service.api.health"}}
 
 
-# Modules below the API that still use the HTTP models (issue: use cases should take and return
-# domain types). The list may shrink, never grow.
-SCHEMAS_BELOW_THE_API = {
-    # the simulation and what-if parameters and overrides are HTTP models reused as job input
-    "service/analysis.py",
-    "service/worker.py",
-    # the CLI reads the same documents as the API (network, simulation parameters)
-    "service/cli.py",
-    "service/files.py",
-    # the demo network and stock shown by `stockrelay run`
-    "service/supervisor.py",
-}
-
-
-def test_http_models_are_used_below_the_api_only_by_the_listed_modules() -> None:
+def test_nothing_below_the_api_uses_the_http_models() -> None:
+    """Use cases take and return domain types: the job parameters of service.analysis_requests,
+    which the HTTP models reuse, not the other way round."""
     users = {
-        path for path in _importers(("service.schemas",)) if not path.startswith("service/api/")
+        path for path in _importers(("service.api.schemas",)) if not path.startswith("service/api/")
     }
-    assert users <= SCHEMAS_BELOW_THE_API
+    assert users == set()
 
 
 def test_sql_is_built_in_storage_only() -> None:
@@ -190,11 +200,9 @@ def test_routers_use_sqlalchemy_only_for_sessions_and_errors() -> None:
 # Routers that still reach storage (repository, tables, reporting) rather than use cases of a
 # service layer (issue). The list may shrink, never grow.
 ROUTERS_ON_STORAGE = {
-    "service/api/analysis.py",
-    "service/api/closing.py",
+    "service/api/analysis.py",  # the row types of its answers
     "service/api/deps.py",  # the session per request, the tenant of a key
     "service/api/health.py",  # the migration check of /readyz
-    "service/api/jobs.py",
     "service/api/pictures.py",
     "service/api/views.py",
 }

@@ -123,10 +123,10 @@ def test_text_lines_name_the_request_when_there_is_one() -> None:
 
 
 def test_settings_choose_the_format_and_level_in_any_case() -> None:
-    settings = Settings(log_format="JSON", log_level="info")  # type: ignore[arg-type]
+    settings = Settings(log_format="JSON", log_level="info")
     assert (settings.log_format, settings.log_level) == ("json", "INFO")
     with pytest.raises(ValueError, match="log_format"):
-        Settings(log_format="xml")  # type: ignore[arg-type]
+        Settings(log_format="xml")
 
 
 def test_server_start_leaves_a_logging_set_up_it_did_not_make_alone() -> None:

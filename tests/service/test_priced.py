@@ -34,6 +34,7 @@ from service.db.tables import Network, NetworkVersion, Policy, SolveJob
 from service.pictures import choose_plane, net_inflow_grid, value_grid
 from service.priced import all_stocks
 from solver import NetworkSpec, PolicyResult, build_transfer_model, solve_network
+from solver.priced import solve_priced
 from solver.priced_result import PricedPolicy
 from solver.simulation import do_nothing_policy, simulate_policies
 from tests.service.api_support import (
@@ -244,7 +245,7 @@ def test_a_running_priced_solve_reports_its_progress_into_the_job(
             session, tenant, demo(), ["discounted"], mode="priced", method="priced"
         )
     seen: list[str] = []
-    real = worker_module.solve_priced
+    real = solve_priced
 
     def watched(spec: NetworkSpec, **kwargs: Any) -> PricedPolicy:
         report = kwargs.pop("progress")
@@ -395,7 +396,7 @@ def test_export_of_a_priced_network_gives_prices_values_and_the_table_where_it_f
         np.testing.assert_array_equal(row[2:-1], policy.plan(stock))
         assert row[-1] == pytest.approx(policy.upper_bound(stock))
 
-    monkeypatch.setattr("service.api.policies.FULL_TABLE_MAX_STATES", 100)
+    monkeypatch.setattr("service.api.policy_export.FULL_TABLE_MAX_STATES", 100)
     trimmed = client.get(f"/v1/networks/{network_id}/policy").json()
     assert trimmed["rows_omitted"] is True and "rows" not in trimmed
     refused = client.get(f"/v1/networks/{network_id}/policy", params={"format": "csv"})

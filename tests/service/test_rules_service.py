@@ -19,9 +19,9 @@ from fastapi.testclient import TestClient
 from sqlalchemy import Engine
 
 from service.analysis import run_simulation
+from service.analysis_requests import SimulationRequest
 from service.codec import decode_policy, encode_policy
 from service.pictures import choose_plane, net_inflow_grid
-from service.schemas import SimulationRequest
 from solver import NetworkSpec, PolicyResult, SizeLimits, solve_network
 from tests.service.api_support import (
     assert_problem,
@@ -63,7 +63,10 @@ def assert_within_rules(spec: NetworkSpec, stock: tuple[int, ...], flows: tuple[
         assert 0 <= after <= loc.capacity
         if sent[i]:
             assert after >= loc.keep_at_least_on(0)
-        for limit, units in ((loc.max_units_out, sent[i]), (loc.max_units_in, received[i])):
+        for limit, units in (
+            (loc.max_units_out_on(0), sent[i]),
+            (loc.max_units_in_on(0), received[i]),
+        ):
             if limit is not None:
                 assert units <= limit
 
@@ -128,8 +131,8 @@ def test_export_and_pictures_of_a_network_with_rules(
     plane = choose_plane(ruled_result, None, None, {})
     grid = net_inflow_grid(ruled_result, plane)
     for (y_units, x_units), units in np.ndenumerate(grid):
-        stock = {plane.x_id: x_units, plane.y_id: y_units}
-        flows = ruled_result.recommend([stock[i] for i in RULED.location_ids]).flows
+        at = {plane.x_id: x_units, plane.y_id: y_units}
+        flows = ruled_result.recommend([at[i] for i in RULED.location_ids]).flows
         into_y = sum(
             (u if lane.to == plane.y_id else -u if lane.from_ == plane.y_id else 0)
             for u, lane in zip(flows, RULED.lanes, strict=True)

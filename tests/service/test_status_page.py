@@ -14,10 +14,10 @@ import pytest
 from fastapi.testclient import TestClient
 from sqlalchemy import Engine, select, update
 
-import service.policies
+import service.serving
 from service.db.session import make_session_factory
 from service.db.tables import SolveJob
-from service.policies import today_in
+from service.serving import today_in
 from service.status_page import CAUTION, age, sparkline
 from tests.service.api_support import (
     assert_problem,
@@ -262,7 +262,7 @@ def test_before_the_closing_cutoff_tonight_is_still_the_previous_business_date(
     yesterday = (day - timedelta(days=1)).isoformat()
     # 02:30 UTC, before a 04:00 cut-off: the stores are still closing yesterday.
     moment = datetime(day.year, day.month, day.day, 2, 30, tzinfo=UTC)
-    monkeypatch.setattr(service.policies, "utc_now", lambda: moment)
+    monkeypatch.setattr(service.serving, "utc_now", lambda: moment)
     with open_client(engine) as client:
         key = make_key(engine, scope="read")
         document = demo_document(timezone="UTC", closing_cutoff="04:00")

@@ -15,7 +15,17 @@ import service
 from service.analysis import check_simulation
 from service.json_pointer import json_pointer
 from service.settings import SIMULATION_MAX_REPLICATION_DAYS, Settings
-from service.vocabulary import JobKind, JobState, JobStateName, SolveStatus, SolveStatusName
+from service.vocabulary import (
+    JobKind,
+    JobState,
+    JobStateName,
+    SolveMethod,
+    SolveMethodName,
+    SolveMode,
+    SolveModeName,
+    SolveStatus,
+    SolveStatusName,
+)
 from solver import CRITERIA, Criterion
 from solver.spec import WEEKDAY_NAMES, WEEKDAYS, Weekday
 
@@ -25,6 +35,8 @@ SERVICE = Path(service.__file__).parent
 def test_the_contracts_literals_spell_the_enums() -> None:
     assert list(get_args(JobStateName)) == [state.value for state in JobState]
     assert list(get_args(SolveStatusName)) == [state.value for state in SolveStatus]
+    assert list(get_args(SolveModeName)) == [mode.value for mode in SolveMode]
+    assert list(get_args(SolveMethodName)) == [method.value for method in SolveMethod]
     assert CRITERIA == get_args(Criterion) == ("discounted", "average")
     assert get_args(Weekday) == WEEKDAYS
     assert [name[:3].lower() for name in WEEKDAY_NAMES] == list(WEEKDAYS)
@@ -38,6 +50,8 @@ SPELLED_ONCE = {
     frozenset(kind.value for kind in JobKind): "service/vocabulary.py",
     frozenset(state.value for state in JobState): "service/vocabulary.py",
     frozenset(state.value for state in SolveStatus): "service/vocabulary.py",
+    frozenset(mode.value for mode in SolveMode): "service/vocabulary.py",
+    frozenset(method.value for method in SolveMethod): "service/vocabulary.py",
 }
 
 

@@ -17,6 +17,7 @@ from threadpoolctl import threadpool_limits
 
 from service import analysis
 from service import worker as worker_module
+from service.analysis_requests import Overrides, SimulationRequest
 from service.codec import decode_policy
 from service.db.jobs import (
     claim_job,
@@ -29,7 +30,6 @@ from service.db.jobs import (
 from service.db.keys import get_or_create_tenant
 from service.db.networks import create_network
 from service.db.tables import NetworkVersion, Policy, SolveJob
-from service.schemas import Overrides, SimulationRequest
 from service.settings import Settings
 from service.vocabulary import JobKind
 from service.worker import Worker
@@ -60,6 +60,7 @@ def test_worker_solves_every_queued_job(engine: Engine, sessions: sessionmaker[S
     with sessions() as session:
         for policy in session.scalars(select(Policy)):
             stored = decode_policy(policy.arrays, policy.layout, policy.checksum, policy.meta)
+            assert isinstance(stored, PolicyResult)
             expected = solve_network(demo(), criterion=policy.criterion)  # type: ignore[arg-type]
             np.testing.assert_allclose(stored.values, expected.values, rtol=1e-9)
             np.testing.assert_array_equal(stored.action, expected.action)

@@ -83,6 +83,7 @@ def test_periodic_policy_earns_the_solver_gain(weekly: NetworkSpec) -> None:
         confidence=0.999,
     )
     # Whole weeks after whole weeks of warm-up: the mean is the weekly average the gain is.
+    assert result.gain is not None
     assert result.gain in report.outcome("periodic").profit_per_day
 
 

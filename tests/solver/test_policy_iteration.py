@@ -7,6 +7,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from numpy.testing import assert_allclose
+from numpy.typing import NDArray
 
 from solver import (
     NetworkSpec,
@@ -21,7 +22,7 @@ from tests.solver.networks import published_two_location_example, two_stores
 from tests.solver.reference import assert_values_match, solve_reference
 
 
-def net_moves(result_flows: np.ndarray, shape: tuple[int, ...]) -> np.ndarray:
+def net_moves(result_flows: NDArray[np.int64], shape: tuple[int, ...]) -> NDArray[np.int64]:
     """Units moved from the first location to the second, by (first stock, second stock)."""
     return (result_flows[:, 0] - result_flows[:, 1]).reshape(shape)
 

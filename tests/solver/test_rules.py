@@ -11,6 +11,7 @@ import dataclasses
 import hashlib
 import itertools
 import json
+from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
@@ -122,7 +123,7 @@ def batching_pair(dispatch: float) -> NetworkSpec:
     return network([yard, shop], [lane("yard", "shop", 0.4, 4, dispatch)], discount=0.95)
 
 
-NETWORKS = {
+NETWORKS: dict[str, Callable[[], NetworkSpec]] = {
     "scaffold-pair": scaffold_pair,
     "three-bike-shops": three_bike_shops,
     "weekly-ski-racks": weekly_ski_racks,

@@ -39,7 +39,7 @@ from solver.simulation import (
     simulate_discounted_return,
     simulate_policies,
 )
-from solver.spec import LocationSpec
+from solver.spec import Distribution, LocationSpec, WeeklyDistribution
 from tests.solver.networks import location as location_json
 from tests.solver.networks import negative_binomial, pmf, poisson
 from tests.solver.reference import (
@@ -188,6 +188,12 @@ def far_apart_pair() -> NetworkSpec:
     )
 
 
+def stationary(law: Distribution | WeeklyDistribution) -> Distribution:
+    """The one law of a location without weekly fields."""
+    assert not isinstance(law, WeeklyDistribution)
+    return law
+
+
 @dataclasses.dataclass(frozen=True)
 class Solved:
     spec: NetworkSpec
@@ -243,7 +249,7 @@ class TestCountTables:
         location = LocationSpec.model_validate(
             location_json("x", 5, dist, dist, margin=1.0, holding=0, penalty=0)
         )
-        table = count_table(location.demand)
+        table = count_table(stationary(location.demand))
         law = scipy_law(location.demand)
         u = np.random.default_rng(31).random(20_000)
         # Reference: scipy.stats ppf(q) = min{k : F(k) >= q}; ours is min{k : F(k) > u}, equal
@@ -255,7 +261,7 @@ class TestCountTables:
         location = LocationSpec.model_validate(
             location_json("x", 3, pmf(*p), pmf(*p), margin=1.0, holding=0, penalty=0)
         )
-        table = count_table(location.demand)
+        table = count_table(stationary(location.demand))
         u = np.random.default_rng(37).random(20_000)
         draws = table.quantile(u)
         # Reference: scipy.stats.rv_discrete(values=(k, p)).ppf.
@@ -269,7 +275,7 @@ class TestCountTables:
         location = LocationSpec.model_validate(
             location_json("x", 3, spec, spec, margin=1.0, holding=0, penalty=0)
         )
-        assert count_table(location.demand).quantile(np.array([0.0]))[0] == 1
+        assert count_table(stationary(location.demand)).quantile(np.array([0.0]))[0] == 1
 
     def test_table_reaches_the_stated_tail_and_no_further(self) -> None:
         location = LocationSpec.model_validate(
@@ -277,7 +283,7 @@ class TestCountTables:
                 "x", 5, negative_binomial(3.0, 12.0), poisson(1.0), margin=1.0, holding=0, penalty=0
             )
         )
-        table = count_table(location.demand)
+        table = count_table(stationary(location.demand))
         law = scipy_law(location.demand)
         top = table.cdf.size - 1
         # Reference: scipy.stats sf. The table stops at the first K with P(X > K) <= 1e-15.

@@ -10,8 +10,8 @@ from service.db.keys import get_or_create_tenant
 from service.db.networks import add_version, create_network
 from service.db.tables import Network, Policy, SolveJob
 from service.errors import PolicyNotReadyError, PolicyNotSolvedError
-from service.policies import PolicyCache, recommend
-from solver import InvalidStockError, solve_network
+from service.serving import PolicyCache, ServedPolicy, recommend
+from solver import InvalidStockError, Recommendation, solve_network
 from tests.service.test_repository import demo
 from tests.service.test_worker import make_worker
 
@@ -29,7 +29,7 @@ def serve(
     network_id: int,
     stock: dict[str, int],
     criterion: str | None = "discounted",
-):  # type: ignore[no-untyped-def]
+) -> tuple[ServedPolicy, Recommendation]:
     with sessions.begin() as session:
         served, recommendation, _ = recommend(
             session, cache, session.get_one(Network, network_id), stock, criterion

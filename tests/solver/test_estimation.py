@@ -20,7 +20,7 @@ from numpy.typing import NDArray
 from scipy import optimize, stats
 
 from solver import NetworkSpec
-from solver.calibration import (
+from solver.estimation import (
     CalibrationError,
     CountEstimate,
     calibrate_location,

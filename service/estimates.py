@@ -1,7 +1,7 @@
 """Calibration: a network's demand and replenishment estimated from its sales history, and the
 version those estimates would make.
 
-For each location with history, solver.calibration estimates demand by censored maximum
+For each location with history, solver.estimation estimates demand by censored maximum
 likelihood (sold-out days count as "at least") and replenishment from receipts. The proposal is
 the current specification with those laws put in; locations without usable history keep theirs.
 With the network's `receipts_sell_same_day` setting, units received in the morning count as on
@@ -30,7 +30,7 @@ from service.db.tables import Network, NetworkVersion
 from service.errors import NothingToApplyError
 from service.networks import Written, add_network_version
 from solver import ModelTooLargeError, NetworkSpec, SizeLimits
-from solver.calibration import (
+from solver.estimation import (
     CalibrationError,
     CountEstimate,
     LocationCalibration,

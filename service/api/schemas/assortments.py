@@ -7,8 +7,10 @@ from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, StrictInt, field_validator
 
+from service.api.schemas.common import Criteria, Timestamp
 from service.assortment_spec import Layout
-from service.schemas import Criteria, SolveModeName, Timestamp, known_timezone
+from service.timezones import known_timezone
+from service.vocabulary import SolveMethodName, SolveModeName
 
 __all__ = [
     "AssortmentCreate",
@@ -20,8 +22,8 @@ __all__ = [
     "ItemRecommendationsOut",
     "ItemStates",
     "ItemStocksIn",
-    "LayoutUpdate",
     "ItemsStoredOut",
+    "LayoutUpdate",
     "LocationReportOut",
     "PickListOut",
 ]
@@ -155,7 +157,7 @@ class ItemOut(BaseModel):
     )
     version: int = Field(description="The item's current version.")
     spec_hash: str = Field(description="SHA-256 of the item's composed specification.")
-    method: Literal["exact", "priced"] = Field(description="How the item is solved.")
+    method: SolveMethodName = Field(description="How the item is solved.")
     state: ItemStateName = Field(
         description="ready, waiting (a solve queued or running), failed, or not_requested."
     )

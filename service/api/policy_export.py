@@ -22,11 +22,11 @@ from fastapi import APIRouter, Query
 from fastapi.responses import StreamingResponse
 
 from service.api.deps import CacheDep, NetworkId, Reader, SessionDep, get_network
+from service.api.schemas.common import DEFAULT_CRITERION_RULE
 from service.api.views import certificate_out
-from service.policies import ServedPolicy, load_policy
 from service.priced import FULL_TABLE_MAX_STATES, all_stocks
 from service.problems import POLICY_NOT_READY, InvalidInput
-from service.schemas import DEFAULT_CRITERION_RULE
+from service.serving import ServedPolicy, load_policy
 from solver import Criterion
 from solver.priced_result import PricedPolicy
 from solver.spec import WEEKDAYS

@@ -38,6 +38,7 @@ from service.errors import (
     UnknownNetworkError,
 )
 from solver import CRITERIA, Recommendation
+from solver.result import stock_problems
 from solver.spec import DEFAULT_TIMEZONE
 
 __all__ = [
@@ -260,14 +261,7 @@ def stock_vector(result: StoredPolicy, stock: Mapping[str, int]) -> list[int]:
     """Closing stock by location id, in network order; StockProblemsError naming every missing,
     unknown or out-of-range location."""
     ids = result.location_ids
-    problems = [(location, "missing") for location in ids if location not in stock]
-    problems += [
-        (location, "unknown location") for location in stock if location not in result.location_ids
-    ]
-    for location, capacity in zip(ids, result.capacities, strict=True):
-        units = stock.get(location)
-        if units is not None and not 0 <= units <= capacity:
-            problems.append((location, f"{units} units is outside 0..{capacity}"))
+    problems = stock_problems(ids, result.capacities, stock)
     if problems:
         raise StockProblemsError(problems)
     return [stock[location] for location in ids]

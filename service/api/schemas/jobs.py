@@ -1,0 +1,68 @@
+"""Solve jobs as the API shows them (GET /v1/jobs, and the jobs a write queued)."""
+
+from __future__ import annotations
+
+import json
+from typing import Any, Literal
+
+from pydantic import (
+    BaseModel,
+    Field,
+    field_validator,
+)
+
+from service.api.schemas.common import Timestamp, _Out
+from service.vocabulary import (
+    JobStateName,
+    SolveMethodName,
+)
+
+__all__ = [
+    "JobOut",
+    "JobProgressOut",
+]
+
+
+class JobProgressOut(BaseModel):
+    """The latest progress a running priced solve reported."""
+
+    stage: Literal["pricing", "certifying"] = Field(
+        description="pricing: improving the lane prices; certifying: simulating the policy "
+        "for its lower bound."
+    )
+    iteration: int = Field(description="Pricing iteration, or batch of replications.")
+    upper_bound: float = Field(description="Best upper bound on the optimal value so far.")
+    lower_bound: float | None = Field(
+        description="Best lower bound so far (the policy's simulated value); null until certifying."
+    )
+    elapsed: float = Field(description="Seconds since the solve started.")
+    reported_at: Timestamp = Field(description="When the worker reported it (UTC).")
+
+
+class JobOut(_Out):
+    id: int
+    network_id: int = Field(description="The network whose version is solved.")
+    version_number: int = Field(description="The network version solved (as in If-Match).")
+    version_id: int = Field(description="Internal id of that version's row; prefer the two above.")
+    criterion: str
+    method: SolveMethodName = Field(
+        default="exact", description="exact or priced: how the job solves."
+    )
+    state: JobStateName
+    attempts: int
+    created_at: Timestamp
+    started_at: Timestamp | None
+    finished_at: Timestamp | None
+    solve_seconds: float | None
+    iterations: int | None
+    residual: float | None
+    error: str | None
+    progress: JobProgressOut | None = Field(
+        default=None,
+        description="Priced solves: the latest progress reported while running (kept once done).",
+    )
+
+    @field_validator("progress", mode="before")
+    @classmethod
+    def _progress_json(cls, value: Any) -> Any:
+        return json.loads(value) if isinstance(value, str) else value

@@ -1,0 +1,34 @@
+"""RFC 9457 problem details and the problem types the service serves."""
+
+from __future__ import annotations
+
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    Field,
+)
+
+__all__ = [
+    "Problem",
+    "ProblemTypeOut",
+]
+
+
+class Problem(BaseModel):
+    """RFC 9457 problem details."""
+
+    model_config = ConfigDict(extra="allow")
+
+    type: str
+    title: str
+    status: int
+    detail: str
+    instance: str | None = None
+
+
+class ProblemTypeOut(BaseModel):
+    """One kind of problem: what a problem's `type` URI names."""
+
+    type: str = Field(description="The URI problems of this kind carry, e.g. /problems/not-found.")
+    title: str = Field(description="The short summary every problem of this kind carries.")
+    description: str = Field(description="What it means and what to do about it.")
