@@ -55,6 +55,7 @@ what the shared truck costs tonight).
 from __future__ import annotations
 
 import itertools
+import weakref
 from collections.abc import Sequence
 from dataclasses import dataclass
 
@@ -282,20 +283,47 @@ def _groups(index: NDArray[np.int64]) -> list[tuple[int, NDArray[np.int64]]]:
 @dataclass(frozen=True)
 class _Tables:
     """Per flow of an exact policy's table: out, inn (A, N); shift (A,), the change of the flat
-    stock index; cost (A,)."""
+    stock index; cost (A,); smaller (A, L), the row moving one unit less on each lane (A where
+    that flow is not in the table); levels: the rows of each number of units moved, fewest
+    first (the table is sorted by units)."""
 
     out: NDArray[np.int64]
     inn: NDArray[np.int64]
     shift: NDArray[np.int64]
     cost: NDArray[np.float64]
+    smaller: NDArray[np.int64]
+    levels: tuple[NDArray[np.int64], ...]
+
+
+# Derived once per cached policy object (policies are immutable; entries go with them).
+_TABLES: weakref.WeakKeyDictionary[PolicyResult, _Tables] = weakref.WeakKeyDictionary()
 
 
 def _exact_tables(policy: PolicyResult, layout: _Layout) -> _Tables:
-    out, inn = flow_endpoints(policy.flows, layout.lane_from, layout.lane_to, layout.n_locations)
+    tables = _TABLES.get(policy)
+    if tables is None:
+        tables = _build_tables(policy, layout)
+        _TABLES[policy] = tables
+    return tables
+
+
+def _build_tables(policy: PolicyResult, layout: _Layout) -> _Tables:
+    flows = policy.flows
+    out, inn = flow_endpoints(flows, layout.lane_from, layout.lane_to, layout.n_locations)
     strides = np.cumprod((1, *policy.shape[:0:-1]))[::-1].astype(np.int64)
     shift = (inn - out) @ strides
-    cost = flow_costs(policy.flows, policy.lane_costs, policy.dispatch_costs)
-    return _Tables(out, inn, shift, cost)
+    cost = flow_costs(flows, policy.lane_costs, policy.dispatch_costs)
+    n_flows, n_lanes = flows.shape
+    row_of = {row.tobytes(): k for k, row in enumerate(flows)}
+    smaller = np.full((n_flows, n_lanes), n_flows, dtype=np.int64)
+    for k, row in enumerate(flows):
+        for lane in np.flatnonzero(row):
+            less = row.copy()
+            less[lane] -= 1
+            smaller[k, lane] = row_of.get(less.tobytes(), n_flows)  # type: ignore[assignment]
+    units = flows.sum(axis=1)
+    levels = tuple(np.flatnonzero(units == n) for n in np.unique(units) if n > 0)
+    return _Tables(out, inn, shift, cost, smaller, levels)
 
 
 def _exact_moves(
@@ -332,11 +360,12 @@ def _exact_candidates(
     without: NDArray[np.float64],
 ) -> _Candidates:
     """The policy's action (rank 0), moving nothing (rank 1) and every other allowed flow
-    feasible at the item's stock and worth more than moving nothing (rank 2, table order)."""
-    rows = np.flatnonzero(policy.allowed[phase])
-    rows = rows[rows != 0]
+    feasible at the item's stock and worth more than every smaller flow (rank 2, table order;
+    see _best_smaller)."""
+    n_flows = policy.n_flows
     capacities = np.array(policy.capacities, dtype=np.int64)
-    lo, hi = feasible_bounds(tables.out[rows], tables.inn[rows], capacities, policy.floors[phase])
+    lo, hi = feasible_bounds(tables.out, tables.inn, capacities, policy.floors[phase])
+    allowed = policy.allowed[phase]
     u = policy.post_move_values[phase]
     gain = policy.gain or 0.0
     chosen_value = u[idx + tables.shift[action]] - tables.cost[action] - gain
@@ -344,18 +373,19 @@ def _exact_candidates(
     pick_item: list[NDArray[np.int64]] = []
     pick_row: list[NDArray[np.int64]] = []
     pick_value: list[NDArray[np.float64]] = []
-    chunk = max(1, _CHUNK_ELEMENTS // max(1, rows.size * stocks.shape[1]))
+    chunk = max(1, _CHUNK_ELEMENTS // max(1, n_flows * stocks.shape[1]))
     for start in range(0, stocks.shape[0], chunk):
         part = slice(start, start + chunk)
         s = stocks[part][:, None, :]
-        fits = np.all((s >= lo) & (s <= hi), axis=2)
-        post = np.where(fits, idx[part][:, None] + tables.shift[rows], 0)
-        q = u[post] - tables.cost[rows]
+        fits = np.all((s >= lo) & (s <= hi), axis=2) & allowed
+        post = np.where(fits, idx[part][:, None] + tables.shift, 0)
+        q = u[post] - tables.cost
         q -= gain
-        keep = fits & (q > without[part][:, None]) & (rows != action[part][:, None])
+        q = np.where(fits, q, -np.inf)
+        keep = (q > _best_smaller(q, tables)) & (np.arange(n_flows) != action[part][:, None])
         g, k = np.nonzero(keep)
         pick_item.append(g + start)
-        pick_row.append(rows[k])
+        pick_row.append(k)
         pick_value.append(q[g, k])
 
     g = np.concatenate(pick_item)
@@ -375,6 +405,26 @@ def _exact_candidates(
         capped=np.minimum(value, chosen_value[local]),
         cost=tables.cost[table_rows],
     )
+
+
+def _best_smaller(q: NDArray[np.float64], tables: _Tables) -> NDArray[np.float64]:
+    """Per item and flow f, the best value of a flow g <= f lane by lane, g != f, reached from
+    f by taking one unit off a lane at a time within the table; shape (G, A), -inf where none
+    (row 0, moving nothing). Such a g uses no more of any truck than f, so f is never needed
+    when it is worth no more than g: not in the best allocation, nor at any prices in the
+    bound. Computed level by level (units moved), one gather per lane and level."""
+    best = np.full((q.shape[0], q.shape[1] + 1), -np.inf)
+    reach = np.full_like(best, -np.inf)  # max(q, best): the best flow <= f, f included
+    reach[:, 0] = q[:, 0]
+    for rows in tables.levels:
+        smaller = tables.smaller[rows]
+        top = reach[:, smaller[:, 0]]
+        for lane in range(1, smaller.shape[1]):
+            np.maximum(top, reach[:, smaller[:, lane]], out=top)
+        best[:, rows] = top
+        reach[:, rows] = np.maximum(top, q[:, rows])
+    result: NDArray[np.float64] = best[:, :-1]
+    return result
 
 
 # -- priced policies -------------------------------------------------------------------------

@@ -43,6 +43,7 @@ so `bound - value` bounds how far the allocation is from the best one, and
 
 from __future__ import annotations
 
+import heapq
 from dataclasses import dataclass
 
 import numpy as np
@@ -315,29 +316,73 @@ def _fit(
 ) -> NDArray[np.int64]:
     """While a lane is over capacity, make the switch that frees over-capacity load at the
     least loss per unit freed, never overloading another lane nor moving the item of
-    candidate `locked` (-1: none)."""
+    candidate `locked` (-1: none).
+
+    A switch's rate (loss per unit of over-capacity load freed) depends only on its item's
+    current choice and on which lanes are over, and lanes only leave that set (a switch never
+    overloads a lane). So the rates are computed for every candidate once per set of
+    overloaded lanes (at most L + 1 times) and kept in a heap; after a switch only the switched
+    item's candidates get new rates. Whether a switch fits depends on the loads: it is checked
+    when the switch comes to the top, and a switch that does not fit waits until some lane's
+    load falls. The switches made are those of taking the least rate over every candidate
+    that fits, each time (ties to the lowest candidate index)."""
     chosen = chosen.copy()
-    item, slack = choices.item, _slack(cap)
+    item, value, slack = choices.item, choices.value, _slack(cap)
+    limit = cap + slack
     load = use[chosen].sum(axis=0)
     movable = np.ones(item.size, dtype=bool)
     if locked >= 0:
         movable[item == item[locked]] = False
-    for _ in range(use.shape[0] * max(1, use.shape[1])):
-        over = load > cap + slack
-        if not over.any():
-            break
+    starts = choices.starts
+    ends = np.r_[starts[1:], item.size]
+    version = np.zeros(starts.size, dtype=np.int64)
+    over = load > limit
+    budget = use.shape[0] * max(1, use.shape[1])
+    while over.any() and budget > 0:
         delta = use[chosen[item]] - use  # load each switch would free, per lane
         freed = np.where(over, delta, 0.0).sum(axis=1)
-        fits = np.all((load - delta <= cap + slack) | over, axis=1)
-        candidates = (freed > 0) & fits & movable
-        if not candidates.any():
+        useful = (freed > 0) & movable
+        loss = value[chosen[item]] - value
+        rows = np.flatnonzero(useful)
+        rates = loss[rows] / freed[rows]
+        heap = [(float(r), int(k), 0) for r, k in zip(rates, rows, strict=True)]
+        heapq.heapify(heap)
+        version[:] = 0
+        waiting: list[tuple[float, int, int]] = []
+        regrouped = False
+        while heap and budget > 0:
+            entry = heapq.heappop(heap)
+            _, k, seen = entry
+            m = int(item[k])
+            if seen != version[m]:
+                continue
+            step = use[chosen[m]] - use[k]
+            if not np.all((load - step <= limit) | over):
+                waiting.append(entry)
+                continue
+            load -= step
+            chosen[m] = k
+            version[m] += 1
+            budget -= 1
+            now_over = load > limit
+            if not np.array_equal(now_over, over):
+                over, regrouped = now_over, True
+                break
+            own = slice(int(starts[m]), int(ends[m]))
+            own_freed = np.where(over, use[k] - use[own], 0.0).sum(axis=1)
+            own_loss = value[k] - value[own]
+            for j in np.flatnonzero(own_freed > 0):
+                heapq.heappush(
+                    heap,
+                    (float(own_loss[j] / own_freed[j]), int(starts[m]) + int(j), int(version[m])),
+                )
+            if waiting and np.any((step > 0) & ~over):
+                for held in waiting:
+                    heapq.heappush(heap, held)
+                waiting = []
+        if not regrouped:
             break
-        loss = choices.value[chosen[item]] - choices.value
-        rate = np.where(candidates, loss / np.where(candidates, freed, 1.0), np.inf)
-        k = int(np.argmin(rate))
-        load -= delta[k]
-        chosen[item[k]] = k
-    if np.any(load > cap + slack):
+    if np.any(load > limit):
         # Only a locked item is left on an overloaded lane: its forced candidate cannot fit.
         chosen[item[locked]] = _idle_of(choices, int(item[locked]))
     return chosen

@@ -1,0 +1,391 @@
+"""Benchmark of assortments: many items over one store layout (issue 16).
+
+Usage: .venv/bin/python benchmarks/assortment.py [--quick] [--out PATH]
+
+Scenario of our own: a hardware chain of 4 stores (quay, mill, abbey, fort) on a ring road,
+lanes both ways between neighbours (8 lanes, at most 2 units of an item per lane a night, unit
+costs 0.7 to 1.3, a dispatch cost of 2.0 on the two long lanes). 5,000 items (1,000 with
+--quick), each an item network of its own: capacities 4 to 7 per store, margins 6 to 18,
+Poisson or negative binomial demand of 4% to 25% of capacity a day, Poisson replenishment.
+Items with identical parameters share one policy, so the items are spread over D distinct
+policies (40, or 8 with --quick), most of them exact and stationary, some weekly (a weekend
+peak at the quay) and some priced (solver.priced), as a real assortment mixes them. Closing
+stocks are drawn uniformly within each item's capacities (seed 0).
+
+Sections, one function each (`SECTIONS`), each returning its part of the JSON report:
+
+* bulk_moves: solver.assortment.assortment_moves for all items at once, without and with shared
+  truck capacity (each lane's truck set to 60% of the uncoupled load, counted in units, and
+  again in volumes of 0.2 to 3.0 per unit); item-locations per second (items x stores / wall
+  seconds, median of repeated runs after a warm-up; CPU seconds beside it, as the machine is
+  shared) against the target of 50,000 per API process; for the shared runs the sharing cost,
+  the allocation's gap to its bound and the pricing iterations. Beside them, one item at a time
+  through each policy's recommend() (what a per-item request computes today).
+* policy_memory: bytes of each distinct policy's arrays once decoded from storage
+  (service.codec round trip), per exact and priced policy, and the stored (compressed) bytes.
+
+Later sections (create, calibrate, solve, closing to pick lists through the service) belong in
+SECTIONS too. A table goes to stdout and everything to JSON (default
+benchmarks/results/assortment.json) through the shared writer of benchmarks/solve.py. BLAS runs
+single-threaded, as in benchmarks/solve.py.
+"""
+
+import os
+
+# One core: must be set before numpy (and its BLAS) is first imported.
+os.environ["OPENBLAS_NUM_THREADS"] = "1"
+os.environ["OMP_NUM_THREADS"] = "1"
+os.environ["MKL_NUM_THREADS"] = "1"
+
+import argparse
+import sys
+import time
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+
+import solve  # machine facts, revision and the shared JSON writer
+
+from service.codec import decode_policy, encode_policy
+from solver import NetworkSpec, PricedOptions, solve_network
+from solver.assortment import ItemPolicy, assortment_moves
+from solver.priced import solve_priced
+
+DEFAULT_OUT = Path(__file__).resolve().parent / "results" / "assortment.json"
+TARGET_ITEM_LOCATIONS_PER_SECOND = 50_000.0
+
+STORES = ("quay", "mill", "abbey", "fort")
+# (from, to, unit cost, dispatch cost): a ring road, both ways.
+LANES = (
+    ("quay", "mill", 0.7, 0.0),
+    ("mill", "quay", 0.7, 0.0),
+    ("mill", "abbey", 0.9, 0.0),
+    ("abbey", "mill", 0.9, 0.0),
+    ("abbey", "fort", 1.3, 2.0),
+    ("fort", "abbey", 1.3, 2.0),
+    ("fort", "quay", 1.1, 0.0),
+    ("quay", "fort", 1.1, 0.0),
+)
+LANE_LIMIT = 2
+# Shared trucks carry this share of the uncoupled load (binding on every lane that moves).
+TRUCK_SHARE = 0.6
+PRICED_OPTIONS = PricedOptions(replications=16, target_half_width=0.01)
+
+
+@dataclass(frozen=True)
+class Assortment:
+    """Items over the layout: distinct policies, each item's policy, closing stocks, volumes."""
+
+    policies: tuple[ItemPolicy, ...]
+    kinds: tuple[str, ...]
+    policy_of: NDArray[np.int64]
+    stocks: NDArray[np.int64]
+    unit_volume: NDArray[np.float64]
+    solve_seconds: float
+
+    @property
+    def n_items(self) -> int:
+        return int(self.policy_of.size)
+
+
+def item_network(rng: np.random.Generator, *, weekly: bool) -> NetworkSpec:
+    """One item of the chain (module docs), drawn from rng."""
+    locations: list[dict[str, Any]] = []
+    for i, store in enumerate(STORES):
+        capacity = int(rng.integers(4, 8))
+        mean = round(float(rng.uniform(0.04, 0.25)) * capacity, 3)
+        demand: dict[str, Any] = (
+            {"dist": "poisson", "mean": mean}
+            if rng.random() < 0.7
+            else {"dist": "negative_binomial", "mean": mean, "variance": round(2.2 * mean, 3)}
+        )
+        if weekly and i == 0:
+            demand = {
+                "weekly": {
+                    day: {"dist": "poisson", "mean": round(mean * factor, 3)}
+                    for day, factor in zip(
+                        ("mon", "tue", "wed", "thu", "fri", "sat", "sun"),
+                        (0.7, 0.7, 0.8, 0.9, 1.3, 1.8, 1.2),
+                        strict=True,
+                    )
+                }
+            }
+        locations.append(
+            {
+                "id": store,
+                "capacity": capacity,
+                "unit_margin": round(float(rng.uniform(6.0, 18.0)), 2),
+                "holding_cost": round(float(rng.uniform(0.02, 0.3)), 3),
+                "stockout_penalty": round(float(rng.uniform(0.0, 2.0)), 2),
+                "demand": demand,
+                "replenishment": {
+                    "dist": "poisson",
+                    "mean": round(mean * float(rng.uniform(0.6, 1.4)), 3),
+                },
+            }
+        )
+    lanes = [
+        {"from": a, "to": b, "unit_cost": cost, "dispatch_cost": dispatch, "max_units": LANE_LIMIT}
+        for a, b, cost, dispatch in LANES
+    ]
+    return NetworkSpec.model_validate(
+        {"name": "hardware item", "discount": 0.97, "locations": locations, "lanes": lanes}
+    )
+
+
+def make_assortment(items: int, distinct: int, seed: int = 0) -> Assortment:
+    """`distinct` policies (one in eight weekly, one in eight priced, the rest exact and
+    stationary) spread over `items` items; closing stocks uniform within capacities."""
+    rng = np.random.default_rng(seed)
+    policies: list[ItemPolicy] = []
+    kinds: list[str] = []
+    started = time.perf_counter()
+    for k in range(distinct):
+        kind = ("weekly", "priced", *["exact"] * 6)[k % 8]
+        spec = item_network(rng, weekly=kind == "weekly")
+        if kind == "priced":
+            policies.append(solve_priced(spec, options=PRICED_OPTIONS))
+        else:
+            policies.append(solve_network(spec))
+        kinds.append(kind)
+    solve_seconds = time.perf_counter() - started
+    policy_of = rng.integers(0, distinct, size=items)
+    caps = np.array([p.capacities for p in policies], dtype=np.int64)[policy_of]
+    stocks = rng.integers(0, caps + 1).astype(np.int64)
+    volume = np.round(rng.uniform(0.2, 3.0, size=items), 2)
+    return Assortment(tuple(policies), tuple(kinds), policy_of, stocks, volume, solve_seconds)
+
+
+# -- measurement -----------------------------------------------------------------------------
+
+
+def _timed(run: Callable[[], object], repeats: int) -> tuple[float, float]:
+    """Median wall seconds and least CPU seconds of `repeats` runs after one warm-up."""
+    run()
+    walls, cpus = [], []
+    for _ in range(repeats):
+        wall, cpu = time.perf_counter(), time.process_time()
+        run()
+        walls.append(time.perf_counter() - wall)
+        cpus.append(time.process_time() - cpu)
+    return float(np.median(walls)), float(min(cpus))
+
+
+def _rate_row(name: str, a: Assortment, wall: float, cpu: float, items: int) -> dict[str, Any]:
+    cells = items * len(STORES)
+    rate = cells / wall
+    return {
+        "name": name,
+        "items": items,
+        "item_locations": cells,
+        "seconds": wall,
+        "cpu_seconds": cpu,
+        "item_locations_per_second": rate,
+        "item_locations_per_cpu_second": cells / cpu if cpu > 0 else None,
+        "target_per_second": TARGET_ITEM_LOCATIONS_PER_SECOND,
+        "target_met": rate >= TARGET_ITEM_LOCATIONS_PER_SECOND,
+    }
+
+
+# -- sections --------------------------------------------------------------------------------
+
+
+def bulk_moves(a: Assortment, quick: bool) -> dict[str, Any]:
+    """Moves for every item at once, uncoupled and with shared trucks (module docs)."""
+    repeats = 3 if quick else 7
+    rows: list[dict[str, Any]] = []
+
+    def uncoupled() -> Any:
+        return assortment_moves(a.policies, a.policy_of, a.stocks)
+
+    free = uncoupled()
+    wall, cpu = _timed(uncoupled, repeats)
+    rows.append(_rate_row("uncoupled", a, wall, cpu, a.n_items) | {"moving_items": _moving(free)})
+
+    for unit, volume in (("units", np.ones(a.n_items)), ("volume", a.unit_volume)):
+        load = (free.flows * volume[:, None]).sum(axis=0)
+        capacity = np.floor(TRUCK_SHARE * load * 100.0) / 100.0
+
+        def shared(capacity: NDArray[np.float64] = capacity, unit: str = unit) -> Any:
+            return assortment_moves(
+                a.policies,
+                a.policy_of,
+                a.stocks,
+                truck_capacity=capacity,
+                unit_volume=a.unit_volume if unit == "volume" else None,
+            )
+
+        result = shared()
+        allocation = result.sharing
+        assert allocation is not None
+        used = (result.flows * volume[:, None]).sum(axis=0)
+        assert np.all(used <= capacity + 1e-9), "shared capacity exceeded"
+        wall, cpu = _timed(shared, repeats)
+        rows.append(
+            _rate_row(f"shared trucks ({unit})", a, wall, cpu, a.n_items)
+            | {
+                "moving_items": _moving(result),
+                "truck_share": TRUCK_SHARE,
+                "uncoupled_value": allocation.unconstrained_value,
+                "value": allocation.value,
+                "bound": allocation.bound,
+                "sharing_cost": allocation.sharing_cost,
+                "gap": allocation.gap,
+                "pricing_iterations": allocation.iterations,
+                "converged": allocation.converged,
+            }
+        )
+
+    # One item at a time through its policy's recommend(), on a sample.
+    sample = min(a.n_items, 300 if quick else 1_000)
+
+    def one_by_one() -> None:
+        for m in range(sample):
+            policy = a.policies[a.policy_of[m]]
+            policy.recommend(tuple(int(u) for u in a.stocks[m]))
+
+    wall, cpu = _timed(one_by_one, 1)
+    rows.append(_rate_row("one item at a time (recommend)", a, wall, cpu, sample))
+    return {"rows": rows}
+
+
+def _moving(moves: Any) -> int:
+    return int(np.count_nonzero(moves.flows.any(axis=1)))
+
+
+def policy_memory(a: Assortment, quick: bool) -> dict[str, Any]:
+    """Bytes of each distinct policy's decoded arrays, and its stored size."""
+    rows = []
+    for policy, kind in zip(a.policies, a.kinds, strict=True):
+        encoded = encode_policy(policy)
+        decoded = decode_policy(encoded.arrays, encoded.layout, encoded.checksum, encoded.meta)
+        rows.append(
+            {
+                "kind": kind,
+                "stock_states": int(np.prod(policy.shape)),
+                "decoded_bytes": _array_bytes(decoded),
+                "stored_bytes": len(encoded.arrays),
+            }
+        )
+    summary = {}
+    for kind in sorted({row["kind"] for row in rows}):
+        of_kind = [row for row in rows if row["kind"] == kind]
+        summary[kind] = {
+            "policies": len(of_kind),
+            "median_states": float(np.median([r["stock_states"] for r in of_kind])),
+            "median_decoded_bytes": float(np.median([r["decoded_bytes"] for r in of_kind])),
+            "max_decoded_bytes": int(max(r["decoded_bytes"] for r in of_kind)),
+            "median_stored_bytes": float(np.median([r["stored_bytes"] for r in of_kind])),
+        }
+    return {"policies": rows, "by_kind": summary}
+
+
+def _array_bytes(policy: ItemPolicy) -> int:
+    """Bytes held by the policy's numpy arrays (what a cached policy keeps in memory, less
+    the few hundred bytes of Python objects around them)."""
+    total = 0
+    for value in vars(policy).values():
+        if isinstance(value, np.ndarray):
+            total += value.nbytes
+        elif isinstance(value, tuple) and value and isinstance(value[0], np.ndarray):
+            total += sum(v.nbytes for v in value)
+    return total
+
+
+Section = Callable[[Assortment, bool], dict[str, Any]]
+SECTIONS: dict[str, Section] = {"bulk_moves": bulk_moves, "policy_memory": policy_memory}
+
+
+# -- report ----------------------------------------------------------------------------------
+
+
+def print_bulk(section: dict[str, Any]) -> None:
+    print(
+        f"{'bulk moves':<32} {'items':>6} {'item-loc':>8} {'seconds':>8} {'cpu s':>8} "
+        f"{'item-loc/s':>11} {'target':>14} {'sharing cost':>12} {'gap':>9} {'iter':>4}"
+    )
+    for row in section["rows"]:
+        target = (
+            f">={row['target_per_second']:,.0f} {'pass' if row['target_met'] else 'FAIL'}"
+            if not row["name"].startswith("one item")
+            else ""
+        )
+        sharing = (
+            f"{row['sharing_cost']:>12.2f} {row['gap']:>9.2f} {row['pricing_iterations']:>4}"
+            if "sharing_cost" in row
+            else ""
+        )
+        print(
+            f"{row['name']:<32} {row['items']:>6} {row['item_locations']:>8} "
+            f"{row['seconds']:>8.4f} {row['cpu_seconds']:>8.4f} "
+            f"{row['item_locations_per_second']:>11,.0f} {target:>14} {sharing}"
+        )
+
+
+def print_memory(section: dict[str, Any]) -> None:
+    print(
+        f"{'policy memory':<14} {'policies':>8} {'states':>7} {'decoded B':>10} "
+        f"{'max B':>10} {'stored B':>9}"
+    )
+    for kind, row in section["by_kind"].items():
+        print(
+            f"{kind:<14} {row['policies']:>8} {row['median_states']:>7.0f} "
+            f"{row['median_decoded_bytes']:>10,.0f} {row['max_decoded_bytes']:>10,} "
+            f"{row['median_stored_bytes']:>9,.0f}"
+        )
+
+
+PRINTERS: dict[str, Callable[[dict[str, Any]], None]] = {
+    "bulk_moves": print_bulk,
+    "policy_memory": print_memory,
+}
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(description="Benchmark assortments (many items, one layout).")
+    parser.add_argument(
+        "--quick", action="store_true", help="1,000 items over 8 distinct policies, fewer repeats"
+    )
+    parser.add_argument("--out", type=Path, default=DEFAULT_OUT, help="JSON results file")
+    parser.add_argument(
+        "--sections",
+        nargs="+",
+        choices=sorted(SECTIONS),
+        default=list(SECTIONS),
+        help="sections to run (default: all)",
+    )
+    args = parser.parse_args(argv)
+    facts = solve.machine_facts()
+    items, distinct = (1_000, 8) if args.quick else (5_000, 40)
+    print(f"stockrelay assortment benchmark: {items} items x {len(STORES)} stores, ", end="")
+    print(f"{distinct} distinct policies; numpy {facts['numpy']}, BLAS single-threaded")
+    assortment = make_assortment(items, distinct)
+    print(f"solved the distinct policies in {assortment.solve_seconds:.1f} s\n")
+    report: dict[str, Any] = {
+        "machine": facts,
+        "revision": solve.solver_revision(),
+        "quick": args.quick,
+        "items": items,
+        "stores": len(STORES),
+        "lanes": len(LANES),
+        "distinct_policies": distinct,
+        "policy_kinds": {k: assortment.kinds.count(k) for k in sorted(set(assortment.kinds))},
+        "solve_seconds": assortment.solve_seconds,
+    }
+    for name in args.sections:
+        section = SECTIONS[name](assortment, args.quick)
+        report[name] = section
+        PRINTERS[name](section)
+        print()
+    solve.write_report(args.out, report)
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
