@@ -33,9 +33,15 @@ allocation and a bound on the best one; see that module). The candidates:
 
 * exact policy: every flow of the table allowed on night d and feasible at s_m (no location
   sends more than it holds or ends below its floor after sending, none ends above capacity:
-  the boxes of solver.model.feasible_bounds), q_k = U_d(y_k) - cost(f_k) [- g]. Those worth no
-  more than moving nothing are dropped: moving nothing uses no capacity, so such a candidate is
-  never needed, neither in the best allocation nor in the bound D(pi) at any prices pi >= 0.
+  the boxes of solver.model.feasible_bounds), q_k = U_d(y_k) - cost(f_k) [- g], less those no
+  candidate needs: a flow worth no more than some smaller flow g <= f (lane by lane, e.g.
+  moving nothing) is dropped, since g uses no more of any truck, so f is needed neither in the
+  best allocation nor in the bound D(pi) at any prices pi >= 0. The best smaller flow is found
+  level by level over the table (units moved), taking one unit off one lane at a time (a
+  smaller flow of an acyclic flow within the limits is acyclic and within them, so the table
+  of solver.build normally holds it; where it does not, that chain is not followed and fewer
+  flows are dropped). An item whose policy moves nothing has no candidate but moving nothing
+  (see the cap below).
 * priced policy: the plan, moving nothing, and for every lane the plan uses, the plan re-made
   with that lane closed tonight and with one unit less allowed on it (plan_batch with tighter
   lane limits; all of an item's variants in the same batch call). This is not every flow, so
@@ -361,7 +367,7 @@ def _exact_candidates(
 ) -> _Candidates:
     """The policy's action (rank 0), moving nothing (rank 1) and every other allowed flow
     feasible at the item's stock and worth more than every smaller flow (rank 2, table order;
-    see _best_smaller)."""
+    see _best_smaller); for an item that the policy leaves in place, moving nothing only."""
     n_flows = policy.n_flows
     capacities = np.array(policy.capacities, dtype=np.int64)
     lo, hi = feasible_bounds(tables.out, tables.inn, capacities, policy.floors[phase])
@@ -370,12 +376,15 @@ def _exact_candidates(
     gain = policy.gain or 0.0
     chosen_value = u[idx + tables.shift[action]] - tables.cost[action] - gain
 
-    pick_item: list[NDArray[np.int64]] = []
-    pick_row: list[NDArray[np.int64]] = []
-    pick_value: list[NDArray[np.float64]] = []
+    # An item whose policy moves nothing tonight needs no other candidate: every other flow's
+    # value is capped at moving nothing's, and moving nothing uses no truck.
+    moving = np.flatnonzero(action != 0)
+    pick_item: list[NDArray[np.int64]] = [np.zeros(0, np.int64)]
+    pick_row: list[NDArray[np.int64]] = [np.zeros(0, np.int64)]
+    pick_value: list[NDArray[np.float64]] = [np.zeros(0)]
     chunk = max(1, _CHUNK_ELEMENTS // max(1, n_flows * stocks.shape[1]))
-    for start in range(0, stocks.shape[0], chunk):
-        part = slice(start, start + chunk)
+    for start in range(0, moving.size, chunk):
+        part = moving[start : start + chunk]
         s = stocks[part][:, None, :]
         fits = np.all((s >= lo) & (s <= hi), axis=2) & allowed
         post = np.where(fits, idx[part][:, None] + tables.shift, 0)
@@ -384,7 +393,7 @@ def _exact_candidates(
         q = np.where(fits, q, -np.inf)
         keep = (q > _best_smaller(q, tables)) & (np.arange(n_flows) != action[part][:, None])
         g, k = np.nonzero(keep)
-        pick_item.append(g + start)
+        pick_item.append(part[g])
         pick_row.append(k)
         pick_value.append(q[g, k])
 
