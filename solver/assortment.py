@@ -47,6 +47,12 @@ allocation and a bound on the best one; see that module). The candidates:
   lane limits; all of an item's variants in the same batch call). This is not every flow, so
   the allocation and bound are over these candidates only.
 
+Only the items whose own move uses a lane that the uncoupled moves overload get these
+candidates; every other item keeps its own move and moving nothing. Whatever the prices on the
+overloaded lanes, its own move stays its best (it pays none of them), so D(pi) is unchanged,
+and the allocation's repair only ever switches items that use an overloaded lane. When no lane
+is overloaded, no candidate is built at all.
+
 The policy's own move is the item's first candidate, and no other candidate of the item is
 valued above it (q_k is capped at q_{f_m}). The policy is greedy in its values up to the
 solver's tolerance, so the cap changes values by at most that tolerance; it makes the
@@ -137,6 +143,18 @@ class _Candidates:
     cost: NDArray[np.float64]
 
 
+@dataclass(frozen=True)
+class _Group:
+    """The items of one policy: their stocks, phase and (exact policies) table, actions and
+    stock indexes."""
+
+    policy: ItemPolicy
+    phase: int
+    items: NDArray[np.int64]
+    stocks: NDArray[np.int64]
+    exact: tuple[_Tables, NDArray[np.int64], NDArray[np.int64]] | None
+
+
 def assortment_moves(
     policies: Sequence[ItemPolicy],
     policy_of: ArrayLike,
@@ -186,31 +204,36 @@ def assortment_moves(
     value = np.zeros(m)
     without = np.zeros(m)
     cost = np.zeros(m)
-    groups = _groups(index)
-    parts: list[_Candidates] = []
-    for p, items in groups:
+    groups: list[_Group] = []
+    for p, items in _groups(index):
         policy = policies[p]
         phase = phase_of_weekday(weekday, policy.phases)
         sg = s[items]
         if isinstance(policy, PolicyResult):
             tables = _exact_tables(policy, layout)
             f, v, v0, c, action, idx = _exact_moves(policy, tables, sg, phase)
-            if truck_capacity is not None:
-                parts.append(_exact_candidates(policy, tables, items, sg, phase, action, idx, v0))
+            groups.append(_Group(policy, phase, items, sg, (tables, action, idx)))
         else:
             f, v, v0, c = _priced_moves(policy, sg, phase)
-            if truck_capacity is not None:
-                parts.append(_priced_candidates(policy, items, sg, phase, f, v, v0, c))
+            groups.append(_Group(policy, phase, items, sg, None))
         flows[items], value[items], without[items], cost[items] = f, v, v0, c
 
     sharing = None
-    if truck_capacity is not None and m:
-        volume = np.ones(m) if unit_volume is None else np.asarray(unit_volume, dtype=np.float64)
-        choices, real, costs = _choices(parts, n_lanes)
-        sharing = allocate_shared_capacity(choices, volume, truck_capacity)
-        flows, value, cost = sharing.flows, real[sharing.chosen], costs[sharing.chosen]
-    elif truck_capacity is not None:
-        raise ValueError("shared truck capacity needs at least one item")
+    if truck_capacity is not None:
+        volume, capacity = _check_sharing(m, n_lanes, truck_capacity, unit_volume)
+        # Lanes the uncoupled moves overload; an item that uses none of them keeps its best
+        # move at any prices on them, so it needs no other candidate (module docs).
+        load = (flows * volume[:, None]).sum(axis=0)
+        # (A hair below capacity counts too: solver.sharing sums the same loads its own way.)
+        binding: NDArray[np.bool_] = np.isfinite(capacity) & (load > capacity * (1 - 1e-9) - 1e-9)
+        contested = np.flatnonzero(np.any(flows[:, binding] > 0, axis=1))
+        parts = _candidates(groups, contested, flows, value, without, cost)
+        if m:
+            choices, real, costs = _choices(parts, n_lanes)
+            sharing = allocate_shared_capacity(choices, volume, capacity)
+            flows, value, cost = sharing.flows, real[sharing.chosen], costs[sharing.chosen]
+        else:
+            sharing = _no_items(n_lanes)
     return AssortmentMoves(
         flows=flows,
         post_move_stock=s + flows @ layout.incidence,
@@ -500,6 +523,104 @@ def _priced_candidates(
 
 
 # -- sharing ---------------------------------------------------------------------------------
+
+
+def _check_sharing(
+    m: int, n_lanes: int, truck_capacity: ArrayLike, unit_volume: ArrayLike | None
+) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    capacity = np.asarray(truck_capacity, dtype=np.float64)
+    if capacity.shape != (n_lanes,) or np.any(np.isnan(capacity)) or np.any(capacity < 0):
+        raise ValueError(
+            f"truck_capacity must hold {n_lanes} numbers >= 0, one per lane (inf: not shared)"
+        )
+    volume = np.ones(m) if unit_volume is None else np.asarray(unit_volume, dtype=np.float64)
+    if volume.shape != (m,) or not np.all(np.isfinite(volume) & (volume > 0)):
+        raise ValueError(f"unit_volume must hold {m} positive numbers, one per item")
+    return volume, capacity
+
+
+def _candidates(
+    groups: list[_Group],
+    contested: NDArray[np.int64],
+    flows: NDArray[np.int64],
+    value: NDArray[np.float64],
+    without: NDArray[np.float64],
+    cost: NDArray[np.float64],
+) -> list[_Candidates]:
+    """Every item's candidates: all of them for the `contested` items, the item's own move
+    and moving nothing for the others."""
+    is_contested = np.zeros(flows.shape[0], dtype=bool)
+    is_contested[contested] = True
+    parts = [_settled(flows, value, without, cost, np.flatnonzero(~is_contested))]
+    for group in groups:
+        sub = np.flatnonzero(is_contested[group.items])
+        if not sub.size:
+            continue
+        items, stocks = group.items[sub], group.stocks[sub]
+        if group.exact is not None:
+            assert isinstance(group.policy, PolicyResult)
+            tables, action, idx = group.exact
+            parts.append(
+                _exact_candidates(
+                    group.policy,
+                    tables,
+                    items,
+                    stocks,
+                    group.phase,
+                    action[sub],
+                    idx[sub],
+                    without[items],
+                )
+            )
+        else:
+            assert isinstance(group.policy, PricedPolicy)
+            parts.append(
+                _priced_candidates(
+                    group.policy,
+                    items,
+                    stocks,
+                    group.phase,
+                    flows[items],
+                    value[items],
+                    without[items],
+                    cost[items],
+                )
+            )
+    return parts
+
+
+def _settled(
+    flows: NDArray[np.int64],
+    value: NDArray[np.float64],
+    without: NDArray[np.float64],
+    cost: NDArray[np.float64],
+    items: NDArray[np.int64],
+) -> _Candidates:
+    """Items that keep their own move: it (rank 0) and moving nothing (rank 1) when it moves."""
+    moving = items[flows[items].any(axis=1)]
+    both = np.concatenate([items, moving])
+    return _Candidates(
+        item=both,
+        rank=np.concatenate([np.zeros(items.size, np.int64), np.ones(moving.size, np.int64)]),
+        flows=np.concatenate([flows[items], np.zeros((moving.size, flows.shape[1]), np.int64)]),
+        value=np.concatenate([value[items], without[moving]]),
+        capped=np.concatenate([value[items], without[moving]]),
+        cost=np.concatenate([cost[items], np.zeros(moving.size)]),
+    )
+
+
+def _no_items(n_lanes: int) -> SharedAllocation:
+    return SharedAllocation(
+        chosen=np.zeros(0, np.int64),
+        flows=np.zeros((0, n_lanes), np.int64),
+        value=0.0,
+        unconstrained_value=0.0,
+        bound=0.0,
+        prices=np.zeros(n_lanes),
+        load=np.zeros(n_lanes),
+        iterations=0,
+        converged=True,
+    )
 
 
 def _choices(
