@@ -84,9 +84,9 @@ __all__ = ["AssortmentMoves", "ItemPolicy", "assortment_moves"]
 
 ItemPolicy = PolicyResult | PricedPolicy
 
-# Feasibility of every allowed flow at every stock of a chunk of items is computed as a
-# (items, flows, locations) array; chunks keep it near this many elements.
-_CHUNK_ELEMENTS = 4_000_000
+# Candidates of a chunk of items are computed as (items, flows) arrays, a few of them at once;
+# chunks keep each near this many elements.
+_CHUNK_ELEMENTS = 1_000_000
 
 
 @dataclass(frozen=True, eq=False)
@@ -394,7 +394,12 @@ def _exact_candidates(
     n_flows = policy.n_flows
     capacities = np.array(policy.capacities, dtype=np.int64)
     lo, hi = feasible_bounds(tables.out, tables.inn, capacities, policy.floors[phase])
-    allowed = policy.allowed[phase]
+    # Per location i, whether each stock 0..C_i lies in each flow's box: (C_i + 1, A).
+    inside = [
+        (np.arange(c + 1)[:, None] >= lo[:, i]) & (np.arange(c + 1)[:, None] <= hi[:, i])
+        for i, c in enumerate(policy.capacities)
+    ]
+    inside[0] &= policy.allowed[phase]
     u = policy.post_move_values[phase]
     gain = policy.gain or 0.0
     chosen_value = u[idx + tables.shift[action]] - tables.cost[action] - gain
@@ -405,11 +410,12 @@ def _exact_candidates(
     pick_item: list[NDArray[np.int64]] = [np.zeros(0, np.int64)]
     pick_row: list[NDArray[np.int64]] = [np.zeros(0, np.int64)]
     pick_value: list[NDArray[np.float64]] = [np.zeros(0)]
-    chunk = max(1, _CHUNK_ELEMENTS // max(1, n_flows * stocks.shape[1]))
+    chunk = max(1, _CHUNK_ELEMENTS // max(1, n_flows))
     for start in range(0, moving.size, chunk):
         part = moving[start : start + chunk]
-        s = stocks[part][:, None, :]
-        fits = np.all((s >= lo) & (s <= hi), axis=2) & allowed
+        fits = inside[0][stocks[part, 0]]
+        for i in range(1, len(inside)):
+            fits &= inside[i][stocks[part, i]]
         post = np.where(fits, idx[part][:, None] + tables.shift, 0)
         q = u[post] - tables.cost
         q -= gain
