@@ -16,11 +16,12 @@ Sections, one function each (`SECTIONS`), each returning its part of the JSON re
 
 * bulk_moves: solver.assortment.assortment_moves for all items at once, without and with shared
   truck capacity (each lane's truck set to 60% of the uncoupled load, counted in units, and
-  again in volumes of 0.2 to 3.0 per unit); item-locations per second (items x stores / wall
-  seconds, median of repeated runs after a warm-up; CPU seconds beside it, as the machine is
-  shared) against the target of 50,000 per API process; for the shared runs the sharing cost,
-  the allocation's gap to its bound and the pricing iterations. Beside them, one item at a time
-  through each policy's recommend() (what a per-item request computes today).
+  again in volumes of 0.2 to 3.0 per unit; and a truck of twice the load, which never binds);
+  item-locations per second (items x stores / wall seconds, median of repeated runs after a
+  warm-up, and per CPU second, as the machine is shared) against the target of 50,000 per API
+  process; for the shared runs the sharing cost, the allocation's gap to its bound and the
+  pricing iterations. Beside them, one item at a time through each policy's recommend() (what
+  a per-item request computes today).
 * policy_memory: bytes of each distinct policy's arrays once decoded from storage
   (service.codec round trip), per exact and priced policy, and the stored (compressed) bytes.
 
@@ -75,6 +76,8 @@ LANES = (
 LANE_LIMIT = 2
 # Shared trucks carry this share of the uncoupled load (binding on every lane that moves).
 TRUCK_SHARE = 0.6
+# ... and, to show what an unused truck costs, twice the uncoupled load (never binding).
+ROOMY_SHARE = 2.0
 PRICED_OPTIONS = PricedOptions(replications=16, target_half_width=0.01)
 
 
@@ -190,6 +193,7 @@ def _rate_row(name: str, a: Assortment, wall: float, cpu: float, items: int) -> 
         "item_locations_per_cpu_second": cells / cpu if cpu > 0 else None,
         "target_per_second": TARGET_ITEM_LOCATIONS_PER_SECOND,
         "target_met": rate >= TARGET_ITEM_LOCATIONS_PER_SECOND,
+        "target_met_cpu": cpu > 0 and cells / cpu >= TARGET_ITEM_LOCATIONS_PER_SECOND,
     }
 
 
@@ -208,9 +212,14 @@ def bulk_moves(a: Assortment, quick: bool) -> dict[str, Any]:
     wall, cpu = _timed(uncoupled, repeats)
     rows.append(_rate_row("uncoupled", a, wall, cpu, a.n_items) | {"moving_items": _moving(free)})
 
-    for unit, volume in (("units", np.ones(a.n_items)), ("volume", a.unit_volume)):
+    trucks = (
+        ("units", np.ones(a.n_items), TRUCK_SHARE),
+        ("volume", a.unit_volume, TRUCK_SHARE),
+        ("units", np.ones(a.n_items), ROOMY_SHARE),
+    )
+    for unit, volume, share in trucks:
         load = (free.flows * volume[:, None]).sum(axis=0)
-        capacity = np.floor(TRUCK_SHARE * load * 100.0) / 100.0
+        capacity = np.floor(share * load * 100.0) / 100.0
 
         def shared(capacity: NDArray[np.float64] = capacity, unit: str = unit) -> Any:
             return assortment_moves(
@@ -228,10 +237,10 @@ def bulk_moves(a: Assortment, quick: bool) -> dict[str, Any]:
         assert np.all(used <= capacity + 1e-9), "shared capacity exceeded"
         wall, cpu = _timed(shared, repeats)
         rows.append(
-            _rate_row(f"shared trucks ({unit})", a, wall, cpu, a.n_items)
+            _rate_row(f"trucks at {share:.0%} of load ({unit})", a, wall, cpu, a.n_items)
             | {
                 "moving_items": _moving(result),
-                "truck_share": TRUCK_SHARE,
+                "truck_share": share,
                 "uncoupled_value": allocation.unconstrained_value,
                 "value": allocation.value,
                 "bound": allocation.bound,
@@ -307,25 +316,34 @@ SECTIONS: dict[str, Section] = {"bulk_moves": bulk_moves, "policy_memory": polic
 
 def print_bulk(section: dict[str, Any]) -> None:
     print(
-        f"{'bulk moves':<32} {'items':>6} {'item-loc':>8} {'seconds':>8} {'cpu s':>8} "
-        f"{'item-loc/s':>11} {'target':>14} {'sharing cost':>12} {'gap':>9} {'iter':>4}"
+        f"{'bulk moves':<34} {'items':>6} {'item-loc':>8} {'seconds':>8} {'cpu s':>7} "
+        f"{'item-loc/s':>10} {'per cpu s':>10} {'target wall/cpu':>20} {'sharing cost':>12} "
+        f"{'gap':>8} {'iter':>4}"
     )
     for row in section["rows"]:
-        target = (
-            f">={row['target_per_second']:,.0f} {'pass' if row['target_met'] else 'FAIL'}"
-            if not row["name"].startswith("one item")
-            else ""
-        )
+        target = ""
+        if not row["name"].startswith("one item"):
+            verdict = "/".join(
+                "pass" if met else "FAIL" for met in (row["target_met"], row["target_met_cpu"])
+            )
+            target = f">={row['target_per_second']:,.0f} {verdict}"
         sharing = (
-            f"{row['sharing_cost']:>12.2f} {row['gap']:>9.2f} {row['pricing_iterations']:>4}"
+            f"{row['sharing_cost']:>12.2f} {row['gap']:>8.2f} {row['pricing_iterations']:>4}"
             if "sharing_cost" in row
             else ""
         )
+        per_cpu = row["item_locations_per_cpu_second"]
         print(
-            f"{row['name']:<32} {row['items']:>6} {row['item_locations']:>8} "
-            f"{row['seconds']:>8.4f} {row['cpu_seconds']:>8.4f} "
-            f"{row['item_locations_per_second']:>11,.0f} {target:>14} {sharing}"
+            f"{row['name']:<34} {row['items']:>6} {row['item_locations']:>8} "
+            f"{row['seconds']:>8.4f} {row['cpu_seconds']:>7.4f} "
+            f"{row['item_locations_per_second']:>10,.0f} "
+            f"{per_cpu:>10,.0f} {target:>20} {sharing}"
         )
+    print(
+        "seconds: median wall time of repeated runs after a warm-up; cpu s: least CPU time of "
+        "the process (not inflated by waiting for a shared core); gap: the allocation's bound "
+        "less its value (currency); iter: pricing iterations."
+    )
 
 
 def print_memory(section: dict[str, Any]) -> None:
