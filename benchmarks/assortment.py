@@ -23,7 +23,9 @@ Sections, one function each (`SECTIONS`), each returning its part of the JSON re
   pricing iterations. Beside them, one item at a time through each policy's recommend() (what
   a per-item request computes today).
 * policy_memory: bytes of each distinct policy's arrays once decoded from storage
-  (service.codec round trip), per exact and priced policy, and the stored (compressed) bytes.
+  (service.codec round trip), per exact, weekly and priced policy, the stored (compressed)
+  bytes, and the bytes solver.assortment derives and keeps beside each policy it has served
+  (after bulk_moves; 0 when that section did not run).
 
 Later sections (create, calibrate, solve, closing to pick lists through the service) belong in
 SECTIONS too. A table goes to stdout and everything to JSON (default
@@ -55,7 +57,7 @@ import solve  # machine facts, revision and the shared JSON writer
 
 from service.codec import decode_policy, encode_policy
 from solver import NetworkSpec, PricedOptions, solve_network
-from solver.assortment import ItemPolicy, assortment_moves
+from solver.assortment import ItemPolicy, assortment_moves, derived_bytes
 from solver.priced import solve_priced
 
 DEFAULT_OUT = Path(__file__).resolve().parent / "results" / "assortment.json"
@@ -280,6 +282,7 @@ def policy_memory(a: Assortment, quick: bool) -> dict[str, Any]:
                 "stock_states": int(np.prod(policy.shape)),
                 "decoded_bytes": _array_bytes(decoded),
                 "stored_bytes": len(encoded.arrays),
+                "derived_bytes": derived_bytes(policy),
             }
         )
     summary = {}
@@ -291,6 +294,7 @@ def policy_memory(a: Assortment, quick: bool) -> dict[str, Any]:
             "median_decoded_bytes": float(np.median([r["decoded_bytes"] for r in of_kind])),
             "max_decoded_bytes": int(max(r["decoded_bytes"] for r in of_kind)),
             "median_stored_bytes": float(np.median([r["stored_bytes"] for r in of_kind])),
+            "median_derived_bytes": float(np.median([r["derived_bytes"] for r in of_kind])),
         }
     return {"policies": rows, "by_kind": summary}
 
@@ -349,14 +353,19 @@ def print_bulk(section: dict[str, Any]) -> None:
 def print_memory(section: dict[str, Any]) -> None:
     print(
         f"{'policy memory':<14} {'policies':>8} {'states':>7} {'decoded B':>10} "
-        f"{'max B':>10} {'stored B':>9}"
+        f"{'max B':>10} {'stored B':>9} {'derived B':>9}"
     )
     for kind, row in section["by_kind"].items():
         print(
             f"{kind:<14} {row['policies']:>8} {row['median_states']:>7.0f} "
             f"{row['median_decoded_bytes']:>10,.0f} {row['max_decoded_bytes']:>10,} "
-            f"{row['median_stored_bytes']:>9,.0f}"
+            f"{row['median_stored_bytes']:>9,.0f} {row['median_derived_bytes']:>9,.0f}"
         )
+    print(
+        "decoded B: the policy's numpy arrays after a storage round trip (median; max B the "
+        "largest); stored B: its compressed blob; derived B: what solver.assortment keeps beside "
+        "it after serving moves with shared trucks (flow shifts, costs, smaller flows)."
+    )
 
 
 PRINTERS: dict[str, Callable[[dict[str, Any]], None]] = {

@@ -70,6 +70,7 @@ import itertools
 import weakref
 from collections.abc import Sequence
 from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
@@ -80,7 +81,7 @@ from solver.priced_result import PricedPolicy
 from solver.result import PolicyResult, phase_of_weekday
 from solver.sharing import ItemChoices, SharedAllocation, allocate_shared_capacity
 
-__all__ = ["AssortmentMoves", "ItemPolicy", "assortment_moves"]
+__all__ = ["AssortmentMoves", "ItemPolicy", "assortment_moves", "derived_bytes"]
 
 ItemPolicy = PolicyResult | PricedPolicy
 
@@ -311,48 +312,80 @@ def _groups(index: NDArray[np.int64]) -> list[tuple[int, NDArray[np.int64]]]:
 
 @dataclass(frozen=True)
 class _Tables:
-    """Per flow of an exact policy's table: out, inn (A, N); shift (A,), the change of the flat
-    stock index; cost (A,); smaller (A, L), the row moving one unit less on each lane (A where
-    that flow is not in the table); levels: the rows of each number of units moved, fewest
-    first (the table is sorted by units)."""
+    """Derived from an exact policy's flow table (A flows): shift (A,), the change of the flat
+    stock index under each flow; cost (A,), currency. The candidates of shared capacity also
+    use `smaller`, built on first use and kept, and `endpoints`."""
 
-    out: NDArray[np.int64]
-    inn: NDArray[np.int64]
+    flows: NDArray[np.int64]
+    lane_from: NDArray[np.int64]
+    lane_to: NDArray[np.int64]
+    n_locations: int
     shift: NDArray[np.int64]
     cost: NDArray[np.float64]
-    smaller: NDArray[np.int64]
-    levels: tuple[NDArray[np.int64], ...]
+
+    def endpoints(self) -> tuple[NDArray[np.int64], NDArray[np.int64]]:
+        """Units sent out of and received by each location under each flow, (A, N) each
+        (cheap: not kept)."""
+        return flow_endpoints(self.flows, self.lane_from, self.lane_to, self.n_locations)
+
+    @cached_property
+    def smaller(self) -> tuple[NDArray[np.int32], tuple[NDArray[np.int32], ...]]:
+        """(A, L): the row moving one unit less on each lane (A where that flow is not in the
+        table); and the rows of each number of units moved, fewest first (the table is sorted
+        by units), skipping moving nothing."""
+        n_flows, n_lanes = self.flows.shape
+        row_of: dict[bytes, int] = {row.tobytes(): k for k, row in enumerate(self.flows)}
+        less = np.full((n_flows, n_lanes), n_flows, dtype=np.int32)
+        for k, row in enumerate(self.flows):
+            for lane in np.flatnonzero(row):
+                fewer = row.copy()
+                fewer[lane] -= 1
+                found = row_of.get(fewer.tobytes())
+                less[k, lane] = n_flows if found is None else found
+        units = self.flows.sum(axis=1)
+        levels = tuple(
+            np.flatnonzero(units == n).astype(np.int32) for n in np.unique(units) if n > 0
+        )
+        return less, levels
+
+    @property
+    def nbytes(self) -> int:
+        """Bytes of the arrays derived so far (the flow table itself belongs to the policy)."""
+        total = self.shift.nbytes + self.cost.nbytes
+        derived = self.__dict__
+        if "smaller" in derived:
+            less, levels = self.smaller
+            total += less.nbytes + sum(rows.nbytes for rows in levels)
+        return total
 
 
 # Derived once per cached policy object (policies are immutable; entries go with them).
 _TABLES: weakref.WeakKeyDictionary[PolicyResult, _Tables] = weakref.WeakKeyDictionary()
 
 
+def derived_bytes(policy: ItemPolicy) -> int:
+    """Bytes this module keeps beside a policy once it has served moves (0 for a priced policy
+    or one not used yet)."""
+    tables = _TABLES.get(policy) if isinstance(policy, PolicyResult) else None
+    return 0 if tables is None else tables.nbytes
+
+
 def _exact_tables(policy: PolicyResult, layout: _Layout) -> _Tables:
     tables = _TABLES.get(policy)
     if tables is None:
-        tables = _build_tables(policy, layout)
+        flows = policy.flows
+        out, inn = flow_endpoints(flows, layout.lane_from, layout.lane_to, layout.n_locations)
+        strides = np.cumprod((1, *policy.shape[:0:-1]))[::-1].astype(np.int64)
+        tables = _Tables(
+            flows=flows,
+            lane_from=layout.lane_from,
+            lane_to=layout.lane_to,
+            n_locations=layout.n_locations,
+            shift=(inn - out) @ strides,
+            cost=flow_costs(flows, policy.lane_costs, policy.dispatch_costs),
+        )
         _TABLES[policy] = tables
     return tables
-
-
-def _build_tables(policy: PolicyResult, layout: _Layout) -> _Tables:
-    flows = policy.flows
-    out, inn = flow_endpoints(flows, layout.lane_from, layout.lane_to, layout.n_locations)
-    strides = np.cumprod((1, *policy.shape[:0:-1]))[::-1].astype(np.int64)
-    shift = (inn - out) @ strides
-    cost = flow_costs(flows, policy.lane_costs, policy.dispatch_costs)
-    n_flows, n_lanes = flows.shape
-    row_of = {row.tobytes(): k for k, row in enumerate(flows)}
-    smaller = np.full((n_flows, n_lanes), n_flows, dtype=np.int64)
-    for k, row in enumerate(flows):
-        for lane in np.flatnonzero(row):
-            less = row.copy()
-            less[lane] -= 1
-            smaller[k, lane] = row_of.get(less.tobytes(), n_flows)  # type: ignore[assignment]
-    units = flows.sum(axis=1)
-    levels = tuple(np.flatnonzero(units == n) for n in np.unique(units) if n > 0)
-    return _Tables(out, inn, shift, cost, smaller, levels)
 
 
 def _exact_moves(
@@ -393,7 +426,8 @@ def _exact_candidates(
     see _best_smaller); for an item that the policy leaves in place, moving nothing only."""
     n_flows = policy.n_flows
     capacities = np.array(policy.capacities, dtype=np.int64)
-    lo, hi = feasible_bounds(tables.out, tables.inn, capacities, policy.floors[phase])
+    out, inn = tables.endpoints()
+    lo, hi = feasible_bounds(out, inn, capacities, policy.floors[phase])
     # Per location i, whether each stock 0..C_i lies in each flow's box: (C_i + 1, A).
     inside = [
         (np.arange(c + 1)[:, None] >= lo[:, i]) & (np.arange(c + 1)[:, None] <= hi[:, i])
@@ -454,8 +488,9 @@ def _best_smaller(q: NDArray[np.float64], tables: _Tables) -> NDArray[np.float64
     best = np.full((q.shape[0], q.shape[1] + 1), -np.inf)
     reach = np.full_like(best, -np.inf)  # max(q, best): the best flow <= f, f included
     reach[:, 0] = q[:, 0]
-    for rows in tables.levels:
-        smaller = tables.smaller[rows]
+    less, levels = tables.smaller
+    for rows in levels:
+        smaller = less[rows]
         top = reach[:, smaller[:, 0]]
         for lane in range(1, smaller.shape[1]):
             np.maximum(top, reach[:, smaller[:, lane]], out=top)
