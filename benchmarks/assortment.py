@@ -22,6 +22,10 @@ Sections, one function each (`SECTIONS`), each returning its part of the JSON re
   process; for the shared runs the sharing cost, the allocation's gap to its bound and the
   pricing iterations. Beside them, one item at a time through each policy's recommend() (what
   a per-item request computes today).
+* sharing_quality: the allocation on the 60% trucks (units) beside the best assignment over the
+  same candidates, solved exactly by scipy.optimize.milp (HiGHS branch and bound, stopped
+  after 300 s): what the allocation misses, as currency and as a share of the sharing cost,
+  and how far its bound lies above the best value.
 * policy_memory: bytes of each distinct policy's arrays once decoded from storage
   (service.codec round trip), per exact, weekly and priced policy, the stored (compressed)
   bytes, and the bytes solver.assortment derives and keeps beside each policy it has served
@@ -50,6 +54,8 @@ from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
+from scipy import sparse
+from scipy.optimize import Bounds, LinearConstraint, milp
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
@@ -81,6 +87,8 @@ TRUCK_SHARE = 0.6
 # ... and, to show what an unused truck costs, twice the uncoupled load (never binding).
 ROOMY_SHARE = 2.0
 PRICED_OPTIONS = PricedOptions(replications=16, target_half_width=0.01)
+# The exact assignment by HiGHS is a reference, not a contender: stop it after this long.
+MILP_SECONDS = 300.0
 
 
 @dataclass(frozen=True)
@@ -266,6 +274,48 @@ def bulk_moves(a: Assortment, quick: bool) -> dict[str, Any]:
     return {"rows": rows}
 
 
+def sharing_quality(a: Assortment, quick: bool) -> dict[str, Any]:
+    """The allocation on trucks at 60% of the uncoupled load (units) against the best
+    assignment over the same candidates, found exactly by scipy.optimize.milp (HiGHS)."""
+    free = assortment_moves(a.policies, a.policy_of, a.stocks)
+    capacity = np.floor(TRUCK_SHARE * free.flows.sum(axis=0) * 100.0) / 100.0
+    moves = assortment_moves(a.policies, a.policy_of, a.stocks, truck_capacity=capacity)
+    allocation, choices = moves.sharing, moves.candidates
+    assert allocation is not None and choices is not None
+    k, m = choices.item.size, choices.n_items
+    one_each = sparse.csr_matrix((np.ones(k), (choices.item, np.arange(k))), shape=(m, k))
+    started = time.perf_counter()
+    best = milp(
+        -choices.value,
+        constraints=[
+            LinearConstraint(one_each, 1.0, 1.0),
+            LinearConstraint(sparse.csr_matrix(choices.flows.T.astype(float)), -np.inf, capacity),
+        ],
+        integrality=np.ones(k),
+        bounds=Bounds(0, 1),
+        options={"time_limit": MILP_SECONDS},
+    )
+    seconds = time.perf_counter() - started
+    optimum = float(-best.fun) if best.status == 0 else None
+    row: dict[str, Any] = {
+        "items": m,
+        "candidates": k,
+        "truck_share": TRUCK_SHARE,
+        "uncoupled_value": allocation.unconstrained_value,
+        "value": allocation.value,
+        "bound": allocation.bound,
+        "sharing_cost": allocation.sharing_cost,
+        "milp_status": int(best.status),
+        "milp_seconds": seconds,
+        "best_value": optimum,
+    }
+    if optimum is not None:
+        row["loss"] = optimum - allocation.value
+        row["loss_share_of_sharing_cost"] = row["loss"] / max(allocation.sharing_cost, 1e-12)
+        row["bound_slack"] = allocation.bound - optimum
+    return row
+
+
 def _moving(moves: Any) -> int:
     return int(np.count_nonzero(moves.flows.any(axis=1)))
 
@@ -312,7 +362,11 @@ def _array_bytes(policy: ItemPolicy) -> int:
 
 
 Section = Callable[[Assortment, bool], dict[str, Any]]
-SECTIONS: dict[str, Section] = {"bulk_moves": bulk_moves, "policy_memory": policy_memory}
+SECTIONS: dict[str, Section] = {
+    "bulk_moves": bulk_moves,
+    "sharing_quality": sharing_quality,
+    "policy_memory": policy_memory,
+}
 
 
 # -- report ----------------------------------------------------------------------------------
@@ -368,8 +422,32 @@ def print_memory(section: dict[str, Any]) -> None:
     )
 
 
+def print_quality(row: dict[str, Any]) -> None:
+    print(
+        f"{'sharing quality':<16} {'items':>6} {'cands':>6} {'sharing cost':>12} "
+        f"{'loss vs best':>12} {'of cost':>8} {'bound slack':>11} {'milp s':>7}"
+    )
+    if row["best_value"] is None:
+        print(
+            f"{'':<16} milp stopped with status {row['milp_status']} ({row['milp_seconds']:.0f} s)"
+        )
+        return
+    print(
+        f"{'trucks at 60%':<16} {row['items']:>6} {row['candidates']:>6} "
+        f"{row['sharing_cost']:>12.2f} {row['loss']:>12.2f} "
+        f"{row['loss_share_of_sharing_cost']:>8.1%} {row['bound_slack']:>11.2f} "
+        f"{row['milp_seconds']:>7.1f}"
+    )
+    print(
+        "loss vs best: the best assignment over the same candidates (scipy.optimize.milp, "
+        "HiGHS) less the allocation's value, currency; of cost: that loss as a share of what "
+        "the sharing costs; bound slack: the allocation's bound less the best value."
+    )
+
+
 PRINTERS: dict[str, Callable[[dict[str, Any]], None]] = {
     "bulk_moves": print_bulk,
+    "sharing_quality": print_quality,
     "policy_memory": print_memory,
 }
 

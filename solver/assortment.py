@@ -101,6 +101,8 @@ class AssortmentMoves:
         each item's single-stock recommendation (expected_value, value_without_transfers).
     transfer_cost: shape (M,), unit and dispatch costs of each item's moves (currency).
     sharing: the allocation of shared truck capacity (None when no capacity was given).
+    candidates: the flows the allocation chose among, with their values capped as the module
+        docs say (None when no capacity was given, or no items).
     """
 
     flows: NDArray[np.int64]
@@ -109,6 +111,7 @@ class AssortmentMoves:
     value_without_moves: NDArray[np.float64]
     transfer_cost: NDArray[np.float64]
     sharing: SharedAllocation | None
+    candidates: ItemChoices | None = None
 
     @property
     def gain(self) -> NDArray[np.float64]:
@@ -219,7 +222,7 @@ def assortment_moves(
             groups.append(_Group(policy, phase, items, sg, None))
         flows[items], value[items], without[items], cost[items] = f, v, v0, c
 
-    sharing = None
+    sharing, choices = None, None
     if truck_capacity is not None:
         volume, capacity = _check_sharing(m, n_lanes, truck_capacity, unit_volume)
         # Lanes the uncoupled moves overload; an item that uses none of them keeps its best
@@ -242,6 +245,7 @@ def assortment_moves(
         value_without_moves=without,
         transfer_cost=cost,
         sharing=sharing,
+        candidates=choices,
     )
 
 
