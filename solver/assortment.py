@@ -59,6 +59,10 @@ solver's tolerance, so the cap changes values by at most that tolerance; it make
 allocation, when no capacity binds, exactly the uncoupled moves (the first of tied candidates
 is taken). The values reported per item are the uncapped q.
 
+Prices are sought until the bound is within 0.3% of the uncoupled moves' total gain over moving
+nothing (solver.sharing's tolerance, relative to the bound, is set accordingly: the bound is
+mostly the value of the stock itself, which no move changes much).
+
 `sharing` of the result then holds the allocation: its value and bound (bound - value bounds
 what the allocation may miss) and its sharing_cost (the uncoupled total less the allocation's,
 what the shared truck costs tonight).
@@ -85,6 +89,9 @@ __all__ = ["AssortmentMoves", "ItemPolicy", "assortment_moves", "derived_bytes"]
 
 ItemPolicy = PolicyResult | PricedPolicy
 
+# Pricing of shared trucks stops when the bound is within this share of the uncoupled moves'
+# total gain (over moving nothing) of its cutting-plane estimate.
+_PRICING_SHARE = 3e-3
 # Candidates of a chunk of items are computed as (items, flows) arrays, a few of them at once;
 # chunks keep each near this many elements.
 _CHUNK_ELEMENTS = 1_000_000
@@ -234,7 +241,12 @@ def assortment_moves(
         parts = _candidates(groups, contested, flows, value, without, cost)
         if m:
             choices, real, costs = _choices(parts, n_lanes)
-            sharing = allocate_shared_capacity(choices, volume, capacity)
+            # solver.sharing stops pricing at a tolerance relative to the bound, which here is
+            # mostly the value of the stock itself; measure it against what the moves gain.
+            moves_gain = float(np.sum(value - without))
+            scale = max(1.0, abs(float(np.sum(value))))
+            tolerance = max(1e-12, _PRICING_SHARE * moves_gain / scale)
+            sharing = allocate_shared_capacity(choices, volume, capacity, tolerance=tolerance)
             flows, value, cost = sharing.flows, real[sharing.chosen], costs[sharing.chosen]
         else:
             sharing = _no_items(n_lanes)
