@@ -229,7 +229,7 @@ def bulk_moves(a: Assortment, quick: bool) -> dict[str, Any]:
     )
     for unit, volume, share in trucks:
         load = (free.flows * volume[:, None]).sum(axis=0)
-        capacity = np.floor(share * load * 100.0) / 100.0
+        capacity = _truck(share * load, unit)
 
         def shared(capacity: NDArray[np.float64] = capacity, unit: str = unit) -> Any:
             return assortment_moves(
@@ -278,7 +278,7 @@ def sharing_quality(a: Assortment, quick: bool) -> dict[str, Any]:
     """The allocation on trucks at 60% of the uncoupled load (units) against the best
     assignment over the same candidates, found exactly by scipy.optimize.milp (HiGHS)."""
     free = assortment_moves(a.policies, a.policy_of, a.stocks)
-    capacity = np.floor(TRUCK_SHARE * free.flows.sum(axis=0) * 100.0) / 100.0
+    capacity = _truck(TRUCK_SHARE * free.flows.sum(axis=0), "units")
     moves = assortment_moves(a.policies, a.policy_of, a.stocks, truck_capacity=capacity)
     allocation, choices = moves.sharing, moves.candidates
     assert allocation is not None and choices is not None
@@ -320,6 +320,14 @@ def sharing_quality(a: Assortment, quick: bool) -> dict[str, Any]:
         row["loss_share_of_sharing_cost"] = row["loss"] / max(allocation.sharing_cost, 1e-12)
         row["bound_slack"] = allocation.bound - optimum
     return row
+
+
+def _truck(room: NDArray[np.float64], unit: str) -> NDArray[np.float64]:
+    """Truck capacities: whole units, or volumes to two decimals (rounded down)."""
+    if unit == "units":
+        return np.floor(room)
+    rounded: NDArray[np.float64] = np.floor(room * 100.0) / 100.0
+    return rounded
 
 
 def _moving(moves: Any) -> int:
