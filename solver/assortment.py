@@ -590,6 +590,10 @@ def _check_sharing(
         raise ValueError(
             f"truck_capacity must hold {n_lanes} numbers >= 0, one per lane (inf: not shared)"
         )
+    if unit_volume is None:
+        # Loads in units are whole numbers: a fractional capacity holds its whole part, and
+        # saying so tightens the bound.
+        capacity = np.where(np.isfinite(capacity), np.floor(capacity + 1e-9), capacity)
     volume = np.ones(m) if unit_volume is None else np.asarray(unit_volume, dtype=np.float64)
     if volume.shape != (m,) or not np.all(np.isfinite(volume) & (volume > 0)):
         raise ValueError(f"unit_volume must hold {m} positive numbers, one per item")

@@ -471,3 +471,16 @@ def test_bad_truck_capacity_or_volume_is_refused(
         assortment_moves(
             policies(), [0, 1], [[1, 1, 1], [2, 2, 2]], truck_capacity=capacity, unit_volume=volume
         )
+
+
+def test_a_truck_counted_in_units_holds_whole_units() -> None:
+    pols = policies()
+    policy_of, stocks = mixed_assortment(31, 200)
+    free = assortment_moves(pols, policy_of, stocks)
+    whole = np.floor(free.flows.sum(axis=0) * 0.5)
+    a = assortment_moves(pols, policy_of, stocks, truck_capacity=whole + 0.7)
+    b = assortment_moves(pols, policy_of, stocks, truck_capacity=whole)
+    assert a.sharing is not None and b.sharing is not None
+    np.testing.assert_array_equal(a.flows, b.flows)
+    assert a.sharing.bound == b.sharing.bound
+    assert np.all(a.flows.sum(axis=0) <= whole)
