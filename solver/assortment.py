@@ -26,7 +26,8 @@ as PricedPolicy.recommend reports them. Either way each item's answer is bit for
 policy's single-stock recommendation gives.
 
 Shared truck capacity. A lane l may carry at most cap_l a night over all items, counted in units
-(every unit weighs 1) or in volume (a unit of item m weighs w_m). Item m's candidates tonight
+(every unit weighs 1; a fractional cap_l then holds its whole part) or in volume (a unit of item
+m weighs w_m). Item m's candidates tonight
 are flows k with a value q_k on the scale above, and solver.sharing.allocate_shared_capacity
 picks one per item within the capacities (Lagrangian prices on the lanes, a feasible
 allocation and a bound on the best one; see that module). The candidates:
