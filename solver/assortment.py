@@ -26,26 +26,43 @@ as PricedPolicy.recommend reports them. Either way each item's answer is bit for
 policy's single-stock recommendation gives.
 
 Shared truck capacity. A lane l may carry at most cap_l a night over all items, counted in units
-(every unit weighs 1) or in volume (a unit of item m weighs w_m). Item m's candidates tonight
+(every unit weighs 1; a fractional cap_l then holds its whole part) or in volume (a unit of item
+m weighs w_m). Item m's candidates tonight
 are flows k with a value q_k on the scale above, and solver.sharing.allocate_shared_capacity
 picks one per item within the capacities (Lagrangian prices on the lanes, a feasible
 allocation and a bound on the best one; see that module). The candidates:
 
 * exact policy: every flow of the table allowed on night d and feasible at s_m (no location
   sends more than it holds or ends below its floor after sending, none ends above capacity:
-  the boxes of solver.model.feasible_bounds), q_k = U_d(y_k) - cost(f_k) [- g]. Those worth no
-  more than moving nothing are dropped: moving nothing uses no capacity, so such a candidate is
-  never needed, neither in the best allocation nor in the bound D(pi) at any prices pi >= 0.
+  the boxes of solver.model.feasible_bounds), q_k = U_d(y_k) - cost(f_k) [- g], less those no
+  candidate needs: a flow worth no more than some smaller flow g <= f (lane by lane, e.g.
+  moving nothing) is dropped, since g uses no more of any truck, so f is needed neither in the
+  best allocation nor in the bound D(pi) at any prices pi >= 0. The best smaller flow is found
+  level by level over the table (units moved), taking one unit off one lane at a time (a
+  smaller flow of an acyclic flow within the limits is acyclic and within them, so the table
+  of solver.build normally holds it; where it does not, that chain is not followed and fewer
+  flows are dropped). An item whose policy moves nothing has no candidate but moving nothing
+  (see the cap below).
 * priced policy: the plan, moving nothing, and for every lane the plan uses, the plan re-made
   with that lane closed tonight and with one unit less allowed on it (plan_batch with tighter
   lane limits; all of an item's variants in the same batch call). This is not every flow, so
   the allocation and bound are over these candidates only.
+
+Only the items whose own move uses a lane that the uncoupled moves overload get these
+candidates; every other item keeps its own move and moving nothing. Whatever the prices on the
+overloaded lanes, its own move stays its best (it pays none of them), so D(pi) is unchanged,
+and the allocation's repair only ever switches items that use an overloaded lane. When no lane
+is overloaded, no candidate is built at all.
 
 The policy's own move is the item's first candidate, and no other candidate of the item is
 valued above it (q_k is capped at q_{f_m}). The policy is greedy in its values up to the
 solver's tolerance, so the cap changes values by at most that tolerance; it makes the
 allocation, when no capacity binds, exactly the uncoupled moves (the first of tied candidates
 is taken). The values reported per item are the uncapped q.
+
+Prices are sought until the bound is within 0.3% of the uncoupled moves' total gain over moving
+nothing (solver.sharing's tolerance, relative to the bound, is set accordingly: the bound is
+mostly the value of the stock itself, which no move changes much).
 
 `sharing` of the result then holds the allocation: its value and bound (bound - value bounds
 what the allocation may miss) and its sharing_cost (the uncoupled total less the allocation's,
@@ -55,8 +72,10 @@ what the shared truck costs tonight).
 from __future__ import annotations
 
 import itertools
+import weakref
 from collections.abc import Sequence
 from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
@@ -67,13 +86,16 @@ from solver.priced_result import PricedPolicy
 from solver.result import PolicyResult, phase_of_weekday
 from solver.sharing import ItemChoices, SharedAllocation, allocate_shared_capacity
 
-__all__ = ["AssortmentMoves", "ItemPolicy", "assortment_moves"]
+__all__ = ["AssortmentMoves", "ItemPolicy", "assortment_moves", "derived_bytes"]
 
 ItemPolicy = PolicyResult | PricedPolicy
 
-# Feasibility of every allowed flow at every stock of a chunk of items is computed as a
-# (items, flows, locations) array; chunks keep it near this many elements.
-_CHUNK_ELEMENTS = 4_000_000
+# Pricing of shared trucks stops when the bound is within this share of the uncoupled moves'
+# total gain (over moving nothing) of its cutting-plane estimate.
+_PRICING_SHARE = 3e-3
+# Candidates of a chunk of items are computed as (items, flows) arrays, a few of them at once;
+# chunks keep each near this many elements.
+_CHUNK_ELEMENTS = 1_000_000
 
 
 @dataclass(frozen=True, eq=False)
@@ -87,6 +109,8 @@ class AssortmentMoves:
         each item's single-stock recommendation (expected_value, value_without_transfers).
     transfer_cost: shape (M,), unit and dispatch costs of each item's moves (currency).
     sharing: the allocation of shared truck capacity (None when no capacity was given).
+    candidates: the flows the allocation chose among, with their values capped as the module
+        docs say (None when no capacity was given, or no items).
     """
 
     flows: NDArray[np.int64]
@@ -95,6 +119,7 @@ class AssortmentMoves:
     value_without_moves: NDArray[np.float64]
     transfer_cost: NDArray[np.float64]
     sharing: SharedAllocation | None
+    candidates: ItemChoices | None = None
 
     @property
     def gain(self) -> NDArray[np.float64]:
@@ -128,6 +153,18 @@ class _Candidates:
     value: NDArray[np.float64]  # uncapped q
     capped: NDArray[np.float64]
     cost: NDArray[np.float64]
+
+
+@dataclass(frozen=True)
+class _Group:
+    """The items of one policy: their stocks, phase and (exact policies) table, actions and
+    stock indexes."""
+
+    policy: ItemPolicy
+    phase: int
+    items: NDArray[np.int64]
+    stocks: NDArray[np.int64]
+    exact: tuple[_Tables, NDArray[np.int64], NDArray[np.int64]] | None
 
 
 def assortment_moves(
@@ -179,31 +216,41 @@ def assortment_moves(
     value = np.zeros(m)
     without = np.zeros(m)
     cost = np.zeros(m)
-    groups = _groups(index)
-    parts: list[_Candidates] = []
-    for p, items in groups:
+    groups: list[_Group] = []
+    for p, items in _groups(index):
         policy = policies[p]
         phase = phase_of_weekday(weekday, policy.phases)
         sg = s[items]
         if isinstance(policy, PolicyResult):
             tables = _exact_tables(policy, layout)
             f, v, v0, c, action, idx = _exact_moves(policy, tables, sg, phase)
-            if truck_capacity is not None:
-                parts.append(_exact_candidates(policy, tables, items, sg, phase, action, idx, v0))
+            groups.append(_Group(policy, phase, items, sg, (tables, action, idx)))
         else:
             f, v, v0, c = _priced_moves(policy, sg, phase)
-            if truck_capacity is not None:
-                parts.append(_priced_candidates(policy, items, sg, phase, f, v, v0, c))
+            groups.append(_Group(policy, phase, items, sg, None))
         flows[items], value[items], without[items], cost[items] = f, v, v0, c
 
-    sharing = None
-    if truck_capacity is not None and m:
-        volume = np.ones(m) if unit_volume is None else np.asarray(unit_volume, dtype=np.float64)
-        choices, real, costs = _choices(parts, n_lanes)
-        sharing = allocate_shared_capacity(choices, volume, truck_capacity)
-        flows, value, cost = sharing.flows, real[sharing.chosen], costs[sharing.chosen]
-    elif truck_capacity is not None:
-        raise ValueError("shared truck capacity needs at least one item")
+    sharing, choices = None, None
+    if truck_capacity is not None:
+        volume, capacity = _check_sharing(m, n_lanes, truck_capacity, unit_volume)
+        # Lanes the uncoupled moves overload; an item that uses none of them keeps its best
+        # move at any prices on them, so it needs no other candidate (module docs).
+        load = (flows * volume[:, None]).sum(axis=0)
+        # (A hair below capacity counts too: solver.sharing sums the same loads its own way.)
+        binding: NDArray[np.bool_] = np.isfinite(capacity) & (load > capacity * (1 - 1e-9) - 1e-9)
+        contested = np.flatnonzero(np.any(flows[:, binding] > 0, axis=1))
+        parts = _candidates(groups, contested, flows, value, without, cost)
+        if m:
+            choices, real, costs = _choices(parts, n_lanes)
+            # solver.sharing stops pricing at a tolerance relative to the bound, which here is
+            # mostly the value of the stock itself; measure it against what the moves gain.
+            moves_gain = float(np.sum(value - without))
+            scale = max(1.0, abs(float(np.sum(value))))
+            tolerance = max(1e-12, _PRICING_SHARE * moves_gain / scale)
+            sharing = allocate_shared_capacity(choices, volume, capacity, tolerance=tolerance)
+            flows, value, cost = sharing.flows, real[sharing.chosen], costs[sharing.chosen]
+        else:
+            sharing = _no_items(n_lanes)
     return AssortmentMoves(
         flows=flows,
         post_move_stock=s + flows @ layout.incidence,
@@ -211,6 +258,7 @@ def assortment_moves(
         value_without_moves=without,
         transfer_cost=cost,
         sharing=sharing,
+        candidates=choices,
     )
 
 
@@ -281,21 +329,80 @@ def _groups(index: NDArray[np.int64]) -> list[tuple[int, NDArray[np.int64]]]:
 
 @dataclass(frozen=True)
 class _Tables:
-    """Per flow of an exact policy's table: out, inn (A, N); shift (A,), the change of the flat
-    stock index; cost (A,)."""
+    """Derived from an exact policy's flow table (A flows): shift (A,), the change of the flat
+    stock index under each flow; cost (A,), currency. The candidates of shared capacity also
+    use `smaller`, built on first use and kept, and `endpoints`."""
 
-    out: NDArray[np.int64]
-    inn: NDArray[np.int64]
+    flows: NDArray[np.int64]
+    lane_from: NDArray[np.int64]
+    lane_to: NDArray[np.int64]
+    n_locations: int
     shift: NDArray[np.int64]
     cost: NDArray[np.float64]
 
+    def endpoints(self) -> tuple[NDArray[np.int64], NDArray[np.int64]]:
+        """Units sent out of and received by each location under each flow, (A, N) each
+        (cheap: not kept)."""
+        return flow_endpoints(self.flows, self.lane_from, self.lane_to, self.n_locations)
+
+    @cached_property
+    def smaller(self) -> tuple[NDArray[np.int32], tuple[NDArray[np.int32], ...]]:
+        """(A, L): the row moving one unit less on each lane (A where that flow is not in the
+        table); and the rows of each number of units moved, fewest first (the table is sorted
+        by units), skipping moving nothing."""
+        n_flows, n_lanes = self.flows.shape
+        row_of: dict[bytes, int] = {row.tobytes(): k for k, row in enumerate(self.flows)}
+        less = np.full((n_flows, n_lanes), n_flows, dtype=np.int32)
+        for k, row in enumerate(self.flows):
+            for lane in np.flatnonzero(row):
+                fewer = row.copy()
+                fewer[lane] -= 1
+                found = row_of.get(fewer.tobytes())
+                less[k, lane] = n_flows if found is None else found
+        units = self.flows.sum(axis=1)
+        levels = tuple(
+            np.flatnonzero(units == n).astype(np.int32) for n in np.unique(units) if n > 0
+        )
+        return less, levels
+
+    @property
+    def nbytes(self) -> int:
+        """Bytes of the arrays derived so far (the flow table itself belongs to the policy)."""
+        total = self.shift.nbytes + self.cost.nbytes
+        derived = self.__dict__
+        if "smaller" in derived:
+            less, levels = self.smaller
+            total += less.nbytes + sum(rows.nbytes for rows in levels)
+        return total
+
+
+# Derived once per cached policy object (policies are immutable; entries go with them).
+_TABLES: weakref.WeakKeyDictionary[PolicyResult, _Tables] = weakref.WeakKeyDictionary()
+
+
+def derived_bytes(policy: ItemPolicy) -> int:
+    """Bytes this module keeps beside a policy once it has served moves (0 for a priced policy
+    or one not used yet)."""
+    tables = _TABLES.get(policy) if isinstance(policy, PolicyResult) else None
+    return 0 if tables is None else tables.nbytes
+
 
 def _exact_tables(policy: PolicyResult, layout: _Layout) -> _Tables:
-    out, inn = flow_endpoints(policy.flows, layout.lane_from, layout.lane_to, layout.n_locations)
-    strides = np.cumprod((1, *policy.shape[:0:-1]))[::-1].astype(np.int64)
-    shift = (inn - out) @ strides
-    cost = flow_costs(policy.flows, policy.lane_costs, policy.dispatch_costs)
-    return _Tables(out, inn, shift, cost)
+    tables = _TABLES.get(policy)
+    if tables is None:
+        flows = policy.flows
+        out, inn = flow_endpoints(flows, layout.lane_from, layout.lane_to, layout.n_locations)
+        strides = np.cumprod((1, *policy.shape[:0:-1]))[::-1].astype(np.int64)
+        tables = _Tables(
+            flows=flows,
+            lane_from=layout.lane_from,
+            lane_to=layout.lane_to,
+            n_locations=layout.n_locations,
+            shift=(inn - out) @ strides,
+            cost=flow_costs(flows, policy.lane_costs, policy.dispatch_costs),
+        )
+        _TABLES[policy] = tables
+    return tables
 
 
 def _exact_moves(
@@ -332,30 +439,42 @@ def _exact_candidates(
     without: NDArray[np.float64],
 ) -> _Candidates:
     """The policy's action (rank 0), moving nothing (rank 1) and every other allowed flow
-    feasible at the item's stock and worth more than moving nothing (rank 2, table order)."""
-    rows = np.flatnonzero(policy.allowed[phase])
-    rows = rows[rows != 0]
+    feasible at the item's stock and worth more than every smaller flow (rank 2, table order;
+    see _best_smaller); for an item that the policy leaves in place, moving nothing only."""
+    n_flows = policy.n_flows
     capacities = np.array(policy.capacities, dtype=np.int64)
-    lo, hi = feasible_bounds(tables.out[rows], tables.inn[rows], capacities, policy.floors[phase])
+    out, inn = tables.endpoints()
+    lo, hi = feasible_bounds(out, inn, capacities, policy.floors[phase])
+    # Per location i, whether each stock 0..C_i lies in each flow's box: (C_i + 1, A).
+    inside = [
+        (np.arange(c + 1)[:, None] >= lo[:, i]) & (np.arange(c + 1)[:, None] <= hi[:, i])
+        for i, c in enumerate(policy.capacities)
+    ]
+    inside[0] &= policy.allowed[phase]
     u = policy.post_move_values[phase]
     gain = policy.gain or 0.0
     chosen_value = u[idx + tables.shift[action]] - tables.cost[action] - gain
 
-    pick_item: list[NDArray[np.int64]] = []
-    pick_row: list[NDArray[np.int64]] = []
-    pick_value: list[NDArray[np.float64]] = []
-    chunk = max(1, _CHUNK_ELEMENTS // max(1, rows.size * stocks.shape[1]))
-    for start in range(0, stocks.shape[0], chunk):
-        part = slice(start, start + chunk)
-        s = stocks[part][:, None, :]
-        fits = np.all((s >= lo) & (s <= hi), axis=2)
-        post = np.where(fits, idx[part][:, None] + tables.shift[rows], 0)
-        q = u[post] - tables.cost[rows]
+    # An item whose policy moves nothing tonight needs no other candidate: every other flow's
+    # value is capped at moving nothing's, and moving nothing uses no truck.
+    moving = np.flatnonzero(action != 0)
+    pick_item: list[NDArray[np.int64]] = [np.zeros(0, np.int64)]
+    pick_row: list[NDArray[np.int64]] = [np.zeros(0, np.int64)]
+    pick_value: list[NDArray[np.float64]] = [np.zeros(0)]
+    chunk = max(1, _CHUNK_ELEMENTS // max(1, n_flows))
+    for start in range(0, moving.size, chunk):
+        part = moving[start : start + chunk]
+        fits = inside[0][stocks[part, 0]]
+        for i in range(1, len(inside)):
+            fits &= inside[i][stocks[part, i]]
+        post = np.where(fits, idx[part][:, None] + tables.shift, 0)
+        q = u[post] - tables.cost
         q -= gain
-        keep = fits & (q > without[part][:, None]) & (rows != action[part][:, None])
+        q = np.where(fits, q, -np.inf)
+        keep = (q > _best_smaller(q, tables)) & (np.arange(n_flows) != action[part][:, None])
         g, k = np.nonzero(keep)
-        pick_item.append(g + start)
-        pick_row.append(rows[k])
+        pick_item.append(part[g])
+        pick_row.append(k)
         pick_value.append(q[g, k])
 
     g = np.concatenate(pick_item)
@@ -375,6 +494,27 @@ def _exact_candidates(
         capped=np.minimum(value, chosen_value[local]),
         cost=tables.cost[table_rows],
     )
+
+
+def _best_smaller(q: NDArray[np.float64], tables: _Tables) -> NDArray[np.float64]:
+    """Per item and flow f, the best value of a flow g <= f lane by lane, g != f, reached from
+    f by taking one unit off a lane at a time within the table; shape (G, A), -inf where none
+    (row 0, moving nothing). Such a g uses no more of any truck than f, so f is never needed
+    when it is worth no more than g: not in the best allocation, nor at any prices in the
+    bound. Computed level by level (units moved), one gather per lane and level."""
+    best = np.full((q.shape[0], q.shape[1] + 1), -np.inf)
+    reach = np.full_like(best, -np.inf)  # max(q, best): the best flow <= f, f included
+    reach[:, 0] = q[:, 0]
+    less, levels = tables.smaller
+    for rows in levels:
+        smaller = less[rows]
+        top = reach[:, smaller[:, 0]]
+        for lane in range(1, smaller.shape[1]):
+            np.maximum(top, reach[:, smaller[:, lane]], out=top)
+        best[:, rows] = top
+        reach[:, rows] = np.maximum(top, q[:, rows])
+    result: NDArray[np.float64] = best[:, :-1]
+    return result
 
 
 # -- priced policies -------------------------------------------------------------------------
@@ -441,6 +581,108 @@ def _priced_candidates(
 
 
 # -- sharing ---------------------------------------------------------------------------------
+
+
+def _check_sharing(
+    m: int, n_lanes: int, truck_capacity: ArrayLike, unit_volume: ArrayLike | None
+) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    capacity = np.asarray(truck_capacity, dtype=np.float64)
+    if capacity.shape != (n_lanes,) or np.any(np.isnan(capacity)) or np.any(capacity < 0):
+        raise ValueError(
+            f"truck_capacity must hold {n_lanes} numbers >= 0, one per lane (inf: not shared)"
+        )
+    if unit_volume is None:
+        # Loads in units are whole numbers: a fractional capacity holds its whole part, and
+        # saying so tightens the bound.
+        capacity = np.where(np.isfinite(capacity), np.floor(capacity + 1e-9), capacity)
+    volume = np.ones(m) if unit_volume is None else np.asarray(unit_volume, dtype=np.float64)
+    if volume.shape != (m,) or not np.all(np.isfinite(volume) & (volume > 0)):
+        raise ValueError(f"unit_volume must hold {m} positive numbers, one per item")
+    return volume, capacity
+
+
+def _candidates(
+    groups: list[_Group],
+    contested: NDArray[np.int64],
+    flows: NDArray[np.int64],
+    value: NDArray[np.float64],
+    without: NDArray[np.float64],
+    cost: NDArray[np.float64],
+) -> list[_Candidates]:
+    """Every item's candidates: all of them for the `contested` items, the item's own move
+    and moving nothing for the others."""
+    is_contested = np.zeros(flows.shape[0], dtype=bool)
+    is_contested[contested] = True
+    parts = [_settled(flows, value, without, cost, np.flatnonzero(~is_contested))]
+    for group in groups:
+        sub = np.flatnonzero(is_contested[group.items])
+        if not sub.size:
+            continue
+        items, stocks = group.items[sub], group.stocks[sub]
+        if group.exact is not None:
+            assert isinstance(group.policy, PolicyResult)
+            tables, action, idx = group.exact
+            parts.append(
+                _exact_candidates(
+                    group.policy,
+                    tables,
+                    items,
+                    stocks,
+                    group.phase,
+                    action[sub],
+                    idx[sub],
+                    without[items],
+                )
+            )
+        else:
+            assert isinstance(group.policy, PricedPolicy)
+            parts.append(
+                _priced_candidates(
+                    group.policy,
+                    items,
+                    stocks,
+                    group.phase,
+                    flows[items],
+                    value[items],
+                    without[items],
+                    cost[items],
+                )
+            )
+    return parts
+
+
+def _settled(
+    flows: NDArray[np.int64],
+    value: NDArray[np.float64],
+    without: NDArray[np.float64],
+    cost: NDArray[np.float64],
+    items: NDArray[np.int64],
+) -> _Candidates:
+    """Items that keep their own move: it (rank 0) and moving nothing (rank 1) when it moves."""
+    moving = items[flows[items].any(axis=1)]
+    both = np.concatenate([items, moving])
+    return _Candidates(
+        item=both,
+        rank=np.concatenate([np.zeros(items.size, np.int64), np.ones(moving.size, np.int64)]),
+        flows=np.concatenate([flows[items], np.zeros((moving.size, flows.shape[1]), np.int64)]),
+        value=np.concatenate([value[items], without[moving]]),
+        capped=np.concatenate([value[items], without[moving]]),
+        cost=np.concatenate([cost[items], np.zeros(moving.size)]),
+    )
+
+
+def _no_items(n_lanes: int) -> SharedAllocation:
+    return SharedAllocation(
+        chosen=np.zeros(0, np.int64),
+        flows=np.zeros((0, n_lanes), np.int64),
+        value=0.0,
+        unconstrained_value=0.0,
+        bound=0.0,
+        prices=np.zeros(n_lanes),
+        load=np.zeros(n_lanes),
+        iterations=0,
+        converged=True,
+    )
 
 
 def _choices(

@@ -43,6 +43,7 @@ so `bound - value` bounds how far the allocation is from the best one, and
 
 from __future__ import annotations
 
+import heapq
 from dataclasses import dataclass
 
 import numpy as np
@@ -305,6 +306,39 @@ def _slack(cap: NDArray[np.float64]) -> NDArray[np.float64]:
     return slack
 
 
+class _Queue:
+    """Switches in increasing key order, ties to the lowest candidate index: a sorted array
+    made by numpy at the start plus a heap of later pushes. Each entry carries the version of
+    its item's choice when it was queued (0 for the sorted array), so that entries made stale
+    by a switch of their item are skipped; switches that did not fit when they came up are
+    held apart until the loads change in their favour (see release)."""
+
+    def __init__(self, keys: NDArray[np.float64], rows: NDArray[np.int64]) -> None:
+        order = np.lexsort((rows, keys))
+        self._keys: list[float] = keys[order].tolist()
+        self._rows: list[int] = rows[order].tolist()
+        self._at = 0
+        self._heap: list[tuple[float, int, int]] = []
+        self.held: list[int] = []
+
+    def push(self, key: float, row: int, version: int) -> None:
+        heapq.heappush(self._heap, (key, row, version))
+
+    def pop(self) -> tuple[float, int, int] | None:
+        if self._at < len(self._keys):
+            first = (self._keys[self._at], self._rows[self._at], 0)
+            if not self._heap or first < self._heap[0]:
+                self._at += 1
+                return first
+        return heapq.heappop(self._heap) if self._heap else None
+
+    def release(self) -> NDArray[np.int64]:
+        """The held candidates (each once), no longer held."""
+        held = np.unique(np.array(self.held, dtype=np.int64))
+        self.held = []
+        return held
+
+
 def _fit(
     choices: ItemChoices,
     use: NDArray[np.float64],
@@ -315,29 +349,82 @@ def _fit(
 ) -> NDArray[np.int64]:
     """While a lane is over capacity, make the switch that frees over-capacity load at the
     least loss per unit freed, never overloading another lane nor moving the item of
-    candidate `locked` (-1: none)."""
+    candidate `locked` (-1: none).
+
+    A switch's rate (loss per unit of over-capacity load freed) depends only on its item's
+    current choice and on which lanes are over, and lanes only leave that set (a switch never
+    overloads a lane). So the rates are computed for every candidate once per set of
+    overloaded lanes (at most L + 1 times) and queued; after a switch only the switched item's
+    candidates get new rates. Whether a switch fits depends on the loads: it is checked when
+    the switch comes up, and one that does not fit is held until some other lane's load falls.
+    The switches made are those of taking, each time, the least rate over every candidate that
+    fits (ties to the lowest candidate index)."""
     chosen = chosen.copy()
-    item, slack = choices.item, _slack(cap)
+    item, value, slack = choices.item, choices.value, _slack(cap)
+    limit = cap + slack
     load = use[chosen].sum(axis=0)
     movable = np.ones(item.size, dtype=bool)
     if locked >= 0:
         movable[item == item[locked]] = False
-    for _ in range(use.shape[0] * max(1, use.shape[1])):
-        over = load > cap + slack
-        if not over.any():
-            break
-        delta = use[chosen[item]] - use  # load each switch would free, per lane
+    starts = choices.starts
+    ends = np.r_[starts[1:], item.size]
+    version = np.zeros(starts.size, dtype=np.int64)
+    over = load > limit
+    budget = use.shape[0] * max(1, use.shape[1])
+
+    def rates(rows: NDArray[np.int64]) -> tuple[NDArray[np.float64], NDArray[np.int64]]:
+        """Rates of the useful switches among `rows` at the current choices."""
+        delta = use[chosen[item[rows]]] - use[rows]
         freed = np.where(over, delta, 0.0).sum(axis=1)
-        fits = np.all((load - delta <= cap + slack) | over, axis=1)
-        candidates = (freed > 0) & fits & movable
-        if not candidates.any():
+        useful = (freed > 0) & movable[rows]
+        loss = value[chosen[item[rows]]] - value[rows]
+        return loss[useful] / freed[useful], rows[useful]
+
+    def fits(rows: NDArray[np.int64]) -> NDArray[np.bool_]:
+        delta = use[chosen[item[rows]]] - use[rows]
+        fitting: NDArray[np.bool_] = np.all((load - delta <= limit) | over, axis=1)
+        return fitting
+
+    while over.any() and budget > 0:
+        version[:] = 0
+        keys, rows = rates(np.arange(item.size))
+        fitting = fits(rows)
+        queue = _Queue(keys[fitting], rows[fitting])
+        queue.held = rows[~fitting].tolist()
+        regrouped = False
+        while budget > 0:
+            entry = queue.pop()
+            if entry is None:
+                break
+            _, k, seen = entry
+            m = int(item[k])
+            if seen != version[m]:
+                continue
+            step = use[chosen[m]] - use[k]
+            if not np.all((load - step <= limit) | over):
+                queue.held.append(k)
+                continue
+            load -= step
+            chosen[m] = k
+            version[m] += 1
+            budget -= 1
+            now_over = load > limit
+            if not np.array_equal(now_over, over):
+                over, regrouped = now_over, True
+                break
+            own_keys, own_rows = rates(np.arange(starts[m], ends[m]))
+            for key, row in zip(own_keys.tolist(), own_rows.tolist(), strict=True):
+                queue.push(key, row, int(version[m]))
+            if queue.held and np.any((step > 0) & ~over):
+                held = queue.release()
+                held_keys, held_rows = rates(held)
+                now = fits(held_rows)
+                for key, row in zip(held_keys[now].tolist(), held_rows[now].tolist(), strict=True):
+                    queue.push(key, row, int(version[item[row]]))
+                queue.held = held_rows[~now].tolist()
+        if not regrouped:
             break
-        loss = choices.value[chosen[item]] - choices.value
-        rate = np.where(candidates, loss / np.where(candidates, freed, 1.0), np.inf)
-        k = int(np.argmin(rate))
-        load -= delta[k]
-        chosen[item[k]] = k
-    if np.any(load > cap + slack):
+    if np.any(load > limit):
         # Only a locked item is left on an overloaded lane: its forced candidate cannot fit.
         chosen[item[locked]] = _idle_of(choices, int(item[locked]))
     return chosen
@@ -349,19 +436,67 @@ def _improve(
     cap: NDArray[np.float64],
     chosen: NDArray[np.int64],
 ) -> NDArray[np.int64]:
-    """While some switch raises the value and fits, make the best such switch."""
+    """While some switch raises the value and fits, make the best such switch.
+
+    A switch's gain depends only on its item's current choice: the gains are queued and,
+    after a switch, only the switched item's are renewed. Whether a switch fits is checked
+    when it comes up; one that does not is held until some lane's load falls. The switches
+    made are those of taking, each time, the best gain over every switch that fits (ties to
+    the lowest candidate index)."""
     chosen = chosen.copy()
-    item, slack = choices.item, _slack(cap)
+    item, value, slack = choices.item, choices.value, _slack(cap)
+    limit = cap + slack
     load = use[chosen].sum(axis=0)
+    starts = choices.starts
+    ends = np.r_[starts[1:], item.size]
+    version = np.zeros(starts.size, dtype=np.int64)
+
+    def losses(rows: NDArray[np.int64]) -> tuple[NDArray[np.float64], NDArray[np.int64]]:
+        """Minus the gains of the switches among `rows` that raise the value."""
+        gain = value[rows] - value[chosen[item[rows]]]
+        up = gain > 0
+        return -gain[up], rows[up]
+
+    def fits(rows: NDArray[np.int64]) -> NDArray[np.bool_]:
+        delta = use[rows] - use[chosen[item[rows]]]
+        fitting: NDArray[np.bool_] = np.all(load + delta <= limit, axis=1)
+        return fitting
+
+    keys, rows = losses(np.arange(item.size))
+    fitting = fits(rows)
+    queue = _Queue(keys[fitting], rows[fitting])
+    queue.held = rows[~fitting].tolist()
     for _ in range(use.shape[0]):
-        delta = use - use[chosen[item]]
-        fits = np.all(load + delta <= cap + slack, axis=1)
-        gain = np.where(fits, choices.value - choices.value[chosen[item]], -np.inf)
-        k = int(np.argmax(gain))
-        if not gain[k] > _RELATIVE_TOLERANCE * max(1.0, abs(float(choices.value[k]))):
+        best: tuple[int, int, NDArray[np.float64], float] | None = None
+        while (entry := queue.pop()) is not None:
+            loss, k, seen = entry
+            m = int(item[k])
+            if seen != version[m]:
+                continue
+            step = use[k] - use[chosen[m]]
+            if not np.all(load + step <= limit):
+                queue.held.append(k)
+                continue
+            best = (k, m, step, -loss)
             break
-        load += delta[k]
-        chosen[item[k]] = k
+        if best is None:
+            break
+        k, m, step, up = best
+        if not up > _RELATIVE_TOLERANCE * max(1.0, abs(float(value[k]))):
+            break
+        load += step
+        chosen[m] = k
+        version[m] += 1
+        own_keys, own_rows = losses(np.arange(starts[m], ends[m]))
+        for key, row in zip(own_keys.tolist(), own_rows.tolist(), strict=True):
+            queue.push(key, row, int(version[m]))
+        if queue.held and np.any(step < 0):
+            held = queue.release()
+            held_keys, held_rows = losses(held)
+            now = fits(held_rows)
+            for key, row in zip(held_keys[now].tolist(), held_rows[now].tolist(), strict=True):
+                queue.push(key, row, int(version[item[row]]))
+            queue.held = held_rows[~now].tolist()
     return chosen
 
 

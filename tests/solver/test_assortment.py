@@ -397,6 +397,7 @@ def test_allocation_and_bound_bracket_the_best_assignment_by_milp() -> None:
             ],
             integrality=np.ones(q_all.size),
             bounds=Bounds(0, 1),
+            options={"mip_rel_gap": 1e-10},  # HiGHS stops at 1e-4 of the value by default
         )
         assert result.status == 0
         best = float(-result.fun)
@@ -426,3 +427,60 @@ def test_a_free_truck_never_overrides_the_policys_own_move() -> None:
     assert not shared.flows.any()
     np.testing.assert_array_equal(shared.value, shared.value_without_moves)
     assert shared.sharing is not None and shared.sharing.sharing_cost == 0.0
+
+
+def test_items_off_the_busy_lane_keep_their_own_moves() -> None:
+    pols = policies()
+    policy_of, stocks = mixed_assortment(23, 400)
+    free = assortment_moves(pols, policy_of, stocks)
+    busy = 0  # harbour -> hill
+    capacity = np.full(len(LANES), np.inf)
+    capacity[busy] = np.floor(free.flows[:, busy].sum() / 3)
+    shared = assortment_moves(pols, policy_of, stocks, truck_capacity=capacity)
+    assert shared.sharing is not None and shared.sharing.sharing_cost > 0.0
+    assert shared.flows[:, busy].sum() <= capacity[busy]
+    off = free.flows[:, busy] == 0
+    assert off.sum() > 100
+    np.testing.assert_array_equal(shared.flows[off], free.flows[off])
+    # Items on the busy lane give way: some send less on it, and none is made to send more.
+    assert np.all(shared.flows[:, busy] <= free.flows[:, busy])
+    assert np.any(shared.flows[~off, busy] < free.flows[~off, busy])
+
+
+def test_no_items_with_a_truck() -> None:
+    moves = assortment_moves(
+        policies(), np.zeros(0, np.int64), np.zeros((0, 3), np.int64), truck_capacity=np.ones(5)
+    )
+    assert moves.sharing is not None
+    assert moves.sharing.value == 0.0 and moves.sharing.flows.shape == (0, len(LANES))
+
+
+@pytest.mark.parametrize(
+    ("capacity", "volume", "message"),
+    [
+        ([1.0, 1.0], None, "truck_capacity must hold 5 numbers"),
+        ([1.0, -1.0, 1.0, 1.0, 1.0], None, "truck_capacity must hold 5 numbers >= 0"),
+        ([1.0] * 5, [1.0], "unit_volume must hold 2 positive numbers"),
+        ([1.0] * 5, [1.0, 0.0], "unit_volume must hold 2 positive numbers"),
+    ],
+)
+def test_bad_truck_capacity_or_volume_is_refused(
+    capacity: list[float], volume: list[float] | None, message: str
+) -> None:
+    with pytest.raises(ValueError, match=message):
+        assortment_moves(
+            policies(), [0, 1], [[1, 1, 1], [2, 2, 2]], truck_capacity=capacity, unit_volume=volume
+        )
+
+
+def test_a_truck_counted_in_units_holds_whole_units() -> None:
+    pols = policies()
+    policy_of, stocks = mixed_assortment(31, 200)
+    free = assortment_moves(pols, policy_of, stocks)
+    whole = np.floor(free.flows.sum(axis=0) * 0.5)
+    a = assortment_moves(pols, policy_of, stocks, truck_capacity=whole + 0.7)
+    b = assortment_moves(pols, policy_of, stocks, truck_capacity=whole)
+    assert a.sharing is not None and b.sharing is not None
+    np.testing.assert_array_equal(a.flows, b.flows)
+    assert a.sharing.bound == b.sharing.bound
+    assert np.all(a.flows.sum(axis=0) <= whole)

@@ -12,6 +12,8 @@ ALLOWED_ROOTS = {
     "collections",
     "dataclasses",
     "functools",
+    "heapq",
+    "itertools",
     "math",
     "numpy",
     "pydantic",
@@ -20,6 +22,7 @@ ALLOWED_ROOTS = {
     "solver",
     "time",
     "typing",
+    "weakref",
 }
 
 

@@ -7,12 +7,14 @@ the capacity of every shared lane.
 
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
 import pytest
 from numpy.typing import NDArray
 from scipy.optimize import Bounds, LinearConstraint, milp
 
-from solver.sharing import ItemChoices, allocate_shared_capacity
+from solver.sharing import ItemChoices, _best, _fit, _improve, _slack, allocate_shared_capacity
 
 
 def random_choices(rng: np.random.Generator, items: int, lanes: int, rows: int) -> ItemChoices:
@@ -158,3 +160,60 @@ def test_capacity_and_volume_are_checked() -> None:
         allocate_shared_capacity(choices, np.array([0.0]), np.array([1.0]))
     with pytest.raises(ValueError, match="numbers >= 0"):
         allocate_shared_capacity(choices, np.array([1.0]), np.array([-1.0]))
+
+
+def scan_fit(choices: ItemChoices, use: NDArray[np.float64], cap: NDArray[np.float64]) -> Any:
+    """The repair by its definition: each time, over every candidate, the switch that frees
+    over-capacity load at the least loss per unit freed and overloads no other lane."""
+    chosen = _best(choices.value, choices.starts)
+    item, limit = choices.item, cap + _slack(cap)
+    load = use[chosen].sum(axis=0)
+    while (over := load > limit).any():
+        delta = use[chosen[item]] - use
+        freed = np.where(over, delta, 0.0).sum(axis=1)
+        fits = np.all((load - delta <= limit) | over, axis=1)
+        ok = (freed > 0) & fits
+        if not ok.any():
+            break
+        loss = choices.value[chosen[item]] - choices.value
+        k = int(np.argmin(np.where(ok, loss / np.where(ok, freed, 1.0), np.inf)))
+        load -= delta[k]
+        chosen[item[k]] = k
+    return chosen
+
+
+def scan_improve(
+    choices: ItemChoices, use: NDArray[np.float64], cap: NDArray[np.float64], chosen: Any
+) -> Any:
+    """Improvement by its definition: each time, the best gaining switch over every candidate
+    that fits."""
+    chosen = chosen.copy()
+    item, limit = choices.item, cap + _slack(cap)
+    load = use[chosen].sum(axis=0)
+    while True:
+        delta = use - use[chosen[item]]
+        fits = np.all(load + delta <= limit, axis=1)
+        gain = np.where(fits, choices.value - choices.value[chosen[item]], -np.inf)
+        k = int(np.argmax(gain))
+        if not gain[k] > 1e-9 * max(1.0, abs(float(choices.value[k]))):
+            return chosen
+        load += delta[k]
+        chosen[item[k]] = k
+
+
+def test_queued_switches_are_the_switches_of_a_full_scan() -> None:
+    # _fit and _improve take switches from a queue instead of scanning every candidate per
+    # switch; they must make the very same switches as the scan.
+    rng = np.random.default_rng(77)
+    for _ in range(60):
+        lanes = int(rng.integers(1, 6))
+        choices = random_choices(rng, int(rng.integers(5, 150)), lanes, int(rng.integers(2, 9)))
+        volume = rng.choice([1.0, 0.5, 2.0], size=choices.n_items)
+        capacity = rng.uniform(0.0, 30.0, size=lanes)
+        use = choices.flows * volume[choices.item][:, None]
+        start = _best(choices.value, choices.starts)
+        fitted = _fit(choices, use, capacity, start, locked=-1)
+        np.testing.assert_array_equal(fitted, scan_fit(choices, use, capacity))
+        np.testing.assert_array_equal(
+            _improve(choices, use, capacity, fitted), scan_improve(choices, use, capacity, fitted)
+        )
