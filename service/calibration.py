@@ -17,13 +17,14 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
-from datetime import date, datetime
+from datetime import date, datetime, timedelta
 
 import numpy as np
 from numpy.typing import NDArray
 from sqlalchemy.orm import Session
 
 from service.db import repository
+from service.db.base import utcnow
 from service.db.tables import CalibrationSettings, Network, NetworkVersion, SolveJob
 from solver import NetworkSpec
 from solver.calibration import (
@@ -47,10 +48,13 @@ from solver.spec import (
 __all__ = [
     "CHANGE_FLOOR",
     "DEFAULT_CONFIDENCE",
+    "OLDEST_HISTORY_DATE",
     "CalibrationOptions",
     "LocationProposal",
     "Proposal",
     "apply_proposal",
+    "history_day_problems",
+    "latest_history_date",
     "law_moments",
     "options_for",
     "propose",
@@ -58,6 +62,9 @@ __all__ = [
 
 CHANGE_FLOOR = 0.05
 DEFAULT_CONFIDENCE = 0.95
+# History is local business days; a day ahead of the server's UTC date allows for time zones.
+_DATE_SLACK = timedelta(days=1)
+OLDEST_HISTORY_DATE = date(1990, 1, 1)
 # Estimates enter the specification to this many significant digits: enough for the solver,
 # few enough that an unchanged history gives an unchanged specification (and hash).
 _DIGITS = 6
@@ -129,6 +136,47 @@ def options_for(session: Session, network_id: int) -> CalibrationOptions:
         auto_apply_threshold=row.auto_apply_threshold,
         receipts_sell_same_day=row.receipts_sell_same_day,
     )
+
+
+def latest_history_date() -> date:
+    """The latest business date a day of history may have: tomorrow in UTC (time zones)."""
+    return utcnow().date() + _DATE_SLACK
+
+
+def history_day_problems(
+    business_date: date,
+    units_sold: int,
+    stock_at_open: int,
+    units_received: int,
+    *,
+    latest: date,
+    same_day: bool,
+) -> list[tuple[str, str]]:
+    """(column, message) for each rule one location's day of history breaks: a date outside
+    OLDEST_HISTORY_DATE..`latest`, more sold than the day could sell (its stock at open, plus
+    its receipts when `same_day`: the network's receipts sell on the day they arrive)."""
+    problems = []
+    if not OLDEST_HISTORY_DATE <= business_date <= latest:
+        problems.append(("date", f"{business_date} is outside {OLDEST_HISTORY_DATE}..{latest}"))
+    if same_day and units_sold > stock_at_open + units_received:
+        problems.append(
+            (
+                "units_sold",
+                f"{units_sold} units sold but only {stock_at_open} on hand at "
+                f"opening and {units_received} received",
+            )
+        )
+    elif not same_day and units_sold > stock_at_open:
+        problems.append(
+            (
+                "units_sold",
+                f"{units_sold} units sold but only {stock_at_open} on hand at "
+                "opening (receipts are on sale from the next day; if this network's stores "
+                "sell morning deliveries the same day, PUT calibration/settings with "
+                '"receipts_sell_same_day": true)',
+            )
+        )
+    return problems
 
 
 def law_moments(dist: DailyLaw) -> tuple[float, float]:

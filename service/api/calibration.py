@@ -8,7 +8,7 @@ import csv
 import io
 import json
 from dataclasses import dataclass
-from datetime import date, timedelta
+from datetime import date
 from typing import Annotated, Any
 
 from fastapi import APIRouter, Depends, Query, Request, Response, status
@@ -24,6 +24,8 @@ from service.calibration import (
     CalibrationOptions,
     Proposal,
     apply_proposal,
+    history_day_problems,
+    latest_history_date,
     options_for,
     propose,
 )
@@ -59,9 +61,6 @@ from solver.spec import WEEKDAYS
 router = APIRouter(prefix="/v1/networks/{network_id}", tags=["calibration"])
 
 CSV_COLUMNS = ("date", "location", "units_sold", "stock_at_open", "units_received")
-# History is local business days; a day ahead of the server's UTC date allows for time zones.
-_DATE_SLACK = timedelta(days=1)
-_OLDEST = date(1990, 1, 1)
 
 _UPLOAD_DOC: dict[str, Any] = {
     "requestBody": {
@@ -157,33 +156,24 @@ def _check_rows(
     """Every problem the rows have against the network, each with its pointer; `same_day`: the
     network's receipts sell on the day they arrive."""
     known = set(spec.location_ids)
-    latest = utcnow().date() + _DATE_SLACK
+    latest = latest_history_date()
     first_seen: dict[tuple[str, date], int] = {}
     errors: list[tuple[str, str]] = []
     for index, row in enumerate(rows):
         where = f"/line/{index + 2}" if csv_upload else f"/rows/{index}"
         if row.location not in known:
             errors.append((f"{where}/location", f"unknown location {row.location!r}"))
-        if not _OLDEST <= row.date <= latest:
-            errors.append((f"{where}/date", f"{row.date} is outside {_OLDEST}..{latest}"))
-        if same_day and row.units_sold > row.stock_at_open + row.units_received:
-            errors.append(
-                (
-                    f"{where}/units_sold",
-                    f"{row.units_sold} units sold but only {row.stock_at_open} on hand at "
-                    f"opening and {row.units_received} received",
-                )
+        errors += [
+            (f"{where}/{column}", message)
+            for column, message in history_day_problems(
+                row.date,
+                row.units_sold,
+                row.stock_at_open,
+                row.units_received,
+                latest=latest,
+                same_day=same_day,
             )
-        elif not same_day and row.units_sold > row.stock_at_open:
-            errors.append(
-                (
-                    f"{where}/units_sold",
-                    f"{row.units_sold} units sold but only {row.stock_at_open} on hand at "
-                    "opening (receipts are on sale from the next day; if this network's stores "
-                    "sell morning deliveries the same day, PUT calibration/settings with "
-                    '"receipts_sell_same_day": true)',
-                )
-            )
+        ]
         key = (row.location, row.date)
         if key in first_seen:
             earlier = first_seen[key]
