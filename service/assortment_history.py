@@ -22,7 +22,7 @@ import json
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from datetime import date, datetime
-from typing import Any
+from typing import Any, Literal
 
 from sqlalchemy.orm import Session
 
@@ -390,7 +390,7 @@ class RunSummary:
     changes: list[dict[str, Any]]
 
     @property
-    def state(self) -> str:
+    def state(self) -> Literal["queued", "running", "done"]:
         if self.chunks_done + self.chunks_failed == self.chunks:
             return "done"
         return (

@@ -12,6 +12,7 @@ from sqlalchemy.exc import OperationalError
 
 from service.api import (
     analysis,
+    assortment_history,
     assortments,
     calibration,
     closing,
@@ -110,6 +111,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         calibration,
         analysis,
         assortments,
+        assortment_history,
         jobs,
         health,
         ops,

@@ -525,11 +525,12 @@ def add_calibrated_versions(
     current: dict[int, int] = {}
     for start in range(0, len(ids), _CHUNK):
         current.update(
-            session.execute(
+            (network_id, number)
+            for network_id, number in session.execute(
                 select(NetworkVersion.network_id, func.max(NetworkVersion.number))
                 .where(NetworkVersion.network_id.in_(ids[start : start + _CHUNK]))
                 .group_by(NetworkVersion.network_id)
-            ).tuples()
+            )
         )
     fresh = [version for version in versions if current.get(version.network_id) == version.based_on]
     if not fresh:
