@@ -299,9 +299,8 @@ def _queue_solves(
 
 # -- sales history of the items ----------------------------------------------------------------
 
-# Rows per multi-row INSERT of history: 7 columns x 1,000 rows stays below SQLite's 32,766
-# parameters and keeps each statement's text small.
-_HISTORY_ROWS = 1_000
+# Rows of history per INSERT executed (and per DELETE of replaced rows).
+_HISTORY_ROWS = 5_000
 
 
 @dataclass(frozen=True)
@@ -362,22 +361,24 @@ def store_item_history(session: Session, days: Sequence[ItemDay]) -> tuple[int, 
             delete(SalesDay).where(SalesDay.id.in_(replaced[start : start + _HISTORY_ROWS]))
         )
     now = utcnow()
+    # One compiled statement run over every row (the driver's executemany): compiling a
+    # multi-row VALUES statement costs more than the rows it carries.
+    table = SalesDay.__table__
     for start in range(0, len(days), _HISTORY_ROWS):
         session.execute(
-            insert(SalesDay).values(
-                [
-                    {
-                        "network_id": day.network_id,
-                        "location_id": day.location,
-                        "business_date": day.business_date,
-                        "units_sold": day.units_sold,
-                        "stock_at_open": day.stock_at_open,
-                        "units_received": day.units_received,
-                        "reported_at": now,
-                    }
-                    for day in days[start : start + _HISTORY_ROWS]
-                ]
-            )
+            insert(table),
+            [
+                {
+                    "network_id": day.network_id,
+                    "location_id": day.location,
+                    "business_date": day.business_date,
+                    "units_sold": day.units_sold,
+                    "stock_at_open": day.stock_at_open,
+                    "units_received": day.units_received,
+                    "reported_at": now,
+                }
+                for day in days[start : start + _HISTORY_ROWS]
+            ],
         )
     return len(days) - len(replaced), len(replaced)
 
