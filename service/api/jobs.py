@@ -3,6 +3,7 @@ network (/v1/networks/{id}/simulations/{job_id}, /v1/networks/{id}/what-if/{job_
 
 from __future__ import annotations
 
+import json
 from typing import Annotated
 
 from fastapi import APIRouter, Query
@@ -22,6 +23,12 @@ def get_job(job_id: JobId, session: SessionDep, caller: Reader) -> JobOut:
     job = repository.get_job(session, job_id)
     if job is None or job.tenant_id != caller.tenant_id:
         raise NotFound(f"no job {job_id}")
+    if job.kind == JobKind.CALIBRATE:
+        chunk = json.loads(job.params or "{}")
+        raise NotFound(
+            f"job {job_id} is a chunk of a calibration; read the run at "
+            f"/v1/assortments/{chunk.get('assortment')}/calibration/{chunk.get('run')}"
+        )
     if job.kind != JobKind.SOLVE:
         network_id = session.get_one(NetworkVersion, job.version_id).network_id
         path = "simulations" if job.kind == JobKind.SIMULATE else "what-if"

@@ -363,7 +363,7 @@ def store_item_history(session: Session, days: Sequence[ItemDay]) -> tuple[int, 
     now = utcnow()
     # One compiled statement run over every row (the driver's executemany): compiling a
     # multi-row VALUES statement costs more than the rows it carries.
-    table = SalesDay.__table__
+    table = SalesDay.metadata.tables[SalesDay.__tablename__]
     for start in range(0, len(days), _HISTORY_ROWS):
         session.execute(
             insert(table),

@@ -18,9 +18,18 @@ from numpy.testing import assert_allclose
 from sqlalchemy import Engine, func, select
 
 from service.db.session import make_session_factory
-from service.db.tables import NetworkVersion, SalesDay, SolveJob
+from service.db.tables import ClosingCount, NetworkVersion, SalesDay, SolveJob
+from service.policies import business_date_now
 from service.vocabulary import JobKind
-from tests.service.api_support import assert_problem, pointers, run_worker, sqlite_only
+from tests.service.api_support import (
+    assert_problem,
+    make_key,
+    pointers,
+    run_worker,
+    sqlite_only,
+)
+from tests.service.test_metrics import Samples, scrape
+from tests.service.test_status_page import basic
 
 LOCATIONS = ("harbour", "old-town", "ring-road")
 LAYOUT: dict[str, Any] = {
@@ -335,3 +344,59 @@ def test_calibrating_every_item_estimates_its_history_and_queues_its_solves(
         len(with_history),
         4,
     )
+
+
+def test_status_page_and_metrics_show_each_assortment(client: TestClient, engine: Engine) -> None:
+    assortment, networks = _assortment(client, 3)
+    key = make_key(engine, scope="read")
+    tonight = business_date_now(LAYOUT["timezone"], None)
+    with make_session_factory(engine).begin() as session:
+        # Two items counted at the harbour tonight, one yesterday (which does not count).
+        for code, day in ((_code(0), tonight), (_code(1), tonight), (_code(2), FIRST_DAY)):
+            session.add(
+                ClosingCount(
+                    network_id=networks[code], location_id="harbour", business_date=day, units=2
+                )
+            )
+        session.add(
+            ClosingCount(
+                network_id=networks[_code(0)],
+                location_id="old-town",
+                business_date=tonight,
+                units=1,
+            )
+        )
+
+    def items(samples: Samples) -> dict[str, float]:
+        return {
+            state: samples[
+                (
+                    "stockrelay_assortment_items",
+                    frozenset({("assortment", str(assortment)), ("state", state)}),
+                )
+            ]
+            for state in ("ready", "waiting", "failed", "not_requested")
+        }
+
+    assert items(scrape(client)) == {"ready": 0, "waiting": 3, "failed": 0, "not_requested": 0}
+    page = client.get("/status", headers=basic(key)).text
+    row = page.split(f'data-assortment="{assortment}"')[1].split("</tr>")[0]
+    assert '<td class="num" data-state="waiting">3</td>' in row
+    assert "harbour 2 of 3 · old-town 1 of 3 · ring-road 0 of 3" in row
+    assert tonight.isoformat() in row
+
+    run_worker(engine)
+    samples = scrape(client)
+    assert items(samples) == {"ready": 3, "waiting": 0, "failed": 0, "not_requested": 0}
+    locations = {
+        state: samples[
+            (
+                "stockrelay_assortment_closing_locations",
+                frozenset({("assortment", str(assortment)), ("state", state)}),
+            )
+        ]
+        for state in ("complete", "partial", "none")
+    }
+    assert locations == {"complete": 0, "partial": 2, "none": 1}
+    page = client.get("/status", headers=basic(key)).text
+    assert '<td class="num" data-state="ready">3</td>' in page
