@@ -8,7 +8,7 @@ histories come from a seeded generator of Poisson counts.
 from __future__ import annotations
 
 import json
-from datetime import date, timedelta
+from datetime import UTC, date, datetime, timedelta
 from typing import Any
 
 import numpy as np
@@ -17,9 +17,11 @@ from fastapi.testclient import TestClient
 from numpy.testing import assert_allclose
 from sqlalchemy import Engine, func, select
 
+from service import assortment_history
 from service.db.session import make_session_factory
 from service.db.tables import ClosingCount, NetworkVersion, SalesDay, SolveJob
 from service.policies import business_date_now
+from service.settings import Settings
 from service.vocabulary import JobKind
 from tests.service.api_support import (
     assert_problem,
@@ -400,3 +402,67 @@ def test_status_page_and_metrics_show_each_assortment(client: TestClient, engine
     assert locations == {"complete": 0, "partial": 2, "none": 1}
     page = client.get("/status", headers=basic(key)).text
     assert '<td class="num" data-state="ready">3</td>' in page
+
+
+@sqlite_only
+def test_calibration_runs_refuse_what_they_cannot_do(client: TestClient, engine: Engine) -> None:
+    empty = client.post("/v1/assortments", json={**LAYOUT, "name": "tools-empty"}).json()["id"]
+    assert_problem(client.post(f"/v1/assortments/{empty}/calibration"), 409, "conflict")
+    assortment, _ = _assortment(client, 2)
+    body = assert_problem(
+        client.post(f"/v1/assortments/{assortment}/calibration", json={"items_per_chunk": 0}),
+        422,
+    )
+    assert pointers(body) == ["/items_per_chunk"]
+    run = client.post(f"/v1/assortments/{assortment}/calibration").json()["run"]
+    # A run belongs to its assortment; a chunk's job is read through its run.
+    assert_problem(client.get(f"/v1/assortments/{empty}/calibration/{run}"), 404)
+    assert_problem(client.get(f"/v1/assortments/{assortment}/calibration/{run + 1}"), 404)
+    job = assert_problem(client.get(f"/v1/jobs/{run}"), 404)
+    assert f"/v1/assortments/{assortment}/calibration/{run}" in job["detail"]
+    reader = make_key(engine, scope="read")
+    refused = client.post(
+        f"/v1/assortments/{assortment}/calibration",
+        headers={"Authorization": f"Bearer {reader}"},
+    )
+    assert_problem(refused, 403)
+
+
+def test_an_item_changed_while_estimated_keeps_its_new_numbers(
+    client: TestClient, engine: Engine
+) -> None:
+    assortment, networks = _assortment(client, 3)
+    lines, _ = _history(np.random.default_rng(11), sorted(networks), 60)
+    assert _post_csv(client, assortment, lines).status_code == 200
+    run = client.post(f"/v1/assortments/{assortment}/calibration").json()["run"]
+    factory = make_session_factory(engine)
+    with factory() as session:
+        params = json.loads(session.get_one(SolveJob, run).params or "{}")
+        estimates = assortment_history.estimate_chunk(session, 1, params, Settings().size_limits)
+    assert sorted(estimates.versions) == sorted(networks)
+    # Meanwhile an upload gives the first item new numbers (its version 2).
+    changed = [ITEM_HEADER] + [f"{_code(0)},{location},4,25,0.1,1.0,1.0" for location in LOCATIONS]
+    response = client.post(
+        f"/v1/assortments/{assortment}/items",
+        content="\n".join(changed) + "\n",
+        headers={"content-type": "text/csv"},
+    )
+    assert response.json()["updated"] == 1
+    with factory.begin() as session:
+        report = assortment_history.apply_chunk(session, 1, estimates, datetime.now(UTC))
+    assert (report["calibrated"], report["failed"]) == (2, 1)
+    assert report["failures"][0]["item"] == _code(0)
+    items = client.get(f"/v1/assortments/{assortment}/items").json()["items"]
+    assert [(item["item"], item["version"]) for item in items] == [
+        (_code(0), 2),  # the upload's version, not overwritten by the estimates
+        (_code(1), 2),
+        (_code(2), 2),
+    ]
+    with factory() as session:
+        first = session.scalars(
+            select(NetworkVersion).where(
+                NetworkVersion.network_id == networks[_code(0)], NetworkVersion.number == 2
+            )
+        ).one()
+    assert first.calibrated_at is None
+    assert json.loads(first.spec_json)["locations"][0]["unit_margin"] == 25
