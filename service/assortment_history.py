@@ -20,7 +20,7 @@ from __future__ import annotations
 
 import json
 from collections.abc import Sequence
-from dataclasses import dataclass, field
+from dataclasses import asdict, dataclass, field
 from datetime import date, datetime
 from typing import Any, Literal
 
@@ -359,7 +359,7 @@ def apply_chunk(
             {"item": code, "reason": reason}
             for code, reason in list(failed.items())[:_FAILURES_LISTED]
         ],
-        "changes": [change.__dict__ for change in changes],
+        "changes": [asdict(change) for change in changes],
     }
 
 
