@@ -26,6 +26,7 @@ from service.vocabulary import JobKind
 from tests.service.api_support import (
     assert_problem,
     make_key,
+    open_client,
     pointers,
     run_worker,
     sqlite_only,
@@ -466,3 +467,14 @@ def test_an_item_changed_while_estimated_keeps_its_new_numbers(
         ).one()
     assert first.calibrated_at is None
     assert json.loads(first.spec_json)["locations"][0]["unit_margin"] == 25
+
+
+@sqlite_only
+def test_an_upload_past_the_limit_is_refused_whole(engine: Engine) -> None:
+    with open_client(engine, max_upload_bytes=4096) as small:
+        assortment, networks = _assortment(small, 2)
+        lines, _ = _history(np.random.default_rng(5), sorted(networks), 40)
+        assert len("\n".join(lines)) > 4096
+        assert_problem(_post_csv(small, assortment, lines), 413, "body-too-large")
+        assert _rows(engine) == 0
+        assert _post_csv(small, assortment, lines[:20]).status_code == 200
