@@ -9,7 +9,7 @@ from __future__ import annotations
 import json
 from collections.abc import Sequence
 from dataclasses import dataclass
-from datetime import time
+from datetime import date, time
 from typing import Any
 
 from sqlalchemy.orm import Session
@@ -18,23 +18,29 @@ from service.assortment_spec import ItemSpec, Layout, compose_spec, lane_key
 from service.db import assortments as store
 from service.db import reporting
 from service.db.networks import canonical_spec
+from service.db.reporting import CriterionSolve
 from service.db.tables import Assortment
 from service.errors import AssortmentExistsError, ItemUploadError
 from service.item_upload import ParsedItem
 from service.modes import resolve_method
+from service.serving import business_date_now
 from service.vocabulary import SolveStatus
 from solver import ModelTooLargeError, SizeLimits
 
 __all__ = [
+    "ITEM_STATES",
     "Assortment",
     "ItemSolve",
     "ItemsStored",
+    "Standing",
     "create_assortment",
     "criteria_of",
     "find_assortment",
     "item_solves",
+    "item_state",
     "layout_of",
     "list_assortments",
+    "standings",
     "store_items",
     "update_layout",
 ]
@@ -72,16 +78,7 @@ def item_solves(session: Session, assortment: Assortment) -> list[ItemSolve]:
     for solves in reporting.solve_states(
         session, tenant_id=assortment.tenant_id, assortment_id=assortment.id
     ):
-        mine = [s for s in solves.solves if s.criterion in criteria]
-        failed = next((s for s in mine if s.state == SolveStatus.FAILED), None)
-        if failed is not None:
-            state, error = "failed", failed.error
-        elif all(s.state == SolveStatus.READY for s in mine):
-            state, error = "ready", None
-        elif any(s.state in (SolveStatus.QUEUED, SolveStatus.RUNNING) for s in mine):
-            state, error = "waiting", None
-        else:
-            state, error = "not_requested", None
+        state, error = item_state(solves.solves, criteria)
         out.append(
             ItemSolve(
                 item=solves.network.item_code or "",
@@ -94,6 +91,66 @@ def item_solves(session: Session, assortment: Assortment) -> list[ItemSolve]:
             )
         )
     return sorted(out, key=lambda item: item.item)
+
+
+def item_state(solves: Sequence[CriterionSolve], criteria: Sequence[str]) -> tuple[str, str | None]:
+    """An item's state (ItemSolve.state) from its criteria's solves, and the failed one's
+    error."""
+    mine = [s for s in solves if s.criterion in criteria]
+    failed = next((s for s in mine if s.state == SolveStatus.FAILED), None)
+    if failed is not None:
+        return "failed", failed.error
+    if all(s.state == SolveStatus.READY for s in mine):
+        return "ready", None
+    if any(s.state in (SolveStatus.QUEUED, SolveStatus.RUNNING) for s in mine):
+        return "waiting", None
+    return "not_requested", None
+
+
+ITEM_STATES = ("ready", "waiting", "failed", "not_requested")
+
+
+@dataclass(frozen=True)
+class Standing:
+    """Where an assortment stands tonight: its items by state (ITEM_STATES), the current
+    business date (the layout's time zone and the closing cut-off) and, per location of the
+    layout, how many items it has counted for that date."""
+
+    assortment: Assortment
+    items: int
+    states: dict[str, int]
+    business_date: date
+    reported: dict[str, int]
+
+
+def standings(session: Session, tenant_id: int | None) -> list[Standing]:
+    """Every live assortment of `tenant_id` (None: of every tenant): the item states in three
+    statements for all of them (service.db.reporting), one more per assortment for tonight's
+    closing counts."""
+    chosen = {a.id: a for a in store.all_assortments(session, tenant_id)}
+    if not chosen:
+        return []
+    states = {a: dict.fromkeys(ITEM_STATES, 0) for a in chosen}
+    for row in reporting.solve_states(session, tenant_id=tenant_id):
+        if row.network.assortment_id in chosen:
+            assortment = chosen[row.network.assortment_id]
+            state, _ = item_state(row.solves, criteria_of(assortment))
+            states[assortment.id][state] += 1
+    out = []
+    for assortment_id, assortment in chosen.items():
+        layout = layout_of(assortment)
+        tonight = business_date_now(layout.timezone, assortment.closing_cutoff)
+        counted = store.closing_reports_by_location(session, assortment_id, tonight)
+        out.append(
+            Standing(
+                assortment=assortment,
+                items=sum(states[assortment_id].values()),
+                states=states[assortment_id],
+                business_date=tonight,
+                reported={location: counted.get(location, 0) for location in layout.location_ids},
+            )
+        )
+    return out
 
 
 def layout_of(assortment: Assortment) -> Layout:

@@ -31,6 +31,8 @@ PROBLEM_OF), the CLI prints the message of a UsageError (or an InputError) as on
     │   └── PolicyNotSolvedError no solve will produce it; `criteria` in use
     ├── CorruptPolicyError       a stored policy failed its checksum or decoding
     ├── AssortmentExistsError    another of the tenant's assortments has the name
+    ├── NoItemsError             an assortment without items asked to calibrate them
+    ├── LeaseLostError           the worker's lease expired before it stored a job's result
     ├── PickListIssuedError      a closing report for a night whose pick lists are issued
     ├── PickListNotReadyError    not every location has reported; `missing` names them
     └── DatabaseNotMigratedError the schema is not the one this code expects (RuntimeError)
@@ -55,8 +57,10 @@ __all__ = [
     "HistoryInputError",
     "InputError",
     "ItemUploadError",
+    "LeaseLostError",
     "NetworkArchivedError",
     "NetworkNameTakenError",
+    "NoItemsError",
     "NothingToApplyError",
     "PickListIssuedError",
     "PickListNotReadyError",
@@ -241,3 +245,12 @@ class PickListNotReadyError(ServiceError):
     def __init__(self, message: str, missing: list[str]) -> None:
         super().__init__(message)
         self.missing = missing
+
+
+class NoItemsError(ServiceError):
+    """The assortment has no items (to calibrate)."""
+
+
+class LeaseLostError(ServiceError):
+    """A worker's lease on its job expired before the result was stored: another worker owns
+    the job now, and what this one computed is dropped (its transaction rolled back)."""

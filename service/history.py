@@ -28,6 +28,8 @@ __all__ = [
     "SalesRow",
     "Stored",
     "check_rows",
+    "history_day_problems",
+    "latest_history_date",
     "store_history",
     "summary",
 ]
@@ -35,6 +37,48 @@ __all__ = [
 # History is local business days; a day ahead of the server's UTC date allows for time zones.
 _DATE_SLACK = timedelta(days=1)
 OLDEST = date(1990, 1, 1)
+
+
+def latest_history_date() -> date:
+    """The latest business date a day of history may have: tomorrow in UTC (time zones)."""
+    return utcnow().date() + _DATE_SLACK
+
+
+def history_day_problems(
+    business_date: date,
+    units_sold: int,
+    stock_at_open: int,
+    units_received: int,
+    *,
+    latest: date,
+    same_day: bool,
+) -> list[tuple[str, str]]:
+    """(column, message) for each rule one location's day of history breaks: a date outside
+    OLDEST..`latest`, more sold than the day could sell (its stock at open, plus its receipts
+    when `same_day`: the network's receipts sell on the day they arrive). Shared by the
+    uploads of single networks and of assortments."""
+    problems = []
+    if not OLDEST <= business_date <= latest:
+        problems.append(("date", f"{business_date} is outside {OLDEST}..{latest}"))
+    if same_day and units_sold > stock_at_open + units_received:
+        problems.append(
+            (
+                "units_sold",
+                f"{units_sold} units sold but only {stock_at_open} on hand at "
+                f"opening and {units_received} received",
+            )
+        )
+    elif not same_day and units_sold > stock_at_open:
+        problems.append(
+            (
+                "units_sold",
+                f"{units_sold} units sold but only {stock_at_open} on hand at "
+                "opening (receipts are on sale from the next day; if this network's stores "
+                "sell morning deliveries the same day, PUT calibration/settings with "
+                '"receipts_sell_same_day": true)',
+            )
+        )
+    return problems
 
 
 @dataclass(frozen=True)
@@ -67,33 +111,24 @@ def check_rows(
     "/line/N/..." for a CSV upload, whose line 1 is the header, else "/rows/i/..."); `same_day`:
     the network's receipts sell on the day they arrive."""
     known = set(spec.location_ids)
-    latest = utcnow().date() + _DATE_SLACK
+    latest = latest_history_date()
     first_seen: dict[tuple[str, date], int] = {}
     errors: list[tuple[str, str]] = []
     for index, row in enumerate(rows):
         where = f"/line/{index + 2}" if csv_upload else f"/rows/{index}"
         if row.location not in known:
             errors.append((f"{where}/location", f"unknown location {row.location!r}"))
-        if not OLDEST <= row.business_date <= latest:
-            errors.append((f"{where}/date", f"{row.business_date} is outside {OLDEST}..{latest}"))
-        if same_day and row.units_sold > row.stock_at_open + row.units_received:
-            errors.append(
-                (
-                    f"{where}/units_sold",
-                    f"{row.units_sold} units sold but only {row.stock_at_open} on hand at "
-                    f"opening and {row.units_received} received",
-                )
+        errors += [
+            (f"{where}/{column}", message)
+            for column, message in history_day_problems(
+                row.business_date,
+                row.units_sold,
+                row.stock_at_open,
+                row.units_received,
+                latest=latest,
+                same_day=same_day,
             )
-        elif not same_day and row.units_sold > row.stock_at_open:
-            errors.append(
-                (
-                    f"{where}/units_sold",
-                    f"{row.units_sold} units sold but only {row.stock_at_open} on hand at "
-                    "opening (receipts are on sale from the next day; if this network's stores "
-                    "sell morning deliveries the same day, PUT calibration/settings with "
-                    '"receipts_sell_same_day": true)',
-                )
-            )
+        ]
         key = (row.location, row.business_date)
         if key in first_seen:
             earlier = first_seen[key]

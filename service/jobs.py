@@ -9,6 +9,7 @@ the worker runs what is queued here.
 
 from __future__ import annotations
 
+import json
 from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -53,6 +54,12 @@ def solve_job(session: Session, tenant_id: int, job_id: int) -> SolveJob:
     job = get_job(session, job_id)
     if job is None or job.tenant_id != tenant_id:
         raise UnknownJobError(f"no job {job_id}")
+    if job.kind == JobKind.CALIBRATE:
+        chunk = json.loads(job.params or "{}")
+        raise UnknownJobError(
+            f"job {job_id} is a chunk of a calibration; read the run at "
+            f"/v1/assortments/{chunk.get('assortment')}/calibration/{chunk.get('run')}"
+        )
     if job.kind != JobKind.SOLVE:
         network_id = session.get_one(NetworkVersion, job.version_id).network_id
         path = "simulations" if job.kind == JobKind.SIMULATE else "what-if"

@@ -13,6 +13,7 @@ from sqlalchemy.exc import OperationalError
 from service.api import (
     analysis,
     assortment_closing,
+    assortment_history,
     assortments,
     calibration,
     closing,
@@ -114,6 +115,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         analysis,
         assortments,
         assortment_closing,
+        assortment_history,
         jobs,
         health,
         ops,

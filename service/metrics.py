@@ -6,7 +6,8 @@ processes, so there are two sources:
 
 * **From the database** (`DatabaseCollector`): solve times, job outcomes, the queue and policy
   ages are aggregated from `solve_jobs` (which also queues simulations and what-if comparisons,
-  told apart by `kind`) and `policies`, in five queries at every scrape. Every API process
+  told apart by `kind`) and `policies`, in five queries at every scrape; the assortments' items
+  by state and tonight's closing counts in four more, and one per assortment. Every API process
   reports the same numbers, and no process shares memory with another.
 * **In process**: recommendation latency and policy cache lookups are counted by the process
   that answered. By default they are per API process: behind `stockrelay serve --processes N` a
@@ -23,6 +24,11 @@ Metrics (histograms in seconds):
 * stockrelay_jobs_running{kind}: gauge, jobs leased to a worker;
 * stockrelay_queue_oldest_age_seconds: gauge, age of the oldest queued job (0 when none);
 * stockrelay_policy_age_seconds{network_id, criterion}: gauge, age of the current policy;
+* stockrelay_assortment_items{assortment, state}: gauge, items of each assortment by state
+  (ready, waiting, failed, not_requested; service.assortments.item_state);
+* stockrelay_assortment_closing_locations{assortment, state}: gauge, locations of each
+  assortment by tonight's closing counts (the assortment's current business date): complete
+  (every item counted), partial (some), none (the status page names them);
 * stockrelay_database_up: gauge, 1 when this scrape's queries succeeded, else 0;
 * stockrelay_recommendation_seconds{endpoint}: histogram, latency of answered recommendation
   requests, endpoint "single" (one network) or "batch" (a whole batch);
@@ -33,7 +39,9 @@ Metrics (histograms in seconds):
   solve (one series per running job, so at most one per worker; gone once it ends; the lower
   bound only once certifying has found one).
 
-`kind` is the job's kind: "solve", "simulate" or "what_if".
+`kind` is the job's kind: "solve", "simulate", "what_if" or "calibrate".
+`assortment` is an assortment's id: the assortment series are bounded by assortments times
+states or locations, never by items.
 `states` is the size class of the network in stock states (the product over locations of
 capacity + 1): "<1k" (under 1,000), "1k-100k" (1,000 to 99,999), "100k+" (100,000 and more).
 
@@ -76,6 +84,7 @@ from prometheus_client.registry import Collector
 from sqlalchemy.exc import SQLAlchemyError
 from sqlalchemy.orm import Session, sessionmaker
 
+from service import assortments
 from service.db import reporting
 from service.db.base import utcnow
 from service.db.monitoring import (
@@ -233,6 +242,7 @@ class DatabaseCollector(Collector):
                     self._solve_seconds(session),
                     self._policy_age(session),
                     *self._priced_progress(session),
+                    *self._assortments(session),
                 ]
         except SQLAlchemyError as exc:
             log.warning("metrics: database queries failed: %s", exc)
@@ -330,6 +340,36 @@ class DatabaseCollector(Collector):
                 [str(network_id), criterion], max(0.0, (now - solved_at).total_seconds())
             )
         return family
+
+    @staticmethod
+    def _assortments(session: Session) -> list[GaugeMetricFamily]:
+        items = GaugeMetricFamily(
+            "stockrelay_assortment_items",
+            "Items of each assortment by the state of their current version's solves (ready, "
+            "waiting, failed, not_requested).",
+            labels=["assortment", "state"],
+        )
+        # Locations by state, not by name: this endpoint shows no tenant's data.
+        reports = GaugeMetricFamily(
+            "stockrelay_assortment_closing_locations",
+            "Locations of each assortment by tonight's closing counts (its current business "
+            "date): complete (every item counted), partial (some), none.",
+            labels=["assortment", "state"],
+        )
+        for standing in assortments.standings(session, tenant_id=None):
+            label = str(standing.assortment.id)
+            for state, count in standing.states.items():
+                items.add_metric([label, state], count)
+            counted = list(standing.reported.values())
+            complete = sum(count >= standing.items > 0 for count in counted)
+            none = sum(count == 0 for count in counted)
+            for state, count in (
+                ("complete", complete),
+                ("partial", len(counted) - complete - none),
+                ("none", none),
+            ):
+                reports.add_metric([label, state], count)
+        return [items, reports]
 
     @staticmethod
     def _priced_progress(session: Session) -> list[GaugeMetricFamily]:

@@ -4,8 +4,9 @@
 networks); `render` turns it into HTML with every piece of stored text escaped. The page has no
 script and refers to nothing outside itself: styles are inline, the policy heatmap is the SVG
 of `service.pictures` and the solve-time sparklines are small SVG polylines, embedded in the
-page. Besides solves and jobs it shows which locations have sent tonight's closing counts, and
-the README's caution in one line.
+page. Besides solves and jobs it shows which locations have sent tonight's closing counts, each
+assortment's items by state with the items each location has counted tonight, and the README's
+caution in one line.
 """
 
 from __future__ import annotations
@@ -20,6 +21,7 @@ from datetime import date, datetime, time
 
 from sqlalchemy.orm import Session
 
+from service.assortments import Standing, standings
 from service.db import reporting
 from service.db.base import utcnow
 from service.db.monitoring import (
@@ -148,6 +150,7 @@ class StatusView:
     queue: tuple[JobLine, ...]
     recent: tuple[JobLine, ...]
     heatmap: Heatmap | None
+    assortments: tuple[Standing, ...] = ()
 
     @property
     def live_jobs(self) -> int:
@@ -186,6 +189,7 @@ def gather(
         queue=tuple(queue),
         recent=tuple(recent),
         heatmap=None if chosen is None else _heatmap(session, cache, tenant_id, chosen),
+        assortments=tuple(standings(session, tenant_id)),
     )
 
 
@@ -342,6 +346,7 @@ def _work(kind: str, method: str = "exact") -> str:
         JobKind.SOLVE: "solve",
         JobKind.SIMULATE: "simulation",
         JobKind.WHAT_IF: "what-if",
+        JobKind.CALIBRATE: "calibration",
     }
     return words.get(kind, kind)
 
@@ -383,6 +388,38 @@ def _networks_table(view: StatusView) -> str:
     return (
         '<table class="networks"><thead><tr><th>id</th><th>network</th><th>version</th>'
         f"{head}</tr></thead><tbody>{''.join(rows)}</tbody></table>"
+    )
+
+
+def _assortments_section(view: StatusView) -> str:
+    """Each assortment's items by state and tonight's closing counts per location; nothing
+    when the tenant has no assortment."""
+    if not view.assortments:
+        return ""
+    rows = []
+    for standing in view.assortments:
+        states = standing.states
+        reported = " · ".join(
+            f"{location} {count} of {standing.items}"
+            for location, count in standing.reported.items()
+        )
+        rows.append(
+            f'<tr data-assortment="{standing.assortment.id}">'
+            f'<td class="num">{standing.assortment.id}</td>'
+            f"<td>{_e(standing.assortment.name)}</td>"
+            f'<td class="num">{standing.items}</td>'
+            f'<td class="num" data-state="ready">{states["ready"]}</td>'
+            f'<td class="num" data-state="waiting">{states["waiting"]}</td>'
+            f'<td class="num" data-state="failed">{states["failed"]}</td>'
+            f"<td>{_e(standing.business_date.isoformat())}</td>"
+            f'<td class="detail">{_e(reported)}</td></tr>'
+        )
+    return (
+        '<section id="assortments"><h2>Assortments</h2>'
+        '<table class="assortments"><thead><tr><th>id</th><th>assortment</th><th>items</th>'
+        "<th>ready</th><th>waiting</th><th>failed</th><th>business date</th>"
+        "<th>items counted tonight, by location</th></tr></thead>"
+        f"<tbody>{''.join(rows)}</tbody></table></section>"
     )
 
 
@@ -595,6 +632,7 @@ def render(view: StatusView) -> str:
         f'<p class="caution">{_e(CAUTION)}</p>'
         f"{_tiles(view)}"
         f'<section id="networks"><h2>Networks</h2>{_networks_table(view)}</section>'
+        f"{_assortments_section(view)}"
         f'<section id="closing"><h2>Tonight\'s closing counts</h2>{_closing_table(view)}'
         "</section>"
         f'<section id="queue"><h2>Queue ({view.live_jobs} live{shown})</h2>'

@@ -39,6 +39,9 @@ class JobKind(StrEnum):
     SOLVE = "solve"
     SIMULATE = "simulate"
     WHAT_IF = "what_if"
+    # A chunk of an assortment's calibration: estimate its items from their history and make
+    # the estimates their next versions (service.assortment_history).
+    CALIBRATE = "calibrate"
 
 
 class JobState(StrEnum):

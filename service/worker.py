@@ -18,6 +18,10 @@ Simulations and what-if comparisons come through the same queue (the job's `kind
 same way, in a background thread under a renewed lease; their JSON report is stored, and the
 job marked done, in one statement while the lease is held. A simulation uses the network's
 stored optimal policy when there is one, and solves it otherwise.
+
+A chunk of an assortment's calibration (kind `calibrate`, service.assortment_history) estimates
+its items in the background thread, reading in a session of its own; the new versions, their
+solve jobs and the job's report are written in one transaction while the lease is held.
 """
 
 from __future__ import annotations
@@ -35,9 +39,10 @@ from types import FrameType
 from typing import Any
 
 from pydantic import ValidationError
+from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session, sessionmaker
 
-from service import analysis
+from service import analysis, assortment_history
 from service.analysis_requests import SimulationRequest, WhatIfRequest
 from service.codec import StoredPolicy, decode_policy, encode_policy
 from service.db.base import utcnow
@@ -54,7 +59,7 @@ from service.db.jobs import (
 )
 from service.db.policies import policy_for
 from service.db.tables import NetworkVersion
-from service.errors import CorruptPolicyError
+from service.errors import CorruptPolicyError, LeaseLostError
 from service.settings import Settings
 from service.vocabulary import JobKind, SolveMethod
 from solver import Criterion, NetworkSpec, SolverError, solve_network
@@ -185,6 +190,36 @@ class _Analyse(threading.Thread):
         raise ValueError(f"unknown job kind {kind!r}")
 
 
+class _Calibrate(threading.Thread):
+    """Estimates the items of one calibration chunk; daemon, like _Solve."""
+
+    def __init__(
+        self, claimed: _Claimed, sessions: sessionmaker[Session], settings: Settings
+    ) -> None:
+        super().__init__(daemon=True, name="stockrelay-calibrate")
+        self.claimed, self.sessions, self.settings = claimed, sessions, settings
+        self.result: assortment_history.ChunkEstimates | None = None
+        self.error: BaseException | None = None
+        self.seconds = 0.0
+
+    def run(self) -> None:
+        start = time.perf_counter()
+        try:
+            if self.claimed.params is None:
+                raise ValueError("the calibrate job has no parameters")
+            with self.sessions() as session:
+                self.result = assortment_history.estimate_chunk(
+                    session,
+                    self.claimed.tenant_id,
+                    json.loads(self.claimed.params),
+                    self.settings.size_limits,
+                )
+        except BaseException as exc:  # handed to the worker thread, which decides
+            self.error = exc
+        finally:
+            self.seconds = time.perf_counter() - start
+
+
 class Worker:
     def __init__(
         self,
@@ -270,9 +305,11 @@ class Worker:
             self._fail(claimed, f"stored specification is invalid: {exc}")
             return
 
-        solve: _Solve | _Analyse
+        solve: _Solve | _Analyse | _Calibrate
         if claimed.kind == JobKind.SOLVE:
             solve = _Solve(spec, claimed.criterion, claimed.method, self.settings)
+        elif claimed.kind == JobKind.CALIBRATE:
+            solve = _Calibrate(claimed, self.sessions, self.settings)
         else:
             solve = _Analyse(claimed, spec, self._stored_policy(claimed), self.settings)
         solve.start()
@@ -295,6 +332,8 @@ class Worker:
                 # The last report, which the throttle may have held back.
                 self._write_progress(claimed, solve.progress)
             self._store(claimed, solve.result)
+        elif isinstance(solve, _Calibrate):
+            self._store_calibration(claimed, solve.result, solve.seconds)
         else:
             self._store_report(claimed, solve.result, solve.seconds)
 
@@ -388,3 +427,33 @@ class Worker:
             log.info("job %d: %s done in %.3f s", claimed.job_id, claimed.kind, seconds)
         else:
             log.warning("job %d: lease lost before the report was stored", claimed.job_id)
+
+    def _store_calibration(
+        self, claimed: _Claimed, estimates: assortment_history.ChunkEstimates, seconds: float
+    ) -> None:
+        try:
+            with self.sessions.begin() as session:
+                report = assortment_history.apply_chunk(
+                    session, claimed.tenant_id, estimates, utcnow()
+                )
+                text = json.dumps(report, allow_nan=False, separators=(",", ":"))
+                if not store_analysis(session, claimed.job_id, self.owner, text, seconds):
+                    raise LeaseLostError
+        except LeaseLostError:
+            log.warning("job %d: lease lost before the calibration was stored", claimed.job_id)
+            return
+        except IntegrityError as exc:
+            # Another writer gave one of the items a version at the same moment: estimate the
+            # chunk again from the item's new version.
+            self._fail(
+                claimed,
+                f"an item changed while it was stored: {exc.orig}",
+                retry=claimed.attempts < self.settings.max_attempts,
+            )
+            return
+        log.info(
+            "job %d: calibrate done in %.3f s, %d items given a version",
+            claimed.job_id,
+            seconds,
+            report["calibrated"],
+        )

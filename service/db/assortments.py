@@ -12,28 +12,51 @@ from __future__ import annotations
 import json
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
-from datetime import time
+from datetime import date, datetime, time
 from typing import Any
 
-from sqlalchemy import insert, select, update
+from sqlalchemy import delete, func, insert, select, update
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
+from service.db.base import utcnow
 from service.db.jobs import enqueue_solves
 from service.db.networks import with_current_version
-from service.db.tables import Assortment, Network, NetworkVersion, Policy, SolveJob
+from service.db.tables import (
+    Assortment,
+    CalibrationSettings,
+    ClosingCount,
+    Network,
+    NetworkVersion,
+    Policy,
+    SalesDay,
+    SolveJob,
+)
 from service.vocabulary import JobKind, JobState
 
 __all__ = [
+    "CalibratedVersion",
     "CurrentItem",
+    "HistoryCounts",
+    "ItemDay",
     "ItemRow",
     "StoredItems",
+    "add_calibrated_versions",
+    "all_assortments",
     "assortment_by_name",
+    "calibration_job",
+    "closing_reports_by_location",
     "create_assortment",
     "current_items",
+    "enqueue_calibration",
     "get_assortment",
+    "history_counts",
+    "item_networks",
+    "jobs_by_id",
     "list_assortments",
+    "same_day_networks",
     "spec_texts",
+    "store_item_history",
     "store_items",
 ]
 
@@ -301,3 +324,293 @@ def _queue_solves(
             version = session.get_one(NetworkVersion, version_id)
             queued += [job.id for job in enqueue_solves(session, tenant_id, version, criteria)]
         return queued
+
+
+# -- sales history of the items ----------------------------------------------------------------
+
+# Rows of history per INSERT executed (and per DELETE of replaced rows).
+_HISTORY_ROWS = 5_000
+
+
+@dataclass(frozen=True)
+class ItemDay:
+    """One item's business day at one location, under the item's network."""
+
+    network_id: int
+    location: str
+    business_date: date
+    units_sold: int
+    stock_at_open: int
+    units_received: int
+
+
+def same_day_networks(session: Session, network_ids: Sequence[int]) -> set[int]:
+    """Those of `network_ids` whose calibration settings say receipts sell the day they come."""
+    found: set[int] = set()
+    for start in range(0, len(network_ids), _CHUNK):
+        chunk = network_ids[start : start + _CHUNK]
+        found.update(
+            session.scalars(
+                select(CalibrationSettings.network_id).where(
+                    CalibrationSettings.network_id.in_(chunk),
+                    CalibrationSettings.receipts_sell_same_day.is_(True),
+                )
+            )
+        )
+    return found
+
+
+def store_item_history(session: Session, days: Sequence[ItemDay]) -> tuple[int, int]:
+    """Store the days (unique by network, location and date), replacing those stored already:
+    one read of the stored keys per chunk of networks, one DELETE per chunk of replaced rows,
+    multi-row INSERTs of _HISTORY_ROWS rows. Returns (inserted, replaced)."""
+    if not days:
+        return 0, 0
+    first = min(day.business_date for day in days)
+    last = max(day.business_date for day in days)
+    networks = sorted({day.network_id for day in days})
+    stored: dict[tuple[int, str, date], int] = {}
+    for start in range(0, len(networks), _CHUNK):
+        chunk = networks[start : start + _CHUNK]
+        stored.update(
+            ((network_id, location, day), row_id)
+            for row_id, network_id, location, day in session.execute(
+                select(
+                    SalesDay.id, SalesDay.network_id, SalesDay.location_id, SalesDay.business_date
+                ).where(SalesDay.network_id.in_(chunk), SalesDay.business_date.between(first, last))
+            )
+        )
+    replaced = [
+        row_id
+        for day in days
+        if (row_id := stored.get((day.network_id, day.location, day.business_date))) is not None
+    ]
+    for start in range(0, len(replaced), _HISTORY_ROWS):
+        session.execute(
+            delete(SalesDay).where(SalesDay.id.in_(replaced[start : start + _HISTORY_ROWS]))
+        )
+    now = utcnow()
+    # One compiled statement run over every row (the driver's executemany): compiling a
+    # multi-row VALUES statement costs more than the rows it carries.
+    table = SalesDay.metadata.tables[SalesDay.__tablename__]
+    for start in range(0, len(days), _HISTORY_ROWS):
+        session.execute(
+            insert(table),
+            [
+                {
+                    "network_id": day.network_id,
+                    "location_id": day.location,
+                    "business_date": day.business_date,
+                    "units_sold": day.units_sold,
+                    "stock_at_open": day.stock_at_open,
+                    "units_received": day.units_received,
+                    "reported_at": now,
+                }
+                for day in days[start : start + _HISTORY_ROWS]
+            ],
+        )
+    return len(days) - len(replaced), len(replaced)
+
+
+@dataclass(frozen=True)
+class HistoryCounts:
+    """What the items of an assortment have of history: rows (item-location-days), distinct
+    business dates, items with any row, first and last date (None without history)."""
+
+    rows: int
+    days: int
+    items: int
+    first_date: date | None
+    last_date: date | None
+
+
+def history_counts(
+    session: Session, assortment_id: int
+) -> tuple[HistoryCounts, dict[str, HistoryCounts]]:
+    """The assortment's history in all and by location (two aggregate statements)."""
+    columns = (
+        func.count(),
+        func.count(func.distinct(SalesDay.business_date)),
+        func.count(func.distinct(SalesDay.network_id)),
+        func.min(SalesDay.business_date),
+        func.max(SalesDay.business_date),
+    )
+    mine = Network.assortment_id == assortment_id
+    joined = Network.id == SalesDay.network_id
+    rows, days, items, first, last = session.execute(
+        select(*columns).select_from(SalesDay).join(Network, joined).where(mine)
+    ).one()
+    total = HistoryCounts(int(rows), int(days), int(items), first, last)
+    by_location = {
+        location: HistoryCounts(int(r), int(d), int(i), f, la)
+        for location, r, d, i, f, la in session.execute(
+            select(SalesDay.location_id, *columns)
+            .join(Network, joined)
+            .where(mine)
+            .group_by(SalesDay.location_id)
+            .order_by(SalesDay.location_id)
+        )
+    }
+    return total, by_location
+
+
+# -- calibration of every item -----------------------------------------------------------------
+
+
+def enqueue_calibration(
+    session: Session,
+    tenant_id: int,
+    criterion: str,
+    chunks: Sequence[tuple[int, str, dict[str, Any]]],
+) -> list[int]:
+    """Queue one calibration job per chunk (version id, specification hash and parameters of
+    one of its items: the job hangs on a version like every job). Each job's parameters gain
+    `run`, the first job's id, which names the run; the first job's also `jobs`, every id.
+    Returns the jobs' ids, the run's first."""
+    ids = list(
+        session.execute(
+            insert(SolveJob).returning(SolveJob.id, sort_by_parameter_order=True),
+            [
+                {
+                    "tenant_id": tenant_id,
+                    "version_id": version_id,
+                    "spec_hash": digest,
+                    "criterion": criterion,
+                    "kind": JobKind.CALIBRATE.value,
+                    "state": JobState.QUEUED.value,
+                    "attempts": 0,
+                }
+                for version_id, digest, _ in chunks
+            ],
+        ).scalars()
+    )
+    run = ids[0]
+    session.execute(
+        update(SolveJob),
+        [
+            {
+                "id": job_id,
+                "params": json.dumps(
+                    params | {"run": run} | ({"jobs": ids} if job_id == run else {}),
+                    separators=(",", ":"),
+                ),
+            }
+            for job_id, (_, _, params) in zip(ids, chunks, strict=True)
+        ],
+    )
+    return ids
+
+
+def calibration_job(session: Session, tenant_id: int, job_id: int) -> SolveJob | None:
+    """The tenant's calibration job `job_id`; None when missing, another's or another kind."""
+    job = session.get(SolveJob, job_id)
+    if job is None or job.tenant_id != tenant_id or job.kind != JobKind.CALIBRATE.value:
+        return None
+    return job
+
+
+def jobs_by_id(session: Session, job_ids: Sequence[int]) -> Sequence[SolveJob]:
+    return session.scalars(
+        select(SolveJob).where(SolveJob.id.in_(job_ids)).order_by(SolveJob.id)
+    ).all()
+
+
+def item_networks(session: Session, assortment_id: int, codes: Sequence[str]) -> dict[str, Network]:
+    """The networks of the assortment's items `codes`, by code (absent codes left out)."""
+    return {
+        network.item_code or "": network
+        for network in session.scalars(
+            select(Network).where(
+                Network.assortment_id == assortment_id, Network.item_code.in_(codes)
+            )
+        )
+    }
+
+
+@dataclass(frozen=True)
+class CalibratedVersion:
+    """An item's next version from its estimates: made only while the item's current version
+    is still `based_on` (its number)."""
+
+    network_id: int
+    based_on: int
+    spec_json: str
+    spec_hash: str
+    method: str
+
+
+def add_calibrated_versions(
+    session: Session,
+    tenant_id: int,
+    versions: Sequence[CalibratedVersion],
+    criteria: Sequence[str],
+    calibrated_at: datetime,
+) -> tuple[set[int], list[int]]:
+    """Add each version whose item has not changed since it was estimated (one read, one
+    multi-row insert) and queue the solves they need as store_items does. Returns the networks
+    given a version and the jobs queued."""
+    if not versions:
+        return set(), []
+    ids = [version.network_id for version in versions]
+    current: dict[int, int] = {}
+    for start in range(0, len(ids), _CHUNK):
+        current.update(
+            (network_id, number)
+            for network_id, number in session.execute(
+                select(NetworkVersion.network_id, func.max(NetworkVersion.number))
+                .where(NetworkVersion.network_id.in_(ids[start : start + _CHUNK]))
+                .group_by(NetworkVersion.network_id)
+            )
+        )
+    fresh = [version for version in versions if current.get(version.network_id) == version.based_on]
+    if not fresh:
+        return set(), []
+    version_ids = session.execute(
+        insert(NetworkVersion).returning(NetworkVersion.id, sort_by_parameter_order=True),
+        [
+            {
+                "network_id": version.network_id,
+                "number": version.based_on + 1,
+                "spec_json": version.spec_json,
+                "spec_hash": version.spec_hash,
+                "method": version.method,
+                "calibrated_at": calibrated_at,
+            }
+            for version in fresh
+        ],
+    ).scalars()
+    first_version: dict[tuple[str, str], int] = {}
+    for version, version_id in zip(fresh, version_ids, strict=True):
+        first_version.setdefault((version.spec_hash, version.method), version_id)
+    jobs = _queue_solves(session, tenant_id, first_version, criteria)
+    return {version.network_id for version in fresh}, jobs
+
+
+# -- the status page and the metrics -----------------------------------------------------------
+
+
+def all_assortments(session: Session, tenant_id: int | None) -> Sequence[Assortment]:
+    """The live assortments of `tenant_id` (None: of every tenant), by id."""
+    query = select(Assortment).where(Assortment.archived.is_(False)).order_by(Assortment.id)
+    if tenant_id is not None:
+        query = query.where(Assortment.tenant_id == tenant_id)
+    return session.scalars(query).all()
+
+
+def closing_reports_by_location(
+    session: Session, assortment_id: int, business_date: date
+) -> dict[str, int]:
+    """How many items each location has counted for `business_date` (closing_counts rows of
+    the assortment's items)."""
+    return {
+        location: int(count)
+        for location, count in session.execute(
+            select(ClosingCount.location_id, func.count())
+            .join(Network, Network.id == ClosingCount.network_id)
+            .where(
+                Network.assortment_id == assortment_id,
+                ClosingCount.business_date == business_date,
+            )
+            .group_by(ClosingCount.location_id)
+        )
+    }

@@ -401,7 +401,7 @@ def live_analysis_jobs(session: Session, tenant_id: int) -> int:
         session.scalar(
             select(func.count()).where(
                 SolveJob.tenant_id == tenant_id,
-                SolveJob.kind != JobKind.SOLVE.value,
+                SolveJob.kind.in_((JobKind.SIMULATE.value, JobKind.WHAT_IF.value)),
                 SolveJob.state.in_(LIVE_STATES),
             )
         )

@@ -95,10 +95,12 @@ def test_every_family_is_exposed_with_its_type_without_a_key(engine: Engine) -> 
         "stockrelay_priced_solve_upper_bound": "gauge",
         "stockrelay_priced_solve_lower_bound": "gauge",
         "stockrelay_priced_solve_elapsed_seconds": "gauge",
+        "stockrelay_assortment_items": "gauge",
+        "stockrelay_assortment_closing_locations": "gauge",
     }
     assert value(samples, "stockrelay_database_up") == 1
     # Every kind of job and outcome has its series from the start, at 0.
-    for kind in ("solve", "simulate", "what_if"):
+    for kind in ("solve", "simulate", "what_if", "calibrate"):
         for outcome in ("done", "failed", "retried"):
             labels = frozenset({("kind", kind), ("outcome", outcome)})
             assert samples[("stockrelay_jobs_total", labels)] == 0

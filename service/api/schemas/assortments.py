@@ -14,9 +14,16 @@ from service.vocabulary import SolveMethodName, SolveModeName
 
 __all__ = [
     "AssortmentCreate",
+    "AssortmentHistoryOut",
     "AssortmentOut",
+    "CalibrationChangeOut",
+    "CalibrationFailureOut",
+    "CalibrationRunIn",
+    "CalibrationRunOut",
     "ClosingReportOut",
     "ClosingStateOut",
+    "HistoryCountsOut",
+    "HistoryUploadOut",
     "ItemOut",
     "ItemPage",
     "ItemRecommendationsOut",
@@ -326,3 +333,108 @@ class ItemRecommendationsOut(BaseModel):
     business_date: date = Field(description="The business date the moves are for.")
     items: list[ItemRecommendationOut] = Field(description="One answer per item, in order.")
     summary: PickSummaryOut = Field(description="Totals over the items.")
+
+
+# -- sales history and calibration (service.api.assortment_history) ---------------------------
+
+
+class HistoryUploadOut(BaseModel):
+    """What an upload of history did."""
+
+    assortment_id: int = Field(description="The assortment.")
+    received: int = Field(description="Rows in the upload.")
+    inserted: int = Field(description="Rows stored as days new to their item and location.")
+    replaced: int = Field(description="Rows that replaced a day stored already.")
+    items: int = Field(description="Items the upload had rows for.")
+
+
+class HistoryCountsOut(BaseModel):
+    rows: int = Field(description="Days stored, one per item, location and business date.")
+    days: int = Field(description="Distinct business dates.")
+    items_with_history: int = Field(description="Items with at least one day stored.")
+    first_date: date | None = Field(description="The earliest business date; null when none.")
+    last_date: date | None = Field(description="The latest business date; null when none.")
+
+
+class LocationHistoryCountsOut(HistoryCountsOut):
+    location: str = Field(description="The location.")
+
+
+class AssortmentHistoryOut(HistoryCountsOut):
+    """The sales history stored for the assortment's items."""
+
+    assortment_id: int = Field(description="The assortment.")
+    items: int = Field(description="Items of the assortment.")
+    locations: list[LocationHistoryCountsOut] = Field(
+        description="The same counts per location with history."
+    )
+
+
+class CalibrationRunIn(BaseModel):
+    """How to estimate; every setting absent takes each item's calibration settings."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    window_days: int | None = Field(
+        default=None, ge=7, le=36_600, description="Use only the most recent days."
+    )
+    half_life_days: float | None = Field(
+        default=None, gt=0, le=36_600, description="Recency half-life in days."
+    )
+    confidence: float | None = Field(
+        default=None, ge=0.5, lt=1, description="Confidence of the intervals."
+    )
+    items_per_chunk: int = Field(
+        default=50,
+        ge=1,
+        le=1_000,
+        description="Items per job: the run is shared by the workers one chunk at a time.",
+    )
+
+
+class CalibrationChangeOut(BaseModel):
+    item: str = Field(description="The item's code.")
+    location: str = Field(description="The location.")
+    parameter: Literal[
+        "demand_mean", "demand_variance", "replenishment_mean", "replenishment_variance"
+    ] = Field(description="The parameter that changed (units per day, or units squared).")
+    old: float = Field(description="Its value in the version the estimate replaced.")
+    new: float = Field(description="Its estimated value, now in the item's new version.")
+    change: float = Field(
+        description="|new - old| / max(|old|, 0.05): the relative change calibration reports."
+    )
+
+
+class CalibrationFailureOut(BaseModel):
+    item: str = Field(description="The item's code.")
+    reason: str = Field(description="Why it was not calibrated.")
+
+
+class CalibrationRunOut(BaseModel):
+    """Where a calibration of every item stands and, over its finished chunks, what changed."""
+
+    run: int = Field(description="The run's id (the id of its first job).")
+    assortment_id: int = Field(description="The assortment.")
+    state: Literal["queued", "running", "done"] = Field(
+        description="done once every chunk has finished (done or failed)."
+    )
+    created_at: Timestamp = Field(description="When the run was started (UTC).")
+    finished_at: Timestamp | None = Field(description="When its last chunk finished (UTC).")
+    chunks: int = Field(description="Jobs of the run, each a chunk of items.")
+    chunks_queued: int = Field(description="Chunks waiting for a worker.")
+    chunks_running: int = Field(description="Chunks a worker is estimating.")
+    chunks_done: int = Field(description="Chunks finished.")
+    chunks_failed: int = Field(description="Chunks that failed (their items count as failed).")
+    items: int = Field(description="Items in the run.")
+    calibrated: int = Field(description="Items given a new version with their estimates.")
+    unchanged: int = Field(description="Items whose estimates equal their current numbers.")
+    skipped: int = Field(description="Items without any history (left as they are).")
+    failed: int = Field(description="Items that could not be estimated or stored (`failures`).")
+    jobs_queued: int = Field(description="Solves queued for the new versions.")
+    largest_changes: list[CalibrationChangeOut] = Field(
+        description="The largest relative changes of the calibrated items, largest first (at "
+        "most 20)."
+    )
+    failures: list[CalibrationFailureOut] = Field(
+        description="Failed items with the reason (at most 50)."
+    )

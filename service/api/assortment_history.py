@@ -1,0 +1,207 @@
+"""An assortment's sales history in one upload, and the calibration of every item as one run of
+jobs shared by the workers."""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from typing import Annotated, Any
+
+from fastapi import APIRouter, Path, Request, Response, status
+from fastapi.concurrency import run_in_threadpool
+from sqlalchemy.exc import IntegrityError
+
+from service import assortment_history, history_upload
+from service.api.assortments import AssortmentId, _problems, find_or_404, read_lines
+from service.api.deps import MAX_ID, Reader, SessionDep, SettingsDep, Writer
+from service.api.schemas.assortments import (
+    AssortmentHistoryOut,
+    CalibrationChangeOut,
+    CalibrationFailureOut,
+    CalibrationRunIn,
+    CalibrationRunOut,
+    HistoryUploadOut,
+    LocationHistoryCountsOut,
+)
+from service.assortment_history import CalibrationOverrides, RunSummary
+from service.errors import ItemUploadError, NoItemsError
+from service.problems import PROBLEM_RESPONSES, Conflict, NotFound, UnsupportedMedia
+
+router = APIRouter(prefix="/v1/assortments", tags=["assortments"])
+
+RunId = Annotated[int, Path(ge=1, le=MAX_ID, description="The calibration run's id.")]
+
+_CSV_EXAMPLE = (
+    "date,item,location,units_sold,stock_at_open,units_received\n"
+    "2026-11-30,DRL-18V,harbour,3,7,2\n"
+    "2026-11-30,DRL-18V,old-town,1,4,0\n"
+    "2026-11-30,SAW-CIRC,harbour,0,2,1\n"
+)
+_UPLOAD_DOC: dict[str, Any] = {
+    "requestBody": {
+        "required": True,
+        "content": {
+            "text/csv": {"schema": {"type": "string"}, "example": _CSV_EXAMPLE},
+            "application/x-ndjson": {"schema": {"type": "string"}},
+            "application/json": {
+                "schema": {
+                    "type": "object",
+                    "properties": {"rows": {"type": "array", "items": {"type": "object"}}},
+                    "required": ["rows"],
+                }
+            },
+        },
+    }
+}
+
+
+@router.post(
+    "/{assortment_id}/history",
+    response_model=HistoryUploadOut,
+    openapi_extra=_UPLOAD_DOC,
+    responses={413: PROBLEM_RESPONSES[413], 415: PROBLEM_RESPONSES[415]},
+)
+async def upload_history(
+    assortment_id: AssortmentId,
+    request: Request,
+    session: SessionDep,
+    caller: Writer,
+    settings: SettingsDep,
+) -> HistoryUploadOut:
+    """Daily rows of every item in one upload: CSV (`date,item,location,units_sold,
+    stock_at_open,units_received`), JSON lines (a row per line) or `{"rows": [...]}`. All or
+    nothing: any bad row refuses the whole upload with every problem's line; a day stored
+    already is replaced."""
+    media = request.headers.get("content-type", "application/json").split(";")[0].strip()
+    parsers: dict[str, Callable[[list[str]], list[history_upload.HistoryLine]]] = {
+        "text/csv": history_upload.parse_csv,
+        "application/x-ndjson": history_upload.parse_json_lines,
+        "application/jsonl": history_upload.parse_json_lines,
+        "application/json": lambda lines: history_upload.parse_json_document(
+            "\n".join(lines).encode("utf-8")
+        ),
+    }
+    if media not in parsers:
+        raise UnsupportedMedia(
+            f"send text/csv, application/x-ndjson or application/json, not {media}"
+        )
+    lines = await read_lines(request, settings.max_upload_bytes)
+
+    def work() -> HistoryUploadOut:
+        assortment = find_or_404(session, caller.tenant_id, assortment_id)
+        try:
+            rows = parsers[media](lines)
+            with session.begin_nested():
+                stored = assortment_history.store_history(session, assortment, rows)
+        except ItemUploadError as exc:
+            raise _problems(exc) from exc
+        except IntegrityError as exc:
+            raise Conflict(
+                "another upload stored some of these days at the same moment; send this one "
+                "again (a repeat replaces them)"
+            ) from exc
+        return HistoryUploadOut(
+            assortment_id=assortment.id,
+            received=stored.received,
+            inserted=stored.inserted,
+            replaced=stored.replaced,
+            items=stored.items,
+        )
+
+    return await run_in_threadpool(work)
+
+
+@router.get("/{assortment_id}/history", response_model=AssortmentHistoryOut)
+def history_summary(
+    assortment_id: AssortmentId, session: SessionDep, caller: Reader
+) -> AssortmentHistoryOut:
+    """Days of history stored for the items, in all and per location."""
+    assortment = find_or_404(session, caller.tenant_id, assortment_id)
+    summary = assortment_history.history_summary(session, assortment)
+    total = summary.total
+    return AssortmentHistoryOut(
+        assortment_id=assortment.id,
+        items=summary.items,
+        rows=total.rows,
+        days=total.days,
+        items_with_history=total.items,
+        first_date=total.first_date,
+        last_date=total.last_date,
+        locations=[
+            LocationHistoryCountsOut(
+                location=location,
+                rows=counts.rows,
+                days=counts.days,
+                items_with_history=counts.items,
+                first_date=counts.first_date,
+                last_date=counts.last_date,
+            )
+            for location, counts in summary.locations.items()
+        ],
+    )
+
+
+def _run_out(summary: RunSummary) -> CalibrationRunOut:
+    return CalibrationRunOut(
+        run=summary.run,
+        assortment_id=summary.assortment_id,
+        state=summary.state,
+        created_at=summary.created_at,
+        finished_at=summary.finished_at,
+        chunks=summary.chunks,
+        chunks_queued=summary.chunks_queued,
+        chunks_running=summary.chunks_running,
+        chunks_done=summary.chunks_done,
+        chunks_failed=summary.chunks_failed,
+        items=summary.items,
+        calibrated=summary.calibrated,
+        unchanged=summary.unchanged,
+        skipped=summary.skipped,
+        failed=summary.failed,
+        jobs_queued=summary.jobs_queued,
+        largest_changes=[CalibrationChangeOut.model_validate(c) for c in summary.changes],
+        failures=[CalibrationFailureOut.model_validate(f) for f in summary.failures],
+    )
+
+
+@router.post(
+    "/{assortment_id}/calibration",
+    status_code=status.HTTP_202_ACCEPTED,
+    response_model=CalibrationRunOut,
+)
+def start_calibration(
+    assortment_id: AssortmentId,
+    session: SessionDep,
+    caller: Writer,
+    response: Response,
+    body: CalibrationRunIn | None = None,
+) -> CalibrationRunOut:
+    """Estimate every item from its history and make the estimates each changed item's next
+    version (its solves queued), as one run of jobs that the workers share; follow it at the
+    Location given."""
+    assortment = find_or_404(session, caller.tenant_id, assortment_id)
+    request = body or CalibrationRunIn()
+    try:
+        jobs = assortment_history.start_calibration(
+            session,
+            assortment,
+            CalibrationOverrides(request.window_days, request.half_life_days, request.confidence),
+            request.items_per_chunk,
+        )
+    except NoItemsError as exc:
+        raise Conflict(str(exc)) from exc
+    summary = assortment_history.run_summary(session, assortment, jobs[0])
+    assert summary is not None
+    response.headers["Location"] = f"/v1/assortments/{assortment.id}/calibration/{jobs[0]}"
+    return _run_out(summary)
+
+
+@router.get("/{assortment_id}/calibration/{run}", response_model=CalibrationRunOut)
+def get_calibration_run(
+    assortment_id: AssortmentId, run: RunId, session: SessionDep, caller: Reader
+) -> CalibrationRunOut:
+    """Progress (chunks by state) and, over the finished chunks, what changed."""
+    assortment = find_or_404(session, caller.tenant_id, assortment_id)
+    summary = assortment_history.run_summary(session, assortment, run)
+    if summary is None:
+        raise NotFound(f"no calibration run {run} of assortment {assortment.id}")
+    return _run_out(summary)
