@@ -7,6 +7,8 @@ instructions names their revision, so a location can tell that what it acted on 
 
 from __future__ import annotations
 
+from dataclasses import asdict
+from dataclasses import fields as dataclass_fields
 from datetime import date
 from typing import Annotated
 
@@ -49,15 +51,7 @@ def report_closing_stock(
         correction=body.correction,
         caller=caller,
     )
-    return ClosingStockOut(
-        network_id=network_id,
-        location=location,
-        business_date=reported.business_date,
-        units=reported.units,
-        reported_at=reported.reported_at,
-        missing=reported.missing,
-        revision=reported.revision,
-    )
+    return ClosingStockOut(network_id=network_id, location=location, **asdict(reported))
 
 
 @router.get(
@@ -96,31 +90,22 @@ def location_instructions(
     if if_none_match is not None and tag in {t.strip() for t in if_none_match.split(",")}:
         return Response(status_code=status.HTTP_304_NOT_MODIFIED, headers={"ETag": tag})
     response.headers["ETag"] = tag
+    fields = {field.name: getattr(found, field.name) for field in dataclass_fields(found)}
     return InstructionsOut(
-        network_id=found.network_id,
-        location=found.location,
-        business_date=found.business_date,
-        version=found.version,
-        criterion=found.criterion,
-        computed_at=found.computed_at,
-        revision=found.revision,
-        moves_changed_in_revision=found.moves_changed_in_revision,
-        corrections=[
-            CorrectionOut(
-                location=c.location_id,
-                old_units=c.old_units,
-                new_units=c.new_units,
-                revision=c.revision,
-                key_prefix=c.key_prefix,
-                corrected_at=c.corrected_at,
-            )
-            for c in found.corrections
-        ],
-        notes=found.notes,
-        send=[Movement(location=other, units=units) for other, units in found.send],
-        receive=[Movement(location=other, units=units) for other, units in found.receive],
-        net_change=found.net_change,
-        relay=found.relay,
-        relay_explanation=found.relay_explanation,
-        stock=found.stock,
+        **fields
+        | {
+            "corrections": [
+                CorrectionOut(
+                    location=c.location_id,
+                    old_units=c.old_units,
+                    new_units=c.new_units,
+                    revision=c.revision,
+                    key_prefix=c.key_prefix,
+                    corrected_at=c.corrected_at,
+                )
+                for c in found.corrections
+            ],
+            "send": [Movement(location=other, units=units) for other, units in found.send],
+            "receive": [Movement(location=other, units=units) for other, units in found.receive],
+        }
     )

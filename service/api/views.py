@@ -74,29 +74,11 @@ def network_solves_out(
 
 
 def transfers_out(transfers: list[Transfer]) -> list[TransferOut]:
-    return [
-        TransferOut(
-            from_=t.from_,
-            to=t.to,
-            units=t.units,
-            unit_cost=t.unit_cost,
-            dispatch_cost=t.dispatch_cost,
-        )
-        for t in transfers
-    ]
+    return [TransferOut.model_validate(t.as_json()) for t in transfers]
 
 
 def relays_out(relays: list[Relay]) -> list[RelayOut]:
-    return [
-        RelayOut(
-            location=r.location,
-            receives=r.receives,
-            sends=r.sends,
-            net_change=r.net_change,
-            explanation=r.explanation,
-        )
-        for r in relays
-    ]
+    return [RelayOut.model_validate(r.as_json()) for r in relays]
 
 
 def recommendation_out(
