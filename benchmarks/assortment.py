@@ -31,8 +31,10 @@ Sections, one function each (`SECTIONS`), each returning its part of the JSON re
   bytes, and the bytes solver.assortment derives and keeps beside each policy it has served
   (after bulk_moves; 0 when that section did not run).
 
-Later sections (create, calibrate, solve, closing to pick lists through the service) belong in
-SECTIONS too. A table goes to stdout and everything to JSON (default
+* service: items created, solved by 1 and 2 worker processes on SQLite and PostgreSQL, the
+  closing reports to pick lists, and bulk recommendations, all through the HTTP API
+  (benchmarks/assortment_service.py). History and calibration: benchmarks/assortment_history.py.
+ A table goes to stdout and everything to JSON (default
 benchmarks/results/assortment.json) through the shared writer of benchmarks/solve.py. BLAS runs
 single-threaded, as in benchmarks/solve.py.
 """
@@ -59,6 +61,7 @@ from scipy.optimize import Bounds, LinearConstraint, milp
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
+import assortment_service  # the sections through the HTTP API and worker processes
 import solve  # machine facts, revision and the shared JSON writer
 
 from service.codec import decode_policy, encode_policy
@@ -336,7 +339,7 @@ def _moving(moves: Any) -> int:
 
 def policy_memory(a: Assortment, quick: bool) -> dict[str, Any]:
     """Bytes of each distinct policy's decoded arrays, and its stored size."""
-    rows = []
+    rows: list[dict[str, Any]] = []
     for policy, kind in zip(a.policies, a.kinds, strict=True):
         encoded = encode_policy(policy)
         decoded = decode_policy(encoded.arrays, encoded.layout, encoded.checksum, encoded.meta)
@@ -349,8 +352,8 @@ def policy_memory(a: Assortment, quick: bool) -> dict[str, Any]:
                 "derived_bytes": derived_bytes(policy),
             }
         )
-    summary = {}
-    for kind in sorted({row["kind"] for row in rows}):
+    summary: dict[str, dict[str, Any]] = {}
+    for kind in sorted({str(row["kind"]) for row in rows}):
         of_kind = [row for row in rows if row["kind"] == kind]
         summary[kind] = {
             "policies": len(of_kind),
@@ -376,10 +379,21 @@ def _array_bytes(policy: ItemPolicy) -> int:
 
 
 Section = Callable[[Assortment, bool], dict[str, Any]]
+
+
+def service(a: Assortment, quick: bool) -> dict[str, Any]:
+    """Create, solve (1 and 2 worker processes, SQLite and PostgreSQL), closing to pick lists
+    and bulk recommendations through the HTTP API (benchmarks/assortment_service.py; its own
+    items over the same kind of layout)."""
+    report: dict[str, Any] = assortment_service.run_service_sections(quick)
+    return report
+
+
 SECTIONS: dict[str, Section] = {
     "bulk_moves": bulk_moves,
     "sharing_quality": sharing_quality,
     "policy_memory": policy_memory,
+    "service": service,
 }
 
 
@@ -463,6 +477,7 @@ PRINTERS: dict[str, Callable[[dict[str, Any]], None]] = {
     "bulk_moves": print_bulk,
     "sharing_quality": print_quality,
     "policy_memory": print_memory,
+    "service": assortment_service.print_service,
 }
 
 
