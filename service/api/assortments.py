@@ -12,7 +12,7 @@ from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
 from service import assortments
-from service.api.deps import Reader, SessionDep, SettingsDep, Writer
+from service.api.deps import MAX_ID, Reader, SessionDep, SettingsDep, Writer
 from service.api.schemas.assortments import (
     AssortmentCreate,
     AssortmentOut,
@@ -43,7 +43,7 @@ from service.problems import (
 
 router = APIRouter(prefix="/v1/assortments", tags=["assortments"])
 
-AssortmentId = Annotated[int, Path(ge=1, description="The assortment's id.")]
+AssortmentId = Annotated[int, Path(ge=1, le=MAX_ID, description="The assortment's id.")]
 
 _CSV_EXAMPLE = (
     "item,location,capacity,unit_margin,holding_cost,demand_mean,demand_variance,"
