@@ -149,7 +149,7 @@ __all__ = [
 # Policy improvement switches only for a gain beyond this fraction of the store's value scale.
 _TIE_RTOL = 1e-10
 # Certificate: first batch of replications, and the longest discounted horizon (days).
-_FIRST_REPLICATIONS = 64
+_FIRST_REPLICATIONS = 32
 _MAX_HORIZON = 20_000
 # Cutting planes kept per store in the model at most (the longest idle are dropped first).
 _MAX_CUTS_PER_STORE = 100

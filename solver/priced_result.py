@@ -41,7 +41,7 @@ class PricedOptions:
     tolerance: pricing stops when the cutting-plane model predicts less than this relative
         decrease of the bound (fraction of the bound).
     replications: simulated replications for the certificate; None chooses them adaptively,
-        doubling from 64 until the interval's half-width is at most target_half_width of the
+        doubling from 32 until the interval's half-width is at most target_half_width of the
         bound or max_replications is reached.
     max_replications: cap of the adaptive choice.
     seed: seed of the certificate's random numbers (numpy default_rng).
@@ -53,8 +53,8 @@ class PricedOptions:
         warm-up days.
     """
 
-    max_iterations: int = 400
-    tolerance: float = 1e-4
+    max_iterations: int = 1_000
+    tolerance: float = 1e-6
     replications: int | None = None
     max_replications: int = 1024
     seed: int = 0
