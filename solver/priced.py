@@ -151,6 +151,11 @@ _TIE_RTOL = 1e-10
 # Certificate: first batch of replications, and the longest discounted horizon (days).
 _FIRST_REPLICATIONS = 32
 _MAX_HORIZON = 20_000
+# The plan's trade limits tried (units a store may send and take on each later night), and the
+# simulation that chooses among them: replications and days.
+_TRADE_LIMITS = (2, 4, 8)
+_SELECTION_REPLICATIONS = 8
+_SELECTION_DAYS = 250
 # Cutting planes kept per store in the model at most (the longest idle are dropped first).
 _MAX_CUTS_PER_STORE = 100
 # Entries of one block of (send, stock, post-move stock) arrays in a store's move table.
@@ -790,6 +795,80 @@ def _reference_stock(oracle: _Oracle, solutions: list[_StoreSolution]) -> NDArra
     return np.minimum(np.array(stock, dtype=np.int64), oracle.net.capacities)
 
 
+# -- the plan's trade limit -------------------------------------------------------------------
+
+
+def _limited_post_move(
+    net: _Network,
+    laws: list[NDArray[np.float64]],
+    policy: PricedPolicy,
+    criterion: Criterion,
+    limit: int,
+) -> tuple[NDArray[np.float64], ...]:
+    """Per store, the post-move values of its priced subproblem (the policy's prices) with its
+    sends and takes limited to `limit` units on every night, shape (P, C_i + 1) each."""
+    out = []
+    for i in range(net.n_stores):
+        store = _Store(net, i, laws[i])
+        store.most_out = np.minimum(store.most_out, limit)
+        store.most_in = np.minimum(store.most_in, limit)
+        solution = store.solve(
+            policy.prices, policy.network_price, criterion, net.discount, net.n_lanes
+        )
+        out.append(solution.post_move)
+    return tuple(out)
+
+
+def _choose_trade_limit(
+    net: _Network,
+    policy: PricedPolicy,
+    criterion: Criterion,
+    reference: NDArray[np.int64],
+    laws: list[NDArray[np.float64]],
+    options: PricedOptions,
+) -> PricedPolicy:
+    """The policy planning on the store values, or on the values with later trades limited to
+    one of _TRADE_LIMITS units a night, whichever earns most in a short simulation from the
+    reference stock (module docstring). Its random numbers are not the certificate's."""
+    candidates = [policy]
+    for limit in _TRADE_LIMITS:
+        # A limit no store reaches changes nothing.
+        if all(
+            np.all(net.most_out[:, i] <= limit) and np.all(net.most_in[:, i] <= limit)
+            for i in range(net.n_stores)
+        ):
+            continue
+        values = _limited_post_move(net, laws, policy, criterion, limit)
+        candidates.append(replace(policy, plan_post_move_values=values, trade_limit=limit))
+    if len(candidates) == 1:
+        return policy
+    if criterion == "discounted":
+        days = _SELECTION_DAYS
+        weights = np.power(net.discount, np.arange(days, dtype=np.float64))
+        step = net.discount
+    else:
+        warmup = _SELECTION_DAYS // 4
+        days = _SELECTION_DAYS
+        weights = np.concatenate([np.zeros(warmup), np.full(days - warmup, 1.0 / (days - warmup))])
+        step = 1.0
+    means = [
+        float(
+            _simulate(
+                net,
+                candidate,
+                reference,
+                _SELECTION_REPLICATIONS,
+                days,
+                np.random.default_rng(options.seed + 1),
+                weights,
+                step,
+            ).mean()
+        )
+        for candidate in candidates
+    ]
+    return candidates[int(np.argmax(means))]
+
+
 # -- certificate ------------------------------------------------------------------------------
 
 
@@ -1042,6 +1121,9 @@ def solve_priced(
         converged=result.converged,
         seconds={},
     )
+    t = time.perf_counter()
+    policy = _choose_trade_limit(net, policy, criterion, reference, laws, options)
+    seconds["trade_limit"] = time.perf_counter() - t
 
     def certify_report(replications: int, bound: float, low: float | None) -> None:
         if progress is not None:
