@@ -22,6 +22,7 @@ from solver.build import check_size
 from solver.errors import ModelTooLargeError
 from solver.priced import (
     _do_nothing_laws,
+    _limited_post_move,
     _network,
     _Oracle,
     _simulate,
@@ -392,11 +393,12 @@ def test_certificate_estimate_is_unbiased_whatever_the_store_values() -> None:
     # below 1e-4 per case when the estimator is unbiased).
     spec = random_network(95, (9, 7, 8), network_limit=True, discount=0.9)
     policy = solve_priced(spec, options=QUICK)
-    stock = np.array([4, 6, 2])
-    exact = float(evaluate_plan_exactly(spec, policy, "discounted")[0, policy.state_index(stock)])
+    stock = np.array([4, 6, 2], dtype=np.int64)
+    index = policy.state_index([4, 6, 2])
+    exact = float(evaluate_plan_exactly(spec, policy, "discounted")[0, index])
     net = _network(spec)
     days = 250  # 0.9 ** 250 times the largest value is below 1e-9 of it
-    weights = 0.9 ** np.arange(days)
+    weights = np.power(0.9, np.arange(days, dtype=np.float64))
     rng = np.random.default_rng(7)
     noise = tuple(rng.normal(0.0, 50.0, v.shape) for v in policy.store_values)
     errors = {}
@@ -442,3 +444,41 @@ def test_store_terms_add_up_to_the_pricing_objective() -> None:
     np.testing.assert_allclose(total + float(mu @ oracle.mu_weight), point.value, rtol=1e-12)
     gradient[net.phases * net.n_lanes :] += oracle.mu_weight
     np.testing.assert_allclose(gradient, point.gradient, rtol=0, atol=1e-9)
+
+
+def test_trade_limited_values_grow_with_the_limit_and_round_trip() -> None:
+    # More freedom to trade never lowers a store's optimal value in its priced problem (more
+    # actions, same rewards: Puterman 1994, Markov Decision Processes, section 6.2; from
+    # memory), so the post-move values grow with the limit up to the unlimited ones.
+    spec = random_network(97, (12, 10, 11), network_limit=True, max_limit=5)
+    policy = solve_priced(spec, options=QUICK)
+    net = _network(spec)
+    laws = _do_nothing_laws(net)
+    scale = max(float(np.abs(w).max()) for w in policy.store_post_move_values)
+    limited = {k: _limited_post_move(net, laws, policy, "discounted", k) for k in (1, 2, 4)}
+    chain = [limited[1], limited[2], limited[4], policy.store_post_move_values]
+    for lower, upper in itertools.pairwise(chain):
+        for a, b in zip(lower, upper, strict=True):
+            assert np.all(a <= b + 1e-9 * scale)
+    assert any(
+        np.any(a < b - 1e-6 * scale)
+        for a, b in zip(limited[1], policy.store_post_move_values, strict=True)
+    )
+    # A plan on the limited values is a feasible policy: its exact value stays below the
+    # optimum (outside reference: exact policy iteration) and below the bound.
+    exact = solve_network(spec)
+    planned = replace(policy, plan_post_move_values=limited[1], trade_limit=1)
+    values = evaluate_plan_exactly(spec, planned, "discounted")
+    assert np.all(values <= exact.values + 1e-9 * np.abs(exact.values).max())
+    # The limited values and the limit survive storage; a policy stored before trade limits
+    # existed plans on the store values.
+    arrays, meta = planned.to_arrays()
+    again = PricedPolicy.from_arrays(arrays, json.loads(json.dumps(meta)))
+    stocks = np.array(_stocks(policy))
+    assert again.trade_limit == 1
+    assert np.array_equal(again.plan_batch(stocks), planned.plan_batch(stocks))
+    older = {k: v for k, v in arrays.items() if k != "plan_post_move_values"}
+    old = PricedPolicy.from_arrays(older, {k: v for k, v in meta.items() if k != "trade_limit"})
+    assert old.trade_limit is None and old.plan_post_move_values is None
+    unlimited = replace(policy, plan_post_move_values=None, trade_limit=None)
+    assert np.array_equal(old.plan_batch(stocks), unlimited.plan_batch(stocks))
