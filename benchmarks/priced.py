@@ -29,9 +29,10 @@ recommendations at random closing stocks; p50 and p95 latency (milliseconds).
 
 A table goes to stdout and everything to JSON (default benchmarks/results/priced.json) through
 the shared writer of benchmarks/solve.py. BLAS runs single-threaded, as in benchmarks/solve.py.
-Everything runs in one process: pricing takes a few seconds in all (each store's subproblem
-milliseconds), and the certificate's simulation is one loop vectorised over replications, so
-spreading stores over processes was not tried.
+Everything runs in one process: each store's subproblem takes milliseconds, and about half of
+the pricing time goes to the cutting-plane linear programs (HiGHS), which one process solves;
+the simulations (the trade limit's choice and the certificate) are loops vectorised over
+replications, so spreading stores over processes was not tried.
 """
 
 import os
