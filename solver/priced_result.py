@@ -1,8 +1,10 @@
 """Results of the price-decomposed solve (solver.priced): the priced policy, its certificate,
 options and progress reports.
 
-The policy is the nightly plan of solver.transfer_plan applied to the per-store post-move values
-W_{i,d} of the priced subproblems (concave envelopes of them, see `plan_values`); `plan`,
+The policy is the nightly plan of solver.transfer_plan applied to per-store post-move values
+(concave envelopes of them, see `plan_values`): the W_{i,d} of the priced subproblems, or, when
+the solve chose a trade limit k (solver.priced), the post-move values of the same subproblems
+with every later night's sends and takes limited to k units (`plan_post_move_values`); `plan`,
 `plan_batch` and `recommend` all go through `plan_batch`, which is also what the certificate's
 simulation and `evaluate_plan_exactly` use, so the policy served is the policy measured.
 """
@@ -41,7 +43,7 @@ class PricedOptions:
     tolerance: pricing stops when the cutting-plane model predicts less than this relative
         decrease of the bound (fraction of the bound).
     replications: simulated replications for the certificate; None chooses them adaptively,
-        doubling from 64 until the interval's half-width is at most target_half_width of the
+        doubling from 32 until the interval's half-width is at most target_half_width of the
         bound or max_replications is reached.
     max_replications: cap of the adaptive choice.
     seed: seed of the certificate's random numbers (numpy default_rng).
@@ -53,8 +55,8 @@ class PricedOptions:
         warm-up days.
     """
 
-    max_iterations: int = 400
-    tolerance: float = 1e-4
+    max_iterations: int = 1_000
+    tolerance: float = 1e-6
     replications: int | None = None
     max_replications: int = 1024
     seed: int = 0
@@ -138,6 +140,11 @@ class PricedPolicy:
         M_d = sum_k beta^k mu_{d+k} U (see solver.priced); average, the gain bound's
         sum_i g_i + mean_d mu_d U in every entry.
     gain: the bound on the optimal profit per day (average criterion), else None.
+    plan_post_move_values: N arrays (P, C_i + 1), the values the plan maximises: None for
+        store_post_move_values, else those of the priced subproblems with every later night's
+        sends and takes limited to `trade_limit` units (solver.priced); the bound and
+        `plan_value` keep store_post_move_values.
+    trade_limit: that limit (None: the plan uses store_post_move_values).
     dispatch_costs: (L,), currency per night a lane is used; floors, most_out, most_in:
         (P, N), each store's keep_at_least and handling limits on the night of each phase (the
         capacity where there is no limit). The plan keeps them and pays the dispatch costs
@@ -168,6 +175,8 @@ class PricedPolicy:
     iterations: int
     converged: bool
     seconds: Mapping[str, float] = field(default_factory=dict)
+    plan_post_move_values: tuple[NDArray[np.float64], ...] | None = None
+    trade_limit: int | None = None
 
     # -- sizes and stocks --------------------------------------------------------------------
 
@@ -228,7 +237,8 @@ class PricedPolicy:
         where W is concave)."""
         width = max(self.capacities) + 1
         out = np.zeros((self.phases, len(self.capacities), width))
-        for i, w in enumerate(self.store_post_move_values):
+        planned = self.plan_post_move_values
+        for i, w in enumerate(self.store_post_move_values if planned is None else planned):
             for d in range(self.phases):
                 out[d, i, : w.shape[1]] = concave_envelope(w[d])
         return out
@@ -419,6 +429,10 @@ class PricedPolicy:
                 dtype=np.float64,
             ),
         }
+        if self.plan_post_move_values is not None:
+            arrays["plan_post_move_values"] = np.concatenate(
+                [v.reshape(-1) for v in self.plan_post_move_values]
+            )
         meta: dict[str, Any] = {
             "format": "priced-policy/1",
             "criterion": self.criterion,
@@ -432,6 +446,7 @@ class PricedPolicy:
             "iterations": self.iterations,
             "converged": self.converged,
             "seconds": dict(self.seconds),
+            "trade_limit": self.trade_limit,
         }
         return arrays, meta
 
@@ -501,4 +516,11 @@ class PricedPolicy:
             iterations=int(meta["iterations"]),
             converged=bool(meta["converged"]),
             seconds={str(k): float(v) for k, v in meta["seconds"].items()},
+            # Policies stored before trade limits existed plan on the store values.
+            plan_post_move_values=(
+                split(np.asarray(arrays["plan_post_move_values"]))
+                if "plan_post_move_values" in arrays
+                else None
+            ),
+            trade_limit=None if meta.get("trade_limit") is None else int(meta["trade_limit"]),
         )
