@@ -93,7 +93,8 @@ class CertificateOut(BaseModel):
     )
     policy_value: float = Field(description="The priced policy's simulated value there.")
     policy_value_interval: tuple[float, float] = Field(
-        description="Confidence interval of that value (common random numbers, control variate)."
+        description="Confidence interval of that value (simulated with the store values' "
+        "martingale as a control variate)."
     )
     certified_gap: float = Field(
         description="(upper bound - low end of the interval) / upper bound, as a fraction: "
