@@ -11,15 +11,14 @@ in CSV (line 1 is the header) and JSON lines, `/rows/<k>/<field>` in a JSON docu
 
 from __future__ import annotations
 
-import csv
 import json
 import re
-from collections.abc import Iterable, Iterator
+from collections.abc import Iterable
 from datetime import date
 from typing import Any, NamedTuple
 
 from service.errors import ItemUploadError
-from service.item_upload import MAX_PROBLEMS
+from service.item_upload import MAX_PROBLEMS, csv_records
 
 __all__ = [
     "COLUMNS",
@@ -129,31 +128,9 @@ def _count(value: Any, *, text: bool) -> int | None:
     return number if 0 <= number <= MAX_COUNT else None
 
 
-def _records(lines: Iterable[str]) -> Iterator[tuple[int, list[str]]]:
-    """CSV records with the line each starts on (a quoted field may span lines)."""
-    reader = csv.reader(lines)
-    previous = 0
-    for record in reader:
-        yield previous + 1, record
-        previous = reader.line_num
-
-
 def parse_csv(lines: Iterable[str]) -> list[HistoryLine]:
     """Rows of a CSV upload; `lines` are the text's lines (line 1 the header)."""
-    records = _records(lines)
-    try:
-        _, header = next(records)
-    except StopIteration:
-        raise ItemUploadError([("/line/1", "the CSV is empty")]) from None
-    header = [name.strip().lstrip("\ufeff") for name in header]
-    missing = [name for name in COLUMNS if name not in header]
-    unknown = [name for name in header if name not in COLUMNS]
-    doubled = sorted({name for name in header if header.count(name) > 1})
-    if missing or unknown or doubled:
-        problems = [("/line/1", f"missing column {name!r}") for name in missing]
-        problems += [("/line/1", f"unknown column {name!r}") for name in unknown]
-        problems += [("/line/1", f"column {name!r} given twice") for name in doubled]
-        raise ItemUploadError(problems)
+    header, records = csv_records(lines, COLUMNS, COLUMNS)
     collector = _Collector()
     width = len(header)
     for number, record in records:

@@ -19,7 +19,7 @@ from __future__ import annotations
 import contextlib
 import csv
 import json
-from collections.abc import Iterable, Iterator
+from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -35,6 +35,7 @@ __all__ = [
     "MAX_ITEMS",
     "MAX_PROBLEMS",
     "ParsedItem",
+    "csv_records",
     "parse_csv",
     "parse_json_document",
     "parse_json_lines",
@@ -200,23 +201,33 @@ def _rows(lines: Iterable[str]) -> Iterator[tuple[int, list[str]]]:
         previous = reader.line_num
 
 
-def parse_csv(lines: Iterable[str], layout: Layout) -> list[ParsedItem]:
-    """Items of a CSV upload (module docstring); `lines` are the text's lines."""
-    collector = _Collector(layout)
+def csv_records(
+    lines: Iterable[str], required: Sequence[str], known: Sequence[str]
+) -> tuple[list[str], Iterator[tuple[int, list[str]]]]:
+    """The header of a CSV upload (which must name every `required` column, only `known` ones,
+    each once) and its records after the header, each with the line it starts on (line 1 is
+    the header); ItemUploadError naming every fault of the header at /line/1."""
     records = _rows(lines)
     try:
         _, header = next(records)
     except StopIteration:
         raise ItemUploadError([("/line/1", "the CSV is empty")]) from None
     header = [name.strip().lstrip("\ufeff") for name in header]
-    missing = [name for name in _REQUIRED if name not in header]
-    unknown = [name for name in header if name not in CSV_COLUMNS]
+    missing = [name for name in required if name not in header]
+    unknown = [name for name in header if name not in known]
     doubled = sorted({name for name in header if header.count(name) > 1})
     if missing or unknown or doubled:
         problems = [("/line/1", f"missing column {name!r}") for name in missing]
         problems += [("/line/1", f"unknown column {name!r}") for name in unknown]
         problems += [("/line/1", f"column {name!r} given twice") for name in doubled]
         raise ItemUploadError(problems)
+    return header, records
+
+
+def parse_csv(lines: Iterable[str], layout: Layout) -> list[ParsedItem]:
+    """Items of a CSV upload (module docstring); `lines` are the text's lines."""
+    collector = _Collector(layout)
+    header, records = csv_records(lines, _REQUIRED, CSV_COLUMNS)
     items: dict[str, _CsvItem] = {}
     for number, record in records:
         if not any(value.strip() for value in record):

@@ -4,14 +4,20 @@ jobs shared by the workers."""
 from __future__ import annotations
 
 from collections.abc import Callable
-from typing import Annotated, Any
+from typing import Annotated
 
 from fastapi import APIRouter, Path, Request, Response, status
 from fastapi.concurrency import run_in_threadpool
 from sqlalchemy.exc import IntegrityError
 
 from service import assortment_history, history_upload
-from service.api.assortments import AssortmentId, _problems, find_or_404, read_lines
+from service.api.assortments import (
+    AssortmentId,
+    _problems,
+    bulk_upload_doc,
+    find_or_404,
+    read_lines,
+)
 from service.api.deps import MAX_ID, Reader, SessionDep, SettingsDep, Writer
 from service.api.schemas.assortments import (
     AssortmentHistoryOut,
@@ -36,22 +42,7 @@ _CSV_EXAMPLE = (
     "2026-11-30,DRL-18V,old-town,1,4,0\n"
     "2026-11-30,SAW-CIRC,harbour,0,2,1\n"
 )
-_UPLOAD_DOC: dict[str, Any] = {
-    "requestBody": {
-        "required": True,
-        "content": {
-            "text/csv": {"schema": {"type": "string"}, "example": _CSV_EXAMPLE},
-            "application/x-ndjson": {"schema": {"type": "string"}},
-            "application/json": {
-                "schema": {
-                    "type": "object",
-                    "properties": {"rows": {"type": "array", "items": {"type": "object"}}},
-                    "required": ["rows"],
-                }
-            },
-        },
-    }
-}
+_UPLOAD_DOC = bulk_upload_doc(_CSV_EXAMPLE, "rows")
 
 
 @router.post(

@@ -52,22 +52,30 @@ _CSV_EXAMPLE = (
     "DRL-18V,old-town,8,38.5,0.2,0.9,,1.1,0.02\n"
     "DRL-18V,ring-road,10,38.5,0.2,1.1,,0.8,0.02\n"
 )
-_UPLOAD_DOC: dict[str, Any] = {
-    "requestBody": {
-        "required": True,
-        "content": {
-            "text/csv": {"schema": {"type": "string"}, "example": _CSV_EXAMPLE},
-            "application/x-ndjson": {"schema": {"type": "string"}},
-            "application/json": {
-                "schema": {
-                    "type": "object",
-                    "properties": {"items": {"type": "array", "items": {"type": "object"}}},
-                    "required": ["items"],
-                }
+
+
+def bulk_upload_doc(csv_example: str, member: str) -> dict[str, Any]:
+    """The request body of a bulk upload for the OpenAPI document: CSV (with `csv_example`),
+    JSON lines, or one JSON document `{member: [...]}`."""
+    return {
+        "requestBody": {
+            "required": True,
+            "content": {
+                "text/csv": {"schema": {"type": "string"}, "example": csv_example},
+                "application/x-ndjson": {"schema": {"type": "string"}},
+                "application/json": {
+                    "schema": {
+                        "type": "object",
+                        "properties": {member: {"type": "array", "items": {"type": "object"}}},
+                        "required": [member],
+                    }
+                },
             },
-        },
+        }
     }
-}
+
+
+_UPLOAD_DOC = bulk_upload_doc(_CSV_EXAMPLE, "items")
 
 
 class UploadTooLarge(ApiProblem):
