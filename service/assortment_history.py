@@ -32,7 +32,7 @@ from service.db.networks import canonical_spec
 from service.db.tables import Assortment, Network
 from service.errors import ItemUploadError, NoItemsError
 from service.estimates import (
-    CalibrationOptions,
+    CalibrationOverrides,
     Proposal,
     law_moments,
     options_for,
@@ -48,7 +48,6 @@ from solver import ModelTooLargeError, SizeLimits
 __all__ = [
     "DEFAULT_ITEMS_PER_CHUNK",
     "LARGEST_CHANGES",
-    "CalibrationOverrides",
     "ChunkEstimates",
     "HistoryStored",
     "HistorySummary",
@@ -166,26 +165,6 @@ def history_summary(session: Session, assortment: Assortment) -> HistorySummary:
 
 
 # -- calibration: starting a run ---------------------------------------------------------------
-
-
-@dataclass(frozen=True)
-class CalibrationOverrides:
-    """Settings for this run in place of each item's stored ones (None: the item's)."""
-
-    window_days: int | None = None
-    half_life_days: float | None = None
-    confidence: float | None = None
-
-    def over(self, stored: CalibrationOptions) -> CalibrationOptions:
-        return CalibrationOptions(
-            window_days=stored.window_days if self.window_days is None else self.window_days,
-            half_life_days=(
-                stored.half_life_days if self.half_life_days is None else self.half_life_days
-            ),
-            confidence=stored.confidence if self.confidence is None else self.confidence,
-            auto_apply_threshold=stored.auto_apply_threshold,
-            receipts_sell_same_day=stored.receipts_sell_same_day,
-        )
 
 
 def start_calibration(

@@ -53,6 +53,7 @@ __all__ = [
     "DEFAULT_CONFIDENCE",
     "AutoApplied",
     "CalibrationOptions",
+    "CalibrationOverrides",
     "LocationProposal",
     "Proposal",
     "apply_estimates",
@@ -128,6 +129,27 @@ class Proposal:
     @property
     def largest_change(self) -> float:
         return max((p.largest_change for p in self.locations), default=0.0)
+
+
+@dataclass(frozen=True)
+class CalibrationOverrides:
+    """Settings given for one view, apply or run in place of the stored ones (None: the
+    stored one)."""
+
+    window_days: int | None = None
+    half_life_days: float | None = None
+    confidence: float | None = None
+
+    def over(self, stored: CalibrationOptions) -> CalibrationOptions:
+        return CalibrationOptions(
+            window_days=stored.window_days if self.window_days is None else self.window_days,
+            half_life_days=(
+                stored.half_life_days if self.half_life_days is None else self.half_life_days
+            ),
+            confidence=stored.confidence if self.confidence is None else self.confidence,
+            auto_apply_threshold=stored.auto_apply_threshold,
+            receipts_sell_same_day=stored.receipts_sell_same_day,
+        )
 
 
 def options_for(session: Session, network_id: int) -> CalibrationOptions:

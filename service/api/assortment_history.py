@@ -28,8 +28,9 @@ from service.api.schemas.assortments import (
     HistoryUploadOut,
     LocationHistoryCountsOut,
 )
-from service.assortment_history import CalibrationOverrides, RunSummary
+from service.assortment_history import RunSummary
 from service.errors import ItemUploadError, NoItemsError
+from service.estimates import CalibrationOverrides
 from service.problems import PROBLEM_RESPONSES, Conflict, NotFound, UnsupportedMedia
 
 router = APIRouter(prefix="/v1/assortments", tags=["assortments"])

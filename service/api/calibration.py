@@ -7,7 +7,6 @@ from __future__ import annotations
 import csv
 import io
 import json
-from dataclasses import dataclass
 from typing import Annotated, Any
 
 from fastapi import APIRouter, Depends, Query, Request, Response, status
@@ -40,6 +39,7 @@ from service.errors import HistoryInputError
 from service.estimates import (
     AutoApplied,
     CalibrationOptions,
+    CalibrationOverrides,
     Proposal,
     apply_estimates,
     options_for,
@@ -295,26 +295,6 @@ def _calibration_out(network_id: int, proposal: Proposal) -> CalibrationOut:
     )
 
 
-@dataclass(frozen=True)
-class Overrides:
-    """Settings given in the query for one view or one apply, in place of the stored ones."""
-
-    window_days: int | None
-    half_life_days: float | None
-    confidence: float | None
-
-    def over(self, stored: CalibrationOptions) -> CalibrationOptions:
-        return CalibrationOptions(
-            window_days=stored.window_days if self.window_days is None else self.window_days,
-            half_life_days=(
-                stored.half_life_days if self.half_life_days is None else self.half_life_days
-            ),
-            confidence=stored.confidence if self.confidence is None else self.confidence,
-            auto_apply_threshold=stored.auto_apply_threshold,
-            receipts_sell_same_day=stored.receipts_sell_same_day,
-        )
-
-
 def overrides(
     window_days: Annotated[
         int | None,
@@ -328,11 +308,11 @@ def overrides(
         float | None,
         Query(ge=0.5, lt=1, description="Override: confidence of the intervals."),
     ] = None,
-) -> Overrides:
-    return Overrides(window_days, half_life_days, confidence)
+) -> CalibrationOverrides:
+    return CalibrationOverrides(window_days, half_life_days, confidence)
 
 
-OverridesDep = Annotated[Overrides, Depends(overrides)]
+OverridesDep = Annotated[CalibrationOverrides, Depends(overrides)]
 
 
 @router.get("/calibration", response_model=CalibrationOut)

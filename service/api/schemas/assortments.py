@@ -9,7 +9,7 @@ from pydantic import BaseModel, ConfigDict, Field, StrictInt, field_validator
 
 from service.api.schemas.common import Criteria, Timestamp
 from service.assortment_spec import Layout
-from service.timezones import known_timezone
+from service.timezones import known_timezone, local_cutoff
 from service.vocabulary import SolveMethodName, SolveModeName
 
 __all__ = [
@@ -86,11 +86,7 @@ class AssortmentCreate(Layout):
     @field_validator("closing_cutoff")
     @classmethod
     def _whole_minutes(cls, cutoff: time | None) -> time | None:
-        if cutoff is not None and (
-            cutoff.tzinfo is not None or cutoff.second or cutoff.microsecond
-        ):
-            raise ValueError("give a local time of day in whole minutes, e.g. 04:00")
-        return cutoff
+        return local_cutoff(cutoff)
 
     def layout(self) -> Layout:
         return Layout.model_validate(

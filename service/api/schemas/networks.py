@@ -15,7 +15,7 @@ from pydantic import (
 from service.api.schemas.common import Criteria, Timestamp, _Out
 from service.api.schemas.jobs import JobOut
 from service.demo import DEMO_NETWORK
-from service.timezones import known_timezone
+from service.timezones import known_timezone, local_cutoff
 from service.vocabulary import (
     SolveMethodName,
     SolveModeName,
@@ -62,11 +62,7 @@ class NetworkCreate(NetworkSpec):
     @field_validator("closing_cutoff")
     @classmethod
     def _whole_minutes(cls, cutoff: time | None) -> time | None:
-        if cutoff is not None and (
-            cutoff.tzinfo is not None or cutoff.second or cutoff.microsecond
-        ):
-            raise ValueError("give a local time of day in whole minutes, e.g. 04:00")
-        return cutoff
+        return local_cutoff(cutoff)
 
     def spec(self) -> NetworkSpec:
         """The specification alone. The request was validated as a NetworkSpec (this model is
