@@ -103,26 +103,28 @@ def solve_states(
             )
         )
     }
-    newest = select(func.max(SolveJob.id)).where(SolveJob.kind == JobKind.SOLVE.value)
+    # The newest solve job of each (tenant, specification, criterion, method) as a derived
+    # table joined by id: PostgreSQL hash-joins it, where an IN (subquery) in the join
+    # condition was planned as a subplan run per row (minutes for thousands of items).
+    newest = select(func.max(SolveJob.id).label("id")).where(SolveJob.kind == JobKind.SOLVE.value)
     if tenant_id is not None:
         newest = newest.where(SolveJob.tenant_id == tenant_id)
-    newest = newest.group_by(
+    latest = newest.group_by(
         SolveJob.tenant_id, SolveJob.spec_hash, SolveJob.criterion, SolveJob.method
-    )
+    ).subquery()
     jobs = {
         (network, criterion): (job_id, state, error)
         for network, criterion, job_id, state, error in session.execute(
-            current(
-                Network.id, SolveJob.criterion, SolveJob.id, SolveJob.state, SolveJob.error
-            ).join(
+            current(Network.id, SolveJob.criterion, SolveJob.id, SolveJob.state, SolveJob.error)
+            .join(
                 SolveJob,
                 and_(
                     SolveJob.tenant_id == Network.tenant_id,
                     SolveJob.spec_hash == NetworkVersion.spec_hash,
                     SolveJob.method == NetworkVersion.method,
-                    SolveJob.id.in_(newest),
                 ),
             )
+            .join(latest, latest.c.id == SolveJob.id)
         )
     }
     return [
