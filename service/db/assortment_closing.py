@@ -16,6 +16,7 @@ from datetime import date, datetime
 from sqlalchemy import Select, delete, func, insert, select
 from sqlalchemy.orm import Session
 
+from service.db.assortments import refresh_statistics
 from service.db.tables import ClosingCorrection, ClosingCount, Network, PickList, Policy
 
 __all__ = [
@@ -113,6 +114,7 @@ def store_counts(
                 for network_id, units in counts.items()
             ],
         )
+        refresh_statistics(session, ("closing_counts",), len(counts))
 
 
 def correct_counts(

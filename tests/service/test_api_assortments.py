@@ -557,3 +557,18 @@ def test_a_new_layout_composes_every_item_again(client: TestClient, engine: Engi
         f"/v1/assortments/{assortment}", json=dearer, headers={"if-match": '"2"'}
     ).json()
     assert (again["updated"], again["unchanged"], again["jobs_queued"]) == (0, 2, 0)
+
+
+@pytest.mark.parametrize("database_url", ["postgresql"], indirect=True)
+def test_a_bulk_upload_refreshes_the_planner_statistics(client: TestClient, engine: Engine) -> None:
+    # Fresh statistics say the tables are nearly empty: PostgreSQL would then join thousands of
+    # items by nested loops (common practice: ANALYZE after a bulk load, as its manual's
+    # "Populating a Database" advises, from memory).
+    assortment = _create(client)
+    lines = [row for k in range(1_200) for row in _csv_rows(f"BULK-{k:04d}", 10.0 + k % 5)]
+    assert _upload_csv(client, assortment, lines).status_code == 200
+    with engine.connect() as connection:
+        tuples = connection.exec_driver_sql(
+            "SELECT reltuples FROM pg_class WHERE relname = 'networks'"
+        ).scalar_one()
+    assert tuples >= 1_200
