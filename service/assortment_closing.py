@@ -28,7 +28,7 @@ import numpy as np
 from numpy.typing import NDArray
 from sqlalchemy.orm import Session
 
-from service.assortment_spec import Layout
+from service.assortment_spec import Layout, lane_key
 from service.assortments import criteria_of, layout_of
 from service.codec import decode_policy
 from service.db import assortment_closing as store
@@ -354,7 +354,17 @@ def _issue(
         assortment.id,
         business_date,
         revision,
-        json.dumps({"locations": plan.locations, "lines": plan.lines}, separators=(",", ":")),
+        json.dumps(
+            {
+                "locations": plan.locations,
+                # Unit costs as they were tonight: a later layout may change or drop a lane.
+                "unit_costs": {
+                    lane_key(lane.from_, lane.to): lane.unit_cost for lane in layout.lanes
+                },
+                "lines": plan.lines,
+            },
+            separators=(",", ":"),
+        ),
         json.dumps(plan.summary),
     )
 
@@ -446,14 +456,16 @@ def location_pick_list(
     codes = {line["network_id"]: line["item"] for line in body["lines"]}
     locations: list[str] = body["locations"]
     here = locations.index(location)
-    lanes = {(lane.from_, lane.to): lane for lane in layout_of(assortment).lanes}
+    costs: dict[str, float] = body.get("unit_costs") or {
+        lane_key(lane.from_, lane.to): lane.unit_cost for lane in layout_of(assortment).lanes
+    }
     lines = []
     for line in body["lines"]:
         sends = [
             {
                 "to": locations[b],
                 "units": units,
-                "unit_cost": lanes[(location, locations[b])].unit_cost,
+                "unit_cost": costs.get(lane_key(location, locations[b]), 0.0),
             }
             for a, b, units in line["moves"]
             if a == here
@@ -462,7 +474,7 @@ def location_pick_list(
             {
                 "from": locations[a],
                 "units": units,
-                "unit_cost": lanes[(locations[a], location)].unit_cost,
+                "unit_cost": costs.get(lane_key(locations[a], location), 0.0),
             }
             for a, b, units in line["moves"]
             if b == here
