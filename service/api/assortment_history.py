@@ -20,7 +20,7 @@ from service.api.assortment_schemas import (
     HistoryUploadOut,
     LocationHistoryCountsOut,
 )
-from service.api.assortments import AssortmentId, _get, _lines, _problems
+from service.api.assortments import _get, _lines, _problems
 from service.api.deps import MAX_ID, Reader, SessionDep, SettingsDep, Writer
 from service.assortment_history import CalibrationOverrides, NoItemsError, RunSummary
 from service.item_upload import UploadProblems
@@ -28,6 +28,8 @@ from service.problems import PROBLEM_RESPONSES, Conflict, NotFound, UnsupportedM
 
 router = APIRouter(prefix="/v1/assortments", tags=["assortments"])
 
+# Ids are 32-bit in the database: larger ones can only be absent (api.deps.MAX_ID).
+AssortmentId = Annotated[int, Path(ge=1, le=MAX_ID, description="The assortment's id.")]
 RunId = Annotated[int, Path(ge=1, le=MAX_ID, description="The calibration run's id.")]
 
 _CSV_EXAMPLE = (
