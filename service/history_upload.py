@@ -73,7 +73,10 @@ class _Collector:
             bad = True
         for name in ("item", "location"):
             value = values[name]
-            if not isinstance(value, str) or not value.strip():
+            if not isinstance(value, str):
+                self.problem(f"{where}/{name}", "expected text")
+                bad = True
+            elif not value.strip():
                 self.problem(f"{where}/{name}", "required")
                 bad = True
         counts = []
