@@ -13,10 +13,10 @@ from sqlalchemy.exc import IntegrityError
 from service import assortment_history, history_upload
 from service.api.assortments import (
     AssortmentId,
-    _problems,
     bulk_upload_doc,
     find_or_404,
     read_lines,
+    refused_upload,
 )
 from service.api.deps import MAX_ID, Reader, SessionDep, SettingsDep, Writer
 from service.api.schemas.assortments import (
@@ -85,7 +85,7 @@ async def upload_history(
             with session.begin_nested():
                 stored = assortment_history.store_history(session, assortment, rows)
         except ItemUploadError as exc:
-            raise _problems(exc) from exc
+            raise refused_upload(exc) from exc
         except IntegrityError as exc:
             raise Conflict(
                 "another upload stored some of these days at the same moment; send this one "

@@ -174,17 +174,9 @@ def update_layout(
                 session, assortment, body.layout(), settings.size_limits
             )
     except ItemUploadError as exc:
-        raise _problems(exc) from exc
+        raise refused_upload(exc) from exc
     response.headers["ETag"] = etag(assortment.layout_version)
-    return ItemsStoredOut(
-        assortment_id=assortment.id,
-        received=stored.received,
-        created=stored.created,
-        updated=stored.updated,
-        unchanged=stored.unchanged,
-        specifications=stored.specifications,
-        jobs_queued=len(stored.jobs),
-    )
+    return _stored_out(assortment.id, stored)
 
 
 @router.get("/{assortment_id}/items", response_model=ItemPage)
@@ -232,7 +224,19 @@ async def read_lines(request: Request, limit: int) -> list[str]:
     return lines
 
 
-def _problems(exc: ItemUploadError) -> InvalidInput:
+def _stored_out(assortment_id: int, stored: assortments.ItemsStored) -> ItemsStoredOut:
+    return ItemsStoredOut(
+        assortment_id=assortment_id,
+        received=stored.received,
+        created=stored.created,
+        updated=stored.updated,
+        unchanged=stored.unchanged,
+        specifications=stored.specifications,
+        jobs_queued=len(stored.jobs),
+    )
+
+
+def refused_upload(exc: ItemUploadError) -> InvalidInput:
     first = exc.errors[0]
     return InvalidInput(
         f"the upload was refused and nothing of it stored: {len(exc.errors)} problem(s), "
@@ -280,20 +284,12 @@ async def upload_items(
             with session.begin_nested():
                 stored = assortments.store_items(session, assortment, parsed, settings.size_limits)
         except ItemUploadError as exc:
-            raise _problems(exc) from exc
+            raise refused_upload(exc) from exc
         except IntegrityError as exc:
             raise Conflict(
                 "another upload or network took some of these items' names at the same moment "
                 f"(networks are named {assortment.name}/<item>); send the upload again"
             ) from exc
-        return ItemsStoredOut(
-            assortment_id=assortment.id,
-            received=stored.received,
-            created=stored.created,
-            updated=stored.updated,
-            unchanged=stored.unchanged,
-            specifications=stored.specifications,
-            jobs_queued=len(stored.jobs),
-        )
+        return _stored_out(assortment.id, stored)
 
     return await run_in_threadpool(work)

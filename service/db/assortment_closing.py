@@ -3,7 +3,8 @@
 A location's closing report is one `closing_counts` row per item (the item's network), so a
 single item reads exactly like a network of its own. The pick lists of a business date are one
 `pick_lists` row per revision. Every read and write here is a handful of statements whatever
-the number of items: multi-row inserts and deletes, IN lists in chunks of `_CHUNK`.
+the number of items: multi-row inserts and deletes, IN lists in chunks
+(service.db.assortments.in_chunks).
 """
 
 from __future__ import annotations
@@ -16,7 +17,7 @@ from datetime import date, datetime
 from sqlalchemy import Select, delete, func, insert, select
 from sqlalchemy.orm import Session
 
-from service.db.assortments import refresh_statistics
+from service.db.assortments import in_chunks, refresh_statistics
 from service.db.tables import ClosingCorrection, ClosingCount, Network, PickList, Policy
 
 __all__ = [
@@ -33,13 +34,6 @@ __all__ = [
     "reports_of",
     "store_counts",
 ]
-
-_CHUNK = 500
-
-
-def _chunks(values: Sequence[str]) -> Iterable[Sequence[str]]:
-    for start in range(0, len(values), _CHUNK):
-        yield values[start : start + _CHUNK]
 
 
 def _items(assortment_id: int) -> Select[int]:
@@ -211,7 +205,7 @@ def policy_heads(
     wanted = set(keys)
     hashes = sorted({digest for digest, _ in wanted})
     found: dict[tuple[str, str], PolicyHead] = {}
-    for chunk in _chunks(hashes):
+    for chunk in in_chunks(hashes):
         for head in session.execute(
             select(Policy.id, Policy.spec_hash, Policy.method, Policy.solved_at).where(
                 Policy.tenant_id == tenant_id,
@@ -227,6 +221,6 @@ def policy_heads(
 def policy_rows(session: Session, ids: Sequence[int]) -> list[Policy]:
     """Stored policies with their arrays, by id."""
     rows: list[Policy] = []
-    for start in range(0, len(ids), _CHUNK):
-        rows += session.scalars(select(Policy).where(Policy.id.in_(ids[start : start + _CHUNK])))
+    for chunk in in_chunks(ids):
+        rows += session.scalars(select(Policy).where(Policy.id.in_(chunk)))
     return rows

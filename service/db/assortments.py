@@ -10,10 +10,10 @@ policies and live jobs of the specifications concerned (in chunks of `_CHUNK` ha
 from __future__ import annotations
 
 import json
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
 from datetime import date, datetime, time
-from typing import Any
+from typing import Any, TypeVar
 
 from sqlalchemy import delete, func, insert, select, text, update
 from sqlalchemy.exc import IntegrityError
@@ -51,6 +51,7 @@ __all__ = [
     "enqueue_calibration",
     "get_assortment",
     "history_counts",
+    "in_chunks",
     "item_networks",
     "jobs_by_id",
     "list_assortments",
@@ -63,6 +64,7 @@ __all__ = [
 
 # Specification hashes per IN (...) list.
 _CHUNK = 500
+T = TypeVar("T")
 _LIVE = (JobState.QUEUED.value, JobState.RUNNING.value)
 
 
@@ -145,8 +147,7 @@ def current_items(session: Session, assortment_id: int) -> dict[str, CurrentItem
 def spec_texts(session: Session, version_ids: Sequence[int]) -> dict[int, str]:
     """The specification JSON of versions, by id (in chunks of `_CHUNK`)."""
     found: dict[int, str] = {}
-    for start in range(0, len(version_ids), _CHUNK):
-        chunk = version_ids[start : start + _CHUNK]
+    for chunk in in_chunks(version_ids):
         found.update(
             session.execute(
                 select(NetworkVersion.id, NetworkVersion.spec_json).where(
@@ -269,7 +270,8 @@ def store_items(
     )
 
 
-def _chunks(values: Sequence[str]) -> Iterable[Sequence[str]]:
+def in_chunks(values: Sequence[T]) -> Iterator[Sequence[T]]:
+    """`values` in slices of `_CHUNK`, one IN (...) list each."""
     for start in range(0, len(values), _CHUNK):
         yield values[start : start + _CHUNK]
 
@@ -286,7 +288,7 @@ def _queue_solves(
         return []
     hashes = sorted({digest for digest, _ in versions})
     have: set[tuple[str, str, str]] = set()
-    for chunk in _chunks(hashes):
+    for chunk in in_chunks(hashes):
         have.update(
             (digest, criterion, method)
             for digest, criterion, method in session.execute(
@@ -361,8 +363,7 @@ class ItemDay:
 def same_day_networks(session: Session, network_ids: Sequence[int]) -> set[int]:
     """Those of `network_ids` whose calibration settings say receipts sell the day they come."""
     found: set[int] = set()
-    for start in range(0, len(network_ids), _CHUNK):
-        chunk = network_ids[start : start + _CHUNK]
+    for chunk in in_chunks(network_ids):
         found.update(
             session.scalars(
                 select(CalibrationSettings.network_id).where(
@@ -384,8 +385,7 @@ def store_item_history(session: Session, days: Sequence[ItemDay]) -> tuple[int, 
     last = max(day.business_date for day in days)
     networks = sorted({day.network_id for day in days})
     stored: dict[tuple[int, str, date], int] = {}
-    for start in range(0, len(networks), _CHUNK):
-        chunk = networks[start : start + _CHUNK]
+    for chunk in in_chunks(networks):
         stored.update(
             ((network_id, location, day), row_id)
             for row_id, network_id, location, day in session.execute(
@@ -568,12 +568,12 @@ def add_calibrated_versions(
         return set(), []
     ids = [version.network_id for version in versions]
     current: dict[int, int] = {}
-    for start in range(0, len(ids), _CHUNK):
+    for chunk in in_chunks(ids):
         current.update(
             (network_id, number)
             for network_id, number in session.execute(
                 select(NetworkVersion.network_id, func.max(NetworkVersion.number))
-                .where(NetworkVersion.network_id.in_(ids[start : start + _CHUNK]))
+                .where(NetworkVersion.network_id.in_(chunk))
                 .group_by(NetworkVersion.network_id)
             )
         )
