@@ -39,6 +39,7 @@ from service.db.keys import get_or_create_tenant
 from service.db.migrate import upgrade
 from service.db.session import make_engine, make_session_factory
 from service.db.tables import SolveJob
+from service.vocabulary import JobState
 
 OUT = api.RESULTS / "load.json"
 DRAIN_SECONDS = 120.0
@@ -171,7 +172,7 @@ def run(seconds: float, clients: int) -> dict[str, Any]:
         "statuses": dict(statuses),
         "errors_5xx": errors,
         "jobs": dict(states),
-        "jobs_lost": states.get("queued", 0) + states.get("running", 0),
+        "jobs_lost": states.get(JobState.QUEUED, 0) + states.get(JobState.RUNNING, 0),
     }
 
 

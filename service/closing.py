@@ -179,7 +179,7 @@ def _correct(
     plan["moves_changed_in"] = changed_at
     issued.plan = json.dumps(plan, sort_keys=True)
     issued.version_id = served.version_id
-    issued.criterion = served.criterion
+    issued.criterion = served.result.criterion
     issued.revision = revision
     issued.computed_at = utcnow()
     correction = ClosingCorrection(

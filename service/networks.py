@@ -155,7 +155,7 @@ def _next_version(
         or criteria_requested(session, network.tenant_id, current.spec_hash)
         or [CRITERIA[0]]
     )
-    network.mode = mode
+    network.mode = SolveMode(mode)
     version, jobs = add_version(session, network, spec, criteria, method=method, previous=current)
     if closing_cutoff is not None:
         network.closing_cutoff = closing_cutoff

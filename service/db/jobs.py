@@ -458,9 +458,9 @@ def list_jobs(
 def retry_job(session: Session, job_id: int) -> SolveJob | None:
     """Queue a failed job again with fresh attempts; None when it is not failed."""
     job = session.get(SolveJob, job_id)
-    if job is None or job.state != JobState.FAILED.value:
+    if job is None or job.state != JobState.FAILED:
         return None
-    job.state = JobState.QUEUED.value
+    job.state = JobState.QUEUED
     job.attempts = 0
     job.error = None
     job.finished_at = None

@@ -2,13 +2,15 @@
 
 from __future__ import annotations
 
+from collections.abc import Iterator
+from contextlib import contextmanager
 from pathlib import Path
 
 from alembic import command
 from alembic.config import Config
 from alembic.runtime.migration import MigrationContext
 from alembic.script import ScriptDirectory
-from sqlalchemy import Engine
+from sqlalchemy import Connection, Engine
 
 from service.errors import DatabaseNotMigratedError
 
@@ -31,17 +33,51 @@ def alembic_config(engine: Engine) -> Config:
     return config
 
 
+@contextmanager
+def _migrating(engine: Engine) -> Iterator[Config]:
+    """Alembic's configuration on one connection in one transaction.
+
+    SQLite changes a table's constraints by rebuilding it (Alembic's batch mode), and dropping
+    the old table fails the foreign keys of the rows that reference it. So, as SQLite's manual
+    prescribes for such changes ("Making Other Kinds Of Table Schema Changes", sqlite.org/
+    lang_altertable.html), keys are switched off while the revisions run (outside the
+    transaction: SQLite ignores the switch inside one), every reference is checked before the
+    commit, and the switch is restored."""
+    with engine.connect() as connection:
+        sqlite = connection.dialect.name == "sqlite"
+        if sqlite:
+            connection.exec_driver_sql("PRAGMA foreign_keys=OFF")
+            connection.commit()
+        try:
+            with connection.begin():
+                config = alembic_config(engine)
+                config.attributes["connection"] = connection
+                yield config
+                if sqlite:
+                    _check_references(connection)
+        finally:
+            if sqlite:
+                connection.exec_driver_sql("PRAGMA foreign_keys=ON")
+                connection.commit()
+
+
+def _check_references(connection: Connection) -> None:
+    broken = connection.exec_driver_sql("PRAGMA foreign_key_check").fetchall()
+    if broken:
+        tables = sorted({str(row[0]) for row in broken})
+        raise DatabaseNotMigratedError(
+            "the migration would leave rows whose references point nowhere "
+            f"({len(broken)} in {', '.join(tables)}); nothing was changed"
+        )
+
+
 def upgrade(engine: Engine, revision: str = "head") -> None:
-    with engine.begin() as connection:
-        config = alembic_config(engine)
-        config.attributes["connection"] = connection
+    with _migrating(engine) as config:
         command.upgrade(config, revision)
 
 
 def downgrade(engine: Engine, revision: str) -> None:
-    with engine.begin() as connection:
-        config = alembic_config(engine)
-        config.attributes["connection"] = connection
+    with _migrating(engine) as config:
         command.downgrade(config, revision)
 
 

@@ -11,11 +11,13 @@ one specification.
 from __future__ import annotations
 
 from datetime import date, datetime, time
+from enum import StrEnum
 
 from sqlalchemy import (
     Boolean,
     Date,
     DateTime,
+    Enum,
     Float,
     ForeignKey,
     Index,
@@ -31,6 +33,7 @@ from sqlalchemy.orm import Mapped, mapped_column, relationship
 
 from service.db.base import Base, utcnow
 from service.vocabulary import JobKind, JobState, SolveMethod, SolveMode
+from solver import CRITERIA, Criterion
 
 __all__ = [
     "ApiKey",
@@ -50,6 +53,30 @@ __all__ = [
 ]
 
 _HASH = String(64)
+
+
+def _choice(name: str, values: type[StrEnum] | tuple[str, ...], length: int) -> Enum:
+    """A text column that holds one of `values` (an enum's values, or plain strings), read
+    back as the enum's members. The database checks it too, by a CHECK constraint named
+    ck_<table>_<name> (migration 0010): a row written by hand cannot hold another word."""
+    words = tuple(values) if isinstance(values, tuple) else (values,)
+    return Enum(
+        *words,
+        name=name,
+        native_enum=False,
+        create_constraint=True,
+        length=length,
+        validate_strings=True,
+        values_callable=lambda members: [str(getattr(m, "value", m)) for m in members],
+    )
+
+
+# The service's words as column types, one definition each (service.vocabulary, solver.CRITERIA).
+CRITERION = _choice("criterion", CRITERIA, 16)
+JOB_KIND = _choice("job_kind", JobKind, 16)
+JOB_STATE = _choice("job_state", JobState, 16)
+SOLVE_METHOD = _choice("solve_method", SolveMethod, 8)
+SOLVE_MODE = _choice("solve_mode", SolveMode, 8)
 
 
 class Tenant(Base):
@@ -74,8 +101,8 @@ class Network(Base):
     # specification: it changes no number of the model, so changing it must not change the
     # specification's hash and queue a new solve.
     closing_cutoff: Mapped[time | None] = mapped_column(Time)
-    mode: Mapped[str] = mapped_column(
-        String(8), default=SolveMode.AUTO.value, server_default=SolveMode.AUTO.value
+    mode: Mapped[SolveMode] = mapped_column(
+        SOLVE_MODE, default=SolveMode.AUTO, server_default=SolveMode.AUTO.value
     )
     # An item of an assortment is a network on the assortment's layout (service.assortment_spec):
     # its specification is composed from the layout and the item, and it changes only through
@@ -106,7 +133,7 @@ class Assortment(Base):
     # The criteria every item is solved for (JSON list), its solving mode and closing cut-off,
     # as for a single network.
     criteria: Mapped[str] = mapped_column(Text)
-    mode: Mapped[str] = mapped_column(String(8), default=SolveMode.AUTO.value)
+    mode: Mapped[SolveMode] = mapped_column(SOLVE_MODE, default=SolveMode.AUTO)
     closing_cutoff: Mapped[time | None] = mapped_column(Time)
     archived: Mapped[bool] = mapped_column(Boolean, default=False)
     created_at: Mapped[datetime] = mapped_column(DateTime, default=utcnow)
@@ -143,8 +170,8 @@ class NetworkVersion(Base):
     # None for a specification sent as it is.
     calibrated_at: Mapped[datetime | None] = mapped_column(DateTime)
     # The network's mode resolved for this specification when the version was made.
-    method: Mapped[str] = mapped_column(
-        String(8), default=SolveMethod.EXACT.value, server_default=SolveMethod.EXACT.value
+    method: Mapped[SolveMethod] = mapped_column(
+        SOLVE_METHOD, default=SolveMethod.EXACT, server_default=SolveMethod.EXACT.value
     )
 
     network: Mapped[Network] = relationship(back_populates="versions")
@@ -170,11 +197,11 @@ class SolveJob(Base):
     tenant_id: Mapped[int] = mapped_column(ForeignKey("tenants.id"))
     version_id: Mapped[int] = mapped_column(ForeignKey("network_versions.id"), index=True)
     spec_hash: Mapped[str] = mapped_column(_HASH)
-    criterion: Mapped[str] = mapped_column(String(16))
-    kind: Mapped[str] = mapped_column(
-        String(16), default=JobKind.SOLVE.value, server_default=JobKind.SOLVE.value
+    criterion: Mapped[Criterion] = mapped_column(CRITERION)
+    kind: Mapped[JobKind] = mapped_column(
+        JOB_KIND, default=JobKind.SOLVE, server_default=JobKind.SOLVE.value
     )
-    state: Mapped[str] = mapped_column(String(16), default=JobState.QUEUED)
+    state: Mapped[JobState] = mapped_column(JOB_STATE, default=JobState.QUEUED)
     attempts: Mapped[int] = mapped_column(Integer, default=0)
     lease_owner: Mapped[str | None] = mapped_column(String(200))
     lease_expires_at: Mapped[datetime | None] = mapped_column(DateTime)
@@ -188,8 +215,8 @@ class SolveJob(Base):
     # Simulations and what-if comparisons: the request as JSON, and the report once done.
     params: Mapped[str | None] = mapped_column(Text)
     result: Mapped[str | None] = mapped_column(Text)
-    method: Mapped[str] = mapped_column(
-        String(8), default=SolveMethod.EXACT.value, server_default=SolveMethod.EXACT.value
+    method: Mapped[SolveMethod] = mapped_column(
+        SOLVE_METHOD, default=SolveMethod.EXACT, server_default=SolveMethod.EXACT.value
     )
     # A running priced solve's latest progress as JSON (stage, iteration, bounds, elapsed).
     progress: Mapped[str | None] = mapped_column(Text)
@@ -212,10 +239,10 @@ class Policy(Base):
     id: Mapped[int] = mapped_column(primary_key=True)
     tenant_id: Mapped[int] = mapped_column(ForeignKey("tenants.id"))
     spec_hash: Mapped[str] = mapped_column(_HASH)
-    criterion: Mapped[str] = mapped_column(String(16))
+    criterion: Mapped[Criterion] = mapped_column(CRITERION)
     job_id: Mapped[int | None] = mapped_column(ForeignKey("solve_jobs.id"))
-    method: Mapped[str] = mapped_column(
-        String(8), default=SolveMethod.EXACT.value, server_default=SolveMethod.EXACT.value
+    method: Mapped[SolveMethod] = mapped_column(
+        SOLVE_METHOD, default=SolveMethod.EXACT, server_default=SolveMethod.EXACT.value
     )
     # Arrays (action, values, ...) as one zlib-compressed blob; `layout` (JSON) gives each
     # array's name, dtype, shape and offset, `checksum` the SHA-256 of the stored blob.
@@ -256,7 +283,7 @@ class Instruction(Base):
     network_id: Mapped[int] = mapped_column(ForeignKey("networks.id"))
     business_date: Mapped[date] = mapped_column(Date)
     version_id: Mapped[int] = mapped_column(ForeignKey("network_versions.id"))
-    criterion: Mapped[str] = mapped_column(String(16))
+    criterion: Mapped[Criterion] = mapped_column(CRITERION)
     # JSON: {"stock": {location: units}, "transfers": [{"from", "to", "units", "unit_cost"}],
     # "relays": [...], "notes": [...]}
     plan: Mapped[str] = mapped_column(Text)

@@ -16,7 +16,7 @@ import time
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, TypeVar, cast
+from typing import Any, TypeVar
 
 import numpy as np
 import pytest
@@ -29,7 +29,7 @@ from service.db.migrate import upgrade
 from service.db.networks import canonical_spec, create_network
 from service.db.session import make_engine, make_session_factory
 from service.db.tables import NetworkVersion, Policy, SolveJob
-from solver import Criterion, NetworkSpec, PolicyResult, solve_network
+from solver import NetworkSpec, PolicyResult, solve_network
 
 ROOT = Path(__file__).resolve().parents[2]
 DEMO = ROOT / "service" / "data" / "demo_network.json"
@@ -311,8 +311,7 @@ def test_four_workers_share_sixty_jobs_without_duplicates(
     for policy in policies:
         stored = decode_policy(policy.arrays, policy.layout, policy.checksum, policy.meta)
         assert isinstance(stored, PolicyResult)
-        criterion = cast(Criterion, policy.criterion)
-        expected = solve_network(spec_of[policy.spec_hash], criterion=criterion)
+        expected = solve_network(spec_of[policy.spec_hash], criterion=policy.criterion)
         assert stored.criterion == policy.criterion
         # Relative to the largest value: average-criterion bias values pass through zero.
         scale = float(np.abs(expected.values).max())

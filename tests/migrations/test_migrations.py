@@ -248,3 +248,65 @@ def test_solving_modes_keep_exact_and_priced_policies_of_one_specification_apart
         assert connection.execute(text("SELECT count(*) FROM solve_jobs")).scalar_one() == 1
     assert _refused(empty_engine, lambda c: _insert_policy(c))
     assert _second_live_solve_refused(empty_engine)
+
+
+def test_typed_words_are_checked_by_the_database_and_rows_survive(empty_engine: Engine) -> None:
+    """Revision 0010 checks each typed column against the service's words. It rebuilds tables on
+    SQLite, so rows other tables reference (a job that a policy names) must come through."""
+    upgrade(empty_engine, "0009")
+    with empty_engine.begin() as connection:
+        _seed(connection)
+        _insert_job(connection)
+        _insert_policy(connection)
+        connection.execute(text("UPDATE policies SET job_id = 1"))
+
+    upgrade(empty_engine)
+    with empty_engine.begin() as connection:
+        kept = connection.execute(text("SELECT job_id FROM policies")).scalars().all()
+        assert kept == [1]
+        assert connection.execute(text("SELECT state FROM solve_jobs")).scalars().all() == [
+            "queued"
+        ]
+    assert _second_live_solve_refused(empty_engine)  # the partial unique index came back
+    wrong = [
+        lambda c: c.execute(text("UPDATE solve_jobs SET state = 'paused'")),
+        lambda c: c.execute(text("UPDATE solve_jobs SET kind = 'report'")),
+        lambda c: c.execute(text("UPDATE solve_jobs SET criterion = 'total'")),
+        lambda c: c.execute(text("UPDATE policies SET method = 'guess'")),
+        lambda c: c.execute(text("UPDATE networks SET mode = 'fast'")),
+        lambda c: c.execute(text("UPDATE network_versions SET method = 'guess'")),
+    ]
+    for update in wrong:
+        assert _refused(empty_engine, update)
+
+    downgrade(empty_engine, "0009")
+    with empty_engine.begin() as connection:
+        assert connection.execute(text("SELECT job_id FROM policies")).scalars().all() == [1]
+    assert not _refused(empty_engine, wrong[0])
+
+
+def test_sqlite_migrations_check_every_reference_before_they_commit(
+    database_url: str, empty_engine: Engine
+) -> None:
+    """SQLite runs revisions with foreign keys off (it rebuilds tables to change them), so the
+    upgrade checks every reference itself: one pointing nowhere rolls the upgrade back, and the
+    connection gets its keys back either way."""
+    if not database_url.startswith("sqlite"):
+        pytest.skip("PostgreSQL keeps its foreign keys on while it migrates")
+    upgrade(empty_engine, "0009")
+    with empty_engine.begin() as connection:
+        _seed(connection)
+        _insert_policy(connection)
+    with empty_engine.connect() as connection:
+        connection.exec_driver_sql("PRAGMA foreign_keys=OFF")
+        connection.commit()
+        connection.execute(text("UPDATE policies SET job_id = 99"))  # no such job
+        connection.commit()
+        connection.exec_driver_sql("PRAGMA foreign_keys=ON")
+        connection.commit()
+
+    with pytest.raises(DatabaseNotMigratedError, match=r"point nowhere \(1 in policies\)"):
+        upgrade(empty_engine)
+    assert current_revision(empty_engine) == "0009"
+    with empty_engine.connect() as connection:
+        assert connection.exec_driver_sql("PRAGMA foreign_keys").scalar_one() == 1

@@ -11,6 +11,7 @@ from service.db.networks import add_version, create_network
 from service.db.tables import Network, Policy, SolveJob
 from service.errors import PolicyNotReadyError, PolicyNotSolvedError
 from service.serving import PolicyCache, ServedPolicy, recommend
+from service.vocabulary import JobState
 from solver import InvalidStockError, Recommendation, solve_network
 from tests.service.test_repository import demo
 from tests.service.test_worker import make_worker
@@ -59,7 +60,7 @@ def test_an_older_version_is_not_served_as_stale_when_nothing_solves_the_newest(
         network = session.get_one(Network, network_id)
         _, jobs = add_version(session, network, demo(discount=0.98), ["discounted"])
         # The newest version's only solve fails for good.
-        jobs[0].state = "failed"
+        jobs[0].state = JobState.FAILED
         jobs[0].error = "gave up"
     with pytest.raises(PolicyNotSolvedError, match="failed") as failed:
         serve(sessions, PolicyCache(4), network_id, {"riverside": 5, "hilltop": 5})

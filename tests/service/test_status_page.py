@@ -19,6 +19,7 @@ from service.db.session import make_session_factory
 from service.db.tables import SolveJob
 from service.serving import today_in
 from service.status_page import CAUTION, age, sparkline
+from service.vocabulary import JobState
 from tests.service.api_support import (
     assert_problem,
     create_network,
@@ -211,7 +212,7 @@ def test_simulations_wait_in_the_queue_without_changing_the_solve_state(engine: 
         create_network(client)
         with make_session_factory(engine).begin() as session:
             solve = session.scalars(select(SolveJob)).one()
-            solve.state, solve.error = "failed", "no luck"
+            solve.state, solve.error = JobState.FAILED, "no luck"
             session.add(
                 SolveJob(
                     tenant_id=solve.tenant_id,

@@ -61,7 +61,7 @@ def test_worker_solves_every_queued_job(engine: Engine, sessions: sessionmaker[S
         for policy in session.scalars(select(Policy)):
             stored = decode_policy(policy.arrays, policy.layout, policy.checksum, policy.meta)
             assert isinstance(stored, PolicyResult)
-            expected = solve_network(demo(), criterion=policy.criterion)  # type: ignore[arg-type]
+            expected = solve_network(demo(), criterion=policy.criterion)
             np.testing.assert_allclose(stored.values, expected.values, rtol=1e-9)
             np.testing.assert_array_equal(stored.action, expected.action)
 
