@@ -18,13 +18,8 @@ from sqlalchemy.orm import Session
 
 from service.analysis import apply_overrides, check_simulation, new_seed, run_what_if
 from service.analysis_requests import SimulationRequest, WhatIfRequest
-from service.db.jobs import (
-    analysis_job,
-    enqueue_analysis,
-    get_job,
-    list_jobs,
-    live_analysis_jobs,
-)
+from service.db.analysis_jobs import analysis_job, enqueue_analysis, live_analysis_jobs
+from service.db.jobs import get_job, list_jobs
 from service.db.networks import latest_version
 from service.db.tables import Network, NetworkVersion, SolveJob
 from service.errors import AnalysisCapError, UnknownJobError

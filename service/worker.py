@@ -45,6 +45,7 @@ from sqlalchemy.orm import Session, sessionmaker
 from service import analysis, assortment_history
 from service.analysis_requests import SimulationRequest, WhatIfRequest
 from service.codec import StoredPolicy, decode_policy, encode_policy
+from service.db.analysis_jobs import store_analysis
 from service.db.base import utcnow
 from service.db.jobs import (
     claim_job,
@@ -54,10 +55,8 @@ from service.db.jobs import (
     record_progress,
     release_job,
     renew_lease,
-    store_analysis,
-    store_policy,
 )
-from service.db.policies import policy_for
+from service.db.policies import policy_for, store_policy
 from service.db.tables import NetworkVersion
 from service.errors import CorruptPolicyError, LeaseLostError
 from service.settings import Settings

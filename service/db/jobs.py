@@ -1,7 +1,8 @@
 """The job queue. Every function takes the caller's Session and leaves committing to it.
 
 The job queue lives in `solve_jobs`: solves, and simulations and what-if comparisons (`kind`),
-which go through the same claims and leases but store a JSON report instead of a policy. Whatever
+which go through the same claims and leases (service.db.leases) but store a JSON report
+(service.db.analysis_jobs) instead of a policy (service.db.policies.store_policy). Whatever
 lists or reports solves looks at kind "solve" only. A job is claimable when queued, or when
 running with an expired lease (its worker died). Claiming is one UPDATE whose target is chosen by
 a subquery with `FOR UPDATE SKIP LOCKED` on PostgreSQL, so concurrent workers never block on or
@@ -28,8 +29,8 @@ from sqlalchemy import (
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session, selectinload
 
-from service.codec import EncodedPolicy
 from service.db.base import utcnow
+from service.db.leases import update_held
 from service.db.policies import policy_for
 from service.db.tables import (
     NetworkVersion,
@@ -37,29 +38,21 @@ from service.db.tables import (
     SolveJob,
 )
 from service.vocabulary import JobKind, JobState
-from solver import PolicyResult
-from solver.priced_result import PricedPolicy
 
 __all__ = [
     "LIVE_STATES",
-    "analysis_job",
     "claim_job",
     "criteria_requested",
-    "enqueue_analysis",
     "enqueue_solves",
     "fail_exhausted_jobs",
     "finish_job",
     "get_job",
     "jobs_for",
     "list_jobs",
-    "live_analysis_jobs",
     "record_progress",
     "release_job",
     "renew_lease",
     "retry_job",
-    "solve_accuracy",
-    "store_analysis",
-    "store_policy",
 ]
 
 
@@ -182,52 +175,36 @@ def claim_job(
     return session.get(SolveJob, job_id, populate_existing=True)
 
 
-def _owned(job_id: int, owner: str) -> ColumnElement[bool]:
-    return and_(
-        SolveJob.id == job_id,
-        SolveJob.lease_owner == owner,
-        SolveJob.state == JobState.RUNNING.value,
-    )
-
-
 def renew_lease(
     session: Session, job_id: int, owner: str, lease_seconds: float, now: datetime | None = None
 ) -> bool:
     """Extend `owner`'s lease; False when the job is no longer theirs."""
     now = now or utcnow()
-    result = session.execute(
-        update(SolveJob)
-        .where(_owned(job_id, owner))
-        .values(lease_expires_at=now + timedelta(seconds=lease_seconds))
+    return update_held(
+        session, job_id, owner, lease_expires_at=now + timedelta(seconds=lease_seconds)
     )
-    return bool(getattr(result, "rowcount", 0))
 
 
 def release_job(session: Session, job_id: int, owner: str, note: str | None = None) -> bool:
     """Give a job back to the queue without counting the attempt (worker shutting down)."""
-    result = session.execute(
-        update(SolveJob)
-        .where(_owned(job_id, owner))
-        .values(
-            state=JobState.QUEUED.value,
-            attempts=SolveJob.attempts - 1,
-            lease_owner=None,
-            lease_expires_at=None,
-            started_at=None,
-            error=note,
-            progress=None,
-        )
+    return update_held(
+        session,
+        job_id,
+        owner,
+        state=JobState.QUEUED,
+        attempts=SolveJob.attempts - 1,
+        lease_owner=None,
+        lease_expires_at=None,
+        started_at=None,
+        error=note,
+        progress=None,
     )
-    return bool(getattr(result, "rowcount", 0))
 
 
 def record_progress(session: Session, job_id: int, owner: str, progress: str) -> bool:
     """Keep a running solve's latest progress (JSON) while `owner` holds it; False when the job
     is no longer theirs."""
-    result = session.execute(
-        update(SolveJob).where(_owned(job_id, owner)).values(progress=progress)
-    )
-    return bool(getattr(result, "rowcount", 0))
+    return update_held(session, job_id, owner, progress=progress)
 
 
 def finish_job(
@@ -241,171 +218,15 @@ def finish_job(
 ) -> bool:
     """Mark `owner`'s job failed with `error` (or queued again when `retry`)."""
     now = now or utcnow()
-    state = JobState.QUEUED if retry else JobState.FAILED
-    result = session.execute(
-        update(SolveJob)
-        .where(_owned(job_id, owner))
-        .values(
-            state=state.value,
-            error=error,
-            finished_at=None if retry else now,
-            lease_owner=None,
-            lease_expires_at=None,
-        )
-    )
-    return bool(getattr(result, "rowcount", 0))
-
-
-def store_policy(
-    session: Session,
-    job: SolveJob,
-    owner: str,
-    result: PolicyResult | PricedPolicy,
-    encoded: EncodedPolicy,
-    now: datetime | None = None,
-) -> bool:
-    """Mark the job done and store its policy, in the caller's transaction. False (and nothing
-    written) when the lease was lost; the job then belongs to whoever holds it now.
-
-    A priced policy has no Bellman residual: the job's residual is null, the policy row's 0, and
-    its error bound the certified distance to the optimum at the reference stock (upper bound
-    minus the low end of the policy value's interval)."""
-    now = now or utcnow()
-    residual, error_bound = solve_accuracy(result)
-    done = session.execute(
-        update(SolveJob)
-        .where(_owned(job.id, owner))
-        .values(
-            state=JobState.DONE.value,
-            finished_at=now,
-            lease_owner=None,
-            lease_expires_at=None,
-            solve_seconds=result.seconds["total"],
-            iterations=result.iterations,
-            residual=residual,
-            error=None,
-        )
-    )
-    if not getattr(done, "rowcount", 0):
-        return False
-    if policy_for(session, job.tenant_id, job.spec_hash, job.criterion, job.method) is None:
-        session.add(
-            Policy(
-                tenant_id=job.tenant_id,
-                spec_hash=job.spec_hash,
-                criterion=job.criterion,
-                method=job.method,
-                job_id=job.id,
-                arrays=encoded.arrays,
-                layout=encoded.layout,
-                checksum=encoded.checksum,
-                meta=encoded.meta,
-                gain=result.gain,
-                residual=residual or 0.0,
-                error_bound=error_bound,
-                iterations=result.iterations,
-                solve_seconds=result.seconds["total"],
-                solved_at=now,
-            )
-        )
-        session.flush()
-    return True
-
-
-def solve_accuracy(result: PolicyResult | PricedPolicy) -> tuple[float | None, float]:
-    """(Bellman residual, error bound) of a solve; a priced one has no residual, and its error
-    bound is upper bound minus the low end of the policy value's interval at the reference
-    stock (currency)."""
-    if isinstance(result, PricedPolicy):
-        certificate = result.certificate
-        return None, max(0.0, certificate.upper_bound - certificate.policy_value_interval[0])
-    return result.residual, result.error_bound
-
-
-def store_analysis(
-    session: Session,
-    job_id: int,
-    owner: str,
-    result: str,
-    seconds: float,
-    now: datetime | None = None,
-) -> bool:
-    """Mark a simulation or what-if job done with its report (`result`, JSON), in one statement
-    that holds only while `owner` holds the lease. False (and nothing written) when it was
-    lost."""
-    now = now or utcnow()
-    done = session.execute(
-        update(SolveJob)
-        .where(_owned(job_id, owner), SolveJob.kind != JobKind.SOLVE.value)
-        .values(
-            state=JobState.DONE.value,
-            finished_at=now,
-            lease_owner=None,
-            lease_expires_at=None,
-            solve_seconds=seconds,
-            result=result,
-            error=None,
-        )
-    )
-    return bool(getattr(done, "rowcount", 0))
-
-
-def enqueue_analysis(
-    session: Session,
-    tenant_id: int,
-    version: NetworkVersion,
-    kind: JobKind,
-    criterion: str,
-    params: str,
-) -> SolveJob:
-    """Queue a simulation or what-if job of `version` with its request (`params`, JSON). Any
-    number may be live for one specification."""
-    if kind is JobKind.SOLVE:
-        raise ValueError("solves are queued by enqueue_solves")
-    job = SolveJob(
-        tenant_id=tenant_id,
-        version_id=version.id,
-        spec_hash=version.spec_hash,
-        criterion=criterion,
-        kind=kind.value,
-        params=params,
-        state=JobState.QUEUED.value,
-        attempts=0,
-    )
-    session.add(job)
-    session.flush()
-    return job
-
-
-def analysis_job(
-    session: Session, tenant_id: int, network_id: int, kind: JobKind, job_id: int
-) -> tuple[SolveJob, NetworkVersion] | None:
-    """The tenant's job of `kind` on a version of `network_id`, with that version; None when
-    there is none (another network's or tenant's job looks the same)."""
-    row = session.execute(
-        select(SolveJob, NetworkVersion)
-        .join(NetworkVersion, NetworkVersion.id == SolveJob.version_id)
-        .where(
-            SolveJob.id == job_id,
-            SolveJob.tenant_id == tenant_id,
-            SolveJob.kind == kind.value,
-            NetworkVersion.network_id == network_id,
-        )
-    ).one_or_none()
-    return None if row is None else (row[0], row[1])
-
-
-def live_analysis_jobs(session: Session, tenant_id: int) -> int:
-    """How many simulations and what-if comparisons of the tenant are queued or running."""
-    return int(
-        session.scalar(
-            select(func.count()).where(
-                SolveJob.tenant_id == tenant_id,
-                SolveJob.kind.in_((JobKind.SIMULATE.value, JobKind.WHAT_IF.value)),
-                SolveJob.state.in_(LIVE_STATES),
-            )
-        )
-        or 0
+    return update_held(
+        session,
+        job_id,
+        owner,
+        state=JobState.QUEUED if retry else JobState.FAILED,
+        error=error,
+        finished_at=None if retry else now,
+        lease_owner=None,
+        lease_expires_at=None,
     )
 
 

@@ -17,7 +17,7 @@ from sqlalchemy.orm import Session, sessionmaker
 
 from service import auth, supervisor
 from service.cli import main
-from service.db.jobs import enqueue_analysis
+from service.db.analysis_jobs import enqueue_analysis
 from service.db.session import make_engine, make_session_factory
 from service.db.tables import Network, NetworkVersion, Policy, SolveJob, Tenant
 from service.vocabulary import JobKind

@@ -21,11 +21,10 @@ from service.db.jobs import (
     release_job,
     renew_lease,
     retry_job,
-    store_policy,
 )
 from service.db.keys import get_or_create_tenant
 from service.db.networks import add_version, canonical_spec, create_network, list_networks
-from service.db.policies import policy_for
+from service.db.policies import policy_for, store_policy
 from service.db.tables import Policy, SolveJob
 from service.vocabulary import JobState
 from solver import NetworkSpec, solve_network

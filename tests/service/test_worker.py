@@ -19,13 +19,12 @@ from service import analysis
 from service import worker as worker_module
 from service.analysis_requests import Overrides, SimulationRequest
 from service.codec import decode_policy
+from service.db.analysis_jobs import enqueue_analysis, store_analysis
 from service.db.jobs import (
     claim_job,
     criteria_requested,
-    enqueue_analysis,
     enqueue_solves,
     jobs_for,
-    store_analysis,
 )
 from service.db.keys import get_or_create_tenant
 from service.db.networks import create_network
