@@ -10,7 +10,7 @@ policies and live jobs of the specifications concerned (in chunks of `_CHUNK` ha
 from __future__ import annotations
 
 import json
-from collections.abc import Iterator, Sequence
+from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass
 from datetime import date, datetime, time
 from typing import Any, TypeVar
@@ -257,10 +257,10 @@ def store_items(
                 ],
             ).scalars()
         )
-    first_version: dict[tuple[str, str], int] = {}
-    for item, version_id in zip(writes, version_ids, strict=True):
-        first_version.setdefault((item.spec_hash, item.method), version_id)
-    jobs = _queue_solves(session, tenant_id, first_version, criteria)
+    made = zip(writes, version_ids, strict=True)
+    jobs = _queue_solves(
+        session, tenant_id, ((i.spec_hash, i.method, v) for i, v in made), criteria
+    )
     refresh_statistics(session, ("networks", "network_versions", "solve_jobs"), len(writes))
     return StoredItems(
         created=len(new),
@@ -279,11 +279,14 @@ def in_chunks(values: Sequence[T]) -> Iterator[Sequence[T]]:
 def _queue_solves(
     session: Session,
     tenant_id: int,
-    versions: dict[tuple[str, str], int],
+    made: Iterable[tuple[str, str, int]],
     criteria: Sequence[str],
 ) -> list[int]:
-    """Jobs for every (specification, method) of `versions` (its first version's id) and
-    criterion without a policy or live job; their ids."""
+    """Jobs for every (specification, method) of the versions `made` (hash, method, id), solved
+    as its first version, and criterion without a policy or live job; their ids."""
+    versions: dict[tuple[str, str], int] = {}
+    for digest, method, version_id in made:
+        versions.setdefault((digest, method), version_id)
     if not versions:
         return []
     hashes = sorted({digest for digest, _ in versions})
@@ -594,10 +597,10 @@ def add_calibrated_versions(
             for version in fresh
         ],
     ).scalars()
-    first_version: dict[tuple[str, str], int] = {}
-    for version, version_id in zip(fresh, version_ids, strict=True):
-        first_version.setdefault((version.spec_hash, version.method), version_id)
-    jobs = _queue_solves(session, tenant_id, first_version, criteria)
+    made = zip(fresh, version_ids, strict=True)
+    jobs = _queue_solves(
+        session, tenant_id, ((f.spec_hash, f.method, v) for f, v in made), criteria
+    )
     return {version.network_id for version in fresh}, jobs
 
 
