@@ -623,12 +623,7 @@ def summary(
     """A few lines for a person: sizes, convergence, for two locations the policy grid, for more
     the moves from a few representative closing stocks, and the moves from `stock` if given."""
     lines = [
-        f"network     {spec.name}",
-        f"criterion   {result.criterion}"
-        + (f" (discount {result.discount:g})" if result.discount is not None else ""),
-        f"states      {result.n_states:,}"
-        + (f" x {result.phases} weekdays" if result.phases > 1 else "")
-        + f"   transfer options {result.n_flows:,}",
+        *priced.summary_heading(spec, result, f"transfer options {result.n_flows:,}"),
         f"iterations  {result.iterations} ({result.method}, "
         f"{result.evaluation_sweeps:,} matrix-vector products)",
         f"residual    {result.residual:.3g}   bound on error {result.error_bound:.3g}"

@@ -19,7 +19,7 @@ from typing import Any, TextIO
 import numpy as np
 from numpy.typing import NDArray
 
-from solver import ModelTooLargeError, NetworkSpec
+from solver import ModelTooLargeError, NetworkSpec, PolicyResult
 from solver.priced import evaluate_plan_exactly
 from solver.priced_result import PricedPolicy, PricedProgress
 from solver.spec import WEEKDAYS
@@ -31,6 +31,7 @@ __all__ = [
     "priced_result_document",
     "priced_summary",
     "progress_printer",
+    "summary_heading",
     "upper_bound_table",
 ]
 
@@ -133,6 +134,18 @@ def priced_result_document(spec: NetworkSpec, policy: PricedPolicy) -> dict[str,
     return document
 
 
+def summary_heading(spec: NetworkSpec, policy: PolicyResult | PricedPolicy, size: str) -> list[str]:
+    """The first lines of a solve's summary, exact or priced: the network, the criterion and the
+    states, followed on that line by `size` (what else measures the problem)."""
+    discount = f" (discount {policy.discount:g})" if policy.discount is not None else ""
+    weekdays = f" x {policy.phases} weekdays" if policy.phases > 1 else ""
+    return [
+        f"network     {spec.name}",
+        f"criterion   {policy.criterion}{discount}",
+        f"states      {policy.n_states:,}{weekdays}   {size}",
+    ]
+
+
 def priced_summary(spec: NetworkSpec, policy: PricedPolicy) -> str:
     """A few lines for a person: sizes, the certificate, time."""
     certificate = policy.certificate
@@ -142,12 +155,7 @@ def priced_summary(spec: NetworkSpec, policy: PricedPolicy) -> str:
         for location, units in zip(spec.location_ids, certificate.reference_stock, strict=True)
     )
     lines = [
-        f"network     {spec.name}",
-        f"criterion   {policy.criterion}"
-        + (f" (discount {policy.discount:g})" if policy.discount is not None else ""),
-        f"states      {policy.n_states:,}"
-        + (f" x {policy.phases} weekdays" if policy.phases > 1 else "")
-        + f"   lanes {len(policy.lanes)}",
+        *summary_heading(spec, policy, f"lanes {len(policy.lanes)}"),
         f"method      priced, {policy.iterations} pricing iterations"
         + ("" if policy.converged else "   NOT CONVERGED"),
         f"reference   {reference}",
