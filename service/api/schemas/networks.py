@@ -54,15 +54,8 @@ class NetworkCreate(NetworkSpec):
         "specification's hash. Default auto; on PUT, absent keeps the network's mode.",
     )
 
-    @field_validator("timezone")
-    @classmethod
-    def _known_timezone(cls, zone: str) -> str:
-        return known_timezone(zone)
-
-    @field_validator("closing_cutoff")
-    @classmethod
-    def _whole_minutes(cls, cutoff: time | None) -> time | None:
-        return local_cutoff(cutoff)
+    _known_timezone = field_validator("timezone")(known_timezone)
+    _whole_minutes = field_validator("closing_cutoff")(local_cutoff)
 
     def spec(self) -> NetworkSpec:
         """The specification alone. The request was validated as a NetworkSpec (this model is

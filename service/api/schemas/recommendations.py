@@ -55,6 +55,8 @@ BusinessDate = Annotated[
     ),
 ]
 
+_CriterionOrFirst = Annotated[Criterion | None, Field(description=DEFAULT_CRITERION_RULE)]
+
 
 class RecommendationRequest(BaseModel):
     model_config = ConfigDict(
@@ -63,7 +65,7 @@ class RecommendationRequest(BaseModel):
     )
 
     stock: Stock
-    criterion: Criterion | None = Field(default=None, description=DEFAULT_CRITERION_RULE)
+    criterion: _CriterionOrFirst = None
     business_date: BusinessDate = None
 
 
@@ -184,7 +186,7 @@ class BatchItem(BaseModel):
 
     network_id: Annotated[int, Field(ge=1, le=2_147_483_647)]
     stock: Stock
-    criterion: Criterion | None = Field(default=None, description=DEFAULT_CRITERION_RULE)
+    criterion: _CriterionOrFirst = None
     business_date: BusinessDate = None
 
 
