@@ -20,12 +20,24 @@ __all__ = [
     "LaneOverride",
     "LaneRef",
     "LocationOverride",
+    "MeasuredDays",
     "Overrides",
+    "SimulatedCriterion",
     "SimulationRequest",
+    "WarmupDays",
+    "WhatIfCriterion",
     "WhatIfRequest",
 ]
 
 MAX_SEED = 2**63 - 1
+
+# Meanings the reports and jobs of service.api.schemas.analysis share with these requests.
+SimulatedCriterion = Annotated[Criterion, Field(description="Whose optimal policy is simulated.")]
+MeasuredDays = Annotated[int, Field(description="Days measured per replication.")]
+WarmupDays = Annotated[int, Field(description="Days simulated first and not measured.")]
+WhatIfCriterion = Annotated[
+    Criterion, Field(description="The criterion both networks are solved for.")
+]
 
 _StartUnits = Annotated[StrictInt, Field(description="Units on hand before the first night.")]
 
@@ -42,16 +54,12 @@ class SimulationRequest(BaseModel):
         },
     )
 
-    criterion: Criterion = Field(
-        default="average", description="Whose optimal policy is simulated."
-    )
-    days: Annotated[int, Field(ge=1, le=3650, description="Days measured per replication.")] = 365
+    criterion: SimulatedCriterion = "average"
+    days: Annotated[MeasuredDays, Field(ge=1, le=3650)] = 365
     replications: Annotated[
         int, Field(ge=1, le=2000, description="Independent runs; intervals are across them.")
     ] = 200
-    warmup_days: Annotated[
-        int, Field(ge=0, le=365, description="Days simulated first and not measured.")
-    ] = 30
+    warmup_days: Annotated[WarmupDays, Field(ge=0, le=365)] = 30
     seed: Annotated[int, Field(ge=0, le=MAX_SEED)] | None = Field(
         default=None, description="Seed of the random days; chosen at random when absent."
     )
@@ -68,16 +76,27 @@ class SimulationRequest(BaseModel):
     )
 
 
+_NewAmount = Annotated[float, Field(ge=0, allow_inf_nan=False)]
+
+
 class LocationOverride(BaseModel):
     """New values for one location; absent fields keep theirs."""
 
     model_config = ConfigDict(extra="forbid")
 
-    capacity: Annotated[int, Field(ge=1, le=100_000)] | None = None
-    unit_margin: Annotated[float, Field(ge=0, allow_inf_nan=False)] | None = None
-    holding_cost: Annotated[float, Field(ge=0, allow_inf_nan=False)] | None = None
-    stockout_penalty: Annotated[float, Field(ge=0, allow_inf_nan=False)] | None = None
-    demand_mean: Annotated[float, Field(ge=0, allow_inf_nan=False)] | None = Field(
+    capacity: Annotated[int, Field(ge=1, le=100_000)] | None = Field(
+        default=None, description="New capacity; absent keeps it."
+    )
+    unit_margin: _NewAmount | None = Field(
+        default=None, description="New profit per unit sold; absent keeps it."
+    )
+    holding_cost: _NewAmount | None = Field(
+        default=None, description="New holding cost per unit; absent keeps it."
+    )
+    stockout_penalty: _NewAmount | None = Field(
+        default=None, description="New penalty per unit of lost demand; absent keeps it."
+    )
+    demand_mean: _NewAmount | None = Field(
         default=None,
         description="Mean daily demand; a Poisson law keeps its family, a negative binomial "
         "its variance-to-mean ratio; an explicit distribution cannot be rescaled.",
@@ -98,18 +117,27 @@ class LocationOverride(BaseModel):
 class LaneRef(BaseModel):
     model_config = ConfigDict(extra="forbid", populate_by_name=True)
 
-    from_: Annotated[str, Field(alias="from", min_length=1, max_length=64)]
-    to: Annotated[str, Field(min_length=1, max_length=64)]
+    from_: Annotated[
+        str,
+        Field(alias="from", min_length=1, max_length=64, description="The sending location's id."),
+    ]
+    to: Annotated[
+        str, Field(min_length=1, max_length=64, description="The receiving location's id.")
+    ]
 
 
 class LaneOverride(LaneRef):
     """New values for an existing lane, named by its ends."""
 
-    unit_cost: Annotated[float, Field(ge=0, allow_inf_nan=False)] | None = None
-    dispatch_cost: Annotated[float, Field(ge=0, allow_inf_nan=False)] | None = Field(
+    unit_cost: _NewAmount | None = Field(
+        default=None, description="New cost per unit moved; absent keeps it."
+    )
+    dispatch_cost: _NewAmount | None = Field(
         default=None, description="New cost per night the lane is used; absent: unchanged."
     )
-    max_units: Annotated[int, Field(ge=1, le=10_000)] | None = None
+    max_units: Annotated[int, Field(ge=1, le=10_000)] | None = Field(
+        default=None, description="New most units per night; absent keeps it."
+    )
 
 
 class Overrides(BaseModel):
@@ -120,9 +148,15 @@ class Overrides(BaseModel):
     locations: dict[str, LocationOverride] = Field(
         default_factory=dict, description="By location id."
     )
-    lanes: Annotated[list[LaneOverride], Field(max_length=1_000)] = Field(default_factory=list)
-    new_lanes: Annotated[list[LaneSpec], Field(max_length=1_000)] = Field(default_factory=list)
-    remove_lanes: Annotated[list[LaneRef], Field(max_length=1_000)] = Field(default_factory=list)
+    lanes: Annotated[list[LaneOverride], Field(max_length=1_000)] = Field(
+        default_factory=list, description="Changes to existing lanes."
+    )
+    new_lanes: Annotated[list[LaneSpec], Field(max_length=1_000)] = Field(
+        default_factory=list, description="Lanes to add."
+    )
+    remove_lanes: Annotated[list[LaneRef], Field(max_length=1_000)] = Field(
+        default_factory=list, description="Lanes to remove."
+    )
     max_units_per_night: Annotated[int, Field(ge=1)] | None = Field(
         default=None,
         description="Most units moved in one night; null lifts the limit, absent keeps it.",
@@ -150,5 +184,5 @@ class WhatIfRequest(BaseModel):
         },
     )
 
-    criterion: Criterion = "discounted"
-    overrides: Overrides
+    criterion: WhatIfCriterion = "discounted"
+    overrides: Overrides = Field(description="Changes to the current version.")

@@ -47,6 +47,8 @@ _LocationId = Annotated[
     ),
 ]
 _Amount = Annotated[float, Field(ge=0, allow_inf_nan=False)]
+# A layout's name, stores and lanes mean what a network's do: described as the network's are.
+_NETWORK = NetworkSpec.model_fields
 
 
 class _Strict(BaseModel):
@@ -92,7 +94,15 @@ class LayoutLane(_Strict):
 class Layout(_Strict):
     """Stores and lanes shared by the items of an assortment."""
 
-    name: Annotated[str, Field(min_length=1, max_length=160, pattern=r"^[^/]+$")]
+    name: Annotated[
+        str,
+        Field(
+            min_length=1,
+            max_length=160,
+            pattern=r"^[^/]+$",
+            description=_NETWORK["name"].description,
+        ),
+    ]
     discount: Annotated[
         float, Field(gt=0, lt=1, description="Per-day discount factor of every item.")
     ] = 0.99
@@ -105,8 +115,14 @@ class Layout(_Strict):
             description="IANA time zone of the stores.",
         ),
     ] = "UTC"
-    locations: Annotated[list[LayoutLocation], Field(min_length=2, max_length=64)]
-    lanes: Annotated[list[LayoutLane], Field(min_length=1, max_length=1_000)]
+    locations: Annotated[
+        list[LayoutLocation],
+        Field(min_length=2, max_length=64, description=_NETWORK["locations"].description),
+    ]
+    lanes: Annotated[
+        list[LayoutLane],
+        Field(min_length=1, max_length=1_000, description=_NETWORK["lanes"].description),
+    ]
     max_units_per_night: Annotated[
         int | None,
         Field(ge=1, description="Most units of one item moved over all lanes in one night."),

@@ -5,7 +5,6 @@ from __future__ import annotations
 import logging
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
-from typing import Any
 
 from fastapi import FastAPI, Request, Response
 from sqlalchemy.exc import OperationalError
@@ -27,7 +26,7 @@ from service.api import (
     recommendations,
 )
 from service.api.deps import KeyCache
-from service.api.docs import describe_fields, document_problems, install_docs
+from service.api.docs import document_problems, install_docs
 from service.db.migrate import require_migrated
 from service.db.session import make_engine, make_session_factory
 from service.logs import configure_server_logging
@@ -123,15 +122,6 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     ):
         document_problems(module.router)
         app.include_router(module.router)
-    generate_openapi = app.openapi
-
-    def openapi() -> dict[str, Any]:
-        # FastAPI's documented way to extend the document: generated once, then amended.
-        if app.openapi_schema is None:
-            describe_fields(generate_openapi())
-        return app.openapi_schema  # type: ignore[return-value]
-
-    app.openapi = openapi  # type: ignore[method-assign]
     # Added last = outermost: request ids first (also handed to the log lines), then the body
     # limit, then idempotent replays.
     app.add_middleware(

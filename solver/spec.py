@@ -83,19 +83,30 @@ class _Strict(BaseModel):
     model_config = ConfigDict(extra="forbid", frozen=True, populate_by_name=True)
 
 
+_WHICH_LAW = "Which law: poisson, negative_binomial or pmf."
+_MEAN = "Mean units per day."
+
+
 class PoissonDemand(_Strict):
     """Poisson counts with the given mean per day."""
 
-    dist: Literal["poisson"]
-    mean: _Amount
+    dist: Annotated[Literal["poisson"], Field(description=_WHICH_LAW)]
+    mean: Annotated[_Amount, Field(description=_MEAN)]
 
 
 class NegativeBinomialDemand(_Strict):
     """Overdispersed counts given by their mean and variance per day (variance > mean)."""
 
-    dist: Literal["negative_binomial"]
-    mean: Annotated[float, Field(gt=0, allow_inf_nan=False)]
-    variance: Annotated[float, Field(gt=0, allow_inf_nan=False)]
+    dist: Annotated[Literal["negative_binomial"], Field(description=_WHICH_LAW)]
+    mean: Annotated[float, Field(gt=0, allow_inf_nan=False, description=_MEAN)]
+    variance: Annotated[
+        float,
+        Field(
+            gt=0,
+            allow_inf_nan=False,
+            description="Variance of the units per day (larger than the mean).",
+        ),
+    ]
 
     @model_validator(mode="after")
     def _overdispersed(self) -> NegativeBinomialDemand:
@@ -110,10 +121,14 @@ class NegativeBinomialDemand(_Strict):
 class PmfDemand(_Strict):
     """An explicit probability mass function: p[k] is the probability of k units."""
 
-    dist: Literal["pmf"]
+    dist: Annotated[Literal["pmf"], Field(description=_WHICH_LAW)]
     p: Annotated[
         list[Annotated[float, Field(ge=0, le=1, allow_inf_nan=False)]],
-        Field(min_length=1, max_length=100_000),
+        Field(
+            min_length=1,
+            max_length=100_000,
+            description="p[k]: the probability of k units; sums to 1.",
+        ),
     ]
 
     @field_validator("p")
@@ -168,11 +183,22 @@ class _Week(_Strict, Generic[_Day]):
 class DailyDistributions(_Week[Distribution]):
     """A distribution for each business day."""
 
+    mon: Distribution = Field(description="The law on Mondays.")
+    tue: Distribution = Field(description="The law on Tuesdays.")
+    wed: Distribution = Field(description="The law on Wednesdays.")
+    thu: Distribution = Field(description="The law on Thursdays.")
+    fri: Distribution = Field(description="The law on Fridays.")
+    sat: Distribution = Field(description="The law on Saturdays.")
+    sun: Distribution = Field(description="The law on Sundays.")
+
+
+_EACH_WEEKDAY = "One value per weekday, mon .. sun."
+
 
 class WeeklyDistribution(_Strict):
     """Counts whose law depends on the weekday: `{"weekly": {"mon": ..., ..., "sun": ...}}`."""
 
-    weekly: DailyDistributions
+    weekly: Annotated[DailyDistributions, Field(description=_EACH_WEEKDAY)]
 
 
 _NightUnits = Annotated[int, Field(ge=0, le=10_000)]
@@ -181,11 +207,19 @@ _NightUnits = Annotated[int, Field(ge=0, le=10_000)]
 class NightlyUnits(_Week[_NightUnits]):
     """Most units moved on each night, named by the business day whose evening it is."""
 
+    mon: _NightUnits = Field(description="Most units on Monday night (0 closes the lane).")
+    tue: _NightUnits = Field(description="Most units on Tuesday night (0 closes the lane).")
+    wed: _NightUnits = Field(description="Most units on Wednesday night (0 closes the lane).")
+    thu: _NightUnits = Field(description="Most units on Thursday night (0 closes the lane).")
+    fri: _NightUnits = Field(description="Most units on Friday night (0 closes the lane).")
+    sat: _NightUnits = Field(description="Most units on Saturday night (0 closes the lane).")
+    sun: _NightUnits = Field(description="Most units on Sunday night (0 closes the lane).")
+
 
 class WeeklyUnits(_Strict):
     """A lane limit per night: `{"weekly": {"mon": 3, ..., "sun": 0}}`; 0 closes the lane."""
 
-    weekly: NightlyUnits
+    weekly: Annotated[NightlyUnits, Field(description=_EACH_WEEKDAY)]
 
     @model_validator(mode="after")
     def _some_night_open(self) -> WeeklyUnits:
@@ -198,7 +232,7 @@ class WeeklyCount(_Strict):
     """A per-night count of a location (floor or handling limit): `{"weekly": {"mon": 2, ...}}`;
     0 is allowed on every night."""
 
-    weekly: NightlyUnits
+    weekly: Annotated[NightlyUnits, Field(description=_EACH_WEEKDAY)]
 
 
 def _law_tag(value: Any) -> str | None:
@@ -396,7 +430,14 @@ class LaneSpec(_Strict):
 class NetworkSpec(_Strict):
     """A transfer network: at least two locations and the lanes between them."""
 
-    name: Annotated[str, Field(min_length=1, max_length=200)]
+    name: Annotated[
+        str,
+        Field(
+            min_length=1,
+            max_length=200,
+            description="A name of your choosing, unique within the tenant.",
+        ),
+    ]
     discount: Annotated[
         float,
         Field(
@@ -405,8 +446,18 @@ class NetworkSpec(_Strict):
             description="Per-day discount factor for the discounted criterion.",
         ),
     ] = 0.99
-    locations: Annotated[list[LocationSpec], Field(min_length=2, max_length=64)]
-    lanes: Annotated[list[LaneSpec], Field(min_length=1, max_length=1_000)]
+    locations: Annotated[
+        list[LocationSpec],
+        Field(min_length=2, max_length=64, description="One entry per location."),
+    ]
+    lanes: Annotated[
+        list[LaneSpec],
+        Field(
+            min_length=1,
+            max_length=1_000,
+            description="Directed lanes along which units may move at night.",
+        ),
+    ]
     max_units_per_night: Annotated[
         int | None,
         Field(ge=1, description="Most units moved over all lanes in one night."),

@@ -85,7 +85,10 @@ def test_every_field_of_every_schema_is_described() -> None:
         for field, prop in schema.get("properties", {}).items()
         if not prop.get("description")
     ]
-    assert undescribed == [], "describe them in the model or service.api.docs.FIELD_DESCRIPTIONS"
+    assert undescribed == [], (
+        "describe them on their models: Field(description=...), or an alias of "
+        "service.api.schemas.common for a meaning many fields share"
+    )
 
 
 def test_docs_load_only_files_the_app_serves() -> None:

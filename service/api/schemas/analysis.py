@@ -3,19 +3,32 @@ analysis parameters of service.analysis_requests)."""
 
 from __future__ import annotations
 
-from typing import Literal
+from typing import Literal, cast
 
 from pydantic import (
     BaseModel,
+    ConfigDict,
     Field,
 )
+from pydantic.config import JsonDict
 
 from service.analysis_requests import (
+    MeasuredDays,
+    SimulatedCriterion,
     SimulationRequest,
+    WarmupDays,
+    WhatIfCriterion,
 )
-from service.api.schemas.common import Timestamp
+from service.api.schemas.common import (
+    Attempts,
+    CreatedAt,
+    FinishedAt,
+    JobError,
+    JobState,
+    NetworkId,
+    StartedAt,
+)
 from service.vocabulary import (
-    JobStateName,
     SolveMethodName,
 )
 from solver import Criterion, NetworkSpec
@@ -37,9 +50,11 @@ __all__ = [
 
 
 class IntervalOut(BaseModel):
-    mean: float
+    mean: float = Field(description="Mean over the replications.")
     low: float | None = Field(description="Null when one replication cannot show a spread.")
-    high: float | None
+    high: float | None = Field(
+        description="Upper end of the interval; null when one replication cannot show a spread."
+    )
 
 
 class PolicySimulationOut(BaseModel):
@@ -54,11 +69,13 @@ class PolicySimulationOut(BaseModel):
     )
     profit_per_day: IntervalOut = Field(description="Currency per day, move costs deducted.")
     fill_rate: IntervalOut = Field(description="Units sold / units demanded.")
-    fill_rate_by_location: dict[str, IntervalOut]
+    fill_rate_by_location: dict[str, IntervalOut] = Field(description="Fill rate per location.")
     stockout_days: IntervalOut = Field(description="Fraction of location-days with lost sales.")
-    stockout_days_by_location: dict[str, IntervalOut]
-    units_moved_per_night: IntervalOut
-    move_cost_per_day: IntervalOut
+    stockout_days_by_location: dict[str, IntervalOut] = Field(
+        description="Stock-out day fraction per location."
+    )
+    units_moved_per_night: IntervalOut = Field(description="Units moved per night.")
+    move_cost_per_day: IntervalOut = Field(description="Cost of moves per day.")
     difference_to_optimal: IntervalOut | None = Field(
         description="Profit per day minus the network's policy's (optimal, or priced) on the "
         "same days; null for that policy itself."
@@ -92,17 +109,19 @@ class RulesEffectOut(BaseModel):
 
 
 class SimulationReportOut(BaseModel):
-    criterion: Criterion
-    days: int
-    replications: int
-    warmup_days: int
-    seed: int
+    criterion: Criterion = Field(description="Whose optimal policy was simulated.")
+    days: MeasuredDays
+    replications: int = Field(description="Independent runs.")
+    warmup_days: WarmupDays
+    seed: int = Field(description="Seed of the random days; the same seed gives the same report.")
     confidence: float = Field(description="Level of every interval.")
-    start_stock: dict[str, int]
+    start_stock: dict[str, int] = Field(description="Stock by location before the first night.")
     optimal_source: Literal["stored", "solved"] = Field(
         description="stored: the network's cached policy; solved: solved for this simulation."
     )
-    policies: list[PolicySimulationOut]
+    policies: list[PolicySimulationOut] = Field(
+        description="One report per policy, the optimal one first."
+    )
     rules: RulesEffectOut | None = Field(
         default=None,
         description="The effect of the network's floors and handling limits; null when it has "
@@ -112,26 +131,30 @@ class SimulationReportOut(BaseModel):
 
 
 class _AnalysisJobOut(BaseModel):
+    """A job of the analysis queue; each kind describes its `id` and `criterion`."""
+
     id: int
-    network_id: int
+    network_id: NetworkId
     version: int = Field(description="The network version analysed.")
-    state: JobStateName
+    state: JobState
     criterion: Criterion
-    attempts: int
-    created_at: Timestamp
-    started_at: Timestamp | None
-    finished_at: Timestamp | None
+    attempts: Attempts
+    created_at: CreatedAt
+    started_at: StartedAt
+    finished_at: FinishedAt
     seconds: float | None = Field(description="Computing time of the finished job.")
-    error: str | None
+    error: JobError
 
 
 class SimulationJobOut(_AnalysisJobOut):
+    id: int = Field(description="The simulation's id (GET .../simulations/{job_id}).")
+    criterion: SimulatedCriterion
     request: SimulationRequest = Field(description="What is simulated, the seed included.")
     report: SimulationReportOut | None = Field(description="Once the job is done.")
 
 
 class WhatIfSummaryOut(BaseModel):
-    states: int
+    states: int = Field(description="Number of stock states of the network.")
     method: SolveMethodName = Field(
         default="exact", description="exact or priced: how both networks were solved."
     )
@@ -139,7 +162,9 @@ class WhatIfSummaryOut(BaseModel):
     mean_value: float | None = Field(
         description="Expected discounted profit averaged over every stock (discounted only)."
     )
-    reference_stock: dict[str, int]
+    reference_stock: dict[str, int] = Field(
+        description="The stock the values are compared at (half of each capacity, rounded down)."
+    )
     value_at_reference: float | None = Field(
         description="Expected discounted profit from the reference stock (discounted only; "
         "null for a priced network)."
@@ -158,9 +183,13 @@ class WhatIfSummaryOut(BaseModel):
 class WhatIfChangeOut(BaseModel):
     """Changed minus base."""
 
-    profit_per_day: float | None
-    mean_value: float | None
-    value_at_reference: float | None
+    profit_per_day: float | None = Field(
+        description="Change of the long-run profit per day (average only)."
+    )
+    mean_value: float | None = Field(description="Change of the mean value (discounted only).")
+    value_at_reference: float | None = Field(
+        description="Change of the value at the reference stock (discounted only)."
+    )
     upper_bound_at_reference: float | None = Field(
         default=None,
         description="Priced networks: the upper bound at the certificate's reference stock; "
@@ -173,24 +202,35 @@ class MoveChangesOut(BaseModel):
     states_changed: int | None = Field(
         description="Stocks at which the recommended moves differ (null when not comparable)."
     )
-    base_states: int
-    changed_states: int
-    detail: str
+    base_states: int = Field(description="Stock states of the current version.")
+    changed_states: int = Field(description="Stock states with the overrides.")
+    detail: str = Field(description="The comparison in words.")
+
+
+def _describe_change(schema: JsonDict) -> None:
+    # pydantic drops a field's description that repeats the docstring of the model it refers
+    # to, as `change`'s would; the contract states it on the property all the same.
+    properties = cast(JsonDict, schema["properties"])
+    cast(JsonDict, properties["change"])["description"] = WhatIfChangeOut.__doc__
 
 
 class WhatIfResultOut(BaseModel):
-    criterion: Criterion
-    base: WhatIfSummaryOut
-    changed: WhatIfSummaryOut
+    model_config = ConfigDict(json_schema_extra=_describe_change)
+
+    criterion: WhatIfCriterion
+    base: WhatIfSummaryOut = Field(description="The current version, solved.")
+    changed: WhatIfSummaryOut = Field(description="The version with the overrides, solved.")
     change: WhatIfChangeOut
-    moves: MoveChangesOut
+    moves: MoveChangesOut = Field(description="How the recommended moves differ.")
     changed_spec: NetworkSpec = Field(description="The current version with the overrides.")
 
 
 class WhatIfOut(WhatIfResultOut):
-    network_id: int
+    network_id: NetworkId
     version: int = Field(description="The network version the overrides were applied to.")
 
 
 class WhatIfJobOut(_AnalysisJobOut):
+    id: int = Field(description="The comparison's id (GET .../what-if/{job_id}).")
+    criterion: WhatIfCriterion
     result: WhatIfResultOut | None = Field(description="Once the job is done.")

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from datetime import date, time
-from typing import Any, Literal
+from typing import Annotated, Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, StrictInt, field_validator
 
@@ -61,6 +61,17 @@ DEMO_LAYOUT: dict[str, Any] = {
 }
 
 
+# Fields that mean the same in every assortment model below.
+_AssortmentId = Annotated[int, Field(description="The assortment.")]
+_ItemCode = Annotated[str, Field(description="The item's code.")]
+_ItemNetwork = Annotated[int, Field(description="The item's network.")]
+_ItemCount = Annotated[int, Field(description="Items of the assortment.")]
+_Location = Annotated[str, Field(description="The location.")]
+_Sender = Annotated[str, Field(alias="from", description="The sending location.")]
+_Receiver = Annotated[str, Field(description="The receiving location.")]
+_LaneUnitCost = Annotated[float, Field(description="Lane cost per unit.")]
+
+
 class AssortmentCreate(Layout):
     """A store layout shared by many items, and how its items are solved."""
 
@@ -78,15 +89,8 @@ class AssortmentCreate(Layout):
         "date; absent: midnight.",
     )
 
-    @field_validator("timezone")
-    @classmethod
-    def _known_timezone(cls, zone: str) -> str:
-        return known_timezone(zone)
-
-    @field_validator("closing_cutoff")
-    @classmethod
-    def _whole_minutes(cls, cutoff: time | None) -> time | None:
-        return local_cutoff(cutoff)
+    _known_timezone = field_validator("timezone")(known_timezone)
+    _whole_minutes = field_validator("closing_cutoff")(local_cutoff)
 
     def layout(self) -> Layout:
         return Layout.model_validate(
@@ -98,10 +102,7 @@ class LayoutUpdate(Layout):
     """The next layout of an assortment: the same name and stores; lanes, costs, limits,
     trucks, time zone and discount may change."""
 
-    @field_validator("timezone")
-    @classmethod
-    def _known_timezone(cls, zone: str) -> str:
-        return known_timezone(zone)
+    _known_timezone = field_validator("timezone")(known_timezone)
 
     def layout(self) -> Layout:
         return Layout.model_validate(self.model_dump(by_alias=True))
@@ -111,7 +112,7 @@ class ItemStates(BaseModel):
     """How many items stand where: ready (every criterion solved), waiting (a solve queued or
     running), failed (a solve failed), in all."""
 
-    items: int = Field(description="Items of the assortment.")
+    items: _ItemCount
     ready: int = Field(description="Items whose current version is solved for every criterion.")
     waiting: int = Field(description="Items with a solve queued or running.")
     failed: int = Field(description="Items with a failed solve (see their jobs).")
@@ -138,7 +139,7 @@ class AssortmentOut(BaseModel):
 class ItemsStoredOut(BaseModel):
     """What an upload of items did."""
 
-    assortment_id: int = Field(description="The assortment.")
+    assortment_id: _AssortmentId
     received: int = Field(description="Items in the upload.")
     created: int = Field(description="Items new to the assortment.")
     updated: int = Field(description="Items given a new version (their numbers changed).")
@@ -153,7 +154,7 @@ ItemStateName = Literal["ready", "waiting", "failed", "not_requested"]
 
 
 class ItemOut(BaseModel):
-    item: str = Field(description="The item's code.")
+    item: _ItemCode
     network_id: int = Field(
         description="The item's network: its single-network routes (recommendation, versions, "
         "policy export) answer for the item alone."
@@ -177,7 +178,7 @@ class ItemPage(BaseModel):
 class ClosingReportOut(BaseModel):
     """What a location's closing report did."""
 
-    assortment_id: int = Field(description="The assortment.")
+    assortment_id: _AssortmentId
     location: str = Field(description="The reporting location.")
     business_date: date = Field(description="The business date the counts belong to.")
     items: int = Field(description="Items counted.")
@@ -212,7 +213,7 @@ class PickSummaryOut(BaseModel):
     """The night's totals over every item."""
 
     criterion: str = Field(description="The criterion whose policies planned the night.")
-    items: int = Field(description="Items of the assortment.")
+    items: _ItemCount
     planned: int = Field(description="Items planned from their policies.")
     not_solved: int = Field(
         description="Items without a policy yet (no moves for them; see their solve state)."
@@ -225,22 +226,22 @@ class PickSummaryOut(BaseModel):
 
 
 class PickSendOut(BaseModel):
-    to: str = Field(description="The receiving location.")
+    to: _Receiver
     units: int = Field(description="Units to pack.")
-    unit_cost: float = Field(description="Lane cost per unit.")
+    unit_cost: _LaneUnitCost
 
 
 class PickReceiveOut(BaseModel):
     model_config = ConfigDict(populate_by_name=True)
 
-    from_: str = Field(alias="from", description="The sending location.")
+    from_: _Sender
     units: int = Field(description="Units to expect.")
-    unit_cost: float = Field(description="Lane cost per unit.")
+    unit_cost: _LaneUnitCost
 
 
 class PickLineOut(BaseModel):
-    item: str = Field(description="The item's code.")
-    network_id: int = Field(description="The item's network.")
+    item: _ItemCode
+    network_id: _ItemNetwork
     version: int = Field(description="The item's version that planned it.")
     closing_stock: int = Field(description="The location's closing count of the item.")
     sends: list[PickSendOut] = Field(description="Units this location sends, by receiver.")
@@ -265,8 +266,8 @@ class ItemCorrectionOut(BaseModel):
 class PickListOut(BaseModel):
     """One location's pick list of a business date: only items it moves."""
 
-    assortment_id: int = Field(description="The assortment.")
-    location: str = Field(description="The location.")
+    assortment_id: _AssortmentId
+    location: _Location
     business_date: date = Field(description="The business date of the closing counts.")
     revision: int = Field(description="1 when first issued; each correction adds one.")
     computed_at: Timestamp = Field(description="When this revision was made (UTC).")
@@ -305,14 +306,14 @@ class ItemStocksIn(BaseModel):
 class ItemMoveOut(BaseModel):
     model_config = ConfigDict(populate_by_name=True)
 
-    from_: str = Field(alias="from", description="The sending location.")
-    to: str = Field(description="The receiving location.")
+    from_: _Sender
+    to: _Receiver
     units: int = Field(description="Units moved.")
 
 
 class ItemRecommendationOut(BaseModel):
-    item: str = Field(description="The item's code.")
-    network_id: int = Field(description="The item's network.")
+    item: _ItemCode
+    network_id: _ItemNetwork
     version: int = Field(description="The item's version whose policy answered.")
     state: Literal["planned", "not_solved"] = Field(
         description="planned, or not_solved when the item has no policy yet (no moves)."
@@ -337,7 +338,7 @@ class ItemRecommendationsOut(BaseModel):
 class HistoryUploadOut(BaseModel):
     """What an upload of history did."""
 
-    assortment_id: int = Field(description="The assortment.")
+    assortment_id: _AssortmentId
     received: int = Field(description="Rows in the upload.")
     inserted: int = Field(description="Rows stored as days new to their item and location.")
     replaced: int = Field(description="Rows that replaced a day stored already.")
@@ -353,14 +354,14 @@ class HistoryCountsOut(BaseModel):
 
 
 class LocationHistoryCountsOut(HistoryCountsOut):
-    location: str = Field(description="The location.")
+    location: _Location
 
 
 class AssortmentHistoryOut(HistoryCountsOut):
     """The sales history stored for the assortment's items."""
 
-    assortment_id: int = Field(description="The assortment.")
-    items: int = Field(description="Items of the assortment.")
+    assortment_id: _AssortmentId
+    items: _ItemCount
     locations: list[LocationHistoryCountsOut] = Field(
         description="The same counts per location with history."
     )
@@ -389,8 +390,8 @@ class CalibrationRunIn(BaseModel):
 
 
 class CalibrationChangeOut(BaseModel):
-    item: str = Field(description="The item's code.")
-    location: str = Field(description="The location.")
+    item: _ItemCode
+    location: _Location
     parameter: Literal[
         "demand_mean", "demand_variance", "replenishment_mean", "replenishment_variance"
     ] = Field(description="The parameter that changed (units per day, or units squared).")
@@ -402,7 +403,7 @@ class CalibrationChangeOut(BaseModel):
 
 
 class CalibrationFailureOut(BaseModel):
-    item: str = Field(description="The item's code.")
+    item: _ItemCode
     reason: str = Field(description="Why it was not calibrated.")
 
 
@@ -410,7 +411,7 @@ class CalibrationRunOut(BaseModel):
     """Where a calibration of every item stands and, over its finished chunks, what changed."""
 
     run: int = Field(description="The run's id (the id of its first job).")
-    assortment_id: int = Field(description="The assortment.")
+    assortment_id: _AssortmentId
     state: Literal["queued", "running", "done"] = Field(
         description="done once every chunk has finished (done or failed)."
     )

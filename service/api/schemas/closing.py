@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from datetime import date
+from typing import Annotated
 
 from pydantic import (
     BaseModel,
@@ -10,7 +11,7 @@ from pydantic import (
     Field,
 )
 
-from service.api.schemas.common import Timestamp, _Units
+from service.api.schemas.common import UTC_TIME, LocationId, NetworkId, Timestamp, _Units
 
 __all__ = [
     "ClosingStockIn",
@@ -18,6 +19,10 @@ __all__ = [
     "CorrectionOut",
     "InstructionsOut",
     "Movement",
+]
+
+_BusinessDate = Annotated[
+    date, Field(description="The business date of the closing count (local to the stores).")
 ]
 
 
@@ -43,11 +48,11 @@ class ClosingStockIn(BaseModel):
 
 
 class ClosingStockOut(BaseModel):
-    network_id: int
-    location: str
-    business_date: date
-    units: int
-    reported_at: Timestamp
+    network_id: NetworkId
+    location: LocationId
+    business_date: _BusinessDate
+    units: int = Field(description="Units on hand at closing, as recorded.")
+    reported_at: Timestamp = Field(description=f"When the count was recorded, {UTC_TIME}.")
     missing: list[str] = Field(description="Locations yet to report for this business date.")
     revision: int | None = Field(
         default=None,
@@ -57,14 +62,14 @@ class ClosingStockOut(BaseModel):
 
 
 class Movement(BaseModel):
-    location: str
-    units: int
+    location: str = Field(description="The other location of the move.")
+    units: int = Field(description="Units moved.")
 
 
 class CorrectionOut(BaseModel):
     """A closing count corrected after the instructions were first issued."""
 
-    location: str
+    location: LocationId
     old_units: int = Field(description="The count it replaced, units.")
     new_units: int = Field(description="The corrected count, units.")
     revision: int = Field(description="The revision of the instructions it produced.")
@@ -73,11 +78,11 @@ class CorrectionOut(BaseModel):
 
 
 class InstructionsOut(BaseModel):
-    network_id: int
-    location: str
-    business_date: date
-    version: int
-    criterion: str
+    network_id: NetworkId
+    location: LocationId
+    business_date: _BusinessDate
+    version: int = Field(description="Network version whose policy gave the instructions.")
+    criterion: str = Field(description="The criterion whose policy gave the instructions.")
     computed_at: Timestamp = Field(description="When this revision was computed.")
     revision: int = Field(
         description="1 when first issued, one more for each correction of a count (also in "

@@ -1,5 +1,6 @@
 """Shared pieces of the HTTP models: timestamps in UTC, closing stock, criteria lists, the
-base of response models."""
+base of response models, and the fields that mean the same wherever they stand (a network's
+id, a location, a job's state and times), described once."""
 
 from __future__ import annotations
 
@@ -14,12 +15,22 @@ from pydantic import (
     StrictInt,
 )
 
+from service.vocabulary import JobStateName
 from solver import CRITERIA, Criterion
 
 __all__ = [
     "DEFAULT_CRITERION_RULE",
     "MAX_BATCH_ITEMS",
+    "UTC_TIME",
+    "Attempts",
+    "CreatedAt",
     "Criteria",
+    "FinishedAt",
+    "JobError",
+    "JobState",
+    "LocationId",
+    "NetworkId",
+    "StartedAt",
     "Stock",
     "Timestamp",
     "_Out",
@@ -39,6 +50,26 @@ def _as_utc(moment: datetime) -> datetime:
 
 
 Timestamp = Annotated[datetime, AfterValidator(_as_utc)]
+UTC_TIME = "UTC time (ISO 8601)"
+
+
+NetworkId = Annotated[int, Field(description="The network's id.")]
+LocationId = Annotated[str, Field(description="A location's id within the network.")]
+
+# A job of the queue: a solve, a simulation or a what-if comparison.
+JobState = Annotated[JobStateName, Field(description="queued, running, done or failed.")]
+Attempts = Annotated[
+    int,
+    Field(description="How many times a worker has claimed it (a lost worker's job is retried)."),
+]
+CreatedAt = Annotated[Timestamp, Field(description=f"When it was created, {UTC_TIME}.")]
+StartedAt = Annotated[
+    Timestamp | None, Field(description=f"When a worker started it, {UTC_TIME}; null before.")
+]
+FinishedAt = Annotated[
+    Timestamp | None, Field(description=f"When it finished, {UTC_TIME}; null before.")
+]
+JobError = Annotated[str | None, Field(description="Why it failed; null otherwise.")]
 
 
 MAX_BATCH_ITEMS = 1000

@@ -11,9 +11,17 @@ from pydantic import (
     field_validator,
 )
 
-from service.api.schemas.common import Timestamp, _Out
+from service.api.schemas.common import (
+    Attempts,
+    CreatedAt,
+    FinishedAt,
+    JobError,
+    JobState,
+    StartedAt,
+    Timestamp,
+    _Out,
+)
 from service.vocabulary import (
-    JobStateName,
     SolveMethodName,
 )
 
@@ -40,23 +48,27 @@ class JobProgressOut(BaseModel):
 
 
 class JobOut(_Out):
-    id: int
+    id: int = Field(description="The job's id (GET /v1/jobs/{job_id}).")
     network_id: int = Field(description="The network whose version is solved.")
     version_number: int = Field(description="The network version solved (as in If-Match).")
     version_id: int = Field(description="Internal id of that version's row; prefer the two above.")
-    criterion: str
+    criterion: str = Field(
+        description="discounted: expected discounted profit; average: long-run profit per day."
+    )
     method: SolveMethodName = Field(
         default="exact", description="exact or priced: how the job solves."
     )
-    state: JobStateName
-    attempts: int
-    created_at: Timestamp
-    started_at: Timestamp | None
-    finished_at: Timestamp | None
-    solve_seconds: float | None
-    iterations: int | None
-    residual: float | None
-    error: str | None
+    state: JobState
+    attempts: Attempts
+    created_at: CreatedAt
+    started_at: StartedAt
+    finished_at: FinishedAt
+    solve_seconds: float | None = Field(description="Solve time in seconds; null until done.")
+    iterations: int | None = Field(description="Policy iterations the solve took; null until done.")
+    residual: float | None = Field(
+        description="Bellman residual of the final values (currency units); null until done."
+    )
+    error: JobError
     progress: JobProgressOut | None = Field(
         default=None,
         description="Priced solves: the latest progress reported while running (kept once done).",

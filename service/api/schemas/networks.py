@@ -12,7 +12,7 @@ from pydantic import (
     field_validator,
 )
 
-from service.api.schemas.common import Criteria, Timestamp, _Out
+from service.api.schemas.common import UTC_TIME, CreatedAt, Criteria, Timestamp, _Out
 from service.api.schemas.jobs import JobOut
 from service.demo import DEMO_NETWORK
 from service.timezones import known_timezone, local_cutoff
@@ -54,15 +54,8 @@ class NetworkCreate(NetworkSpec):
         "specification's hash. Default auto; on PUT, absent keeps the network's mode.",
     )
 
-    @field_validator("timezone")
-    @classmethod
-    def _known_timezone(cls, zone: str) -> str:
-        return known_timezone(zone)
-
-    @field_validator("closing_cutoff")
-    @classmethod
-    def _whole_minutes(cls, cutoff: time | None) -> time | None:
-        return local_cutoff(cutoff)
+    _known_timezone = field_validator("timezone")(known_timezone)
+    _whole_minutes = field_validator("closing_cutoff")(local_cutoff)
 
     def spec(self) -> NetworkSpec:
         """The specification alone. The request was validated as a NetworkSpec (this model is
@@ -89,18 +82,26 @@ class NetworkUpdate(NetworkCreate):
 class SolveState(BaseModel):
     """Where the policy of the current version stands for one criterion."""
 
-    criterion: str
-    state: SolveStatusName
-    job_id: int | None = None
-    solved_at: Timestamp | None = None
-    error: str | None = None
+    criterion: str = Field(description="The criterion this entry is about.")
+    state: SolveStatusName = Field(
+        description="ready, queued, running, failed, or not_requested (never asked for)."
+    )
+    job_id: int | None = Field(
+        default=None, description="The job that solves it, when there is one."
+    )
+    solved_at: Timestamp | None = Field(
+        default=None, description=f"When the policy was solved, {UTC_TIME}; null until ready."
+    )
+    error: str | None = Field(
+        default=None, description="Why the last solve failed; null otherwise."
+    )
 
 
 class NetworkOut(_Out):
-    id: int
-    name: str
-    archived: bool
-    created_at: Timestamp
+    id: int = Field(description="The network's id, used in every /v1/networks/{network_id} path.")
+    name: str = Field(description="A name of your choosing, unique within the tenant.")
+    archived: bool = Field(description="True once deleted: kept for its history, no longer served.")
+    created_at: CreatedAt
     version: int = Field(description="Current version number; send it in If-Match to update.")
     spec_hash: str = Field(description="SHA-256 of the current specification as canonical JSON.")
     closing_cutoff: str = Field(
@@ -111,7 +112,9 @@ class NetworkOut(_Out):
     method: SolveMethodName = Field(
         description="The method that mode resolves to for the current version."
     )
-    solves: list[SolveState]
+    solves: list[SolveState] = Field(
+        description="Where each criterion's policy of the current version stands."
+    )
 
 
 class NetworkCreated(NetworkOut):
@@ -119,7 +122,7 @@ class NetworkCreated(NetworkOut):
 
 
 class VersionOut(_Out):
-    number: int
-    spec_hash: str
-    created_at: Timestamp
-    spec: NetworkSpec
+    number: int = Field(description="Version number, 1 for the first.")
+    spec_hash: str = Field(description="SHA-256 of the specification as canonical JSON.")
+    created_at: Timestamp = Field(description=f"When this version was stored, {UTC_TIME}.")
+    spec: NetworkSpec = Field(description="The specification of this version.")

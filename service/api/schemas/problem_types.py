@@ -19,11 +19,11 @@ class Problem(BaseModel):
 
     model_config = ConfigDict(extra="allow")
 
-    type: str
-    title: str
-    status: int
-    detail: str
-    instance: str | None = None
+    type: str = Field(description="URI of the problem type: /problems/<slug>, served by this API.")
+    title: str = Field(description="Short summary of the problem type.")
+    status: int = Field(description="The HTTP status code.")
+    detail: str = Field(description="What went wrong with this request, in words.")
+    instance: str | None = Field(default=None, description="The request path.")
 
 
 class ProblemTypeOut(BaseModel):

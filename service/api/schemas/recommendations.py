@@ -12,7 +12,15 @@ from pydantic import (
     WithJsonSchema,
 )
 
-from service.api.schemas.common import DEFAULT_CRITERION_RULE, MAX_BATCH_ITEMS, Stock, Timestamp
+from service.api.schemas.common import (
+    DEFAULT_CRITERION_RULE,
+    MAX_BATCH_ITEMS,
+    UTC_TIME,
+    LocationId,
+    NetworkId,
+    Stock,
+    Timestamp,
+)
 from service.api.schemas.problem_types import Problem
 from service.demo import DEMO_STOCK
 from service.vocabulary import (
@@ -47,6 +55,8 @@ BusinessDate = Annotated[
     ),
 ]
 
+_CriterionOrFirst = Annotated[Criterion | None, Field(description=DEFAULT_CRITERION_RULE)]
+
 
 class RecommendationRequest(BaseModel):
     model_config = ConfigDict(
@@ -55,17 +65,17 @@ class RecommendationRequest(BaseModel):
     )
 
     stock: Stock
-    criterion: Criterion | None = Field(default=None, description=DEFAULT_CRITERION_RULE)
+    criterion: _CriterionOrFirst = None
     business_date: BusinessDate = None
 
 
 class TransferOut(BaseModel):
     model_config = ConfigDict(populate_by_name=True)
 
-    from_: str = Field(alias="from")
-    to: str
-    units: int
-    unit_cost: float
+    from_: str = Field(alias="from", description="The sending location's id.")
+    to: str = Field(description="The receiving location's id.")
+    units: int = Field(description="Units to move tonight.")
+    unit_cost: float = Field(description="Cost of moving one unit along the lane.")
     dispatch_cost: float = Field(
         description="The lane's fixed cost per night it is used, paid when units > 0."
     )
@@ -74,7 +84,7 @@ class TransferOut(BaseModel):
 class RelayOut(BaseModel):
     """A location that both receives and sends units on one night: units pass through it."""
 
-    location: str
+    location: LocationId
     receives: int = Field(description="Units arriving tonight, over all lanes.")
     sends: int = Field(description="Units leaving tonight, over all lanes.")
     net_change: int = Field(description="receives - sends: what its stock gains tonight.")
@@ -104,15 +114,15 @@ class CertificateOut(BaseModel):
 
 
 class RecommendationOut(BaseModel):
-    network_id: int
-    criterion: str
+    network_id: NetworkId
+    criterion: str = Field(description="The criterion whose policy answered.")
     version: int = Field(description="Version whose policy answered.")
     stale: bool = Field(
         description="True when the current version's solve for this criterion is queued or "
         "running and an older version answers meanwhile; never while nothing is being solved "
         "(a current version not solved for the criterion answers 409 instead)."
     )
-    solved_at: Timestamp
+    solved_at: Timestamp = Field(description=f"When the policy was solved, {UTC_TIME}.")
     parameters_calibrated_at: Timestamp | None = Field(
         description="When that version's demand and replenishment were estimated from sales "
         "history; null when they were sent as they are."
@@ -121,21 +131,27 @@ class RecommendationOut(BaseModel):
         description="Bellman residual of the exact solve; null for a priced policy (see "
         "certificate)."
     )
-    stock: dict[str, int]
+    stock: dict[str, int] = Field(description="The closing stock sent, by location.")
     transfers: list[TransferOut] = Field(description="Tonight's moves; empty when none pays.")
-    stock_after_transfers: dict[str, int]
+    stock_after_transfers: dict[str, int] = Field(
+        description="Stock by location once tonight's moves arrive."
+    )
     relays: list[RelayOut] = Field(
         default_factory=list,
         description="Locations that receive and send on the same night (three or more "
         "locations), with their net change and why; empty when there are none.",
     )
-    transfer_cost: float
+    transfer_cost: float = Field(description="Cost of tonight's moves.")
     expected_value: float = Field(
         description="Value of following the policy from this stock (discounted: expected "
         "discounted profit; average: relative value, 0 for the all-empty stock)."
     )
-    value_without_transfers: float
-    gain_from_transfers: float
+    value_without_transfers: float = Field(
+        description="Value of moving nothing tonight and following the policy afterwards."
+    )
+    gain_from_transfers: float = Field(
+        description="expected_value minus value_without_transfers: what tonight's moves are worth."
+    )
     profit_per_day: float | None = Field(
         description="Long-run profit per day of the policy (average criterion only; for a "
         "priced policy, the upper bound on the optimal profit per day)."
@@ -170,7 +186,7 @@ class BatchItem(BaseModel):
 
     network_id: Annotated[int, Field(ge=1, le=2_147_483_647)]
     stock: Stock
-    criterion: Criterion | None = Field(default=None, description=DEFAULT_CRITERION_RULE)
+    criterion: _CriterionOrFirst = None
     business_date: BusinessDate = None
 
 
@@ -186,16 +202,25 @@ class BatchRequest(BaseModel):
     # documents each as a BatchItem.
     items: Annotated[
         list[Annotated[Any, WithJsonSchema(BatchItem.model_json_schema())]],
-        Field(min_length=1, max_length=MAX_BATCH_ITEMS),
+        Field(
+            min_length=1,
+            max_length=MAX_BATCH_ITEMS,
+            description=f"Up to {MAX_BATCH_ITEMS:,} recommendation requests, each with its "
+            "network_id.",
+        ),
     ]
 
 
 class BatchOutcome(BaseModel):
     """Exactly one of `result` and `problem`."""
 
-    result: RecommendationOut | None = None
-    problem: Problem | None = None
+    result: RecommendationOut | None = Field(
+        default=None, description="The recommendation, when the item succeeded."
+    )
+    problem: Problem | None = Field(
+        default=None, description="The problem (RFC 9457), when the item failed."
+    )
 
 
 class BatchResponse(BaseModel):
-    items: list[BatchOutcome]
+    items: list[BatchOutcome] = Field(description="One outcome per item, in the order sent.")
