@@ -18,7 +18,7 @@ processes, so there are two sources:
 
 Metrics (histograms in seconds):
 
-* stockrelay_solve_seconds{states, criterion}: histogram, solve time of done solve jobs;
+* stockrelay_solve_seconds{states, criterion, method}: histogram, solve time of done solve jobs;
 * stockrelay_jobs_total{kind, outcome}: counter, done, failed and retried jobs;
 * stockrelay_queue_depth{kind}: gauge, queued jobs;
 * stockrelay_jobs_running{kind}: gauge, jobs leased to a worker;
@@ -300,24 +300,25 @@ class DatabaseCollector(Collector):
 
     @staticmethod
     def _solve_seconds(session: Session) -> HistogramMetricFamily:
-        # One row per specification and criterion (the size class is a property of the
-        # specification), with the cumulative bucket counts computed by the database.
+        # One row per specification, criterion and method (the size class is a property of
+        # the specification), with the cumulative bucket counts computed by the database.
         rows = solve_seconds_buckets(session, SOLVE_BUCKETS)
         sizes = _SIZES.of(session, (row[0] for row in rows))
-        histograms: dict[tuple[str, str], _Histogram] = {}
-        for spec_hash, criterion, n, total, buckets in rows:
+        histograms: dict[tuple[str, str, str], _Histogram] = {}
+        for spec_hash, criterion, method, n, total, buckets in rows:
             size = sizes.get(spec_hash)
             if size is None:  # a job without a stored version: cannot happen (foreign key)
                 continue
-            histograms.setdefault((size, criterion), _Histogram()).add(n, total, buckets)
+            key = (size, criterion, method)
+            histograms.setdefault(key, _Histogram()).add(n, total, buckets)
         family = HistogramMetricFamily(
             "stockrelay_solve_seconds",
             "Solve time of done jobs (seconds), by network size in stock states "
-            '("<1k", "1k-100k", "100k+") and criterion.',
-            labels=["states", "criterion"],
+            '("<1k", "1k-100k", "100k+"), criterion and method (exact, priced).',
+            labels=["states", "criterion", "method"],
         )
-        for (size, criterion), histogram in sorted(histograms.items()):
-            family.add_metric([size, criterion], histogram.samples(), histogram.total)
+        for labels, histogram in sorted(histograms.items()):
+            family.add_metric(list(labels), histogram.samples(), histogram.total)
         return family
 
     @staticmethod

@@ -63,10 +63,10 @@ def jobs_by_kind_and_state(session: Session) -> list[tuple[str, str, int, dateti
 
 def solve_seconds_buckets(
     session: Session, bounds: Sequence[float]
-) -> list[tuple[str, str, int, float, list[int]]]:
-    """One row per (specification hash, criterion) of done solves: (hash, criterion, solves,
-    total seconds, solves within each of `bounds` seconds: cumulative counts), computed by the
-    database."""
+) -> list[tuple[str, str, str, int, float, list[int]]]:
+    """One row per (specification hash, criterion, method) of done solves: (hash, criterion,
+    method, solves, total seconds, solves within each of `bounds` seconds: cumulative counts),
+    computed by the database."""
     done = and_(
         SolveJob.kind == JobKind.SOLVE.value,
         SolveJob.state == JobState.DONE.value,
@@ -76,16 +76,17 @@ def solve_seconds_buckets(
         select(
             SolveJob.spec_hash,
             SolveJob.criterion,
+            SolveJob.method,
             func.count(),
             func.sum(SolveJob.solve_seconds),
             *(func.sum(case((SolveJob.solve_seconds <= bound, 1), else_=0)) for bound in bounds),
         )
         .where(done)
-        .group_by(SolveJob.spec_hash, SolveJob.criterion)
+        .group_by(SolveJob.spec_hash, SolveJob.criterion, SolveJob.method)
     ).all()
     return [
-        (spec_hash, criterion, int(n), float(total or 0.0), [int(b) for b in buckets])
-        for spec_hash, criterion, n, total, *buckets in rows
+        (spec_hash, criterion, method, int(n), float(total or 0.0), [int(b) for b in buckets])
+        for spec_hash, criterion, method, n, total, *buckets in rows
     ]
 
 

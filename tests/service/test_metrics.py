@@ -139,7 +139,7 @@ def test_solves_fill_the_histogram_by_size_class_and_criterion(engine: Engine) -
         samples = scrape(client)
     # The demo network has 15 x 10 = 150 stock states, the other 41 x 41 = 1,681.
     for states, criterion in (("<1k", "discounted"), ("<1k", "average"), ("1k-100k", "discounted")):
-        labels = {"states": states, "criterion": criterion}
+        labels = {"states": states, "criterion": criterion, "method": "exact"}
         assert value(samples, "stockrelay_solve_seconds_count", **labels) == 1
         assert value(samples, "stockrelay_solve_seconds_bucket", le="+Inf", **labels) == 1
         assert value(samples, "stockrelay_solve_seconds_sum", **labels) > 0
@@ -149,7 +149,14 @@ def test_solves_fill_the_histogram_by_size_class_and_criterion(engine: Engine) -
         ]
         assert buckets == sorted(buckets), "buckets are cumulative"
     assert (
-        value(samples, "stockrelay_solve_seconds_count", states="1k-100k", criterion="average") == 0
+        value(
+            samples,
+            "stockrelay_solve_seconds_count",
+            states="1k-100k",
+            criterion="average",
+            method="exact",
+        )
+        == 0
     )
     assert value(samples, "stockrelay_jobs_total", kind="solve", outcome="done") == 3
 
@@ -164,7 +171,7 @@ def test_solve_seconds_come_from_the_jobs_table(engine: Engine) -> None:
             first, second = session.scalars(select(SolveJob).order_by(SolveJob.id)).all()
             first.solve_seconds, second.solve_seconds = 0.02, 7.5
         samples = scrape(client)
-    labels = {"states": "<1k", "criterion": "discounted"}
+    labels = {"states": "<1k", "criterion": "discounted", "method": "exact"}
     assert value(samples, "stockrelay_solve_seconds_sum", **labels) == pytest.approx(7.52)
     assert value(samples, "stockrelay_solve_seconds_bucket", le="0.01", **labels) == 0
     assert value(samples, "stockrelay_solve_seconds_bucket", le="0.025", **labels) == 1
@@ -198,7 +205,7 @@ def test_simulations_are_counted_by_kind_and_kept_out_of_the_solve_histogram(
     assert value(samples, "stockrelay_queue_depth", kind="solve") == 0
     assert value(samples, "stockrelay_jobs_total", kind="simulate", outcome="done") == 1
     assert value(samples, "stockrelay_jobs_total", kind="solve", outcome="done") == 1
-    labels = {"states": "<1k", "criterion": "discounted"}
+    labels = {"states": "<1k", "criterion": "discounted", "method": "exact"}
     assert value(samples, "stockrelay_solve_seconds_count", **labels) == 1
     assert value(samples, "stockrelay_solve_seconds_sum", **labels) < 42.0
 

@@ -195,6 +195,11 @@ def test_batch_answers_priced_and_exact_networks_side_by_side(
     outcomes = client.post("/v1/recommendations/batch", json={"items": items}).json()["items"]
     assert [o["result"]["method"] for o in outcomes] == ["priced", "exact"]
     assert outcomes[0]["result"]["certificate"] is not None
+    # The solve-time histogram keeps the two methods apart.
+    samples = scrape(client)
+    for method in ("priced", "exact"):
+        labels = {"states": "<1k", "criterion": "discounted", "method": method}
+        assert value(samples, "stockrelay_solve_seconds_count", **labels) == 1
 
 
 def test_a_mode_change_serves_the_old_method_marked_stale_until_solved(
