@@ -140,6 +140,12 @@ def _parser() -> argparse.ArgumentParser:
         "--warmup", type=int, default=30, help="days simulated before measuring (0..365)"
     )
     simulate.add_argument("--seed", type=int, help="seed of the random days (default: random)")
+    simulate.add_argument(
+        "--mode",
+        choices=[mode.value for mode in SolveMode],
+        default="auto",
+        help="how the policy simulated is solved, as for `stockrelay solve` (default: auto)",
+    )
     simulate.add_argument("--json", action="store_true", help="print the report as JSON")
     simulate.set_defaults(handler=_simulate)
 
@@ -523,7 +529,8 @@ def _simulate(args: argparse.Namespace) -> int:
             )
         ) from exc
     try:
-        report = run_simulation(spec, params, progress=ProgressLines())
+        method = resolve_method(spec, args.mode, SizeLimits())
+        report = run_simulation(spec, params, progress=ProgressLines(), method=method)
     except AnalysisInputError as exc:
         raise UsageError("; ".join(detail for _, detail in exc.errors)) from exc
     except (SolverError, ValueError) as exc:

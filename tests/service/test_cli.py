@@ -245,6 +245,19 @@ def test_simulate_prints_one_row_per_policy(capsys: pytest.CaptureFixture[str]) 
     assert rows["optimal"].endswith("  -")
 
 
+def test_simulate_takes_the_solving_mode(capsys: pytest.CaptureFixture[str]) -> None:
+    """--mode as for `solve`: priced simulates the priced policy in place of the optimal one;
+    auto keeps a network within the exact limits exact."""
+    names = {}
+    for mode in ("priced", "auto"):
+        argv = ["simulate", str(DEMO), *SHORT, "--seed", "3", "--mode", mode, "--json"]
+        code, document, stderr = run(argv, capsys)
+        assert (code, stderr) == (0, "")
+        names[mode] = [policy["name"] for policy in json.loads(document)["policies"]]
+    assert names["priced"][0] == "priced" and "optimal" not in names["priced"]
+    assert names["auto"][0] == "optimal" and "priced" not in names["auto"]
+
+
 def test_simulate_json_is_the_report_and_repeats_with_its_seed(
     capsys: pytest.CaptureFixture[str],
 ) -> None:
