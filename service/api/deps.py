@@ -13,10 +13,10 @@ from fastapi import Depends, Path, Request
 from sqlalchemy.orm import Session, sessionmaker
 from starlette.concurrency import run_in_threadpool
 
-from service import auth
+from service import auth, networks
 from service.auth import Identity, Scope
-from service.db.tables import Network
 from service.middleware import repeat_allowed
+from service.networks import Network
 from service.problems import (
     Forbidden,
     NotFound,
@@ -172,8 +172,8 @@ def get_network(
     session: Session, tenant_id: int, network_id: int, *, archived_ok: bool = False
 ) -> Network:
     """The tenant's network, or 404 (another tenant's network looks exactly like a missing one)."""
-    network = session.get(Network, network_id)
-    if network is None or network.tenant_id != tenant_id:
+    network = networks.tenant_network(session, tenant_id, network_id)
+    if network is None:
         raise NotFound(f"no network {network_id}")
     if network.archived and not archived_ok:
         raise NotFound(

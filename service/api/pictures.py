@@ -15,7 +15,7 @@ from sqlalchemy.orm import Session
 from service.api.deps import CacheDep, NetworkId, Reader, SessionDep, get_network
 from service.api.schemas.common import DEFAULT_CRITERION_RULE
 from service.codec import StoredPolicy
-from service.db.tables import Network
+from service.networks import Network
 from service.pictures import (
     ANNOTATE_MAX_CELLS,
     ImageFormat,
