@@ -15,7 +15,15 @@ from sqlalchemy.orm import Session
 from starlette.concurrency import run_in_threadpool
 
 from service import history
-from service.api.deps import NetworkId, Reader, SessionDep, SettingsDep, Writer, get_network
+from service.api.deps import (
+    NetworkId,
+    Reader,
+    SessionDep,
+    SettingsDep,
+    Writer,
+    get_network,
+    media_type,
+)
 from service.api.schemas.calibration import (
     MAX_HISTORY_ROWS,
     AutoApplyOut,
@@ -165,7 +173,7 @@ async def upload_history(
     it. With an automatic-apply threshold configured, a new estimate that moves a parameter by
     more than the threshold becomes the next version at once."""
     raw = await request.body()
-    media = request.headers.get("content-type", "application/json").split(";")[0].strip()
+    media = media_type(request)
     if media not in ("text/csv", "application/json", ""):
         raise UnsupportedMedia(f"send application/json or text/csv, not {media}")
     # Parsing and the database work block: off the event loop, in one hop.

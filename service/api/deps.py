@@ -7,7 +7,7 @@ import hashlib
 import threading
 import time
 from collections.abc import Iterator
-from typing import Annotated
+from typing import Annotated, Any
 
 from fastapi import Depends, Path, Request
 from sqlalchemy.orm import Session, sessionmaker
@@ -39,6 +39,8 @@ __all__ = [
     "SettingsDep",
     "Writer",
     "get_network",
+    "id_path",
+    "media_type",
     "sessions_of",
 ]
 
@@ -72,8 +74,15 @@ async def get_item_cache(request: Request) -> PolicyCache:
 
 # Ids are 32-bit in the database; larger ones can only be absent (and must not overflow a driver).
 MAX_ID = 2_147_483_647
-NetworkId = Annotated[int, Path(ge=1, le=MAX_ID, description="A network's id.")]
-JobId = Annotated[int, Path(ge=1, le=MAX_ID, description="A solve job's id.")]
+
+
+def id_path(description: str) -> Any:
+    """A path parameter holding a row's id, described as `description`."""
+    return Path(ge=1, le=MAX_ID, description=description)
+
+
+NetworkId = Annotated[int, id_path("A network's id.")]
+JobId = Annotated[int, id_path("A solve job's id.")]
 
 SettingsDep = Annotated[Settings, Depends(get_settings)]
 # scope="function": the transaction commits before the response is sent, so a client that
@@ -166,6 +175,11 @@ def require(scope: Scope) -> Require:
 Reader = Annotated[Identity, Depends(require("read"))]
 Writer = Annotated[Identity, Depends(require("write"))]
 Admin = Annotated[Identity, Depends(require("admin"))]
+
+
+def media_type(request: Request) -> str:
+    """The media type of the request's body, without parameters (JSON when not given)."""
+    return request.headers.get("content-type", "application/json").split(";")[0].strip()
 
 
 def get_network(
