@@ -4,7 +4,7 @@ jobs shared by the workers."""
 from __future__ import annotations
 
 from collections.abc import Callable
-from typing import Annotated
+from typing import Annotated, Any
 
 from fastapi import APIRouter, Request, Response, status
 from fastapi.concurrency import run_in_threadpool
@@ -27,7 +27,7 @@ from service.api.schemas.assortments import (
     HistoryUploadOut,
     LocationHistoryCountsOut,
 )
-from service.assortment_history import RunSummary
+from service.assortment_history import HistoryCounts, RunSummary
 from service.errors import NoItemsError
 from service.estimates import CalibrationOverrides
 from service.problems import PROBLEM_RESPONSES, Conflict, NotFound, UnsupportedMedia
@@ -104,27 +104,26 @@ def history_summary(
     """Days of history stored for the items, in all and per location."""
     assortment = find_or_404(session, caller.tenant_id, assortment_id)
     summary = assortment_history.history_summary(session, assortment)
-    total = summary.total
     return AssortmentHistoryOut(
         assortment_id=assortment.id,
         items=summary.items,
-        rows=total.rows,
-        days=total.days,
-        items_with_history=total.items,
-        first_date=total.first_date,
-        last_date=total.last_date,
+        **_counts_out(summary.total),
         locations=[
-            LocationHistoryCountsOut(
-                location=location,
-                rows=counts.rows,
-                days=counts.days,
-                items_with_history=counts.items,
-                first_date=counts.first_date,
-                last_date=counts.last_date,
-            )
+            LocationHistoryCountsOut(location=location, **_counts_out(counts))
             for location, counts in summary.locations.items()
         ],
     )
+
+
+def _counts_out(counts: HistoryCounts) -> dict[str, Any]:
+    """The fields of HistoryCountsOut."""
+    return {
+        "rows": counts.rows,
+        "days": counts.days,
+        "items_with_history": counts.items,
+        "first_date": counts.first_date,
+        "last_date": counts.last_date,
+    }
 
 
 def _run_out(summary: RunSummary) -> CalibrationRunOut:

@@ -7,6 +7,7 @@ from __future__ import annotations
 import csv
 import io
 import json
+from dataclasses import asdict
 from typing import Annotated, Any
 
 from fastapi import APIRouter, Depends, Query, Request, Response, status
@@ -290,13 +291,7 @@ def _calibration_out(network_id: int, proposal: Proposal) -> CalibrationOut:
         would_create_version=proposal.based_on.number + 1,
         calibrated_locations=len(proposal.calibrated),
         largest_change=proposal.largest_change,
-        settings=CalibrationSettingsIn(
-            window_days=options.window_days,
-            half_life_days=options.half_life_days,
-            confidence=options.confidence,
-            auto_apply_threshold=options.auto_apply_threshold,
-            receipts_sell_same_day=options.receipts_sell_same_day,
-        ),
+        settings=CalibrationSettingsIn(**asdict(options)),
         locations=locations,
         spec=proposal.spec,
         spec_hash=proposal.spec_hash,
@@ -375,14 +370,7 @@ def get_calibration_settings(
 ) -> CalibrationSettingsOut:
     network = get_network(session, caller.tenant_id, network_id)
     options = options_for(session, network.id)
-    return CalibrationSettingsOut(
-        network_id=network.id,
-        window_days=options.window_days,
-        half_life_days=options.half_life_days,
-        confidence=options.confidence,
-        auto_apply_threshold=options.auto_apply_threshold,
-        receipts_sell_same_day=options.receipts_sell_same_day,
-    )
+    return CalibrationSettingsOut(network_id=network.id, **asdict(options))
 
 
 @router.put("/calibration/settings", response_model=CalibrationSettingsOut)
@@ -391,15 +379,5 @@ def put_calibration_settings(
 ) -> CalibrationSettingsOut:
     """How estimates are made, and the threshold for applying them automatically."""
     network = get_network(session, caller.tenant_id, network_id)
-    save_options(
-        session,
-        network,
-        CalibrationOptions(
-            window_days=body.window_days,
-            half_life_days=body.half_life_days,
-            confidence=body.confidence,
-            auto_apply_threshold=body.auto_apply_threshold,
-            receipts_sell_same_day=body.receipts_sell_same_day,
-        ),
-    )
+    save_options(session, network, CalibrationOptions(**body.model_dump()))
     return CalibrationSettingsOut(network_id=network.id, **body.model_dump())
