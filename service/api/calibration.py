@@ -234,18 +234,7 @@ def history_summary(network_id: NetworkId, session: SessionDep, caller: Reader) 
 
 
 def _estimate(estimate: CountEstimate) -> EstimateOut:
-    return EstimateOut(
-        family=estimate.family,
-        mean=estimate.mean,
-        mean_interval=estimate.mean_interval,
-        variance=estimate.variance,
-        variance_interval=estimate.variance_interval,
-        naive_mean=estimate.naive_mean,
-        p_value=estimate.p_value,
-        selection=estimate.selection,
-        confidence=estimate.confidence,
-        effective_days=estimate.effective_days,
-    )
+    return EstimateOut.model_validate(estimate, from_attributes=True)
 
 
 def _weekday(effect: WeekdayEffect | None) -> WeekdayTestOut | None:
