@@ -49,6 +49,7 @@ __all__ = [
     "DEFAULT_ITEMS_PER_CHUNK",
     "LARGEST_CHANGES",
     "ChunkEstimates",
+    "HistoryCounts",
     "HistoryStored",
     "HistorySummary",
     "RunSummary",
@@ -147,14 +148,17 @@ def store_history(
     )
 
 
+# Rows, days, items with history, first and last date: of the assortment or one location.
+HistoryCounts = store.HistoryCounts
+
+
 @dataclass(frozen=True)
 class HistorySummary:
-    """The assortment's history in all and per location (service.db.assortments
-    HistoryCounts), and how many items it has."""
+    """The assortment's history in all and per location, and how many items it has."""
 
     items: int
-    total: store.HistoryCounts
-    locations: dict[str, store.HistoryCounts]
+    total: HistoryCounts
+    locations: dict[str, HistoryCounts]
 
 
 def history_summary(session: Session, assortment: Assortment) -> HistorySummary:

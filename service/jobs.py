@@ -30,6 +30,8 @@ from solver import NetworkSpec
 from solver.build import check_size
 
 __all__ = [
+    "NetworkVersion",
+    "SolveJob",
     "WhatIfAnswer",
     "find_analysis",
     "solve_job",

@@ -37,14 +37,23 @@ from solver import NetworkSpec, SizeLimits
 from solver.result import CRITERIA
 
 __all__ = [
+    "Network",
+    "NetworkSolves",
+    "NetworkVersion",
     "Written",
     "add_network_version",
     "archive_network",
     "create_network",
     "import_network",
+    "network_state",
     "network_states",
+    "tenant_network",
     "versions_of",
 ]
+
+# What the use cases return: the rows of a network and of one of its versions, and a network
+# with its current version and the solve state of each criterion.
+NetworkSolves = reporting.NetworkSolves
 
 
 @dataclass(frozen=True)
@@ -215,9 +224,27 @@ def import_network(
     )
 
 
+def tenant_network(session: Session, tenant_id: int, network_id: int) -> Network | None:
+    """The tenant's network of that id, archived or not; None when there is none (another
+    tenant's network is none of the caller's)."""
+    network = session.get(Network, network_id)
+    if network is None or network.tenant_id != tenant_id:
+        return None
+    return network
+
+
+def network_state(session: Session, network: Network) -> NetworkSolves:
+    """`network` with its current version and the solve state of each criterion (archived or
+    not)."""
+    [solves] = reporting.solve_states(
+        session, tenant_id=network.tenant_id, network_id=network.id, include_archived=True
+    )
+    return solves
+
+
 def network_states(
     session: Session, tenant_id: int, *, include_archived: bool = False
-) -> list[reporting.NetworkSolves]:
+) -> list[NetworkSolves]:
     """Each of the tenant's networks with its current version and the solve state of each
     criterion, in three statements whatever the number of networks (service.db.reporting).
     Items of assortments are left out: their assortment lists them."""

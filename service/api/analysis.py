@@ -26,7 +26,7 @@ from service.api.schemas.analysis import (
     WhatIfOut,
     WhatIfResultOut,
 )
-from service.db.tables import NetworkVersion, SolveJob
+from service.jobs import NetworkVersion, SolveJob
 from service.vocabulary import JobKind
 
 router = APIRouter(prefix="/v1/networks/{network_id}", tags=["analysis"])

@@ -11,11 +11,10 @@ from typing import Annotated, Any
 
 from fastapi import APIRouter, Header, Path, Query, Request, Response
 from fastapi.concurrency import run_in_threadpool
-from sqlalchemy.exc import IntegrityError
 
 from service import assortment_closing as closing
-from service.api.assortments import AssortmentId, find_or_404, read_lines
-from service.api.deps import ItemCacheDep, Reader, SessionDep, SettingsDep, Writer
+from service.api.assortments import AssortmentId, find_or_404, read_lines, refused, storing_whole
+from service.api.deps import ItemCacheDep, Reader, SessionDep, SettingsDep, Writer, media_type
 from service.api.schemas.assortments import (
     ClosingReportOut,
     ClosingStateOut,
@@ -26,7 +25,7 @@ from service.api.schemas.assortments import (
 )
 from service.assortments import Assortment, layout_of
 from service.errors import ClosingCountsError
-from service.problems import PROBLEM_RESPONSES, Conflict, InvalidInput, NotFound, UnsupportedMedia
+from service.problems import PROBLEM_RESPONSES, InvalidInput, NotFound, UnsupportedMedia
 from solver import InvalidStockError
 
 router = APIRouter(prefix="/v1/assortments/{assortment_id}", tags=["assortments"])
@@ -95,7 +94,7 @@ def _parse_csv(lines: list[str]) -> dict[str, tuple[str, int]]:
         else:
             counts[code] = (f"{where}/units", int(text))
     if problems:
-        raise InvalidInput(_refused(problems), problems[:100])
+        raise refused("report", problems, listed=100)
     return counts
 
 
@@ -113,15 +112,8 @@ def _parse_json(lines: list[str]) -> dict[str, tuple[str, int]]:
         if not isinstance(units, int) or isinstance(units, bool)
     ]
     if problems:
-        raise InvalidInput(_refused(problems), problems[:100])
+        raise refused("report", problems, listed=100)
     return {code: (f"/counts/{code}", units) for code, units in counts.items()}
-
-
-def _refused(problems: list[tuple[str, str]]) -> str:
-    return (
-        f"the report was refused and nothing of it stored: {len(problems)} problem(s), the "
-        f"first at {problems[0][0] or 'the top'}: {problems[0][1]}"
-    )
 
 
 @router.put(
@@ -150,7 +142,7 @@ async def report_closing(
     """One location's closing stock of every item, as CSV (item,units) or JSON; a repeat
     replaces it until the night's pick lists are issued. The last location's report issues
     them."""
-    media = request.headers.get("content-type", "application/json").split(";")[0].strip()
+    media = media_type(request)
     if media not in ("text/csv", "application/json"):
         raise UnsupportedMedia(f"send text/csv or application/json, not {media}")
     lines = await read_lines(request, settings.max_upload_bytes)
@@ -160,25 +152,21 @@ async def report_closing(
         _location(assortment, location)
         counts = _parse_csv(lines) if media == "text/csv" else _parse_json(lines)
         day = business_date or closing.business_date_of(assortment)
-        try:
-            with session.begin_nested():
-                stored = closing.report_counts(
-                    session,
-                    cache,
-                    assortment,
-                    location,
-                    day,
-                    counts,
-                    correction=correction,
-                    key_prefix=caller.key_prefix,
-                )
-        except ClosingCountsError as exc:
-            raise InvalidInput(_refused(exc.errors), exc.errors) from exc
-        except IntegrityError as exc:
-            raise Conflict(
-                "another report for this location and night arrived at the same moment; send "
-                "this one again (a repeat replaces it)"
-            ) from exc
+        conflict = (
+            "another report for this location and night arrived at the same moment; send this "
+            "one again (a repeat replaces it)"
+        )
+        with storing_whole(session, "report", conflict):
+            stored = closing.report_counts(
+                session,
+                cache,
+                assortment,
+                location,
+                day,
+                counts,
+                correction=correction,
+                key_prefix=caller.key_prefix,
+            )
         return ClosingReportOut(
             assortment_id=assortment.id,
             location=location,
@@ -312,7 +300,7 @@ def recommend_items(
     try:
         plan = closing.recommend_items(session, cache, assortment, body.stocks, day)
     except ClosingCountsError as exc:
-        raise InvalidInput(_refused(exc.errors), exc.errors) from exc
+        raise refused("report", exc.errors) from exc
     except InvalidStockError as exc:
         raise InvalidInput(str(exc), [("/stocks", str(exc))]) from exc
     names = plan.locations

@@ -4,11 +4,10 @@ jobs shared by the workers."""
 from __future__ import annotations
 
 from collections.abc import Callable
-from typing import Annotated
+from typing import Annotated, Any
 
-from fastapi import APIRouter, Path, Request, Response, status
+from fastapi import APIRouter, Request, Response, status
 from fastapi.concurrency import run_in_threadpool
-from sqlalchemy.exc import IntegrityError
 
 from service import assortment_history, history_upload
 from service.api.assortments import (
@@ -16,9 +15,9 @@ from service.api.assortments import (
     bulk_upload_doc,
     find_or_404,
     read_lines,
-    refused_upload,
+    storing_whole,
 )
-from service.api.deps import MAX_ID, Reader, SessionDep, SettingsDep, Writer
+from service.api.deps import Reader, SessionDep, SettingsDep, Writer, id_path, media_type
 from service.api.schemas.assortments import (
     AssortmentHistoryOut,
     CalibrationChangeOut,
@@ -28,14 +27,14 @@ from service.api.schemas.assortments import (
     HistoryUploadOut,
     LocationHistoryCountsOut,
 )
-from service.assortment_history import RunSummary
-from service.errors import ItemUploadError, NoItemsError
+from service.assortment_history import HistoryCounts, RunSummary
+from service.errors import NoItemsError
 from service.estimates import CalibrationOverrides
 from service.problems import PROBLEM_RESPONSES, Conflict, NotFound, UnsupportedMedia
 
 router = APIRouter(prefix="/v1/assortments", tags=["assortments"])
 
-RunId = Annotated[int, Path(ge=1, le=MAX_ID, description="The calibration run's id.")]
+RunId = Annotated[int, id_path("The calibration run's id.")]
 
 _CSV_EXAMPLE = (
     "date,item,location,units_sold,stock_at_open,units_received\n"
@@ -63,7 +62,7 @@ async def upload_history(
     stock_at_open,units_received`), JSON lines (a row per line) or `{"rows": [...]}`. All or
     nothing: any bad row refuses the whole upload with every problem's line; a day stored
     already is replaced."""
-    media = request.headers.get("content-type", "application/json").split(";")[0].strip()
+    media = media_type(request)
     parsers: dict[str, Callable[[list[str]], list[history_upload.HistoryLine]]] = {
         "text/csv": history_upload.parse_csv,
         "application/x-ndjson": history_upload.parse_json_lines,
@@ -80,17 +79,13 @@ async def upload_history(
 
     def work() -> HistoryUploadOut:
         assortment = find_or_404(session, caller.tenant_id, assortment_id)
-        try:
+        conflict = (
+            "another upload stored some of these days at the same moment; send this one again "
+            "(a repeat replaces them)"
+        )
+        with storing_whole(session, "upload", conflict):
             rows = parsers[media](lines)
-            with session.begin_nested():
-                stored = assortment_history.store_history(session, assortment, rows)
-        except ItemUploadError as exc:
-            raise refused_upload(exc) from exc
-        except IntegrityError as exc:
-            raise Conflict(
-                "another upload stored some of these days at the same moment; send this one "
-                "again (a repeat replaces them)"
-            ) from exc
+            stored = assortment_history.store_history(session, assortment, rows)
         return HistoryUploadOut(
             assortment_id=assortment.id,
             received=stored.received,
@@ -109,27 +104,26 @@ def history_summary(
     """Days of history stored for the items, in all and per location."""
     assortment = find_or_404(session, caller.tenant_id, assortment_id)
     summary = assortment_history.history_summary(session, assortment)
-    total = summary.total
     return AssortmentHistoryOut(
         assortment_id=assortment.id,
         items=summary.items,
-        rows=total.rows,
-        days=total.days,
-        items_with_history=total.items,
-        first_date=total.first_date,
-        last_date=total.last_date,
+        **_counts_out(summary.total),
         locations=[
-            LocationHistoryCountsOut(
-                location=location,
-                rows=counts.rows,
-                days=counts.days,
-                items_with_history=counts.items,
-                first_date=counts.first_date,
-                last_date=counts.last_date,
-            )
+            LocationHistoryCountsOut(location=location, **_counts_out(counts))
             for location, counts in summary.locations.items()
         ],
     )
+
+
+def _counts_out(counts: HistoryCounts) -> dict[str, Any]:
+    """The fields of HistoryCountsOut."""
+    return {
+        "rows": counts.rows,
+        "days": counts.days,
+        "items_with_history": counts.items,
+        "first_date": counts.first_date,
+        "last_date": counts.last_date,
+    }
 
 
 def _run_out(summary: RunSummary) -> CalibrationRunOut:

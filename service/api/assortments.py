@@ -3,16 +3,17 @@
 from __future__ import annotations
 
 import codecs
-from collections.abc import Callable
+from collections.abc import Callable, Iterator, Sequence
+from contextlib import contextmanager
 from typing import Annotated, Any
 
-from fastapi import APIRouter, Path, Query, Request, Response, status
+from fastapi import APIRouter, Query, Request, Response, status
 from fastapi.concurrency import run_in_threadpool
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
 from service import assortments
-from service.api.deps import MAX_ID, Reader, SessionDep, SettingsDep, Writer
+from service.api.deps import Reader, SessionDep, SettingsDep, Writer, id_path, media_type
 from service.api.schemas.assortments import (
     AssortmentCreate,
     AssortmentOut,
@@ -25,7 +26,7 @@ from service.api.schemas.assortments import (
 from service.api.versions import IfMatch, check_if_match, etag
 from service.assortment_spec import Layout
 from service.assortments import Assortment
-from service.errors import ItemUploadError
+from service.errors import ClosingCountsError, ItemUploadError
 from service.item_upload import (
     ParsedItem,
     parse_csv,
@@ -43,7 +44,7 @@ from service.problems import (
 
 router = APIRouter(prefix="/v1/assortments", tags=["assortments"])
 
-AssortmentId = Annotated[int, Path(ge=1, le=MAX_ID, description="The assortment's id.")]
+AssortmentId = Annotated[int, id_path("The assortment's id.")]
 
 _CSV_EXAMPLE = (
     "item,location,capacity,unit_margin,holding_cost,demand_mean,demand_variance,"
@@ -174,7 +175,7 @@ def update_layout(
                 session, assortment, body.layout(), settings.size_limits
             )
     except ItemUploadError as exc:
-        raise refused_upload(exc) from exc
+        raise refused("upload", exc.errors) from exc
     response.headers["ETag"] = etag(assortment.layout_version)
     return _stored_out(assortment.id, stored)
 
@@ -236,13 +237,31 @@ def _stored_out(assortment_id: int, stored: assortments.ItemsStored) -> ItemsSto
     )
 
 
-def refused_upload(exc: ItemUploadError) -> InvalidInput:
-    first = exc.errors[0]
+def refused(
+    what: str, problems: Sequence[tuple[str, str]], *, listed: int | None = None
+) -> InvalidInput:
+    """422 for an upload refused whole (`what`: "upload", "report"): how many problems, the
+    first, and each problem by pointer (the first `listed` of them)."""
+    where, text = problems[0]
     return InvalidInput(
-        f"the upload was refused and nothing of it stored: {len(exc.errors)} problem(s), "
-        f"the first at {first[0] or 'the top'}: {first[1]}",
-        exc.errors,
+        f"the {what} was refused and nothing of it stored: {len(problems)} problem(s), "
+        f"the first at {where or 'the top'}: {text}",
+        list(problems[:listed]),
     )
+
+
+@contextmanager
+def storing_whole(session: Session, what: str, conflict: str) -> Iterator[None]:
+    """Stores an upload (`what`: "upload", "report") all or nothing, in a savepoint: one refused
+    (ItemUploadError, ClosingCountsError) answers 422 with every problem, one racing another
+    write of the same rows 409 saying `conflict`."""
+    try:
+        with session.begin_nested():
+            yield
+    except (ItemUploadError, ClosingCountsError) as exc:
+        raise refused(what, exc.errors) from exc
+    except IntegrityError as exc:
+        raise Conflict(conflict) from exc
 
 
 @router.post(
@@ -261,7 +280,7 @@ async def upload_items(
     """Create or update items in bulk: CSV (a row per item and location), JSON lines (an item
     per line) or `{"items": [...]}`. All or nothing: any bad row refuses the whole upload with
     every problem's line; items whose numbers did not change keep their version."""
-    media = request.headers.get("content-type", "application/json").split(";")[0].strip()
+    media = media_type(request)
     parsers: dict[str, Callable[[list[str], Layout], list[ParsedItem]]] = {
         "text/csv": parse_csv,
         "application/x-ndjson": parse_json_lines,
@@ -279,17 +298,13 @@ async def upload_items(
     def work() -> ItemsStoredOut:
         assortment = find_or_404(session, caller.tenant_id, assortment_id)
         layout = assortments.layout_of(assortment)
-        try:
+        conflict = (
+            "another upload or network took some of these items' names at the same moment "
+            f"(networks are named {assortment.name}/<item>); send the upload again"
+        )
+        with storing_whole(session, "upload", conflict):
             parsed = parsers[media](lines, layout)
-            with session.begin_nested():
-                stored = assortments.store_items(session, assortment, parsed, settings.size_limits)
-        except ItemUploadError as exc:
-            raise refused_upload(exc) from exc
-        except IntegrityError as exc:
-            raise Conflict(
-                "another upload or network took some of these items' names at the same moment "
-                f"(networks are named {assortment.name}/<item>); send the upload again"
-            ) from exc
+            stored = assortments.store_items(session, assortment, parsed, settings.size_limits)
         return _stored_out(assortment.id, stored)
 
     return await run_in_threadpool(work)

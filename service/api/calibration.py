@@ -7,6 +7,7 @@ from __future__ import annotations
 import csv
 import io
 import json
+from dataclasses import asdict
 from typing import Annotated, Any
 
 from fastapi import APIRouter, Depends, Query, Request, Response, status
@@ -15,7 +16,15 @@ from sqlalchemy.orm import Session
 from starlette.concurrency import run_in_threadpool
 
 from service import history
-from service.api.deps import NetworkId, Reader, SessionDep, SettingsDep, Writer, get_network
+from service.api.deps import (
+    NetworkId,
+    Reader,
+    SessionDep,
+    SettingsDep,
+    Writer,
+    get_network,
+    media_type,
+)
 from service.api.schemas.calibration import (
     MAX_HISTORY_ROWS,
     AutoApplyOut,
@@ -165,7 +174,7 @@ async def upload_history(
     it. With an automatic-apply threshold configured, a new estimate that moves a parameter by
     more than the threshold becomes the next version at once."""
     raw = await request.body()
-    media = request.headers.get("content-type", "application/json").split(";")[0].strip()
+    media = media_type(request)
     if media not in ("text/csv", "application/json", ""):
         raise UnsupportedMedia(f"send application/json or text/csv, not {media}")
     # Parsing and the database work block: off the event loop, in one hop.
@@ -225,18 +234,7 @@ def history_summary(network_id: NetworkId, session: SessionDep, caller: Reader) 
 
 
 def _estimate(estimate: CountEstimate) -> EstimateOut:
-    return EstimateOut(
-        family=estimate.family,
-        mean=estimate.mean,
-        mean_interval=estimate.mean_interval,
-        variance=estimate.variance,
-        variance_interval=estimate.variance_interval,
-        naive_mean=estimate.naive_mean,
-        p_value=estimate.p_value,
-        selection=estimate.selection,
-        confidence=estimate.confidence,
-        effective_days=estimate.effective_days,
-    )
+    return EstimateOut.model_validate(estimate, from_attributes=True)
 
 
 def _weekday(effect: WeekdayEffect | None) -> WeekdayTestOut | None:
@@ -282,13 +280,7 @@ def _calibration_out(network_id: int, proposal: Proposal) -> CalibrationOut:
         would_create_version=proposal.based_on.number + 1,
         calibrated_locations=len(proposal.calibrated),
         largest_change=proposal.largest_change,
-        settings=CalibrationSettingsIn(
-            window_days=options.window_days,
-            half_life_days=options.half_life_days,
-            confidence=options.confidence,
-            auto_apply_threshold=options.auto_apply_threshold,
-            receipts_sell_same_day=options.receipts_sell_same_day,
-        ),
+        settings=CalibrationSettingsIn(**asdict(options)),
         locations=locations,
         spec=proposal.spec,
         spec_hash=proposal.spec_hash,
@@ -367,14 +359,7 @@ def get_calibration_settings(
 ) -> CalibrationSettingsOut:
     network = get_network(session, caller.tenant_id, network_id)
     options = options_for(session, network.id)
-    return CalibrationSettingsOut(
-        network_id=network.id,
-        window_days=options.window_days,
-        half_life_days=options.half_life_days,
-        confidence=options.confidence,
-        auto_apply_threshold=options.auto_apply_threshold,
-        receipts_sell_same_day=options.receipts_sell_same_day,
-    )
+    return CalibrationSettingsOut(network_id=network.id, **asdict(options))
 
 
 @router.put("/calibration/settings", response_model=CalibrationSettingsOut)
@@ -383,15 +368,5 @@ def put_calibration_settings(
 ) -> CalibrationSettingsOut:
     """How estimates are made, and the threshold for applying them automatically."""
     network = get_network(session, caller.tenant_id, network_id)
-    save_options(
-        session,
-        network,
-        CalibrationOptions(
-            window_days=body.window_days,
-            half_life_days=body.half_life_days,
-            confidence=body.confidence,
-            auto_apply_threshold=body.auto_apply_threshold,
-            receipts_sell_same_day=body.receipts_sell_same_day,
-        ),
-    )
+    save_options(session, network, CalibrationOptions(**body.model_dump()))
     return CalibrationSettingsOut(network_id=network.id, **body.model_dump())

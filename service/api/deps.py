@@ -7,16 +7,16 @@ import hashlib
 import threading
 import time
 from collections.abc import Iterator
-from typing import Annotated
+from typing import Annotated, Any
 
 from fastapi import Depends, Path, Request
 from sqlalchemy.orm import Session, sessionmaker
 from starlette.concurrency import run_in_threadpool
 
-from service import auth
+from service import auth, networks
 from service.auth import Identity, Scope
-from service.db.tables import Network
 from service.middleware import repeat_allowed
+from service.networks import Network
 from service.problems import (
     Forbidden,
     NotFound,
@@ -39,6 +39,8 @@ __all__ = [
     "SettingsDep",
     "Writer",
     "get_network",
+    "id_path",
+    "media_type",
     "sessions_of",
 ]
 
@@ -72,8 +74,15 @@ async def get_item_cache(request: Request) -> PolicyCache:
 
 # Ids are 32-bit in the database; larger ones can only be absent (and must not overflow a driver).
 MAX_ID = 2_147_483_647
-NetworkId = Annotated[int, Path(ge=1, le=MAX_ID, description="A network's id.")]
-JobId = Annotated[int, Path(ge=1, le=MAX_ID, description="A solve job's id.")]
+
+
+def id_path(description: str) -> Any:
+    """A path parameter holding a row's id, described as `description`."""
+    return Path(ge=1, le=MAX_ID, description=description)
+
+
+NetworkId = Annotated[int, id_path("A network's id.")]
+JobId = Annotated[int, id_path("A solve job's id.")]
 
 SettingsDep = Annotated[Settings, Depends(get_settings)]
 # scope="function": the transaction commits before the response is sent, so a client that
@@ -168,12 +177,17 @@ Writer = Annotated[Identity, Depends(require("write"))]
 Admin = Annotated[Identity, Depends(require("admin"))]
 
 
+def media_type(request: Request) -> str:
+    """The media type of the request's body, without parameters (JSON when not given)."""
+    return request.headers.get("content-type", "application/json").split(";")[0].strip()
+
+
 def get_network(
     session: Session, tenant_id: int, network_id: int, *, archived_ok: bool = False
 ) -> Network:
     """The tenant's network, or 404 (another tenant's network looks exactly like a missing one)."""
-    network = session.get(Network, network_id)
-    if network is None or network.tenant_id != tenant_id:
+    network = networks.tenant_network(session, tenant_id, network_id)
+    if network is None:
         raise NotFound(f"no network {network_id}")
     if network.archived and not archived_ok:
         raise NotFound(

@@ -5,11 +5,9 @@ from __future__ import annotations
 from fastapi import APIRouter, Request
 from fastapi.responses import JSONResponse
 from sqlalchemy import Engine
-from sqlalchemy.exc import SQLAlchemyError
 
-from service.db.migrate import require_migrated
-from service.errors import DatabaseNotMigratedError
 from service.problems import PROBLEM_JSON, problem_body
+from service.readiness import not_ready_reason
 
 router = APIRouter(tags=["health"])
 
@@ -29,10 +27,8 @@ def readyz(request: Request) -> JSONResponse:
     engine: Engine = request.app.state.engine
     token = request.app.state.settings.run_token
     ours = {RUN_HEADER: token} if token else {}
-    try:
-        require_migrated(engine)
-    except (DatabaseNotMigratedError, SQLAlchemyError) as exc:
-        detail = str(exc) if isinstance(exc, DatabaseNotMigratedError) else "database unreachable"
+    detail = not_ready_reason(engine)
+    if detail is not None:
         body = problem_body(request, 503, "not-ready", "Not ready", detail)
         headers = {"Retry-After": "5", **ours}
         return JSONResponse(body, 503, media_type=PROBLEM_JSON, headers=headers)

@@ -5,6 +5,7 @@ Routes are plain `def`: drawing is CPU-bound and runs in the thread pool."""
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Annotated, Any
 
@@ -15,7 +16,7 @@ from sqlalchemy.orm import Session
 from service.api.deps import CacheDep, NetworkId, Reader, SessionDep, get_network
 from service.api.schemas.common import DEFAULT_CRITERION_RULE
 from service.codec import StoredPolicy
-from service.db.tables import Network
+from service.networks import Network
 from service.pictures import (
     ANNOTATE_MAX_CELLS,
     ImageFormat,
@@ -120,6 +121,24 @@ def _phase(
     return result.phase_of(WEEKDAYS.index(day)), f", {day} night"
 
 
+@dataclass(frozen=True)
+class PictureSource:
+    """Where a picture's policy comes from: the caller's network, read in the request's session
+    through the policy cache."""
+
+    session: Session
+    cache: PolicyCache
+    tenant_id: int
+    network_id: int
+
+
+async def picture_source(
+    network_id: NetworkId, session: SessionDep, cache: CacheDep, caller: Reader
+) -> PictureSource:
+    return PictureSource(session, cache, caller.tenant_id, network_id)
+
+
+SourceDep = Annotated[PictureSource, Depends(picture_source)]
 PlaneDep = Annotated[PlaneQuery, Depends(plane_query)]
 CriterionQuery = Annotated[Criterion | None, Query(description=DEFAULT_CRITERION_RULE)]
 Annotate = Annotated[
@@ -131,107 +150,87 @@ Annotate = Annotated[
 ]
 
 
-@router.get(
-    "/v1/networks/{network_id}/policy.svg",
-    response_class=Response,
-    responses=_picture_doc("svg", _MOVES),
-)
-def policy_svg(
-    network_id: NetworkId,
-    session: SessionDep,
-    cache: CacheDep,
-    caller: Reader,
-    plane: PlaneDep,
-    criterion: CriterionQuery = None,
-    annotate: Annotate = False,
-) -> Response:
-    return _moves(session, cache, caller.tenant_id, network_id, criterion, plane, annotate, "svg")
+def _moves_route(image_format: ImageFormat) -> Callable[..., Response]:
+    """The route drawing the net moves in `image_format`."""
+
+    def route(
+        source: SourceDep,
+        plane: PlaneDep,
+        criterion: CriterionQuery = None,
+        annotate: Annotate = False,
+    ) -> Response:
+        drawing = _drawing(source, plane, criterion)
+        return _image(_moves(drawing, annotate, image_format), image_format, drawing.served)
+
+    return route
 
 
-@router.get(
-    "/v1/networks/{network_id}/policy.png",
-    response_class=Response,
-    responses=_picture_doc("png", _MOVES),
-)
-def policy_png(
-    network_id: NetworkId,
-    session: SessionDep,
-    cache: CacheDep,
-    caller: Reader,
-    plane: PlaneDep,
-    criterion: CriterionQuery = None,
-    annotate: Annotate = False,
-) -> Response:
-    return _moves(session, cache, caller.tenant_id, network_id, criterion, plane, annotate, "png")
+def _values_route(image_format: ImageFormat) -> Callable[..., Response]:
+    """The route drawing the value in `image_format`."""
+
+    def route(source: SourceDep, plane: PlaneDep, criterion: CriterionQuery = None) -> Response:
+        drawing = _drawing(source, plane, criterion)
+        return _image(_values(drawing, image_format), image_format, drawing.served)
+
+    return route
 
 
-@router.get(
-    "/v1/networks/{network_id}/value.svg",
-    response_class=Response,
-    responses=_picture_doc("svg", _VALUES),
-)
-def value_svg(
-    network_id: NetworkId,
-    session: SessionDep,
-    cache: CacheDep,
-    caller: Reader,
-    plane: PlaneDep,
-    criterion: CriterionQuery = None,
-) -> Response:
-    return _values(session, cache, caller.tenant_id, network_id, criterion, plane, "svg")
+# One route per picture and format, named as the operation (policy_svg, value_png, ...).
+for _picture, _route, _what in (
+    ("policy", _moves_route, _MOVES),
+    ("value", _values_route, _VALUES),
+):
+    for _format in _MEDIA_TYPES:
+        router.add_api_route(
+            f"/v1/networks/{{network_id}}/{_picture}.{_format}",
+            _route(_format),
+            methods=["GET"],
+            name=f"{_picture}_{_format}",
+            response_class=Response,
+            responses=_picture_doc(_format, _what),
+        )
 
 
-@router.get(
-    "/v1/networks/{network_id}/value.png",
-    response_class=Response,
-    responses=_picture_doc("png", _VALUES),
-)
-def value_png(
-    network_id: NetworkId,
-    session: SessionDep,
-    cache: CacheDep,
-    caller: Reader,
-    plane: PlaneDep,
-    criterion: CriterionQuery = None,
-) -> Response:
-    return _values(session, cache, caller.tenant_id, network_id, criterion, plane, "png")
+@dataclass(frozen=True)
+class _Drawing:
+    """What a picture shows: the network, its served policy, the plane, and the phase with the
+    words for it in a title ("" for a stationary policy)."""
+
+    network: Network
+    served: ServedPolicy
+    plane: Plane
+    phase: int
+    night: str
 
 
-def _moves(
-    session: Session,
-    cache: PolicyCache,
-    tenant_id: int,
-    network_id: int,
-    criterion: str | None,
-    query: PlaneQuery,
-    annotate: bool,
-    image_format: ImageFormat,
-) -> Response:
-    network, served, plane = _served_plane(session, cache, tenant_id, network_id, criterion, query)
-    phase, night = _phase(session, network, served.result, query)
-    subject = f"version {served.version_number} · net moves, {served.criterion} policy{night}"
-    body = render_moves(
-        net_inflow_grid(served.result, plane, phase),
+def _drawing(source: PictureSource, query: PlaneQuery, criterion: str | None) -> _Drawing:
+    """The network (404), the served policy (503 before its solve) and the plane to draw (422
+    naming each bad parameter). A malformed `at` is refused before the policy is loaded."""
+    network = get_network(source.session, source.tenant_id, source.network_id)
+    fixed = parse_fixed_stock(query.at) if query.at is not None else {}
+    served = load_policy(source.session, source.cache, network, criterion)
+    plane = choose_plane(served.result, query.x, query.y, fixed)
+    phase, night = _phase(source.session, network, served.result, query)
+    return _Drawing(network, served, plane, phase, night)
+
+
+def _moves(drawing: _Drawing, annotate: bool, image_format: ImageFormat) -> bytes:
+    served, plane = drawing.served, drawing.plane
+    subject = (
+        f"version {served.version_number} · net moves, {served.criterion} policy{drawing.night}"
+    )
+    return render_moves(
+        net_inflow_grid(served.result, plane, drawing.phase),
         x_id=plane.x_id,
         y_id=plane.y_id,
-        title=caption(network.name, subject, plane),
+        title=caption(drawing.network.name, subject, plane),
         image_format=image_format,
         annotate=annotate,
     )
-    return _image(body, image_format, served)
 
 
-def _values(
-    session: Session,
-    cache: PolicyCache,
-    tenant_id: int,
-    network_id: int,
-    criterion: str | None,
-    query: PlaneQuery,
-    image_format: ImageFormat,
-) -> Response:
-    network, served, plane = _served_plane(session, cache, tenant_id, network_id, criterion, query)
-    phase, night = _phase(session, network, served.result, query)
+def _values(drawing: _Drawing, image_format: ImageFormat) -> bytes:
+    served, plane, night = drawing.served, drawing.plane, drawing.night
     subject = f"version {served.version_number} · value of the {served.criterion} policy{night}"
     label = value_label(served.criterion)
     if isinstance(served.result, PricedPolicy):
@@ -242,32 +241,14 @@ def _values(
         label = f"upper bound on the optimal value: {label}"
     if served.result.gain is not None:
         subject += f", profit per day {served.result.gain:,.2f}"
-    body = render_values(
-        value_grid(served.result, plane, phase),
+    return render_values(
+        value_grid(served.result, plane, drawing.phase),
         x_id=plane.x_id,
         y_id=plane.y_id,
-        title=caption(network.name, subject, plane),
+        title=caption(drawing.network.name, subject, plane),
         colour_label=label,
         image_format=image_format,
     )
-    return _image(body, image_format, served)
-
-
-def _served_plane(
-    session: Session,
-    cache: PolicyCache,
-    tenant_id: int,
-    network_id: int,
-    criterion: str | None,
-    query: PlaneQuery,
-) -> tuple[Network, ServedPolicy, Plane]:
-    """The network (404), the served policy (503 before its solve) and the plane to draw (422
-    naming each bad parameter). A malformed `at` is refused before the policy is loaded."""
-    network = get_network(session, tenant_id, network_id)
-    fixed = parse_fixed_stock(query.at) if query.at is not None else {}
-    served = load_policy(session, cache, network, criterion)
-    plane = choose_plane(served.result, query.x, query.y, fixed)
-    return network, served, plane
 
 
 def _image(body: bytes, image_format: ImageFormat, served: ServedPolicy) -> Response:

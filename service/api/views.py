@@ -7,6 +7,7 @@ from typing import Any
 
 from sqlalchemy.orm import Session
 
+from service import networks
 from service.api.schemas.jobs import JobOut
 from service.api.schemas.networks import NetworkCreated, NetworkOut, SolveState
 from service.api.schemas.recommendations import (
@@ -15,9 +16,9 @@ from service.api.schemas.recommendations import (
     RelayOut,
     TransferOut,
 )
-from service.db import reporting
-from service.db.tables import Network, SolveJob
+from service.jobs import SolveJob
 from service.moves import Relay, Transfer, relays_of, transfers_of
+from service.networks import Network, NetworkSolves
 from service.serving import ServedPolicy
 from solver import Recommendation
 from solver.priced_result import PricedPolicy
@@ -37,14 +38,11 @@ def network_out(
     session: Session, network: Network, jobs: list[SolveJob] | None = None
 ) -> NetworkOut | NetworkCreated:
     """One network's state (with `jobs`, the answer to the write that queued them)."""
-    [solves] = reporting.solve_states(
-        session, tenant_id=network.tenant_id, network_id=network.id, include_archived=True
-    )
-    return network_solves_out(solves, jobs)
+    return network_solves_out(networks.network_state(session, network), jobs)
 
 
 def network_solves_out(
-    solves: reporting.NetworkSolves, jobs: list[SolveJob] | None = None
+    solves: NetworkSolves, jobs: list[SolveJob] | None = None
 ) -> NetworkOut | NetworkCreated:
     network, version = solves.network, solves.version
     fields = {
