@@ -81,7 +81,7 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
 from solver.errors import InvalidStockError
-from solver.model import feasible_bounds, flow_costs, flow_endpoints
+from solver.model import feasible_bounds, flow_costs, flow_endpoints, lane_incidence
 from solver.priced_result import PricedPolicy
 from solver.result import PolicyResult, phase_of_weekday
 from solver.sharing import ItemChoices, SharedAllocation, allocate_shared_capacity
@@ -279,10 +279,7 @@ def _layout(policies: Sequence[ItemPolicy]) -> _Layout:
             )
     n = len(first.location_ids)
     lanes = np.array(first.lanes, dtype=np.int64).reshape(-1, 2)
-    incidence = np.zeros((lanes.shape[0], n), dtype=np.int64)
-    rows = np.arange(lanes.shape[0])
-    np.add.at(incidence, (rows, lanes[:, 0]), -1)
-    np.add.at(incidence, (rows, lanes[:, 1]), 1)
+    incidence = lane_incidence(lanes[:, 0], lanes[:, 1], n)
     return _Layout(first.location_ids, first.lanes, lanes[:, 0], lanes[:, 1], incidence)
 
 

@@ -147,7 +147,7 @@ from scipy.optimize import linprog
 from solver.build import SizeLimits, location_kernel, location_reward, n_phases
 from solver.errors import ModelTooLargeError
 from solver.evaluation import PolicyChain, choose_evaluation, evaluate_average, evaluate_discounted
-from solver.model import TransferModel
+from solver.model import TransferModel, lane_incidence
 from solver.priced_result import Certificate, PricedOptions, PricedPolicy, PricedProgress
 from solver.result import Criterion
 from solver.simulation import daily_laws, draw_counts
@@ -900,17 +900,6 @@ def _reward_range(net: _Network) -> tuple[float, float]:
     return low - max(costs), high
 
 
-def _incidence(
-    lane_from: NDArray[np.int64], lane_to: NDArray[np.int64], n_stores: int
-) -> NDArray[np.int64]:
-    """(L, N): +1 at each lane's receiver, -1 at its sender; flows @ it is the stock change."""
-    incidence = np.zeros((lane_from.size, n_stores), dtype=np.int64)
-    lanes = np.arange(lane_from.size)
-    incidence[lanes, lane_from] -= 1
-    incidence[lanes, lane_to] += 1
-    return incidence
-
-
 def _simulate(
     net: _Network,
     policy: PricedPolicy,
@@ -945,7 +934,7 @@ def _simulate(
             reward[d, i, :size] = rewards[d]
             value[d, i, :size] = following
             expected[d, i, :size] = kernels[d] @ following
-    incidence = _incidence(net.lane_from, net.lane_to, n)
+    incidence = lane_incidence(net.lane_from, net.lane_to, n)
     current = np.broadcast_to(stock, (replications, n)).copy()
     total = np.zeros(replications)
     block = 256
@@ -1218,7 +1207,7 @@ def _evaluation_model(spec: NetworkSpec, limits: SizeLimits | None) -> TransferM
 
 def _plan_chain(model: TransferModel, policy: PricedPolicy) -> PolicyChain:
     states = np.indices(model.shape).reshape(model.n_locations, -1).T.astype(np.int64)
-    incidence = _incidence(model.lane_from, model.lane_to, model.n_locations)
+    incidence = lane_incidence(model.lane_from, model.lane_to, model.n_locations)
     post = np.empty((model.n_phases, model.n_states), dtype=np.int64)
     reward = np.empty((model.n_phases, model.n_states))
     for d in range(model.n_phases):
