@@ -149,7 +149,7 @@ from solver.errors import ModelTooLargeError
 from solver.evaluation import PolicyChain, choose_evaluation, evaluate_average, evaluate_discounted
 from solver.model import TransferModel, lane_incidence
 from solver.priced_result import Certificate, PricedOptions, PricedPolicy, PricedProgress
-from solver.result import Criterion
+from solver.result import Criterion, lane_pairs
 from solver.simulation import daily_laws, draw_counts
 from solver.spec import LocationSpec, NetworkSpec
 
@@ -1104,7 +1104,7 @@ def solve_priced(
         method="priced",
         location_ids=tuple(spec.location_ids),
         capacities=tuple(int(c) for c in net.capacities),
-        lanes=tuple((int(a), int(b)) for a, b in zip(net.lane_from, net.lane_to, strict=True)),
+        lanes=lane_pairs(net.lane_from, net.lane_to),
         lane_costs=net.lane_costs,
         lane_limits=net.lane_limits,
         network_limit=net.network_limit,

@@ -22,8 +22,8 @@ from numpy.typing import NDArray
 from solver.errors import InvalidStockError
 from solver.result import (
     Alternative,
-    Criterion,
     Recommendation,
+    SolvedNetwork,
     check_stock,
     phase_of_weekday,
 )
@@ -125,7 +125,7 @@ class Certificate:
 
 
 @dataclass(frozen=True, eq=False)
-class PricedPolicy:
+class PricedPolicy(SolvedNetwork):
     """A price-decomposed transfer policy.
 
     lanes: (from, to) location indices; lane_costs (L,); lane_limits (P, L), units per lane on
@@ -151,12 +151,6 @@ class PricedPolicy:
         (solver.transfer_plan).
     """
 
-    criterion: Criterion
-    method: str
-    location_ids: tuple[str, ...]
-    capacities: tuple[int, ...]
-    lanes: tuple[tuple[int, int], ...]
-    lane_costs: NDArray[np.float64]
     lane_limits: NDArray[np.int64]
     network_limit: NDArray[np.int64]
     dispatch_costs: NDArray[np.float64]
@@ -179,10 +173,6 @@ class PricedPolicy:
     trade_limit: int | None = None
 
     # -- sizes and stocks --------------------------------------------------------------------
-
-    @property
-    def shape(self) -> tuple[int, ...]:
-        return tuple(c + 1 for c in self.capacities)
 
     @property
     def n_states(self) -> int:
