@@ -152,6 +152,7 @@ from solver.priced_result import Certificate, PricedOptions, PricedPolicy, Price
 from solver.result import Criterion, lane_pairs
 from solver.simulation import daily_laws, draw_counts
 from solver.spec import LocationSpec, NetworkSpec
+from solver.transfer_plan import PlanNetwork
 
 __all__ = [
     "PricedLimits",
@@ -220,18 +221,14 @@ def check_priced_size(spec: NetworkSpec, limits: PricedLimits | None = None) -> 
 
 
 @dataclass(frozen=True, eq=False)
-class _Network:
-    """Per-store kernels and rewards, and the lanes. Phase d holds day d + 1's laws and night
-    d's lane limits (solver.model)."""
+class _Network(PlanNetwork):
+    """The plan's network (capacities and lanes) with per-store kernels and rewards. Phase d
+    holds day d + 1's laws and night d's lane limits (solver.model)."""
 
     spec: NetworkSpec
     phases: int
-    capacities: NDArray[np.int64]
     kernels: tuple[NDArray[np.float64], ...]  # per store (P, C + 1, C + 1)
     rewards: tuple[NDArray[np.float64], ...]  # per store (P, C + 1)
-    lane_from: NDArray[np.int64]
-    lane_to: NDArray[np.int64]
-    lane_costs: NDArray[np.float64]
     lane_limits: NDArray[np.int64]  # (P, L), at most both ends' capacities, handling limits, U
     network_limit: NDArray[np.int64]  # (P,), -1 without a limit
     discount: float
@@ -239,14 +236,6 @@ class _Network:
     floors: NDArray[np.int64]  # (P, N), keep_at_least on night d
     most_out: NDArray[np.int64]  # (P, N), handling limits (the capacity where there is none)
     most_in: NDArray[np.int64]
-
-    @property
-    def n_stores(self) -> int:
-        return int(self.capacities.size)
-
-    @property
-    def n_lanes(self) -> int:
-        return int(self.lane_from.size)
 
     @property
     def units(self) -> NDArray[np.float64]:
@@ -934,7 +923,7 @@ def _simulate(
             reward[d, i, :size] = rewards[d]
             value[d, i, :size] = following
             expected[d, i, :size] = kernels[d] @ following
-    incidence = lane_incidence(net.lane_from, net.lane_to, n)
+    incidence = net.incidence()
     current = np.broadcast_to(stock, (replications, n)).copy()
     total = np.zeros(replications)
     block = 256
