@@ -477,19 +477,14 @@ def _exact_candidates(
     g = np.concatenate(pick_item)
     row = np.concatenate(pick_row)
     q = np.concatenate(pick_value)
-    idle = np.flatnonzero(action != 0)
-    local = np.concatenate([np.arange(items.size), idle, g])
-    table_rows = np.concatenate([action, np.zeros(idle.size, dtype=np.int64), row])
-    value = np.concatenate([chosen_value, without[idle], q])
-    return _Candidates(
-        item=items[local],
-        rank=np.concatenate(
-            [np.zeros(items.size, np.int64), np.ones(idle.size, np.int64), np.full(g.size, 2)]
-        ),
-        flows=policy.flows[table_rows],
-        value=value,
-        capped=np.minimum(value, chosen_value[local]),
-        cost=tables.cost[table_rows],
+    table_rows = np.concatenate([action, np.zeros(moving.size, dtype=np.int64), row])
+    return _ranked(
+        items,
+        moving,
+        g,
+        policy.flows[table_rows],
+        np.concatenate([chosen_value, without[moving], q]),
+        tables.cost[table_rows],
     )
 
 
@@ -524,7 +519,7 @@ def _priced_moves(
     flows = policy.plan_batch(stocks, phase=phase)
     value = policy.move_values(stocks, flows, phase=phase)
     without = policy.move_values(stocks, np.zeros_like(flows), phase=phase)
-    cost = flows @ policy.lane_costs + (flows > 0) @ policy.dispatch_costs
+    cost = flow_costs(flows, policy.lane_costs, policy.dispatch_costs)
     return flows, value, without, cost
 
 
@@ -556,24 +551,48 @@ def _priced_candidates(
     keep = (q > without[g]) & np.any(variants != plan[g], axis=1)
     g, variants, q = g[keep], variants[keep], q[keep]
     moving = np.flatnonzero(plan.any(axis=1))
-    local = np.concatenate([np.arange(items.size), moving, g])
-    flows = np.concatenate([plan, np.zeros((moving.size, plan.shape[1]), np.int64), variants])
-    value = np.concatenate([plan_value, without[moving], q])
-    return _Candidates(
-        item=items[local],
-        rank=np.concatenate(
-            [np.zeros(items.size, np.int64), np.ones(moving.size, np.int64), np.full(g.size, 2)]
-        ),
-        flows=flows,
-        value=value,
-        capped=np.minimum(value, plan_value[local]),
-        cost=np.concatenate(
+    return _ranked(
+        items,
+        moving,
+        g,
+        np.concatenate([plan, np.zeros((moving.size, plan.shape[1]), np.int64), variants]),
+        np.concatenate([plan_value, without[moving], q]),
+        np.concatenate(
             [
                 plan_cost,
                 np.zeros(moving.size),
-                variants @ policy.lane_costs + (variants > 0) @ policy.dispatch_costs,
+                flow_costs(variants, policy.lane_costs, policy.dispatch_costs),
             ]
         ),
+    )
+
+
+def _ranked(
+    items: NDArray[np.int64],
+    moving: NDArray[np.int64],
+    others: NDArray[np.int64],
+    flows: NDArray[np.int64],
+    value: NDArray[np.float64],
+    cost: NDArray[np.float64],
+) -> _Candidates:
+    """Candidates of `items` in three ranks: each item's own move (rank 0), moving nothing for
+    the items at positions `moving` (rank 1), then more moves of the items at positions
+    `others` (rank 2); flows, value and cost list them in that order. Each capped value is at
+    most the item's own move's value."""
+    local = np.concatenate([np.arange(items.size), moving, others])
+    return _Candidates(
+        item=items[local],
+        rank=np.concatenate(
+            [
+                np.zeros(items.size, np.int64),
+                np.ones(moving.size, np.int64),
+                np.full(others.size, 2),
+            ]
+        ),
+        flows=flows,
+        value=value,
+        capped=np.minimum(value, value[: items.size][local]),
+        cost=cost,
     )
 
 

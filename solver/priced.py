@@ -147,7 +147,7 @@ from scipy.optimize import linprog
 from solver.build import SizeLimits, location_kernel, location_reward, n_phases
 from solver.errors import ModelTooLargeError
 from solver.evaluation import PolicyChain, choose_evaluation, evaluate_average, evaluate_discounted
-from solver.model import TransferModel, lane_incidence
+from solver.model import TransferModel, flow_costs, lane_incidence
 from solver.priced_result import Certificate, PricedOptions, PricedPolicy, PricedProgress
 from solver.result import Criterion, lane_pairs
 from solver.simulation import daily_laws, draw_counts
@@ -937,7 +937,7 @@ def _simulate(
             flows = policy.plan_batch(current, phase=d)
             post = current + flows @ incidence
             current = np.minimum(post - np.minimum(post, demand[k]) + supply[k], caps)
-            cost = flows @ net.lane_costs + (flows > 0) @ net.dispatch_costs
+            cost = flow_costs(flows, net.lane_costs, net.dispatch_costs)
             profit = reward[d][stores, post].sum(axis=1) - cost
             surprise = (value[d][stores, current] - expected[d][stores, post]).sum(axis=1)
             total += weights[t] * (profit - step * surprise)

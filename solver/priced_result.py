@@ -20,6 +20,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from solver.errors import InvalidStockError
+from solver.model import flow_costs
 from solver.result import (
     Alternative,
     Recommendation,
@@ -381,7 +382,7 @@ class PricedPolicy(SolvedNetwork):
             stock=tuple(int(u) for u in s),
             flows=tuple(int(x) for x in flows),
             post_move_stock=tuple(int(u) for u in self._posts(s, flows[None, :])[0]),
-            transfer_cost=float(flows @ self.lane_costs + (flows > 0) @ self.dispatch_costs),
+            transfer_cost=float(flow_costs(flows, self.lane_costs, self.dispatch_costs)),
             expected_value=expected,
             value_without_transfers=without,
             gain_from_transfers=expected - without,

@@ -48,7 +48,7 @@ from scipy import stats
 
 from solver.build import n_phases
 from solver.distributions import count_law
-from solver.model import TransferModel
+from solver.model import TransferModel, flow_costs
 from solver.spec import Distribution, LocationSpec, NetworkSpec
 
 __all__ = [
@@ -688,7 +688,7 @@ def _simulate(
             sold = np.minimum(post, demand)
             lost = demand - sold
             stock = np.minimum(post - sold + replenishment_block[b], network.capacities)
-            cost = flows @ network.unit_costs + (flows > 0) @ network.dispatch_costs
+            cost = flow_costs(flows, network.unit_costs, network.dispatch_costs)
             # Sums along the location axis treat every (policy, replication) row alike, so two
             # copies of one policy earn bit-identical profits.
             profit = (sold * network.margin - post * network.holding - lost * network.penalty).sum(
