@@ -268,7 +268,7 @@ def _price(
 
 
 def _idle(choices: ItemChoices, starts: NDArray[np.int64]) -> NDArray[np.int64]:
-    """Index of each item's candidate that moves nothing, shape (M,)."""
+    """Index of each item's first candidate that moves nothing, shape (M,)."""
     stays = np.all(choices.flows == 0, axis=1)
     return _best(np.where(stays, 1.0, 0.0), starts)
 
@@ -441,7 +441,7 @@ def _fit(
             break
     if np.any(load > limit):
         # Only a locked item is left on an overloaded lane: its forced candidate cannot fit.
-        chosen[item[locked]] = _idle_of(choices, int(item[locked]))
+        chosen[item[locked]] = _idle(choices, starts)[item[locked]]
     return chosen
 
 
@@ -504,9 +504,3 @@ def _improve(
         if queue.held and np.any(step < 0):
             queue.requeue_held(losses, fits, version, item)
     return chosen
-
-
-def _idle_of(choices: ItemChoices, m: int) -> int:
-    """The first candidate of item m that moves nothing."""
-    rows = np.flatnonzero((choices.item == m) & ~choices.flows.any(axis=1))
-    return int(rows[0])
