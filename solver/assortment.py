@@ -277,10 +277,9 @@ def _layout(policies: Sequence[ItemPolicy]) -> _Layout:
                 f"policy {k} is over other locations or lanes than policy 0: the items of an "
                 "assortment share one layout"
             )
-    n = len(first.location_ids)
-    lanes = np.array(first.lanes, dtype=np.int64).reshape(-1, 2)
-    incidence = lane_incidence(lanes[:, 0], lanes[:, 1], n)
-    return _Layout(first.location_ids, first.lanes, lanes[:, 0], lanes[:, 1], incidence)
+    lane_from, lane_to = first.lane_ends
+    incidence = lane_incidence(lane_from, lane_to, len(first.location_ids))
+    return _Layout(first.location_ids, first.lanes, lane_from, lane_to, incidence)
 
 
 def _check_stocks(

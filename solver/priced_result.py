@@ -236,9 +236,8 @@ class PricedPolicy(SolvedNetwork):
 
     @cached_property
     def _network(self) -> PlanNetwork:
-        lanes = np.array(self.lanes, dtype=np.int64).reshape(-1, 2)
         return PlanNetwork(
-            np.array(self.capacities, dtype=np.int64), lanes[:, 0], lanes[:, 1], self.lane_costs
+            np.array(self.capacities, dtype=np.int64), *self.lane_ends, self.lane_costs
         )
 
     @cached_property
@@ -311,13 +310,7 @@ class PricedPolicy(SolvedNetwork):
         return flows
 
     def _posts(self, stock: NDArray[np.int64], flows: NDArray[np.int64]) -> NDArray[np.int64]:
-        lanes = np.array(self.lanes, dtype=np.int64).reshape(-1, 2)
-        n = len(self.capacities)
-        moved = np.zeros((flows.shape[0], n), dtype=np.int64)
-        for k, (a, b) in enumerate(lanes):
-            moved[:, a] -= flows[:, k]
-            moved[:, b] += flows[:, k]
-        posts: NDArray[np.int64] = stock[None, :] + moved
+        posts: NDArray[np.int64] = stock[None, :] + flows @ self._network.incidence()
         return posts
 
     def plan_value(

@@ -145,6 +145,12 @@ class SolvedNetwork:
         """Stock levels per location, C_i + 1 each."""
         return tuple(c + 1 for c in self.capacities)
 
+    @property
+    def lane_ends(self) -> tuple[NDArray[np.int64], NDArray[np.int64]]:
+        """Each lane's sender and receiver (location indices), shape (L,) each."""
+        lanes = np.array(self.lanes, dtype=np.int64).reshape(-1, 2)
+        return lanes[:, 0], lanes[:, 1]
+
 
 @dataclass(frozen=True, eq=False)
 class PolicyResult(SolvedNetwork):
@@ -266,6 +272,4 @@ class PolicyResult(SolvedNetwork):
     @cached_property
     def _endpoints(self) -> tuple[NDArray[np.int64], NDArray[np.int64]]:
         # Computed once per result: recommendations are served from it many times.
-        lane_from = np.array([a for a, _ in self.lanes], dtype=np.int64)
-        lane_to = np.array([b for _, b in self.lanes], dtype=np.int64)
-        return flow_endpoints(self.flows, lane_from, lane_to, len(self.capacities))
+        return flow_endpoints(self.flows, *self.lane_ends, len(self.capacities))
