@@ -81,7 +81,7 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
 from solver.errors import InvalidStockError
-from solver.model import feasible_bounds, flow_costs, flow_endpoints
+from solver.model import feasible_bounds, flow_costs, flow_endpoints, lane_incidence
 from solver.priced_result import PricedPolicy
 from solver.result import PolicyResult, phase_of_weekday
 from solver.sharing import ItemChoices, SharedAllocation, allocate_shared_capacity
@@ -277,13 +277,9 @@ def _layout(policies: Sequence[ItemPolicy]) -> _Layout:
                 f"policy {k} is over other locations or lanes than policy 0: the items of an "
                 "assortment share one layout"
             )
-    n = len(first.location_ids)
-    lanes = np.array(first.lanes, dtype=np.int64).reshape(-1, 2)
-    incidence = np.zeros((lanes.shape[0], n), dtype=np.int64)
-    rows = np.arange(lanes.shape[0])
-    np.add.at(incidence, (rows, lanes[:, 0]), -1)
-    np.add.at(incidence, (rows, lanes[:, 1]), 1)
-    return _Layout(first.location_ids, first.lanes, lanes[:, 0], lanes[:, 1], incidence)
+    lane_from, lane_to = first.lane_ends
+    incidence = lane_incidence(lane_from, lane_to, len(first.location_ids))
+    return _Layout(first.location_ids, first.lanes, lane_from, lane_to, incidence)
 
 
 def _check_stocks(
@@ -480,19 +476,14 @@ def _exact_candidates(
     g = np.concatenate(pick_item)
     row = np.concatenate(pick_row)
     q = np.concatenate(pick_value)
-    idle = np.flatnonzero(action != 0)
-    local = np.concatenate([np.arange(items.size), idle, g])
-    table_rows = np.concatenate([action, np.zeros(idle.size, dtype=np.int64), row])
-    value = np.concatenate([chosen_value, without[idle], q])
-    return _Candidates(
-        item=items[local],
-        rank=np.concatenate(
-            [np.zeros(items.size, np.int64), np.ones(idle.size, np.int64), np.full(g.size, 2)]
-        ),
-        flows=policy.flows[table_rows],
-        value=value,
-        capped=np.minimum(value, chosen_value[local]),
-        cost=tables.cost[table_rows],
+    table_rows = np.concatenate([action, np.zeros(moving.size, dtype=np.int64), row])
+    return _ranked(
+        items,
+        moving,
+        g,
+        policy.flows[table_rows],
+        np.concatenate([chosen_value, without[moving], q]),
+        tables.cost[table_rows],
     )
 
 
@@ -527,7 +518,7 @@ def _priced_moves(
     flows = policy.plan_batch(stocks, phase=phase)
     value = policy.move_values(stocks, flows, phase=phase)
     without = policy.move_values(stocks, np.zeros_like(flows), phase=phase)
-    cost = flows @ policy.lane_costs + (flows > 0) @ policy.dispatch_costs
+    cost = flow_costs(flows, policy.lane_costs, policy.dispatch_costs)
     return flows, value, without, cost
 
 
@@ -559,24 +550,48 @@ def _priced_candidates(
     keep = (q > without[g]) & np.any(variants != plan[g], axis=1)
     g, variants, q = g[keep], variants[keep], q[keep]
     moving = np.flatnonzero(plan.any(axis=1))
-    local = np.concatenate([np.arange(items.size), moving, g])
-    flows = np.concatenate([plan, np.zeros((moving.size, plan.shape[1]), np.int64), variants])
-    value = np.concatenate([plan_value, without[moving], q])
-    return _Candidates(
-        item=items[local],
-        rank=np.concatenate(
-            [np.zeros(items.size, np.int64), np.ones(moving.size, np.int64), np.full(g.size, 2)]
-        ),
-        flows=flows,
-        value=value,
-        capped=np.minimum(value, plan_value[local]),
-        cost=np.concatenate(
+    return _ranked(
+        items,
+        moving,
+        g,
+        np.concatenate([plan, np.zeros((moving.size, plan.shape[1]), np.int64), variants]),
+        np.concatenate([plan_value, without[moving], q]),
+        np.concatenate(
             [
                 plan_cost,
                 np.zeros(moving.size),
-                variants @ policy.lane_costs + (variants > 0) @ policy.dispatch_costs,
+                flow_costs(variants, policy.lane_costs, policy.dispatch_costs),
             ]
         ),
+    )
+
+
+def _ranked(
+    items: NDArray[np.int64],
+    moving: NDArray[np.int64],
+    others: NDArray[np.int64],
+    flows: NDArray[np.int64],
+    value: NDArray[np.float64],
+    cost: NDArray[np.float64],
+) -> _Candidates:
+    """Candidates of `items` in three ranks: each item's own move (rank 0), moving nothing for
+    the items at positions `moving` (rank 1), then more moves of the items at positions
+    `others` (rank 2); flows, value and cost list them in that order. Each capped value is at
+    most the item's own move's value."""
+    local = np.concatenate([np.arange(items.size), moving, others])
+    return _Candidates(
+        item=items[local],
+        rank=np.concatenate(
+            [
+                np.zeros(items.size, np.int64),
+                np.ones(moving.size, np.int64),
+                np.full(others.size, 2),
+            ]
+        ),
+        flows=flows,
+        value=value,
+        capped=np.minimum(value, value[: items.size][local]),
+        cost=cost,
     )
 
 

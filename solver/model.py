@@ -51,7 +51,14 @@ from numpy.typing import NDArray
 
 from solver.errors import InvalidModelError
 
-__all__ = ["TransferModel", "feasible_bounds", "feasible_counts", "flow_costs", "flow_endpoints"]
+__all__ = [
+    "TransferModel",
+    "feasible_bounds",
+    "feasible_counts",
+    "flow_costs",
+    "flow_endpoints",
+    "lane_incidence",
+]
 
 _PROBABILITY_TOLERANCE = 1e-9
 
@@ -278,6 +285,18 @@ def flow_endpoints(
         out[:, lane_from[lane]] += flows[:, lane]
         inn[:, lane_to[lane]] += flows[:, lane]
     return out, inn
+
+
+def lane_incidence(
+    lane_from: NDArray[np.int64], lane_to: NDArray[np.int64], n_locations: int
+) -> NDArray[np.int64]:
+    """Shape (L, N): -1 at each lane's sender, +1 at its receiver; flows @ it is the change of
+    stock the flows make at each location."""
+    incidence = np.zeros((lane_from.size, n_locations), dtype=np.int64)
+    lanes = np.arange(lane_from.size)
+    incidence[lanes, lane_from] -= 1
+    incidence[lanes, lane_to] += 1
+    return incidence
 
 
 def flow_costs(

@@ -52,7 +52,7 @@ from solver.evaluation import (
     evaluate_discounted,
 )
 from solver.model import TransferModel
-from solver.result import Criterion, PolicyResult, Progress, ProgressCallback
+from solver.result import Criterion, PolicyResult, Progress, ProgressCallback, lane_pairs
 from solver.spec import WEEKDAYS
 
 __all__ = ["solve_modified_policy_iteration", "solve_policy_iteration"]
@@ -345,7 +345,7 @@ def _result(
         method=method,
         location_ids=model.location_ids,
         capacities=tuple(int(c) for c in model.capacities),
-        lanes=tuple((int(a), int(b)) for a, b in zip(model.lane_from, model.lane_to, strict=True)),
+        lanes=lane_pairs(model.lane_from, model.lane_to),
         lane_costs=model.lane_costs,
         dispatch_costs=model.dispatch_costs,
         flows=model.flows,

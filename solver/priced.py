@@ -147,11 +147,12 @@ from scipy.optimize import linprog
 from solver.build import SizeLimits, location_kernel, location_reward, n_phases
 from solver.errors import ModelTooLargeError
 from solver.evaluation import PolicyChain, choose_evaluation, evaluate_average, evaluate_discounted
-from solver.model import TransferModel
+from solver.model import TransferModel, flow_costs, lane_incidence
 from solver.priced_result import Certificate, PricedOptions, PricedPolicy, PricedProgress
-from solver.result import Criterion
+from solver.result import Criterion, lane_pairs
 from solver.simulation import daily_laws, draw_counts
 from solver.spec import LocationSpec, NetworkSpec
+from solver.transfer_plan import PlanNetwork
 
 __all__ = [
     "PricedLimits",
@@ -220,18 +221,14 @@ def check_priced_size(spec: NetworkSpec, limits: PricedLimits | None = None) -> 
 
 
 @dataclass(frozen=True, eq=False)
-class _Network:
-    """Per-store kernels and rewards, and the lanes. Phase d holds day d + 1's laws and night
-    d's lane limits (solver.model)."""
+class _Network(PlanNetwork):
+    """The plan's network (capacities and lanes) with per-store kernels and rewards. Phase d
+    holds day d + 1's laws and night d's lane limits (solver.model)."""
 
     spec: NetworkSpec
     phases: int
-    capacities: NDArray[np.int64]
     kernels: tuple[NDArray[np.float64], ...]  # per store (P, C + 1, C + 1)
     rewards: tuple[NDArray[np.float64], ...]  # per store (P, C + 1)
-    lane_from: NDArray[np.int64]
-    lane_to: NDArray[np.int64]
-    lane_costs: NDArray[np.float64]
     lane_limits: NDArray[np.int64]  # (P, L), at most both ends' capacities, handling limits, U
     network_limit: NDArray[np.int64]  # (P,), -1 without a limit
     discount: float
@@ -239,14 +236,6 @@ class _Network:
     floors: NDArray[np.int64]  # (P, N), keep_at_least on night d
     most_out: NDArray[np.int64]  # (P, N), handling limits (the capacity where there is none)
     most_in: NDArray[np.int64]
-
-    @property
-    def n_stores(self) -> int:
-        return int(self.capacities.size)
-
-    @property
-    def n_lanes(self) -> int:
-        return int(self.lane_from.size)
 
     @property
     def units(self) -> NDArray[np.float64]:
@@ -900,17 +889,6 @@ def _reward_range(net: _Network) -> tuple[float, float]:
     return low - max(costs), high
 
 
-def _incidence(
-    lane_from: NDArray[np.int64], lane_to: NDArray[np.int64], n_stores: int
-) -> NDArray[np.int64]:
-    """(L, N): +1 at each lane's receiver, -1 at its sender; flows @ it is the stock change."""
-    incidence = np.zeros((lane_from.size, n_stores), dtype=np.int64)
-    lanes = np.arange(lane_from.size)
-    incidence[lanes, lane_from] -= 1
-    incidence[lanes, lane_to] += 1
-    return incidence
-
-
 def _simulate(
     net: _Network,
     policy: PricedPolicy,
@@ -945,7 +923,7 @@ def _simulate(
             reward[d, i, :size] = rewards[d]
             value[d, i, :size] = following
             expected[d, i, :size] = kernels[d] @ following
-    incidence = _incidence(net.lane_from, net.lane_to, n)
+    incidence = net.incidence()
     current = np.broadcast_to(stock, (replications, n)).copy()
     total = np.zeros(replications)
     block = 256
@@ -959,7 +937,7 @@ def _simulate(
             flows = policy.plan_batch(current, phase=d)
             post = current + flows @ incidence
             current = np.minimum(post - np.minimum(post, demand[k]) + supply[k], caps)
-            cost = flows @ net.lane_costs + (flows > 0) @ net.dispatch_costs
+            cost = flow_costs(flows, net.lane_costs, net.dispatch_costs)
             profit = reward[d][stores, post].sum(axis=1) - cost
             surprise = (value[d][stores, current] - expected[d][stores, post]).sum(axis=1)
             total += weights[t] * (profit - step * surprise)
@@ -1115,7 +1093,7 @@ def solve_priced(
         method="priced",
         location_ids=tuple(spec.location_ids),
         capacities=tuple(int(c) for c in net.capacities),
-        lanes=tuple((int(a), int(b)) for a, b in zip(net.lane_from, net.lane_to, strict=True)),
+        lanes=lane_pairs(net.lane_from, net.lane_to),
         lane_costs=net.lane_costs,
         lane_limits=net.lane_limits,
         network_limit=net.network_limit,
@@ -1218,7 +1196,7 @@ def _evaluation_model(spec: NetworkSpec, limits: SizeLimits | None) -> TransferM
 
 def _plan_chain(model: TransferModel, policy: PricedPolicy) -> PolicyChain:
     states = np.indices(model.shape).reshape(model.n_locations, -1).T.astype(np.int64)
-    incidence = _incidence(model.lane_from, model.lane_to, model.n_locations)
+    incidence = lane_incidence(model.lane_from, model.lane_to, model.n_locations)
     post = np.empty((model.n_phases, model.n_states), dtype=np.int64)
     reward = np.empty((model.n_phases, model.n_states))
     for d in range(model.n_phases):

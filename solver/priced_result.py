@@ -20,10 +20,11 @@ import numpy as np
 from numpy.typing import NDArray
 
 from solver.errors import InvalidStockError
+from solver.model import flow_costs
 from solver.result import (
     Alternative,
-    Criterion,
     Recommendation,
+    SolvedNetwork,
     check_stock,
     phase_of_weekday,
 )
@@ -125,7 +126,7 @@ class Certificate:
 
 
 @dataclass(frozen=True, eq=False)
-class PricedPolicy:
+class PricedPolicy(SolvedNetwork):
     """A price-decomposed transfer policy.
 
     lanes: (from, to) location indices; lane_costs (L,); lane_limits (P, L), units per lane on
@@ -151,12 +152,6 @@ class PricedPolicy:
         (solver.transfer_plan).
     """
 
-    criterion: Criterion
-    method: str
-    location_ids: tuple[str, ...]
-    capacities: tuple[int, ...]
-    lanes: tuple[tuple[int, int], ...]
-    lane_costs: NDArray[np.float64]
     lane_limits: NDArray[np.int64]
     network_limit: NDArray[np.int64]
     dispatch_costs: NDArray[np.float64]
@@ -179,10 +174,6 @@ class PricedPolicy:
     trade_limit: int | None = None
 
     # -- sizes and stocks --------------------------------------------------------------------
-
-    @property
-    def shape(self) -> tuple[int, ...]:
-        return tuple(c + 1 for c in self.capacities)
 
     @property
     def n_states(self) -> int:
@@ -245,9 +236,8 @@ class PricedPolicy:
 
     @cached_property
     def _network(self) -> PlanNetwork:
-        lanes = np.array(self.lanes, dtype=np.int64).reshape(-1, 2)
         return PlanNetwork(
-            np.array(self.capacities, dtype=np.int64), lanes[:, 0], lanes[:, 1], self.lane_costs
+            np.array(self.capacities, dtype=np.int64), *self.lane_ends, self.lane_costs
         )
 
     @cached_property
@@ -320,13 +310,7 @@ class PricedPolicy:
         return flows
 
     def _posts(self, stock: NDArray[np.int64], flows: NDArray[np.int64]) -> NDArray[np.int64]:
-        lanes = np.array(self.lanes, dtype=np.int64).reshape(-1, 2)
-        n = len(self.capacities)
-        moved = np.zeros((flows.shape[0], n), dtype=np.int64)
-        for k, (a, b) in enumerate(lanes):
-            moved[:, a] -= flows[:, k]
-            moved[:, b] += flows[:, k]
-        posts: NDArray[np.int64] = stock[None, :] + moved
+        posts: NDArray[np.int64] = stock[None, :] + flows @ self._network.incidence()
         return posts
 
     def plan_value(
@@ -391,7 +375,7 @@ class PricedPolicy:
             stock=tuple(int(u) for u in s),
             flows=tuple(int(x) for x in flows),
             post_move_stock=tuple(int(u) for u in self._posts(s, flows[None, :])[0]),
-            transfer_cost=float(flows @ self.lane_costs + (flows > 0) @ self.dispatch_costs),
+            transfer_cost=float(flow_costs(flows, self.lane_costs, self.dispatch_costs)),
             expected_value=expected,
             value_without_transfers=without,
             gain_from_transfers=expected - without,

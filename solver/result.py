@@ -21,6 +21,7 @@ __all__ = [
     "Progress",
     "ProgressCallback",
     "Recommendation",
+    "SolvedNetwork",
 ]
 
 Criterion = Literal["discounted", "average"]
@@ -119,8 +120,40 @@ class Recommendation:
     alternatives: tuple[Alternative, ...]
 
 
+def lane_pairs(
+    lane_from: NDArray[np.int64], lane_to: NDArray[np.int64]
+) -> tuple[tuple[int, int], ...]:
+    """The lanes as (from, to) location indices, the form a result keeps them in."""
+    return tuple((int(a), int(b)) for a, b in zip(lane_from, lane_to, strict=True))
+
+
 @dataclass(frozen=True, eq=False)
-class PolicyResult:
+class SolvedNetwork:
+    """What every solved policy keeps of its network, first among its fields: the criterion
+    and method it was solved with, the location ids, capacities C_i, lanes as (from, to)
+    location indices and lane_costs, shape (L,), currency per unit."""
+
+    criterion: Criterion
+    method: str
+    location_ids: tuple[str, ...]
+    capacities: tuple[int, ...]
+    lanes: tuple[tuple[int, int], ...]
+    lane_costs: NDArray[np.float64]
+
+    @property
+    def shape(self) -> tuple[int, ...]:
+        """Stock levels per location, C_i + 1 each."""
+        return tuple(c + 1 for c in self.capacities)
+
+    @property
+    def lane_ends(self) -> tuple[NDArray[np.int64], NDArray[np.int64]]:
+        """Each lane's sender and receiver (location indices), shape (L,) each."""
+        lanes = np.array(self.lanes, dtype=np.int64).reshape(-1, 2)
+        return lanes[:, 0], lanes[:, 1]
+
+
+@dataclass(frozen=True, eq=False)
+class PolicyResult(SolvedNetwork):
     """An optimal transfer policy and how it was found.
 
     The policy has `phases` phases: 1 for a stationary network, 7 for a weekly one, phase d
@@ -143,12 +176,6 @@ class PolicyResult:
     seconds: wall-clock seconds per phase ("build", "evaluate", "improve", "total").
     """
 
-    criterion: Criterion
-    method: str
-    location_ids: tuple[str, ...]
-    capacities: tuple[int, ...]
-    lanes: tuple[tuple[int, int], ...]
-    lane_costs: NDArray[np.float64]
     dispatch_costs: NDArray[np.float64]
     flows: NDArray[np.int64]
     phases: int
@@ -165,10 +192,6 @@ class PolicyResult:
     error_bound: float
     converged: bool
     seconds: Mapping[str, float]
-
-    @property
-    def shape(self) -> tuple[int, ...]:
-        return tuple(c + 1 for c in self.capacities)
 
     @property
     def n_states(self) -> int:
@@ -249,6 +272,4 @@ class PolicyResult:
     @cached_property
     def _endpoints(self) -> tuple[NDArray[np.int64], NDArray[np.int64]]:
         # Computed once per result: recommendations are served from it many times.
-        lane_from = np.array([a for a, _ in self.lanes], dtype=np.int64)
-        lane_to = np.array([b for _, b in self.lanes], dtype=np.int64)
-        return flow_endpoints(self.flows, lane_from, lane_to, len(self.capacities))
+        return flow_endpoints(self.flows, *self.lane_ends, len(self.capacities))

@@ -44,6 +44,7 @@ so `bound - value` bounds how far the allocation is from the best one, and
 from __future__ import annotations
 
 import heapq
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
@@ -267,7 +268,7 @@ def _price(
 
 
 def _idle(choices: ItemChoices, starts: NDArray[np.int64]) -> NDArray[np.int64]:
-    """Index of each item's candidate that moves nothing, shape (M,)."""
+    """Index of each item's first candidate that moves nothing, shape (M,)."""
     stays = np.all(choices.flows == 0, axis=1)
     return _best(np.where(stays, 1.0, 0.0), starts)
 
@@ -306,23 +307,37 @@ def _slack(cap: NDArray[np.float64]) -> NDArray[np.float64]:
     return slack
 
 
+# Keys of the switches among the given candidates that are worth queueing, and those
+# candidates: (keys, rows).
+_Score = Callable[[NDArray[np.int64]], tuple[NDArray[np.float64], NDArray[np.int64]]]
+
+
 class _Queue:
     """Switches in increasing key order, ties to the lowest candidate index: a sorted array
     made by numpy at the start plus a heap of later pushes. Each entry carries the version of
     its item's choice when it was queued (0 for the sorted array), so that entries made stale
     by a switch of their item are skipped; switches that did not fit when they came up are
-    held apart until the loads change in their favour (see release)."""
+    held apart until the loads change in their favour (see requeue_held).
 
-    def __init__(self, keys: NDArray[np.float64], rows: NDArray[np.int64]) -> None:
-        order = np.lexsort((rows, keys))
-        self._keys: list[float] = keys[order].tolist()
-        self._rows: list[int] = rows[order].tolist()
+    keys, rows: the first switches; fitting: whether each fits now (the others start held)."""
+
+    def __init__(
+        self,
+        keys: NDArray[np.float64],
+        rows: NDArray[np.int64],
+        fitting: NDArray[np.bool_],
+    ) -> None:
+        order = np.lexsort((rows[fitting], keys[fitting]))
+        self._keys: list[float] = keys[fitting][order].tolist()
+        self._rows: list[int] = rows[fitting][order].tolist()
         self._at = 0
         self._heap: list[tuple[float, int, int]] = []
-        self.held: list[int] = []
+        self.held: list[int] = rows[~fitting].tolist()
 
-    def push(self, key: float, row: int, version: int) -> None:
-        heapq.heappush(self._heap, (key, row, version))
+    def push(self, keys: NDArray[np.float64], rows: NDArray[np.int64], version: int) -> None:
+        """Queue the switches to `rows` with these keys, their item's choice at `version`."""
+        for key, row in zip(keys.tolist(), rows.tolist(), strict=True):
+            heapq.heappush(self._heap, (key, row, version))
 
     def pop(self) -> tuple[float, int, int] | None:
         if self._at < len(self._keys):
@@ -332,11 +347,20 @@ class _Queue:
                 return first
         return heapq.heappop(self._heap) if self._heap else None
 
-    def release(self) -> NDArray[np.int64]:
-        """The held candidates (each once), no longer held."""
-        held = np.unique(np.array(self.held, dtype=np.int64))
-        self.held = []
-        return held
+    def requeue_held(
+        self,
+        score: _Score,
+        fits: Callable[[NDArray[np.int64]], NDArray[np.bool_]],
+        version: NDArray[np.int64],
+        item: NDArray[np.int64],
+    ) -> None:
+        """Queue the held switches (each once) that `score` keeps and that fit now, at their
+        items' current `version`; hold the others that `score` keeps."""
+        keys, rows = score(np.unique(np.array(self.held, dtype=np.int64)))
+        now = fits(rows)
+        for key, row in zip(keys[now].tolist(), rows[now].tolist(), strict=True):
+            heapq.heappush(self._heap, (key, row, int(version[item[row]])))
+        self.held = rows[~now].tolist()
 
 
 def _fit(
@@ -388,9 +412,7 @@ def _fit(
     while over.any() and budget > 0:
         version[:] = 0
         keys, rows = rates(np.arange(item.size))
-        fitting = fits(rows)
-        queue = _Queue(keys[fitting], rows[fitting])
-        queue.held = rows[~fitting].tolist()
+        queue = _Queue(keys, rows, fits(rows))
         regrouped = False
         while budget > 0:
             entry = queue.pop()
@@ -412,21 +434,14 @@ def _fit(
             if not np.array_equal(now_over, over):
                 over, regrouped = now_over, True
                 break
-            own_keys, own_rows = rates(np.arange(starts[m], ends[m]))
-            for key, row in zip(own_keys.tolist(), own_rows.tolist(), strict=True):
-                queue.push(key, row, int(version[m]))
+            queue.push(*rates(np.arange(starts[m], ends[m])), int(version[m]))
             if queue.held and np.any((step > 0) & ~over):
-                held = queue.release()
-                held_keys, held_rows = rates(held)
-                now = fits(held_rows)
-                for key, row in zip(held_keys[now].tolist(), held_rows[now].tolist(), strict=True):
-                    queue.push(key, row, int(version[item[row]]))
-                queue.held = held_rows[~now].tolist()
+                queue.requeue_held(rates, fits, version, item)
         if not regrouped:
             break
     if np.any(load > limit):
         # Only a locked item is left on an overloaded lane: its forced candidate cannot fit.
-        chosen[item[locked]] = _idle_of(choices, int(item[locked]))
+        chosen[item[locked]] = _idle(choices, starts)[item[locked]]
     return chosen
 
 
@@ -463,9 +478,7 @@ def _improve(
         return fitting
 
     keys, rows = losses(np.arange(item.size))
-    fitting = fits(rows)
-    queue = _Queue(keys[fitting], rows[fitting])
-    queue.held = rows[~fitting].tolist()
+    queue = _Queue(keys, rows, fits(rows))
     for _ in range(use.shape[0]):
         best: tuple[int, int, NDArray[np.float64], float] | None = None
         while (entry := queue.pop()) is not None:
@@ -487,20 +500,7 @@ def _improve(
         load += step
         chosen[m] = k
         version[m] += 1
-        own_keys, own_rows = losses(np.arange(starts[m], ends[m]))
-        for key, row in zip(own_keys.tolist(), own_rows.tolist(), strict=True):
-            queue.push(key, row, int(version[m]))
+        queue.push(*losses(np.arange(starts[m], ends[m])), int(version[m]))
         if queue.held and np.any(step < 0):
-            held = queue.release()
-            held_keys, held_rows = losses(held)
-            now = fits(held_rows)
-            for key, row in zip(held_keys[now].tolist(), held_rows[now].tolist(), strict=True):
-                queue.push(key, row, int(version[item[row]]))
-            queue.held = held_rows[~now].tolist()
+            queue.requeue_held(losses, fits, version, item)
     return chosen
-
-
-def _idle_of(choices: ItemChoices, m: int) -> int:
-    """The first candidate of item m that moves nothing."""
-    rows = np.flatnonzero((choices.item == m) & ~choices.flows.any(axis=1))
-    return int(rows[0])

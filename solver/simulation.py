@@ -48,7 +48,7 @@ from scipy import stats
 
 from solver.build import n_phases
 from solver.distributions import count_law
-from solver.model import TransferModel
+from solver.model import TransferModel, flow_costs
 from solver.spec import Distribution, LocationSpec, NetworkSpec
 
 __all__ = [
@@ -382,19 +382,10 @@ def simulate_policies(
         name: _table_plan(model, _policy_table(model, name, policy))
         for name, policy in policies.items()
     }
-    return _compare(
-        spec,
-        plans,
-        checked=False,
-        days=days,
-        replications=replications,
-        rng=rng,
-        start_stock=start_stock,
-        warmup_days=warmup_days,
-        reference=reference,
-        start_phase=start_phase,
-        confidence=confidence,
+    settings = _Run(
+        days, replications, rng, start_stock, warmup_days, reference, start_phase, confidence
     )
+    return _compare(spec, plans, settings, checked=False)
 
 
 def simulate_plans(
@@ -419,35 +410,33 @@ def simulate_plans(
         # The simulation counts days; a plan is asked with the phase of the count.
         return lambda stock, day: plan(stock, day % periods)
 
+    settings = _Run(
+        days, replications, rng, start_stock, warmup_days, reference, start_phase, confidence
+    )
     return _compare(
-        spec,
-        {name: on_phase(plan) for name, plan in plans.items()},
-        checked=True,
-        days=days,
-        replications=replications,
-        rng=rng,
-        start_stock=start_stock,
-        warmup_days=warmup_days,
-        reference=reference,
-        start_phase=start_phase,
-        confidence=confidence,
+        spec, {name: on_phase(plan) for name, plan in plans.items()}, settings, checked=True
     )
 
 
+@dataclass(frozen=True, eq=False)
+class _Run:
+    """The settings of one comparison, as simulate_policies and simulate_plans take them."""
+
+    days: int
+    replications: int
+    rng: np.random.Generator
+    start_stock: Sequence[int] | None
+    warmup_days: int
+    reference: str | None
+    start_phase: int
+    confidence: float
+
+
 def _compare(
-    spec: NetworkSpec,
-    plans: Mapping[str, Plan],
-    *,
-    checked: bool,
-    days: int,
-    replications: int,
-    rng: np.random.Generator,
-    start_stock: Sequence[int] | None,
-    warmup_days: int,
-    reference: str | None,
-    start_phase: int,
-    confidence: float,
+    spec: NetworkSpec, plans: Mapping[str, Plan], run: _Run, *, checked: bool
 ) -> SimulationReport:
+    days, replications, warmup_days = run.days, run.replications, run.warmup_days
+    reference, start_phase, confidence = run.reference, run.start_phase, run.confidence
     if not plans:
         raise ValueError("no policies to simulate")
     if reference is not None and reference not in plans:
@@ -458,7 +447,7 @@ def _compare(
     _check_sizes(days, replications, warmup_days, start_phase, confidence)
     names = list(plans)
     network = _Network.of(spec)
-    start = _start_stock(network, start_stock)
+    start = _start_stock(network, run.start_stock)
 
     k, r, n = len(names), replications, network.n_locations
     profit = np.zeros((k, r))
@@ -475,7 +464,7 @@ def _compare(
         start,
         warmup_days + days,
         r,
-        rng,
+        run.rng,
         start_phase,
         checked=runs,
     )
@@ -699,7 +688,7 @@ def _simulate(
             sold = np.minimum(post, demand)
             lost = demand - sold
             stock = np.minimum(post - sold + replenishment_block[b], network.capacities)
-            cost = flows @ network.unit_costs + (flows > 0) @ network.dispatch_costs
+            cost = flow_costs(flows, network.unit_costs, network.dispatch_costs)
             # Sums along the location axis treat every (policy, replication) row alike, so two
             # copies of one policy earn bit-identical profits.
             profit = (sold * network.margin - post * network.holding - lost * network.penalty).sum(

@@ -68,10 +68,12 @@ end (same post-move stock, no higher cost), as the exact solver's flow table doe
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 from numpy.typing import NDArray
+
+from solver.model import lane_incidence
 
 __all__ = ["PlanNetwork", "PlanRules", "concave_envelope", "plan_flows", "plan_objective"]
 
@@ -130,6 +132,10 @@ class PlanNetwork:
         )
         return tail, head, cost
 
+    def incidence(self) -> NDArray[np.int64]:
+        """(L, N): -1 at each lane's sender, +1 at its receiver (solver.model.lane_incidence)."""
+        return lane_incidence(self.lane_from, self.lane_to, self.n_stores)
+
 
 @dataclass(frozen=True, eq=False)
 class PlanRules:
@@ -181,49 +187,20 @@ def plan_flows(
         most_in = np.broadcast_to(rules.most_in, (batch, n))
         # out_i = s_i - stay_i <= most_out_i: a lower bound on the stay arc.
         low_stay = np.maximum(stocks - rules.most_out[None, :], 0)
+    night = _Batch(
+        network, values, network_limit, tolerance, stocks, limits, floors, low_stay, most_in
+    )
     if rules is None or not np.any(rules.dispatch_costs > 0):
-        return _plan(
-            network, stocks, values, limits, network_limit, tolerance, floors, low_stay, most_in
-        )
+        return _plan(night)
     # Two starts: the plan without dispatch costs, and the plan with each lane's dispatch cost
     # spread over a full lane (per unit); lanes that do not pay are closed from each, and the
     # better result is kept (ties: the first). Both starts run as one batch of 2B rows (each
     # row's arithmetic is its own).
     spread = network.lane_costs[None, :] + rules.dispatch_costs[None, :] / np.maximum(limits, 1)
     costs = np.concatenate([np.broadcast_to(network.lane_costs, spread.shape), spread])
-
-    def twice(array: NDArray[np.int64]) -> NDArray[np.int64]:
-        return np.concatenate([array, array])
-
-    bounds = (twice(floors), twice(low_stay), twice(np.asarray(most_in)))
-    starts = _plan(
-        network,
-        twice(stocks),
-        values,
-        twice(limits),
-        network_limit,
-        tolerance,
-        *bounds,
-        costs,
-    )
-    closed = _close_unpaid_lanes(
-        network,
-        twice(stocks),
-        values,
-        twice(limits),
-        network_limit,
-        tolerance,
-        bounds,
-        rules.dispatch_costs,
-        starts,
-    )
-    candidates = [
-        closed[:batch],
-        closed[batch:],
-        _best_single_lane(
-            network, stocks, values, limits, network_limit, (floors, low_stay, most_in)
-        ),
-    ]
+    both = night.twice()
+    closed = _close_unpaid_lanes(both, rules.dispatch_costs, _plan(both, costs))
+    candidates = [closed[:batch], closed[batch:], _best_single_lane(night)]
     best_flows = candidates[0]
     best_value = np.full(batch, -np.inf)
     for closed in candidates:
@@ -242,7 +219,7 @@ def plan_objective(
     dispatch_costs: NDArray[np.float64] | None = None,
 ) -> NDArray[np.float64]:
     """sum_i W_i(y_i) - c.f - F.[f > 0] of each row, shape (B,) (values as in plan_flows)."""
-    post = stocks + flows @ _incidence(network)
+    post = stocks + flows @ network.incidence()
     total: NDArray[np.float64] = values[np.arange(network.n_stores)[None, :], post].sum(axis=1)
     total = total - flows @ network.lane_costs
     if dispatch_costs is not None:
@@ -250,30 +227,56 @@ def plan_objective(
     return total
 
 
-def _best_single_lane(
-    network: PlanNetwork,
-    stocks: NDArray[np.int64],
-    values: NDArray[np.float64],
-    limits: NDArray[np.int64],
-    network_limit: int | None,
-    bounds: tuple[NDArray[np.int64], NDArray[np.int64], NDArray[np.int64]],
-) -> NDArray[np.int64]:
+@dataclass(frozen=True, eq=False)
+class _Batch:
+    """B rows of tonight's problem on one network, as plan_flows takes them with the rules
+    turned into bounds. values, network_limit and tolerance as in plan_flows; stocks (B, N);
+    limits (B, L), units per lane; floors (B, N), least post-move stock; low_stay (B, N),
+    least units kept back (handling limit out); most_in (B, N), handling limit in."""
+
+    network: PlanNetwork
+    values: NDArray[np.float64]
+    network_limit: int | None
+    tolerance: float
+    stocks: NDArray[np.int64]
+    limits: NDArray[np.int64]
+    floors: NDArray[np.int64]
+    low_stay: NDArray[np.int64]
+    most_in: NDArray[np.int64]
+
+    def take(self, rows: NDArray[np.int64]) -> _Batch:
+        """The given rows (an index array), in that order."""
+        return replace(
+            self,
+            stocks=self.stocks[rows],
+            limits=self.limits[rows],
+            floors=self.floors[rows],
+            low_stay=self.low_stay[rows],
+            most_in=self.most_in[rows],
+        )
+
+    def twice(self) -> _Batch:
+        """Every row twice: rows 0..B-1, then the same again."""
+        return self.take(np.tile(np.arange(self.stocks.shape[0]), 2))
+
+
+def _best_single_lane(night: _Batch) -> NDArray[np.int64]:
     """Per row, the best move along one lane alone (any number of units within the rules,
     dispatch cost not counted: every candidate pays exactly one), shape (B, L)."""
-    floors, low_stay, most_in = bounds
+    network, stocks, values = night.network, night.stocks, night.values
     batch, n_lanes = stocks.shape[0], network.n_lanes
     sender, receiver = network.lane_from, network.lane_to
     caps = network.capacities
-    top = int(limits.max(initial=0))
-    if network_limit is not None:
-        top = min(top, network_limit)
+    top = int(night.limits.max(initial=0))
+    if night.network_limit is not None:
+        top = min(top, night.network_limit)
     units = np.arange(1, top + 1)[None, None, :]  # (1, 1, U)
     s_from, s_to = stocks[:, sender][:, :, None], stocks[:, receiver][:, :, None]
     most = np.minimum(
-        limits,
+        night.limits,
         np.minimum(
-            s_from[:, :, 0] - np.maximum(floors[:, sender], low_stay[:, sender]),
-            np.minimum(caps[receiver] - s_to[:, :, 0], most_in[:, receiver]),
+            s_from[:, :, 0] - np.maximum(night.floors[:, sender], night.low_stay[:, sender]),
+            np.minimum(caps[receiver] - s_to[:, :, 0], night.most_in[:, receiver]),
         ),
     )
     fits = units <= most[:, :, None]
@@ -309,7 +312,7 @@ def _closing_candidates(
     only, which may not be feasible), in row order."""
     used = (flows > 0) & charged[None, :]
     sender, receiver = network.lane_from, network.lane_to
-    post = stocks + flows @ _incidence(network)
+    post = stocks + flows @ network.incidence()
     units = flows
     earn = (
         values[receiver[None, :], post[:, receiver]]
@@ -326,32 +329,15 @@ def _closing_candidates(
     return rows[ok], lanes[ok]
 
 
-def _incidence(network: PlanNetwork) -> NDArray[np.int64]:
-    """(L, N): -1 at each lane's sender, +1 at its receiver."""
-    incidence = np.zeros((network.n_lanes, network.n_stores), dtype=np.int64)
-    lanes = np.arange(network.n_lanes)
-    incidence[lanes, network.lane_from] -= 1
-    incidence[lanes, network.lane_to] += 1
-    return incidence
-
-
 def _close_unpaid_lanes(
-    network: PlanNetwork,
-    stocks: NDArray[np.int64],
-    values: NDArray[np.float64],
-    limits: NDArray[np.int64],
-    network_limit: int | None,
-    tolerance: float,
-    bounds: tuple[NDArray[np.int64], NDArray[np.int64], NDArray[np.int64]],
-    dispatch_costs: NDArray[np.float64],
-    flows: NDArray[np.int64],
+    night: _Batch, dispatch_costs: NDArray[np.float64], flows: NDArray[np.int64]
 ) -> NDArray[np.int64]:
     """Dispatch costs (module docstring): close, one at a time, the used lane whose closing
     (and re-planning) gains most, while one gains more than `tolerance`; then keep moving
     nothing if that is better still."""
-    floors, low_stay, most_in = bounds
+    network, stocks, values, tolerance = night.network, night.stocks, night.values, night.tolerance
     flows = flows.copy()
-    limits = limits.copy()
+    limits = night.limits.copy()
     best = plan_objective(network, stocks, values, flows, dispatch_costs)
     charged = dispatch_costs > 0
     active = np.flatnonzero(np.any((flows > 0) & charged[None, :], axis=1))
@@ -360,17 +346,7 @@ def _close_unpaid_lanes(
         rows = active[rows]
         trial_limits = limits[rows].copy()
         trial_limits[np.arange(rows.size), lanes] = 0
-        trial = _plan(
-            network,
-            stocks[rows],
-            values,
-            trial_limits,
-            network_limit,
-            tolerance,
-            floors[rows],
-            low_stay[rows],
-            most_in[rows],
-        )
+        trial = _plan(replace(night.take(rows), limits=trial_limits))
         worth = plan_objective(network, stocks[rows], values, trial, dispatch_costs)
         # The best closing of each row (rows come sorted, candidates in lane order).
         order = np.lexsort((-worth, rows))
@@ -387,22 +363,11 @@ def _close_unpaid_lanes(
     return flows
 
 
-def _plan(
-    network: PlanNetwork,
-    stocks: NDArray[np.int64],
-    values: NDArray[np.float64],
-    limits: NDArray[np.int64],
-    network_limit: int | None,
-    tolerance: float,
-    floors: NDArray[np.int64],
-    low_stay: NDArray[np.int64],
-    most_in: NDArray[np.int64],
-    lane_costs: NDArray[np.float64] | None = None,
-) -> NDArray[np.int64]:
-    """The augmenting-cycle plan (module docstring) without dispatch costs; floors: (B, N)
-    least post-move stock; low_stay: (B, N) least units kept back (handling limit out);
-    most_in: (B, N) handling limit in; lane_costs: (B, L) unit costs per row (default the
-    network's)."""
+def _plan(night: _Batch, lane_costs: NDArray[np.float64] | None = None) -> NDArray[np.int64]:
+    """The augmenting-cycle plan (module docstring) without dispatch costs; lane_costs: (B, L)
+    unit costs per row (default the network's)."""
+    network, stocks, values = night.network, night.stocks, night.values
+    network_limit, tolerance = night.network_limit, night.tolerance
     n, n_lanes = network.n_stores, network.n_lanes
     batch = stocks.shape[0]
     caps = network.capacities
@@ -438,8 +403,8 @@ def _plan(
     budget = np.iinfo(np.int64).max if network_limit is None else int(network_limit)
     active = np.arange(batch)
     while active.size:
-        y, st, f, lim = post[active], stay[active], flows[active], limits[active]
-        lo, keep, most = floors[active], low_stay[active], most_in[active]
+        y, st, f, lim = post[active], stay[active], flows[active], night.limits[active]
+        lo, keep, most = night.floors[active], night.low_stay[active], night.most_in[active]
         lane_cost = unit_costs[active]
         inn = f @ into  # (b, N) units received so far
         b = active.size
