@@ -11,6 +11,10 @@ The criterion is `solver.CRITERIA` (type `solver.Criterion`) and a weekday's nam
   (`service.db.reporting.solve_states`): ready, or the state of its newest solve job, or
   not_requested.
 
+Storage maps them with typed columns (service.db.tables: JOB_KIND, JOB_STATE, SOLVE_MODE,
+SOLVE_METHOD, and CRITERION for the criterion), which read back as these enums and which the
+database checks (a CHECK constraint per column).
+
 The HTTP models need a `Literal` of the same values so that the OpenAPI document lists them
 inline (an enum would become a component of its own): `JobStateName`, `SolveStatusName`,
 `SolveModeName` and `SolveMethodName`, which `tests/service/test_vocabulary.py` holds equal to
