@@ -287,10 +287,15 @@ def _layout(policies: Sequence[ItemPolicy], lanes: Sequence[tuple[str, str]] | N
     first = policies[0]
     ids = first.location_ids
     for k, policy in enumerate(policies):
-        if policy.location_ids != ids or (lanes is None and policy.lanes != first.lanes):
+        if policy.location_ids != ids:
             raise ValueError(
-                f"policy {k} is over other locations or lanes than policy 0: the items of an "
-                "assortment share one layout (give its `lanes` when items are kept off some)"
+                f"policy {k} is over other locations than policy 0: the items of an assortment "
+                "share one layout"
+            )
+        if lanes is None and policy.lanes != first.lanes:
+            raise ValueError(
+                f"policy {k} is over other lanes than policy 0: give the layout's `lanes` when "
+                "items are kept off some of them"
             )
     pairs = first.lanes if lanes is None else _lane_pairs(ids, lanes)
     position = {pair: lane for lane, pair in enumerate(pairs)}

@@ -255,16 +255,18 @@ def test_malformed_stocks_are_refused(stocks: list[list[float]], message: str) -
 
 
 def test_policies_must_share_one_layout() -> None:
-    other = solve_network(
-        NetworkSpec.model_validate(
-            {
-                **item_network((3, 3, 3), (1.0, 1.0, 1.0)).model_dump(mode="json", by_alias=True),
-                "lanes": [{"from": "harbour", "to": "hill", "unit_cost": 1.0, "max_units": 1}],
-            }
-        )
-    )
-    with pytest.raises(ValueError, match="policy 1 is over other locations or lanes"):
+    document = item_network((3, 3, 3), (1.0, 1.0, 1.0)).model_dump(mode="json", by_alias=True)
+    one_lane = {"from": "harbour", "to": "hill", "unit_cost": 1.0, "max_units": 1}
+    other = solve_network(NetworkSpec.model_validate({**document, "lanes": [one_lane]}))
+    with pytest.raises(ValueError, match="policy 1 is over other lanes than policy 0"):
         assortment_moves([policies()[0], other], [0, 1], [[0, 0, 0], [0, 0, 0]])
+    # The same stores in another order: the stocks' columns would mean other stores.
+    document["locations"].reverse()
+    turned = solve_network(NetworkSpec.model_validate(document))
+    with pytest.raises(ValueError, match="policy 1 is over other locations than policy 0"):
+        assortment_moves(
+            [policies()[0], turned], [0, 1], [[0, 0, 0], [0, 0, 0]], lanes=LAYOUT_LANES
+        )
 
 
 def test_bad_policy_index_weekday_and_names_are_refused() -> None:
@@ -611,8 +613,10 @@ def test_items_kept_off_a_lane_leave_its_truck_to_the_others(volumes: bool) -> N
     np.testing.assert_allclose(shared.sharing.load, used)
     # The other items still share the truck the kept-off items cannot use ...
     assert used[0] >= 0.8 * capacity[0] > 0
-    # ... and the kept-off items give way on the lane they share with them.
-    assert np.any(shared.flows[off, 4] < free.flows[off, 4])
+    # ... and the kept-off items (exact and priced) give way on the lanes they share with them.
+    for p in np.flatnonzero(is_off):
+        mine = policy_of == p
+        assert np.any(shared.flows[mine] != free.flows[mine]), p
     assert np.all(shared.value >= shared.value_without_moves - 1e-9)
     for m, p in enumerate(policy_of):
         policy = pols[p]
@@ -629,7 +633,7 @@ def test_items_kept_off_a_lane_leave_its_truck_to_the_others(volumes: bool) -> N
 def test_lanes_that_do_not_fit_the_policies_are_refused() -> None:
     every_lane, off = policies()[0], kept_off_policies()[0]
     nothing = [[0, 0, 0], [0, 0, 0]]
-    with pytest.raises(ValueError, match="policy 1 is over other locations or lanes"):
+    with pytest.raises(ValueError, match="give the layout's `lanes` when items are kept off"):
         assortment_moves([every_lane, off], [0, 1], nothing)
     with pytest.raises(ValueError, match="policy 0 has a lane 'harbour' -> 'hill', which is not"):
         assortment_moves([every_lane, off], [0, 1], nothing, lanes=LAYOUT_LANES[1:])
