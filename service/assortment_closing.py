@@ -240,7 +240,8 @@ def plan_items(
 ) -> NightPlan:
     """The moves of the items `codes` (stocks: (len(codes), N) in the layout's location order)
     from their current policies, with the layout's shared trucks; items without a policy yet
-    get none. Raises InvalidStockError for a stock outside an item's capacity."""
+    get none, and an item kept off a lane none on it. Raises InvalidStockError for a stock
+    outside an item's capacity."""
     started = clock.perf_counter()
     layout = layout_of(assortment)
     criterion = criteria_of(assortment)[0]
@@ -270,6 +271,8 @@ def plan_items(
             list(policies.values()),
             np.array([order[keys[k]] for k in rows], dtype=np.int64),
             stocks[rows],
+            # An item kept off a lane has a policy without it: lanes are matched by their ends.
+            lanes=[(lane.from_, lane.to) for lane in layout.lanes],
             weekday=business_date.weekday(),
             truck_capacity=trucks,
             unit_volume=volume,

@@ -3,11 +3,13 @@
 A chain moves hundreds to thousands of items between the same stores over the same lanes. The
 layout (locations, lanes with their unit and dispatch costs and limits, the network limit, time
 zone, discount) is given once; each item brings its own economics and demand per location, a
-volume per unit, and may lower a lane's limit for itself. `compose_spec` joins the two into the
-solver's NetworkSpec, so that everything a single network has (versions, solves, the read
-path, calibration) applies to every item unchanged. The composed specification is named after
-the layout, not the item: items with identical numbers compose to identical specifications and
-share one policy through the specification hash.
+volume per unit, and may lower a lane's limit for itself, down to 0 for a lane its trucks cannot
+carry. `compose_spec` joins the two into the solver's NetworkSpec, so that everything a single
+network has (versions, solves, the read path, calibration) applies to every item unchanged; an
+item kept off a lane has a network without that lane, so its lanes are those of the layout it
+may use, in the layout's order. The composed specification is named after the layout, not the
+item: items with identical numbers compose to identical specifications and share one policy
+through the specification hash.
 
 A lane may also carry a `truck_capacity`: what one night's truck on that lane carries for all
 items together, counted in units or, with `truck_capacity_unit: "volume"`, in the items'
@@ -205,11 +207,12 @@ class ItemSpec(_Strict):
     ] = 1.0
     locations: Annotated[dict[str, ItemLocation], Field(min_length=2, max_length=64)]
     lane_limits: Annotated[
-        dict[str, Annotated[int, Field(ge=1, le=10_000)]],
+        dict[str, Annotated[int, Field(ge=0, le=10_000)]],
         Field(
-            description='Lower limits of some lanes for this item, by lane ("north>south"), '
-            "at least 1: every item keeps every lane of its layout, so that items can share "
-            "the lanes' trucks."
+            description='Lower limits of some lanes for this item, by lane ("north>south"). '
+            "0 keeps the item off the lane (one whose trucks cannot carry it): its network "
+            "leaves the lane out and it is never moved on it, while the other items still "
+            "share the lane's truck. At least one lane of the layout stays open to the item."
         ),
     ] = {}
 
@@ -229,10 +232,10 @@ def _lane_for(lane: LayoutLane, override: int | None) -> dict[str, Any]:
 
 
 def compose_spec(layout: Layout, item: ItemSpec) -> NetworkSpec:
-    """The item's network on the layout, with the layout's lanes in the layout's order. Raises
-    ValueError naming what does not fit (a location missing from the item or unknown to the
-    layout, an override of an unknown lane) and pydantic's ValidationError for numbers the
-    network refuses."""
+    """The item's network on the layout: the layout's lanes in the layout's order, less those
+    the item's lane_limits set to 0. Raises ValueError naming what does not fit (a location
+    missing from the item or unknown to the layout, an override of an unknown lane, every lane
+    set to 0) and pydantic's ValidationError for numbers the network refuses."""
     ids = layout.location_ids
     missing = [i for i in ids if i not in item.locations]
     unknown = [i for i in item.locations if i not in ids]
@@ -247,10 +250,17 @@ def compose_spec(layout: Layout, item: ItemSpec) -> NetworkSpec:
             f"item {item.item!r}: lane_limits names unknown lane(s) {', '.join(strange)} "
             '(write them as "from>to")'
         )
+    limits = [item.lane_limits.get(lane_key(lane.from_, lane.to)) for lane in layout.lanes]
     lanes = [
-        _lane_for(lane, item.lane_limits.get(lane_key(lane.from_, lane.to)))
-        for lane in layout.lanes
+        _lane_for(lane, limit)
+        for lane, limit in zip(layout.lanes, limits, strict=True)
+        if limit != 0
     ]
+    if not lanes:
+        raise ValueError(
+            f"item {item.item!r}: lane_limits set every lane of the layout to 0; an item needs "
+            "at least one lane it may be moved on"
+        )
     document = {
         "name": layout.name,
         "discount": layout.discount,

@@ -252,13 +252,14 @@ def store_items(
 
 def _item_of(code: str, spec: dict[str, Any], old: Layout, unit_volume: float | None) -> ItemSpec:
     """The item's own numbers back from its composed specification: its locations, and the lane
-    limits it set below the old layout's."""
+    limits it set below the old layout's (0 for a lane of the old layout that its
+    specification leaves out: the item was kept off it)."""
     layout_limits = {lane_key(lane.from_, lane.to): lane.max_units for lane in old.lanes}
-    lane_limits = {}
-    for lane in spec["lanes"]:
-        key = lane_key(lane["from"], lane["to"])
-        if isinstance(lane["max_units"], int) and lane["max_units"] != layout_limits.get(key):
-            lane_limits[key] = lane["max_units"]
+    own = {lane_key(lane["from"], lane["to"]): lane["max_units"] for lane in spec["lanes"]}
+    lane_limits = {key: 0 for key in layout_limits if key not in own}
+    for key, units in own.items():
+        if isinstance(units, int) and units != layout_limits.get(key):
+            lane_limits[key] = units
     return ItemSpec.model_validate(
         {
             "item": code,

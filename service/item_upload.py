@@ -10,8 +10,9 @@ CSV columns (any order; `item`, `location`, `capacity`, `unit_margin`, `demand_m
 stockout_penalty, demand_mean, demand_variance, replenishment_mean, unit_volume,
 keep_at_least, max_units_out, max_units_in, lane_limits`. Demand is Poisson, or negative
 binomial when `demand_variance` exceeds `demand_mean`; replenishment is Poisson. An item's
-`unit_volume` and `lane_limits` ("north>south:2;south>north:1") are the item's, given on any of
-its rows and equal where repeated. Weekly laws and limits need the JSON forms.
+`unit_volume` and `lane_limits` ("north>south:2;south>north:0", 0 keeping the item off a lane)
+are the item's, given on any of its rows and equal where repeated. Weekly laws and limits need
+the JSON forms.
 """
 
 from __future__ import annotations

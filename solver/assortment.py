@@ -1,10 +1,15 @@
 """Tonight's moves for a whole assortment: many items over one layout, from cached policies.
 
-Every item m of an assortment is its own network over the same locations and lanes (same N
-locations, same L lanes in the same order); its solved policy pi_m is a PolicyResult (exact) or
-a PricedPolicy, and items with identical parameters share one policy object. With symbols as in
-solver.model, item m closes with stock s_m (N units) in phase d_m = weekday mod P_m (the
-business date's weekday for a weekly policy, 0 for a stationary one).
+Every item m of an assortment is its own network over the same N locations and the layout's L
+lanes, or some of them (an item kept off a lane has a network without it); its solved policy
+pi_m is a PolicyResult (exact) or a PricedPolicy, and items with identical parameters share one
+policy object. With symbols as in solver.model, item m closes with stock s_m (N units) in phase
+d_m = weekday mod P_m (the business date's weekday for a weekly policy, 0 for a stationary one).
+
+A policy's lanes are found among the layout's by their ends (sender, receiver), not by
+position. Flows below are over the item's own lanes; each item's flows are then placed over the
+layout's lanes, 0 on a lane its policy does not have: an item is never moved on a lane it is
+kept off, and takes no room on that lane's truck.
 
 Uncoupled moves (no shared truck). For an exact policy, tonight's flow is the policy's action
 
@@ -102,7 +107,8 @@ _CHUNK_ELEMENTS = 1_000_000
 class AssortmentMoves:
     """Tonight's moves of M items over N locations and L lanes.
 
-    flows: shape (M, L), units per lane, in the layout's lane order.
+    flows: shape (M, L), units per lane, in the layout's lane order (0 on the lanes an item's
+        policy does not have).
     post_move_stock: shape (M, N), units per location after the moves.
     value: shape (M,), each item's value with its moves (post-move value less move costs);
         value_without_moves: shape (M,), the same moving nothing. Currency, on the scale of
@@ -130,13 +136,13 @@ class AssortmentMoves:
 
 @dataclass(frozen=True)
 class _Layout:
-    """What every item's policy shares."""
+    """What every item's policy shares: the locations, and the lanes (each policy's lanes are
+    some of them: `columns[p]` holds the layout position of each lane of policy p)."""
 
     location_ids: tuple[str, ...]
     lanes: tuple[tuple[int, int], ...]
-    lane_from: NDArray[np.int64]
-    lane_to: NDArray[np.int64]
     incidence: NDArray[np.int64]  # (L, N): -1 at a lane's sender, +1 at its receiver
+    columns: tuple[NDArray[np.int64], ...]
 
     @property
     def n_locations(self) -> int:
@@ -157,11 +163,12 @@ class _Candidates:
 
 @dataclass(frozen=True)
 class _Group:
-    """The items of one policy: their stocks, phase and (exact policies) table, actions and
-    stock indexes."""
+    """The items of one policy: their stocks, phase, the layout position of each of the
+    policy's lanes, and (exact policies) table, actions and stock indexes."""
 
     policy: ItemPolicy
     phase: int
+    columns: NDArray[np.int64]
     items: NDArray[np.int64]
     stocks: NDArray[np.int64]
     exact: tuple[_Tables, NDArray[np.int64], NDArray[np.int64]] | None
@@ -172,6 +179,7 @@ def assortment_moves(
     policy_of: ArrayLike,
     stocks: ArrayLike,
     *,
+    lanes: Sequence[tuple[str, str]] | None = None,
     weekday: int = 0,
     truck_capacity: ArrayLike | None = None,
     unit_volume: ArrayLike | None = None,
@@ -182,6 +190,10 @@ def assortment_moves(
     policies: the distinct policies (each item's network solved), all over one layout.
     policy_of: shape (M,), index into `policies` of each item's policy.
     stocks: shape (M, N), integer closing stock of each item at each location.
+    lanes: the layout's L lanes as (sender, receiver) location ids, the order of the flows;
+        every policy's lanes must be among them (a policy may leave some out: its items are
+        never moved on those). None: every policy has the same lanes in the same order, and
+        those are the layout's.
     weekday: weekday of the business date of the closing counts (0 = Monday .. 6 = Sunday);
         each policy's phase is policy.phase_of(weekday), i.e. 0 for a stationary policy.
     truck_capacity: shape (L,), what each lane carries a night over all items (inf: not
@@ -190,11 +202,12 @@ def assortment_moves(
     item_ids: optional names of the items, used in error messages.
     Raises InvalidStockError for a stock of the wrong shape or type, negative or above the
     item's capacity (naming the first such item and location), ValueError for policies that do
-    not share one layout, a bad policy index, weekday, capacity or volume.
+    not share one layout (other locations, or a lane not among `lanes`), bad `lanes`, a bad
+    policy index, weekday, capacity or volume.
     """
     if not policies:
         raise ValueError("at least one policy is needed")
-    layout = _layout(policies)
+    layout = _layout(policies, lanes)
     index = np.asarray(policy_of)
     if index.ndim != 1 or not (index.size == 0 or np.issubdtype(index.dtype, np.integer)):
         raise ValueError("policy_of must be a 1-D integer array, one policy index per item")
@@ -218,17 +231,18 @@ def assortment_moves(
     cost = np.zeros(m)
     groups: list[_Group] = []
     for p, items in _groups(index):
-        policy = policies[p]
+        policy, columns = policies[p], layout.columns[p]
         phase = phase_of_weekday(weekday, policy.phases)
         sg = s[items]
         if isinstance(policy, PolicyResult):
-            tables = _exact_tables(policy, layout)
+            tables = _exact_tables(policy)
             f, v, v0, c, action, idx = _exact_moves(policy, tables, sg, phase)
-            groups.append(_Group(policy, phase, items, sg, (tables, action, idx)))
+            groups.append(_Group(policy, phase, columns, items, sg, (tables, action, idx)))
         else:
             f, v, v0, c = _priced_moves(policy, sg, phase)
-            groups.append(_Group(policy, phase, items, sg, None))
-        flows[items], value[items], without[items], cost[items] = f, v, v0, c
+            groups.append(_Group(policy, phase, columns, items, sg, None))
+        flows[np.ix_(items, columns)] = f
+        value[items], without[items], cost[items] = v, v0, c
 
     sharing, choices = None, None
     if truck_capacity is not None:
@@ -269,17 +283,54 @@ def _name(item: int, item_ids: Sequence[str] | None) -> str:
     return repr(item_ids[item]) if item_ids is not None else str(item)
 
 
-def _layout(policies: Sequence[ItemPolicy]) -> _Layout:
+def _layout(policies: Sequence[ItemPolicy], lanes: Sequence[tuple[str, str]] | None) -> _Layout:
     first = policies[0]
+    ids = first.location_ids
     for k, policy in enumerate(policies):
-        if policy.location_ids != first.location_ids or policy.lanes != first.lanes:
+        if policy.location_ids != ids:
             raise ValueError(
-                f"policy {k} is over other locations or lanes than policy 0: the items of an "
-                "assortment share one layout"
+                f"policy {k} is over other locations than policy 0: the items of an assortment "
+                "share one layout"
             )
-    lane_from, lane_to = first.lane_ends
-    incidence = lane_incidence(lane_from, lane_to, len(first.location_ids))
-    return _Layout(first.location_ids, first.lanes, lane_from, lane_to, incidence)
+        if lanes is None and policy.lanes != first.lanes:
+            raise ValueError(
+                f"policy {k} is over other lanes than policy 0: give the layout's `lanes` when "
+                "items are kept off some of them"
+            )
+    pairs = first.lanes if lanes is None else _lane_pairs(ids, lanes)
+    position = {pair: lane for lane, pair in enumerate(pairs)}
+    columns = []
+    for k, policy in enumerate(policies):
+        strange = [pair for pair in policy.lanes if pair not in position]
+        if strange:
+            a, b = strange[0]
+            raise ValueError(
+                f"policy {k} has a lane {ids[a]!r} -> {ids[b]!r}, which is not a lane of the layout"
+            )
+        columns.append(np.array([position[pair] for pair in policy.lanes], dtype=np.int64))
+    ends = np.array(pairs, dtype=np.int64).reshape(-1, 2)
+    incidence = lane_incidence(ends[:, 0], ends[:, 1], len(ids))
+    return _Layout(ids, tuple(pairs), incidence, tuple(columns))
+
+
+def _lane_pairs(
+    location_ids: tuple[str, ...], lanes: Sequence[tuple[str, str]]
+) -> tuple[tuple[int, int], ...]:
+    """The layout's lanes as (from, to) location indices."""
+    index = {location: i for i, location in enumerate(location_ids)}
+    pairs: dict[tuple[int, int], None] = {}
+    for a, b in lanes:
+        for end in (a, b):
+            if end not in index:
+                raise ValueError(f"lane {a!r} -> {b!r}: unknown location {end!r}")
+        if a == b:
+            raise ValueError(f"lane from {a!r} to itself")
+        if (index[a], index[b]) in pairs:
+            raise ValueError(f"duplicate lane {a!r} -> {b!r}")
+        pairs[index[a], index[b]] = None
+    if not pairs:
+        raise ValueError("the layout needs at least one lane")
+    return tuple(pairs)
 
 
 def _check_stocks(
@@ -383,17 +434,19 @@ def derived_bytes(policy: ItemPolicy) -> int:
     return 0 if tables is None else tables.nbytes
 
 
-def _exact_tables(policy: PolicyResult, layout: _Layout) -> _Tables:
+def _exact_tables(policy: PolicyResult) -> _Tables:
     tables = _TABLES.get(policy)
     if tables is None:
         flows = policy.flows
-        out, inn = flow_endpoints(flows, layout.lane_from, layout.lane_to, layout.n_locations)
+        lane_from, lane_to = policy.lane_ends
+        n_locations = len(policy.location_ids)
+        out, inn = flow_endpoints(flows, lane_from, lane_to, n_locations)
         strides = np.cumprod((1, *policy.shape[:0:-1]))[::-1].astype(np.int64)
         tables = _Tables(
             flows=flows,
-            lane_from=layout.lane_from,
-            lane_to=layout.lane_to,
-            n_locations=layout.n_locations,
+            lane_from=lane_from,
+            lane_to=lane_to,
+            n_locations=n_locations,
             shift=(inn - out) @ strides,
             cost=flow_costs(flows, policy.lane_costs, policy.dispatch_costs),
         )
@@ -624,8 +677,8 @@ def _candidates(
     without: NDArray[np.float64],
     cost: NDArray[np.float64],
 ) -> list[_Candidates]:
-    """Every item's candidates: all of them for the `contested` items, the item's own move
-    and moving nothing for the others."""
+    """Every item's candidates, flows over the layout's lanes: all of them for the `contested`
+    items, the item's own move and moving nothing for the others."""
     is_contested = np.zeros(flows.shape[0], dtype=bool)
     is_contested[contested] = True
     parts = [_settled(flows, value, without, cost, np.flatnonzero(~is_contested))]
@@ -637,32 +690,32 @@ def _candidates(
         if group.exact is not None:
             assert isinstance(group.policy, PolicyResult)
             tables, action, idx = group.exact
-            parts.append(
-                _exact_candidates(
-                    group.policy,
-                    tables,
-                    items,
-                    stocks,
-                    group.phase,
-                    action[sub],
-                    idx[sub],
-                    without[items],
-                )
+            part = _exact_candidates(
+                group.policy,
+                tables,
+                items,
+                stocks,
+                group.phase,
+                action[sub],
+                idx[sub],
+                without[items],
             )
         else:
             assert isinstance(group.policy, PricedPolicy)
-            parts.append(
-                _priced_candidates(
-                    group.policy,
-                    items,
-                    stocks,
-                    group.phase,
-                    flows[items],
-                    value[items],
-                    without[items],
-                    cost[items],
-                )
+            part = _priced_candidates(
+                group.policy,
+                items,
+                stocks,
+                group.phase,
+                flows[np.ix_(items, group.columns)],
+                value[items],
+                without[items],
+                cost[items],
             )
+        own = part.flows
+        part.flows = np.zeros((own.shape[0], flows.shape[1]), dtype=np.int64)
+        part.flows[:, group.columns] = own
+        parts.append(part)
     return parts
 
 

@@ -1,9 +1,10 @@
 """Tonight's moves of many items that share the lanes' transport capacity.
 
-Each item m of an assortment has its own optimal policy over the same locations and lanes.
-Uncoupled, item m would send its best flow; a lane's truck, shared by all items, may not carry
-them all. With symbols as in solver.model, item m at its closing stock has candidate flows
-k in K_m (those feasible tonight), each with a value
+Each item m of an assortment has its own optimal policy over the same locations and lanes (an
+item kept off a lane has no candidate that uses it: solver.assortment). Uncoupled, item m would
+send its best flow; a lane's truck, shared by all items, may not carry them all. With symbols
+as in solver.model, item m at its closing stock has candidate flows k in K_m (those feasible
+tonight), each with a value
 
     q_k = U_m(y_k) - cost_m(f_k)      (currency; the item's post-move value less move costs)
 

@@ -303,6 +303,23 @@ def _moves(pick: dict[str, Any]) -> set[tuple[str, str, str, int]]:
     return found
 
 
+def _close_night(
+    client: TestClient, assortment: int, stocks: dict[str, dict[str, int]]
+) -> tuple[set[tuple[str, str, str, int]], dict[str, Any]]:
+    """Every location reports its counts; the moves of all pick lists, and the night's summary."""
+    for location, counts in stocks.items():
+        assert _report(client, assortment, location, counts).status_code == 200
+    moves: set[tuple[str, str, str, int]] = set()
+    for location in stocks:
+        pick = client.get(
+            f"/v1/assortments/{assortment}/locations/{location}/pick-list",
+            params={"business_date": DAY},
+        )
+        assert pick.status_code == 200, pick.text
+        moves |= _moves(pick.json())
+    return moves, pick.json()["summary"]
+
+
 def test_pick_lists_equal_each_items_own_recommendation(client: TestClient, engine: Engine) -> None:
     assortment, codes = _assortment_with_items(client, engine, 12)
     stocks = _stocks(codes)
@@ -424,17 +441,7 @@ def test_shared_trucks_are_never_overloaded(client: TestClient, engine: Engine) 
     for lane in lanes[:2]:
         lane["truck_capacity"] = 3
     assortment, codes = _assortment_with_items(client, engine, 10, lanes=lanes)
-    stocks = _stocks(codes, seed=11)
-    for location, counts in stocks.items():
-        assert _report(client, assortment, location, counts).status_code == 200
-    moves: set[tuple[str, str, str, int]] = set()
-    for location in stocks:
-        pick = client.get(
-            f"/v1/assortments/{assortment}/locations/{location}/pick-list",
-            params={"business_date": DAY},
-        ).json()
-        moves |= _moves(pick)
-    summary = pick["summary"]
+    moves, summary = _close_night(client, assortment, _stocks(codes, seed=11))
     for lane in lanes[:2]:
         carried = sum(u for _, a, b, u in moves if (a, b) == (lane["from"], lane["to"]))
         assert carried <= 3
@@ -557,6 +564,120 @@ def test_a_new_layout_composes_every_item_again(client: TestClient, engine: Engi
         f"/v1/assortments/{assortment}", json=dearer, headers={"if-match": '"2"'}
     ).json()
     assert (again["updated"], again["unchanged"], again["jobs_queued"]) == (0, 2, 0)
+
+
+def _with_solvent(client: TestClient, lanes: list[dict[str, Any]]) -> tuple[int, list[str]]:
+    """An assortment of six tools and a solvent with the tools' numbers, but kept off
+    harbour -> old-town (its truck may not carry it); the tools' codes."""
+    assortment = _create(client, lanes=lanes)
+    tools = [f"TOOL-{k:03d}" for k in range(6)]
+    rows = [row + "," for code in tools for row in _csv_rows(code, 30.0)]
+    rows += [row + ",harbour>old-town:0" for row in _csv_rows("SOLVENT", 30.0)]
+    upload = client.post(
+        f"/v1/assortments/{assortment}/items",
+        content="\n".join([HEADER + ",lane_limits", *rows]) + "\n",
+        headers={"content-type": "text/csv"},
+    )
+    assert upload.status_code == 200, upload.text
+    assert upload.json()["specifications"] == 2
+    return assortment, tools
+
+
+def _lanes_of(client: TestClient, network_id: int) -> list[tuple[str, str]]:
+    spec = client.get(f"/v1/networks/{network_id}/versions").json()[0]["spec"]
+    return [(lane["from"], lane["to"]) for lane in spec["lanes"]]
+
+
+def test_an_item_kept_off_a_lane_gets_no_pick_list_line_on_it(
+    client: TestClient, engine: Engine
+) -> None:
+    lanes = [dict(lane) for lane in LAYOUT["lanes"]]
+    lanes[0]["truck_capacity"] = 4
+    assortment, tools = _with_solvent(client, lanes)
+    run_worker(engine)
+    items = {
+        i["item"]: i for i in client.get(f"/v1/assortments/{assortment}/items").json()["items"]
+    }
+    assert {i["state"] for i in items.values()} == {"ready"}
+    network = items["SOLVENT"]["network_id"]
+    assert _lanes_of(client, network) == [
+        ("old-town", "harbour"),
+        ("old-town", "ring-road"),
+        ("ring-road", "old-town"),
+    ]
+
+    # A full harbour and an empty old town: each tool on its own would send harbour -> old-town.
+    stock = {"harbour": 5, "old-town": 0, "ring-road": 3}
+    single = client.post(
+        f"/v1/networks/{items[tools[0]]['network_id']}/recommendation", json={"stock": stock}
+    ).json()
+    assert any((t["from"], t["to"]) == ("harbour", "old-town") for t in single["transfers"])
+    stocks = {location: {code: units for code in items} for location, units in stock.items()}
+    moves, summary = _close_night(client, assortment, stocks)
+    solvent = {(a, b, units) for item, a, b, units in moves if item == "SOLVENT"}
+    assert solvent, "the solvent still moves, on the lanes it may use"
+    assert all((a, b) != ("harbour", "old-town") for a, b, _ in solvent)
+    # Its moves are those its own network recommends (no truck binds on its lanes).
+    own = client.post(f"/v1/networks/{network}/recommendation", json={"stock": stock}).json()
+    assert solvent == {(t["from"], t["to"], t["units"]) for t in own["transfers"]}
+    # The tools share the harbour -> old-town truck, up to its capacity.
+    carried = sum(u for _, a, b, u in moves if (a, b) == ("harbour", "old-town"))
+    assert 0 < carried <= 4
+    assert summary["sharing"]["lane_load"][0] == carried
+
+    answer = client.post(
+        f"/v1/assortments/{assortment}/recommendations",
+        json={"stocks": {code: stock for code in items}, "business_date": DAY},
+    )
+    assert answer.status_code == 200, answer.text
+    by_item = {a["item"]: a for a in answer.json()["items"]}
+    assert {(t["from"], t["to"], t["units"]) for t in by_item["SOLVENT"]["transfers"]} == solvent
+    on_lane = [
+        t["units"]
+        for a in by_item.values()
+        for t in a["transfers"]
+        if (t["from"], t["to"]) == ("harbour", "old-town")
+    ]
+    assert sum(on_lane) == carried
+
+
+@sqlite_only
+def test_an_item_stays_off_its_lane_in_a_new_layout_and_keeps_one(client: TestClient) -> None:
+    lanes = [dict(lane) for lane in LAYOUT["lanes"]]
+    assortment, _ = _with_solvent(client, lanes)
+    items = client.get(f"/v1/assortments/{assortment}/items").json()["items"]
+    network = next(i["network_id"] for i in items if i["item"] == "SOLVENT")
+    dearer = {**LAYOUT, "lanes": [{**lane, "unit_cost": lane["unit_cost"] + 0.5} for lane in lanes]}
+    updated = client.put(f"/v1/assortments/{assortment}", json=dearer, headers={"if-match": '"1"'})
+    assert updated.status_code == 200, updated.text
+    assert updated.json()["updated"] == 7
+    assert len(_lanes_of(client, network)) == 3
+    assert ("harbour", "old-town") not in _lanes_of(client, network)
+
+    only_that_lane = {**LAYOUT, "lanes": lanes[:1]}
+    refused = client.put(
+        f"/v1/assortments/{assortment}", json=only_that_lane, headers={"if-match": '"2"'}
+    )
+    assert_problem(refused, 422)
+    assert pointers(refused.json()) == ["/items/SOLVENT"]
+    assert "at least one lane" in refused.json()["detail"]
+
+    def upload(limits: dict[str, int]) -> Any:
+        law = {"dist": "poisson", "mean": 1.0}
+        numbers = {"capacity": 4, "unit_margin": 9.0, "demand": law, "replenishment": law}
+        locations = dict.fromkeys(("harbour", "old-town", "ring-road"), numbers)
+        return client.post(
+            f"/v1/assortments/{assortment}/items",
+            json={"items": [{"item": "SOLVENT", "locations": locations, "lane_limits": limits}]},
+        )
+
+    closed = upload({f"{lane['from']}>{lane['to']}": 0 for lane in lanes})
+    assert_problem(closed, 422)
+    assert pointers(closed.json()) == ["/items/0"]
+    assert "every lane of the layout to 0" in closed.json()["errors"][0]["detail"]
+    negative = upload({"harbour>old-town": -1})
+    assert_problem(negative, 422)
+    assert pointers(negative.json()) == ["/items/0/lane_limits/harbour>old-town"]
 
 
 @pytest.mark.parametrize("database_url", ["postgresql"], indirect=True)

@@ -2,7 +2,8 @@
 
 Scenario of our own: three hardware stores (harbour, hill, market) stock many items over one
 set of lanes; items differ in capacities, margins, demand, lane limits (an item's own limit
-below the layout's), floors, weekly demand, criterion and solving mode.
+below the layout's, or none: an item kept off a lane has a network without it, its lanes listed
+in another order), floors, weekly demand, criterion and solving mode.
 
 Checks: every item's moves and values equal its own policy's single-stock recommendation (the
 per-item answer the service serves today), for exact stationary, average-criterion, weekly and
@@ -11,6 +12,8 @@ shared truck capacity the capacity is never exceeded (units and volumes), a capa
 not bind leaves the uncoupled moves exactly, and on small coupled instances the allocation and
 its bound bracket the best assignment found by scipy.optimize.milp (HiGHS branch and bound, an
 outside reference) over every flow the items could send tonight, enumerated here by brute force.
+Items kept off a lane never move on it, even where an item of the same numbers on every lane
+does, and the other items still share its truck.
 """
 
 from __future__ import annotations
@@ -40,6 +43,7 @@ LANES = (
     ("market", "hill", 0.9, 2, 0.0),
     ("harbour", "market", 1.6, 2, 0.0),
 )
+LAYOUT_LANES = tuple((a, b) for a, b, *_ in LANES)
 
 
 def item_network(
@@ -113,6 +117,39 @@ def policies() -> tuple[ItemPolicy, ...]:
     )
 
 
+def kept_off(spec: NetworkSpec, lane: int) -> NetworkSpec:
+    """The item's network without one lane of the layout (the item is kept off it), its other
+    lanes listed in reverse order: assortment_moves must match lanes by their ends."""
+    document = spec.model_dump(mode="json", by_alias=True)
+    document["lanes"] = [own for k, own in enumerate(document["lanes"]) if k != lane][::-1]
+    return NetworkSpec.model_validate(document)
+
+
+@cache
+def kept_off_policies() -> tuple[ItemPolicy, ...]:
+    """Exact and priced items kept off harbour -> hill, with the numbers of policies()[0] and
+    policies()[5] (which may use every lane)."""
+    return (
+        solve_network(kept_off(item_network((5, 4, 5), (1.2, 0.6, 1.5)), 0)),
+        solve_priced(kept_off(item_network((6, 5, 5), (1.4, 0.5, 1.2)), 0), options=QUICK),
+    )
+
+
+def on_layout(policy: ItemPolicy, flow: tuple[int, ...] | NDArray[np.int64]) -> NDArray[np.int64]:
+    """A flow over the policy's own lanes placed over the layout's lanes, by the lanes' ends."""
+    ids = policy.location_ids
+    placed = np.zeros(len(LANES), dtype=np.int64)
+    for (a, b), units in zip(policy.lanes, flow, strict=True):
+        placed[LAYOUT_LANES.index((ids[a], ids[b]))] = units
+    return placed
+
+
+def own_lanes(policy: ItemPolicy, flow: NDArray[np.int64]) -> NDArray[np.int64]:
+    """A flow over the layout's lanes taken back to the policy's own lanes."""
+    ids = policy.location_ids
+    return np.array([flow[LAYOUT_LANES.index((ids[a], ids[b]))] for a, b in policy.lanes])
+
+
 def random_stocks(
     rng: np.random.Generator, pols: tuple[ItemPolicy, ...], policy_of: NDArray[np.int64]
 ) -> NDArray[np.int64]:
@@ -126,13 +163,14 @@ def assert_matches_recommendations(
     policy_of: NDArray[np.int64],
     stocks: NDArray[np.int64],
     weekday: int,
+    lanes: tuple[tuple[str, str], ...] | None = None,
 ) -> None:
-    moves = assortment_moves(pols, policy_of, stocks, weekday=weekday)
+    moves = assortment_moves(pols, policy_of, stocks, weekday=weekday, lanes=lanes)
     assert moves.sharing is None
     for m, (p, stock) in enumerate(zip(policy_of, stocks, strict=True)):
         policy = pols[p]
         single = policy.recommend(tuple(int(u) for u in stock), phase=policy.phase_of(weekday))
-        assert tuple(moves.flows[m]) == single.flows, m
+        np.testing.assert_array_equal(moves.flows[m], on_layout(policy, single.flows), str(m))
         assert tuple(moves.post_move_stock[m]) == single.post_move_stock, m
         np.testing.assert_allclose(moves.value[m], single.expected_value, rtol=1e-12, atol=1e-9)
         np.testing.assert_allclose(
@@ -217,16 +255,18 @@ def test_malformed_stocks_are_refused(stocks: list[list[float]], message: str) -
 
 
 def test_policies_must_share_one_layout() -> None:
-    other = solve_network(
-        NetworkSpec.model_validate(
-            {
-                **item_network((3, 3, 3), (1.0, 1.0, 1.0)).model_dump(mode="json", by_alias=True),
-                "lanes": [{"from": "harbour", "to": "hill", "unit_cost": 1.0, "max_units": 1}],
-            }
-        )
-    )
-    with pytest.raises(ValueError, match="policy 1 is over other locations or lanes"):
+    document = item_network((3, 3, 3), (1.0, 1.0, 1.0)).model_dump(mode="json", by_alias=True)
+    one_lane = {"from": "harbour", "to": "hill", "unit_cost": 1.0, "max_units": 1}
+    other = solve_network(NetworkSpec.model_validate({**document, "lanes": [one_lane]}))
+    with pytest.raises(ValueError, match="policy 1 is over other lanes than policy 0"):
         assortment_moves([policies()[0], other], [0, 1], [[0, 0, 0], [0, 0, 0]])
+    # The same stores in another order: the stocks' columns would mean other stores.
+    document["locations"].reverse()
+    turned = solve_network(NetworkSpec.model_validate(document))
+    with pytest.raises(ValueError, match="policy 1 is over other locations than policy 0"):
+        assortment_moves(
+            [policies()[0], turned], [0, 1], [[0, 0, 0], [0, 0, 0]], lanes=LAYOUT_LANES
+        )
 
 
 def test_bad_policy_index_weekday_and_names_are_refused() -> None:
@@ -484,3 +524,124 @@ def test_a_truck_counted_in_units_holds_whole_units() -> None:
     np.testing.assert_array_equal(a.flows, b.flows)
     assert a.sharing.bound == b.sharing.bound
     assert np.all(a.flows.sum(axis=0) <= whole)
+
+
+# -- items kept off a lane ---------------------------------------------------------------------
+
+
+def test_the_layouts_lane_order_is_the_order_of_the_flows() -> None:
+    pols = policies()
+    policy_of, stocks = mixed_assortment(29, 300)
+    free = assortment_moves(pols, policy_of, stocks, weekday=3)
+    same = assortment_moves(pols, policy_of, stocks, weekday=3, lanes=LAYOUT_LANES)
+    np.testing.assert_array_equal(same.flows, free.flows)
+    turned = assortment_moves(pols, policy_of, stocks, weekday=3, lanes=LAYOUT_LANES[::-1])
+    assert free.flows.any(axis=0).all()
+    np.testing.assert_array_equal(turned.flows, free.flows[:, ::-1])
+    np.testing.assert_array_equal(turned.post_move_stock, free.post_move_stock)
+    np.testing.assert_array_equal(turned.value, free.value)
+
+
+@pytest.mark.parametrize("weekday", [1, 5])
+def test_items_kept_off_a_lane_move_as_their_own_policies_recommend(weekday: int) -> None:
+    pols = policies() + kept_off_policies()
+    rng = np.random.default_rng(41 + weekday)
+    policy_of = rng.integers(0, len(pols), size=700)
+    assert set(policy_of) == set(range(len(pols)))
+    stocks = random_stocks(rng, pols, policy_of)
+    assert_matches_recommendations(pols, policy_of, stocks, weekday, LAYOUT_LANES)
+
+
+def test_an_item_kept_off_a_lane_never_moves_on_it_where_it_would_pay() -> None:
+    every_lane, off = policies()[0], kept_off_policies()[0]
+    assert isinstance(every_lane, PolicyResult) and isinstance(off, PolicyResult)
+    assert len(off.lanes) == len(LANES) - 1
+    stocks = np.array(
+        list(itertools.product(*(range(c + 1) for c in every_lane.capacities))), dtype=np.int64
+    )
+    n = len(stocks)
+    moves = assortment_moves(
+        [every_lane, off], np.repeat([0, 1], n), np.vstack([stocks, stocks]), lanes=LAYOUT_LANES
+    )
+    # The same numbers on every lane send harbour -> hill from many stocks: it pays there.
+    pays = moves.flows[:n, 0] > 0
+    assert pays.sum() >= 10
+    assert not moves.flows[n:, 0].any()
+    assert moves.flows[n:, 4].any()  # the item still moves, on the lanes it may use
+    # Fewer lanes are worth no more (both policies optimal), and less where the lane pays.
+    assert np.all(moves.value[n:] <= moves.value[:n] + 1e-7)
+    assert np.all(moves.value[n:][pays] < moves.value[:n][pays])
+
+
+def lane_limits_of(policy: ItemPolicy) -> NDArray[np.int64]:
+    """Most units per lane of the policy's own lanes, over every night."""
+    if isinstance(policy, PolicyResult):
+        most: NDArray[np.int64] = policy.flows.max(axis=0)
+    else:
+        most = np.asarray(policy.lane_limits).max(axis=0)
+    return most
+
+
+@pytest.mark.parametrize("volumes", [False, True])
+def test_items_kept_off_a_lane_leave_its_truck_to_the_others(volumes: bool) -> None:
+    pols = policies() + kept_off_policies()
+    is_off = np.arange(len(pols)) >= len(policies())
+    rng = np.random.default_rng(43)
+    policy_of = rng.integers(0, len(pols), size=500)
+    stocks = random_stocks(rng, pols, policy_of)
+    volume = rng.choice([0.5, 1.0, 2.5], size=policy_of.size) if volumes else None
+    weight = np.ones(policy_of.size) if volume is None else volume
+    free = assortment_moves(pols, policy_of, stocks, lanes=LAYOUT_LANES)
+    loads = (free.flows * weight[:, None]).sum(axis=0)
+    capacity = np.full(len(LANES), np.inf)
+    capacity[0] = np.floor(loads[0] / 3)  # harbour -> hill, which some items are kept off
+    capacity[4] = np.floor(loads[4] / 2)  # harbour -> market, which every item may use
+    shared = assortment_moves(
+        pols,
+        policy_of,
+        stocks,
+        lanes=LAYOUT_LANES,
+        truck_capacity=capacity,
+        unit_volume=volume,
+    )
+    assert shared.sharing is not None and shared.candidates is not None
+    off = is_off[policy_of]
+    assert not shared.flows[off, 0].any()
+    assert not shared.candidates.flows[off[shared.candidates.item], 0].any()
+    used = (shared.flows * weight[:, None]).sum(axis=0)
+    assert np.all(used <= capacity + 1e-9)
+    np.testing.assert_allclose(shared.sharing.load, used)
+    # The other items still share the truck the kept-off items cannot use ...
+    assert used[0] >= 0.8 * capacity[0] > 0
+    # ... and the kept-off items (exact and priced) give way on the lanes they share with them.
+    for p in np.flatnonzero(is_off):
+        mine = policy_of == p
+        assert np.any(shared.flows[mine] != free.flows[mine]), p
+    assert np.all(shared.value >= shared.value_without_moves - 1e-9)
+    for m, p in enumerate(policy_of):
+        policy = pols[p]
+        own = own_lanes(policy, shared.flows[m])
+        assert own.sum() == shared.flows[m].sum(), m
+        assert np.all(own <= lane_limits_of(policy)), m
+        assert feasible_tonight(policy, stocks[m], own), m
+        if isinstance(policy, PolicyResult) and policy.phases == 1:
+            post = tuple(int(u) for u in shared.post_move_stock[m])
+            u = policy.post_move_values[0, policy.state_index(post)] - (policy.gain or 0.0)
+            np.testing.assert_allclose(shared.value[m], u - shared.transfer_cost[m], atol=1e-9)
+
+
+def test_lanes_that_do_not_fit_the_policies_are_refused() -> None:
+    every_lane, off = policies()[0], kept_off_policies()[0]
+    nothing = [[0, 0, 0], [0, 0, 0]]
+    with pytest.raises(ValueError, match="give the layout's `lanes` when items are kept off"):
+        assortment_moves([every_lane, off], [0, 1], nothing)
+    with pytest.raises(ValueError, match="policy 0 has a lane 'harbour' -> 'hill', which is not"):
+        assortment_moves([every_lane, off], [0, 1], nothing, lanes=LAYOUT_LANES[1:])
+    for lanes, message in [
+        ((*LAYOUT_LANES, ("harbour", "attic")), "lane 'harbour' -> 'attic': unknown location"),
+        ((*LAYOUT_LANES, LAYOUT_LANES[2]), "duplicate lane 'hill' -> 'market'"),
+        ((*LAYOUT_LANES, ("hill", "hill")), "lane from 'hill' to itself"),
+        ((), "at least one lane"),
+    ]:
+        with pytest.raises(ValueError, match=message):
+            assortment_moves([off], [0], [[0, 0, 0]], lanes=lanes)
