@@ -271,10 +271,11 @@ def _plan(
             job_state=None,
         ) from exc
     transfers = transfers_of(served.result, recommendation.flows)
+    phase = served.result.phase_of(business_date.weekday())
     plan = {
         "stock": counts,
         "transfers": [t.as_json() for t in transfers],
-        "relays": [relay.as_json() for relay in relays_of(served.result, transfers)],
+        "relays": [relay.as_json() for relay in relays_of(served.result, transfers, phase)],
         "notes": _notes(session, network, served, recommendation, business_date),
     }
     return served, plan

@@ -555,7 +555,7 @@ def test_a_relay_beside_a_direct_lane_says_why_the_lane_is_not_used_alone(
     found = []
     for vector in itertools.product(*(range(loc.capacity + 1) for loc in spec.locations)):
         flows = result.recommend(list(vector)).flows
-        for relay in relays_of(result, transfers_of(result, flows)):
+        for relay in relays_of(result, transfers_of(result, flows), 0):
             if reason in relay.explanation:
                 found.append(flows)
     assert found, f"no relay explained by {reason!r}"
@@ -566,3 +566,35 @@ def test_a_relay_beside_a_direct_lane_says_why_the_lane_is_not_used_alone(
             assert flows[2] == direct["max_units"]
         else:
             assert direct["unit_cost"] > 0.5 + 0.5
+
+
+def test_a_full_direct_lane_is_full_by_tonights_limit(client: TestClient, engine: Engine) -> None:
+    """The direct lane carries at most 1 unit on Monday nights and 3 on every other night: a
+    relay on a Monday night says the lane is full at 1, in the solver's moves and over HTTP."""
+    limits = dict.fromkeys(WEEK, 3) | {"mon": 1}
+    document = chain_document()
+    document["lanes"].append(
+        {"from": "depot", "to": "far", "unit_cost": 0.9, "max_units": {"weekly": limits}}
+    )
+    spec = NetworkSpec.model_validate(document)
+    result = solve_network(spec)
+    full = []
+    for phase, day in enumerate(WEEK):
+        for vector in itertools.product(*(range(loc.capacity + 1) for loc in spec.locations)):
+            flows = result.recommend(list(vector), phase=phase).flows
+            for relay in relays_of(result, transfers_of(result, flows), phase):
+                if "the direct lane depot -> far is full tonight" in relay.explanation:
+                    assert f"(at most {limits[day]})" in relay.explanation
+                    assert flows[2] == limits[day]
+                    full.append((day, list(vector)))
+    monday = [vector for day, vector in full if day == "mon"]
+    assert monday, "no Monday relay beside the full direct lane"
+    network_id = create_network(client, document)["id"]
+    run_worker(engine)
+    body = client.post(
+        f"/v1/networks/{network_id}/recommendation",
+        json={"stock": stock_of(spec, monday[0]), "business_date": "2026-11-30"},
+    ).json()
+    assert body["night"] == "mon"
+    (relay,) = body["relays"]
+    assert "the direct lane depot -> far is full tonight (at most 1)" in relay["explanation"]
