@@ -84,7 +84,10 @@ def recommendation_out(
     served: ServedPolicy,
     recommendation: Recommendation,
     business_date: date | None = None,
+    *,
+    notes: list[str],
 ) -> RecommendationOut:
+    """The answer to a recommendation request; `notes` as service.notes gives them."""
     result = served.result
     ids = result.location_ids
     transfers = transfers_of(result, recommendation.flows)
@@ -109,6 +112,7 @@ def recommendation_out(
         transfers=transfers_out(transfers),
         stock_after_transfers=dict(zip(ids, recommendation.post_move_stock, strict=True)),
         relays=relays_out(relays_of(result, transfers, phase)),
+        notes=notes,
         transfer_cost=recommendation.transfer_cost,
         expected_value=recommendation.expected_value,
         value_without_transfers=recommendation.value_without_transfers,
