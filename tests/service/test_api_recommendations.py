@@ -20,6 +20,8 @@ import service.serving
 from service.api import recommendations as recommendations_module
 from service.moves import relays_of, transfers_of
 from solver import NetworkSpec, PolicyResult, solve_network
+from solver.priced import solve_priced
+from solver.priced_result import PricedOptions
 from solver.spec import WEEKDAYS as WEEK
 from tests.service.api_support import (
     assert_problem,
@@ -647,3 +649,25 @@ def test_a_recommendation_notes_what_the_closing_instructions_note(
     # Nothing moves from an empty network: only the note on the parameters.
     quiet = recommend(client, network_id, dict.fromkeys(stock, 0)).json()
     assert quiet["transfers"] == [] and len(quiet["notes"]) == 1
+
+
+@pytest.mark.parametrize("method", ["exact", "priced"])
+def test_either_method_judges_a_full_direct_lane_by_the_nights_limit(method: str) -> None:
+    """The same moves (one unit over each lane) fill the direct lane on a Monday night, when it
+    carries at most 1, and not on a Tuesday night, when it carries 3."""
+    document = chain_document()
+    limits = dict.fromkeys(WEEK, 3) | {"mon": 1}
+    document["lanes"].append(
+        {"from": "depot", "to": "far", "unit_cost": 0.9, "max_units": {"weekly": limits}}
+    )
+    spec = NetworkSpec.model_validate(document)
+    result = (
+        solve_network(spec)
+        if method == "exact"
+        else solve_priced(spec, options=PricedOptions(replications=8, target_half_width=0.01))
+    )
+    transfers = transfers_of(result, (1, 1, 1))
+    (monday,) = relays_of(result, transfers, result.phase_of(0))
+    assert "the direct lane depot -> far is full tonight (at most 1)" in monday.explanation
+    (tuesday,) = relays_of(result, transfers, result.phase_of(1))
+    assert "full tonight" not in tuesday.explanation
