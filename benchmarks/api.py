@@ -13,7 +13,7 @@ random closing stocks:
 * one client, sequential requests on one keep-alive connection;
 * 32 concurrent clients on 32 keep-alive connections: with wrk (Debian's `wrk` package, a C
   load generator light enough to leave the cores to the server) when it is installed, else
-  httpx.AsyncClient in this process; every phase bounded in time;
+  httpx2.AsyncClient in this process; every phase bounded in time;
 * one batch of 1,000 items (POST /v1/recommendations/batch), repeated, median.
 
 Client, server and database share this machine's two cores; the table gives the CPU time of the
@@ -44,7 +44,7 @@ from dataclasses import asdict, dataclass
 from pathlib import Path
 from typing import Any
 
-import httpx
+import httpx2
 import numpy as np
 from sqlalchemy import create_engine, text
 
@@ -126,8 +126,8 @@ def server(url: str, log: Path, workers: int) -> Iterator[tuple[str, subprocess.
         while True:
             if process.poll() is not None:
                 raise RuntimeError(f"the server exited with {process.returncode}; see {log}")
-            with contextlib.suppress(httpx.TransportError):
-                if httpx.get(base + "/readyz", timeout=2).status_code == 200:
+            with contextlib.suppress(httpx2.TransportError):
+                if httpx2.get(base + "/readyz", timeout=2).status_code == 200:
                     break
             if time.monotonic() > give_up:
                 raise TimeoutError(f"the server did not answer within {START_DEADLINE_S} s")
@@ -211,7 +211,7 @@ def stock_bodies(count: int, seed: int) -> list[bytes]:
     ]  # fmt: skip
 
 
-def outcome(response: httpx.Response | BaseException) -> str | None:
+def outcome(response: httpx2.Response | BaseException) -> str | None:
     """None for a 200, else what went wrong: the status code or the exception's name."""
     if isinstance(response, BaseException):
         return type(response).__name__
@@ -248,14 +248,14 @@ def sequential(base: str, path: str, bodies: list[bytes], pid: int, database: st
     latencies: list[float] = []
     errors: Counter[str] = Counter()
     cpu_before = cpu_seconds(pid)
-    with httpx.Client(base_url=base, timeout=10, headers=AUTH) as client:
+    with httpx2.Client(base_url=base, timeout=10, headers=AUTH) as client:
         start = time.perf_counter()
         give_up = start + PHASE_DEADLINE_S
         for body in bodies:
             t = time.perf_counter()
             try:
                 wrong = outcome(client.post(path, content=body, headers=headers))
-            except httpx.HTTPError as exc:
+            except httpx2.HTTPError as exc:
                 wrong = outcome(exc)
             latencies.append(time.perf_counter() - t)
             if wrong is not None:
@@ -275,8 +275,8 @@ async def _concurrent(
     latencies: list[float] = []
     errors: Counter[str] = Counter()
     pending = iter(bodies)
-    limits = httpx.Limits(max_connections=clients, max_keepalive_connections=clients)
-    async with httpx.AsyncClient(base_url=base, timeout=10, limits=limits, headers=AUTH) as client:
+    limits = httpx2.Limits(max_connections=clients, max_keepalive_connections=clients)
+    async with httpx2.AsyncClient(base_url=base, timeout=10, limits=limits, headers=AUTH) as client:
         start = time.perf_counter()
         give_up = start + PHASE_DEADLINE_S
 
@@ -285,7 +285,7 @@ async def _concurrent(
                 t = time.perf_counter()
                 try:
                     wrong = outcome(await client.post(path, content=body, headers=headers))
-                except httpx.HTTPError as exc:
+                except httpx2.HTTPError as exc:
                     wrong = outcome(exc)
                 latencies.append(time.perf_counter() - t)
                 if wrong is not None:
@@ -378,7 +378,7 @@ def batch(base: str, network_id: int, repeats: int, pid: int, database: str) -> 
     latencies: list[float] = []
     errors: Counter[str] = Counter()
     cpu_before = cpu_seconds(pid)
-    with httpx.Client(base_url=base, timeout=60, headers=AUTH) as client:
+    with httpx2.Client(base_url=base, timeout=60, headers=AUTH) as client:
         start = time.perf_counter()
         for _ in range(repeats):
             t = time.perf_counter()
@@ -417,7 +417,7 @@ def measure(database: str, url: str, quick: bool, workers: int) -> list[Phase]:
     RESULTS.mkdir(parents=True, exist_ok=True)
     with server(url, RESULTS / f"api-server-{database}.log", workers) as (base, process):
         document = json.loads(DEMO.read_text())
-        created = httpx.post(base + "/v1/networks", json=document, timeout=10, headers=AUTH)
+        created = httpx2.post(base + "/v1/networks", json=document, timeout=10, headers=AUTH)
         created.raise_for_status()
         network_id = created.json()["id"]
         solve_queued(url)
@@ -505,7 +505,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         "targets": {"p99_ms_one_client": P99_TARGET_MS, "requests_per_s": THROUGHPUT_TARGET},
         "cpus": os.cpu_count(),
         "api_processes": args.processes,
-        "load_generator": "wrk" if shutil.which("wrk") else "httpx",
+        "load_generator": "wrk" if shutil.which("wrk") else "httpx2",
     }
     args.out.parent.mkdir(parents=True, exist_ok=True)
     args.out.write_text(json.dumps(document, indent=2))

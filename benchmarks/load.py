@@ -2,7 +2,7 @@
 
 Usage: .venv/bin/python benchmarks/load.py [--seconds 30] [--clients 16]
 
-For `--seconds`, `--clients` concurrent clients (httpx, one key) send a mix of requests:
+For `--seconds`, `--clients` concurrent clients (httpx2, one key) send a mix of requests:
 80% recommendations at random closing stocks, 10% batches of 50 items, 10% new versions of
 their own network (PUT with If-Match and an Idempotency-Key, a demand mean nudged each time), so
 the worker re-solves in the background throughout. Afterwards the worker is given time to drain
@@ -26,7 +26,7 @@ from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
 
-import httpx
+import httpx2
 from sqlalchemy import func, select
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
@@ -57,7 +57,7 @@ async def _client(
     rng = random.Random(seed)
     document = json.loads(api.DEMO.read_text())
     document["name"] = f"load client {seed}"
-    async with httpx.AsyncClient(base_url=base, timeout=30, headers=auth) as client:
+    async with httpx2.AsyncClient(base_url=base, timeout=30, headers=auth) as client:
         created = await client.post("/v1/networks", json=document)
         own = created.json()["id"]
         version = 1
@@ -110,7 +110,7 @@ def run(seconds: float, clients: int) -> dict[str, Any]:
         )  # fmt: skip
         try:
             with api.server(url, api.RESULTS / "load-server.log") as (base, _process):
-                created = httpx.post(
+                created = httpx2.post(
                     base + "/v1/networks", json=json.loads(api.DEMO.read_text()), headers=auth
                 )
                 network_id = created.json()["id"]
@@ -177,7 +177,7 @@ def run(seconds: float, clients: int) -> dict[str, Any]:
 
 
 def _ready(base: str, auth: dict[str, str], network_id: int) -> bool:
-    solves = httpx.get(f"{base}/v1/networks/{network_id}", headers=auth).json()["solves"]
+    solves = httpx2.get(f"{base}/v1/networks/{network_id}", headers=auth).json()["solves"]
     return any(s["criterion"] == "discounted" and s["state"] == "ready" for s in solves)
 
 

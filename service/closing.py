@@ -28,7 +28,7 @@ from service.db.closing import (
     instruction_for,
     set_closing_count,
 )
-from service.db.networks import current_spec, latest_version
+from service.db.networks import current_spec
 from service.db.tables import ClosingCorrection, Instruction, Network, NetworkVersion
 from service.errors import (
     ClosingConflictError,
@@ -37,10 +37,10 @@ from service.errors import (
     StockProblemsError,
     UnknownLocationError,
 )
-from service.estimates import law_moments
 from service.moves import relays_of, transfers_of
+from service.notes import current_version_number, notes_for
 from service.serving import PolicyCache, ServedPolicy, business_date_of, recommend
-from solver import NetworkSpec, Recommendation
+from solver import NetworkSpec
 
 __all__ = ["CountReported", "LocationInstructions", "instructions_for", "report_count"]
 
@@ -48,12 +48,6 @@ audit = logging.getLogger("stockrelay.audit")
 
 # Business dates are local to the stores; allow a day either side of the server's UTC date.
 _DATE_SLACK = timedelta(days=1)
-
-
-def _current_number(session: Session, network: Network) -> int:
-    version = latest_version(session, network.id)
-    assert version is not None
-    return version.number
 
 
 def _check_location(spec: NetworkSpec, network_id: int, location: str) -> int:
@@ -266,61 +260,19 @@ def _plan(
         # The counts fit the current version (they were checked on arrival); only an older
         # policy, served while the current one is solved, can refuse them: wait for it.
         raise PolicyNotReadyError(
-            f"the closing stock fits version {_current_number(session, network)} of network "
-            f"{network.id}, whose policy is not ready yet ({exc})",
+            f"the closing stock fits version {current_version_number(session, network.id)} "
+            f"of network {network.id}, whose policy is not ready yet ({exc})",
             job_state=None,
         ) from exc
     transfers = transfers_of(served.result, recommendation.flows)
+    phase = served.result.phase_of(business_date.weekday())
     plan = {
         "stock": counts,
         "transfers": [t.as_json() for t in transfers],
-        "relays": [relay.as_json() for relay in relays_of(served.result, transfers)],
-        "notes": _notes(session, network, served, recommendation, business_date),
+        "relays": [relay.as_json() for relay in relays_of(served.result, transfers, phase)],
+        "notes": notes_for(session, network.id, served, recommendation, business_date),
     }
     return served, plan
-
-
-def _notes(
-    session: Session,
-    network: Network,
-    served: ServedPolicy,
-    recommendation: Recommendation,
-    business_date: date,
-) -> list[str]:
-    """Cautions for the people who act on the plan: the moves follow the model and its
-    parameters, so say when those deserve a look."""
-    notes = []
-    if served.stale:
-        notes.append(
-            f"planned with version {served.version_number}'s policy while version "
-            f"{_current_number(session, network)} is being solved: the newer network's changes "
-            "are not in it"
-        )
-    if served.calibrated_at is None:
-        notes.append(
-            f"version {served.version_number}'s demand and replenishment were entered as they "
-            "are, not estimated from sales history: check them before relying on the moves"
-        )
-    version = session.get_one(NetworkVersion, served.version_id)
-    spec = NetworkSpec.model_validate_json(version.spec_json)
-    tomorrow = (business_date + timedelta(days=1)).weekday()
-    result = served.result
-    for index, location in enumerate(spec.locations):
-        sent = sum(
-            units
-            for (a, _), units in zip(result.lanes, recommendation.flows, strict=True)
-            if a == index
-        )
-        if sent == 0:
-            continue
-        expected = law_moments(location.demand_on(tomorrow))[0]
-        keeps = recommendation.post_move_stock[index]
-        if keeps < expected:
-            notes.append(
-                f"{location.id} sends {sent} and keeps {keeps}, below its expected demand of "
-                f"{expected:.2f} tomorrow: worth a look if its demand is uncertain"
-            )
-    return notes
 
 
 def _issue(

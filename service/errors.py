@@ -26,6 +26,7 @@ PROBLEM_OF), the CLI prints the message of a UsageError (or an InputError) as on
     ├── NetworkNameTakenError    another of the tenant's networks has the name
     ├── NetworkArchivedError     a write to an archived network (the CLI's import)
     ├── NothingToApplyError      calibration apply with no estimate, or none that changes
+    ├── SettingsConflictError    calibration settings the stored history breaks (`days`)
     ├── ConcurrentUploadError    another upload stored the same days at the same moment
     ├── PolicyNotReadyError      no ready policy yet; `job_state` of the solve
     │   └── PolicyNotSolvedError no solve will produce it; `criteria` in use
@@ -41,6 +42,7 @@ PROBLEM_OF), the CLI prints the message of a UsageError (or an InputError) as on
 from __future__ import annotations
 
 from collections.abc import Sequence
+from datetime import date
 
 from solver import InvalidStockError
 
@@ -68,6 +70,7 @@ __all__ = [
     "PolicyNotReadyError",
     "PolicyNotSolvedError",
     "ServiceError",
+    "SettingsConflictError",
     "StockProblemsError",
     "UnknownJobError",
     "UnknownLocationError",
@@ -187,6 +190,15 @@ class NetworkArchivedError(ServiceError):
 class NothingToApplyError(ServiceError):
     """Calibration apply finds no location to estimate, or estimates equal to the current
     version's parameters."""
+
+
+class SettingsConflictError(ServiceError):
+    """Calibration settings that days of the stored history would break; `days` names the
+    first of them as (location, date)."""
+
+    def __init__(self, message: str, *, days: list[tuple[str, date]]) -> None:
+        super().__init__(message)
+        self.days = days
 
 
 class ConcurrentUploadError(ServiceError):

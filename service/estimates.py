@@ -24,10 +24,15 @@ from numpy.typing import NDArray
 from sqlalchemy.orm import Session
 
 from service.db.base import utcnow
-from service.db.history import calibration_settings, sales_history, save_calibration_settings
+from service.db.history import (
+    calibration_settings,
+    days_selling_receipts,
+    sales_history,
+    save_calibration_settings,
+)
 from service.db.networks import canonical_spec, latest_version
 from service.db.tables import Network, NetworkVersion
-from service.errors import NothingToApplyError
+from service.errors import HistoryInputError, NothingToApplyError, SettingsConflictError
 from service.networks import Written, add_network_version
 from solver import ModelTooLargeError, NetworkSpec, SizeLimits
 from solver.estimation import (
@@ -322,7 +327,12 @@ def propose(
 
 
 def save_options(session: Session, network: Network, options: CalibrationOptions) -> None:
-    """Keep `options` as the network's settings."""
+    """Keep `options` as the network's settings. SettingsConflictError when they turn
+    receipts_sell_same_day off while stored days sold more than their stock at open: those
+    days are only valid with it on, as an upload's rows are checked (service.history), and
+    calibration could not read them."""
+    if not options.receipts_sell_same_day:
+        _check_no_same_day_sales(session, network)
     save_calibration_settings(
         session,
         network.id,
@@ -332,6 +342,21 @@ def save_options(session: Session, network: Network, options: CalibrationOptions
         auto_apply_threshold=options.auto_apply_threshold,
         receipts_sell_same_day=options.receipts_sell_same_day,
         updated_at=utcnow(),
+    )
+
+
+def _check_no_same_day_sales(session: Session, network: Network) -> None:
+    count, days = days_selling_receipts(session, network.id, limit=HistoryInputError.SHOWN)
+    if not count:
+        return
+    named = ", ".join(f"{location} on {day}" for location, day in days)
+    more = f" and {count - len(days)} more" if count > len(days) else ""
+    raise SettingsConflictError(
+        f"receipts_sell_same_day stays on: {count} stored day{'s' if count != 1 else ''} of "
+        f"history sold more than the stock at open, which only a day that sells its receipts "
+        f"can ({named}{more}); send those days again with units_sold at most stock_at_open "
+        "(a repeat replaces a day), then turn the setting off",
+        days=days,
     )
 
 

@@ -9,6 +9,7 @@ from dataclasses import asdict, dataclass
 from typing import Any
 
 import numpy as np
+from numpy.typing import NDArray
 
 from service.codec import StoredPolicy
 from solver.priced_result import PricedPolicy
@@ -63,15 +64,12 @@ def transfers_of(result: StoredPolicy, flows: tuple[int, ...]) -> list[Transfer]
     ]
 
 
-def relays_of(result: StoredPolicy, transfers: list[Transfer]) -> list[Relay]:
+def relays_of(result: StoredPolicy, transfers: list[Transfer], phase: int) -> list[Relay]:
     """Every location that receives and sends tonight, in network order, with the reason units
-    go through it rather than straight from each origin to each destination."""
-    # Most units a lane carries on any night: the largest flow of the exact policy's table, or
-    # the priced policy's lane limits.
-    if isinstance(result, PricedPolicy):
-        most = np.asarray(result.lane_limits).max(axis=0)
-    else:
-        most = result.flows.max(axis=0)
+    go through it rather than straight from each origin to each destination. `phase` is the
+    policy phase of tonight (result.phase_of the business date's weekday): a lane's limit may
+    differ from night to night, and a full lane is full by tonight's."""
+    most = _night_limits(result, phase)
     lanes = {
         (result.location_ids[a], result.location_ids[b]): (
             float(result.lane_costs[lane]),
@@ -114,6 +112,15 @@ def relays_of(result: StoredPolicy, transfers: list[Transfer]) -> list[Relay]:
             )
         )
     return relays
+
+
+def _night_limits(result: StoredPolicy, phase: int) -> NDArray[np.int64]:
+    """Most units each lane carries on the night of `phase`, shape (L,): the priced policy's
+    lane limits of that night, or the largest flow the exact policy's table allows that night."""
+    if isinstance(result, PricedPolicy):
+        return np.asarray(result.lane_limits[phase], dtype=np.int64)
+    limits: NDArray[np.int64] = result.flows[result.allowed[phase]].max(axis=0)
+    return limits
 
 
 def _why_through(

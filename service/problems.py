@@ -41,6 +41,7 @@ from service.errors import (
     PlaneError,
     PolicyNotReadyError,
     PolicyNotSolvedError,
+    SettingsConflictError,
     StockProblemsError,
     UnknownJobError,
     UnknownLocationError,
@@ -324,6 +325,11 @@ def _missing(exc: Exception) -> dict[str, Any]:
     return {} if exc.missing is None else {"missing": exc.missing}
 
 
+def _history_days(exc: Exception) -> dict[str, Any]:
+    assert isinstance(exc, SettingsConflictError)
+    return {"days": [{"location": location, "date": day.isoformat()} for location, day in exc.days]}
+
+
 def _nothing(exc: Exception) -> dict[str, Any]:
     return {}
 
@@ -346,6 +352,7 @@ PROBLEM_OF: dict[type[Exception], tuple[int, str, Callable[[Exception], dict[str
     NetworkNameTakenError: (409, "conflict", _nothing),
     NothingToApplyError: (409, "conflict", _nothing),
     ConcurrentUploadError: (409, "conflict", _nothing),
+    SettingsConflictError: (409, "conflict", _history_days),
     HistoryInputError: (422, "invalid-input", _input_errors),
     ClosingInputError: (422, "invalid-input", _input_errors),
     UnknownLocationError: (404, "not-found", _nothing),

@@ -366,7 +366,9 @@ def get_calibration_settings(
 def put_calibration_settings(
     network_id: NetworkId, body: CalibrationSettingsIn, session: SessionDep, caller: Writer
 ) -> CalibrationSettingsOut:
-    """How estimates are made, and the threshold for applying them automatically."""
+    """How estimates are made, and the threshold for applying them automatically. Turning
+    receipts_sell_same_day off is a conflict while stored days sold more than their stock at
+    open (the problem's `days` names them): send those days again first."""
     network = get_network(session, caller.tenant_id, network_id)
     save_options(session, network, CalibrationOptions(**body.model_dump()))
     return CalibrationSettingsOut(network_id=network.id, **body.model_dump())

@@ -31,6 +31,7 @@ from service.api.views import recommendation_out
 from service.auth import Identity
 from service.json_pointer import json_pointer
 from service.metrics import observe_recommendation
+from service.notes import notes_for
 from service.problems import POLICY_NOT_READY, problem_body, problem_for
 from service.serving import NetworkRef, PolicyCache, recommend
 
@@ -73,7 +74,8 @@ def _recommend_one(
         criterion,
         business_date=business_date,
     )
-    return recommendation_out(network_id, served, recommendation, night_of)
+    notes = notes_for(session, network_id, served, recommendation, night_of)
+    return recommendation_out(network_id, served, recommendation, night_of, notes=notes)
 
 
 @router.post(

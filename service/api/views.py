@@ -84,13 +84,16 @@ def recommendation_out(
     served: ServedPolicy,
     recommendation: Recommendation,
     business_date: date | None = None,
+    *,
+    notes: list[str],
 ) -> RecommendationOut:
+    """The answer to a recommendation request; `notes` as service.notes gives them."""
     result = served.result
     ids = result.location_ids
     transfers = transfers_of(result, recommendation.flows)
+    phase = 0 if business_date is None else result.phase_of(business_date.weekday())
     priced: dict[str, Any] = {}
     if isinstance(result, PricedPolicy):
-        phase = 0 if business_date is None else result.phase_of(business_date.weekday())
         priced = {
             "method": "priced",
             "residual": None,
@@ -108,7 +111,8 @@ def recommendation_out(
         stock=dict(zip(ids, recommendation.stock, strict=True)),
         transfers=transfers_out(transfers),
         stock_after_transfers=dict(zip(ids, recommendation.post_move_stock, strict=True)),
-        relays=relays_out(relays_of(result, transfers)),
+        relays=relays_out(relays_of(result, transfers, phase)),
+        notes=notes,
         transfer_cost=recommendation.transfer_cost,
         expected_value=recommendation.expected_value,
         value_without_transfers=recommendation.value_without_transfers,

@@ -33,6 +33,7 @@ __all__ = [
     "LocationHistory",
     "SalesRow",
     "calibration_settings",
+    "days_selling_receipts",
     "sales_history",
     "sales_history_summary",
     "save_calibration_settings",
@@ -180,6 +181,22 @@ def sales_history_summary(
         (location, int(days), int(out or 0), first, last)
         for location, days, out, first, last in rows
     ]
+
+
+def days_selling_receipts(
+    session: Session, network_id: int, *, limit: int
+) -> tuple[int, list[tuple[str, date]]]:
+    """Stored days that sold more than their stock at open, which only a day selling its
+    morning receipts can: how many, and the first `limit` as (location, date), oldest first."""
+    over = and_(SalesDay.network_id == network_id, SalesDay.units_sold > SalesDay.stock_at_open)
+    count = session.scalar(select(func.count()).select_from(SalesDay).where(over)) or 0
+    first = session.execute(
+        select(SalesDay.location_id, SalesDay.business_date)
+        .where(over)
+        .order_by(SalesDay.business_date, SalesDay.location_id)
+        .limit(limit)
+    ).all()
+    return int(count), [(location, day) for location, day in first]
 
 
 def calibration_settings(session: Session, network_id: int) -> CalibrationSettings | None:

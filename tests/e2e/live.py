@@ -19,7 +19,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, TypeVar
 
-import httpx
+import httpx2
 import pytest
 
 from service.auth import create_key
@@ -122,8 +122,8 @@ class Live:
 
         def ready() -> bool:
             try:
-                return httpx.get(base + "/readyz", timeout=2).status_code == 200
-            except httpx.TransportError:
+                return httpx2.get(base + "/readyz", timeout=2).status_code == 200
+            except httpx2.TransportError:
                 return False
 
         self.wait_for(ready, deadline=START_DEADLINE, what=f"the API ({server.log.name})")
@@ -164,7 +164,7 @@ class Live:
 
 
 def wait_until_solved(
-    live: Live, client: httpx.Client, network_id: int, criteria: list[str]
+    live: Live, client: httpx2.Client, network_id: int, criteria: list[str]
 ) -> None:
     """Poll GET /v1/networks/{id} until every criterion's policy is ready."""
 

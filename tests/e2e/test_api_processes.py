@@ -8,7 +8,7 @@ import subprocess
 import sys
 from typing import Any, cast
 
-import httpx
+import httpx2
 import numpy as np
 import pytest
 
@@ -76,7 +76,7 @@ def test_recommendations_over_http_equal_the_in_process_solver(
 
     key = api_key(database_url)
     auth = {"authorization": f"Bearer {key}"}
-    with httpx.Client(base_url=base, timeout=10, headers=auth) as client:
+    with httpx2.Client(base_url=base, timeout=10, headers=auth) as client:
         created = client.post("/v1/networks", json={**document, "criteria": CRITERIA})
         assert created.status_code == 201, created.text
         network_id = created.json()["id"]
@@ -137,5 +137,5 @@ def test_the_server_refuses_an_unmigrated_database_in_one_line(database_url: str
     assert len(lines) == 1, completed.stderr
     assert "stockrelay migrate" in lines[0]
     assert "Uvicorn running" not in completed.stdout + completed.stderr
-    with pytest.raises(httpx.TransportError):
-        httpx.get(f"http://127.0.0.1:{port}/healthz", timeout=2)
+    with pytest.raises(httpx2.TransportError):
+        httpx2.get(f"http://127.0.0.1:{port}/healthz", timeout=2)

@@ -9,7 +9,7 @@ import json
 from pathlib import Path
 from typing import Any
 
-import httpx
+import httpx2
 from prometheus_client.parser import text_string_to_metric_families
 
 from service.db.keys import get_or_create_tenant
@@ -86,7 +86,7 @@ def test_two_api_processes_report_together_and_log_json(tmp_path: Path, live: Li
     while sent < MIN_RECOMMENDATIONS or (
         len(list(shared.glob("histogram_*.db"))) < 2 and sent < MAX_RECOMMENDATIONS
     ):
-        response = httpx.post(
+        response = httpx2.post(
             f"{base}/v1/networks/{network_id}/recommendation",
             json={"stock": STOCK},
             headers={**auth, "X-Request-ID": f"e2e-{sent}"},
@@ -96,7 +96,7 @@ def test_two_api_processes_report_together_and_log_json(tmp_path: Path, live: Li
         sent += 1
 
     for _ in range(N_SCRAPES):
-        scraped = httpx.get(base + "/metrics", timeout=10)
+        scraped = httpx2.get(base + "/metrics", timeout=10)
         assert scraped.status_code == 200
         values = samples(scraped.text)
         single = frozenset({("endpoint", "single")})

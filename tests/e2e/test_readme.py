@@ -25,7 +25,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-import httpx
+import httpx2
 import pytest
 
 from solver import NetworkSpec, solve_network
@@ -301,7 +301,7 @@ def test_http_api_example_answers_as_shown(tmp_path: Path, live: Live) -> None:
     # The README's curl takes the key `make run` prints from $STOCKRELAY_KEY.
     key = api_key(url)
     headers = {name: value.replace("$STOCKRELAY_KEY", key) for name, value in headers.items()}
-    with httpx.Client(base_url=base, timeout=10, headers=headers) as client:
+    with httpx2.Client(base_url=base, timeout=10, headers=headers) as client:
         wait_until_solved(live, client, answer["network_id"], ["discounted", "average"])
         response = client.request(method, target, headers=headers, content=body)
         assert response.status_code == 200, response.text
@@ -327,7 +327,7 @@ def test_calibration_example_answers_as_shown(tmp_path: Path, live: Live) -> Non
     url = make_run_database(tmp_path)
     base = live.api(url)
     key = api_key(url)
-    with httpx.Client(base_url=base, timeout=30) as client:
+    with httpx2.Client(base_url=base, timeout=30) as client:
         for command, answer in zip(commands, answers, strict=True):
             assert command.expected == []
             method, target, headers, body = curl_request(command, base)

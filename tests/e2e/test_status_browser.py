@@ -10,7 +10,7 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Any
 
-import httpx
+import httpx2
 import pytest
 
 from tests.e2e.live import Live, api_key, demo_document, migrate, wait_until_solved
@@ -37,7 +37,7 @@ def test_status_page_in_chromium(tmp_path: Path, live: Live) -> None:
     base = live.api(url)
     live.worker(url)
     key = api_key(url)
-    with httpx.Client(
+    with httpx2.Client(
         base_url=base, timeout=10, headers={"authorization": f"Bearer {key}"}
     ) as client:
         first = client.post("/v1/networks", json={**demo_document(), "criteria": ["discounted"]})

@@ -21,7 +21,7 @@ from contextlib import AbstractContextManager, contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 
-import httpx
+import httpx2
 import pytest
 
 from service.supervisor import ready_answer
@@ -129,7 +129,7 @@ def test_ctrl_c_stops_the_api_and_worker_after_the_printed_example_works(
     url, body = argv[4], argv[argv.index("-d") + 1]
     assert url == f"http://127.0.0.1:{port}/v1/networks/1/recommendation"
     assert f"authorization: Bearer {key}" in argv
-    response = httpx.post(
+    response = httpx2.post(
         url,
         content=body,
         headers={"content-type": "application/json", "authorization": f"Bearer {key}"},
@@ -142,8 +142,8 @@ def test_ctrl_c_stops_the_api_and_worker_after_the_printed_example_works(
     os.killpg(run.process.pid, signal.SIGINT)  # what the terminal does on Ctrl-C
     assert wait_for_exit(run) == 0, run.stderr()
     assert not run.group_alive(), "a child of stockrelay run survived Ctrl-C"
-    with pytest.raises(httpx.TransportError):
-        httpx.get(f"http://127.0.0.1:{port}/healthz", timeout=2)
+    with pytest.raises(httpx2.TransportError):
+        httpx2.get(f"http://127.0.0.1:{port}/healthz", timeout=2)
     # The key made for the run stops with it.
     prefix = key.split("_")[1]
     [listed] = [line for line in keys_listed(demo_database).splitlines() if prefix in line]

@@ -10,7 +10,7 @@ from collections.abc import Iterator, Mapping
 from contextlib import contextmanager
 from typing import Any
 
-import httpx
+import httpx2
 import pytest
 from fastapi.testclient import TestClient
 from sqlalchemy import Engine
@@ -74,7 +74,7 @@ def make_key(engine: Engine, tenant: str = "test", scope: Scope = "write") -> st
         return create_key(session, get_or_create_tenant(session, tenant), scope)[1]
 
 
-def _tag_request(request: httpx.Request) -> None:
+def _tag_request(request: httpx2.Request) -> None:
     request.headers.setdefault("X-Request-ID", f"test-{uuid.uuid4().hex[:12]}")
 
 
@@ -151,7 +151,7 @@ def expected_transfers(result: PolicyResult, recommendation: Recommendation) -> 
     ]
 
 
-def assert_problem(response: httpx.Response, status: int, slug: str | None = None) -> Any:
+def assert_problem(response: httpx2.Response, status: int, slug: str | None = None) -> Any:
     """An RFC 9457 problem: media type, the standard members, `instance` the request path, and
     the request's X-Request-ID echoed in the header and the body. Returns the body."""
     assert response.status_code == status, response.text

@@ -469,3 +469,32 @@ def test_same_day_receipts_are_a_setting_the_censoring_honours(client: TestClien
     riverside = body["locations"][0]
     assert riverside["demand"]["mean"] == pytest.approx(direct.demand.mean, rel=1e-12)
     assert riverside["sold_out_days"] == direct.censored_days == sold_out
+
+
+def test_same_day_receipts_stay_on_while_stored_days_sold_them(client: TestClient) -> None:
+    """Stored rows are checked as an upload's are: days that sold their receipts keep the
+    setting on (409 naming them), until they are sent again within the stock at open."""
+    network = create_network(client)
+    path = f"/v1/networks/{network['id']}"
+    rows = same_day_rows(5, 60)
+    over = [row for row in rows if row["units_sold"] > row["stock_at_open"]]
+    assert len(over) > 20, "the generator sold deliveries on the day they came on many days"
+    assert client.put(f"{path}/calibration/settings", json={"receipts_sell_same_day": True})
+    upload(client, network["id"], rows)
+
+    refused = assert_problem(
+        client.put(f"{path}/calibration/settings", json={"receipts_sell_same_day": False}), 409
+    )
+    assert refused["days"] == [{"location": "riverside", "date": row["date"]} for row in over][:20]
+    assert f"{len(over)} stored days" in refused["detail"]
+    assert f"riverside on {over[0]['date']}" in refused["detail"]
+    assert f"and {len(over) - 20} more" in refused["detail"]
+    assert client.get(f"{path}/calibration/settings").json()["receipts_sell_same_day"] is True
+    assert client.get(f"{path}/calibration").json()["locations"][0]["error"] is None
+
+    fixed = [{**row, "units_sold": row["stock_at_open"]} for row in over]
+    upload(client, network["id"], fixed)
+    turned = client.put(f"{path}/calibration/settings", json={"receipts_sell_same_day": False})
+    assert turned.status_code == 200 and turned.json()["receipts_sell_same_day"] is False
+    riverside = client.get(f"{path}/calibration").json()["locations"][0]
+    assert riverside["error"] is None and riverside["days"] == len(rows)

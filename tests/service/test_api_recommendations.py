@@ -20,6 +20,8 @@ import service.serving
 from service.api import recommendations as recommendations_module
 from service.moves import relays_of, transfers_of
 from solver import NetworkSpec, PolicyResult, solve_network
+from solver.priced import solve_priced
+from solver.priced_result import PricedOptions
 from solver.spec import WEEKDAYS as WEEK
 from tests.service.api_support import (
     assert_problem,
@@ -161,6 +163,7 @@ def test_older_version_answers_as_stale_until_the_new_one_is_solved(
     assert stale.status_code == 200
     body = stale.json()
     assert (body["version"], body["stale"]) == (1, True)
+    assert "planned with version 1's policy while version 2 is being solved" in body["notes"][0]
     assert_matches_solver(body, DEMO_SPEC, solve_network(DEMO_SPEC), vector)
     # The stale policy still judges stock by its own version's capacities.
     too_many = assert_problem(recommend(client, network_id, {"riverside": 2, "hilltop": 11}), 422)
@@ -169,6 +172,7 @@ def test_older_version_answers_as_stale_until_the_new_one_is_solved(
     run_worker(engine)
     fresh = recommend(client, network_id, stock_of(bigger_spec, vector)).json()
     assert (fresh["version"], fresh["stale"]) == (2, False)
+    assert not any("planned with version" in note for note in fresh["notes"])
     assert_matches_solver(fresh, bigger_spec, solve_network(bigger_spec), vector)
     fits_now = recommend(client, network_id, {"riverside": 2, "hilltop": 11})
     assert fits_now.status_code == 200
@@ -555,7 +559,7 @@ def test_a_relay_beside_a_direct_lane_says_why_the_lane_is_not_used_alone(
     found = []
     for vector in itertools.product(*(range(loc.capacity + 1) for loc in spec.locations)):
         flows = result.recommend(list(vector)).flows
-        for relay in relays_of(result, transfers_of(result, flows)):
+        for relay in relays_of(result, transfers_of(result, flows), 0):
             if reason in relay.explanation:
                 found.append(flows)
     assert found, f"no relay explained by {reason!r}"
@@ -566,3 +570,104 @@ def test_a_relay_beside_a_direct_lane_says_why_the_lane_is_not_used_alone(
             assert flows[2] == direct["max_units"]
         else:
             assert direct["unit_cost"] > 0.5 + 0.5
+
+
+def test_a_full_direct_lane_is_full_by_tonights_limit(client: TestClient, engine: Engine) -> None:
+    """The direct lane carries at most 1 unit on Monday nights and 3 on every other night: a
+    relay on a Monday night says the lane is full at 1, in the solver's moves and over HTTP."""
+    limits = dict.fromkeys(WEEK, 3) | {"mon": 1}
+    document = chain_document()
+    document["lanes"].append(
+        {"from": "depot", "to": "far", "unit_cost": 0.9, "max_units": {"weekly": limits}}
+    )
+    spec = NetworkSpec.model_validate(document)
+    result = solve_network(spec)
+    full = []
+    for phase, day in enumerate(WEEK):
+        for vector in itertools.product(*(range(loc.capacity + 1) for loc in spec.locations)):
+            flows = result.recommend(list(vector), phase=phase).flows
+            for relay in relays_of(result, transfers_of(result, flows), phase):
+                if "the direct lane depot -> far is full tonight" in relay.explanation:
+                    assert f"(at most {limits[day]})" in relay.explanation
+                    assert flows[2] == limits[day]
+                    full.append((day, list(vector)))
+    monday = [vector for day, vector in full if day == "mon"]
+    assert monday, "no Monday relay beside the full direct lane"
+    network_id = create_network(client, document)["id"]
+    run_worker(engine)
+    body = client.post(
+        f"/v1/networks/{network_id}/recommendation",
+        json={"stock": stock_of(spec, monday[0]), "business_date": "2026-11-30"},
+    ).json()
+    assert body["night"] == "mon"
+    (relay,) = body["relays"]
+    assert "the direct lane depot -> far is full tonight (at most 1)" in relay["explanation"]
+
+
+def test_a_recommendation_notes_what_the_closing_instructions_note(
+    client: TestClient, engine: Engine
+) -> None:
+    """From the same stock on the same night, a recommendation carries the notes the closing
+    instructions carry, word for word: parameters entered by hand, and each sender that keeps
+    less than its expected demand for tomorrow (the in-process solver finds such a stock)."""
+    document = chain_document()
+    spec = NetworkSpec.model_validate(document)
+    network_id = create_network(client, document)["id"]
+    run_worker(engine)
+    result = solve_network(spec)
+    # Closing counts are taken for dates near the server's (service.closing).
+    day = datetime.now(ZoneInfo("UTC")).date()
+    means = [location["demand"]["mean"] for location in document["locations"]]
+
+    def leaves_a_sender_short(vector: list[int]) -> bool:
+        chosen = result.recommend(vector)
+        return any(
+            units > 0 and chosen.post_move_stock[a] < means[a]
+            for (a, _), units in zip(result.lanes, chosen.flows, strict=True)
+        )
+
+    stocks = [list(v) for v in itertools.product(*(range(c.capacity + 1) for c in spec.locations))]
+    short = next(v for v in stocks if leaves_a_sender_short(v))
+    stock = stock_of(spec, short)
+    body = client.post(
+        f"/v1/networks/{network_id}/recommendation",
+        json={"stock": stock, "business_date": day.isoformat()},
+    ).json()
+    assert any("not estimated from sales history" in note for note in body["notes"])
+    assert any(" sends " in note and "below its expected demand" in note for note in body["notes"])
+    for location, units in stock.items():
+        put = client.put(
+            f"/v1/networks/{network_id}/locations/{location}/closing-stock",
+            json={"business_date": day.isoformat(), "units": units},
+        )
+        assert put.status_code == 200
+    closing = client.get(
+        f"/v1/networks/{network_id}/locations/depot/instructions",
+        params={"business_date": day.isoformat()},
+    ).json()
+    assert body["notes"] == closing["notes"]
+    # Nothing moves from an empty network: only the note on the parameters.
+    quiet = recommend(client, network_id, dict.fromkeys(stock, 0)).json()
+    assert quiet["transfers"] == [] and len(quiet["notes"]) == 1
+
+
+@pytest.mark.parametrize("method", ["exact", "priced"])
+def test_either_method_judges_a_full_direct_lane_by_the_nights_limit(method: str) -> None:
+    """The same moves (one unit over each lane) fill the direct lane on a Monday night, when it
+    carries at most 1, and not on a Tuesday night, when it carries 3."""
+    document = chain_document()
+    limits = dict.fromkeys(WEEK, 3) | {"mon": 1}
+    document["lanes"].append(
+        {"from": "depot", "to": "far", "unit_cost": 0.9, "max_units": {"weekly": limits}}
+    )
+    spec = NetworkSpec.model_validate(document)
+    result = (
+        solve_network(spec)
+        if method == "exact"
+        else solve_priced(spec, options=PricedOptions(replications=8, target_half_width=0.01))
+    )
+    transfers = transfers_of(result, (1, 1, 1))
+    (monday,) = relays_of(result, transfers, result.phase_of(0))
+    assert "the direct lane depot -> far is full tonight (at most 1)" in monday.explanation
+    (tuesday,) = relays_of(result, transfers, result.phase_of(1))
+    assert "full tonight" not in tuesday.explanation

@@ -143,7 +143,8 @@ class CalibrationSettingsIn(BaseModel):
         description="True: units received in the morning are on sale the same day, so a day "
         "may sell up to stock_at_open + units_received and is sold out when it sells all of "
         "them. False (default): receipts are on sale from the next day, and a row selling more "
-        "than its stock at open is refused.",
+        "than its stock at open is refused; so is turning it off while stored days sold more "
+        "than their stock at open (409 naming them).",
     )
 
 

@@ -141,6 +141,12 @@ class RecommendationOut(BaseModel):
         description="Locations that receive and send on the same night (three or more "
         "locations), with their net change and why; empty when there are none.",
     )
+    notes: list[str] = Field(
+        default_factory=list,
+        description="What deserves a look before acting, in the words of the closing "
+        "instructions: a stale or uncalibrated policy, a move that leaves the sender below its "
+        "expected demand for tomorrow; empty when there is nothing to say.",
+    )
     transfer_cost: float = Field(description="Cost of tonight's moves.")
     expected_value: float = Field(
         description="Value of following the policy from this stock (discounted: expected "
