@@ -4,6 +4,8 @@ closing instructions, which say the same things in the same words."""
 
 from __future__ import annotations
 
+import threading
+from collections import OrderedDict
 from datetime import date, timedelta
 
 from sqlalchemy.orm import Session
@@ -60,20 +62,52 @@ def _short_senders(
     for (a, _), units in zip(result.lanes, recommendation.flows, strict=True):
         sent[a] += units
     if not any(sent):
-        # Nothing moves: no need to read the version's specification (the hot path).
         return []
-    version = session.get_one(NetworkVersion, served.version_id)
-    spec = NetworkSpec.model_validate_json(version.spec_json)
     tomorrow = 0 if business_date is None else (business_date + timedelta(days=1)).weekday()
+    expected_on = _EXPECTED_DEMAND.of(session, served)[tomorrow]
     notes = []
-    for index, location in enumerate(spec.locations):
+    for index, location in enumerate(result.location_ids):
         if sent[index] == 0:
             continue
-        expected = law_moments(location.demand_on(tomorrow))[0]
+        expected = expected_on[index]
         keeps = recommendation.post_move_stock[index]
         if keeps < expected:
             notes.append(
-                f"{location.id} sends {sent[index]} and keeps {keeps}, below its expected "
+                f"{location} sends {sent[index]} and keeps {keeps}, below its expected "
                 f"demand of {expected:.2f} tomorrow: worth a look if its demand is uncertain"
             )
     return notes
+
+
+class _ExpectedDemand:
+    """Each location's expected demand on each weekday (Monday first), by specification hash:
+    read from a version's specification once per process rather than on every recommendation
+    that moves something (a batch of 1,000 would read and parse 1,000 specifications). A hash
+    names one specification for good, so nothing kept here goes stale; the last `size` are
+    kept."""
+
+    def __init__(self, size: int) -> None:
+        self.size = size
+        self._tables: OrderedDict[str, tuple[tuple[float, ...], ...]] = OrderedDict()
+        self._lock = threading.Lock()
+
+    def of(self, session: Session, served: ServedPolicy) -> tuple[tuple[float, ...], ...]:
+        with self._lock:
+            table = self._tables.get(served.spec_hash)
+            if table is not None:
+                self._tables.move_to_end(served.spec_hash)
+                return table
+        version = session.get_one(NetworkVersion, served.version_id)
+        spec = NetworkSpec.model_validate_json(version.spec_json)
+        table = tuple(
+            tuple(law_moments(location.demand_on(day))[0] for location in spec.locations)
+            for day in range(7)
+        )
+        with self._lock:
+            self._tables[served.spec_hash] = table
+            while len(self._tables) > self.size:
+                self._tables.popitem(last=False)
+        return table
+
+
+_EXPECTED_DEMAND = _ExpectedDemand(size=4096)

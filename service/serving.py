@@ -65,6 +65,7 @@ class ServedPolicy:
     criterion: str
     version_id: int
     version_number: int
+    spec_hash: str
     solved_at: datetime
     stale: bool
     # When the version's demand and replenishment were estimated from history (None: as sent).
@@ -159,6 +160,7 @@ def load_policy(
             criterion=criterion,
             version_id=version.id,
             version_number=version.number,
+            spec_hash=version.spec_hash,
             solved_at=entry.solved_at,
             stale=version is not newest,
             calibrated_at=version.calibrated_at,
