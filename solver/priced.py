@@ -932,7 +932,6 @@ def _simulate(
             reward[d, i, :size] = rewards[d]
             value[d, i, :size] = following
             expected[d, i, :size] = kernels[d] @ following
-    incidence = net.incidence()
     current = np.broadcast_to(stock, (replications, n)).copy()
     total = np.zeros(replications)
     block = 256
@@ -944,7 +943,7 @@ def _simulate(
             t = done + k
             d = t % phases
             flows = policy.plan_batch(current, phase=d)
-            post = current + flows @ incidence
+            post = current + net.stock_change(flows)
             current = np.minimum(post - np.minimum(post, demand[k]) + supply[k], caps)
             cost = flow_costs(flows, net.lane_costs, net.dispatch_costs)
             profit = reward[d][stores, post].sum(axis=1) - cost

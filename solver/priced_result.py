@@ -330,7 +330,7 @@ class PricedPolicy(SolvedNetwork):
         return flows
 
     def _posts(self, stock: NDArray[np.int64], flows: NDArray[np.int64]) -> NDArray[np.int64]:
-        posts: NDArray[np.int64] = stock[None, :] + flows @ self._network.incidence()
+        posts: NDArray[np.int64] = stock[None, :] + self._network.stock_change(flows)
         return posts
 
     def plan_value(
