@@ -37,7 +37,9 @@ Metrics (histograms in seconds):
   stockrelay_priced_solve_lower_bound, stockrelay_priced_solve_elapsed_seconds
   {job_id, network_id, criterion, stage}: gauges, the latest progress of each running priced
   solve (one series per running job, so at most one per worker; gone once it ends; the lower
-  bound only once certifying has found one).
+  bound only once certifying has found one). `stage` is "pricing", "planning" or
+  "certifying" (solver.PricedProgress); the iteration is the pricing iteration, the planning
+  candidate being simulated, or the certificate's replications finished.
 
 `kind` is the job's kind: "solve", "simulate", "what_if" or "calibrate".
 `assortment` is an assortment's id: the assortment series are bounded by assortments times
@@ -378,7 +380,10 @@ class DatabaseCollector(Collector):
         labels = ["job_id", "network_id", "criterion", "stage"]
         what = "of each running priced solve, by job (one series per running job)"
         iteration = GaugeMetricFamily(
-            "stockrelay_priced_solve_iteration", f"Pricing iteration {what}.", labels=labels
+            "stockrelay_priced_solve_iteration",
+            f"Iteration of the stage (pricing iteration, planning candidate or certificate "
+            f"replications) {what}.",
+            labels=labels,
         )
         upper = GaugeMetricFamily(
             "stockrelay_priced_solve_upper_bound",

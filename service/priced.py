@@ -183,10 +183,12 @@ def progress_printer(
         if now - last < every:
             return
         last = now
-        line = (
-            f"{progress.stage}: iteration {progress.iteration}, upper bound "
-            f"{progress.upper_bound:,.4f}"
-        )
+        step = f"iteration {progress.iteration}"
+        if progress.candidates is not None:
+            limit = progress.trade_limit
+            plan = "plain store values" if limit is None else f"trade limit {limit}"
+            step = f"candidate {progress.iteration} of {progress.candidates} ({plan})"
+        line = f"{progress.stage}: {step}, upper bound {progress.upper_bound:,.4f}"
         if progress.lower_bound is not None:
             line += f", lower bound {progress.lower_bound:,.4f}"
         (stream or sys.stderr).write(line + f" ({progress.elapsed:.1f} s)\n")

@@ -120,10 +120,13 @@ class JobLine:
             return ""
         try:
             report = json.loads(self.progress)
-            text = (
-                f"{report['stage']}, iteration {int(report['iteration'])}, "
-                f"bound {float(report['upper_bound']):,.2f}"
-            )
+            step = f"iteration {int(report['iteration'])}"
+            if report.get("candidates") is not None:
+                limit = report.get("trade_limit")
+                plan = "plain store values" if limit is None else f"trade limit {int(limit)}"
+                step = f"candidate {int(report['iteration'])} of {int(report['candidates'])} "
+                step += f"({plan})"
+            text = f"{report['stage']}, {step}, bound {float(report['upper_bound']):,.2f}"
             if report.get("lower_bound") is not None:
                 text += f", best lower {float(report['lower_bound']):,.2f}"
             return text + f", {float(report['elapsed']):,.0f} s"

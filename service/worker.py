@@ -101,6 +101,8 @@ def progress_json(progress: PricedProgress) -> str:
             "upper_bound": progress.upper_bound,
             "lower_bound": progress.lower_bound,
             "elapsed": progress.elapsed,
+            "candidates": progress.candidates,
+            "trade_limit": progress.trade_limit,
             "reported_at": utcnow().isoformat(),
         },
         allow_nan=False,

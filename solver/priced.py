@@ -92,17 +92,19 @@ heuristic otherwise). The same plan is served, simulated (dispatch costs paid) a
 Trade limit of the plan. A store's post-move value W_{i,d} assumes it can buy and sell at the
 lane prices on every later night, as much as its lanes allow; the real network cannot always
 supply that, so the plan may also use, for every store, the post-move values of the same priced
-subproblem with each later night's sends and takes limited to k units (k in _TRADE_LIMITS;
-still one small MDP per store, and still a separable concave-envelope plan, so everything below
-holds unchanged). The solve simulates each candidate for _SELECTION_DAYS days from the
-reference stock (_SELECTION_REPLICATIONS replications, common random numbers across the
-candidates, seed + 1 so that the certificate's random numbers are not the ones it chose on)
-and keeps the best; the bound never uses these values. Measured on the benchmark networks
-(benchmarks/networks.py, 365 days after 50 of warm-up, 30 replications, common random numbers):
-12 stores x 60, k = 3 earned +1.35 a day [+1.07, +1.64] over the unlimited values and k = 5
-+0.71, k = 2 -0.05, k = 1 -8.68; 24 stores x 40, k = 2, 3, 4 earned -2.80, -0.67 and -0.07: no
-single limit suits every network, hence the choice by simulation. This is our own heuristic
-(the limit stands for the liquidity the relaxation assumes), not a published method.
+subproblem with each later night's sends and takes limited to k units (k in
+PricedOptions.trade_limits, by default 2, 4 and 8; still one small MDP per store, and still a
+separable concave-envelope plan, so everything below holds unchanged). The solve simulates each
+candidate for _SELECTION_DAYS days from the reference stock (_SELECTION_REPLICATIONS
+replications, common random numbers across the candidates, seed + 1 so that the certificate's
+random numbers are not the ones it chose on) and keeps the best; the bound never uses these
+values. Measured on the benchmark networks (benchmarks/networks.py, 365 days after 50 of
+warm-up, 30 replications, common random numbers): 12 stores x 60, k = 3 earned +1.35 a day
+[+1.07, +1.64] over the unlimited values and k = 5 +0.71, k = 2 -0.05, k = 1 -8.68; 24 stores x
+40, k = 2, 3, 4 earned -2.80, -0.67 and -0.07: no single limit suits every network, hence the
+choice by simulation. This is our own heuristic (the limit stands for the liquidity the
+relaxation assumes), not a published method. With no limits to try (quick solves) the plan
+uses the store values and nothing is simulated.
 
 The certificate simulates that plan from a reference stock (per store, the median of its
 phase-0 stock in the long run under its own priced policy). Each replication adds up, day by
@@ -167,9 +169,7 @@ _TIE_RTOL = 1e-10
 # Certificate: first batch of replications, and the longest discounted horizon (days).
 _FIRST_REPLICATIONS = 32
 _MAX_HORIZON = 20_000
-# The plan's trade limits tried (units a store may send and take on each later night), and the
-# simulation that chooses among them: replications and days.
-_TRADE_LIMITS = (2, 4, 8)
+# The simulation that chooses the plan's trade limit: replications and days.
 _SELECTION_REPLICATIONS = 8
 _SELECTION_DAYS = 250
 # Cutting planes kept per store in the model at most (the longest idle are dropped first).
@@ -830,21 +830,23 @@ def _choose_trade_limit(
     reference: NDArray[np.int64],
     laws: list[NDArray[np.float64]],
     options: PricedOptions,
+    report: Callable[[int, int, int | None], None],
 ) -> PricedPolicy:
     """The policy planning on the store values, or on the values with later trades limited to
-    one of _TRADE_LIMITS units a night, whichever earns most in a short simulation from the
-    reference stock (module docstring). Its random numbers are not the certificate's."""
-    candidates = [policy]
-    for limit in _TRADE_LIMITS:
-        # A limit no store reaches changes nothing.
-        if all(
+    one of options.trade_limits units a night, whichever earns most in a short simulation from
+    the reference stock (module docstring). Its random numbers are not the certificate's.
+    `report(candidate, candidates, limit)` is called before each candidate is simulated
+    (candidate 1 plans on the store values, limit None)."""
+    # A limit no store reaches changes nothing.
+    limits: list[int | None] = [None] + [
+        limit
+        for limit in options.trade_limits
+        if not all(
             np.all(net.most_out[:, i] <= limit) and np.all(net.most_in[:, i] <= limit)
             for i in range(net.n_stores)
-        ):
-            continue
-        values = _limited_post_move(net, laws, policy, criterion, limit)
-        candidates.append(replace(policy, plan_post_move_values=values, trade_limit=limit))
-    if len(candidates) == 1:
+        )
+    ]
+    if len(limits) == 1:
         return policy
     if criterion == "discounted":
         days = _SELECTION_DAYS
@@ -855,8 +857,14 @@ def _choose_trade_limit(
         days = _SELECTION_DAYS
         weights = np.concatenate([np.zeros(warmup), np.full(days - warmup, 1.0 / (days - warmup))])
         step = 1.0
-    means = [
-        float(
+    best, best_mean = policy, -math.inf
+    for number, limit in enumerate(limits, start=1):
+        report(number, len(limits), limit)
+        candidate = policy
+        if limit is not None:
+            values = _limited_post_move(net, laws, policy, criterion, limit)
+            candidate = replace(policy, plan_post_move_values=values, trade_limit=limit)
+        mean = float(
             _simulate(
                 net,
                 candidate,
@@ -868,9 +876,10 @@ def _choose_trade_limit(
                 step,
             ).mean()
         )
-        for candidate in candidates
-    ]
-    return candidates[int(np.argmax(means))]
+        # The first best is kept on ties, as argmax over the candidates in order.
+        if mean > best_mean:
+            best, best_mean = candidate, mean
+    return best
 
 
 # -- certificate ------------------------------------------------------------------------------
@@ -923,7 +932,6 @@ def _simulate(
             reward[d, i, :size] = rewards[d]
             value[d, i, :size] = following
             expected[d, i, :size] = kernels[d] @ following
-    incidence = net.incidence()
     current = np.broadcast_to(stock, (replications, n)).copy()
     total = np.zeros(replications)
     block = 256
@@ -935,7 +943,7 @@ def _simulate(
             t = done + k
             d = t % phases
             flows = policy.plan_batch(current, phase=d)
-            post = current + flows @ incidence
+            post = current + net.stock_change(flows)
             current = np.minimum(post - np.minimum(post, demand[k]) + supply[k], caps)
             cost = flow_costs(flows, net.lane_costs, net.dispatch_costs)
             profit = reward[d][stores, post].sum(axis=1) - cost
@@ -953,11 +961,9 @@ def _certify(
     reference: NDArray[np.int64],
     options: PricedOptions,
     report: Callable[[int, float, float | None], None],
-    refined: float | None,
+    upper: float,
 ) -> Certificate:
-    upper = policy.upper_bound(tuple(int(u) for u in reference), phase=0)
-    if refined is not None:
-        upper = min(upper, refined)
+    """The certificate at `reference`, with `upper` the bound there (module docstring)."""
     rng = np.random.default_rng(options.seed)
     beta = net.discount
     target = options.target_half_width * max(abs(upper), 1e-9)
@@ -1114,9 +1120,32 @@ def solve_priced(
         converged=result.converged,
         seconds={},
     )
-    t = time.perf_counter()
-    policy = _choose_trade_limit(net, policy, criterion, reference, laws, options)
-    seconds["trade_limit"] = time.perf_counter() - t
+    # The bound at the reference stock: what the planning and certifying stages report, and
+    # the certificate's upper end.
+    upper = policy.upper_bound(tuple(int(u) for u in reference), phase=0)
+    if refined is not None:
+        upper = min(upper, refined)
+
+    def planning_report(candidate: int, candidates: int, limit: int | None) -> None:
+        if progress is not None:
+            progress(
+                PricedProgress(
+                    "planning",
+                    candidate,
+                    upper,
+                    None,
+                    time.perf_counter() - started,
+                    candidates=candidates,
+                    trade_limit=limit,
+                )
+            )
+
+    if options.trade_limits:
+        t = time.perf_counter()
+        policy = _choose_trade_limit(
+            net, policy, criterion, reference, laws, options, planning_report
+        )
+        seconds["trade_limit"] = time.perf_counter() - t
 
     def certify_report(replications: int, bound: float, low: float | None) -> None:
         if progress is not None:
@@ -1127,7 +1156,7 @@ def solve_priced(
             )
 
     t = time.perf_counter()
-    certificate = _certify(net, policy, criterion, reference, options, certify_report, refined)
+    certificate = _certify(net, policy, criterion, reference, options, certify_report, upper)
     seconds["certify"] = time.perf_counter() - t
     seconds["total"] = time.perf_counter() - started
     return replace(policy, certificate=certificate, seconds=seconds)

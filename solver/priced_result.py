@@ -54,6 +54,10 @@ class PricedOptions:
     confidence: level of the policy value's interval.
     average_days, average_warmup: average criterion, days measured per replication after the
         warm-up days.
+    trade_limits: the plan's trade limits tried (units a store may send and take on each later
+        night, solver.priced), each simulated against the plain store values and the best
+        kept; empty to plan on the plain store values without that simulation (for solves
+        whose plan is only a quick comparison).
     """
 
     max_iterations: int = 1_000
@@ -66,6 +70,7 @@ class PricedOptions:
     confidence: float = 0.95
     average_days: int = 3_000
     average_warmup: int = 300
+    trade_limits: tuple[int, ...] = (2, 4, 8)
 
     def __post_init__(self) -> None:
         if self.max_iterations < 1:
@@ -82,23 +87,38 @@ class PricedOptions:
             raise ValueError("average_days must be at least 1 and average_warmup at least 0")
         if not 0.0 < self.confidence < 1.0:
             raise ValueError(f"confidence must lie in (0, 1), got {self.confidence}")
+        if any(limit < 1 for limit in self.trade_limits):
+            raise ValueError(f"trade_limits must be at least 1 each, got {self.trade_limits}")
+        if len(set(self.trade_limits)) != len(self.trade_limits):
+            raise ValueError(f"trade_limits must differ from each other, got {self.trade_limits}")
 
 
 @dataclass(frozen=True)
 class PricedProgress:
-    """One progress report: stage "pricing" (after each pricing iteration; iteration counts
-    them, continuing through the pricing at the reference stock) or "certifying" (every 256
-    simulated days and after each batch of replications; iteration = replications finished).
+    """One progress report, by stage in the order they run:
+
+    "pricing": after each pricing iteration; iteration counts them, continuing through the
+        pricing at the reference stock.
+    "planning": as the plan's trade limit is chosen (solver.priced), before each candidate is
+        simulated; iteration = that candidate's number (1 is the plain store values),
+        candidates = how many there are, trade_limit = its limit (None for the plain store
+        values). Absent when there is nothing to choose (PricedOptions.trade_limits empty, or
+        no limit below what the stores can trade).
+    "certifying": every 256 simulated days and after each batch of replications; iteration =
+        replications finished.
+
     upper_bound: the best bound so far (pricing: the pricing objective, see solver.priced;
-    certifying: the bound at the reference stock); lower_bound: low end of the policy value's
-    interval once a batch has finished, else None. elapsed: seconds since the solve
-    started."""
+    planning and certifying: the bound at the reference stock); lower_bound: low end of the
+    policy value's interval once a batch of the certificate has finished, else None. elapsed:
+    seconds since the solve started. candidates and trade_limit are None outside planning."""
 
     stage: str
     iteration: int
     upper_bound: float
     lower_bound: float | None
     elapsed: float
+    candidates: int | None = None
+    trade_limit: int | None = None
 
 
 @dataclass(frozen=True)
@@ -310,7 +330,7 @@ class PricedPolicy(SolvedNetwork):
         return flows
 
     def _posts(self, stock: NDArray[np.int64], flows: NDArray[np.int64]) -> NDArray[np.int64]:
-        posts: NDArray[np.int64] = stock[None, :] + flows @ self._network.incidence()
+        posts: NDArray[np.int64] = stock[None, :] + self._network.stock_change(flows)
         return posts
 
     def plan_value(

@@ -10,6 +10,7 @@ above it."""
 
 from __future__ import annotations
 
+import io
 import itertools
 import json
 import threading
@@ -24,6 +25,7 @@ from fastapi.testclient import TestClient
 from sqlalchemy import Engine, select, update
 from sqlalchemy.orm import Session, sessionmaker
 
+from service import analysis as analysis_module
 from service import worker as worker_module
 from service.cli import CAUTION, main
 from service.codec import decode_policy, encode_policy
@@ -32,10 +34,10 @@ from service.db.keys import get_or_create_tenant
 from service.db.networks import canonical_spec
 from service.db.tables import Network, NetworkVersion, Policy, SolveJob
 from service.pictures import choose_plane, net_inflow_grid, value_grid
-from service.priced import all_stocks
+from service.priced import all_stocks, progress_printer
 from solver import NetworkSpec, PolicyResult, build_transfer_model, solve_network
 from solver.priced import solve_priced
-from solver.priced_result import PricedPolicy
+from solver.priced_result import PricedPolicy, PricedProgress
 from solver.simulation import do_nothing_policy, simulate_policies
 from tests.service.api_support import (
     assert_problem,
@@ -286,33 +288,43 @@ def test_a_running_priced_solve_reports_its_progress_into_the_job(
     assert shown["upper_bound"] > 0 and shown["elapsed"] >= 0
 
 
+def _running_with_progress(
+    engine: Engine, client: TestClient, **progress: Any
+) -> tuple[dict[str, Any], dict[str, str]]:
+    """A priced network whose solve job runs elsewhere with `progress` stored as its latest
+    report: the job as /v1/jobs shows it, and the labels of its progress gauges."""
+    network_id = create_network(client, demo_document(mode="priced"))["id"]
+    progress["reported_at"] = datetime.now(UTC).replace(tzinfo=None).isoformat()
+    with sessionmaker(engine).begin() as session:
+        session.execute(
+            update(SolveJob).values(
+                state="running", lease_owner="elsewhere", progress=json.dumps(progress)
+            )
+        )
+    [job] = client.get("/v1/jobs").json()
+    labels = {
+        "job_id": str(job["id"]),
+        "network_id": str(network_id),
+        "criterion": "discounted",
+        "stage": progress["stage"],
+    }
+    return job, labels
+
+
 def test_progress_of_running_solves_is_on_the_metrics_and_the_status_page(
     engine: Engine,
 ) -> None:
     with open_client(engine) as client:
-        network_id = create_network(client, demo_document(mode="priced"))["id"]
-        progress = {
-            "stage": "certifying",
-            "iteration": 17,
-            "upper_bound": 1234.5,
-            "lower_bound": 1210.25,
-            "elapsed": 42.0,
-            "reported_at": datetime.now(UTC).replace(tzinfo=None).isoformat(),
-        }
-        with sessionmaker(engine).begin() as session:
-            session.execute(
-                update(SolveJob).values(
-                    state="running", lease_owner="elsewhere", progress=json.dumps(progress)
-                )
-            )
-        [job] = client.get("/v1/jobs").json()
+        job, labels = _running_with_progress(
+            engine,
+            client,
+            stage="certifying",
+            iteration=17,
+            upper_bound=1234.5,
+            lower_bound=1210.25,
+            elapsed=42.0,
+        )
         assert job["progress"]["upper_bound"] == 1234.5 and job["progress"]["stage"] == "certifying"
-        labels = {
-            "job_id": str(job["id"]),
-            "network_id": str(network_id),
-            "criterion": "discounted",
-            "stage": "certifying",
-        }
         samples = scrape(client)
         assert value(samples, "stockrelay_priced_solve_upper_bound", **labels) == 1234.5
         assert value(samples, "stockrelay_priced_solve_lower_bound", **labels) == 1210.25
@@ -322,6 +334,45 @@ def test_progress_of_running_solves_is_on_the_metrics_and_the_status_page(
         page = client.get("/status", headers=basic(key)).text
         assert "priced solve" in page
         assert "certifying, iteration 17, bound 1,234.50, best lower 1,210.25" in page
+
+
+def test_planning_progress_names_the_candidate_on_the_job_metrics_and_status_page(
+    engine: Engine,
+) -> None:
+    with open_client(engine) as client:
+        job, labels = _running_with_progress(
+            engine,
+            client,
+            stage="planning",
+            iteration=3,
+            upper_bound=987.5,
+            lower_bound=None,
+            elapsed=12.0,
+            candidates=4,
+            trade_limit=4,
+        )
+        shown = job["progress"]
+        assert shown["stage"] == "planning" and shown["iteration"] == 3
+        assert shown["candidates"] == 4 and shown["trade_limit"] == 4
+        samples = scrape(client)
+        assert value(samples, "stockrelay_priced_solve_iteration", **labels) == 3
+        assert value(samples, "stockrelay_priced_solve_upper_bound", **labels) == 987.5
+        key = client.headers["Authorization"].removeprefix("Bearer ")
+        page = client.get("/status", headers=basic(key)).text
+        assert "planning, candidate 3 of 4 (trade limit 4), bound 987.50, 12 s" in page
+
+
+def test_progress_printer_names_the_planning_candidate() -> None:
+    stream = io.StringIO()
+    report = progress_printer(stream, every=0.0)
+    report(PricedProgress("pricing", 5, 100.0, None, 1.0))
+    report(PricedProgress("planning", 1, 99.5, None, 2.0, candidates=3, trade_limit=None))
+    report(PricedProgress("planning", 2, 99.5, None, 3.0, candidates=3, trade_limit=2))
+    assert stream.getvalue().splitlines() == [
+        "pricing: iteration 5, upper bound 100.0000 (1.0 s)",
+        "planning: candidate 1 of 3 (plain store values), upper bound 99.5000 (2.0 s)",
+        "planning: candidate 2 of 3 (trade limit 2), upper bound 99.5000 (3.0 s)",
+    ]
 
 
 # -- closing, simulations, export, pictures ----------------------------------------------------
@@ -580,7 +631,10 @@ def exact_ruled() -> PolicyResult:
 
 @sqlite_only
 def test_a_priced_network_with_rules_keeps_them_and_charges_the_dispatch(
-    client: TestClient, engine: Engine, exact_ruled: PolicyResult
+    client: TestClient,
+    engine: Engine,
+    exact_ruled: PolicyResult,
+    monkeypatch: pytest.MonkeyPatch,
 ) -> None:
     network_id = create_network(client, ruled_document(mode="priced"))["id"]
     assert run_worker(engine) == 1
@@ -608,7 +662,16 @@ def test_a_priced_network_with_rules_keeps_them_and_charges_the_dispatch(
         expected = sum(t["units"] * t["unit_cost"] + t["dispatch_cost"] for t in body["transfers"])
         assert body["transfer_cost"] == pytest.approx(expected)
     assert charged > 0  # the van was sent somewhere
-    # A simulation checks every night's moves against the rules (solver.simulation).
+    # A simulation checks every night's moves against the rules (solver.simulation). The
+    # priced policy without the rules is solved there quickly: no trade limit is chosen.
+    quick: list[PricedPolicy] = []
+
+    def recorded(spec: NetworkSpec, **kwargs: Any) -> PricedPolicy:
+        policy = solve_priced(spec, **kwargs)
+        quick.append(policy)
+        return policy
+
+    monkeypatch.setattr(analysis_module, "solve_priced", recorded)
     params = {"criterion": "discounted", "days": 30, "replications": 4, "seed": 3}
     started = client.post(f"/v1/networks/{network_id}/simulations", json=params)
     assert started.status_code == 202, started.text
@@ -618,6 +681,8 @@ def test_a_priced_network_with_rules_keeps_them_and_charges_the_dispatch(
     report = done["report"]
     names = [p["name"] for p in report["policies"]]
     assert names[0] == "priced" and "optimal_without_rules" in names
+    [without] = quick
+    assert without.trade_limit is None and "trade_limit" not in without.seconds
     # What the rules cost and protect, as for exact networks: the priced policy without them
     # runs on the same days (simulation estimates; only their form is checked here).
     rules = report["rules"]

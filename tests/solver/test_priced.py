@@ -385,6 +385,62 @@ def test_progress_reports_pricing_then_certifying() -> None:
     assert all(a.elapsed <= b.elapsed for a, b in itertools.pairwise(reports))
 
 
+def test_progress_reports_each_trade_limit_candidate_while_planning() -> None:
+    # Stores of capacity 8 to 12 without a network limit reach every default limit (2, 4, 8):
+    # the plain store values and three limited ones are simulated, in that order.
+    spec = random_network(91, (10, 12, 8))
+    reports: list[Any] = []
+    policy = solve_priced(spec, options=QUICK, progress=reports.append)
+    stages = [r.stage for r in reports]
+    planning = [r for r in reports if r.stage == "planning"]
+    first, last = stages.index("planning"), len(stages) - stages[::-1].index("planning")
+    assert set(stages[:first]) == {"pricing"} and set(stages[last:]) == {"certifying"}
+    assert stages[first:last] == ["planning"] * 4
+    assert [r.iteration for r in planning] == [1, 2, 3, 4]
+    assert [r.candidates for r in planning] == [4] * 4
+    assert [r.trade_limit for r in planning] == [None, 2, 4, 8]
+    assert all(r.lower_bound is None for r in planning)
+    assert all(r.upper_bound == policy.certificate.upper_bound for r in planning)
+    assert all(r.candidates is None and r.trade_limit is None for r in reports if r not in planning)
+    assert policy.trade_limit in (None, 2, 4, 8)
+    assert policy.seconds["trade_limit"] > 0
+    # A limit no store reaches is not a candidate.
+    reports.clear()
+    solve_priced(spec, options=replace(QUICK, trade_limits=(3, 12)), progress=reports.append)
+    planning = [r for r in reports if r.stage == "planning"]
+    assert [(r.iteration, r.candidates, r.trade_limit) for r in planning] == [
+        (1, 2, None),
+        (2, 2, 3),
+    ]
+
+
+def test_no_trade_limits_plan_on_the_store_values_without_the_planning_stage() -> None:
+    spec = random_network(91, (10, 12, 8))
+    full = solve_priced(spec, options=QUICK)
+    reports: list[Any] = []
+    quick = solve_priced(spec, options=replace(QUICK, trade_limits=()), progress=reports.append)
+    assert "planning" not in {r.stage for r in reports}
+    assert "trade_limit" not in quick.seconds
+    assert quick.trade_limit is None and quick.plan_post_move_values is None
+    # Pricing is the same, so the quick plan is the full solve's plan on its plain store values.
+    np.testing.assert_array_equal(quick.prices, full.prices)
+    for a, b in zip(quick.store_post_move_values, full.store_post_move_values, strict=True):
+        np.testing.assert_array_equal(a, b)
+    plain = replace(full, plan_post_move_values=None, trade_limit=None)
+    np.testing.assert_array_equal(quick.plan_values, plain.plan_values)
+    stocks = np.array(_stocks(quick))
+    assert np.array_equal(quick.plan_batch(stocks), plain.plan_batch(stocks))
+    assert quick.certificate.upper_bound == full.certificate.upper_bound
+
+
+def test_trade_limits_are_positive_and_distinct() -> None:
+    assert PricedOptions().trade_limits == (2, 4, 8)  # what full solves try (solver.priced)
+    with pytest.raises(ValueError, match="at least 1"):
+        PricedOptions(trade_limits=(0, 2))
+    with pytest.raises(ValueError, match="differ"):
+        PricedOptions(trade_limits=(2, 2))
+
+
 def test_certificate_estimate_is_unbiased_whatever_the_store_values() -> None:
     # The certificate sums expected one-day profits less a martingale of the store values
     # (solver.priced): unbiased for ANY values, with less variance the closer they are to the

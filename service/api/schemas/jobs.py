@@ -34,16 +34,28 @@ __all__ = [
 class JobProgressOut(BaseModel):
     """The latest progress a running priced solve reported."""
 
-    stage: Literal["pricing", "certifying"] = Field(
-        description="pricing: improving the lane prices; certifying: simulating the policy "
-        "for its lower bound."
+    stage: Literal["pricing", "planning", "certifying"] = Field(
+        description="pricing: improving the lane prices; planning: simulating each candidate "
+        "trade limit of the plan to keep the best; certifying: simulating the policy for its "
+        "lower bound."
     )
-    iteration: int = Field(description="Pricing iteration, or batch of replications.")
+    iteration: int = Field(
+        description="Pricing iteration; planning: the candidate being simulated (1 is the "
+        "plain store values); certifying: replications finished."
+    )
     upper_bound: float = Field(description="Best upper bound on the optimal value so far.")
     lower_bound: float | None = Field(
         description="Best lower bound so far (the policy's simulated value); null until certifying."
     )
     elapsed: float = Field(description="Seconds since the solve started.")
+    candidates: int | None = Field(
+        default=None, description="Planning: how many candidates are simulated; else null."
+    )
+    trade_limit: int | None = Field(
+        default=None,
+        description="Planning: the units a store may trade on each later night under the "
+        "candidate being simulated; null for the plain store values and outside planning.",
+    )
     reported_at: Timestamp = Field(description="When the worker reported it (UTC).")
 
 
