@@ -82,9 +82,9 @@ __all__ = [
 REFERENCE = "optimal"
 PRICED_REFERENCE = "priced"
 # The priced policy without the rules is only simulated here: its own certificate is not
-# reported, so a short one will do, and its plan uses the plain store values (no trade limit is
-# chosen by a simulation of its own).
-_QUICK_CERTIFICATE = PricedOptions(replications=2, trade_limits=())
+# reported, so a short one will do. It still chooses its trade limit as the served policy did,
+# so that the rules' effect compares plans made the same way.
+_QUICK_CERTIFICATE = PricedOptions(replications=2)
 # Location fields an override may set to null (no limit).
 _LIFTABLE = frozenset({"max_units_out", "max_units_in"})
 # The optimal policy of the network with its floors and handling limits removed.
