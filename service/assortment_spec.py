@@ -24,7 +24,7 @@ from typing import Annotated, Any, Literal
 from pydantic import BaseModel, ConfigDict, Field, model_validator
 
 from solver import NetworkSpec
-from solver.spec import DailyLaw, LaneLimit, NightCount
+from solver.spec import DailyLaw, LaneLimit, LocationSpec, NightCount
 
 __all__ = [
     "ITEM_CODE_PATTERN",
@@ -51,6 +51,13 @@ _LocationId = Annotated[
 _Amount = Annotated[float, Field(ge=0, allow_inf_nan=False)]
 # A layout's name, stores and lanes mean what a network's do: described as the network's are.
 _NETWORK = NetworkSpec.model_fields
+# An item at a store means what a network's location does: described as the location's fields.
+_LOCATION = LocationSpec.model_fields
+
+
+def _as_location(name: str) -> Any:
+    """A Field described as the network location's field `name`."""
+    return Field(description=_LOCATION[name].description)
 
 
 class _Strict(BaseModel):
@@ -176,13 +183,13 @@ class ItemLocation(_Strict):
 
     capacity: Annotated[int, Field(ge=1, le=100_000, description="Most units held.")]
     unit_margin: Annotated[_Amount, Field(description="Profit per unit sold.")]
-    holding_cost: _Amount = 0.0
-    stockout_penalty: _Amount = 0.0
-    demand: DailyLaw
-    replenishment: DailyLaw
-    keep_at_least: NightCount = 0
-    max_units_out: NightCount | None = None
-    max_units_in: NightCount | None = None
+    holding_cost: Annotated[_Amount, _as_location("holding_cost")] = 0.0
+    stockout_penalty: Annotated[_Amount, _as_location("stockout_penalty")] = 0.0
+    demand: Annotated[DailyLaw, _as_location("demand")]
+    replenishment: Annotated[DailyLaw, _as_location("replenishment")]
+    keep_at_least: Annotated[NightCount, _as_location("keep_at_least")] = 0
+    max_units_out: Annotated[NightCount | None, _as_location("max_units_out")] = None
+    max_units_in: Annotated[NightCount | None, _as_location("max_units_in")] = None
 
 
 class ItemSpec(_Strict):
@@ -205,7 +212,14 @@ class ItemSpec(_Strict):
             description="Room one unit takes on a truck (the layout's truck_capacity_unit).",
         ),
     ] = 1.0
-    locations: Annotated[dict[str, ItemLocation], Field(min_length=2, max_length=64)]
+    locations: Annotated[
+        dict[str, ItemLocation],
+        Field(
+            min_length=2,
+            max_length=64,
+            description="The item at each store of the layout, by the store's id (every store).",
+        ),
+    ]
     lane_limits: Annotated[
         dict[str, Annotated[int, Field(ge=0, le=10_000)]],
         Field(

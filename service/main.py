@@ -5,6 +5,7 @@ from __future__ import annotations
 import logging
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
+from typing import Any
 
 from fastapi import FastAPI, Request, Response
 from sqlalchemy.exc import OperationalError
@@ -26,7 +27,7 @@ from service.api import (
     recommendations,
 )
 from service.api.deps import KeyCache
-from service.api.docs import document_problems, install_docs
+from service.api.docs import UPLOAD_MODELS, add_component_schemas, document_problems, install_docs
 from service.db.migrate import require_migrated
 from service.db.session import make_engine, make_session_factory
 from service.logs import configure_server_logging
@@ -122,6 +123,15 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     ):
         document_problems(module.router)
         app.include_router(module.router)
+    generate_openapi = app.openapi
+
+    def openapi() -> dict[str, Any]:
+        # FastAPI's documented way to extend the document: generated once, then amended.
+        if app.openapi_schema is None:
+            add_component_schemas(generate_openapi(), UPLOAD_MODELS)
+        return app.openapi_schema  # type: ignore[return-value]
+
+    app.openapi = openapi  # type: ignore[method-assign]
     # Added last = outermost: request ids first (also handed to the log lines), then the body
     # limit, then idempotent replays.
     app.add_middleware(

@@ -24,7 +24,7 @@ from service.api.schemas.assortments import (
     LayoutUpdate,
 )
 from service.api.versions import IfMatch, check_if_match, etag
-from service.assortment_spec import Layout
+from service.assortment_spec import ItemSpec, Layout
 from service.assortments import Assortment
 from service.errors import ClosingCountsError, ItemUploadError
 from service.item_upload import (
@@ -55,9 +55,13 @@ _CSV_EXAMPLE = (
 )
 
 
-def bulk_upload_doc(csv_example: str, member: str) -> dict[str, Any]:
+def bulk_upload_doc(csv_example: str, member: str, model: str | None = None) -> dict[str, Any]:
     """The request body of a bulk upload for the OpenAPI document: CSV (with `csv_example`),
-    JSON lines, or one JSON document `{member: [...]}`."""
+    JSON lines, or one JSON document `{member: [...]}` whose members are of the component
+    schema `model` (service.api.docs.UPLOAD_MODELS puts it in the document), or any object."""
+    member_schema = (
+        {"type": "object"} if model is None else {"$ref": f"#/components/schemas/{model}"}
+    )
     return {
         "requestBody": {
             "required": True,
@@ -67,7 +71,7 @@ def bulk_upload_doc(csv_example: str, member: str) -> dict[str, Any]:
                 "application/json": {
                     "schema": {
                         "type": "object",
-                        "properties": {member: {"type": "array", "items": {"type": "object"}}},
+                        "properties": {member: {"type": "array", "items": member_schema}},
                         "required": [member],
                     }
                 },
@@ -76,7 +80,7 @@ def bulk_upload_doc(csv_example: str, member: str) -> dict[str, Any]:
     }
 
 
-_UPLOAD_DOC = bulk_upload_doc(_CSV_EXAMPLE, "items")
+_UPLOAD_DOC = bulk_upload_doc(_CSV_EXAMPLE, "items", ItemSpec.__name__)
 
 
 class UploadTooLarge(ApiProblem):

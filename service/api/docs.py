@@ -15,7 +15,7 @@ its policy is being solved):
 
 from __future__ import annotations
 
-from collections.abc import Iterator
+from collections.abc import Iterable, Iterator
 from pathlib import Path
 from typing import Any
 
@@ -25,12 +25,16 @@ from fastapi.openapi.docs import get_swagger_ui_html, get_swagger_ui_oauth2_redi
 from fastapi.responses import HTMLResponse
 from fastapi.routing import APIRoute
 from fastapi.staticfiles import StaticFiles
+from pydantic import BaseModel
 from swagger_ui.utils import SWAGGER_UI_PY_ROOT
 
 from service.api.deps import Require
+from service.assortment_spec import ItemSpec
 from service.problems import PROBLEM_RESPONSES
 
 __all__ = [
+    "UPLOAD_MODELS",
+    "add_component_schemas",
     "document_problems",
     "install_docs",
     "problem_statuses",
@@ -64,6 +68,24 @@ def problem_statuses(route: APIRoute) -> set[int]:
     if {"POST", "PUT"} & (route.methods or set()):
         statuses |= {409, 413, 422}
     return statuses
+
+
+# Models of request bodies that the routes read themselves (CSV, JSON lines or JSON, streamed)
+# and so declare by `$ref` in their openapi_extra: FastAPI puts into the document only the
+# models its routes parse, so these are added to its component schemas here.
+UPLOAD_MODELS: tuple[type[BaseModel], ...] = (ItemSpec,)
+
+
+def add_component_schemas(document: dict[str, Any], models: Iterable[type[BaseModel]]) -> None:
+    """Add each model's JSON schema (validation mode) and the schemas it refers to, under their
+    names, to the document's components. A name the document already holds must hold the same
+    schema (the network specification's distributions are shared with NetworkCreate)."""
+    components = document.setdefault("components", {}).setdefault("schemas", {})
+    for model in models:
+        schema = model.model_json_schema(ref_template="#/components/schemas/{model}")
+        for name, definition in {**schema.pop("$defs", {}), model.__name__: schema}.items():
+            if components.setdefault(name, definition) != definition:
+                raise ValueError(f"{model.__name__} refers to a {name} unlike the document's")
 
 
 def document_problems(router: APIRouter) -> None:

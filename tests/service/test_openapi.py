@@ -9,8 +9,13 @@ from pathlib import Path
 from typing import Any
 from urllib.parse import urlsplit
 
+import jsonschema_rs
+import pytest
 from fastapi.testclient import TestClient
+from pydantic import ValidationError
 
+from service.api.docs import add_component_schemas
+from service.assortment_spec import ItemSpec
 from service.main import create_app
 from service.operations import openapi_document
 from service.settings import Settings
@@ -122,3 +127,43 @@ class _References(HTMLParser):
         for name, value in attrs:
             if name == wanted and value:
                 self.urls.append(value)
+
+
+def test_the_item_upload_documents_its_items_and_that_schema_judges_as_the_service_does() -> None:
+    """The item upload's JSON body refers to ItemSpec's schema, added to the components beside
+    the network specification's laws it shares. An independent JSON Schema validator
+    (jsonschema-rs, from the package registry) fed that schema accepts an item the service
+    stores and refuses one the service refuses."""
+    document = openapi_document()
+    body = document["paths"]["/v1/assortments/{assortment_id}/items"]["post"]["requestBody"]
+    items = body["content"]["application/json"]["schema"]["properties"]["items"]
+    assert items["items"] == {"$ref": "#/components/schemas/ItemSpec"}
+    schema = {"$ref": "#/components/schemas/ItemSpec", "components": document["components"]}
+    validator = jsonschema_rs.Draft202012Validator(schema)
+    law = {"dist": "poisson", "mean": 1.2}
+    good = {
+        "item": "DRL-18V",
+        "unit_volume": 0.02,
+        "locations": {
+            store: {"capacity": 8, "unit_margin": 38.5, "demand": law, "replenishment": law}
+            for store in ("harbour", "old-town")
+        },
+        "lane_limits": {"harbour>old-town": 0},
+    }
+    ItemSpec.model_validate(good)
+    assert validator.is_valid(good)
+    for bad in (
+        {**good, "lane_limits": {"harbour>old-town": -1}},
+        {**good, "colour": "red"},
+        {key: value for key, value in good.items() if key != "locations"},
+    ):
+        with pytest.raises(ValidationError):
+            ItemSpec.model_validate(bad)
+        assert not validator.is_valid(bad)
+
+
+def test_an_upload_model_must_agree_with_the_schemas_it_shares() -> None:
+    document = openapi_document()
+    document["components"]["schemas"]["PoissonDemand"]["description"] = "something else"
+    with pytest.raises(ValueError, match="PoissonDemand"):
+        add_component_schemas(document, [ItemSpec])
