@@ -4,14 +4,16 @@ from __future__ import annotations
 
 import hashlib
 import json
-from datetime import timedelta
+from datetime import date, timedelta
 from pathlib import Path
 
 import pytest
 from sqlalchemy import func, select
+from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session, sessionmaker
 
 from service.codec import encode_policy
+from service.db.assortments import insert_rows
 from service.db.base import utcnow
 from service.db.jobs import (
     claim_job,
@@ -25,7 +27,7 @@ from service.db.jobs import (
 from service.db.keys import get_or_create_tenant
 from service.db.networks import add_version, canonical_spec, create_network, list_networks
 from service.db.policies import policy_for, store_policy
-from service.db.tables import Policy, SolveJob
+from service.db.tables import Policy, SalesDay, SolveJob
 from service.vocabulary import JobState
 from solver import NetworkSpec, solve_network
 
@@ -205,3 +207,26 @@ def test_a_queued_job_is_claimable_whatever_its_attempts(sessions: sessionmaker[
     with sessions.begin() as session:
         job = claim(session, "worker-a", attempts=3)
         assert job is not None and job.attempts == 6
+
+
+def test_bulk_rows_go_in_whole_and_a_duplicate_is_refused_as_sqlalchemy_reports_it(
+    sessions: sessionmaker[Session],
+) -> None:
+    """insert_rows (COPY on PostgreSQL, executemany elsewhere) stores every row in the caller's
+    transaction, and a row breaking a unique key raises SQLAlchemy's IntegrityError on both
+    databases, undone with its savepoint, so that an upload's caller answers 409 rather than
+    500."""
+    table = SalesDay.metadata.tables[SalesDay.__tablename__]
+    columns = [column.name for column in table.columns if column.name != "id"]
+    start, now = date(2026, 11, 2), utcnow()
+    with sessions.begin() as session:
+        tenant = get_or_create_tenant(session, "t")
+        network, _, _ = create_network(session, tenant, demo(), ["discounted"])
+        days = [
+            (network.id, "riverside", start + timedelta(days=k), 2, 5, 1, now) for k in range(7)
+        ]
+        insert_rows(session, table, columns, iter(days))
+        with pytest.raises(IntegrityError), session.begin_nested():
+            insert_rows(session, table, columns, iter([days[3]]))
+        stored = session.scalars(select(SalesDay.business_date).order_by(SalesDay.id)).all()
+    assert stored == [day[2] for day in days]
