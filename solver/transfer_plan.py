@@ -487,12 +487,13 @@ def _plan(night: _Batch, lane_costs: NDArray[np.float64] | None = None) -> NDArr
         stores = at[:, None] + store_rows[None, :]
         gain = up[stores, y]  # (b, N): value of one more unit, -inf when full
         loss = np.where(y > lo, up[stores, np.maximum(y - 1, 0)], np.inf)
-        # Residual arc costs as (b, sender, receiver) matrices, inf where unavailable. A lane
-        # into a store that has taken its most tonight is closed (conservative: module
-        # docstring, "Rules").
+        # Residual arc costs as (b, receiver, sender) matrices into Y (so that both half-steps
+        # below reduce over the last axis) and (b, sender, receiver) into O, inf where
+        # unavailable. A lane into a store that has taken its most tonight is closed
+        # (conservative: module docstring, "Rules").
         open_in = inn < most
         forward = np.full((b, n, n), np.inf)
-        forward[:, network.lane_from, network.lane_to] = np.where(
+        forward[:, network.lane_to, network.lane_from] = np.where(
             (f < lim) & open_in[:, network.lane_to], lane_cost, np.inf
         )
         forward[:, diagonal, diagonal] = 0.0
@@ -508,17 +509,21 @@ def _plan(night: _Batch, lane_costs: NDArray[np.float64] | None = None) -> NDArr
         # is bipartite between the two), only on rows whose distances still change.
         for _ in range(n_nodes):
             changed = np.zeros(live.size, dtype=np.bool_)
-            candidate = dist_y[live][:, None, :] + backward[live]  # (l, a, j)
+            whole = live.size == b  # (indexing by live would copy the matrices)
+            row_of = np.arange(live.size)[:, None]
+            candidate = dist_y[live][:, None, :] + (backward if whole else backward[live])
+            # (l, a, j); the minimum read at the argmin (the first on ties): .min() without a
+            # second pass.
             best = candidate.argmin(axis=2)
-            value = candidate.min(axis=2)
+            value = candidate[row_of, diagonal[None, :], best]
             better = value < _threshold(dist_o[live])
             if better.any():
                 changed |= better.any(axis=1)
                 dist_o[live] = np.where(better, value, dist_o[live])
                 pred_o[live] = np.where(better, into_o[diagonal[None, :], best], pred_o[live])
-            candidate = dist_o[live][:, :, None] + forward[live]  # (l, a, j)
-            best = candidate.argmin(axis=1)
-            value = candidate.min(axis=1)
+            candidate = dist_o[live][:, None, :] + (forward if whole else forward[live])
+            best = candidate.argmin(axis=2)  # (l, j, a)
+            value = candidate[row_of, diagonal[None, :], best]
             better = value < _threshold(dist_y[live])
             if better.any():
                 changed |= better.any(axis=1)
