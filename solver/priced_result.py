@@ -99,11 +99,11 @@ class PricedProgress:
 
     "pricing": after each pricing iteration; iteration counts them, continuing through the
         pricing at the reference stock.
-    "planning": as the plan's trade limit is chosen (solver.priced), before each candidate is
-        simulated; iteration = that candidate's number (1 is the plain store values),
-        candidates = how many there are, trade_limit = its limit (None for the plain store
-        values). Absent when there is nothing to choose (PricedOptions.trade_limits empty, or
-        no limit below what the stores can trade).
+    "planning": as the plan's trade limit is chosen (solver.priced), as each candidate is
+        prepared (all are then simulated together); iteration = that candidate's number (1 is
+        the plain store values), candidates = how many there are, trade_limit = its limit
+        (None for the plain store values). Absent when there is nothing to choose
+        (PricedOptions.trade_limits empty, or no limit below what the stores can trade).
     "certifying": every 256 simulated days and after each batch of replications; iteration =
         replications finished.
 
