@@ -138,7 +138,7 @@ from __future__ import annotations
 import functools
 import math
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, replace
 
 import numpy as np
@@ -835,8 +835,8 @@ def _choose_trade_limit(
     """The policy planning on the store values, or on the values with later trades limited to
     one of options.trade_limits units a night, whichever earns most in a short simulation from
     the reference stock (module docstring). Its random numbers are not the certificate's.
-    `report(candidate, candidates, limit)` is called before each candidate is simulated
-    (candidate 1 plans on the store values, limit None)."""
+    `report(candidate, candidates, limit)` is called as each candidate is prepared (candidate
+    1 plans on the store values, limit None); they are then simulated together."""
     # A limit no store reaches changes nothing.
     limits: list[int | None] = [None] + [
         limit
@@ -857,25 +857,28 @@ def _choose_trade_limit(
         days = _SELECTION_DAYS
         weights = np.concatenate([np.zeros(warmup), np.full(days - warmup, 1.0 / (days - warmup))])
         step = 1.0
-    best, best_mean = policy, -math.inf
+    candidates = []
     for number, limit in enumerate(limits, start=1):
         report(number, len(limits), limit)
         candidate = policy
         if limit is not None:
             values = _limited_post_move(net, laws, policy, criterion, limit)
             candidate = replace(policy, plan_post_move_values=values, trade_limit=limit)
-        mean = float(
-            _simulate(
-                net,
-                candidate,
-                reference,
-                _SELECTION_REPLICATIONS,
-                days,
-                np.random.default_rng(options.seed + 1),
-                weights,
-                step,
-            ).mean()
-        )
+        candidates.append(candidate)
+    # All candidates in one simulation: each on the same random numbers as if alone.
+    samples = _simulate(
+        net,
+        candidates,
+        reference,
+        _SELECTION_REPLICATIONS,
+        days,
+        np.random.default_rng(options.seed + 1),
+        weights,
+        step,
+    )
+    best, best_mean = policy, -math.inf
+    for candidate, sample in zip(candidates, samples, strict=True):
+        mean = float(sample.mean())
         # The first best is kept on ties, as argmax over the candidates in order.
         if mean > best_mean:
             best, best_mean = candidate, mean
@@ -900,7 +903,7 @@ def _reward_range(net: _Network) -> tuple[float, float]:
 
 def _simulate(
     net: _Network,
-    policy: PricedPolicy,
+    policies: Sequence[PricedPolicy],
     stock: NDArray[np.int64],
     replications: int,
     days: int,
@@ -909,31 +912,36 @@ def _simulate(
     step: float,
     tick: Callable[[], None] = lambda: None,
 ) -> NDArray[np.float64]:
-    """Per replication, sum_t weights[t] (r(y_t) - cost_t - step (V(s_{t+1}) - E[V(s_{t+1}) |
-    y_t])), shape (replications,): the expected one-day profits of the plan's post-move
-    stocks less the martingale of the store values V (module docstring). `tick` is called
-    after every block of days (for progress reports)."""
+    """Per policy and replication, sum_t weights[t] (r(y_t) - cost_t - step (V(s_{t+1}) -
+    E[V(s_{t+1}) | y_t])), shape (G, replications) for G policies: the expected one-day profits
+    of the plan's post-move stocks less the martingale of the store values V (module
+    docstring). The policies share the random numbers and are planned in one batch (policies
+    after the first: the same network, other plan values), each as if simulated alone. `tick`
+    is called after every block of days (for progress reports)."""
     laws = daily_laws(net.spec)
     caps = net.capacities
     n = caps.size
     width = int(caps.max()) + 1
     phases = net.phases
     stores = np.arange(n)
-    # Per phase, (N, max C + 1) tables: r_{i,d}(y), V_{i,d+1}(s) and E[V_{i,d+1}(s') | y].
-    reward = np.zeros((phases, n, width))
-    value = np.zeros((phases, n, width))
-    expected = np.zeros((phases, n, width))
-    for i, (kernels, rewards, values) in enumerate(
-        zip(net.kernels, net.rewards, policy.store_values, strict=True)
-    ):
-        size = int(caps[i]) + 1
-        for d in range(phases):
-            following = values[(d + 1) % phases]
-            reward[d, i, :size] = rewards[d]
-            value[d, i, :size] = following
-            expected[d, i, :size] = kernels[d] @ following
-    current = np.broadcast_to(stock, (replications, n)).copy()
-    total = np.zeros(replications)
+    groups = len(policies)
+    # Per policy and phase, (N, max C + 1) tables: r_{i,d}(y), V_{i,d+1}(s) and
+    # E[V_{i,d+1}(s') | y].
+    reward = np.zeros((groups, phases, n, width))
+    value = np.zeros((groups, phases, n, width))
+    expected = np.zeros((groups, phases, n, width))
+    for g, policy in enumerate(policies):
+        for i, (kernels, rewards, values) in enumerate(
+            zip(net.kernels, net.rewards, policy.store_values, strict=True)
+        ):
+            size = int(caps[i]) + 1
+            for d in range(phases):
+                following = values[(d + 1) % phases]
+                reward[g, d, i, :size] = rewards[d]
+                value[g, d, i, :size] = following
+                expected[g, d, i, :size] = kernels[d] @ following
+    current = np.broadcast_to(stock, (groups, replications, n)).copy()
+    total = np.zeros((groups, replications))
     block = 256
     done = 0
     while done < days:
@@ -942,13 +950,19 @@ def _simulate(
         for k in range(count):
             t = done + k
             d = t % phases
-            flows = policy.plan_batch(current, phase=d)
-            post = current + net.stock_change(flows)
-            current = np.minimum(post - np.minimum(post, demand[k]) + supply[k], caps)
-            cost = flow_costs(flows, net.lane_costs, net.dispatch_costs)
-            profit = reward[d][stores, post].sum(axis=1) - cost
-            surprise = (value[d][stores, current] - expected[d][stores, post]).sum(axis=1)
-            total += weights[t] * (profit - step * surprise)
+            if groups == 1:
+                flows = policies[0].plan_batch(current[0], phase=d)[None]
+            else:
+                flows = policies[0].plan_alongside(policies[1:], current, phase=d)
+            for g in range(groups):
+                post = current[g] + net.stock_change(flows[g])
+                current[g] = np.minimum(post - np.minimum(post, demand[k]) + supply[k], caps)
+                cost = flow_costs(flows[g], net.lane_costs, net.dispatch_costs)
+                profit = reward[g, d][stores, post].sum(axis=1) - cost
+                surprise = (value[g, d][stores, current[g]] - expected[g, d][stores, post]).sum(
+                    axis=1
+                )
+                total[g] += weights[t] * (profit - step * surprise)
         done += count
         tick()
     return total
@@ -989,7 +1003,7 @@ def _certify(
         done = samples.size
         part = _simulate(
             net,
-            policy,
+            [policy],
             reference,
             batch,
             warmup + days,
@@ -997,7 +1011,7 @@ def _certify(
             weights,
             step,
             functools.partial(report, done, upper, low),
-        )
+        )[0]
         samples = np.concatenate([samples, part])
         n = samples.size
         half = (

@@ -99,11 +99,11 @@ class PricedProgress:
 
     "pricing": after each pricing iteration; iteration counts them, continuing through the
         pricing at the reference stock.
-    "planning": as the plan's trade limit is chosen (solver.priced), before each candidate is
-        simulated; iteration = that candidate's number (1 is the plain store values),
-        candidates = how many there are, trade_limit = its limit (None for the plain store
-        values). Absent when there is nothing to choose (PricedOptions.trade_limits empty, or
-        no limit below what the stores can trade).
+    "planning": as the plan's trade limit is chosen (solver.priced), as each candidate is
+        prepared (all are then simulated together); iteration = that candidate's number (1 is
+        the plain store values), candidates = how many there are, trade_limit = its limit
+        (None for the plain store values). Absent when there is nothing to choose
+        (PricedOptions.trade_limits empty, or no limit below what the stores can trade).
     "certifying": every 256 simulated days and after each batch of replications; iteration =
         replications finished.
 
@@ -322,6 +322,34 @@ class PricedPolicy(SolvedNetwork):
             self._plan_tolerance,
             self._rules[phase],
         )
+
+    def plan_alongside(
+        self,
+        others: Sequence[PricedPolicy],
+        stocks: NDArray[np.int64],
+        *,
+        phase: int = 0,
+    ) -> NDArray[np.int64]:
+        """Tonight's units per lane of this policy and of `others` (the same network and rules,
+        other plan values, as the trade limit's candidates) in one batch, shape (G, B, L) for
+        stocks (G, B, N) already checked: row b of policy g (this one first) plans stocks[g, b],
+        each exactly as its plan_batch would."""
+        policies = [self, *others]
+        groups, batch, n = stocks.shape
+        if groups != len(policies):
+            raise ValueError(f"expected stocks for {len(policies)} policies, got {groups}")
+        network = int(self.network_limit[phase])
+        flows = plan_flows(
+            self._network,
+            stocks.reshape(groups * batch, n),
+            np.stack([policy.plan_values[phase] for policy in policies]),
+            self.lane_limits[phase],
+            None if network < 0 else network,
+            np.array([policy._plan_tolerance for policy in policies]),
+            self._rules[phase],
+            tables=np.repeat(np.arange(groups), batch),
+        )
+        return flows.reshape(groups, batch, -1)
 
     def plan(self, stock: Sequence[int], *, phase: int = 0) -> NDArray[np.int64]:
         """Tonight's units per lane from closing `stock`, shape (L,)."""

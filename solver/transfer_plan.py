@@ -62,8 +62,10 @@ out_i <= O_i; in_i <= I_i; and - sum_l F_l [f_l > 0] in the objective.
 
 Everything is vectorised over the batch (numpy, no flow vectors are enumerated); rows that have
 finished drop out of the loop. Each row's arithmetic is independent of the other rows, so a
-stock gets the same plan alone or in any batch. Opposite flows on a lane pair are netted at the
-end (same post-move stock, no higher cost), as the exact solver's flow table does.
+stock gets the same plan alone or in any batch; rows may even plan on different value tables
+(plan_flows's `tables`: the trade limit's candidates of solver.priced, simulated together).
+Opposite flows on a lane pair are netted at the end (same post-move stock, no higher cost), as
+the exact solver's flow table does.
 """
 
 from __future__ import annotations
@@ -168,22 +170,36 @@ def plan_flows(
     values: NDArray[np.float64],
     lane_limits: NDArray[np.int64],
     network_limit: int | None,
-    tolerance: float,
+    tolerance: float | NDArray[np.float64],
     rules: PlanRules | None = None,
+    tables: NDArray[np.int64] | None = None,
 ) -> NDArray[np.int64]:
     """Units per lane for every closing stock of the batch, shape (B, L).
 
     stocks: shape (B, N), 0 <= s_i <= C_i.
     values: shape (N, max C + 1), row i holding a concave W_i on 0..C_i (entries beyond C_i
-        are ignored).
+        are ignored); or (G, N, max C + 1), G such tables, row b planning on tables[b].
     lane_limits: shape (L,) or (B, L), units per lane tonight.
     network_limit: units over all lanes tonight, None for no limit.
-    tolerance: a cycle must gain more than this (currency) to be taken.
+    tolerance: a cycle must gain more than this (currency) to be taken; with G tables, shape
+        (G,), one per table.
     rules: tonight's floors and handling limits and the lanes' dispatch costs (module
         docstring, "Rules"); None for none.
+    tables: shape (B,), the value table of each row (only with G tables).
     """
     stocks = np.asarray(stocks, dtype=np.int64)
     batch, n = stocks.shape[0], network.n_stores
+    if values.ndim == 2:
+        values = values[None]
+        table = np.zeros(batch, dtype=np.int64)
+    elif tables is None:
+        raise ValueError("tables is required with several value tables")
+    else:
+        table = np.asarray(tables, dtype=np.int64)
+    # The G tables stacked as one of G N rows; row b looks W_i up at row offsets[b] + i.
+    offsets = table * n
+    row_tolerance = np.broadcast_to(np.asarray(tolerance, dtype=np.float64), (values.shape[0],))
+    row_tolerance = row_tolerance[table]
     limits = np.broadcast_to(
         np.asarray(lane_limits, dtype=np.int64), (batch, network.n_lanes)
     ).copy()
@@ -202,7 +218,16 @@ def plan_flows(
         # out_i = s_i - stay_i <= most_out_i: a lower bound on the stay arc.
         low_stay = np.maximum(stocks - rules.most_out[None, :], 0)
     night = _Batch(
-        network, values, network_limit, tolerance, stocks, limits, floors, low_stay, most_in
+        network,
+        values.reshape(-1, values.shape[2]),
+        network_limit,
+        row_tolerance,
+        offsets,
+        stocks,
+        limits,
+        floors,
+        low_stay,
+        most_in,
     )
     if rules is None or not np.any(rules.dispatch_costs > 0):
         return _plan(night)
@@ -218,8 +243,8 @@ def plan_flows(
     best_flows = candidates[0]
     best_value = np.full(batch, -np.inf)
     for closed in candidates:
-        value = plan_objective(network, stocks, values, closed, rules.dispatch_costs)
-        better = value > best_value + tolerance
+        value = night.objective(closed, rules.dispatch_costs)
+        better = value > best_value + row_tolerance
         best_flows = np.where(better[:, None], closed, best_flows)
         best_value = np.where(better, value, best_value)
     return best_flows
@@ -232,9 +257,25 @@ def plan_objective(
     flows: NDArray[np.int64],
     dispatch_costs: NDArray[np.float64] | None = None,
 ) -> NDArray[np.float64]:
-    """sum_i W_i(y_i) - c.f - F.[f > 0] of each row, shape (B,) (values as in plan_flows)."""
+    """sum_i W_i(y_i) - c.f - F.[f > 0] of each row, shape (B,) (values (N, max C + 1) as in
+    plan_flows)."""
+    return _objective(
+        network, stocks, values, np.zeros(stocks.shape[0], dtype=np.int64), flows, dispatch_costs
+    )
+
+
+def _objective(
+    network: PlanNetwork,
+    stocks: NDArray[np.int64],
+    values: NDArray[np.float64],
+    offsets: NDArray[np.int64],
+    flows: NDArray[np.int64],
+    dispatch_costs: NDArray[np.float64] | None,
+) -> NDArray[np.float64]:
+    """plan_objective on stacked value tables: row b looks W_i up at values[offsets[b] + i]."""
     post = stocks + network.stock_change(flows)
-    total: NDArray[np.float64] = values[np.arange(network.n_stores)[None, :], post].sum(axis=1)
+    stores = offsets[:, None] + np.arange(network.n_stores)[None, :]
+    total: NDArray[np.float64] = values[stores, post].sum(axis=1)
     total = total - flows @ network.lane_costs
     if dispatch_costs is not None:
         total = total - (flows > 0) @ dispatch_costs
@@ -244,14 +285,17 @@ def plan_objective(
 @dataclass(frozen=True, eq=False)
 class _Batch:
     """B rows of tonight's problem on one network, as plan_flows takes them with the rules
-    turned into bounds. values, network_limit and tolerance as in plan_flows; stocks (B, N);
-    limits (B, L), units per lane; floors (B, N), least post-move stock; low_stay (B, N),
-    least units kept back (handling limit out); most_in (B, N), handling limit in."""
+    turned into bounds. network_limit as in plan_flows; values (G N, max C + 1), G value tables
+    stacked; tolerance (B,), each row's; offsets (B,), row b's W_i is values[offsets[b] + i];
+    stocks (B, N); limits (B, L), units per lane; floors (B, N), least post-move stock;
+    low_stay (B, N), least units kept back (handling limit out); most_in (B, N), handling
+    limit in."""
 
     network: PlanNetwork
     values: NDArray[np.float64]
     network_limit: int | None
-    tolerance: float
+    tolerance: NDArray[np.float64]
+    offsets: NDArray[np.int64]
     stocks: NDArray[np.int64]
     limits: NDArray[np.int64]
     floors: NDArray[np.int64]
@@ -262,6 +306,8 @@ class _Batch:
         """The given rows (an index array), in that order."""
         return replace(
             self,
+            tolerance=self.tolerance[rows],
+            offsets=self.offsets[rows],
             stocks=self.stocks[rows],
             limits=self.limits[rows],
             floors=self.floors[rows],
@@ -272,6 +318,14 @@ class _Batch:
     def twice(self) -> _Batch:
         """Every row twice: rows 0..B-1, then the same again."""
         return self.take(np.tile(np.arange(self.stocks.shape[0]), 2))
+
+    def objective(
+        self, flows: NDArray[np.int64], dispatch_costs: NDArray[np.float64]
+    ) -> NDArray[np.float64]:
+        """plan_objective of each row's flows, shape (B,)."""
+        return _objective(
+            self.network, self.stocks, self.values, self.offsets, flows, dispatch_costs
+        )
 
 
 def _best_single_lane(night: _Batch) -> NDArray[np.int64]:
@@ -296,11 +350,12 @@ def _best_single_lane(night: _Batch) -> NDArray[np.int64]:
     fits = units <= most[:, :, None]
     y_from = np.clip(s_from - units, 0, caps[sender][None, :, None])
     y_to = np.clip(s_to + units, 0, caps[receiver][None, :, None])
+    at = night.offsets[:, None, None]
     gain = (
-        values[sender[None, :, None], y_from]
-        - values[sender[None, :, None], s_from]
-        + values[receiver[None, :, None], y_to]
-        - values[receiver[None, :, None], s_to]
+        values[at + sender[None, :, None], y_from]
+        - values[at + sender[None, :, None], s_from]
+        + values[at + receiver[None, :, None], y_to]
+        - values[at + receiver[None, :, None], s_to]
         - network.lane_costs[None, :, None] * units
     )
     gain = np.where(fits, gain, -np.inf).reshape(batch, -1)
@@ -318,21 +373,23 @@ def _closing_candidates(
     network: PlanNetwork,
     stocks: NDArray[np.int64],
     values: NDArray[np.float64],
+    offsets: NDArray[np.int64],
     flows: NDArray[np.int64],
     charged: NDArray[np.bool_],
 ) -> tuple[NDArray[np.int64], NDArray[np.int64]]:
     """(row, lane) pairs to try closing: per row, the CLOSE_TRIALS used, charged lanes whose
     units earn least beside their dispatch cost (their flow removed, the rest kept: a screen
-    only, which may not be feasible), in row order."""
+    only, which may not be feasible), in row order. Row b's W_i is values[offsets[b] + i]."""
     used = (flows > 0) & charged[None, :]
     sender, receiver = network.lane_from, network.lane_to
     post = stocks + network.stock_change(flows)
     units = flows
+    to, by = offsets[:, None] + receiver[None, :], offsets[:, None] + sender[None, :]
     earn = (
-        values[receiver[None, :], post[:, receiver]]
-        - values[receiver[None, :], np.maximum(post[:, receiver] - units, 0)]
-        - values[sender[None, :], np.minimum(post[:, sender] + units, network.capacities[sender])]
-        + values[sender[None, :], post[:, sender]]
+        values[to, post[:, receiver]]
+        - values[to, np.maximum(post[:, receiver] - units, 0)]
+        - values[by, np.minimum(post[:, sender] + units, network.capacities[sender])]
+        + values[by, post[:, sender]]
         - network.lane_costs[None, :] * units
     )
     earn = np.where(used, earn, np.inf)
@@ -352,27 +409,30 @@ def _close_unpaid_lanes(
     network, stocks, values, tolerance = night.network, night.stocks, night.values, night.tolerance
     flows = flows.copy()
     limits = night.limits.copy()
-    best = plan_objective(network, stocks, values, flows, dispatch_costs)
+    best = night.objective(flows, dispatch_costs)
     charged = dispatch_costs > 0
     active = np.flatnonzero(np.any((flows > 0) & charged[None, :], axis=1))
     while active.size:
-        rows, lanes = _closing_candidates(network, stocks[active], values, flows[active], charged)
+        rows, lanes = _closing_candidates(
+            network, stocks[active], values, night.offsets[active], flows[active], charged
+        )
         rows = active[rows]
         trial_limits = limits[rows].copy()
         trial_limits[np.arange(rows.size), lanes] = 0
-        trial = _plan(replace(night.take(rows), limits=trial_limits))
-        worth = plan_objective(network, stocks[rows], values, trial, dispatch_costs)
+        trial_night = replace(night.take(rows), limits=trial_limits)
+        trial = _plan(trial_night)
+        worth = trial_night.objective(trial, dispatch_costs)
         # The best closing of each row (rows come sorted, candidates in lane order).
         order = np.lexsort((-worth, rows))
         first = order[np.r_[True, rows[order][1:] != rows[order][:-1]]]
         row = rows[first]
-        better = worth[first] > best[row] + tolerance
+        better = worth[first] > best[row] + tolerance[row]
         row, pick = row[better], first[better]
         flows[row] = trial[pick]
         limits[row] = trial_limits[pick]
         best[row] = worth[pick]
         active = row[np.any((flows[row] > 0) & charged[None, :], axis=1)]
-    nothing = plan_objective(network, stocks, values, np.zeros_like(flows), dispatch_costs)
+    nothing = night.objective(np.zeros_like(flows), dispatch_costs)
     flows[nothing > best + tolerance] = 0
     return flows
 
@@ -381,7 +441,7 @@ def _plan(night: _Batch, lane_costs: NDArray[np.float64] | None = None) -> NDArr
     """The augmenting-cycle plan (module docstring) without dispatch costs; lane_costs: (B, L)
     unit costs per row (default the network's)."""
     network, stocks, values = night.network, night.stocks, night.values
-    network_limit, tolerance = night.network_limit, night.tolerance
+    network_limit = night.network_limit
     n, n_lanes = network.n_stores, network.n_lanes
     batch = stocks.shape[0]
     caps = network.capacities
@@ -403,10 +463,10 @@ def _plan(night: _Batch, lane_costs: NDArray[np.float64] | None = None) -> NDArr
     into_y[diagonal, diagonal] = diagonal
     into_o[diagonal, diagonal] = n + diagonal
     width_c = values.shape[1]
-    # Marginal values: up[i, y] = W_i(y + 1) - W_i(y) for y < C_i.
-    up = np.full((n, width_c + 1), -np.inf)
-    for i in range(n):
-        c = int(caps[i])
+    # Marginal values: up[i, y] = W_i(y + 1) - W_i(y) for y < C_i (per stacked table).
+    up = np.full((values.shape[0], width_c + 1), -np.inf)
+    for i in range(values.shape[0]):
+        c = int(caps[i % n])
         up[i, :c] = np.diff(values[i, : c + 1])
     store_rows = np.arange(n)
 
@@ -420,17 +480,20 @@ def _plan(night: _Batch, lane_costs: NDArray[np.float64] | None = None) -> NDArr
         y, st, f, lim = post[active], stay[active], flows[active], night.limits[active]
         lo, keep, most = night.floors[active], night.low_stay[active], night.most_in[active]
         lane_cost = unit_costs[active]
+        at, tol = night.offsets[active], night.tolerance[active]
         inn = _integer_product(f, into)  # (b, N) units received so far
         b = active.size
         rows = np.arange(b)[:, None]
-        gain = up[store_rows[None, :], y]  # (b, N): value of one more unit, -inf when full
-        loss = np.where(y > lo, up[store_rows[None, :], np.maximum(y - 1, 0)], np.inf)
-        # Residual arc costs as (b, sender, receiver) matrices, inf where unavailable. A lane
-        # into a store that has taken its most tonight is closed (conservative: module
-        # docstring, "Rules").
+        stores = at[:, None] + store_rows[None, :]
+        gain = up[stores, y]  # (b, N): value of one more unit, -inf when full
+        loss = np.where(y > lo, up[stores, np.maximum(y - 1, 0)], np.inf)
+        # Residual arc costs as (b, receiver, sender) matrices into Y (so that both half-steps
+        # below reduce over the last axis) and (b, sender, receiver) into O, inf where
+        # unavailable. A lane into a store that has taken its most tonight is closed
+        # (conservative: module docstring, "Rules").
         open_in = inn < most
         forward = np.full((b, n, n), np.inf)
-        forward[:, network.lane_from, network.lane_to] = np.where(
+        forward[:, network.lane_to, network.lane_from] = np.where(
             (f < lim) & open_in[:, network.lane_to], lane_cost, np.inf
         )
         forward[:, diagonal, diagonal] = 0.0
@@ -446,17 +509,21 @@ def _plan(night: _Batch, lane_costs: NDArray[np.float64] | None = None) -> NDArr
         # is bipartite between the two), only on rows whose distances still change.
         for _ in range(n_nodes):
             changed = np.zeros(live.size, dtype=np.bool_)
-            candidate = dist_y[live][:, None, :] + backward[live]  # (l, a, j)
+            whole = live.size == b  # (indexing by live would copy the matrices)
+            row_of = np.arange(live.size)[:, None]
+            candidate = dist_y[live][:, None, :] + (backward if whole else backward[live])
+            # (l, a, j); the minimum read at the argmin (the first on ties): .min() without a
+            # second pass.
             best = candidate.argmin(axis=2)
-            value = candidate.min(axis=2)
+            value = candidate[row_of, diagonal[None, :], best]
             better = value < _threshold(dist_o[live])
             if better.any():
                 changed |= better.any(axis=1)
                 dist_o[live] = np.where(better, value, dist_o[live])
                 pred_o[live] = np.where(better, into_o[diagonal[None, :], best], pred_o[live])
-            candidate = dist_o[live][:, :, None] + forward[live]  # (l, a, j)
-            best = candidate.argmin(axis=1)
-            value = candidate.min(axis=1)
+            candidate = dist_o[live][:, None, :] + (forward if whole else forward[live])
+            best = candidate.argmin(axis=2)  # (l, j, a)
+            value = candidate[row_of, diagonal[None, :], best]
             better = value < _threshold(dist_y[live])
             if better.any():
                 changed |= better.any(axis=1)
@@ -470,7 +537,7 @@ def _plan(night: _Batch, lane_costs: NDArray[np.float64] | None = None) -> NDArr
         cycle = dist[:, n:] - gain  # (b, N): cost of the best cycle ending at Y_j
         j = cycle.argmin(axis=1)
         profit = -cycle[rows[:, 0], j]
-        take = profit > tolerance
+        take = profit > tol
         # Walk each path back to T: lane count, then apply (only rows that take it).
         node = n + j
         r = rows[:, 0]
@@ -512,14 +579,14 @@ def _plan(night: _Batch, lane_costs: NDArray[np.float64] | None = None) -> NDArr
         # W_i(y_i - k + 1) - W_i(y_i - k), which fall with k by concavity.
         k = np.arange(1, width_c + 1)[None, :]
         y_start, y_end = y[r, start], y[r, j]
-        internal = dist[r, n + j] - up[start, np.maximum(y_start - 1, 0)]
+        internal = dist[r, n + j] - up[at + start, np.maximum(y_start - 1, 0)]
         lose = np.where(
             k <= (y_start - lo[r, start])[:, None],
-            up[start[:, None], np.maximum(y_start[:, None] - k, 0)],
+            up[(at + start)[:, None], np.maximum(y_start[:, None] - k, 0)],
             np.inf,
         )
-        win = up[j[:, None], np.minimum(y_end[:, None] + k - 1, width_c)]
-        worth = (win - lose - internal[:, None] > tolerance) & (k <= room[:, None])
+        win = up[(at + j)[:, None], np.minimum(y_end[:, None] + k - 1, width_c)]
+        worth = (win - lose - internal[:, None] > tol[:, None]) & (k <= room[:, None])
         units = worth.sum(axis=1)
         if network_limit is not None:
             spare = budget - used[active]
@@ -545,7 +612,7 @@ def _plan(night: _Batch, lane_costs: NDArray[np.float64] | None = None) -> NDArr
             )
             direct = np.where(ok, direct, -np.inf)
             lane_choice = direct.argmax(axis=1)
-            lane_take = fallback & (direct[rows[:, 0], lane_choice] > tolerance)
+            lane_take = fallback & (direct[rows[:, 0], lane_choice] > tol)
         # Apply full cycles.
         for arc in path:
             on = full_take & (arc != _NONE)

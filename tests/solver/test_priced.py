@@ -465,14 +465,14 @@ def test_certificate_estimate_is_unbiased_whatever_the_store_values() -> None:
     ]:
         sample = _simulate(
             net,
-            replace(policy, store_values=values),
+            [replace(policy, store_values=values)],
             stock,
             600,
             days,
             np.random.default_rng(11),
             weights,
             0.9,
-        )
+        )[0]
         error = float(sample.std(ddof=1)) / np.sqrt(sample.size)
         assert abs(float(sample.mean()) - exact) <= 4.0 * error + 1e-9 * abs(exact), name
         errors[name] = error
@@ -538,3 +538,41 @@ def test_trade_limited_values_grow_with_the_limit_and_round_trip() -> None:
     assert old.trade_limit is None and old.plan_post_move_values is None
     unlimited = replace(policy, plan_post_move_values=None, trade_limit=None)
     assert np.array_equal(old.plan_batch(stocks), unlimited.plan_batch(stocks))
+
+
+def test_candidates_simulated_together_get_their_own_simulations() -> None:
+    # The trade limit's candidates are simulated in one batch (solver.priced): each must get
+    # exactly the samples of its own simulation on the same random numbers, and its plans
+    # exactly those of its own plan_batch.
+    spec = random_network(98, (9, 11, 8), max_limit=5, weekly=True)
+    policy = solve_priced(spec, options=QUICK)
+    net = _network(spec)
+    laws = _do_nothing_laws(net)
+    candidates = [policy] + [
+        replace(
+            policy,
+            plan_post_move_values=_limited_post_move(net, laws, policy, "discounted", k),
+            trade_limit=k,
+        )
+        for k in (1, 2)
+    ]
+    stock = np.array([4, 6, 2], dtype=np.int64)
+    weights = np.power(0.95, np.arange(40, dtype=np.float64))
+
+    def simulate(policies: list[PricedPolicy]) -> np.ndarray:
+        return _simulate(net, policies, stock, 6, 40, np.random.default_rng(3), weights, 0.95)
+
+    together = simulate(candidates)
+    assert together.shape == (3, 6)
+    for candidate, sample in zip(candidates, together, strict=True):
+        assert np.array_equal(simulate([candidate])[0], sample)
+    stocks = np.array(_stocks(policy)).reshape(3, -1, 3)
+    for phase in range(policy.phases):
+        flows = policy.plan_alongside(candidates[1:], stocks, phase=phase)
+        for candidate, rows, plans in zip(candidates, stocks, flows, strict=True):
+            assert np.array_equal(candidate.plan_batch(rows, phase=phase), plans)
+    # The candidates plan differently somewhere, so the checks can tell them apart.
+    everywhere = np.array(_stocks(policy))
+    assert not np.array_equal(
+        candidates[0].plan_batch(everywhere), candidates[1].plan_batch(everywhere)
+    )

@@ -317,3 +317,25 @@ def test_with_rules_a_stock_gets_the_same_plan_alone_and_in_a_batch() -> None:
         for stock, plan in zip(stocks, together, strict=True):
             alone = plan_flows(network, stock[None, :], values, limits, 3, 1e-9, rules)[0]
             assert np.array_equal(alone, plan)
+
+
+def test_rows_on_stacked_value_tables_get_each_table_plan() -> None:
+    # Several value tables in one batch (the trade limit's candidates, solver.priced): each row
+    # must get exactly the plan of its own table and tolerance planned alone, with and without
+    # rules (dispatch costs included).
+    rng = np.random.default_rng(12)
+    for dispatch in (False, True, None):
+        network, values, limits = random_instance(rng)
+        rules = None if dispatch is None else random_rules(rng, network, dispatch)
+        tables = np.stack(
+            [values, values + rng.normal(0.0, 2.0, values.shape).cumsum(axis=1), 0.5 * values]
+        )
+        tolerances = np.array([1e-9, 1e-6, 1e-3])
+        stocks = np.array([rng.integers(0, c + 1, size=40) for c in network.capacities]).T
+        which = rng.integers(0, 3, size=40)
+        together = plan_flows(network, stocks, tables, limits, 3, tolerances, rules, tables=which)
+        for g in range(3):
+            alone = plan_flows(
+                network, stocks[which == g], tables[g], limits, 3, tolerances[g], rules
+            )
+            assert np.array_equal(alone, together[which == g])
