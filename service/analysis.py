@@ -27,7 +27,7 @@ from __future__ import annotations
 
 import math
 import secrets
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from typing import Any
 
 import numpy as np
@@ -56,7 +56,7 @@ from solver import (
 from solver.build import check_size
 from solver.heuristics import balance_cover_plan, do_nothing_plan
 from solver.priced import check_priced_size, solve_priced
-from solver.priced_result import PricedOptions, PricedPolicy
+from solver.priced_result import PricedOptions, PricedPolicy, PricedProgress
 from solver.result import stock_problems
 from solver.simulation import (
     CONFIDENCE,
@@ -183,6 +183,7 @@ def run_simulation(
     max_replication_days: int = SIMULATION_MAX_REPLICATION_DAYS,
     progress: ProgressCallback | None = None,
     method: str = "exact",
+    priced_progress: Callable[[PricedProgress], None] | None = None,
 ) -> dict[str, Any]:
     """Simulate the optimal policy of `params.criterion`, moving nothing, and balancing days of
     cover, on the same days; the report as JSON-able data (see SimulationReportOut). With
@@ -190,12 +191,13 @@ def run_simulation(
 
     optimal: the stored policy of `spec` for the criterion; solved here when None (or
         when it does not fit the model, e.g. stored by a solver with another flow table).
-    progress: told about each iteration of that solve.
+    progress: told about each iteration of that solve (exact); priced_progress: about each
+        stage of a priced one.
     Raises AnalysisInputError, ModelTooLargeError, NotUnichainError (average criterion).
     """
     if method == "priced" or isinstance(optimal, PricedPolicy):
         priced = optimal if isinstance(optimal, PricedPolicy) else None
-        return _run_priced_simulation(spec, params, priced, max_replication_days)
+        return _run_priced_simulation(spec, params, priced, max_replication_days, priced_progress)
     check_simulation(spec, params, limits=limits, max_replication_days=max_replication_days)
     model = build_transfer_model(spec, limits)
     policy = None if optimal is None else _policy_on(model, optimal, params.criterion)
@@ -258,6 +260,7 @@ def _run_priced_simulation(
     params: SimulationRequest,
     stored: PricedPolicy | None,
     max_replication_days: int,
+    progress: Callable[[PricedProgress], None] | None = None,
 ) -> dict[str, Any]:
     check_simulation(spec, params, max_replication_days=max_replication_days, method="priced")
     source = "stored"
@@ -267,7 +270,7 @@ def _run_priced_simulation(
         or policy.criterion != params.criterion
         or policy.location_ids != tuple(spec.location_ids)
     ):
-        policy = solve_priced(spec, criterion=params.criterion)
+        policy = solve_priced(spec, criterion=params.criterion, progress=progress)
         source = "solved"
     seed, start = _seed_and_start(spec, params)
     plans: dict[str, Plan] = {

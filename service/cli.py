@@ -530,7 +530,13 @@ def _simulate(args: argparse.Namespace) -> int:
         ) from exc
     try:
         method = resolve_method(spec, args.mode, SizeLimits())
-        report = run_simulation(spec, params, progress=ProgressLines(), method=method)
+        report = run_simulation(
+            spec,
+            params,
+            progress=ProgressLines(),
+            method=method,
+            priced_progress=priced.progress_printer(),
+        )
     except AnalysisInputError as exc:
         raise UsageError("; ".join(detail for _, detail in exc.errors)) from exc
     except (SolverError, ValueError) as exc:
