@@ -4,8 +4,6 @@ closing instructions, which say the same things in the same words."""
 
 from __future__ import annotations
 
-import threading
-from collections import OrderedDict
 from datetime import date, timedelta
 
 from sqlalchemy.orm import Session
@@ -13,7 +11,7 @@ from sqlalchemy.orm import Session
 from service.db.networks import latest_version
 from service.db.tables import NetworkVersion
 from service.estimates import law_moments
-from service.serving import ServedPolicy
+from service.serving import Lru, ServedPolicy
 from solver import NetworkSpec, Recommendation
 
 __all__ = ["current_version_number", "notes_for"]
@@ -64,7 +62,7 @@ def _short_senders(
     if not any(sent):
         return []
     tomorrow = 0 if business_date is None else (business_date + timedelta(days=1)).weekday()
-    expected_on = _EXPECTED_DEMAND.of(session, served)[tomorrow]
+    expected_on = _expected_demand(session, served)[tomorrow]
     notes = []
     for index, location in enumerate(result.location_ids):
         if sent[index] == 0:
@@ -79,35 +77,21 @@ def _short_senders(
     return notes
 
 
-class _ExpectedDemand:
-    """Each location's expected demand on each weekday (Monday first), by specification hash:
-    read from a version's specification once per process rather than on every recommendation
-    that moves something (a batch of 1,000 would read and parse 1,000 specifications). A hash
-    names one specification for good, so nothing kept here goes stale; the last `size` are
-    kept."""
+# Each location's expected demand on each weekday (Monday first), by specification hash: read
+# from a version's specification once per process rather than on every recommendation that
+# moves something (a batch of 1,000 would read and parse 1,000 specifications). A hash names one
+# specification for good, so nothing kept here goes stale.
+_EXPECTED_DEMAND: Lru[str, tuple[tuple[float, ...], ...]] = Lru(size=4096)
 
-    def __init__(self, size: int) -> None:
-        self.size = size
-        self._tables: OrderedDict[str, tuple[tuple[float, ...], ...]] = OrderedDict()
-        self._lock = threading.Lock()
 
-    def of(self, session: Session, served: ServedPolicy) -> tuple[tuple[float, ...], ...]:
-        with self._lock:
-            table = self._tables.get(served.spec_hash)
-            if table is not None:
-                self._tables.move_to_end(served.spec_hash)
-                return table
+def _expected_demand(session: Session, served: ServedPolicy) -> tuple[tuple[float, ...], ...]:
+    table = _EXPECTED_DEMAND.get(served.spec_hash)
+    if table is None:
         version = session.get_one(NetworkVersion, served.version_id)
         spec = NetworkSpec.model_validate_json(version.spec_json)
         table = tuple(
             tuple(law_moments(location.demand_on(day))[0] for location in spec.locations)
             for day in range(7)
         )
-        with self._lock:
-            self._tables[served.spec_hash] = table
-            while len(self._tables) > self.size:
-                self._tables.popitem(last=False)
-        return table
-
-
-_EXPECTED_DEMAND = _ExpectedDemand(size=4096)
+        _EXPECTED_DEMAND.put(served.spec_hash, table)
+    return table

@@ -16,7 +16,7 @@ from collections import OrderedDict
 from collections.abc import Mapping
 from dataclasses import dataclass
 from datetime import UTC, date, datetime, time, timedelta
-from typing import Protocol
+from typing import Generic, Protocol, TypeVar
 from zoneinfo import ZoneInfo
 
 from sqlalchemy.orm import Session
@@ -43,6 +43,7 @@ from solver.spec import DEFAULT_TIMEZONE
 
 __all__ = [
     "CachedPolicy",
+    "Lru",
     "NetworkKey",
     "NetworkRef",
     "PolicyCache",
@@ -82,17 +83,21 @@ class _Entry:
 CachedPolicy = _Entry
 
 
-class PolicyCache:
-    """Thread-safe LRU of decoded policies keyed by (version id, criterion)."""
+K = TypeVar("K")
+V = TypeVar("V")
+
+
+class Lru(Generic[K, V]):
+    """Thread-safe least-recently-used map holding at most `size` entries (none when 0)."""
 
     def __init__(self, size: int) -> None:
         self.size = size
-        self._entries: OrderedDict[tuple[int, str], _Entry] = OrderedDict()
+        self._entries: OrderedDict[K, V] = OrderedDict()
         self._lock = threading.Lock()
         self.hits = 0
         self.misses = 0
 
-    def get(self, key: tuple[int, str]) -> _Entry | None:
+    def get(self, key: K) -> V | None:
         with self._lock:
             entry = self._entries.get(key)
             if entry is None:
@@ -102,12 +107,12 @@ class PolicyCache:
             self._entries.move_to_end(key)
             return entry
 
-    def __contains__(self, key: tuple[int, str]) -> bool:
+    def __contains__(self, key: K) -> bool:
         """Whether `key` is cached, without counting a lookup or refreshing its place."""
         with self._lock:
             return key in self._entries
 
-    def put(self, key: tuple[int, str], entry: _Entry) -> None:
+    def put(self, key: K, entry: V) -> None:
         if self.size <= 0:
             return
         with self._lock:
@@ -115,6 +120,10 @@ class PolicyCache:
             self._entries.move_to_end(key)
             while len(self._entries) > self.size:
                 self._entries.popitem(last=False)
+
+
+# Decoded policies keyed by (version id, criterion).
+PolicyCache = Lru[tuple[int, str], _Entry]
 
 
 class NetworkKey(Protocol):
